@@ -1,0 +1,251 @@
+"""Command-line front end: parses arguments and calls the public API.
+
+Exit status: 0 success, 2 bad input (one line naming the file and the line or
+field, no traceback), 1 internal fault, 130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import warnings
+
+from . import CAUTION, __version__
+from .errors import InputError, ScanWarning
+
+__all__ = ["main", "build_parser"]
+
+
+def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
+    p.add_argument("--diameter", type=float, help="inside diameter of the tank, in the scans' units (required here or in --job)")
+    p.add_argument("--out", required=True, help="output folder (created; refused if it exists, unless --force)")
+    p.add_argument("--job", help="TOML job file with further settings (see docs/job.md)")
+    p.add_argument("--annular-width", type=float, help="annular ring width, in the scans' units")
+    p.add_argument("--target-interval", type=float, help="target interval for repair planning [years] (default 10)")
+    p.add_argument("--leak-detection", action="store_true", help="release detection and containment present (MRT 1.27 mm case)")
+    p.add_argument("--cp", action="store_true", help="cathodic protection effective: UPr = 0")
+    p.add_argument("--coated", action="store_true", help="top side coated (StPr = 0 if coating life >= interval)")
+    p.add_argument("--coating-life", type=float, help="remaining coating life [years]")
+    p.add_argument("--rpb", action="store_true", help="release-prevention barrier present (30-year cap)")
+    p.add_argument("--shapes", help="operator attribution shapes file (docs/attribution.md)")
+    p.add_argument("--default-side", choices=["under", "top"], help="side of unattributed loss (default under)")
+    if not single:
+        p.add_argument("--repairs", help="repair records since the older scan (docs/attribution.md)")
+        p.add_argument("--control-points", help="matching points old/new for registration (docs/registration.md)")
+    p.add_argument("--patches", help="re-assess with the engineer's own patch set (patches CSV or DXF)")
+    p.add_argument("--repair-to", type=float, help="repair everything below this thickness [mm] (the code's way)")
+    p.add_argument("--ruleset", help="rule set name (default api653)")
+    p.add_argument("--units", choices=["mm", "in"], help="display units in the report and console (files keep SI)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="scananalyse",
+        description="Storage-tank floor scan analysis: registration, top/underside loss, rates, "
+        "extreme-value pit statistics, remaining life, repairs and intervals per zone. " + CAUTION,
+    )
+    parser.add_argument("--version", action="version", version=f"scananalyse {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks of internal faults")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("check", help="validate one scan file and print a short summary")
+    p.add_argument("file", help="scan file (.csv floor-scan CSV v1 or .h5 floor-scan HDF5 v1)")
+
+    p = sub.add_parser("convert", help="convert a scan between CSV and HDF5 (lossless)")
+    p.add_argument("input", help="input scan file")
+    p.add_argument("output", help="output scan file (.csv or .h5); refused if it exists, unless --force")
+    p.add_argument("--force", action="store_true", help="replace an existing output file")
+
+    p = sub.add_parser("register", help="align the older scan onto the newer one; writes registration.json")
+    p.add_argument("old", help="older inspection's scan")
+    p.add_argument("new", help="newer inspection's scan")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--control-points", help="matching points old/new (docs/registration.md)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+
+    p = sub.add_parser("compare", help="the whole job on two inspections of one floor")
+    p.add_argument("old", help="older inspection's scan")
+    p.add_argument("new", help="newer inspection's scan")
+    _add_job_options(p)
+
+    p = sub.add_parser("assess", help="the assessment from one inspection (long-term rates only)")
+    p.add_argument("scan", help="the inspection's scan")
+    _add_job_options(p, single=True)
+
+    p = sub.add_parser("demo", help="the whole job on the shipped sample scans")
+    p.add_argument("--out", default="demo_out", help="output folder (default demo_out)")
+    p.add_argument("--units", choices=["mm", "in"], default=None, help="display units")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+
+    p = sub.add_parser("fleet", help="many tanks on a Dask cluster, ranked by urgency")
+    p.add_argument("manifest", help="CSV with columns tank,old,new,diameter (paths relative to it)")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--workers", type=int, default=None, help="local cluster worker processes (default: cores)")
+    p.add_argument("--scheduler", default=None, help="address of an existing Dask scheduler")
+    p.add_argument("--force", action="store_true", help="recompute tanks whose results exist")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+    return parser
+
+
+def _job_from_args(args):
+    from .job import Job, read_job
+
+    job = read_job(args.job) if getattr(args, "job", None) else Job()
+    changes = {}
+    simple = {
+        "diameter": "diameter", "annular_width": "annular_width", "target_interval": "target_interval",
+        "coating_life": "coating_life_years", "shapes": "shapes", "default_side": "default_side",
+        "repairs": "repairs", "control_points": "control_points", "patches": "patches",
+        "repair_to": "repair_to_mm", "ruleset": "ruleset", "units": "units",
+    }
+    for a, f in simple.items():
+        v = getattr(args, a, None)
+        if v is not None:
+            changes[f] = os.path.abspath(v) if f in ("shapes", "repairs", "control_points", "patches") else v
+    for a, f in {"leak_detection": "leak_detection", "cp": "cp_effective", "coated": "coated",
+                 "rpb": "release_prevention_barrier"}.items():
+        if getattr(args, a, False):
+            changes[f] = True
+    job = job.replace(**changes)
+    if job.diameter is None:
+        raise InputError("--diameter: the tank's inside diameter is required (or floor.diameter in --job)")
+    if not job.diameter > 0:
+        raise InputError(f"--diameter: must be positive, got {job.diameter}")
+    if not job.target_interval > 0:
+        raise InputError(f"--target-interval: must be positive, got {job.target_interval}")
+    return job
+
+
+def _cmd_check(args) -> int:
+    from .io import read_scan
+
+    scan = read_scan(args.file)
+    s = scan.summary()
+    u = s["units"]
+    print(f"{args.file}: valid floor-scan file")
+    print(f"  tank {s['tank'] or '-'}, inspected {s['inspected']}, method {s['method'] or '-'}, file units {u}")
+    print(f"  grid {s['rows']} x {s['cols']} cells at {s['pitch_mm']:g} mm pitch; "
+          f"x {s['x_range_mm'][0] / 1000:.3f} to {s['x_range_mm'][1] / 1000:.3f} m, "
+          f"y {s['y_range_mm'][0] / 1000:.3f} to {s['y_range_mm'][1] / 1000:.3f} m")
+    print(f"  scanned {s['scanned_cells']} cells = {s['scanned_area_m2']:.2f} m2 ({s['grid_fill_pct']:.1f} % of the grid box)")
+    print(f"  thickness {s['t_min_mm']:.2f} to {s['t_max_mm']:.2f} mm (nominal {s['nominal_mm']:.2f} mm)")
+    m = scan.meta
+    extras = []
+    if m.threshold is not None:
+        extras.append(f"threshold {m.threshold:.2f} mm")
+    if m.sigma is not None:
+        extras.append(f"sigma {m.sigma:.2f} mm")
+    if m.installed is not None:
+        extras.append(f"installed {m.installed.isoformat()}")
+    extras.append("side layer" if scan.side is not None else "no side layer")
+    extras.append("plate layer" if scan.plate is not None else "no plate layer")
+    print("  " + ", ".join(extras))
+    return 0
+
+
+def _cmd_convert(args) -> int:
+    from .io import read_scan, write_scan
+
+    if os.path.abspath(args.input) == os.path.abspath(args.output):
+        raise InputError(f"{args.output}: output is the input file; inputs are never modified")
+    if os.path.exists(args.output) and not args.force:
+        raise InputError(f"{args.output}: exists; use --force to replace it")
+    scan = read_scan(args.input)
+    write_scan(scan, args.output)
+    print(f"wrote {args.output}")
+    return 0
+
+
+def _cmd_register(args) -> int:
+    from .pipeline import register_files
+
+    out = register_files(args.old, args.new, out_dir=args.out, control_points=args.control_points,
+                         force=args.force, quiet=args.quiet)
+    print(out["summary"])
+    return 0
+
+
+def _cmd_compare(args) -> int:
+    from .pipeline import compare
+
+    job = _job_from_args(args)
+    res = compare(args.old, args.new, job=job, out_dir=args.out, force=args.force, quiet=args.quiet)
+    print(res.console_summary())
+    return 0
+
+
+def _cmd_assess(args) -> int:
+    from .pipeline import assess_single
+
+    job = _job_from_args(args)
+    res = assess_single(args.scan, job=job, out_dir=args.out, force=args.force, quiet=args.quiet)
+    print(res.console_summary())
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from .pipeline import run_demo
+
+    res = run_demo(out_dir=args.out, units=args.units, quiet=args.quiet)
+    print(res.console_summary())
+    return 0
+
+
+def _cmd_fleet(args) -> int:
+    from .fleet import run_fleet
+
+    res = run_fleet(args.manifest, out_dir=args.out, workers=args.workers, scheduler=args.scheduler,
+                    force=args.force, quiet=args.quiet)
+    print(res["summary"])
+    return 0
+
+
+_COMMANDS = {
+    "check": _cmd_check, "convert": _cmd_convert, "register": _cmd_register, "compare": _cmd_compare,
+    "assess": _cmd_assess, "demo": _cmd_demo, "fleet": _cmd_fleet,
+}
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    sys.stderr.write(f"scananalyse: warning: {message}\n")
+
+
+def main(argv=None) -> int:
+    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault)."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse: --help/--version exit 0, usage errors exit 2
+        return int(exc.code or 0)
+    if not args.command:
+        parser.print_help()
+        return 2
+    old_show = warnings.showwarning
+    warnings.showwarning = _show_warning
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("always", ScanWarning)
+            return _COMMANDS[args.command](args)
+    except InputError as exc:
+        sys.stderr.write(f"scananalyse: error: {exc}\n")
+        return 2
+    except KeyboardInterrupt:
+        sys.stderr.write("scananalyse: interrupted; no complete output was written\n")
+        return 130
+    except BrokenPipeError:
+        return 1
+    except Exception as exc:  # an internal fault: say so in one line, traceback only with --debug
+        if args.debug:
+            raise
+        sys.stderr.write(f"scananalyse: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)\n")
+        return 1
+    finally:
+        warnings.showwarning = old_show
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
