@@ -1,0 +1,149 @@
+"""Output folders that appear only when complete, and the results.h5 writer.
+
+A run writes into a hidden temporary folder beside the target
+(``.DIR.partial-<pid>``) and renames it into place only when every file is
+written.  A run that fails or is interrupted removes its temporary folder, so no
+folder that looks complete is ever left behind.  An existing output folder is
+replaced only with ``force=True`` (the old one is removed only after the new one
+is complete).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import signal
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["output_folder", "write_json", "write_results_h5", "interrupts_as_keyboard"]
+
+#: Name of the marker file written last into every complete output folder.
+COMPLETE_MARKER = "COMPLETE"
+
+
+@contextmanager
+def interrupts_as_keyboard():
+    """Turn SIGTERM into KeyboardInterrupt for the duration, so cleanup runs."""
+    def _handler(signum, frame):
+        raise KeyboardInterrupt(f"signal {signum}")
+
+    try:
+        old = signal.signal(signal.SIGTERM, _handler)
+    except ValueError:  # not the main thread (e.g. a Dask worker thread)
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, old)
+
+
+@contextmanager
+def output_folder(path, *, force: bool = False):
+    """Yield a temporary folder that becomes ``path`` when the block completes.
+
+    Raises :class:`InputError` if ``path`` exists and ``force`` is false, or if
+    ``path`` exists and is not a folder.
+    """
+    target = Path(path)
+    if target.exists():
+        if not target.is_dir():
+            raise InputError(f"{target}: exists and is not a folder")
+        if not force:
+            raise InputError(f"{target}: output folder exists; use --force to replace it")
+    parent = target.resolve().parent
+    parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=parent))
+    try:
+        with interrupts_as_keyboard():
+            yield tmp
+            (tmp / COMPLETE_MARKER).write_text("complete\n")
+            if target.exists():
+                old = parent / f".{target.name}.old-{os.getpid()}"
+                os.replace(target, old)
+                os.replace(tmp, target)
+                shutil.rmtree(old, ignore_errors=True)
+            else:
+                os.replace(tmp, target)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def _json_default(o):
+    if isinstance(o, (np.integer,)):
+        return int(o)
+    if isinstance(o, (np.floating,)):
+        return float(o)
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if hasattr(o, "isoformat"):
+        return o.isoformat()
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def _clean(o):
+    """Replace NaN/inf by None (JSON has no NaN) recursively."""
+    if isinstance(o, float) and not math.isfinite(o):
+        return None
+    if isinstance(o, dict):
+        return {k: _clean(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_clean(v) for v in o]
+    return o
+
+
+def write_json(obj, path):
+    """Write ``obj`` as indented JSON (NaN and inf become null)."""
+    Path(path).write_text(json.dumps(_clean(obj), indent=2, default=_json_default) + "\n")
+
+
+def write_results_h5(path, maps: dict, *, x0: float, y0: float, pitch: float, attrs: dict | None = None,
+                     timings: dict | None = None):
+    """Write every map on the new scan's grid into one HDF5 file.
+
+    Parameters
+    ----------
+    path : output file.
+    maps : name -> 2-D array (same shape); bool maps stored as uint8, floats as float32.
+    x0, y0 : centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+    attrs : extra root attributes (strings or numbers).
+    timings : stage -> seconds, stored under the group ``timings`` as attributes.
+    """
+    import h5py
+
+    with h5py.File(path, "w") as f:
+        f.attrs["format"] = "scananalyse-results"
+        f.attrs["version"] = 1
+        f.attrs["units"] = "mm, mm/y, years"
+        for k, v in (attrs or {}).items():
+            if v is None:
+                continue
+            f.attrs[k] = v if isinstance(v, (int, float, str, np.number)) else str(v)
+        g = f.create_group("maps")
+        g.attrs["x0_mm"] = x0
+        g.attrs["y0_mm"] = y0
+        g.attrs["pitch_mm"] = pitch
+        for name, arr in maps.items():
+            if arr is None:
+                continue
+            a = np.asarray(arr)
+            if a.dtype == bool:
+                a = a.astype(np.uint8)
+            elif a.dtype.kind == "f" and a.dtype != np.float32:
+                a = a.astype(np.float32)
+            chunks = (min(256, a.shape[0]), min(256, a.shape[1])) if a.ndim == 2 and a.size else None
+            g.create_dataset(name, data=a, compression="gzip", compression_opts=1, shuffle=True, chunks=chunks)
+        if timings:
+            t = f.create_group("timings")
+            for k, v in timings.items():
+                t.attrs[k] = float(v)

@@ -1,0 +1,65 @@
+"""Output folders appear only when complete; results.h5 holds the maps."""
+
+import h5py
+import numpy as np
+import pytest
+
+from scananalyse.errors import InputError
+from scananalyse.outputs import COMPLETE_MARKER, output_folder, write_json, write_results_h5
+
+
+def test_folder_appears_only_when_complete(tmp_path):
+    target = tmp_path / "out"
+    with output_folder(target) as tmp:
+        (tmp / "a.txt").write_text("1")
+        assert not target.exists()
+    assert (target / "a.txt").read_text() == "1"
+    assert (target / COMPLETE_MARKER).exists()
+    assert [p.name for p in tmp_path.iterdir()] == ["out"]
+
+
+def test_failure_leaves_nothing(tmp_path):
+    target = tmp_path / "out"
+    with pytest.raises(RuntimeError):
+        with output_folder(target) as tmp:
+            (tmp / "a.txt").write_text("1")
+            raise RuntimeError("boom")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_interrupt_leaves_nothing(tmp_path):
+    target = tmp_path / "out"
+    with pytest.raises(KeyboardInterrupt):
+        with output_folder(target) as tmp:
+            (tmp / "a.txt").write_text("1")
+            raise KeyboardInterrupt
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_existing_folder_needs_force(tmp_path):
+    target = tmp_path / "out"
+    target.mkdir()
+    (target / "old.txt").write_text("old")
+    with pytest.raises(InputError, match=r"out: output folder exists; use --force"):
+        with output_folder(target):
+            pass
+    assert (target / "old.txt").exists()
+    with output_folder(target, force=True) as tmp:
+        (tmp / "new.txt").write_text("new")
+    assert (target / "new.txt").exists() and not (target / "old.txt").exists()
+    # a failed forced run keeps the old complete folder
+    with pytest.raises(RuntimeError):
+        with output_folder(target, force=True):
+            raise RuntimeError("boom")
+    assert (target / "new.txt").exists()
+
+
+def test_results_h5_and_json(tmp_path):
+    maps = {"loss": np.ones((3, 4), np.float64), "mask": np.zeros((3, 4), bool), "none": None}
+    write_results_h5(tmp_path / "r.h5", maps, x0=-5, y0=2, pitch=10, attrs={"tank": "T1"}, timings={"load": 0.5})
+    with h5py.File(tmp_path / "r.h5", "r") as f:
+        assert f["maps/loss"].dtype == np.float32 and f["maps/mask"].dtype == np.uint8
+        assert f["maps"].attrs["pitch_mm"] == 10 and f.attrs["tank"] == "T1"
+        assert f["timings"].attrs["load"] == 0.5 and "none" not in f["maps"]
+    write_json({"a": float("nan"), "b": [1.0, float("inf")], "c": np.float32(2.5)}, tmp_path / "x.json")
+    assert (tmp_path / "x.json").read_text().replace(" ", "").replace("\n", "") == '{"a":null,"b":[1.0,null],"c":2.5}'
