@@ -1,0 +1,110 @@
+"""Benchmark of the floor-scan readers against the libraries underneath them.
+
+Builds an invented floor: a 30 m diameter circle at 10 mm pitch (about 7.07
+million scanned cells) with a side column, writes it as floor-scan CSV v1 and
+HDF5 v1 in a temporary folder, and times, in the same run, best of 3:
+
+- ``read_csv_scan`` against ``pandas.read_csv`` (C engine, defaults, header lines skipped);
+- ``read_h5_scan`` against a raw ``h5py`` read of the thickness dataset.
+
+Run: ``python bench/bench_io.py [--diameter-m 30] [--pitch-mm 10] [--repeat 3]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import os
+import sys
+import tempfile
+import time
+
+import h5py
+import numpy as np
+import pandas as pd
+
+from scananalyse.io import read_csv_scan, read_h5_scan, write_csv_scan, write_h5_scan
+from scananalyse.scan import FloorScan, ScanMeta
+
+
+def make_floor(diameter_m: float, pitch_mm: float, seed: int = 7) -> FloorScan:
+    """An invented circular floor: 6.35 mm nominal, mild general loss and noise. [mm]"""
+    rng = np.random.default_rng(seed)
+    r = diameter_m * 1000.0 / 2
+    n = int(np.ceil(2 * r / pitch_mm))
+    c = (np.arange(n) - (n - 1) / 2) * pitch_mm
+    inside = (c[None, :] ** 2 + c[:, None] ** 2) <= r * r
+    t = (6.35 - rng.gamma(2.0, 0.15, size=(n, n))).astype(np.float32)
+    t = np.round(t, 2)  # an instrument reporting to 0.01 mm
+    t[~inside] = np.nan
+    side = rng.choice(np.array([0, 1, 2], dtype=np.int8), size=(n, n), p=[0.2, 0.3, 0.5])
+    meta = ScanMeta(inspected=dt.date(2024, 5, 14), nominal=6.35, units="mm", tank="TK-BENCH",
+                    method="MFL", threshold=1.0, sigma=0.15, installed=dt.date(1996, 3, 1))
+    return FloorScan(thickness=t, x0=float(c[0]), y0=float(c[0]), pitch=pitch_mm, meta=meta, side=side)
+
+
+def best_of(fn, repeat: int) -> float:
+    times = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    return min(times)
+
+
+def header_lines(path: str) -> int:
+    with open(path, "rb") as fh:
+        k = 0
+        for raw in fh:
+            if not raw.startswith(b"#"):
+                return k
+            k += 1
+    return k
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--diameter-m", type=float, default=30.0)
+    ap.add_argument("--pitch-mm", type=float, default=10.0)
+    ap.add_argument("--repeat", type=int, default=3)
+    args = ap.parse_args(argv)
+
+    scan = make_floor(args.diameter_m, args.pitch_mm)
+    with tempfile.TemporaryDirectory() as tmp:
+        csv_path = os.path.join(tmp, "floor.csv")
+        h5_path = os.path.join(tmp, "floor.h5")
+        t0 = time.perf_counter()
+        write_csv_scan(scan, csv_path)
+        t_write_csv = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        write_h5_scan(scan, h5_path)
+        t_write_h5 = time.perf_counter() - t0
+        skip = header_lines(csv_path)
+        size_mb = os.path.getsize(csv_path) / 1e6
+        print(f"floor {args.diameter_m:g} m at {args.pitch_mm:g} mm: grid {scan.shape[0]} x "
+              f"{scan.shape[1]}, {scan.n_scanned} rows, CSV {size_mb:.0f} MB, "
+              f"HDF5 {os.path.getsize(h5_path) / 1e6:.0f} MB")
+        print(f"write: CSV {t_write_csv:.2f} s, HDF5 {t_write_h5:.2f} s")
+
+        back = read_csv_scan(csv_path)  # warm the page cache and check the result once
+        assert np.array_equal(back.thickness, scan.thickness, equal_nan=True)
+        t_pd = best_of(lambda: pd.read_csv(csv_path, skiprows=skip, engine="c"), args.repeat)
+        t_ours = best_of(lambda: read_csv_scan(csv_path), args.repeat)
+        print(f"CSV read: read_csv_scan {t_ours:.2f} s, pandas.read_csv {t_pd:.2f} s, "
+              f"ratio {t_ours / t_pd:.2f}")
+
+        def raw_h5():
+            with h5py.File(h5_path, "r") as f:
+                f["thickness"][()]
+                f["side"][()]
+
+        read_h5_scan(h5_path)
+        t_raw = best_of(raw_h5, args.repeat)
+        t_h5 = best_of(lambda: read_h5_scan(h5_path), args.repeat)
+        print(f"HDF5 read: read_h5_scan {t_h5:.2f} s, raw h5py (thickness + side) {t_raw:.2f} s, "
+              f"ratio {t_h5 / t_raw:.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,678 @@
+"""Remaining life and the inspection interval per floor zone.
+
+Three estimates per zone, and the recommendation as the least of them and the cap:
+
+1. :func:`code_interval` — the API 653 bottom-minimum formula solved for the
+   interval, exactly as the standard reads (age-based rates from the thinnest
+   areas, uncapped), so it can be filed.
+2. :func:`local_life_map` — the co-located projection: each cell's own life
+   (t − MRT)/(r_top + r_under) from the measured rates; the zone takes its shortest.
+3. The extreme-value life — the deepest loss expected over the whole zone area
+   (return level, upper bound) and the fastest rate (see :func:`eva_life`).
+
+:func:`assess_zones` puts them in one tidy table (the ``zones.csv`` columns) with
+the governing bound, the next due date and flags wherever the code formula
+promises more than the metal supports.
+
+Everything is mm, mm/y and years.  Results are decision support; the standard
+in force, the owner's authorised inspector and local regulations decide.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .scan import DAYS_PER_YEAR, SIDE_TOP, SIDE_UNDER, SIDE_UNKNOWN
+
+__all__ = [
+    "CodeResult",
+    "AssessOptions",
+    "code_interval",
+    "repair_to_thickness",
+    "local_life_map",
+    "eva_life",
+    "zone_mrt",
+    "mrt_map",
+    "add_years",
+    "assess_zones",
+    "ZONE_COLUMNS",
+    "BOUND_NAMES",
+]
+
+#: The zones.csv columns of the design contract, in order (more follow them).
+ZONE_COLUMNS = [
+    "zone", "area_m2", "coverage_pct", "t_min_mm", "depth_max_mm", "depth_eva_mm",
+    "depth_eva_upper_mm", "rate_top_max_mm_y", "rate_under_max_mm_y", "mrt_mm",
+    "interval_code_y", "life_local_y", "interval_recommended_y", "next_due", "limiting", "flags",
+]
+
+#: Names of the bounds the recommendation takes the least of, in tie-break order.
+BOUND_NAMES = ("code", "local", "eva", "initial", "cap")
+
+
+def _num(x, field_name, *, positive=False, allow_none=False):
+    if x is None and allow_none:
+        return None
+    if isinstance(x, bool) or not isinstance(x, (int, float, np.floating, np.integer)):
+        raise InputError(f"assessment: field '{field_name}': expected a number, got {x!r}")
+    x = float(x)
+    if not math.isfinite(x) or (positive and x <= 0):
+        raise InputError(f"assessment: field '{field_name}': must be "
+                         f"{'a positive' if positive else 'a finite'} number, got {x!r}")
+    return x
+
+
+# ---------------------------------------------------------------------------
+# 1. The code formula
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class CodeResult:
+    """Result of :func:`code_interval`.
+
+    Attributes
+    ----------
+    stpr : StPr used in Or (0 when the coating credit is taken). [mm/y]
+    upr : UPr used in Or (0 with effective CP). [mm/y]
+    t_used_upr : thickness UPr was computed from. [mm]
+    min_rt : min(RTbc, RTip). [mm]
+    interval_y : Or, uncapped; ≤ 0 when already below MRT; inf when StPr + UPr = 0. [y]
+    rtbc, rtip, mrt : the inputs. [mm]
+    stpr_age : the age-based top-side rate (t0 − RTip)/age before any coating credit. [mm/y]
+    coating_credit : True when StPr was set to 0 for the coating.
+    notes : short remarks on the choices made.
+    """
+
+    stpr: float
+    upr: float
+    t_used_upr: float
+    min_rt: float
+    interval_y: float
+    rtbc: float
+    rtip: float
+    mrt: float
+    stpr_age: float
+    coating_credit: bool
+    notes: tuple[str, ...] = ()
+
+
+def code_interval(*, t0: float, rtbc: float, rtip: float, mrt: float, age_years: float,
+                  method: str = "MFL", threshold: float | None = None, coated: bool = False,
+                  coating_life_years: float | None = None,
+                  cp_effective: bool = False) -> CodeResult:
+    """Interval from the API 653 bottom-minimum formula, solved for Or.
+
+    Parameters
+    ----------
+    t0 : original (nominal) plate thickness. [mm]
+    rtbc : minimum remaining thickness from bottom-side corrosion after repairs. [mm]
+    rtip : minimum remaining thickness from internal (top-side) corrosion after repairs. [mm]
+    mrt : minimum remaining thickness at the end of the interval (Table 4.4). [mm]
+    age_years : years in service. [y]
+    method : scan method; ``"MFL"`` (any case) applies the MFL-threshold rule to UPr.
+    threshold : MFL threshold as a loss depth (the scan reports no loss shallower than
+        this); None if unknown. [mm]
+    coated : the top side is coated (or lined).
+    coating_life_years : expected remaining life of the coating; None = unknown (no
+        credit). [y]
+    cp_effective : cathodic protection of the underside is effective (UPr = 0).
+
+    Returns
+    -------
+    CodeResult
+
+    Notes
+    -----
+    API 653 §4.4.7.1 (§4.4.5 in later editions) [memory; term definitions seen in
+    quotations]::
+
+        MRT = min(RTbc, RTip) − Or · (StPr + UPr)
+        Or  = (min(RTbc, RTip) − MRT) / (StPr + UPr)
+
+    with the age-based rates StPr = (t0 − RTip)/age and UPr = (t0 − t_used)/age,
+    t_used = min(t0 − threshold, RTbc) for MFL scans (the lesser of the thickness the
+    MFL threshold corresponds to and the thinnest unrepaired area) and RTbc otherwise.
+    Rates are taken as ≥ 0 (a plate thicker than nominal is not negative corrosion).
+
+    Coating circularity: StPr = 0 only for a coating whose life is at least Or, but Or
+    depends on StPr.  We take the longest Or that satisfies the inequality
+    MRT ≤ min(RTbc, RTip) − Or·(StPr(Or) + UPr) with StPr(Or) = 0 when the coating
+    life ≥ Or and the age-based StPr otherwise, i.e.
+    Or = max(min(coating life, Or₀), Or₁), Or₀ and Or₁ the intervals with StPr = 0 and
+    with the age-based StPr.  When the coating life is shorter than Or₀ the credit
+    holds only up to the coating life (a note says so).
+
+    When StPr + UPr = 0 the interval is ``inf`` (written ``inf`` in CSV tables) if the
+    floor is at or above MRT, and 0 if it is already below.  Below MRT with non-zero
+    rates the interval is negative (years since MRT was crossed at those rates).
+
+    References
+    ----------
+    API Standard 653, Tank Inspection, Repair, Alteration, and Reconstruction,
+    §4.4.7.1 (3rd ed.) / §4.4.5; Table 4.4.
+    """
+    t0 = _num(t0, "t0", positive=True)
+    rtbc = _num(rtbc, "rtbc")
+    rtip = _num(rtip, "rtip")
+    mrt = _num(mrt, "mrt")
+    age = _num(age_years, "age_years", positive=True)
+    threshold = _num(threshold, "threshold", allow_none=True)
+    notes: list[str] = []
+
+    stpr_age = max(0.0, (t0 - rtip) / age)
+    is_mfl = str(method).strip().upper() == "MFL"
+    if is_mfl and threshold is not None:
+        t_thr = t0 - threshold
+        t_used = min(t_thr, rtbc)
+        if t_thr < rtbc:
+            notes.append("UPr from the MFL threshold")
+    else:
+        t_used = rtbc
+        if is_mfl:
+            notes.append("MFL threshold unknown: UPr from RTbc")
+    if cp_effective:
+        upr = 0.0
+        notes.append("UPr 0: effective CP")
+    else:
+        upr = max(0.0, (t0 - t_used) / age)
+    min_rt = min(rtbc, rtip)
+    margin = min_rt - mrt
+
+    def solve(stpr):
+        s = stpr + upr
+        if s > 0:
+            return margin / s
+        return math.inf if margin >= 0 else 0.0
+
+    stpr = stpr_age
+    credit = False
+    or1 = solve(stpr_age)
+    if coated:
+        cl = coating_life_years
+        if cl is None:
+            notes.append("coating life unknown: no StPr credit")
+        else:
+            cl = _num(cl, "coating_life_years")
+            if margin >= 0 and cl > 0:
+                or0 = solve(0.0)
+                or_cred = min(cl, or0)
+                if or_cred > or1:
+                    stpr, credit = 0.0, True
+                    interval = or_cred
+                    if cl < or0:
+                        notes.append(f"Or limited to the coating life {cl:g} y (StPr 0 while it lasts)")
+                    else:
+                        notes.append("StPr 0: coating life >= Or")
+                else:
+                    notes.append("coating life < Or: no StPr credit")
+    if not credit:
+        interval = or1
+    if margin < 0:
+        notes.append("below MRT")
+    return CodeResult(stpr=stpr, upr=upr, t_used_upr=t_used, min_rt=min_rt, interval_y=interval,
+                      rtbc=rtbc, rtip=rtip, mrt=mrt, stpr_age=stpr_age, coating_credit=credit,
+                      notes=tuple(notes))
+
+
+def repair_to_thickness(*, mrt: float, t0: float, age_years: float, interval_years: float,
+                        n_sides: int, round_up_to: float | None = None) -> float:
+    """Repair-to thickness that gives a target interval under the code formula.
+
+    Parameters
+    ----------
+    mrt : minimum remaining thickness. [mm or in]
+    t0 : original plate thickness, same unit as ``mrt``. [mm or in]
+    age_years : years in service. [y]
+    interval_years : target interval Or. [y]
+    n_sides : number of unprotected sides (0, 1 or 2). [1]
+    round_up_to : if given, round the result UP to this step, same unit. [mm or in]
+
+    Returns
+    -------
+    float : RT, in the unit of ``mrt`` and ``t0``.
+
+    Notes
+    -----
+    Every area thinner than RT is repaired; the thinnest remaining area RT then
+    gives each unprotected side an age-based rate (t0 − RT)/age, and the code
+    formula MRT = RT − Or·n·(t0 − RT)/age solved for RT is::
+
+        RT = (MRT + k·t0) / (1 + k),   k = n·Or/age
+
+    References
+    ----------
+    MFL threshold table calculated from API 653 3rd ed. §4.4.7.1, published by a
+    tank consultancy (domain notes §4): 0.175 / 0.150 / 0.120 in for t0 = 0.250 in,
+    age 20 y, Or 10 y.
+    """
+    mrt = _num(mrt, "mrt")
+    t0 = _num(t0, "t0", positive=True)
+    age = _num(age_years, "age_years", positive=True)
+    orr = _num(interval_years, "interval_years")
+    if orr < 0:
+        raise InputError(f"assessment: field 'interval_years': must be >= 0, got {orr!r}")
+    if n_sides not in (0, 1, 2) or isinstance(n_sides, bool):
+        raise InputError(f"assessment: field 'n_sides': must be 0, 1 or 2, got {n_sides!r}")
+    k = n_sides * orr / age
+    rt = (mrt + k * t0) / (1.0 + k)
+    if round_up_to is not None:
+        step = _num(round_up_to, "round_up_to", positive=True)
+        rt = math.ceil(rt / step - 1e-9) * step
+    return rt
+
+
+# ---------------------------------------------------------------------------
+# 2. Co-located projection and extreme-value life
+# ---------------------------------------------------------------------------
+def local_life_map(thickness, rate_top, rate_under, mrt) -> np.ndarray:
+    """Co-located remaining life of each cell.
+
+    Parameters
+    ----------
+    thickness : remaining thickness, NaN where not scanned. [mm]
+    rate_top : governing top-side rate at each cell (negative values count as 0). [mm/y]
+    rate_under : governing underside rate at each cell (negative values count as 0). [mm/y]
+    mrt : minimum remaining thickness, scalar or per-cell array. [mm]
+
+    Returns
+    -------
+    float32 array : life (t − MRT)/(r_top + r_under) [y]; ``inf`` where both rates are
+    0 and the cell is at or above MRT; 0 where the cell is already below MRT; NaN where
+    the thickness or a rate is NaN.
+
+    Notes
+    -----
+    Both faces thin the same plate, so at one cell the two losses add; unlike the
+    code formula, the rates are those measured at the cell itself (domain notes §5).
+    """
+    t = np.asarray(thickness, dtype=np.float32)
+    s = (np.maximum(np.asarray(rate_top, dtype=np.float32), np.float32(0))
+         + np.maximum(np.asarray(rate_under, dtype=np.float32), np.float32(0)))
+    margin = t - np.asarray(mrt, dtype=np.float32)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        life = margin / s
+    life = np.where(s > 0, life, np.float32(np.inf))
+    life = np.where(margin < 0, np.float32(0), life)
+    life = np.where(np.isnan(margin) | np.isnan(s), np.float32(np.nan), life)
+    return life.astype(np.float32, copy=False)
+
+
+def eva_life(*, t0: float, depth_upper: float, mrt: float, rate: float) -> float:
+    """Extreme-value life of a zone.
+
+    Parameters
+    ----------
+    t0 : original plate thickness. [mm]
+    depth_upper : upper confidence bound of the deepest loss expected over the whole
+        zone area (return level). [mm]
+    mrt : minimum remaining thickness of the zone. [mm]
+    rate : rate applied to that deepest loss. [mm/y]
+
+    Returns
+    -------
+    float : (t0 − depth_upper − MRT)/rate [y]; 0 if t0 − depth_upper is already below
+    MRT; ``inf`` if the rate is 0; NaN if an input is NaN.
+    """
+    margin = float(t0) - float(depth_upper) - float(mrt)
+    rate = max(float(rate), 0.0) if not math.isnan(rate) else math.nan
+    if math.isnan(margin) or math.isnan(rate):
+        return math.nan
+    if margin < 0:
+        return 0.0
+    if rate == 0:
+        return math.inf
+    return margin / rate
+
+
+# ---------------------------------------------------------------------------
+# 3. Per-zone assessment
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class AssessOptions:
+    """Tank facts and choices of the assessment.
+
+    Parameters
+    ----------
+    leak_detection : a means of leak detection and containment (MRT case of Table 4.4).
+    reinforced_lining : a reinforced lining thicker than the rule set's
+        ``lining_min_thickness_mm`` (MRT case; also counts as coated, and as a
+        fibreglass-reinforced lining for the initial interval).
+    coated : top side coated (thin-film coating for the initial interval).
+    coating_life_years : expected remaining coating life; None = unknown. [y]
+    cp_effective : effective cathodic protection of the underside.
+    release_prevention_barrier : a release-prevention barrier (cap 30 y instead of 20).
+    unknown_side : where loss of unattributed cells counts: ``"under"`` (default) or
+        ``"top"``.
+    target_interval_years : the interval the owner wants; zones recommended less get
+        ``target-not-reached``; None for no target. [y]
+    shell_tmin_mm : tmin of the lower shell course, for the critical-zone minimum. [mm]
+    annular_tmin_mm : minimum thickness of the annular plates (Table 4.5 by the user),
+        raises the annular zone's MRT. [mm]
+    corrosion_allowance_mm : bottom corrosion allowance, for the initial interval. [mm]
+    """
+
+    leak_detection: bool = False
+    reinforced_lining: bool = False
+    coated: bool = False
+    coating_life_years: float | None = None
+    cp_effective: bool = False
+    release_prevention_barrier: bool = False
+    unknown_side: str = "under"
+    target_interval_years: float | None = 10.0
+    shell_tmin_mm: float | None = None
+    annular_tmin_mm: float | None = None
+    corrosion_allowance_mm: float | None = None
+
+    def __post_init__(self):
+        if self.unknown_side not in ("under", "top"):
+            raise InputError(f"assessment: field 'unknown_side': must be 'under' or 'top', "
+                             f"got {self.unknown_side!r}")
+        for nm in ("coating_life_years", "target_interval_years", "shell_tmin_mm",
+                   "annular_tmin_mm", "corrosion_allowance_mm"):
+            v = getattr(self, nm)
+            if v is not None:
+                v = _num(v, nm)
+                if v < 0:
+                    raise InputError(f"assessment: field '{nm}': must be >= 0, got {v!r}")
+
+
+def zone_mrt(zones, rules, options: AssessOptions, *, t0: float) -> np.ndarray:
+    """MRT of each zone. [mm]
+
+    Table 4.4 MRT everywhere; in the critical zone at least the critical-zone minimum
+    (:meth:`RuleSet.critical_zone_min_mm`); in the annular zone at least
+    ``options.annular_tmin_mm`` when given.
+
+    Parameters
+    ----------
+    zones : :class:`~scananalyse.zones.ZoneMap`.
+    rules : :class:`~scananalyse.rules.RuleSet`.
+    options : :class:`AssessOptions`.
+    t0 : original plate thickness. [mm]
+    """
+    base = rules.mrt_mm(leak_detection=options.leak_detection,
+                        reinforced_lining=options.reinforced_lining)
+    out = np.full(len(zones.names), base, dtype=np.float64)
+    for k, kind in enumerate(zones.kinds):
+        if kind == "critical":
+            out[k] = max(base, rules.critical_zone_min_mm(t0, options.shell_tmin_mm))
+        elif kind == "annular" and options.annular_tmin_mm is not None:
+            out[k] = max(base, options.annular_tmin_mm)
+    return out
+
+
+def mrt_map(zones, rules, options: AssessOptions, *, t0: float) -> np.ndarray:
+    """Per-cell MRT on the zone grid (float32, NaN outside the floor). [mm]"""
+    lut = np.append(zone_mrt(zones, rules, options, t0=t0), np.nan).astype(np.float32)
+    return lut[zones.labels]  # label -1 picks the trailing NaN
+
+
+def add_years(date: _dt.date, years: float) -> _dt.date:
+    """``date`` plus ``years``: whole years by calendar (29 Feb → 28 Feb), the rest in
+    mean Gregorian days (365.2425 per year).
+
+    Parameters
+    ----------
+    date : start date.
+    years : years to add, finite and ≥ 0. [y]
+    """
+    whole = int(math.floor(years + 1e-9))
+    frac = max(years - whole, 0.0)
+    y = date.year + whole
+    try:
+        d = date.replace(year=y)
+    except ValueError:  # 29 February into a common year
+        d = date.replace(year=y, day=28)
+    return d + _dt.timedelta(days=int(round(frac * DAYS_PER_YEAR)))
+
+
+def _attr(obj, name):
+    if obj is None:
+        return None
+    if isinstance(obj, dict):
+        v = obj.get(name)
+    else:
+        v = getattr(obj, name, None)
+    if v is None:
+        return None
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return None
+    return None if math.isnan(v) else v
+
+
+def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
+                 options: AssessOptions | None = None, extremes: dict | None = None,
+                 pitch_mm: float | None = None, rate_short_available: bool = True) -> pd.DataFrame:
+    """Assess every zone: code formula, co-located and extreme-value lives, recommendation.
+
+    Parameters
+    ----------
+    thickness : remaining thickness on the new scan's grid, NaN = not scanned. [mm]
+    side : int8 side layer (0 unknown, 1 top, 2 under) on the grid, or None (all unknown).
+    rate_top : governing top-side rate map, or None when no rates are known. [mm/y]
+    rate_under : governing underside rate map, or None when no rates are known. [mm/y]
+    zones : :class:`~scananalyse.zones.ZoneMap` on the same grid.
+    meta : :class:`~scananalyse.scan.ScanMeta` of the new scan (nominal, method,
+        threshold, installed, inspected).
+    rules : :class:`~scananalyse.rules.RuleSet`.
+    options : :class:`AssessOptions` (defaults if None).
+    extremes : ``{zone name: object}`` with attributes (or keys) ``depth_eva_mm``,
+        ``depth_eva_upper_mm`` [mm] and optionally ``rate_eva_mm_y`` [mm/y]; a zone
+        missing here gets ``life_eva_y`` NaN and the flag ``no-eva``.
+    pitch_mm : grid pitch, checked against the zone map if given. [mm]
+    rate_short_available : False for a single inspection (long-term rates only):
+        every zone gets ``no-short-term-rates``.
+
+    Returns
+    -------
+    DataFrame, one row per zone: the :data:`ZONE_COLUMNS` first, then ``kind``,
+    ``n_scanned``, ``rtbc_mm``, ``rtip_mm``, ``t_used_upr_mm``, ``stpr_mm_y``,
+    ``upr_mm_y``, ``rate_eva_mm_y``, ``rate_eva_source``, ``life_eva_y``,
+    ``initial_interval_y``, ``cap_y``, ``notes``.
+
+    Notes
+    -----
+    - RTbc is the thinnest cell attributed to the underside (side 2, and side 0 when
+      ``options.unknown_side == "under"``), RTip the thinnest top-side cell; t0 where a
+      zone has none.  The code formula (:func:`code_interval`) runs on these reported
+      thicknesses with age-based rates, uncapped; NaN with flag ``no-age`` if the scan
+      has no ``installed`` date.
+    - ``life_local_y`` is the least of :func:`local_life_map` over the zone.
+    - ``life_eva_y`` = (t0 − d − MRT)/rate_eva (:func:`eva_life`), d the extremes'
+      ``depth_pred_upper_mm`` (predictive bound) when given, else ``depth_eva_upper_mm``
+      (the value used is the column ``depth_eva_life_mm``);
+      rate_eva is the extremes' ``rate_eva_mm_y`` or, when that is missing, the
+      zone's ``rate_top_max_mm_y + rate_under_max_mm_y`` (``rate_eva_source`` says
+      which; flag ``eva-rate-assumed``).
+    - With no rate maps at all, the initial-interval rules apply
+      (:meth:`RuleSet.initial_interval_years`, flag ``initial-interval``).
+    - ``interval_recommended_y`` = the least of the code interval, life_local,
+      life_eva, the initial interval (when it applies) and the cap (20/30 y), NaN
+      bounds skipped, never below 0, rounded DOWN to ``interval_step_y``;
+      ``limiting`` names the bound that governs (first of :data:`BOUND_NAMES` on a
+      tie).  ``next_due`` = inspected + recommended (ISO date; empty when NaN).
+    - ``inf`` means no measurable loss rate (written ``inf`` in CSV).
+    - Flags (``;``-joined): ``no-data``, ``below-mrt``, ``critical-zone-below-min``,
+      ``code-exceeds-local``, ``code-exceeds-eva``, ``low-coverage``,
+      ``target-not-reached``, ``no-short-term-rates``, ``no-age``, ``no-eva``,
+      ``eva-rate-assumed``, ``eva-below-mrt``, ``initial-interval``,
+      ``no-mfl-threshold``.
+    """
+    options = options if options is not None else AssessOptions()
+    t = np.asarray(thickness, dtype=np.float32)
+    if t.shape != zones.shape:
+        raise ValueError(f"thickness shape {t.shape} differs from the zone grid {zones.shape}")
+    if pitch_mm is not None and abs(float(pitch_mm) - zones.pitch) > 1e-6 * zones.pitch:
+        raise InputError(f"assessment: field 'pitch_mm': {pitch_mm!r} differs from the zone "
+                         f"grid pitch {zones.pitch:g} mm")
+    t0 = _num(meta.nominal, "nominal", positive=True)
+    if side is None:
+        side = np.zeros(t.shape, dtype=np.int8)
+    side = np.asarray(side)
+    if side.shape != t.shape:
+        raise ValueError(f"side shape {side.shape} differs from the thickness {t.shape}")
+    has_rates = not (rate_top is None and rate_under is None)
+    if has_rates:
+        rt = np.zeros(t.shape, np.float32) if rate_top is None else np.asarray(rate_top, np.float32)
+        ru = np.zeros(t.shape, np.float32) if rate_under is None else np.asarray(rate_under, np.float32)
+        for nm, a in (("rate_top", rt), ("rate_under", ru)):
+            if a.shape != t.shape:
+                raise ValueError(f"{nm} shape {a.shape} differs from the thickness {t.shape}")
+
+    age = meta.age_years
+    if age is not None and not age > 0:
+        raise InputError(f"scan metadata: field 'installed': {meta.installed} is not before "
+                         f"the inspection date {meta.inspected}")
+    method = meta.method or ""
+    is_mfl = method.strip().upper() == "MFL"
+
+    # --- per-zone reductions on the grid -------------------------------
+    unk_under = options.unknown_side == "under"
+    under_cells = (side == SIDE_UNDER) | ((side == SIDE_UNKNOWN) & unk_under)
+    top_cells = (side == SIDE_TOP) | ((side == SIDE_UNKNOWN) & (not unk_under))
+    nanf = np.float32(np.nan)
+    scanned = ~np.isnan(t)
+    n_scanned = zones.count(scanned)
+    coverage = zones.coverage_pct(scanned)
+    t_min = zones.reduce(t, np.min)
+    rtbc_z = zones.reduce(np.where(under_cells, t, nanf), np.min)
+    rtip_z = zones.reduce(np.where(top_cells, t, nanf), np.min)
+    mrt_z = zone_mrt(zones, rules, options, t0=t0)
+    if has_rates:
+        life_map = local_life_map(t, rt, ru, mrt_map(zones, rules, options, t0=t0))
+        life_z = zones.reduce(life_map, np.min)
+        rtop_z = zones.reduce(np.where(scanned, rt, nanf), np.max)
+        rund_z = zones.reduce(np.where(scanned, ru, nanf), np.max)
+    else:
+        life_z = rtop_z = rund_z = np.full(len(zones.names), np.nan)
+    cap = rules.interval_cap_years(options.release_prevention_barrier)
+    initial = rules.initial_interval_years(
+        frp_lining=options.reinforced_lining,
+        thin_film_coating=options.coated and not options.reinforced_lining,
+        cp_effective=options.cp_effective,
+        release_prevention_barrier=options.release_prevention_barrier,
+        corrosion_allowance_mm=options.corrosion_allowance_mm)
+    extremes = extremes or {}
+    cz_min = rules.critical_zone_min_mm(t0, options.shell_tmin_mm)
+    min_cov = rules.v("min_coverage_pct")
+    target = options.target_interval_years
+
+    rows = []
+    for k, name in enumerate(zones.names):
+        flags: list[str] = []
+        notes: list[str] = []
+        mrt = float(mrt_z[k])
+        row = {"zone": name, "kind": zones.kinds[k], "area_m2": zones.areas_mm2[k] / 1e6,
+               "coverage_pct": float(coverage[k]) if n_scanned[k] else 0.0,
+               "n_scanned": int(n_scanned[k]), "mrt_mm": mrt, "cap_y": cap,
+               "initial_interval_y": initial if not has_rates else math.nan}
+        nan_cols = ["t_min_mm", "depth_max_mm", "depth_eva_mm", "depth_eva_upper_mm",
+                    "rate_top_max_mm_y", "rate_under_max_mm_y", "interval_code_y",
+                    "life_local_y", "interval_recommended_y", "rtbc_mm", "rtip_mm",
+                    "t_used_upr_mm", "stpr_mm_y", "upr_mm_y", "rate_eva_mm_y", "life_eva_y"]
+        if n_scanned[k] == 0:
+            row.update({c: math.nan for c in nan_cols})
+            row.update({"next_due": "", "limiting": "", "rate_eva_source": "",
+                        "flags": "no-data", "notes": "zone not scanned"})
+            rows.append(row)
+            continue
+
+        tmin = float(t_min[k])
+        rtbc = float(rtbc_z[k]) if not math.isnan(rtbc_z[k]) else t0
+        rtip = float(rtip_z[k]) if not math.isnan(rtip_z[k]) else t0
+        row.update({"t_min_mm": tmin, "depth_max_mm": max(t0 - tmin, 0.0),
+                    "rtbc_mm": rtbc, "rtip_mm": rtip,
+                    "rate_top_max_mm_y": float(rtop_z[k]), "rate_under_max_mm_y": float(rund_z[k]),
+                    "life_local_y": float(life_z[k])})
+
+        # code formula
+        if age is None:
+            code = math.nan
+            row.update({"t_used_upr_mm": math.nan, "stpr_mm_y": math.nan, "upr_mm_y": math.nan})
+            flags.append("no-age")
+        else:
+            cr = code_interval(t0=t0, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=age,
+                               method=method, threshold=meta.threshold,
+                               coated=options.coated or options.reinforced_lining,
+                               coating_life_years=options.coating_life_years,
+                               cp_effective=options.cp_effective)
+            code = cr.interval_y
+            row.update({"t_used_upr_mm": cr.t_used_upr, "stpr_mm_y": cr.stpr, "upr_mm_y": cr.upr})
+            notes.extend(cr.notes)
+            if is_mfl and meta.threshold is None:
+                flags.append("no-mfl-threshold")
+        row["interval_code_y"] = code
+
+        # extreme-value life
+        ex = extremes.get(name)
+        d_eva = _attr(ex, "depth_eva_mm")
+        d_up = _attr(ex, "depth_eva_upper_mm")
+        if d_up is None:
+            d_up = d_eva
+        r_eva = _attr(ex, "rate_eva_mm_y")
+        # The life uses the predictive upper bound of the deepest loss over the zone when the
+        # extremes give one (parameter uncertainty and the spread of the maximum itself), else
+        # the upper bound of the return level.  The return level's own bound lies below the
+        # true deepest pit in about a third of synthetic seeds (docs/extremes.md).
+        d_pred = _attr(ex, "depth_pred_upper_mm")
+        d_life = d_pred if (d_pred is not None and not math.isnan(d_pred)) else d_up
+        if ex is None or d_up is None:
+            life_eva = math.nan
+            r_src = ""
+            flags.append("no-eva")
+        else:
+            r_src = "extremes"
+            if r_eva is None:
+                r_eva = float(np.nansum([rtop_z[k], rund_z[k]])) if has_rates else math.nan
+                r_src = "zone-max-sum"
+                flags.append("eva-rate-assumed")
+            life_eva = eva_life(t0=t0, depth_upper=d_life, mrt=mrt, rate=r_eva)
+            if t0 - d_life < mrt:
+                flags.append("eva-below-mrt")
+        row.update({"depth_eva_mm": d_eva if d_eva is not None else math.nan,
+                    "depth_eva_upper_mm": d_up if d_up is not None else math.nan,
+                    "rate_eva_mm_y": r_eva if r_eva is not None else math.nan,
+                    "depth_eva_life_mm": d_life if d_life is not None else math.nan,
+                    "rate_eva_source": r_src, "life_eva_y": life_eva})
+
+        # recommendation
+        bounds = {"code": code, "local": row["life_local_y"], "eva": life_eva,
+                  "initial": initial if not has_rates else math.nan, "cap": cap}
+        valid = {b: v for b, v in bounds.items() if not math.isnan(v)}
+        best = min(valid.values())
+        limiting = next(b for b in BOUND_NAMES if b in valid and valid[b] == best)
+        rec = rules.round_interval(max(best, 0.0))
+        row.update({"interval_recommended_y": rec, "limiting": limiting,
+                    "next_due": add_years(meta.inspected, rec).isoformat()})
+
+        # flags
+        if tmin < mrt:
+            flags.append("below-mrt")
+        if zones.kinds[k] == "critical" and tmin < cz_min:
+            flags.append("critical-zone-below-min")
+        if not math.isnan(code) and not math.isnan(row["life_local_y"]) and code > row["life_local_y"]:
+            flags.append("code-exceeds-local")
+        if not math.isnan(code) and not math.isnan(life_eva) and code > life_eva:
+            flags.append("code-exceeds-eva")
+        if row["coverage_pct"] < min_cov:
+            flags.append("low-coverage")
+        if target is not None and rec < target:
+            flags.append("target-not-reached")
+        if not rate_short_available:
+            flags.append("no-short-term-rates")
+        if not has_rates:
+            flags.append("initial-interval")
+        row["flags"] = ";".join(flags)
+        row["notes"] = "; ".join(notes)
+        rows.append(row)
+
+    df = pd.DataFrame(rows)
+    extra = [c for c in df.columns if c not in ZONE_COLUMNS]
+    return df[ZONE_COLUMNS + extra]

@@ -1,0 +1,67 @@
+"""Reading and writing the neutral floor-scan formats (CSV v1 and HDF5 v1).
+
+``read_scan(path)`` and ``write_scan(scan, path)`` pick the format from the
+file extension: ``.csv`` / ``.txt`` for CSV, ``.h5`` / ``.hdf5`` for HDF5.
+See docs/formats.md for both layouts and the validation rules.
+"""
+
+from __future__ import annotations
+
+import os
+
+from ..errors import InputError, where
+from ..scan import FloorScan
+from .csvscan import read_csv_scan, write_csv_scan
+from .h5scan import read_h5_scan, write_h5_scan
+
+__all__ = ["read_scan", "write_scan", "read_csv_scan", "write_csv_scan", "read_h5_scan",
+           "write_h5_scan", "CSV_EXTENSIONS", "H5_EXTENSIONS"]
+
+#: File extensions read and written as floor-scan CSV v1.
+CSV_EXTENSIONS = (".csv", ".txt")
+#: File extensions read and written as floor-scan HDF5 v1.
+H5_EXTENSIONS = (".h5", ".hdf5")
+
+
+def _kind(path) -> str:
+    ext = os.path.splitext(os.fspath(path))[1].lower()
+    if ext in CSV_EXTENSIONS:
+        return "csv"
+    if ext in H5_EXTENSIONS:
+        return "h5"
+    raise InputError(f"{where(path)}: unknown file type {ext or '(no extension)'!r} "
+                     "(use .csv or .txt for CSV, .h5 or .hdf5 for HDF5)")
+
+
+def read_scan(path) -> FloorScan:
+    """Read a floor scan, choosing the format by extension.
+
+    Parameters
+    ----------
+    path : ``.csv``/``.txt`` (floor-scan CSV v1) or ``.h5``/``.hdf5`` (floor-scan HDF5 v1).
+
+    Returns
+    -------
+    FloorScan
+        Lengths in mm whatever the file's unit; ``meta.units`` keeps the file's unit.
+
+    Raises
+    ------
+    InputError
+        Unknown extension or an invalid file (one line naming the file and line or field).
+    """
+    return read_csv_scan(path) if _kind(path) == "csv" else read_h5_scan(path)
+
+
+def write_scan(scan: FloorScan, path) -> None:
+    """Write a floor scan in ``scan.meta.units``, choosing the format by extension.
+
+    Parameters
+    ----------
+    scan : the scan to write.
+    path : ``.csv``/``.txt`` or ``.h5``/``.hdf5``; written to a temporary file and renamed into place.
+    """
+    if _kind(path) == "csv":
+        write_csv_scan(scan, path)
+    else:
+        write_h5_scan(scan, path)

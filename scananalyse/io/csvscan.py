@@ -1,0 +1,564 @@
+"""Floor-scan CSV, version 1: read and write (design contract 3.1, docs/formats.md).
+
+Reading is vectorised: the ``# key: value`` header lines are parsed here, the
+table by pandas' C reader with explicit dtypes, and the rows are put on the
+grid with array operations.  Only when the table is bad does the reader go
+back over the file line by line, to name the offending line.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+import os
+import re
+import warnings
+
+import numpy as np
+import pandas as pd
+
+from ..errors import InputError, ScanWarning, where
+from ..scan import PLATE_NONE, SIDE_NAMES, FloorScan
+from . import validate as v
+
+__all__ = ["read_csv_scan", "write_csv_scan", "COLUMNS_REQUIRED", "COLUMNS_OPTIONAL"]
+
+#: Columns every table must have.
+COLUMNS_REQUIRED = ("x", "y", "thickness")
+#: Optional columns: ``side`` (top, under, unknown or empty) and ``plate`` (integer id, empty = none).
+COLUMNS_OPTIONAL = ("side", "plate")
+
+#: Longest header line read before the file is taken as not a scan CSV. [bytes]
+_MAX_HEADER_LINE = 65536
+#: Most header lines read before the file is taken as not a scan CSV.
+_MAX_HEADER_LINES = 10000
+_NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
+_INF = {"inf", "+inf", "-inf", "infinity", "+infinity", "-infinity"}
+_NUMERIC_COLUMNS = ("x", "y", "thickness", "plate")
+
+
+class _Header:
+    """What the reader learnt from the lines above the table."""
+
+    def __init__(self):
+        self.fields: dict[str, tuple[str, int]] = {}
+        self.table_line: int | None = None  # 1-based line of the column header row
+        self.columns: list[str] = []
+        self.table_offset: int = 0  # byte offset just after the column header row
+
+
+# --------------------------------------------------------------------------- reading
+def _read_header(path: str) -> _Header:
+    """Parse ``# key: value`` lines and the column header row (bytes, strict UTF-8)."""
+    hdr = _Header()
+    with open(path, "rb") as fh:
+        head = fh.read(8192)
+        if head.startswith(b"\x89HDF"):
+            raise InputError(f"{where(path, 1)}: this is an HDF5 file, not a floor-scan CSV "
+                             "(give it a .h5 name)")
+        if b"\x00" in head:
+            raise InputError(f"{where(path, 1)}: binary data, not a floor-scan CSV text file")
+        fh.seek(0)
+        lineno = 0
+        while True:
+            raw = fh.readline(_MAX_HEADER_LINE + 1)
+            if not raw:
+                break
+            lineno += 1
+            if len(raw) > _MAX_HEADER_LINE:
+                raise InputError(f"{where(path, lineno)}: line longer than {_MAX_HEADER_LINE} bytes "
+                                 "above the table; not a floor-scan CSV")
+            if lineno > _MAX_HEADER_LINES:
+                raise InputError(f"{where(path, lineno)}: no table header row in the first "
+                                 f"{_MAX_HEADER_LINES} lines")
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError:
+                raise InputError(f"{where(path, lineno)}: not UTF-8 text") from None
+            if lineno == 1 and text.startswith("\ufeff"):
+                text = text[1:]
+            text = text.strip()
+            if not text:
+                continue
+            if not text.startswith("#"):
+                hdr.table_line = lineno
+                hdr.table_offset = fh.tell()
+                hdr.columns = [c.strip().strip('"').strip().lower() for c in next(csv.reader([text]))]
+                break
+            body = text[1:]
+            if ":" not in body:
+                continue  # a free comment line
+            key, value = body.split(":", 1)
+            key = key.strip().lower()
+            if not key:
+                raise InputError(f"{where(path, lineno)}: header line has an empty key")
+            if key in hdr.fields:
+                raise InputError(f"{where(path, lineno, key)}: key repeated (first on line "
+                                 f"{hdr.fields[key][1]})")
+            if key == "version":
+                raise InputError(f"{where(path, lineno, key)}: reserved key; the version goes in "
+                                 "the 'format' line")
+            hdr.fields[key] = (value.strip(), lineno)
+    return hdr
+
+
+def _check_format(hdr: _Header, path: str) -> None:
+    if "format" not in hdr.fields:
+        raise InputError(f"{where(path, None, 'format')}: missing '# format: {v.FORMAT_NAME} "
+                         f"{v.FORMAT_VERSION}' line; not a floor-scan CSV")
+    value, line = hdr.fields["format"]
+    parts = value.split()
+    if not parts or parts[0] != v.FORMAT_NAME:
+        raise InputError(f"{where(path, line, 'format')}: {value!r} is not the floor-scan format "
+                         f"'{v.FORMAT_NAME}'")
+    if len(parts) != 2 or parts[1] != str(v.FORMAT_VERSION):
+        raise InputError(f"{where(path, line, 'format')}: unsupported version in {value!r} "
+                         f"(this reader knows version {v.FORMAT_VERSION})")
+
+
+def _grid_keys(hdr: _Header, path: str):
+    """The optional anchor/extent keys: (x0, y0, rows, cols) in file units, or None."""
+    present = [k for k in v.GRID_KEYS if k in hdr.fields]
+    if not present:
+        return None
+    missing = [k for k in v.GRID_KEYS if k not in hdr.fields]
+    if missing:
+        raise InputError(f"{where(path, hdr.fields[present[0]][1], missing[0])}: the grid keys "
+                         "x0, y0, rows, cols must be given together")
+    vals = {}
+    for key in ("x0", "y0"):
+        value, line = hdr.fields[key]
+        vals[key] = v.parse_number(value, path, line, key, sign="any")
+    for key in ("rows", "cols"):
+        value, line = hdr.fields[key]
+        n = v.parse_number(value, path, line, key)
+        if n != math.floor(n):
+            raise InputError(f"{where(path, line, key)}: must be a whole number, got {value!r}")
+        vals[key] = int(n)
+    v.check_grid_size(vals["rows"], vals["cols"], path, hdr.fields["rows"][1], "rows")
+    return vals["x0"], vals["y0"], vals["rows"], vals["cols"]
+
+
+def _is_number(tok: str) -> bool:
+    """True for the numbers pandas' float parser accepts (decimal, exponent, inf). Error path only."""
+    try:
+        value = float(tok)  # fast C check first; it also accepts 'nan' and '1_0', refused below
+    except ValueError:
+        return False
+    if value == value and "_" not in tok:
+        return bool(_NUMBER.match(tok)) if not math.isinf(value) else (
+            tok.lower() in _INF or bool(_NUMBER.match(tok)))
+    return False
+
+
+def _split(text: str) -> list[str]:
+    """Fields of one table line (the csv module only when the line has quotes). Error path only."""
+    text = text.rstrip("\r\n")
+    if '"' in text:
+        return next(csv.reader([text]), [])
+    return text.split(",")
+
+
+def _data_lines(path: str, table_line: int, rows) -> dict[int, int]:
+    """File line numbers (1-based) of table rows (0-based, blank lines skipped). Error path only."""
+    wanted = sorted(set(int(r) for r in rows))
+    out: dict[int, int] = {}
+    if not wanted:
+        return out
+    k = -1
+    pos = 0
+    with open(path, "rb") as fh:
+        for lineno, raw in enumerate(fh, start=1):
+            if lineno <= table_line or not raw.strip():
+                continue
+            k += 1
+            if k == wanted[pos]:
+                out[k] = lineno
+                pos += 1
+                if pos == len(wanted):
+                    break
+    return out
+
+
+def _line_fields(path: str, lineno: int) -> list[str]:
+    """The comma-separated fields of one file line. Error path only."""
+    with open(path, "rb") as fh:
+        for n, raw in enumerate(fh, start=1):
+            if n == lineno:
+                return _split(raw.decode("utf-8", "replace"))
+    return []
+
+
+def _scan_table(path: str, hdr: _Header, parser_message: str) -> InputError:
+    """Go over the table line by line and describe the first structural problem. Error path only."""
+    ncol = len(hdr.columns)
+    numeric = [(i, c) for i, c in enumerate(hdr.columns) if c in _NUMERIC_COLUMNS]
+    with open(path, "rb") as fh:
+        for lineno, raw in enumerate(fh, start=1):
+            if lineno <= hdr.table_line or not raw.strip():
+                continue
+            if b"\x00" in raw:
+                return InputError(f"{where(path, lineno)}: binary data in the table")
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError:
+                return InputError(f"{where(path, lineno)}: not UTF-8 text")
+            fields = _split(text)
+            if len(fields) > ncol:
+                return InputError(f"{where(path, lineno)}: {len(fields)} fields, the header row has "
+                                  f"{ncol} ({', '.join(hdr.columns)})")
+            for i, name in numeric:
+                if i >= len(fields):
+                    continue  # short rows are reported after parsing
+                tok = fields[i].strip()
+                if tok and not _is_number(tok):
+                    return InputError(f"{where(path, lineno, name)}: {tok!r} is not a number")
+    return InputError(f"{where(path)}: table could not be read ({' '.join(parser_message.split())})")
+
+
+def _locate_non_numeric(path: str, hdr: _Header, parser_message: str) -> InputError:
+    """Re-read the table as text and name the first cell that is not a number. Error path only."""
+    numeric = [c for c in hdr.columns if c in _NUMERIC_COLUMNS]
+    try:
+        df = pd.read_csv(path, engine="c", skiprows=hdr.table_line, header=None, names=hdr.columns,
+                         usecols=numeric, dtype=str, keep_default_na=False, na_filter=False,
+                         encoding="utf-8", skip_blank_lines=True)
+    except (ValueError, UnicodeDecodeError, pd.errors.ParserError):
+        return _scan_table(path, hdr, parser_message)
+    found = []
+    for name in numeric:
+        text = df[name]
+        bad = (pd.to_numeric(text, errors="coerce").isna() & (text != "")).to_numpy()
+        for row in np.flatnonzero(bad)[:1000]:
+            if text.iloc[row].strip():  # whitespace-only cells read as missing, not as text
+                found.append((int(row), hdr.columns.index(name), name))
+                break
+    if not found:
+        return _scan_table(path, hdr, parser_message)
+    row, _, name = min(found)
+    line = _data_lines(path, hdr.table_line, [row])[row]
+    return InputError(f"{where(path, line, name)}: {df[name].iloc[row].strip()!r} is not a number")
+
+
+def _row_error(path, hdr, row: int, column: str, nominal_mm: float, factor: float) -> InputError:
+    """Explain why table row ``row`` has a missing or bad value in ``column``. Error path only."""
+    line = _data_lines(path, hdr.table_line, [row])[row]
+    fields = _line_fields(path, line)
+    if len(fields) < len(hdr.columns):
+        return InputError(f"{where(path, line)}: short row, {len(fields)} fields where the header row "
+                          f"has {len(hdr.columns)} ({', '.join(hdr.columns)})")
+    tok = fields[hdr.columns.index(column)].strip()
+    if not tok:
+        return InputError(f"{where(path, line, column)}: empty")
+    value = float(tok)
+    if column == "thickness":
+        problem = v.thickness_problem(value, nominal_mm, factor)
+        if problem:
+            return InputError(f"{where(path, line, column)}: {problem}")
+    return InputError(f"{where(path, line, column)}: {tok!r} is not finite")
+
+
+def _check_field_count(path, hdr: _Header, n_rows: int) -> None:
+    """Refuse rows with fewer fields than the header row (commas counted in blocks)."""
+    commas = 0
+    with open(path, "rb") as fh:
+        fh.seek(hdr.table_offset)
+        while True:
+            block = fh.read(1 << 24)
+            if not block:
+                break
+            commas += int(np.count_nonzero(np.frombuffer(block, dtype=np.uint8) == 44))
+    if commas == n_rows * (len(hdr.columns) - 1):
+        return
+    # Slow path: find the short row (quoted commas may explain the count instead).
+    with open(path, "rb") as fh:
+        for lineno, raw in enumerate(fh, start=1):
+            if lineno <= hdr.table_line or not raw.strip():
+                continue
+            fields = _split(raw.decode("utf-8", "replace"))
+            if len(fields) < len(hdr.columns):
+                raise InputError(f"{where(path, lineno)}: short row, {len(fields)} fields where the "
+                                 f"header row has {len(hdr.columns)} ({', '.join(hdr.columns)})")
+
+
+def _first_nonfinite(a: np.ndarray):
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = a.sum()  # one fast reduction; the mask only when something is wrong
+    if np.isfinite(total):
+        return None
+    bad = ~np.isfinite(a)
+    return int(np.argmax(bad)) if bad.any() else None
+
+
+def read_csv_scan(path) -> FloorScan:
+    """Read a floor-scan CSV v1 file into a :class:`FloorScan` (lengths in mm).
+
+    Parameters
+    ----------
+    path : the file; opened read-only and never modified.
+
+    Returns
+    -------
+    FloorScan
+        Thickness grid spanning the scanned cells (or the grid given by the
+        ``x0, y0, rows, cols`` keys), ``side``/``plate`` layers when the
+        columns are present, ``source`` set to ``path``.
+
+    Raises
+    ------
+    InputError
+        One line naming the file and the line or field, for any violation of
+        the format (docs/formats.md, "Validation").
+    """
+    path = os.fspath(path)
+    if not os.path.isfile(path):
+        raise InputError(f"{where(path)}: no such file")
+    hdr = _read_header(path)
+    _check_format(hdr, path)
+    meta, pitch_mm, factor = v.build_meta(hdr.fields, path)
+    pitch_u = v.parse_number(hdr.fields["pitch"][0], path, hdr.fields["pitch"][1], "pitch")
+    grid = _grid_keys(hdr, path)
+    if hdr.table_line is None:
+        raise InputError(f"{where(path)}: no table header row (x,y,thickness) after the header lines")
+    cols = hdr.columns
+    for name in COLUMNS_REQUIRED:
+        if name not in cols:
+            raise InputError(f"{where(path, hdr.table_line, name)}: required column missing "
+                             f"(header row: {','.join(cols)})")
+    seen = set()
+    for name in cols:
+        if name in seen:
+            raise InputError(f"{where(path, hdr.table_line, name)}: column repeated")
+        seen.add(name)
+    unknown = [c for c in cols if c not in COLUMNS_REQUIRED + COLUMNS_OPTIONAL]
+    if unknown:
+        warnings.warn(f"{where(path, hdr.table_line)}: columns ignored: {', '.join(unknown)}",
+                      ScanWarning, stacklevel=2)
+    dtype = {c: ("category" if c not in _NUMERIC_COLUMNS else np.float64) for c in cols}
+    try:
+        df = pd.read_csv(path, engine="c", skiprows=hdr.table_line, header=None, names=cols,
+                         dtype=dtype, keep_default_na=False,
+                         na_values={c: [""] for c in cols if c in _NUMERIC_COLUMNS},
+                         encoding="utf-8", skip_blank_lines=True)
+    except (UnicodeDecodeError, pd.errors.ParserError) as exc:
+        raise _scan_table(path, hdr, str(exc)) from None
+    except ValueError as exc:  # a cell that is not a number
+        raise _locate_non_numeric(path, hdr, str(exc)) from None
+    n = len(df)
+    if n == 0:
+        raise InputError(f"{where(path, hdr.table_line)}: the table has no data rows")
+
+    x = df["x"].to_numpy(np.float64)
+    y = df["y"].to_numpy(np.float64)
+    t = df["thickness"].to_numpy(np.float64)
+    # Missing or bad values: the earliest row wins, then the column order x, y, thickness.
+    candidates = [(r, c) for r, c in ((_first_nonfinite(x), "x"), (_first_nonfinite(y), "y"),
+                                      (v.first_bad_thickness(t, meta.nominal, factor, allow_nan=False),
+                                       "thickness")) if r is not None]
+    if candidates:
+        row, column = min(candidates, key=lambda rc: (rc[0], COLUMNS_REQUIRED.index(rc[1])))
+        raise _row_error(path, hdr, row, column, meta.nominal, factor)
+
+    if any(c not in COLUMNS_REQUIRED for c in cols):
+        # Rows short of trailing optional fields parse without a trace; count the commas.
+        _check_field_count(path, hdr, n)
+    side_codes = _side_codes(df, path, hdr) if "side" in cols else None
+    plate_ids = _plate_ids(df, path, hdr) if "plate" in cols else None
+    del df
+
+    # ---- put the rows on the grid (file units); in-place array passes only ----
+    if grid is None:
+        x0_u, y0_u = float(x.min()), float(y.min())
+    else:
+        x0_u, y0_u, nrows, ncols = grid
+    idx = {}
+    for name, coord, anchor in (("x", x, x0_u), ("y", y, y0_u)):
+        frac = coord - anchor
+        frac /= pitch_u
+        near = np.rint(frac)
+        frac -= near  # now the distance from the nearest node [cells]
+        if max(float(frac.max()), -float(frac.min())) > v.OFF_GRID_TOLERANCE:
+            row = int(np.argmax(np.abs(frac) > v.OFF_GRID_TOLERANCE))
+            line = _data_lines(path, hdr.table_line, [row])[row]
+            raise InputError(
+                f"{where(path, line, name)}: {float(coord[row])!r} is off the grid ({abs(frac[row]):.3f} "
+                f"of a cell from the nearest centre; pitch {pitch_u:g}, anchor {anchor:g})")
+        idx[name] = near
+        del frac
+    jf, iff = idx.pop("x"), idx.pop("y")
+    if grid is None:
+        nrows_f, ncols_f = float(iff.max()) + 1.0, float(jf.max()) + 1.0
+        v.check_grid_size(nrows_f, ncols_f, path, hdr.table_line, "x, y")
+        nrows, ncols = int(nrows_f), int(ncols_f)
+    elif (float(jf.min()) < 0 or float(jf.max()) >= ncols or float(iff.min()) < 0
+          or float(iff.max()) >= nrows):
+        outside = (jf < 0) | (jf >= ncols) | (iff < 0) | (iff >= nrows)
+        row = int(np.argmax(outside))
+        line = _data_lines(path, hdr.table_line, [row])[row]
+        raise InputError(f"{where(path, line)}: cell ({float(x[row])!r}, {float(y[row])!r}) lies outside the "
+                         f"grid given by x0, y0, rows, cols")
+    iff *= ncols  # exact: whole numbers far below 2**53
+    iff += jf
+    del jf
+    flat = iff.astype(np.int64)
+    del iff
+
+    cells = nrows * ncols
+    thickness = np.full(cells, np.nan, dtype=np.float32)
+    if factor == 1.0:
+        thickness[flat] = t
+    else:
+        thickness[flat] = t * factor
+    filled = int(np.count_nonzero(~np.isnan(thickness)))
+    if filled != n:
+        raise _duplicate_error(path, hdr, flat, x, y)
+    side = plate = None
+    if side_codes is not None:
+        side = np.zeros(cells, dtype=np.int8)
+        side[flat] = side_codes
+        side = side.reshape(nrows, ncols)
+    if plate_ids is not None:
+        plate = np.full(cells, PLATE_NONE, dtype=np.int32)
+        plate[flat] = plate_ids
+        plate = plate.reshape(nrows, ncols)
+    return FloorScan(thickness=thickness.reshape(nrows, ncols), x0=x0_u * factor, y0=y0_u * factor,
+                     pitch=pitch_mm, meta=meta, side=side, plate=plate, source=path)
+
+
+def _duplicate_error(path, hdr, flat, x, y) -> InputError:
+    """Name both lines of the first repeated cell (by the later line). Error path only."""
+    order = np.argsort(flat, kind="stable")
+    sf = flat[order]
+    dup = np.nonzero(sf[1:] == sf[:-1])[0]
+    second = order[dup + 1]
+    k = int(np.argmin(second))
+    a, b = int(order[dup[k]]), int(second[k])
+    lines = _data_lines(path, hdr.table_line, [a, b])
+    return InputError(f"{where(path, lines[b])}: duplicate cell ({float(x[b])!r}, {float(y[b])!r}), "
+                      f"already given on line {lines[a]}")
+
+
+def _side_codes(df, path, hdr) -> np.ndarray:
+    col = df["side"]
+    cats = [str(c).strip().lower() for c in col.cat.categories]
+    bad = [i for i, c in enumerate(cats) if c not in v.SIDE_LABELS]
+    codes = col.cat.codes.to_numpy()
+    if bad:
+        row = int(np.argmax(np.isin(codes, bad)))
+        line = _data_lines(path, hdr.table_line, [row])[row]
+        raise InputError(f"{where(path, line, 'side')}: {col.iloc[row]!r} is not a side "
+                         "(allowed: top, under, unknown or empty)")
+    lut = np.array([v.SIDE_LABELS[c] for c in cats] + [0], dtype=np.int8)
+    return lut[codes]  # code -1 (missing) picks the trailing 0 = unknown
+
+
+def _plate_ids(df, path, hdr) -> np.ndarray:
+    p = df["plate"].to_numpy(np.float64)
+    missing = np.isnan(p)
+    with np.errstate(invalid="ignore"):
+        bad = ~missing & ((p != np.floor(p)) | (p < PLATE_NONE) | (p > np.iinfo(np.int32).max))
+    if bad.any():
+        row = int(np.argmax(bad))
+        line = _data_lines(path, hdr.table_line, [row])[row]
+        raise InputError(f"{where(path, line, 'plate')}: {float(p[row])!r} is not a plate id "
+                         "(a whole number >= 0, or empty for none)")
+    return np.where(missing, PLATE_NONE, p).astype(np.int32)
+
+
+# --------------------------------------------------------------------------- writing
+def _coordinate_decimals(pitch_u: float) -> int:
+    """Decimals that keep coordinates within 1e-6 of a cell of the exact value."""
+    return int(min(15, max(0, math.ceil(-math.log10(pitch_u * 1e-6)))))
+
+
+def _short_values(t32: np.ndarray, factor: float) -> np.ndarray:
+    """Thickness in file units as float64 with the fewest significant digits that read back.
+
+    For each value the shortest decimal ``d`` (1 to 9 significant digits) with
+    ``float32(d * factor) == t32`` is chosen, so that an inch file converts back
+    to the identical float32 millimetre value; ``d`` is returned as the float64
+    nearest to it, whose shortest text is ``d``.
+    """
+    exact = t32.astype(np.float64) / factor
+    out = exact.copy()
+    todo = np.isfinite(exact) & (exact > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        expo = np.floor(np.log10(np.where(todo, exact, 1.0)))
+    for digits in range(1, 10):
+        k = digits - 1 - expo  # decimals to keep
+        pos = k >= 0
+        scale = 10.0 ** np.abs(k)
+        q = np.where(pos, np.rint(exact * scale) / scale, np.rint(exact / scale) * scale)
+        ok = todo & ((q * factor).astype(np.float32) == t32)
+        out[ok] = q[ok]
+        todo &= ~ok
+        if not todo.any():
+            break
+    return out
+
+
+def write_csv_scan(scan: FloorScan, path) -> None:
+    """Write ``scan`` as a floor-scan CSV v1 file in ``scan.meta.units``.
+
+    One row per scanned cell, row-major (increasing y, then x).  The grid keys
+    ``x0, y0, rows, cols`` are written so that unscanned border rows and
+    columns survive a round trip.  The file is written to a temporary file in
+    the target folder and renamed into place.
+
+    Parameters
+    ----------
+    scan : the scan.
+    path : output file.
+    """
+    meta = scan.meta
+    factor = v.UNIT_FACTORS[meta.units]
+    for key in meta.extra:
+        if key in v.KNOWN_KEYS or key in v.RESERVED_KEYS or ":" in key or not key.strip():
+            raise ValueError(f"extra metadata key {key!r} cannot be written")
+    lines = [f"# format: {v.FORMAT_NAME} {v.FORMAT_VERSION}"]
+    if meta.tank:
+        lines.append(f"# tank: {meta.tank}")
+    lines.append(f"# inspected: {meta.inspected.isoformat()}")
+    if meta.method:
+        lines.append(f"# method: {meta.method}")
+    lines.append(f"# units: {meta.units}")
+    lines.append(f"# pitch: {v.format_scalar(scan.pitch, factor)}")
+    lines.append(f"# nominal: {v.format_scalar(meta.nominal, factor)}")
+    if meta.threshold is not None:
+        lines.append(f"# threshold: {v.format_scalar(meta.threshold, factor)}")
+    if meta.sigma is not None:
+        lines.append(f"# sigma: {v.format_scalar(meta.sigma, factor)}")
+    if meta.installed is not None:
+        lines.append(f"# installed: {meta.installed.isoformat()}")
+    rows, cols = scan.shape
+    lines.append(f"# x0: {v.format_scalar(scan.x0, factor)}")
+    lines.append(f"# y0: {v.format_scalar(scan.y0, factor)}")
+    lines.append(f"# rows: {rows}")
+    lines.append(f"# cols: {cols}")
+    for key, value in meta.extra.items():
+        text = " ".join(str(value).split())
+        lines.append(f"# {key}: {text}")
+
+    mask = scan.scanned
+    ii, jj = np.nonzero(mask)
+    pitch_u = v.unit_scalar(scan.pitch, factor)
+    x0_u = v.unit_scalar(scan.x0, factor)
+    y0_u = v.unit_scalar(scan.y0, factor)
+    dec = _coordinate_decimals(pitch_u)
+    data = {"x": np.round(x0_u + jj * pitch_u, dec), "y": np.round(y0_u + ii * pitch_u, dec)}
+    t32 = scan.thickness[mask]
+    data["thickness"] = t32 if factor == 1.0 else _short_values(t32, factor)
+    if scan.side is not None:
+        codes = scan.side[mask]
+        if codes.size and (codes.min() < 0 or codes.max() > 2):
+            raise ValueError("side layer holds codes other than 0, 1, 2")
+        data["side"] = pd.Categorical.from_codes(codes.astype(np.int64),
+                                                 categories=[SIDE_NAMES[k] for k in range(3)])
+    if scan.plate is not None:
+        ids = scan.plate[mask]
+        data["plate"] = pd.arrays.IntegerArray(ids.astype(np.int32), ids == PLATE_NONE)
+    df = pd.DataFrame(data)
+    with v.atomic_output(path) as tmp:
+        with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+            fh.write("\n".join(lines) + "\n")
+            df.to_csv(fh, index=False, lineterminator="\n")

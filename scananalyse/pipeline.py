@@ -1,0 +1,686 @@
+"""The stages strung together: ``compare`` (two inspections) and ``assess_single`` (one).
+
+Each stage is a pure function of another module; this module only calls them in
+order (:func:`analyse`), then writes the outputs (:func:`write_outputs`) into a
+folder that appears only when complete.  A notebook user can call
+:func:`analyse` alone and look at the :class:`Analysis` it returns.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import os
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import CAUTION, __version__
+from .errors import InputError, ScanWarning
+from .job import Job
+from .progress import Progress
+from .scan import MM_PER_IN, FloorScan, to_display
+
+__all__ = ["Analysis", "CompareResult", "analyse", "write_outputs", "compare", "assess_single",
+           "register_files", "run_demo", "sample_dir"]
+
+STAGES_PAIR = ["load", "registration", "attribution", "rates", "zones", "extremes", "assessment",
+               "indications", "repairs", "outputs", "report"]
+STAGES_SINGLE = [s for s in STAGES_PAIR if s != "registration"]
+
+
+@dataclass
+class Analysis:
+    """Everything computed for one floor, in memory (maps on the newer scan's grid)."""
+
+    job: Job
+    new: FloorScan
+    old: FloorScan | None
+    registration: object | None
+    old_on_new: FloorScan | None
+    side_raw: np.ndarray
+    side: np.ndarray
+    rates: object
+    zones: object
+    rules: object
+    options: object
+    extremes_depth: dict
+    extremes_rate: dict
+    zone_table: pd.DataFrame
+    life_map: np.ndarray
+    mrt_map: np.ndarray
+    indications: pd.DataFrame
+    gone: pd.DataFrame | None
+    needs_repair: np.ndarray
+    patches: pd.DataFrame
+    patch_checks: pd.DataFrame | None
+    uncovered_cells: int
+    zones_repaired: pd.DataFrame
+    repaired_maps: dict
+    repair_to_table: pd.DataFrame | None
+    attribution: dict
+    assumptions: list
+    notes: list = field(default_factory=list)
+    timings: dict = field(default_factory=dict)
+
+    @property
+    def single(self) -> bool:
+        return self.old is None
+
+
+@dataclass
+class CompareResult:
+    """What ``compare``/``assess`` wrote, for the console and for callers."""
+
+    out_dir: str
+    zones: pd.DataFrame
+    zones_repaired: pd.DataFrame
+    patches: pd.DataFrame
+    indications: pd.DataFrame
+    registration: dict | None
+    report_path: str
+    units: str
+    tank: str
+    single: bool
+    files: list
+
+    def console_summary(self) -> str:
+        u = self.units
+        lu = "in" if u == "in" else "mm"
+        lines = [f"scananalyse {__version__}: tank {self.tank or '-'}"
+                 + (" (one inspection: long-term rates only)" if self.single else "")]
+        if self.registration:
+            r = self.registration
+            lines.append(f"registration: rotation {r['rotation_deg']:.3f} deg, shift "
+                         f"({r['dx_mm']:.1f}, {r['dy_mm']:.1f}) mm, score {r['score'] or 0:.2f}, "
+                         f"overlap {r['overlap_pct'] or 0:.1f} %" + ("" if r["reliable"] else "  ** UNRELIABLE **"))
+        hdr = f"{'zone':<12}{'t_min':>8}{'code':>8}{'local':>8}{'eva':>8}{'recomm.':>9}  {'next due':<11}{'limiting':<12}flags"
+        lines.append(f"per zone (thickness {lu}, intervals in years):")
+        lines.append(hdr)
+        for _, z in self.zones.iterrows():
+            lines.append(
+                f"{str(z['zone']):<12}{_fmt(to_display(z['t_min_mm'], u)):>8}{_fmt(z['interval_code_y']):>8}"
+                f"{_fmt(z['life_local_y']):>8}{_fmt(z.get('life_eva_y', float('nan'))):>8}"
+                f"{_fmt(z['interval_recommended_y']):>9}  {str(z['next_due'] or '-'):<11}{str(z['limiting'] or '-'):<12}"
+                f"{z['flags'] or ''}")
+        if len(self.patches):
+            area = float(self.patches["area_m2"].sum())
+            lines.append(f"proposed patch plates: {len(self.patches)}, {area:.2f} m2 in all (patches.csv, patches.dxf)")
+        else:
+            lines.append("proposed patch plates: none needed for the target interval")
+        lines.append(f"indications: {len(self.indications)} (indications.csv)")
+        lines.append(f"report: {self.report_path}")
+        lines.append("CAUTION: " + CAUTION)
+        return "\n".join(lines)
+
+
+def _fmt(v, nd=1) -> str:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return "-"
+    if math.isnan(v):
+        return "-"
+    if math.isinf(v):
+        return "inf"
+    return f"{v:.{nd}f}"
+
+
+def _to_mm(value, scan: FloorScan):
+    if value is None:
+        return None
+    return float(value) * (MM_PER_IN if scan.meta.units == "in" else 1.0)
+
+
+# ------------------------------------------------------------------------------------
+# analysis
+# ------------------------------------------------------------------------------------
+def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
+            registration=None) -> Analysis:
+    """Run every computing stage on one floor (no files written).
+
+    Parameters
+    ----------
+    new : the newer (or only) inspection.
+    old : the older inspection, or None for a single-inspection assessment.
+    job : settings (diameter etc. in the scans' units).
+    progress : optional :class:`Progress`.
+    registration : optional precomputed :class:`~scananalyse.register.Registration`.
+    """
+    from . import assess, attribution, extremes, indications, rates, repair, zones
+    from .rules import get_ruleset
+
+    prog = progress or Progress(quiet=True)
+    assumptions: list[str] = []
+    notes: list[str] = []
+    if job.diameter is None:
+        raise InputError("--diameter: the tank's inside diameter is required")
+    rules = get_ruleset(job.ruleset, job.rule_overrides or None)
+
+    # --- registration ------------------------------------------------------------
+    reg = registration
+    old_on_new = None
+    if old is not None:
+        from .register import register, resample_onto
+
+        if abs(old.meta.nominal - new.meta.nominal) > 1e-6:
+            notes.append(f"the scans give different nominal thicknesses ({old.meta.nominal:.2f} and "
+                         f"{new.meta.nominal:.2f} mm); the newer one is used")
+        if old.meta.inspected >= new.meta.inspected:
+            src = new.source or "new scan"
+            raise InputError(f"{src}: field 'inspected': the newer scan ({new.meta.inspected}) must be "
+                             f"inspected after the older one ({old.meta.inspected})")
+        with prog.stage("registration"):
+            if reg is None:
+                reg = register(new, old, control_points=job.control_points)
+            old_on_new = resample_onto(old, new, reg.transform)
+        if not reg.reliable:
+            notes.append("registration is UNRELIABLE: " + "; ".join(reg.warnings))
+
+    # --- attribution ---------------------------------------------------------------
+    with prog.stage("attribution"):
+        shapes = attribution.read_shapes(job.shapes, scan=new) if job.shapes else None
+        side_raw = attribution.raw_side_map(new, shapes=shapes)
+        side = attribution.resolve_side(side_raw, job.default_side)
+        top_depth = None
+        if job.top_depth:
+            from .io import read_scan
+
+            top_depth = attribution.top_depth_map(read_scan(job.top_depth), new)
+        repairs = rates.read_repairs(job.repairs, scan=new) if job.repairs else None
+    assumptions.append(f"Unattributed loss is counted as {job.default_side}side loss"
+                       if job.default_side == "under" else "Unattributed loss is counted as top-side loss")
+
+    # --- rates ---------------------------------------------------------------------
+    with prog.stage("rates"):
+        ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
+        lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
+    att = attribution.attribution_summary(side_raw, lr.loss, top_depth=top_depth, default=job.default_side)
+    if old is not None:
+        assumptions.append(
+            f"Noise rule: a change smaller than k·sqrt(sigma_old² + sigma_new²) = {ropt.k_sigma:g} × "
+            f"sqrt({lr.sigma_old:.3f}² + {lr.sigma_new:.3f}²) = {lr.growth_sigma:.3f} mm is not growth; "
+            "thicker-than-before cells beyond it are reported as repaired or misaligned and excluded from rates.")
+    assumptions.append("Governing rate per cell and side: the greater of the short-term and long-term rates "
+                       "(from memory: API 570 practice)." if old is not None else
+                       "One inspection: long-term rates only (loss ÷ years in service).")
+    if new.meta.threshold:
+        assumptions.append(
+            f"Loss shallower than the detection threshold ({new.meta.threshold:.2f} mm) reads as nominal: it is "
+            "treated as unknown (censored), not zero; the extreme-value fits take such blocks as left-censored.")
+
+    # --- zones ---------------------------------------------------------------------
+    with prog.stage("zones"):
+        geom = zones.FloorGeometry(diameter_mm=_to_mm(job.diameter, new),
+                                   centre=(_to_mm(job.centre[0], new), _to_mm(job.centre[1], new)),
+                                   annular_width_mm=_to_mm(job.annular_width, new))
+        zmap = zones.zone_map(new, geom, rules)
+
+    # --- extremes ------------------------------------------------------------------
+    with prog.stage("extremes"):
+        ext_depth, ext_rate = _zone_extremes(new, lr, zmap, job, old is not None)
+
+    # --- assessment ----------------------------------------------------------------
+    options = assess.AssessOptions(
+        leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
+        coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
+        release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
+        target_interval_years=job.target_interval)
+    ext_for_assess = _merge_extremes(ext_depth, ext_rate)
+    with prog.stage("assessment"):
+        table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
+                                    rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
+                                    options=options, extremes=ext_for_assess, pitch_mm=new.pitch,
+                                    rate_short_available=old is not None)
+        table = _add_eva_columns(table, ext_depth)
+        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
+        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
+
+    # --- indications ---------------------------------------------------------------
+    with prog.stage("indications"):
+        ind, gone = _indications(new, old_on_new, lr, side, zmap, job)
+
+    # --- repairs -------------------------------------------------------------------
+    with prog.stage("repairs"):
+        rep = _repairs(new, lr, zmap, rules, options, ext_for_assess, mrt, job, old is not None)
+
+    return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
+                    side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
+                    extremes_rate=ext_rate, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
+                    gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
+                    **rep)
+
+
+def _zone_extremes(new, lr, zmap, job, have_short):
+    """Block-maxima statistics of loss depth and of the rate sum, per zone."""
+    from .extremes import zone_extremes
+
+    scanned = new.scanned
+    # Censored cells are valid cells whose value lies below the threshold: give them 0
+    # so blocks with no detected loss are left-censored at the threshold.
+    depth = np.where(scanned, np.nan_to_num(lr.loss, nan=0.0), np.nan).astype(np.float32)
+    if lr.censored is not None:
+        depth[lr.censored & scanned] = 0.0
+    rate_sum = (np.nan_to_num(lr.rate_top, nan=np.nan) + np.nan_to_num(lr.rate_under, nan=np.nan)).astype(np.float32)
+    thr = new.meta.threshold or None
+    ext_d, ext_r = {}, {}
+    for k, name in enumerate(zmap.names):
+        mask = zmap.labels == k
+        area = float(zmap.areas_mm2[k])
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ScanWarning)
+            ext_d[name] = _gumbel_or_gev(depth, mask, pitch_mm=new.pitch, zone_area_mm2=area,
+                                         block_mm=job.block_mm, threshold=thr, seed=job.seed, valid=scanned)
+            if np.isfinite(rate_sum[mask]).any():
+                ext_r[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=new.pitch, zone_area_mm2=area,
+                                             block_mm=job.block_mm, threshold=None, seed=job.seed,
+                                             valid=np.isfinite(rate_sum))
+    return ext_d, ext_r
+
+
+#: Significance level of the likelihood-ratio test of Gumbel against GEV (Coles 2001 §3.3).
+GEV_ALPHA = 0.05
+
+
+def _gumbel_or_gev(values, mask, **kw):
+    """Gumbel (the standard method for pit depths) unless the likelihood-ratio test rejects
+    it at :data:`GEV_ALPHA` in favour of a GEV, which is then used with profile-likelihood
+    bounds [Coles 2001, §3.3; Laycock 1990].  ``eva_method`` in zones.csv says which."""
+    from .extremes import zone_extremes
+
+    z = zone_extremes(values, mask, **kw)
+    if z and z.lr_test is not None and z.lr_test.p_value < GEV_ALPHA:
+        g = zone_extremes(values, mask, method="gev", bound_method="profile", **kw)
+        if g:
+            return g
+    return z
+
+
+def _add_eva_columns(table: pd.DataFrame, ext_depth: dict) -> pd.DataFrame:
+    """Append the extreme-value fit's particulars (method, T, blocks, GEV test) per zone."""
+    cols = ["depth_pred_upper_mm", "eva_method", "eva_T", "eva_block_mm", "eva_n_blocks", "eva_n_censored",
+            "eva_gev_p", "eva_reason"]
+    rows = [{c: ext_depth[z].row().get(c) if z in ext_depth else None for c in cols} for z in table["zone"]]
+    return pd.concat([table.reset_index(drop=True), pd.DataFrame(rows, columns=cols)], axis=1)
+
+
+def _merge_extremes(ext_depth, ext_rate) -> dict:
+    out = {}
+    for name, d in ext_depth.items():
+        if not d:
+            continue
+        r = ext_rate.get(name)
+        out[name] = {"depth_eva_mm": d.depth_eva_mm, "depth_eva_upper_mm": d.depth_eva_upper_mm,
+                     "depth_pred_upper_mm": d.depth_pred_upper_mm,
+                     "rate_eva_mm_y": (r.depth_eva_mm if r else None)}
+    return out
+
+
+def _reporting_depth(new: FloorScan) -> float:
+    """Indications are regions of loss at or above the detection threshold, or 10 % of
+    nominal when the scan has no threshold (common practice, no source)."""
+    thr = new.meta.threshold
+    return float(thr) if thr else 0.1 * new.meta.nominal
+
+
+def _indications(new, old_on_new, lr, side, zmap, job):
+    from . import indications as ind_mod
+
+    depth = _reporting_depth(new)
+    rate = np.fmax(lr.rate_top, lr.rate_under)
+    ind, labels = ind_mod.find_indications(lr.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
+                                           reporting_depth_mm=depth, side=side, plate=new.plate,
+                                           zone_labels=zmap.labels, zone_names=zmap.names, rate=rate,
+                                           thickness=new.thickness, return_labels=True)
+    gone = None
+    if old_on_new is not None:
+        from .rates import loss_map
+
+        old_loss = loss_map(old_on_new.thickness, new.meta.nominal)
+        old_ind, old_labels = ind_mod.find_indications(old_loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
+                                                       reporting_depth_mm=depth, zone_labels=zmap.labels,
+                                                       zone_names=zmap.names, thickness=old_on_new.thickness,
+                                                       return_labels=True)
+        ind = ind_mod.match_indications(ind, old_ind, labels, old_labels, growth_sigma_mm=lr.growth_sigma,
+                                        dt_years=lr.dt_years)
+        gone = ind_mod.gone_indications(old_ind, ind)
+    return ind, gone
+
+
+def _repairs(new, lr, zmap, rules, options, ext, mrt, job, have_old) -> dict:
+    """Patch planning for the target interval, or the engineer's patches, then re-assessment."""
+    from . import assess, repair
+
+    critical = zmap.labels == zmap.index("critical") if "critical" in zmap.names else None
+    needs = repair.cells_needing_repair(new.thickness, lr.rate_top, lr.rate_under, mrt_mm=mrt,
+                                        target_years=job.target_interval, repair_to_mm=job.repair_to_mm)
+    checks = None
+    if job.patches:
+        patches = repair.read_patches(job.patches)
+    else:
+        patches = repair.plan_patches(needs, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules, plate=new.plate,
+                                      critical_mask=critical, zone_labels=zmap.labels, zone_names=zmap.names,
+                                      patch_thickness_mm=job.patch_thickness_mm)
+    checks = repair.check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
+                                      plate=new.plate, critical_mask=critical, needs=needs)
+    uncovered = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
+    n_uncovered = int(uncovered[0] if isinstance(uncovered, tuple) else np.count_nonzero(uncovered))
+    t_rep, rt_rep, ru_rep, covered = repair.apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
+                                                          x0=new.x0, y0=new.y0, pitch=new.pitch,
+                                                          patch_thickness_mm=job.patch_thickness_mm)
+    side_rep = None
+    zones_rep = assess.assess_zones(thickness=t_rep, side=None if side_rep is None else side_rep, rate_top=rt_rep,
+                                    rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
+                                    extremes=ext, pitch_mm=new.pitch, rate_short_available=have_old)
+    return {"needs_repair": needs, "patches": patches, "patch_checks": checks, "uncovered_cells": n_uncovered,
+            "zones_repaired": zones_rep,
+            "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep,
+                              "rate_under_repaired": ru_rep, "patched": covered},
+            "repair_to_table": None}
+
+
+# ------------------------------------------------------------------------------------
+# outputs
+# ------------------------------------------------------------------------------------
+FLAGS_EXPLAINED = {
+    "below-mrt": "The zone's thinnest reported cell is already below its MRT: repair before return to service.",
+    "critical-zone-below-min": "The critical zone (within the rule set's width of the shell) is below its minimum.",
+    "code-exceeds-local": "The code-formula interval is longer than the co-located projection from the measured "
+                          "rates at the same cells: the formula overstates what the metal supports here.",
+    "code-exceeds-eva": "The code-formula interval is longer than the extreme-value life, which allows for the "
+                        "deepest pit expected in the unscanned and below-threshold parts of the zone.",
+    "low-coverage": "Less of the zone was scanned than the rule set's minimum coverage; the extreme-value "
+                    "estimate carries more weight and more uncertainty.",
+    "target-not-reached": "The recommended interval is shorter than the target interval.",
+    "no-short-term-rates": "Only one inspection: rates are long-term (loss ÷ years in service); a pit that began "
+                           "late grows faster than that.",
+    "no-data": "No cell of the zone was scanned: nothing can be said from the scan.",
+    "no-eva": "No extreme-value estimate could be made for the zone (too few blocks).",
+    "eva-rate-assumed": "The extreme-value life uses the zone's fastest measured rates, not a fitted rate extreme.",
+    "initial-interval": "No corrosion rates are known: the initial-interval rules apply.",
+    "no-age": "The scan gives no installation date: age-based rates and the code formula cannot be computed.",
+    "critical-zone-special-repair": "A patch touches the critical zone: only special shapes or plate replacement "
+                                    "are allowed there.",
+}
+
+
+def _decimated_xy_extent(scan):
+    return scan.extent
+
+
+def _figures(an: Analysis, units: str) -> dict:
+    """Every report figure as (section, caption, Figure)."""
+    from .report import figures as F
+
+    new = an.new
+    lr = an.rates
+    ext = new.extent
+    diam = an.zones.geometry.diameter_mm
+    centre = an.zones.geometry.centre
+    mrt_levels = sorted({float(v) for v in np.unique(an.mrt_map[np.isfinite(an.mrt_map)])})
+    out = []
+    mrt_c = [(m, f"MRT {m:.2f} mm", "--") for m in mrt_levels[:2]]
+    if an.job.repair_to_mm:
+        mrt_c.append((an.job.repair_to_mm, f"repair-to {an.job.repair_to_mm:.2f} mm", ":"))
+    common = dict(extent=ext, units=units, diameter_mm=diam, centre=centre, plate=new.plate)
+    out.append(("maps", "Remaining thickness at the newer inspection, with MRT contours.",
+                F.floor_map(new.thickness, title="Remaining thickness now", label="remaining thickness",
+                            kind="thickness", contours=mrt_c, **common)))
+    out.append(("maps", "Top-side (product-side) loss.",
+                F.floor_map(lr.loss_top, title="Top-side loss", label="top-side loss", kind="loss", **common)))
+    out.append(("maps", "Underside (soil-side) loss, unattributed loss included by default.",
+                F.floor_map(lr.loss_under, title="Underside loss", label="underside loss", kind="loss", **common)))
+    if not an.single:
+        out.append(("maps", "Short-term top-side rate (change between the inspections ÷ years between them).",
+                    F.floor_map(lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
+                                kind="rate", **common)))
+        out.append(("maps", "Short-term underside rate.",
+                    F.floor_map(lr.rate_short_under, title="Short-term underside rate", label="underside rate",
+                                kind="rate", **common)))
+    else:
+        out.append(("maps", "Long-term governing rate (both sides summed), one inspection only.",
+                    F.floor_map(np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
+                                label="rate, both sides", kind="rate", **common)))
+    out.append(("maps", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
+                "contour at the target interval.",
+                F.floor_map(an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
+                            contours=[(an.job.target_interval, f"target {an.job.target_interval:g} y", "--")],
+                            **common)))
+    out.append(("maps", "Cells needing repair for the target interval and the proposed patch plates.",
+                F.floor_map(np.where(new.scanned, an.needs_repair.astype(np.float32) * new.thickness, np.nan)
+                            if False else new.thickness, title="Repairs: patch plates on the thickness map",
+                            label="remaining thickness", kind="thickness",
+                            patches=an.patches if len(an.patches) else None, indications=None, **common)))
+    if an.registration is not None and an.old_on_new is not None:
+        from .register import RigidTransform, resample_onto
+
+        feat_new = ~new.scanned | (np.nan_to_num(lr.loss) >= _reporting_depth(new))
+        raw = resample_onto(an.old, new, RigidTransform())
+        old_loss_raw = new.meta.nominal - raw.thickness
+        feat_before = ~np.isfinite(raw.thickness) | (np.nan_to_num(old_loss_raw) >= _reporting_depth(new))
+        old_loss = new.meta.nominal - an.old_on_new.thickness
+        feat_after = ~np.isfinite(an.old_on_new.thickness) | (np.nan_to_num(old_loss) >= _reporting_depth(new))
+        out.append(("registration", "Features of the two scans (unscanned seams and margins, loss above the "
+                    "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
+                    F.registration_overlay(feat_new, feat_before, feat_after, extent=ext)))
+    out.append(("methods", "Per zone: the code-formula interval, the co-located projection, the extreme-value "
+                "life, the cap and the recommendation.", F.method_comparison(an.zone_table)))
+    for name, z in an.extremes_depth.items():
+        if not z or z.plot is None:
+            continue
+        out.append((f"extremes:{name}", f"Gumbel probability plot of block-maximum loss, zone {name}.",
+                    F.probability_plot(z.plot, title=f"Block maxima, zone {name}", units=units)))
+        curve = _return_curve(z)
+        if curve is not None:
+            out.append((f"extremes:{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
+                        f"T = {z.T:.0f} blocks is marked.",
+                        F.return_level_plot(*curve, zone_T=z.T, units=units, title=f"Return level, zone {name}")))
+    return out
+
+
+def _return_curve(z):
+    from .extremes import return_level, return_level_bounds
+
+    if z.fit is None or z.blocks is None:
+        return None
+    T_max = max(10.0, 3 * z.T)
+    Ts = np.unique(np.geomspace(2.0, T_max, 7).round(2))
+    lvl = np.array([float(return_level(z.fit, T)) for T in Ts])
+    ups = []
+    mx = np.asarray(z.blocks.maxima, dtype=float)
+    cen = np.asarray(z.blocks.censored, dtype=bool)
+    for T in Ts:
+        try:
+            b = return_level_bounds(z.fit, mx, T, level=z.level, one_sided=True, n_boot=300, seed=0,
+                                    censored=cen if cen.any() else None, threshold=z.threshold if cen.any() else None)
+            ups.append(b.upper)
+        except Exception:  # bounds are a display aid here; the table's bound comes from zone_extremes
+            ups.append(np.nan)
+    return Ts, lvl, None, np.array(ups)
+
+
+def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
+    from .report.html import ReportData
+
+    def insp(label, s):
+        return {"label": label, "date": s.meta.inspected.isoformat(), "method": s.meta.method or "-",
+                "file": os.path.basename(s.source or "-"), "pitch_mm": s.pitch,
+                "coverage_pct": 100.0 * s.n_scanned / max(1, s.shape[0] * s.shape[1]),
+                "threshold_mm": s.meta.threshold, "sigma_mm": s.meta.sigma}
+
+    inspections = ([insp("older", an.old)] if an.old is not None else []) + [insp("newer" if an.old else "only", an.new)]
+    fig_dict: dict = {}
+    for sec, cap, png in figs:
+        fig_dict.setdefault(sec, []).append((cap, png))
+    ext = {}
+    for name, z in an.extremes_depth.items():
+        row = z.row()
+        r = an.extremes_rate.get(name)
+        if r:
+            row["rate_eva_mm_y"] = r.depth_eva_mm
+            row["rate_eva_upper_mm_y"] = r.depth_eva_upper_mm
+        ext[name] = row
+    lr = an.rates
+    att = an.attribution
+    assumptions = list(an.assumptions)
+    assumptions.append(f"Indications: connected regions (8-connected) of loss at or above "
+                       f"{_reporting_depth(an.new):.2f} mm (the detection threshold, or 10 % of nominal without one).")
+    assumptions.append(f"Extreme values: blocks of {an.job.block_mm:g} mm square, counted when at least half "
+                       "scanned; Gumbel maximum likelihood with left-censoring at the threshold; return period "
+                       "T = whole zone area ÷ block area; 90 % one-sided upper bound by seeded parametric bootstrap.")
+    assumptions.append("Extreme-value life = (nominal − upper bound of the deepest expected loss − MRT) ÷ "
+                       "the return level of the summed top + underside rate over the zone.")
+    assumptions.append("Repair planning: cells that would fall below MRT before the target interval at their own "
+                       "rates are grouped into patch plates; patched cells take the patch thickness and keep their "
+                       "measured rates (the cause of the underside corrosion is not assumed removed).")
+    assumptions.append("Maps are drawn from decimated grids on big floors (minimum thickness / maximum loss and "
+                       "rate per displayed pixel), so the worst value is never hidden; the tables use every cell.")
+    notes = list(an.notes)
+    if att:
+        notes.append("Attribution: " + ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in att.items()
+                                                 if isinstance(v, (int, float, str))))
+    if an.uncovered_cells:
+        notes.append(f"{an.uncovered_cells} cells needing repair for the target interval are not covered by any patch.")
+    return ReportData(
+        tank={"name": an.new.meta.tank, "diameter_mm": an.zones.geometry.diameter_mm},
+        inspections=inspections, zones=an.zone_table, zones_repaired=an.zones_repaired,
+        patches=an.patches, indications=an.indications, registration=registration_dict,
+        rules_table=an.rules.table(), assumptions=assumptions, figures=fig_dict, extremes=ext,
+        flags_explained=FLAGS_EXPLAINED, units=units, timings=dict(an.timings),
+        generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
+
+
+def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> list:
+    """Write every output file of an analysis into ``folder`` (which must exist)."""
+    from . import repair
+    from .indications import write_indications_csv
+    from .outputs import write_json, write_results_h5
+    from .report import figures as F
+    from .report.html import write_report
+
+    prog = progress or Progress(quiet=True)
+    folder = Path(folder)
+    units = an.job.units
+    files = []
+    with prog.stage("outputs"):
+        an.zone_table.to_csv(folder / "zones.csv", index=False)
+        an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
+        repair.write_patches_csv(an.patches, folder / "patches.csv")
+        repair.write_patches_dxf(an.patches, folder / "patches.dxf")
+        write_indications_csv(an.indications, folder / "indications.csv")
+        files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
+        reg_dict = None
+        if an.registration is not None:
+            reg_dict = an.registration.to_dict()
+            write_json(reg_dict, folder / "registration.json")
+            files.append("registration.json")
+        maps = dict(an.rates.maps())
+        maps.update({"thickness": an.new.thickness, "side_raw": an.side_raw, "side": an.side,
+                     "zone": an.zones.labels, "life_local": an.life_map, "mrt": an.mrt_map,
+                     "needs_repair": an.needs_repair})
+        if an.old_on_new is not None:
+            maps["thickness_old_on_new"] = an.old_on_new.thickness
+        maps.update(an.repaired_maps)
+        attrs = {"tank": an.new.meta.tank, "inspected_new": an.new.meta.inspected.isoformat(),
+                 "inspected_old": an.old.meta.inspected.isoformat() if an.old else "",
+                 "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__,
+                 "caution": CAUTION}
+        write_results_h5(folder / "results.h5", maps, x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
+                         attrs=attrs, timings=an.timings)
+        files.append("results.h5")
+    with prog.stage("report"):
+        figdir = folder / "figures"
+        figdir.mkdir(exist_ok=True)
+        figs = []
+        for i, (sec, cap, fig) in enumerate(_figures(an, units), start=1):
+            stem = f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in (sec + "_" + (fig.axes[0].get_title() if fig.axes else "fig")))[:60]
+            F.save_png(fig, figdir / f"{stem}.png")
+            figs.append((sec, cap, F.png_bytes(fig)))
+            files.append(f"figures/{stem}.png")
+        data = _report_data(an, units, reg_dict, figs)
+        write_report(data, folder / "report.html")
+        files.append("report.html")
+    return files
+
+
+# ------------------------------------------------------------------------------------
+# entry points
+# ------------------------------------------------------------------------------------
+def _load(path, prog):
+    from .io import read_scan
+
+    return read_scan(path)
+
+
+def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
+    from .outputs import output_folder
+
+    prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
+    with prog.stage("load"):
+        new = _load(new_path, prog)
+        old = None if single else _load(old_path, prog)
+    with output_folder(out_dir, force=force) as tmp:
+        an = analyse(new, old, job=job, progress=prog)
+        files = write_outputs(an, tmp, progress=prog)
+    prog.finish()
+    reg = an.registration.to_dict() if an.registration is not None else None
+    return CompareResult(out_dir=str(out_dir), zones=an.zone_table, zones_repaired=an.zones_repaired,
+                         patches=an.patches, indications=an.indications, registration=reg,
+                         report_path=str(Path(out_dir) / "report.html"), units=job.units,
+                         tank=an.new.meta.tank, single=single, files=files)
+
+
+def compare(old_path, new_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:
+    """The whole job on two inspections of one floor; writes the outputs into ``out_dir``."""
+    return _run(old_path, new_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=False)
+
+
+def assess_single(scan_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:
+    """The same assessment from one inspection (long-term rates from ``installed``)."""
+    return _run(None, scan_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=True)
+
+
+def register_files(old_path, new_path, *, out_dir, control_points=None, force=False, quiet=False) -> dict:
+    """Register two scan files and write ``out_dir/registration.json``."""
+    from .outputs import output_folder, write_json
+    from .register import register
+
+    prog = Progress(["load", "registration"], quiet=quiet)
+    with prog.stage("load"):
+        old = _load(old_path, prog)
+        new = _load(new_path, prog)
+    with output_folder(out_dir, force=force) as tmp:
+        with prog.stage("registration"):
+            reg = register(new, old, control_points=control_points)
+        d = reg.to_dict()
+        write_json(d, Path(tmp) / "registration.json")
+    prog.finish()
+    summary = (f"rotation {d['rotation_deg']:.3f} deg, shift ({d['dx_mm']:.1f}, {d['dy_mm']:.1f}) mm, "
+               f"score {d['score'] or 0:.2f}, overlap {d['overlap_pct'] or 0:.1f} %, "
+               f"residual RMS {d['residual_rms_mm'] or float('nan'):.3f} mm, method {d['method']}"
+               + ("" if d["reliable"] else " -- UNRELIABLE: " + "; ".join(d["warnings"]))
+               + f"\nwrote {Path(out_dir) / 'registration.json'}")
+    return {"registration": d, "summary": summary}
+
+
+def sample_dir() -> Path:
+    """Folder of the shipped sample scans (beside the package in a source checkout)."""
+    here = Path(__file__).resolve().parent
+    for cand in (here.parent / "sample_scans", here / "sample_scans"):
+        if cand.is_dir():
+            return cand
+    raise InputError("sample_scans: the sample scan folder was not found beside the package")
+
+
+DEMO = {"old": "FQ-214_2015-09-21.h5", "new": "FQ-214_2025-10-06.h5", "repairs": "FQ-214_repairs.csv",
+        "diameter": 8000.0}
+
+
+def run_demo(out_dir="demo_out", *, units=None, quiet=False) -> CompareResult:
+    """The whole job on the shipped sample scans (an invented tank, see sample_scans/README.md)."""
+    d = sample_dir()
+    job = Job(diameter=DEMO["diameter"], repairs=str(d / DEMO["repairs"]), units=units or "mm")
+    return compare(d / DEMO["old"], d / DEMO["new"], job=job, out_dir=out_dir, force=True, quiet=quiet)

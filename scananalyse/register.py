@@ -1,0 +1,1174 @@
+"""Rigid registration of two inspections of one floor, control points, resampling.
+
+Two outages' scans never share a grid: the datum is re-marked, the scanner runs
+other paths, the pitch and the coverage differ.  This module estimates the rigid
+transform that maps the *older* scan's floor coordinates onto the *newer* one's
+(design contract §3.3)::
+
+    [x', y'] = R(theta) . [x, y] + [dx, dy]      theta counter-clockwise, about the origin
+
+and resamples the older scan onto the newer grid for the later stages.
+
+Method (documented in ``docs/registration.md``):
+
+1. *Feature image* of each scan on its own grid: 1 where a cell inside the grid
+   was not scanned (weld seams, plate edges, the shell margin, obstructions show
+   as lines and areas of unscanned cells), ``clip(loss / (0.25 nominal), 0, 1)``
+   where it was (pits and patches).  A pyramid of 2x2 block means of it.
+2. *Coarse search* on a pyramid level of about 256+ cells across: for each
+   rotation of a sweep over the allowed range, the older level is resampled
+   (bilinear) onto the newer level's grid, padded by the largest allowed shift,
+   and a masked normalised cross-correlation over all shifts is computed with
+   FFTs (Padfield 2012); the best (angle, shift) wins, with parabolic sub-step
+   interpolation.
+3. *Refinement*, coarse to fine down to the newer scan's pitch: Gauss-Newton
+   (Lucas-Kanade, forward additive) over (theta, dx, dy) plus a gain and offset,
+   on the cells of the newer feature image with the strongest gradients,
+   Huber-weighted, with the older image sampled bilinearly.
+4. *Quality*: the masked NCC of the aligned feature images (score, 0-1), the
+   overlap of the scanned areas, the thickness RMS difference in the overlap,
+   the rotation contrast of the sweep and the Gauss-Newton standard errors;
+   a featureless floor is flagged with :class:`~scananalyse.errors.RegistrationWarning`
+   and the result falls back to the control points or the identity.
+
+References
+----------
+Padfield, D. (2012). Masked object registration in the Fourier domain.
+IEEE Transactions on Image Processing 21(5), 2706-2718.
+Lucas, B. D., Kanade, T. (1981). An iterative image registration technique with
+an application to stereo vision. Proc. IJCAI, 674-679.
+Umeyama, S. (1991). Least-squares estimation of transformation parameters between
+two point patterns. IEEE Trans. PAMI 13(4), 376-380.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import os
+import tempfile
+import time
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import fft as _fft
+from scipy import ndimage as _ndi
+
+from .errors import InputError, RegistrationWarning, where
+from .scan import PLATE_NONE, SIDE_UNKNOWN, FloorScan, MM_PER_IN
+
+__all__ = [
+    "RigidTransform",
+    "Registration",
+    "register",
+    "fit_control_points",
+    "read_control_points",
+    "resample_onto",
+    "sample_thickness",
+    "feature_image",
+    "write_registration",
+]
+
+#: Unscanned cells count 1 in the feature image; loss counts up to 1 at this fraction of nominal.
+LOSS_SCALE_FRACTION = 0.25
+#: The coarse search runs on the finest pyramid level whose long side is at most this many cells
+#: more than needed (the coarsest level with at least this many cells on its long side).
+COARSE_CELLS = 128
+#: An entirely unscanned block of this size marks a large unscanned area (weld seams are narrower). [mm]
+LARGE_AREA_MM = 80.0
+#: Feature value of narrow unscanned cells (weld seams, plate edges); loss counts up to 1.
+SEAM_VALUE = 1.0
+#: Weight of the large unscanned areas (coverage outline) in the coarse search only.
+BOUNDARY_WEIGHT = 0.5
+#: Cells of the newer feature image used per Gauss-Newton level (strongest gradients).
+N_SAMPLES = 100000
+#: Largest number of cells used for the score and quality figures (strided subsample above).
+QUALITY_CELLS = 500_000
+#: Factor applied to Gauss-Newton standard errors for the correlation of neighbouring samples
+#: (Gaussian smoothing of one cell plus bilinear interpolation; common practice, no source).
+STD_INFLATION = 3.0
+
+
+# --------------------------------------------------------------------------------------
+# transform
+# --------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class RigidTransform:
+    """A rigid transform of the floor plane mapping OLD coordinates to NEW.
+
+    ``[x', y'] = R(theta) . [x, y] + [dx, dy]``, theta counter-clockwise positive,
+    rotation about the floor origin (design contract §3.3).
+
+    Parameters
+    ----------
+    rotation_deg : rotation angle theta, counter-clockwise positive. [deg]
+    dx_mm, dy_mm : translation applied after the rotation. [mm]
+    """
+
+    rotation_deg: float = 0.0
+    dx_mm: float = 0.0
+    dy_mm: float = 0.0
+
+    @classmethod
+    def identity(cls) -> "RigidTransform":
+        return cls(0.0, 0.0, 0.0)
+
+    @classmethod
+    def from_matrix(cls, m) -> "RigidTransform":
+        """From a 3x3 homogeneous matrix (the rotation part is taken as is)."""
+        m = np.asarray(m, dtype=np.float64)
+        return cls(math.degrees(math.atan2(m[1, 0], m[0, 0])), float(m[0, 2]), float(m[1, 2]))
+
+    @property
+    def theta(self) -> float:
+        """Rotation angle. [rad]"""
+        return math.radians(self.rotation_deg)
+
+    @property
+    def matrix(self) -> np.ndarray:
+        """3x3 homogeneous matrix mapping ``[x, y, 1]`` (old) to ``[x', y', 1]`` (new)."""
+        c, s = math.cos(self.theta), math.sin(self.theta)
+        return np.array([[c, -s, self.dx_mm], [s, c, self.dy_mm], [0.0, 0.0, 1.0]])
+
+    def apply(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+        """Map old floor coordinates to new ones.
+
+        Parameters
+        ----------
+        x, y : old coordinates (scalars or arrays of one shape). [mm]
+
+        Returns
+        -------
+        (x', y') : new coordinates, float64. [mm]
+        """
+        x = np.asarray(x, dtype=np.float64)
+        y = np.asarray(y, dtype=np.float64)
+        c, s = math.cos(self.theta), math.sin(self.theta)
+        return c * x - s * y + self.dx_mm, s * x + c * y + self.dy_mm
+
+    def inverse(self) -> "RigidTransform":
+        """The transform mapping new coordinates back to old."""
+        c, s = math.cos(self.theta), math.sin(self.theta)
+        # x = R(-theta) (x' - d) = R(-theta) x' - R(-theta) d
+        return RigidTransform(-self.rotation_deg,
+                              -(c * self.dx_mm + s * self.dy_mm),
+                              -(-s * self.dx_mm + c * self.dy_mm))
+
+    def compose(self, other: "RigidTransform") -> "RigidTransform":
+        """The transform applying ``self`` first, then ``other`` (matrix ``other @ self``)."""
+        return RigidTransform.from_matrix(other.matrix @ self.matrix)
+
+    def displacement_at(self, x: float, y: float) -> tuple[float, float]:
+        """How far the point (x, y) moves under the transform. [mm]"""
+        xn, yn = self.apply(x, y)
+        return float(xn - x), float(yn - y)
+
+    def to_dict(self) -> dict:
+        return {"rotation_deg": float(self.rotation_deg), "dx_mm": float(self.dx_mm),
+                "dy_mm": float(self.dy_mm)}
+
+
+# --------------------------------------------------------------------------------------
+# result
+# --------------------------------------------------------------------------------------
+@dataclass
+class Registration:
+    """The result of :func:`register`.
+
+    Parameters
+    ----------
+    transform : the old-to-new :class:`RigidTransform` to use downstream.
+    score : masked normalised cross-correlation of the aligned feature images, clipped to 0-1.
+    overlap_pct : share of the newer scan's scanned cells that the older scan covers after alignment. [%]
+    residual_rms_mm : RMS thickness difference (new minus resampled old) in the overlap. [mm]
+    method : ``"auto"``, ``"control-points"``, ``"auto+control-points"`` or ``"identity"``.
+    reliable : False when the estimate should not be trusted (featureless floor, low score,
+        small overlap, control points that disagree).
+    warnings : plain-language reasons behind ``reliable`` and any fallback.
+    control_residuals_mm : distance between each transformed old control point and its new
+        point under ``transform``, or None without control points. [mm]
+    control_names : names of the control points, if given.
+    auto_transform : the automatic estimate, also when it was not used (None if not run).
+    rotation_contrast : peak NCC of the rotation sweep minus its median (low = rotation unobservable).
+    std_rotation_deg, std_shift_mm : approximate one-sigma errors from the Gauss-Newton fit. [deg], [mm]
+    timings_s : wall time per stage. [s]
+    details : other figures (levels, pitches, iterations) for the record.
+    """
+
+    transform: RigidTransform
+    score: float
+    overlap_pct: float
+    residual_rms_mm: float
+    method: str
+    reliable: bool
+    warnings: list[str] = field(default_factory=list)
+    control_residuals_mm: list[float] | None = None
+    control_names: list[str] | None = None
+    auto_transform: RigidTransform | None = None
+    rotation_contrast: float | None = None
+    std_rotation_deg: float | None = None
+    std_shift_mm: float | None = None
+    timings_s: dict = field(default_factory=dict)
+    details: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        """Plain JSON-ready content of ``registration.json``."""
+
+        def num(v):
+            if v is None:
+                return None
+            v = float(v)
+            return v if math.isfinite(v) else None
+
+        out = {
+            "format": "scananalyse-registration 1",
+            "convention": "old to new: [x', y'] = R(theta)[x, y] + [dx, dy], theta counter-clockwise, about the origin",
+            "dx_mm": float(self.transform.dx_mm),
+            "dy_mm": float(self.transform.dy_mm),
+            "rotation_deg": float(self.transform.rotation_deg),
+            "score": num(self.score),
+            "overlap_pct": num(self.overlap_pct),
+            "residual_rms_mm": num(self.residual_rms_mm),
+            "method": self.method,
+            "reliable": bool(self.reliable),
+            "warnings": list(self.warnings),
+            "control_residuals_mm": (None if self.control_residuals_mm is None
+                                     else [float(r) for r in self.control_residuals_mm]),
+            "control_rms_mm": (None if not self.control_residuals_mm
+                               else float(np.sqrt(np.mean(np.square(self.control_residuals_mm))))),
+            "control_names": self.control_names,
+            "auto_estimate": None if self.auto_transform is None else self.auto_transform.to_dict(),
+            "rotation_contrast": num(self.rotation_contrast),
+            "std_rotation_deg": num(self.std_rotation_deg),
+            "std_shift_mm": num(self.std_shift_mm),
+            "matrix": self.transform.matrix.tolist(),
+            "timings_s": {k: float(v) for k, v in self.timings_s.items()},
+            "details": self.details,
+        }
+        return out
+
+
+def write_registration(reg: Registration, path) -> None:
+    """Write ``registration.json`` (temporary file renamed into place).
+
+    Parameters
+    ----------
+    reg : the :class:`Registration` to write.
+    path : destination file.
+    """
+    path = os.fspath(path)
+    d = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(dir=d, prefix=".registration.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(reg.to_dict(), fh, indent=2)
+            fh.write("\n")
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+# --------------------------------------------------------------------------------------
+# control points
+# --------------------------------------------------------------------------------------
+def fit_control_points(old_xy, new_xy) -> tuple[RigidTransform, np.ndarray]:
+    """Least-squares rigid transform (no scale) from matching points.
+
+    Parameters
+    ----------
+    old_xy : (n, 2) points in the older scan's frame, n >= 2. [mm]
+    new_xy : (n, 2) the same physical points in the newer scan's frame. [mm]
+
+    Returns
+    -------
+    transform : the old-to-new :class:`RigidTransform` minimising the sum of squared
+        distances between ``transform(old_xy)`` and ``new_xy``.
+    residuals : (n,) distance of each transformed old point from its new point. [mm]
+
+    Notes
+    -----
+    Umeyama (1991) without scale (the Kabsch solution): centre both point sets,
+    take the SVD ``U S V^T`` of the cross-covariance ``sum (new - mean_new)(old - mean_old)^T``,
+    ``R = U diag(1, det(U V^T)) V^T``, ``t = mean_new - R mean_old``.
+
+    References
+    ----------
+    Umeyama, S. (1991). IEEE Trans. PAMI 13(4), 376-380.
+    """
+    a = np.asarray(old_xy, dtype=np.float64)
+    b = np.asarray(new_xy, dtype=np.float64)
+    if a.ndim != 2 or a.shape[1] != 2 or b.shape != a.shape:
+        raise InputError(f"control points: old and new must both be (n, 2) arrays, got {a.shape} and {b.shape}")
+    if a.shape[0] < 2:
+        raise InputError(f"control points: at least 2 matching points are needed, got {a.shape[0]}")
+    if not (np.isfinite(a).all() and np.isfinite(b).all()):
+        raise InputError("control points: coordinates must be finite numbers")
+    ma, mb = a.mean(axis=0), b.mean(axis=0)
+    ac, bc = a - ma, b - mb
+    if np.max(np.hypot(ac[:, 0], ac[:, 1])) < 1e-9:
+        raise InputError("control points: the old points all coincide; the rotation is undetermined")
+    cov = bc.T @ ac
+    u, _, vt = np.linalg.svd(cov)
+    dsign = np.sign(np.linalg.det(u @ vt)) or 1.0
+    rot = u @ np.diag([1.0, dsign]) @ vt
+    t = mb - rot @ ma
+    tr = RigidTransform(math.degrees(math.atan2(rot[1, 0], rot[0, 0])), float(t[0]), float(t[1]))
+    xn, yn = tr.apply(a[:, 0], a[:, 1])
+    res = np.hypot(xn - b[:, 0], yn - b[:, 1])
+    return tr, res
+
+
+_CP_COLUMNS = ("old_x", "old_y", "new_x", "new_y")
+
+
+def read_control_points(path) -> tuple[np.ndarray, np.ndarray]:
+    """Read a control-point file (format in ``docs/registration.md``).
+
+    A small CSV: optional ``# key: value`` lines (only ``units: mm|in`` is used),
+    then a header row with the columns ``old_x, old_y, new_x, new_y`` (any order)
+    and optionally ``name``, then one matching point a row.  Blank lines are skipped.
+
+    Parameters
+    ----------
+    path : the file.
+
+    Returns
+    -------
+    (old_xy, new_xy) : two (n, 2) float64 arrays in mm; the names are in
+        ``read_control_points.last_names`` is not used: call :func:`read_control_points_named`. [mm]
+
+    Raises
+    ------
+    InputError : one line naming the file and the line of the problem.
+    """
+    old, new, _ = read_control_points_named(path)
+    return old, new
+
+
+def read_control_points_named(path) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """As :func:`read_control_points`, also returning the point names (``P1``, ... if none)."""
+    p = os.fspath(path)
+    try:
+        with open(p, encoding="utf-8") as fh:
+            lines = fh.read().splitlines()
+    except OSError as exc:
+        raise InputError(f"{where(p)}: cannot read control-point file ({exc.strerror or exc})") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{where(p)}: control-point file is not UTF-8 text") from None
+    scale = 1.0
+    header = None
+    hline = None
+    rows: list[tuple[int, list[str]]] = []
+    for ln, raw in enumerate(lines, start=1):
+        s = raw.strip()
+        if not s:
+            continue
+        if s.startswith("#"):
+            body = s[1:].strip()
+            if ":" in body:
+                key, val = (v.strip() for v in body.split(":", 1))
+                if key.lower() == "units":
+                    if val.lower() == "mm":
+                        scale = 1.0
+                    elif val.lower() == "in":
+                        scale = MM_PER_IN
+                    else:
+                        raise InputError(f"{where(p, ln, 'units')}: expected 'mm' or 'in', got {val!r}")
+            continue
+        cells = [c.strip() for c in s.split(",")]
+        if header is None:
+            header = [c.lower() for c in cells]
+            hline = ln
+            missing = [c for c in _CP_COLUMNS if c not in header]
+            if missing:
+                raise InputError(f"{where(p, ln)}: header lacks column(s) {', '.join(missing)} "
+                                 f"(need old_x, old_y, new_x, new_y, optional name)")
+            if len(set(header)) != len(header):
+                raise InputError(f"{where(p, ln)}: duplicate column names in header")
+            continue
+        rows.append((ln, cells))
+    if header is None:
+        raise InputError(f"{where(p)}: control-point file has no header row (old_x, old_y, new_x, new_y)")
+    idx = {c: header.index(c) for c in _CP_COLUMNS}
+    iname = header.index("name") if "name" in header else None
+    old, new, names = [], [], []
+    for ln, cells in rows:
+        if len(cells) != len(header):
+            raise InputError(f"{where(p, ln)}: expected {len(header)} values, got {len(cells)}")
+        vals = {}
+        for c in _CP_COLUMNS:
+            txt = cells[idx[c]]
+            try:
+                v = float(txt)
+            except ValueError:
+                raise InputError(f"{where(p, ln, c)}: not a number: {txt!r}") from None
+            if not math.isfinite(v):
+                raise InputError(f"{where(p, ln, c)}: not a finite number: {txt!r}")
+            vals[c] = v * scale
+        old.append((vals["old_x"], vals["old_y"]))
+        new.append((vals["new_x"], vals["new_y"]))
+        names.append(cells[iname] if iname is not None and cells[iname] else f"P{len(names) + 1}")
+    if len(old) < 2:
+        raise InputError(f"{where(p, hline)}: at least 2 control points are needed, found {len(old)}")
+    return (np.array(old, dtype=np.float64), np.array(new, dtype=np.float64), names)
+
+
+# --------------------------------------------------------------------------------------
+# sampling and resampling
+# --------------------------------------------------------------------------------------
+def _bilinear_nan(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray:
+    """NaN-aware bilinear sample of ``img`` at fractional (row, col) indices.
+
+    The result is NaN where the nearest cell is outside the grid or NaN; elsewhere
+    it is the bilinear weighted mean over the valid ones of the four neighbours.
+    """
+    h, w = img.shape
+    out = np.full(ri.shape, np.nan, dtype=np.float32)
+    rn = np.rint(ri)
+    cn = np.rint(ci)
+    ok = (rn >= 0) & (rn <= h - 1) & (cn >= 0) & (cn <= w - 1)
+    if not ok.any():
+        return out
+    ri, ci = ri[ok], ci[ok]
+    near = img[rn[ok].astype(np.intp), cn[ok].astype(np.intp)]
+    r0 = np.floor(ri)
+    c0 = np.floor(ci)
+    fr = (ri - r0).astype(np.float32)
+    fc = (ci - c0).astype(np.float32)
+    r0 = r0.astype(np.intp)
+    c0 = c0.astype(np.intp)
+    acc = np.zeros(ri.shape, dtype=np.float32)
+    wsum = np.zeros(ri.shape, dtype=np.float32)
+    for dr, dc, wt in ((0, 0, (1 - fr) * (1 - fc)), (0, 1, (1 - fr) * fc),
+                       (1, 0, fr * (1 - fc)), (1, 1, fr * fc)):
+        rr = r0 + dr
+        cc = c0 + dc
+        inb = (rr >= 0) & (rr < h) & (cc >= 0) & (cc < w)
+        v = np.full(ri.shape, np.nan, dtype=np.float32)
+        v[inb] = img[rr[inb], cc[inb]]
+        good = np.isfinite(v)
+        acc[good] += wt[good] * v[good]
+        wsum[good] += wt[good]
+    val = np.full(ri.shape, np.nan, dtype=np.float32)
+    fin = np.isfinite(near) & (wsum > 0)
+    val[fin] = acc[fin] / wsum[fin]
+    out[ok] = val
+    return out
+
+
+def _nearest(layer: np.ndarray, ri: np.ndarray, ci: np.ndarray, fill) -> np.ndarray:
+    h, w = layer.shape
+    rn = np.rint(ri)
+    cn = np.rint(ci)
+    ok = (rn >= 0) & (rn <= h - 1) & (cn >= 0) & (cn <= w - 1)
+    out = np.full(ri.shape, fill, dtype=layer.dtype)
+    out[ok] = layer[rn[ok].astype(np.intp), cn[ok].astype(np.intp)]
+    return out
+
+
+def sample_thickness(scan: FloorScan, x, y) -> np.ndarray:
+    """Thickness of ``scan`` at floor points, NaN-aware bilinear (see :func:`resample_onto`).
+
+    Parameters
+    ----------
+    scan : the scan to sample.
+    x, y : floor coordinates in the scan's own frame. [mm]
+
+    Returns
+    -------
+    float32 array of the shape of ``x``; NaN where the scan did not cover. [mm]
+    """
+    x = np.asarray(x, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
+    ri, ci = scan.cell_of(x, y)
+    return _bilinear_nan(scan.thickness, ri, ci)
+
+
+def _chunk_rows(shape, max_cells=1 << 20) -> int:
+    return max(1, int(max_cells // max(1, shape[1])))
+
+
+def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> FloorScan:
+    """The older scan's values on the newer scan's grid.
+
+    For each cell centre ``p`` of ``new`` the older scan is sampled at
+    ``transform.inverse()(p)``.
+
+    Parameters
+    ----------
+    old : the older scan (its own frame and grid).
+    new : the newer scan (only its grid is used).
+    transform : old-to-new transform (from :func:`register`).
+
+    Returns
+    -------
+    FloorScan on ``new``'s grid with ``old``'s metadata: ``thickness`` float32 [mm],
+    NaN where the older scan did not cover; ``side``/``plate`` layers (if ``old`` has them)
+    by nearest cell, unknown (0) / none (-1) outside the older grid.
+
+    Notes
+    -----
+    Thickness is a NaN-aware bilinear interpolation: a point is covered when the
+    *nearest* older cell was scanned; the value is then the bilinear mean over the
+    scanned ones among its four neighbours (weights renormalised).  So covered
+    area is kept right up to seams and edges, and no value mixes in an unscanned cell.
+    Work is done in row chunks (about 10^6 cells) so no full-grid float64 arrays are made.
+    """
+    inv = transform.inverse()
+    c, s = math.cos(inv.theta), math.sin(inv.theta)
+    h, w = new.shape
+    thick = np.empty((h, w), dtype=np.float32)
+    side = None if old.side is None else np.empty((h, w), dtype=np.int8)
+    plate = None if old.plate is None else np.empty((h, w), dtype=np.int32)
+    xs = new.x
+    ys = new.y
+    step = _chunk_rows((h, w))
+    # Fractional old indices are affine in the new cell indices: compute per chunk.
+    for r0 in range(0, h, step):
+        r1 = min(h, r0 + step)
+        yy = ys[r0:r1, None]
+        xo = c * xs[None, :] - s * yy + inv.dx_mm
+        yo = s * xs[None, :] + c * yy + inv.dy_mm
+        ri = (yo - old.y0) / old.pitch
+        ci = (xo - old.x0) / old.pitch
+        del xo, yo
+        thick[r0:r1] = _bilinear_nan(old.thickness, ri, ci)
+        if side is not None:
+            side[r0:r1] = _nearest(old.side, ri, ci, SIDE_UNKNOWN)
+        if plate is not None:
+            plate[r0:r1] = _nearest(old.plate, ri, ci, PLATE_NONE)
+    return FloorScan(thickness=thick, x0=new.x0, y0=new.y0, pitch=new.pitch, meta=old.meta,
+                     side=side, plate=plate, source=old.source)
+
+
+# --------------------------------------------------------------------------------------
+# feature images and pyramids
+# --------------------------------------------------------------------------------------
+def _large_unscanned(unscanned: np.ndarray, pitch: float, block_mm: float) -> np.ndarray:
+    """Unscanned cells belonging to large unscanned areas (outside the floor, obstructions).
+
+    A morphological opening of the unscanned mask by a square of about ``block_mm``
+    (box filters, so the cost does not grow with the size) keeps the areas such a
+    square fits into and drops the narrow unscanned lines of weld seams; the result
+    is then grown by the same square so the ends of seams that run into a large area
+    are left out in both outages alike.  Outside the grid counts as unscanned.  On
+    fine grids the opening runs on 2x2 (or coarser) block means to save time.
+    """
+    u = unscanned.astype(np.float32)
+    f = 1
+    while pitch * f * 8 <= block_mm and min(u.shape) >= 64:
+        u = _half(u)
+        f *= 2
+    k = max(3, int(math.ceil(block_mm / (pitch * f))) | 1)
+    core = _ndi.uniform_filter(u, size=k, mode="constant", cval=1.0) > 0.999
+    del u
+    opened = _ndi.uniform_filter(core.astype(np.float32), size=2 * k - 1, mode="constant",
+                                 cval=0.0) > 1e-3
+    if f > 1:
+        opened = np.repeat(np.repeat(opened, f, axis=0), f, axis=1)
+        h, w = unscanned.shape
+        full = np.zeros((h, w), dtype=bool)
+        full[:opened.shape[0], :opened.shape[1]] = opened[:h, :w]
+        opened = full
+    opened &= unscanned
+    return opened
+
+
+def _features(scan: FloorScan, *, loss_scale_mm: float | None = None,
+              block_mm: float = LARGE_AREA_MM) -> tuple[np.ndarray, np.ndarray]:
+    scale = float(loss_scale_mm) if loss_scale_mm else LOSS_SCALE_FRACTION * scan.meta.nominal
+    t = scan.thickness
+    f = np.float32(scan.meta.nominal) - t
+    f *= np.float32(1.0 / scale)
+    np.clip(f, 0.0, 1.0, out=f)
+    unscanned = np.isnan(t)
+    big = _large_unscanned(unscanned, scan.pitch, block_mm)
+    f[unscanned] = np.float32(SEAM_VALUE)
+    f[big] = 0.0
+    return f, big
+
+
+def feature_image(scan: FloorScan, *, loss_scale_mm: float | None = None,
+                  block_mm: float = None) -> np.ndarray:
+    """The registration feature image of a scan, on its own grid.
+
+    Parameters
+    ----------
+    scan : the scan.
+    loss_scale_mm : loss at which the feature saturates at 1; default a quarter of nominal. [mm]
+    block_mm : size of a block that, entirely unscanned, marks a large unscanned area;
+        default :data:`LARGE_AREA_MM`. [mm]
+
+    Returns
+    -------
+    float32 array: 1 where a cell was not scanned in a narrow line or small area
+    (weld seams, plate edges), 0 in large unscanned areas (outside the floor, the shell
+    margin, obstructions: their outline changes from one outage to the next),
+    ``clip((nominal - thickness) / loss_scale_mm, 0, 1)`` where it was scanned.
+    """
+    return _features(scan, loss_scale_mm=loss_scale_mm,
+                     block_mm=LARGE_AREA_MM if block_mm is None else block_mm)[0]
+
+
+@dataclass
+class _Level:
+    img: np.ndarray
+    big: np.ndarray
+    x0: float
+    y0: float
+    pitch: float
+    _smooth: np.ndarray | None = None
+    _grad: tuple | None = None
+
+    @property
+    def smooth(self) -> np.ndarray:
+        if self._smooth is None:
+            self._smooth = _ndi.gaussian_filter(self.img, 1.0, mode="nearest", truncate=3.0)
+        return self._smooth
+
+    def coarse(self, boundary_weight: float) -> np.ndarray:
+        """Smoothed feature image with the large unscanned areas added at ``boundary_weight``."""
+        if boundary_weight == 0:
+            return self.smooth
+        return _ndi.gaussian_filter(self.img + np.float32(boundary_weight) * self.big, 1.0,
+                                    mode="nearest", truncate=3.0)
+
+    @property
+    def grad(self) -> tuple[np.ndarray, np.ndarray]:
+        """(d/dx, d/dy) of the smoothed image. [1/mm]"""
+        if self._grad is None:
+            self._grad = _gradient(self.smooth, self.pitch)
+        return self._grad
+
+
+def _half(a: np.ndarray) -> np.ndarray:
+    """2x2 block means (odd last row/column dropped), float32."""
+    h2, w2 = a.shape[0] // 2, a.shape[1] // 2
+    out = a[0:2 * h2:2, 0:2 * w2:2].astype(np.float32)
+    out += a[1:2 * h2:2, 0:2 * w2:2]
+    out += a[0:2 * h2:2, 1:2 * w2:2]
+    out += a[1:2 * h2:2, 1:2 * w2:2]
+    out *= np.float32(0.25)
+    return out
+
+
+def _gradient(a: np.ndarray, pitch: float) -> tuple[np.ndarray, np.ndarray]:
+    """Central differences (one-sided at the edges) along x (columns) and y (rows). [1/mm]"""
+    k = np.float32(0.5 / pitch)
+    gx = np.empty_like(a)
+    gy = np.empty_like(a)
+    np.subtract(a[:, 2:], a[:, :-2], out=gx[:, 1:-1])
+    gx[:, 1:-1] *= k
+    gx[:, 0] = (a[:, 1] - a[:, 0]) * (2 * k)
+    gx[:, -1] = (a[:, -1] - a[:, -2]) * (2 * k)
+    np.subtract(a[2:], a[:-2], out=gy[1:-1])
+    gy[1:-1] *= k
+    gy[0] = (a[1] - a[0]) * (2 * k)
+    gy[-1] = (a[-1] - a[-2]) * (2 * k)
+    return gx, gy
+
+
+def _pyramid(scan: FloorScan, min_cells: int = 16) -> list[_Level]:
+    img, big = _features(scan)
+    levels = [_Level(img, big.astype(np.float32), scan.x0, scan.y0, scan.pitch)]
+    while min(levels[-1].img.shape) // 2 >= min_cells:
+        lv = levels[-1]
+        levels.append(_Level(_half(lv.img), _half(lv.big), lv.x0 + lv.pitch / 2,
+                             lv.y0 + lv.pitch / 2, lv.pitch * 2))
+    return levels
+
+
+def _closest_level(levels: list[_Level], pitch: float) -> _Level:
+    return min(levels, key=lambda lv: abs(math.log(lv.pitch / pitch)))
+
+
+def _sample_level(lv: _Level, arr: np.ndarray, qx, qy):
+    """Bilinear sample of ``arr`` (on lv's grid) at floor points; returns values and inside-mask."""
+    ri = (qy - lv.y0) / lv.pitch
+    ci = (qx - lv.x0) / lv.pitch
+    h, w = arr.shape
+    inside = (ri >= 0) & (ri <= h - 1) & (ci >= 0) & (ci <= w - 1)
+    vals = _ndi.map_coordinates(arr, [ri.ravel(), ci.ravel()], order=1, mode="nearest",
+                                prefilter=False).reshape(np.shape(ri))
+    return vals, inside
+
+
+# --------------------------------------------------------------------------------------
+# coarse search: masked NCC over all shifts (Padfield 2012) for a sweep of angles
+# --------------------------------------------------------------------------------------
+def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
+                      centre: tuple[float, float], max_shift_mm: float,
+                      min_overlap_frac: float = 0.25, boundary_weight: float = BOUNDARY_WEIGHT):
+    """Best (ncc, tau_x, tau_y) per angle; tau in mm, the shift to add to ``centre``.
+
+    Notes
+    -----
+    Padfield (2012), eq. (5)-(8): with masks m1, m2 and images f1, f2 and the
+    cross-correlation C(a, b)(t) = sum_p a(p) b(p - t),
+    NCC(t) = [C(f1, f2) - C(f1, m2) C(m1, f2) / C(m1, m2)] /
+             sqrt([C(f1^2, m2) - C(f1, m2)^2 / C(m1, m2)] [C(m1, f2^2) - C(m1, f2)^2 / C(m1, m2)]),
+    f1 and f2 already multiplied by their masks.
+    """
+    fn = new_lv.coarse(boundary_weight)
+    h, w = fn.shape
+    pc = new_lv.pitch
+    s = int(math.ceil(max_shift_mm / pc)) + 1
+    eh, ew = h + 2 * s, w + 2 * s
+    shape = (_fft.next_fast_len(eh + s + 1, real=True), _fft.next_fast_len(ew + s + 1, real=True))
+    a = np.zeros((eh, ew), dtype=np.float64)
+    m1 = np.zeros((eh, ew), dtype=np.float64)
+    a[s:s + h, s:s + w] = fn
+    m1[s:s + h, s:s + w] = 1.0
+    kw = dict(s=shape, workers=-1)
+    fa = _fft.rfft2(a, **kw)
+    fa2 = _fft.rfft2(a * a, **kw)
+    fm1 = _fft.rfft2(m1, **kw)
+    n1 = float(m1.sum())
+    ex = new_lv.x0 - s * pc + pc * np.arange(ew)
+    ey = new_lv.y0 - s * pc + pc * np.arange(eh)
+    X, Y = np.meshgrid(ex - centre[0], ey - centre[1])
+    win_r = np.arange(-s, s + 1) % shape[0]
+    win_c = np.arange(-s, s + 1) % shape[1]
+    tau = np.arange(-s, s + 1) * pc
+    TX, TY = np.meshgrid(tau, tau)
+    in_window = np.hypot(TX, TY) <= max_shift_mm + 1e-9
+    best = []
+    maps = []
+    go = old_lv.coarse(boundary_weight)
+    for ang in angles_deg:
+        th = math.radians(ang)
+        c, sn = math.cos(th), math.sin(th)
+        qx = c * X + sn * Y
+        qy = -sn * X + c * Y
+        g, inside = _sample_level(old_lv, go, qx, qy)
+        m2 = inside.astype(np.float64)
+        g = g.astype(np.float64) * m2
+        fb = _fft.rfft2(g, **kw)
+        fb2 = _fft.rfft2(g * g, **kw)
+        fm2 = _fft.rfft2(m2, **kw)
+
+        def corr(p, q):
+            full = _fft.irfft2(p * np.conj(q), s=shape, workers=-1)
+            return full[np.ix_(win_r, win_c)]
+
+        c_mm = corr(fm1, fm2)
+        c_ab = corr(fa, fb)
+        c_am = corr(fa, fm2)
+        c_mb = corr(fm1, fb)
+        c_a2m = corr(fa2, fm2)
+        c_mb2 = corr(fm1, fb2)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cm = np.maximum(c_mm, 1e-9)
+            num = c_ab - c_am * c_mb / cm
+            va = c_a2m - c_am ** 2 / cm
+            vb = c_mb2 - c_mb ** 2 / cm
+            ncc = num / np.sqrt(np.maximum(va, 0) * np.maximum(vb, 0))
+        ok = in_window & (c_mm >= min_overlap_frac * n1) & (va > 1e-9 * cm) & (vb > 1e-9 * cm)
+        ncc = np.where(ok & np.isfinite(ncc), ncc, -1.0)
+        k = int(np.argmax(ncc))
+        i, j = divmod(k, ncc.shape[1])
+        di = _parabolic(ncc[i - 1, j], ncc[i, j], ncc[i + 1, j]) if 0 < i < ncc.shape[0] - 1 else 0.0
+        dj = _parabolic(ncc[i, j - 1], ncc[i, j], ncc[i, j + 1]) if 0 < j < ncc.shape[1] - 1 else 0.0
+        best.append((float(ncc[i, j]), (j - s + dj) * pc, (i - s + di) * pc))
+        maps.append(ncc)
+    return best
+
+
+def _parabolic(ym, y0, yp) -> float:
+    """Vertex offset of the parabola through (-1, ym), (0, y0), (1, yp), within ±0.5."""
+    if min(ym, yp) <= -1.0:
+        return 0.0
+    d = ym - 2 * y0 + yp
+    if d >= 0:
+        return 0.0
+    return float(np.clip(0.5 * (ym - yp) / d, -0.5, 0.5))
+
+
+# --------------------------------------------------------------------------------------
+# refinement: Gauss-Newton (Lucas-Kanade) on the strongest-gradient cells
+# --------------------------------------------------------------------------------------
+def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_samples: int,
+                  max_iter: int = 20, tol_cells: float = 0.005):
+    fn = new_lv.smooth
+    h, w = fn.shape
+    gxn, gyn = new_lv.grad
+    mag = gxn * gxn + gyn * gyn
+    b = 2
+    mag[:b] = 0
+    mag[-b:] = 0
+    mag[:, :b] = 0
+    mag[:, -b:] = 0
+    # Cells with a clear gradient (above 5 % of the 99.9th percentile), a random subset of
+    # them if too many: spreads the samples over all features instead of the few strongest edges.
+    flat = mag.ravel()
+    hi = float(np.quantile(flat[:: max(1, flat.size // 200000)], 0.999))
+    idx = np.flatnonzero(flat > 0.05 * hi) if hi > 0 else np.empty(0, dtype=np.intp)
+    del mag, flat
+    if idx.size > n_samples:
+        idx = np.sort(np.random.default_rng(12345).choice(idx, n_samples, replace=False))
+    n = int(idx.size)
+    if n < 50:
+        return tr, {"converged": False, "n": n, "iterations": 0, "cov": None}
+    rr, cc = np.divmod(idx, w)
+    px = new_lv.x0 + cc * new_lv.pitch
+    py = new_lv.y0 + rr * new_lv.pitch
+    fv = fn.ravel()[idx].astype(np.float64)
+    go = old_lv.smooth
+    gxo, gyo = old_lv.grad
+    th, dx, dy = tr.theta, tr.dx_mm, tr.dy_mm
+    gain, off = 1.0, 0.0
+    rchar = float(np.sqrt(np.mean(px * px + py * py))) or 1.0
+    pitch = new_lv.pitch
+    converged = False
+    cov = None
+    it = 0
+    first = True
+    def evaluate(params):
+        th_, dx_, dy_, gain_, off_ = params
+        c, s = math.cos(th_), math.sin(th_)
+        vx = px - dx_
+        vy = py - dy_
+        qx = c * vx + s * vy
+        qy = -s * vx + c * vy
+        g, inside = _sample_level(old_lv, go, qx, qy)
+        return g, inside, qx, qy, c, s
+
+    def huber_cost(r, k):
+        a = np.abs(r)
+        return float(np.mean(np.where(a <= k, 0.5 * r * r, k * (a - 0.5 * k))))
+
+    params = np.array([th, dx, dy, gain, off], dtype=np.float64)
+    g, inside, qx, qy, c, s = evaluate(params)
+    if np.count_nonzero(inside) < 50:
+        return tr, {"converged": False, "n": n, "iterations": 0, "cov": None}
+    # photometric gain and offset by least squares before the geometric steps
+    A = np.column_stack([g[inside], np.ones(np.count_nonzero(inside))])
+    sol, *_ = np.linalg.lstsq(A, fv[inside], rcond=None)
+    if sol[0] > 1e-6:
+        params[3], params[4] = sol
+    r_all = params[3] * g[inside] + params[4] - fv[inside]
+    mad = np.median(np.abs(r_all - np.median(r_all))) * 1.4826
+    k = 2.0 * max(mad, 1e-6)          # Huber threshold, fixed for the level
+    cost = huber_cost(r_all, k)
+    lam = 1e-3
+    H = None
+    s2 = None
+    for it in range(1, max_iter + 1):
+        gx, _ = _sample_level(old_lv, gxo, qx, qy)
+        gy, _ = _sample_level(old_lv, gyo, qx, qy)
+        gi = g[inside].astype(np.float64)
+        gx = gx[inside].astype(np.float64)
+        gy = gy[inside].astype(np.float64)
+        qxi, qyi = qx[inside], qy[inside]
+        gain = params[3]
+        r = gain * gi + params[4] - fv[inside]
+        J = np.column_stack([
+            gain * (gx * qyi - gy * qxi) / rchar,           # d r / d(theta * rchar)
+            gain * (-gx * c + gy * s),                       # d r / d dx
+            gain * (-gx * s - gy * c),                       # d r / d dy
+            gi,                                              # d r / d gain
+            np.ones_like(gi),                                # d r / d offset
+        ])
+        wts = np.minimum(1.0, k / np.maximum(np.abs(r), 1e-12))
+        JW = J * wts[:, None]
+        H = JW.T @ J
+        grad = JW.T @ r
+        s2 = float(np.sum(wts * r * r) / max(1, r.size - 5))
+        accepted = False
+        for _ in range(12):
+            # Levenberg-Marquardt damping; a step is kept only if the robust cost drops
+            Hd = H + lam * np.diag(np.diag(H))
+            try:
+                step = -np.linalg.solve(Hd, grad)
+            except np.linalg.LinAlgError:
+                break
+            geo = math.hypot(step[0], math.hypot(step[1], step[2]))
+            if geo > pitch:            # at most one cell of displacement per step
+                step *= pitch / geo
+            trial = params + step * np.array([1.0 / rchar, 1, 1, 1, 1])
+            g_t, in_t, qx_t, qy_t, c_t, s_t = evaluate(trial)
+            if np.count_nonzero(in_t) < 50:
+                lam *= 10
+                continue
+            cost_t = huber_cost(trial[3] * g_t[in_t] + trial[4] - fv[in_t], k)
+            if cost_t <= cost:
+                params, cost = trial, cost_t
+                g, inside, qx, qy, c, s = g_t, in_t, qx_t, qy_t, c_t, s_t
+                lam = max(lam / 10, 1e-7)
+                accepted = True
+                break
+            lam *= 10
+        small = abs(step[0]) < tol_cells * pitch and math.hypot(step[1], step[2]) < tol_cells * pitch
+        if small or not accepted:
+            converged = small or lam > 1e3   # no further descent possible: at the minimum
+            break
+    th, dx, dy, gain, off = (float(v) for v in params)
+    if converged and H is not None:
+        try:
+            cov = np.linalg.inv(H) * s2
+            cov[0, :] /= rchar
+            cov[:, 0] /= rchar
+        except np.linalg.LinAlgError:
+            cov = None
+    out = RigidTransform(math.degrees(th), float(dx), float(dy))
+    return out, {"converged": converged, "n": int(n), "iterations": it, "cov": cov,
+                 "gain": gain, "offset": off, "pitch": new_lv.pitch, "old_pitch": old_lv.pitch}
+
+
+def _ncc_aligned(new_lv: _Level, old_lv: _Level, tr: RigidTransform) -> float:
+    """Masked NCC of the smoothed feature images after alignment, over new's level grid."""
+    fn = new_lv.smooth
+    stride = max(1, int(math.ceil(math.sqrt(fn.size / QUALITY_CELLS))))
+    fs = fn[::stride, ::stride].astype(np.float64)
+    xs = new_lv.x0 + new_lv.pitch * stride * np.arange(fs.shape[1])
+    ys = new_lv.y0 + new_lv.pitch * stride * np.arange(fs.shape[0])
+    X, Y = np.meshgrid(xs, ys)
+    inv = tr.inverse()
+    qx, qy = inv.apply(X, Y)
+    g, inside = _sample_level(old_lv, old_lv.smooth, qx, qy)
+    if np.count_nonzero(inside) < 10:
+        return float("nan")
+    a = fs[inside]
+    b = g[inside].astype(np.float64)
+    a = a - a.mean()
+    b = b - b.mean()
+    den = math.sqrt(float(np.dot(a, a)) * float(np.dot(b, b)))
+    return float(np.dot(a, b) / den) if den > 0 else float("nan")
+
+
+def _thickness_quality(new: FloorScan, old: FloorScan, tr: RigidTransform) -> tuple[float, float]:
+    """(overlap_pct, residual_rms_mm) on a strided subsample of new's grid."""
+    t = new.thickness
+    stride = max(1, int(math.ceil(math.sqrt(t.size / QUALITY_CELLS))))
+    ts = t[::stride, ::stride]
+    fin = np.isfinite(ts)
+    if not fin.any():
+        return 0.0, float("nan")
+    rows, cols = np.nonzero(fin)
+    xn = new.x0 + new.pitch * stride * cols
+    yn = new.y0 + new.pitch * stride * rows
+    xo, yo = tr.inverse().apply(xn, yn)
+    to = sample_thickness(old, xo, yo)
+    both = np.isfinite(to)
+    overlap = 100.0 * np.count_nonzero(both) / rows.size
+    if not both.any():
+        return overlap, float("nan")
+    d = ts[rows[both], cols[both]].astype(np.float64) - to[both]
+    return overlap, float(np.sqrt(np.mean(d * d)))
+
+
+def _as_control_points(cp):
+    """(old_xy, new_xy, names) from a path or a pair of arrays."""
+    if isinstance(cp, (str, os.PathLike)):
+        return read_control_points_named(cp)
+    try:
+        old_xy, new_xy = cp
+    except (TypeError, ValueError):
+        raise InputError("control points: expected a file path or a pair (old_xy, new_xy)") from None
+    old_xy = np.asarray(old_xy, dtype=np.float64)
+    return old_xy, np.asarray(new_xy, dtype=np.float64), [f"P{i + 1}" for i in range(len(old_xy))]
+
+
+# --------------------------------------------------------------------------------------
+# register
+# --------------------------------------------------------------------------------------
+def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool = True,
+             seed: RigidTransform | None = None, max_rotation_deg: float = 6.0,
+             max_shift_mm: float = 400.0, cp_window_deg: float = 1.0, cp_window_mm: float = 100.0,
+             min_score: float = 0.3, min_overlap_pct: float = 10.0,
+             min_rotation_contrast: float = 0.02, max_std_rotation_deg: float = 0.25,
+             max_std_shift_cells: float = 2.0, n_samples: int = N_SAMPLES) -> Registration:
+    """Estimate the rigid transform mapping the older scan onto the newer one.
+
+    Parameters
+    ----------
+    new : the newer inspection (the reference frame of all later stages).
+    old : the older inspection.
+    control_points : optional matching points: a control-point file path (see
+        :func:`read_control_points`) or a pair ``(old_xy, new_xy)`` of (n, 2) arrays, n >= 2. [mm]
+    auto : with control points, also run the automatic estimate in a small window around
+        their fit (method ``auto+control-points``); ``False`` uses the fit alone
+        (``control-points``).  Without control points the automatic estimate always runs.
+    seed : optional initial transform; the search is centred on it (default identity).
+    max_rotation_deg : search half-range of the rotation around the seed. [deg]
+    max_shift_mm : search radius of the translation around the seed. [mm]
+    cp_window_deg, cp_window_mm : search half-range around a control-point fit. [deg], [mm]
+    min_score : smallest score for a reliable automatic estimate.
+    min_overlap_pct : smallest overlap for a reliable estimate. [%]
+    min_rotation_contrast : smallest (peak - median) NCC over the rotation sweep; below it
+        the rotation is unobservable (a featureless or rotationally symmetric floor).
+    n_samples : cells of the newer feature image per refinement level.
+
+    Returns
+    -------
+    Registration
+
+    Warns
+    -----
+    RegistrationWarning : the automatic estimate is unreliable (the result then falls back to
+        the control points, or the identity without them), or the control points disagree.
+    """
+    t_start = time.perf_counter()
+    timings: dict[str, float] = {}
+    notes: list[str] = []
+    details: dict = {"new_pitch_mm": new.pitch, "old_pitch_mm": old.pitch}
+
+    cp_tr = None
+    cp_names = None
+    old_xy = new_xy = None
+    if control_points is not None:
+        old_xy, new_xy, cp_names = _as_control_points(control_points)
+        cp_tr, cp_res = fit_control_points(old_xy, new_xy)
+        details["control_point_fit"] = cp_tr.to_dict()
+        cp_rms = float(np.sqrt(np.mean(cp_res ** 2)))
+        if old_xy.shape[0] >= 3 and cp_rms > 2.0 * new.pitch:
+            notes.append(f"control points disagree: RMS residual {cp_rms:.1f} mm exceeds twice the pitch "
+                         f"({2 * new.pitch:g} mm); check the point pairs")
+        timings["control_points"] = time.perf_counter() - t_start
+
+    auto_tr = None
+    contrast = None
+    std_rot = std_shift = None
+    auto_ok = False
+    score_auto = float("nan")
+    if cp_tr is None or auto:
+        t0 = time.perf_counter()
+        pn = _pyramid(new)
+        po = _pyramid(old)
+        timings["features"] = time.perf_counter() - t0
+
+        # coarse level: coarsest new level with at least COARSE_CELLS on the long side
+        kc = 0
+        for k, lv in enumerate(pn):
+            if max(lv.img.shape) >= COARSE_CELLS:
+                kc = k
+        new_c = pn[kc]
+        old_c = _closest_level(po, new_c.pitch)
+        centre_tr = cp_tr if cp_tr is not None else (seed or RigidTransform())
+        if cp_tr is not None:
+            half_rot, shift_r = cp_window_deg, cp_window_mm
+        else:
+            half_rot, shift_r = max_rotation_deg, max_shift_mm
+        xs, ys = new.x, new.y
+        rmax = max(math.hypot(x, y) for x in (xs[0], xs[-1]) for y in (ys[0], ys[-1]))
+        step = min(0.5, max(0.02, math.degrees(new_c.pitch / max(rmax, 1.0))))
+        nstep = max(1, int(math.ceil(half_rot / step)))
+        angles = centre_tr.rotation_deg + step * np.arange(-nstep, nstep + 1)
+        t0 = time.perf_counter()
+        # shift centre for each angle: rotate about the origin, then translate by the seed's shift
+        res = _masked_ncc_sweep(new_c, old_c, angles, (centre_tr.dx_mm, centre_tr.dy_mm),
+                                shift_r + new_c.pitch)
+        timings["coarse_search"] = time.perf_counter() - t0
+        peaks = np.array([r[0] for r in res])
+        ib = int(np.argmax(peaks))
+        da = _parabolic(peaks[ib - 1], peaks[ib], peaks[ib + 1]) if 0 < ib < len(peaks) - 1 else 0.0
+        ang = float(angles[ib] + da * step)
+        tr = RigidTransform(ang, centre_tr.dx_mm + res[ib][1], centre_tr.dy_mm + res[ib][2])
+        contrast = float(peaks[ib] - np.median(peaks)) if len(peaks) >= 5 else None
+        details.update(coarse_pitch_mm=new_c.pitch, angle_step_deg=step, n_angles=int(len(angles)),
+                       coarse_peak_ncc=float(peaks[ib]), coarse_estimate=tr.to_dict())
+
+        t0 = time.perf_counter()
+        info = None
+        levels_done = []
+        for k in range(kc - 1 if kc > 0 else 0, -1, -1):
+            lv_n = pn[k]
+            lv_o = _closest_level(po, lv_n.pitch)
+            tr, info = _refine_level(lv_n, lv_o, tr, n_samples=n_samples)
+            levels_done.append({"pitch_mm": lv_n.pitch, "old_pitch_mm": lv_o.pitch,
+                                "iterations": info["iterations"], "converged": info["converged"],
+                                "samples": info["n"]})
+            # Many samples and no move at this level: a finer level would not move either
+            # (saves the full-resolution passes on large floors).
+            if (k > 0 and info["converged"] and info["iterations"] == 1 and info["n"] >= n_samples
+                    and info.get("cov") is not None):
+                break
+        timings["refine"] = time.perf_counter() - t0
+        details["refine_levels"] = levels_done
+        auto_tr = tr
+        if info is not None and info.get("cov") is not None:
+            cov = info["cov"]
+            std_rot = math.degrees(math.sqrt(max(cov[0, 0], 0.0))) * STD_INFLATION
+            std_shift = math.sqrt(max(cov[1, 1] + cov[2, 2], 0.0)) * STD_INFLATION
+        t0 = time.perf_counter()
+        score_lv = pn[min(1, len(pn) - 1)] if pn[0].img.size > 4 * QUALITY_CELLS else pn[0]
+        score_auto = _ncc_aligned(score_lv, _closest_level(po, score_lv.pitch), auto_tr)
+        ov_auto, _ = _thickness_quality(new, old, auto_tr)
+        timings["score"] = time.perf_counter() - t0
+
+        reasons = []
+        if not (score_auto >= min_score):
+            reasons.append(f"low match score {score_auto:.2f} (< {min_score:g})")
+        if contrast is not None and contrast < min_rotation_contrast:
+            reasons.append(f"flat rotation sweep (contrast {contrast:.3f} < {min_rotation_contrast:g}): "
+                           "the floor shows too few features (seams, plate edges, pits) to fix the rotation")
+        if info is None or not info["converged"]:
+            reasons.append("the refinement did not converge")
+        else:
+            if std_rot is not None and std_rot > max_std_rotation_deg:
+                reasons.append(f"rotation poorly determined (about ±{std_rot:.3f}°)")
+            if std_shift is not None and std_shift > max_std_shift_cells * new.pitch:
+                reasons.append(f"shift poorly determined (about ±{std_shift:.1f} mm)")
+        if ov_auto < min_overlap_pct:
+            reasons.append(f"small overlap {ov_auto:.1f} % (< {min_overlap_pct:g} %)")
+        auto_ok = not reasons
+        if not auto_ok:
+            notes.append("automatic registration unreliable: " + "; ".join(reasons))
+
+    # choose the answer
+    if cp_tr is not None and (not auto or not auto_ok):
+        final, method = cp_tr, "control-points"
+        if auto and not auto_ok:
+            notes.append("fell back to the control-point fit")
+        reliable = not any(n.startswith("control points disagree") for n in notes)
+    elif auto_ok:
+        final, method = auto_tr, ("auto+control-points" if cp_tr is not None else "auto")
+        reliable = True
+        if cp_tr is not None:
+            # the automatic answer must stay near the control points (it was searched there)
+            ddx, ddy = (np.subtract(auto_tr.apply(0.0, 0.0), cp_tr.apply(0.0, 0.0)))
+            details["auto_minus_control_at_origin_mm"] = [float(ddx), float(ddy)]
+    else:
+        final, method = RigidTransform(), "identity"
+        reliable = False
+        notes.append("fell back to the identity transform; give control points to register this floor")
+
+    if notes and (not reliable or method == "control-points"):
+        warnings.warn("registration: " + "; ".join(notes), RegistrationWarning, stacklevel=2)
+
+    t0 = time.perf_counter()
+    if final is auto_tr and auto_tr is not None:
+        score = score_auto
+    else:
+        pn_ = _pyramid(new) if cp_tr is None or auto else _pyramid(new)
+        po_ = _pyramid(old)
+        score_lv = pn_[min(1, len(pn_) - 1)] if pn_[0].img.size > 4 * QUALITY_CELLS else pn_[0]
+        score = _ncc_aligned(score_lv, _closest_level(po_, score_lv.pitch), final)
+    overlap, rms = _thickness_quality(new, old, final)
+    timings["quality"] = time.perf_counter() - t0
+    cres = None
+    if old_xy is not None:
+        xn, yn = final.apply(old_xy[:, 0], old_xy[:, 1])
+        cres = np.hypot(xn - new_xy[:, 0], yn - new_xy[:, 1]).tolist()
+    timings["total"] = time.perf_counter() - t_start
+    return Registration(
+        transform=final,
+        score=float(np.clip(score, 0.0, 1.0)) if math.isfinite(score) else 0.0,
+        overlap_pct=float(overlap),
+        residual_rms_mm=float(rms),
+        method=method,
+        reliable=bool(reliable),
+        warnings=notes,
+        control_residuals_mm=cres,
+        control_names=cp_names,
+        auto_transform=auto_tr,
+        rotation_contrast=contrast,
+        std_rotation_deg=std_rot,
+        std_shift_mm=std_shift,
+        timings_s=timings,
+        details=details,
+    )

@@ -1,0 +1,1389 @@
+"""Repair planning with lap-welded patch plates, and re-assessment as repaired.
+
+The engineer's question is "what must I repair for the interval I want?"
+[domain.md §6].  This module answers it in four steps, each a plain function:
+
+1. :func:`cells_needing_repair` marks the cells that would fall below MRT before the
+   target interval at their own measured rates (or, the code's way, every cell
+   thinner than a repair-to thickness).
+2. :func:`plan_patches` groups the marked cells into rectangular patch plates with
+   rounded corners that obey the patch rules of API 653 §9.10.1.1 as quoted in
+   domain.md §6 (minimum size, extension beyond the corrosion, clearance of the
+   fillet welds from existing bottom welds and from other patches, the critical
+   zone).  Every number comes from the :class:`~scananalyse.rules.RuleSet` passed in.
+3. :func:`apply_patches` turns the maps into the floor as repaired, for a second run
+   of the assessment.
+4. :func:`check_patch_rules` and :func:`uncovered_cells` judge an engineer's own
+   patch set (read with :func:`read_patches` from the ``patches.csv`` columns or
+   from a DXF of closed outlines edited in CAD).
+
+Geometry
+--------
+A patch is an axis-aligned rectangle ``[x_min, x_max] × [y_min, y_max]`` in the new
+scan's floor frame with corner radius ``R`` (0 ≤ R ≤ half the smaller side); its
+outline is the fillet weld.  A grid cell is a square of side ``pitch`` about its
+centre ``(x0 + j·pitch, y0 + i·pitch)``.  A cell is *covered* by a patch when its
+centre lies inside the rounded outline.  Distances between welds are measured on
+the sharp rectangles, which is conservative: rounding only moves a weld away.
+
+Seams (existing bottom welds) are straight segments ``(x1, y1, x2, y2)`` [mm],
+given directly (for example ``synth`` truth) or derived from a plate-id layer by
+:func:`seams_from_plate` (boundaries between cells of different plates, across
+unscanned gaps up to ``max_gap_mm``).  A patch *overlaps* a seam when a seam
+passes through its interior: crossing a seam is allowed at the larger minimum
+size, as the rule reads.  The weld-clearance rule is taken as: no seam may run
+alongside a patch edge closer than the clearance.  A seam "runs alongside" an edge
+when it is within 45° of the edge's direction; seams crossing an edge at a larger
+angle are the overlap case.  Plate-layer seams are staircases of grid steps; only
+straight runs at least as long as the clearance take part in the clearance test
+(steeply diagonal plate-layer seams are checked for overlap only).
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+import os
+import tempfile
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import ndimage
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+from skimage.measure import label as _sk_label
+
+from .errors import InputError, ScanWarning, where
+
+__all__ = [
+    "PATCH_COLUMNS",
+    "FLAG_CRITICAL",
+    "FLAG_CRITICAL_THICKNESS",
+    "FLAG_WELD_CLEARANCE",
+    "FLAG_TOO_SMALL",
+    "FLAG_TOO_CLOSE",
+    "FLAG_OVERLAP_SIZE",
+    "FLAG_NOT_BEYOND",
+    "RepairPlan",
+    "cells_needing_repair",
+    "seams_from_plate",
+    "rounded_rect_area_mm2",
+    "patch_mass_kg",
+    "plan_patches",
+    "covered_cells",
+    "apply_patches",
+    "check_patch_rules",
+    "uncovered_cells",
+    "plan_repairs",
+    "repair_to_plan",
+    "read_patches",
+    "write_patches_csv",
+    "write_patches_dxf",
+]
+
+#: Columns of ``patches.csv`` (design.md §3.5) plus ``n_cells_covered``.
+PATCH_COLUMNS = ["patch", "zone", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm",
+                 "corner_radius_mm", "thickness_mm", "area_m2", "mass_kg", "flags",
+                 "n_cells_covered"]
+
+FLAG_CRITICAL = "critical-zone-special-repair"
+FLAG_CRITICAL_THICKNESS = "critical-zone-thickness"
+FLAG_WELD_CLEARANCE = "weld-clearance"
+FLAG_TOO_SMALL = "too-small"
+FLAG_TOO_CLOSE = "too-close"
+FLAG_OVERLAP_SIZE = "overlaps-without-min-size"
+FLAG_NOT_BEYOND = "not-beyond-corrosion"
+
+# Geometric tolerance for comparisons of positions. [mm]
+_TOL = 1e-6
+# Layer names and application id of our DXF files.
+_DXF_LAYER = "SCANANALYSE_PATCH"
+_DXF_TEXT_LAYER = "SCANANALYSE_PATCH_ID"
+_DXF_APPID = "SCANANALYSE"
+# DXF $INSUNITS codes we convert exactly (to mm).
+_DXF_UNITS_MM = {1: 25.4, 2: 304.8, 4: 1.0, 5: 10.0, 6: 1000.0}
+_REQUIRED_CSV = ("patch", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm")
+
+
+# ---------------------------------------------------------------------------
+# which cells need repair
+# ---------------------------------------------------------------------------
+def cells_needing_repair(thickness, rate_top, rate_under, *, mrt_mm, target_years,
+                         repair_to_mm=None) -> np.ndarray:
+    """Cells that must be repaired for the floor to last the target interval.
+
+    Parameters
+    ----------
+    thickness : remaining thickness, NaN where not scanned. [mm]
+    rate_top : governing top-side (product side) rate at each cell; negative and NaN
+        values count as 0. [mm/y]
+    rate_under : governing underside (soil side) rate at each cell; negative and NaN
+        values count as 0. [mm/y]
+    mrt_mm : minimum remaining thickness at the end of the interval, scalar or per
+        cell (e.g. the critical-zone minimum there). [mm]
+    target_years : the interval the floor must last. [y]
+    repair_to_mm : if given, the code's way instead: every cell thinner than this
+        repair-to thickness, whatever its rate. [mm]
+
+    Returns
+    -------
+    bool array : True where the cell needs repair.  NaN (unscanned) cells never do.
+
+    Notes
+    -----
+    Co-located criterion (domain.md §5–6): a cell needs repair when
+    ``t − (r_top + r_under)·target < MRT``, i.e. its own projected life
+    ``(t − MRT)/(r_top + r_under)`` is shorter than the target.  A cell already
+    below MRT needs repair whatever its rates, hence NaN rates count as 0 here.
+    """
+    t = np.asarray(thickness, dtype=np.float32)
+    if repair_to_mm is not None:
+        rt = float(repair_to_mm)
+        if not math.isfinite(rt) or rt <= 0:
+            raise InputError(f"repair: field 'repair_to_mm': must be a positive number, got {repair_to_mm!r}")
+        with np.errstate(invalid="ignore"):
+            return np.isfinite(t) & (t < np.float32(rt))
+    ty = float(target_years)
+    if not math.isfinite(ty) or ty < 0:
+        raise InputError(f"repair: field 'target_years': must be a number >= 0, got {target_years!r}")
+    rt_ = np.nan_to_num(np.asarray(rate_top, dtype=np.float32), nan=0.0, posinf=np.inf)
+    ru_ = np.nan_to_num(np.asarray(rate_under, dtype=np.float32), nan=0.0, posinf=np.inf)
+    s = np.maximum(rt_, np.float32(0)) + np.maximum(ru_, np.float32(0))
+    mrt = np.asarray(mrt_mm, dtype=np.float32)
+    with np.errstate(invalid="ignore"):
+        out = (t - s * np.float32(ty)) < mrt
+    return np.isfinite(t) & out
+
+
+# ---------------------------------------------------------------------------
+# seams
+# ---------------------------------------------------------------------------
+def _runs_to_segments(row, key, vertical, x0, y0, pitch):
+    """Merge unit seam elements at (row, key) into straight runs."""
+    if row.size == 0:
+        return np.zeros((0, 4))
+    order = np.lexsort((row, key))
+    r, k = row[order], key[order]
+    brk = np.ones(r.size, dtype=bool)
+    brk[1:] = (k[1:] != k[:-1]) | (r[1:] != r[:-1] + 1)
+    starts = np.flatnonzero(brk)
+    ends = np.concatenate([starts[1:], [r.size]]) - 1
+    pos = k[starts] / 2.0          # key = j + j_next: twice the boundary position in cells
+    a = r[starts] - 0.5
+    b = r[ends] + 0.5
+    if vertical:   # rows are grid rows (y), boundary lies at x = x0 + pos*pitch
+        xs = x0 + pos * pitch
+        return np.column_stack([xs, y0 + a * pitch, xs, y0 + b * pitch])
+    ys = y0 + pos * pitch
+    return np.column_stack([x0 + a * pitch, ys, x0 + b * pitch, ys])
+
+
+def _boundaries_along_rows(ids, kmax):
+    """Unit boundaries between different plate ids along axis 1, across ≤ kmax unscanned cells."""
+    ny, nx = ids.shape
+    valid = ids >= 0
+    cols = np.arange(nx, dtype=np.int32)
+    nxt = np.where(valid, cols[None, :], np.int32(nx))
+    nxt = np.minimum.accumulate(nxt[:, ::-1], axis=1)[:, ::-1]
+    nxt_after = np.empty_like(nxt)
+    nxt_after[:, :-1] = nxt[:, 1:]
+    nxt_after[:, -1] = nx
+    ii, jj = np.nonzero(valid & (nxt_after < nx) & (nxt_after - cols[None, :] - 1 <= kmax))
+    jn = nxt_after[ii, jj]
+    diff = ids[ii, jj] != ids[ii, jn]
+    return ii[diff].astype(np.int64), (jj[diff] + jn[diff]).astype(np.int64)
+
+
+def seams_from_plate(plate, *, x0, y0, pitch, max_gap_mm=100.0) -> np.ndarray:
+    """Seam segments at the boundaries of a plate-id layer.
+
+    Parameters
+    ----------
+    plate : int array (rows, cols) of plate ids on the grid, −1 for none. [-]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+    max_gap_mm : two plates separated by at most this many mm of cells with id −1
+        (an unscanned seam band) still share a seam, placed mid-gap. [mm]
+
+    Returns
+    -------
+    float64 array (n, 4) : axis-aligned segments ``(x1, y1, x2, y2)``, one per
+    straight run of boundary between two plates. [mm]
+    """
+    ids = np.asarray(plate)
+    if ids.ndim != 2:
+        raise InputError(f"repair: field 'plate': expected a 2-D plate-id layer, got shape {ids.shape}")
+    ids = ids.astype(np.int32, copy=False)
+    kmax = int(math.floor(float(max_gap_mm) / float(pitch) + 1e-9))
+    r_v, k_v = _boundaries_along_rows(ids, kmax)      # vertical seams (between columns)
+    r_h, k_h = _boundaries_along_rows(ids.T, kmax)    # horizontal seams (between rows)
+    sv = _runs_to_segments(r_v, k_v, True, float(x0), float(y0), float(pitch))
+    sh = _runs_to_segments(r_h, k_h, False, float(x0), float(y0), float(pitch))
+    return np.concatenate([sv, sh], axis=0)
+
+
+def _seam_set(seams, plate, x0, y0, pitch, clearance):
+    """(segments (n, 4), used-for-clearance mask (n,)) from the user's seams and/or plate layer."""
+    parts, use = [], []
+    if seams is not None:
+        s = np.asarray(seams, dtype=np.float64)
+        if s.size == 0:
+            s = s.reshape(0, 4)
+        if s.ndim != 2 or s.shape[1] != 4 or not np.all(np.isfinite(s)):
+            raise InputError("repair: field 'seams': expected finite segments (x1, y1, x2, y2) in mm")
+        parts.append(s)
+        use.append(np.ones(len(s), dtype=bool))
+    if plate is not None:
+        s = seams_from_plate(plate, x0=x0, y0=y0, pitch=pitch)
+        length = np.hypot(s[:, 2] - s[:, 0], s[:, 3] - s[:, 1])
+        parts.append(s)
+        use.append(length >= clearance - _TOL)
+    if not parts:
+        return np.zeros((0, 4)), np.zeros(0, dtype=bool)
+    return np.concatenate(parts, axis=0), np.concatenate(use)
+
+
+# ---------------------------------------------------------------------------
+# elementary geometry (vectorised)
+# ---------------------------------------------------------------------------
+def rounded_rect_area_mm2(width_mm, height_mm, radius_mm):
+    """Area of a rectangle with rounded corners.
+
+    Parameters
+    ----------
+    width_mm, height_mm : sides of the rectangle. [mm]
+    radius_mm : corner radius, at most half the smaller side. [mm]
+
+    Returns
+    -------
+    Area w·h − (4 − π)·R². [mm²]
+    """
+    w = np.asarray(width_mm, dtype=np.float64)
+    h = np.asarray(height_mm, dtype=np.float64)
+    r = np.asarray(radius_mm, dtype=np.float64)
+    return w * h - (4.0 - math.pi) * r * r
+
+
+def patch_mass_kg(area_m2, thickness_mm, *, density_kg_m3):
+    """Steel mass of a patch plate: area × thickness × density.
+
+    Parameters
+    ----------
+    area_m2 : plate area. [m²]
+    thickness_mm : plate thickness. [mm]
+    density_kg_m3 : steel density (rule ``steel_density_kg_m3``). [kg/m³]
+
+    Returns
+    -------
+    Mass. [kg]
+    """
+    return np.asarray(area_m2, dtype=np.float64) * np.asarray(thickness_mm, dtype=np.float64) / 1000.0 \
+        * float(density_kg_m3)
+
+
+def _pt_seg_dist(px, py, ax, ay, bx, by):
+    dx, dy = bx - ax, by - ay
+    ll = dx * dx + dy * dy
+    with np.errstate(invalid="ignore", divide="ignore"):
+        t = np.where(ll > 0, ((px - ax) * dx + (py - ay) * dy) / np.where(ll > 0, ll, 1.0), 0.0)
+    t = np.clip(t, 0.0, 1.0)
+    return np.hypot(px - (ax + t * dx), py - (ay + t * dy))
+
+
+def _seg_seg_dist(a, b):
+    """Distance between segments a[..., 4] and b[..., 4] (broadcast)."""
+    ax1, ay1, ax2, ay2 = (a[..., k] for k in range(4))
+    bx1, by1, bx2, by2 = (b[..., k] for k in range(4))
+
+    def orient(px, py, qx, qy, rx, ry):
+        return np.sign((qx - px) * (ry - py) - (qy - py) * (rx - px))
+
+    o1 = orient(ax1, ay1, ax2, ay2, bx1, by1)
+    o2 = orient(ax1, ay1, ax2, ay2, bx2, by2)
+    o3 = orient(bx1, by1, bx2, by2, ax1, ay1)
+    o4 = orient(bx1, by1, bx2, by2, ax2, ay2)
+    cross = (o1 * o2 < 0) & (o3 * o4 < 0)
+    d = np.minimum.reduce([
+        _pt_seg_dist(ax1, ay1, bx1, by1, bx2, by2), _pt_seg_dist(ax2, ay2, bx1, by1, bx2, by2),
+        _pt_seg_dist(bx1, by1, ax1, ay1, ax2, ay2), _pt_seg_dist(bx2, by2, ax1, ay1, ax2, ay2)])
+    return np.where(cross, 0.0, d)
+
+
+def _clip_params(s, xa, ya, xb, yb):
+    """Liang–Barsky: parameter interval (t0, t1) of segments s (n, 4) inside the box."""
+    x1, y1 = s[:, 0], s[:, 1]
+    dx, dy = s[:, 2] - x1, s[:, 3] - y1
+    t0 = np.zeros(len(s))
+    t1 = np.ones(len(s))
+    for p, q in ((-dx, x1 - xa), (dx, xb - x1), (-dy, y1 - ya), (dy, yb - y1)):
+        par = np.abs(p) < 1e-15
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = q / np.where(par, 1.0, p)
+        t0 = np.where(~par & (p < 0), np.maximum(t0, r), t0)
+        t1 = np.where(~par & (p > 0), np.minimum(t1, r), t1)
+        # parallel and outside: empty
+        t1 = np.where(par & (q < 0), -1.0, t1)
+    return t0, t1
+
+
+def _seams_through(segs, rect):
+    """True if any segment passes through the open interior of rect (xa, ya, xb, yb)."""
+    if len(segs) == 0:
+        return False
+    xa, ya, xb, yb = rect
+    t0, t1 = _clip_params(segs, xa + _TOL, ya + _TOL, xb - _TOL, yb - _TOL)
+    return bool(np.any(t1 - t0 > 1e-12))
+
+
+def _edges(rect):
+    xa, ya, xb, yb = rect
+    horiz = np.array([[xa, ya, xb, ya], [xa, yb, xb, yb]])
+    vert = np.array([[xa, ya, xa, yb], [xb, ya, xb, yb]])
+    return horiz, vert
+
+
+def _near_box(segs, rect, c):
+    """Segments whose bounding box meets rect grown by c (cheap prefilter)."""
+    xa, ya, xb, yb = rect
+    sx0 = np.minimum(segs[:, 0], segs[:, 2])
+    sx1 = np.maximum(segs[:, 0], segs[:, 2])
+    sy0 = np.minimum(segs[:, 1], segs[:, 3])
+    sy1 = np.maximum(segs[:, 1], segs[:, 3])
+    return (sx1 > xa - c) & (sx0 < xb + c) & (sy1 > ya - c) & (sy0 < yb + c)
+
+
+def _clearance_violation(segs, xish, rect, c):
+    """Seams running alongside an edge of rect closer than c.
+
+    Returns (violated, grow) with grow = (xa', ya', xb', yb') the rectangle grown so
+    that each offending seam is overlapped and lies at least c inside the edge.
+    """
+    xa, ya, xb, yb = rect
+    if len(segs) == 0 or c <= 0:
+        return False, rect
+    near = _near_box(segs, rect, c)
+    if not np.any(near):
+        return False, rect
+    s, xi = segs[near], xish[near]
+    horiz, vert = _edges(rect)
+    g = [xa, ya, xb, yb]
+    bad = False
+    sx = s[xi]
+    if len(sx):
+        d_bot = _seg_seg_dist(sx, horiz[0][None, :])
+        d_top = _seg_seg_dist(sx, horiz[1][None, :])
+        hit_b, hit_t = d_bot < c - _TOL, d_top < c - _TOL
+        if np.any(hit_b | hit_t):
+            bad = True
+            t0, t1 = _clip_params(sx, xa - c, -np.inf, xb + c, np.inf)
+            y_lo = np.minimum(sx[:, 1] + t0 * (sx[:, 3] - sx[:, 1]), sx[:, 1] + t1 * (sx[:, 3] - sx[:, 1]))
+            y_hi = np.maximum(sx[:, 1] + t0 * (sx[:, 3] - sx[:, 1]), sx[:, 1] + t1 * (sx[:, 3] - sx[:, 1]))
+            if np.any(hit_b):
+                g[1] = min(g[1], float(np.min(y_lo[hit_b])) - c)
+            if np.any(hit_t):
+                g[3] = max(g[3], float(np.max(y_hi[hit_t])) + c)
+    sy = s[~xi]
+    if len(sy):
+        d_l = _seg_seg_dist(sy, vert[0][None, :])
+        d_r = _seg_seg_dist(sy, vert[1][None, :])
+        hit_l, hit_r = d_l < c - _TOL, d_r < c - _TOL
+        if np.any(hit_l | hit_r):
+            bad = True
+            t0, t1 = _clip_params(sy, -np.inf, ya - c, np.inf, yb + c)
+            x_lo = np.minimum(sy[:, 0] + t0 * (sy[:, 2] - sy[:, 0]), sy[:, 0] + t1 * (sy[:, 2] - sy[:, 0]))
+            x_hi = np.maximum(sy[:, 0] + t0 * (sy[:, 2] - sy[:, 0]), sy[:, 0] + t1 * (sy[:, 2] - sy[:, 0]))
+            if np.any(hit_l):
+                g[0] = min(g[0], float(np.min(x_lo[hit_l])) - c)
+            if np.any(hit_r):
+                g[2] = max(g[2], float(np.max(x_hi[hit_r])) + c)
+    return bad, tuple(g)
+
+
+def _rect_gaps(R, chunk=1024):
+    """Yield (i_index_array, j_index_array) of pairs i<j with their rectangle gap (chunked)."""
+    n = len(R)
+    for s in range(0, n, chunk):
+        a = R[s:s + chunk]
+        dx = np.maximum.reduce([np.zeros((len(a), n)), R[None, :, 0] - a[:, None, 2],
+                                a[:, None, 0] - R[None, :, 2]])
+        dy = np.maximum.reduce([np.zeros((len(a), n)), R[None, :, 1] - a[:, None, 3],
+                                a[:, None, 1] - R[None, :, 3]])
+        yield s, np.hypot(dx, dy), (np.minimum(a[:, None, 2], R[None, :, 2]) - np.maximum(a[:, None, 0], R[None, :, 0]),
+                                    np.minimum(a[:, None, 3], R[None, :, 3]) - np.maximum(a[:, None, 1], R[None, :, 1]))
+
+
+def _overlaps_other(R):
+    """Per rectangle: does it overlap (positive area) any other?"""
+    n = len(R)
+    out = np.zeros(n, dtype=bool)
+    for s, _gap, (ox, oy) in _rect_gaps(R):
+        ov = (ox > _TOL) & (oy > _TOL)
+        idx = np.arange(s, min(s + len(ov), n))
+        ov[np.arange(len(ov)), idx] = False
+        out[idx] |= ov.any(axis=1)
+    return out
+
+
+def _merge_close(R, c):
+    """Merge rectangles closer than c (or overlapping) into their bounding rectangles."""
+    n = len(R)
+    if n < 2:
+        return R, False
+    rows, cols = [], []
+    for s, gap, _ov in _rect_gaps(R):
+        ii, jj = np.nonzero(gap < c - _TOL)
+        ii = ii + s
+        keep = jj > ii
+        rows.append(ii[keep])
+        cols.append(jj[keep])
+    rows = np.concatenate(rows)
+    cols = np.concatenate(cols)
+    if rows.size == 0:
+        return R, False
+    g = coo_matrix((np.ones(rows.size), (rows, cols)), shape=(n, n))
+    ncomp, lab = connected_components(g, directed=False)
+    out = np.empty((ncomp, 4))
+    out[:, 0] = ndimage.minimum(R[:, 0], lab, np.arange(ncomp))
+    out[:, 1] = ndimage.minimum(R[:, 1], lab, np.arange(ncomp))
+    out[:, 2] = ndimage.maximum(R[:, 2], lab, np.arange(ncomp))
+    out[:, 3] = ndimage.maximum(R[:, 3], lab, np.arange(ncomp))
+    return out, True
+
+
+def _grow_to(R, need):
+    """Grow each rectangle symmetrically about its centre to at least need × need."""
+    w = R[:, 2] - R[:, 0]
+    h = R[:, 3] - R[:, 1]
+    ex = np.maximum(0.0, need - w) / 2.0
+    ey = np.maximum(0.0, need - h) / 2.0
+    out = R.copy()
+    out[:, 0] -= ex
+    out[:, 2] += ex
+    out[:, 1] -= ey
+    out[:, 3] += ey
+    return out
+
+
+def _window(rect, x0, y0, pitch, shape, pad=0.0):
+    """Index slices of the cells whose centres lie in rect grown by pad (clipped to the grid)."""
+    xa, ya, xb, yb = rect
+    j0 = max(0, int(math.ceil((xa - pad - x0) / pitch - 1e-9)))
+    j1 = min(shape[1], int(math.floor((xb + pad - x0) / pitch + 1e-9)) + 1)
+    i0 = max(0, int(math.ceil((ya - pad - y0) / pitch - 1e-9)))
+    i1 = min(shape[0], int(math.floor((yb + pad - y0) / pitch + 1e-9)) + 1)
+    return slice(i0, max(i0, i1)), slice(j0, max(j0, j1))
+
+
+def _inside_rounded(px, py, rect, radius, tol=_TOL):
+    """Points inside (or on) the rounded rectangle."""
+    xa, ya, xb, yb = rect
+    cx, cy = (xa + xb) / 2.0, (ya + yb) / 2.0
+    hx, hy = (xb - xa) / 2.0 - radius, (yb - ya) / 2.0 - radius
+    dx = np.maximum(0.0, np.abs(px - cx) - hx)
+    dy = np.maximum(0.0, np.abs(py - cy) - hy)
+    return (np.abs(px - cx) <= hx + radius + tol) & (np.abs(py - cy) <= hy + radius + tol) \
+        & (dx * dx + dy * dy <= (radius + tol) ** 2)
+
+
+def _cell_centres(sl, x0, y0, pitch):
+    ys = y0 + pitch * np.arange(sl[0].start, sl[0].stop, dtype=np.float64)
+    xs = x0 + pitch * np.arange(sl[1].start, sl[1].stop, dtype=np.float64)
+    return xs[None, :], ys[:, None]
+
+
+def _rects_of(patches):
+    """(R (n, 4), radius (n,), thickness (n,), ids list) from a patch table."""
+    df = patches
+    R = np.column_stack([df["x_min_mm"].to_numpy(float), df["y_min_mm"].to_numpy(float),
+                         df["x_max_mm"].to_numpy(float), df["y_max_mm"].to_numpy(float)]) \
+        if len(df) else np.zeros((0, 4))
+    rad = df["corner_radius_mm"].to_numpy(float) if "corner_radius_mm" in df and len(df) else np.zeros(len(df))
+    rad = np.nan_to_num(rad, nan=0.0)
+    rad = np.minimum(rad, np.minimum(R[:, 2] - R[:, 0], R[:, 3] - R[:, 1]) / 2.0) if len(df) else rad
+    thk = df["thickness_mm"].to_numpy(float) if "thickness_mm" in df and len(df) else np.full(len(df), np.nan)
+    ids = [str(p) for p in df["patch"]] if "patch" in df else [f"P{k + 1:03d}" for k in range(len(df))]
+    return R, rad, thk, ids
+
+
+def _critical_of(critical_mask, zone_labels, zone_names):
+    if critical_mask is not None:
+        return np.asarray(critical_mask, dtype=bool)
+    if zone_labels is not None and zone_names is not None and "critical" in list(zone_names):
+        return np.asarray(zone_labels) == list(zone_names).index("critical")
+    return None
+
+
+def _touches(mask, rect, x0, y0, pitch):
+    """Any True cell of mask whose square meets the open rectangle."""
+    if mask is None:
+        return False
+    sl = _window(rect, x0, y0, pitch, mask.shape, pad=pitch / 2.0 - _TOL)
+    return bool(mask[sl].any())
+
+
+# ---------------------------------------------------------------------------
+# rule checks (shared by the planner and the checker)
+# ---------------------------------------------------------------------------
+def _not_beyond(needs, rect, radius, margin, x0, y0, pitch):
+    """Marked cells closer than margin to the outline (inside or outside)."""
+    sl = _window(rect, x0, y0, pitch, needs.shape, pad=margin + pitch)
+    sub = needs[sl]
+    if not sub.any():
+        return False
+    X, Y = _cell_centres(sl, x0, y0, pitch)
+    ii, jj = np.nonzero(sub)
+    px = X[0, jj]
+    py = Y[ii, 0]
+    xa, ya, xb, yb = rect
+    cx, cy = (xa + xb) / 2.0, (ya + yb) / 2.0
+    hw, hh = (xb - xa) / 2.0, (yb - ya) / 2.0
+    h = pitch / 2.0
+    # inside the outline inset by margin: core inset by max(R, m), radius max(R - m, 0)
+    ci = max(radius, margin)
+    r_in = max(radius - margin, 0.0)
+    hx_in, hy_in = hw - ci, hh - ci
+    inside = np.ones(px.size, dtype=bool)
+    if hx_in < -_TOL or hy_in < -_TOL:
+        inside[:] = False
+    else:
+        for sx in (-h, h):
+            for sy in (-h, h):
+                dx = np.maximum(0.0, np.abs(px + sx - cx) - hx_in)
+                dy = np.maximum(0.0, np.abs(py + sy - cy) - hy_in)
+                inside &= dx * dx + dy * dy <= (r_in + _TOL) ** 2
+    # distance from the cell square to the core of the outline
+    hx, hy = hw - radius, hh - radius
+    gx = np.maximum(0.0, np.abs(px - cx) - h - hx)
+    gy = np.maximum(0.0, np.abs(py - cy) - h - hy)
+    near = np.hypot(gx, gy) < radius + margin - _TOL
+    return bool(np.any(~inside & near))
+
+
+def _pair_flags(R, c, min_overlap):
+    """Per patch: too close to another patch (parallel edges within c); overlapping
+    another while smaller than the overlap minimum."""
+    n = len(R)
+    close = np.zeros(n, dtype=bool)
+    ov_any = np.zeros(n, dtype=bool)
+    if n < 2:
+        return close, ov_any
+    for s in range(0, n, 512):
+        a = R[s:s + 512]
+        idx = np.arange(s, s + len(a))
+        # vertical edges: x positions, y spans
+        dmin = np.full((len(a), n), np.inf)
+        for ea in (0, 2):
+            for eb in (0, 2):
+                gap_span = np.maximum.reduce([np.zeros((len(a), n)), R[None, :, 1] - a[:, None, 3],
+                                              a[:, None, 1] - R[None, :, 3]])
+                dmin = np.minimum(dmin, np.hypot(a[:, None, ea] - R[None, :, eb], gap_span))
+        for ea in (1, 3):
+            for eb in (1, 3):
+                gap_span = np.maximum.reduce([np.zeros((len(a), n)), R[None, :, 0] - a[:, None, 2],
+                                              a[:, None, 0] - R[None, :, 2]])
+                dmin = np.minimum(dmin, np.hypot(a[:, None, ea] - R[None, :, eb], gap_span))
+        dmin[np.arange(len(a)), idx] = np.inf
+        close[idx] = (dmin < c - _TOL).any(axis=1)
+        ox = np.minimum(a[:, None, 2], R[None, :, 2]) - np.maximum(a[:, None, 0], R[None, :, 0])
+        oy = np.minimum(a[:, None, 3], R[None, :, 3]) - np.maximum(a[:, None, 1], R[None, :, 1])
+        ov = (ox > _TOL) & (oy > _TOL)
+        ov[np.arange(len(a)), idx] = False
+        ov_any[idx] = ov.any(axis=1)
+    return close, ov_any
+
+
+def _rule_flags(R, rad, thk, *, rules, segs, use, critical, needs, x0, y0, pitch, check_min_size=True):
+    """List of flag lists, one per patch."""
+    c = rules.v("patch_weld_clearance_mm")
+    m = rules.v("patch_extend_beyond_mm")
+    min_small = rules.v("patch_min_size_mm")
+    min_over = rules.v("patch_min_size_overlap_mm")
+    tmax_crit = rules.v("patch_critical_max_thickness_mm")
+    xish = np.abs(segs[:, 2] - segs[:, 0]) >= np.abs(segs[:, 3] - segs[:, 1]) if len(segs) else np.zeros(0, bool)
+    close, ov_patch = _pair_flags(R, c, min_over)
+    out = []
+    for k in range(len(R)):
+        rect = tuple(R[k])
+        f = []
+        size = min(rect[2] - rect[0], rect[3] - rect[1])
+        over = ov_patch[k] or _seams_through(segs, rect)
+        if check_min_size and size < min_small - _TOL:
+            f.append(FLAG_TOO_SMALL)
+        if check_min_size and over and size < min_over - _TOL:
+            f.append(FLAG_OVERLAP_SIZE)
+        if close[k]:
+            f.append(FLAG_TOO_CLOSE)
+        if _clearance_violation(segs[use], xish[use], rect, c)[0]:
+            f.append(FLAG_WELD_CLEARANCE)
+        if critical is not None and _touches(critical, rect, x0, y0, pitch):
+            f.append(FLAG_CRITICAL)
+            if np.isfinite(thk[k]) and thk[k] > tmax_crit + _TOL:
+                f.append(FLAG_CRITICAL_THICKNESS)
+        if needs is not None and _not_beyond(needs, rect, rad[k], m, x0, y0, pitch):
+            f.append(FLAG_NOT_BEYOND)
+        out.append(f)
+    return out
+
+
+# ---------------------------------------------------------------------------
+# planning
+# ---------------------------------------------------------------------------
+def _zone_of(needs, rect, zone_labels, zone_names, x0, y0, pitch):
+    if zone_labels is None:
+        return ""
+    sl = _window(rect, x0, y0, pitch, needs.shape)
+    lab = np.asarray(zone_labels)[sl][needs[sl]]
+    lab = lab[lab >= 0]
+    if lab.size == 0:
+        lab = np.asarray(zone_labels)[sl].ravel()
+        lab = lab[lab >= 0]
+        if lab.size == 0:
+            return ""
+    k = int(np.argmax(np.bincount(lab.astype(np.int64))))
+    if zone_names is None:
+        return str(k)
+    return str(list(zone_names)[k])
+
+
+def _patch_table(R, rad, thk, flags, zones, ncov, density):
+    w = R[:, 2] - R[:, 0]
+    h = R[:, 3] - R[:, 1]
+    area = rounded_rect_area_mm2(w, h, rad) / 1e6
+    df = pd.DataFrame({
+        "patch": [f"P{k + 1:03d}" for k in range(len(R))],
+        "zone": zones,
+        "x_min_mm": R[:, 0], "y_min_mm": R[:, 1], "x_max_mm": R[:, 2], "y_max_mm": R[:, 3],
+        "corner_radius_mm": rad, "thickness_mm": thk, "area_m2": area,
+        "mass_kg": patch_mass_kg(area, thk, density_kg_m3=density),
+        "flags": [";".join(f) for f in flags],
+        "n_cells_covered": np.asarray(ncov, dtype=np.int64),
+    }, columns=PATCH_COLUMNS)
+    return df
+
+
+def plan_patches(needs, *, x0, y0, pitch, rules, seams=None, plate=None, critical_mask=None,
+                 zone_labels=None, zone_names=None, patch_thickness_mm=None,
+                 allow_small=True, fix_clearance=True, max_iter=100) -> pd.DataFrame:
+    """Group cells needing repair into patch plates that obey the patch rules.
+
+    Parameters
+    ----------
+    needs : bool array (rows, cols), True where a cell needs repair. [-]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+    rules : :class:`~scananalyse.rules.RuleSet`; uses ``patch_extend_beyond_mm``,
+        ``patch_min_size_mm``, ``patch_min_size_overlap_mm``,
+        ``patch_weld_clearance_mm``, ``patch_corner_radius_mm``,
+        ``patch_thickness_mm``, ``patch_critical_max_thickness_mm``,
+        ``steel_density_kg_m3``.
+    seams : existing bottom welds as segments ``(x1, y1, x2, y2)``. [mm]
+    plate : plate-id layer on the grid; its plate boundaries are seams too. [-]
+    critical_mask : bool array of critical-zone cells; default the zone named
+        ``critical`` in ``zone_labels``/``zone_names`` when given. [-]
+    zone_labels : int array of zone labels on the grid (−1 none). [-]
+    zone_names : zone names indexed by label. [-]
+    patch_thickness_mm : thickness of the proposed plates; default the rule value. [mm]
+    allow_small : allow patches down to ``patch_min_size_mm`` when they overlap no
+        seam and no other patch (the rule as written); False = always the overlap
+        minimum. [-]
+    fix_clearance : grow a patch across a seam that runs too close along its edge;
+        False = only flag it. [-]
+    max_iter : cap on the grow/merge iterations. [-]
+
+    Returns
+    -------
+    DataFrame with :data:`PATCH_COLUMNS`, one patch a row, sorted by (y_min, x_min).
+
+    Notes
+    -----
+    Algorithm (rules from API 653 §9.10.1.1 and Fig. 9.13 as quoted in domain.md §6):
+
+    1. Label the marked cells in 8-connected groups (:func:`skimage.measure.label`);
+       each group's bounding box of cell edges grown by ``patch_extend_beyond_mm``
+       (plus ``(R − m)(1 − 1/√2)`` if the corner radius R exceeds the margin m, so
+       the rounded corners still clear every marked cell by m).
+    2. Repeat until nothing changes: (a) merge patches that overlap or whose
+       rectangles come closer than ``patch_weld_clearance_mm`` into their bounding
+       rectangle; (b) grow each patch symmetrically to its minimum size:
+       ``patch_min_size_overlap_mm`` if a seam passes through it or it overlaps
+       another patch, else ``patch_min_size_mm``, and merge again; (c) where a seam
+       runs alongside an edge closer than the clearance, grow that edge across the
+       seam until it lies the clearance beyond it (the patch then overlaps the seam
+       and takes the larger minimum at the next pass).
+    3. Corner radius ``min(patch_corner_radius_mm, half the smaller side)``; zone =
+       the zone holding most of the covered marked cells; flags from the same
+       checks as :func:`check_patch_rules` (``weld-clearance`` left only if the
+       iteration cap was hit or ``fix_clearance`` is False;
+       ``critical-zone-special-repair`` for any patch touching the critical zone,
+       where only special shapes such as a tombstone plate, or an insert plate,
+       will do).
+    4. Area of the rounded rectangle, mass = area × thickness × steel density.
+    """
+    nd = np.asarray(needs, dtype=bool)
+    if nd.ndim != 2:
+        raise InputError(f"repair: field 'needs': expected a 2-D mask, got shape {nd.shape}")
+    x0, y0, pitch = float(x0), float(y0), float(pitch)
+    m = rules.v("patch_extend_beyond_mm")
+    c = rules.v("patch_weld_clearance_mm")
+    min_small = rules.v("patch_min_size_mm") if allow_small else rules.v("patch_min_size_overlap_mm")
+    min_over = rules.v("patch_min_size_overlap_mm")
+    radius = rules.v("patch_corner_radius_mm")
+    thk = float(rules.v("patch_thickness_mm") if patch_thickness_mm is None else patch_thickness_mm)
+    if not math.isfinite(thk) or thk <= 0:
+        raise InputError(f"repair: field 'patch_thickness_mm': must be > 0, got {patch_thickness_mm!r}")
+    segs, use = _seam_set(seams, plate, x0, y0, pitch, c)
+    xish = np.abs(segs[:, 2] - segs[:, 0]) >= np.abs(segs[:, 3] - segs[:, 1]) if len(segs) else np.zeros(0, bool)
+    crit = _critical_of(critical_mask, zone_labels, zone_names)
+    density = rules.v("steel_density_kg_m3")
+
+    lab = _sk_label(nd, connectivity=2)
+    objs = ndimage.find_objects(lab)
+    if not objs:
+        return _patch_table(np.zeros((0, 4)), np.zeros(0), np.zeros(0), [], [], [], density)
+    bb = np.array([[o[1].start, o[0].start, o[1].stop - 1, o[0].stop - 1] for o in objs if o is not None],
+                  dtype=np.float64)
+    extra = (radius - m) * (1.0 - 1.0 / math.sqrt(2.0)) if radius > m else 0.0
+    grow = m + extra + pitch / 2.0
+    R = np.column_stack([x0 + bb[:, 0] * pitch - grow, y0 + bb[:, 1] * pitch - grow,
+                         x0 + bb[:, 2] * pitch + grow, y0 + bb[:, 3] * pitch + grow])
+    # a patch never needs a radius beyond half its smallest allowed side
+    for _ in range(int(max_iter)):
+        before = R.copy()
+        changed = True
+        while changed:
+            R, changed = _merge_close(R, c)
+        over = _overlaps_other(R)
+        over |= np.array([_seams_through(segs, tuple(r)) for r in R], dtype=bool) if len(segs) else False
+        R = _grow_to(R, np.where(over, min_over, min_small))
+        changed = True
+        while changed:
+            R, changed = _merge_close(R, c)
+        if fix_clearance and np.any(use):
+            R = np.array([_clearance_violation(segs[use], xish[use], tuple(r), c)[1] for r in R],
+                         dtype=np.float64)
+        if R.shape == before.shape and np.allclose(R, before, rtol=0, atol=_TOL):
+            break
+    else:
+        warnings.warn(f"patch planning did not settle in {max_iter} passes; remaining rule "
+                      "violations are flagged", ScanWarning, stacklevel=2)
+    order = np.lexsort((R[:, 0], R[:, 1]))
+    R = R[order]
+    rad = np.minimum(radius, np.minimum(R[:, 2] - R[:, 0], R[:, 3] - R[:, 1]) / 2.0)
+    thks = np.full(len(R), thk)
+    flags = _rule_flags(R, rad, thks, rules=rules, segs=segs, use=use, critical=crit, needs=nd,
+                        x0=x0, y0=y0, pitch=pitch)
+    zones = [_zone_of(nd, tuple(r), zone_labels, zone_names, x0, y0, pitch) for r in R]
+    ncov = []
+    for k in range(len(R)):
+        sl = _window(tuple(R[k]), x0, y0, pitch, nd.shape)
+        X, Y = _cell_centres(sl, x0, y0, pitch)
+        ncov.append(int(np.count_nonzero(nd[sl] & _inside_rounded(X, Y, tuple(R[k]), rad[k]))))
+    return _patch_table(R, rad, thks, flags, zones, ncov, density)
+
+
+# ---------------------------------------------------------------------------
+# coverage and the floor as repaired
+# ---------------------------------------------------------------------------
+def _validate_table(patches):
+    if not isinstance(patches, pd.DataFrame):
+        raise InputError("repair: field 'patches': expected a DataFrame with the patches.csv columns")
+    miss = [c for c in _REQUIRED_CSV if c not in patches.columns]
+    if miss:
+        raise InputError(f"repair: field '{miss[0]}': missing from the patch table")
+
+
+def _coverage(shape, patches, x0, y0, pitch, thickness_default=np.nan):
+    """(covered mask, thinnest patch thickness per cell (NaN off patches))."""
+    _validate_table(patches)
+    R, rad, thk, _ids = _rects_of(patches)
+    thk = np.where(np.isfinite(thk), thk, thickness_default)
+    cov = np.zeros(shape, dtype=bool)
+    tp = np.full(shape, np.nan, dtype=np.float32)
+    for k in range(len(R)):
+        sl = _window(tuple(R[k]), x0, y0, pitch, shape)
+        X, Y = _cell_centres(sl, x0, y0, pitch)
+        ins = _inside_rounded(X, Y, tuple(R[k]), rad[k])
+        cov[sl] |= ins
+        cur = tp[sl]
+        tp[sl] = np.where(ins, np.fmin(cur, np.float32(thk[k])), cur)
+    return cov, tp
+
+
+def covered_cells(patches, *, shape, x0, y0, pitch) -> np.ndarray:
+    """Cells whose centre lies inside any patch outline (rounded rectangle).
+
+    Parameters
+    ----------
+    patches : DataFrame with at least ``x_min_mm, y_min_mm, x_max_mm, y_max_mm``
+        (and ``corner_radius_mm``, 0 if absent). [mm]
+    shape : grid shape (rows, cols). [-]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+
+    Returns
+    -------
+    bool array on the grid.
+    """
+    return _coverage(tuple(shape), patches, float(x0), float(y0), float(pitch))[0]
+
+
+def apply_patches(thickness, rate_top, rate_under, patches, *, x0, y0, pitch,
+                  patch_thickness_mm=None, rules=None, under_cause_removed=False):
+    """The floor as repaired with the given patch plates.
+
+    Parameters
+    ----------
+    thickness : remaining thickness, NaN where not scanned. [mm]
+    rate_top : governing top-side rate map. [mm/y]
+    rate_under : governing underside rate map. [mm/y]
+    patches : patch table (:data:`PATCH_COLUMNS`; at least the rectangle columns). [mm]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+    patch_thickness_mm : thickness for patches whose ``thickness_mm`` is missing;
+        default ``rules.patch_thickness_mm``. [mm]
+    rules : rule set, for that default. [-]
+    under_cause_removed : the user says the cause of the underside corrosion was
+        removed (drainage, cathodic protection): the underside rate under the
+        patches becomes 0. [-]
+
+    Returns
+    -------
+    (thickness_rep, rate_top_rep, rate_under_rep, covered) : float32 maps and the
+    bool mask of patched cells.
+
+    Notes
+    -----
+    Conservative model of a lap-welded patch (see docs/repair.md):
+
+    * a patched, scanned cell takes the patch thickness (the thinnest where
+      patches overlap); the old plate left under it is ignored;
+    * the top-side rate is kept: the product side goes on corroding the new top
+      surface as it did the old one;
+    * the measured underside rate is kept unless ``under_cause_removed`` and applied
+      to the patch thickness, as if the patch lay on the soil.  Physically the soil
+      side must first eat through the old plate before it reaches the patch, so the
+      projected life (t_patch − MRT)/(r_top + r_under) is never longer than the
+      two-layer life;
+    * unscanned cells stay NaN: a patch does not tell what is under it.
+    """
+    t = np.asarray(thickness, dtype=np.float32)
+    rt = np.asarray(rate_top, dtype=np.float32)
+    ru = np.asarray(rate_under, dtype=np.float32)
+    if rt.shape != t.shape or ru.shape != t.shape:
+        raise InputError("repair: field 'rate_top': rate maps must have the thickness grid's shape")
+    default = patch_thickness_mm
+    if default is None and rules is not None:
+        default = rules.v("patch_thickness_mm")
+    default = np.nan if default is None else float(default)
+    cov, tp = _coverage(t.shape, patches, float(x0), float(y0), float(pitch), default)
+    if np.any(cov & np.isnan(tp)):
+        raise InputError("repair: field 'thickness_mm': a patch has no thickness and no default was given")
+    scanned = np.isfinite(t)
+    t_rep = np.where(cov & scanned, tp, t).astype(np.float32)
+    ru_rep = ru.copy()
+    if under_cause_removed:
+        ru_rep = np.where(cov & scanned & ~np.isnan(ru), np.float32(0), ru).astype(np.float32)
+    return t_rep, rt.copy(), ru_rep, cov
+
+
+def uncovered_cells(needs, patches, *, x0, y0, pitch):
+    """Cells needing repair that no patch covers.
+
+    Parameters
+    ----------
+    needs : bool mask of cells needing repair. [-]
+    patches : patch table. [mm]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+
+    Returns
+    -------
+    (count, mask) : number of such cells and their bool mask.
+    """
+    nd = np.asarray(needs, dtype=bool)
+    cov = covered_cells(patches, shape=nd.shape, x0=x0, y0=y0, pitch=pitch)
+    out = nd & ~cov
+    return int(np.count_nonzero(out)), out
+
+
+def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, critical_mask=None,
+                      needs=None, zone_labels=None, zone_names=None) -> pd.DataFrame:
+    """Check every patch of a (user's) patch set against the patch rules.
+
+    Parameters
+    ----------
+    patches : patch table (at least the rectangle columns). [mm]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
+    pitch : cell size. [mm]
+    rules : rule set (the ``patch_*`` values). [-]
+    plate : plate-id layer; its boundaries are seams. [-]
+    seams : seam segments ``(x1, y1, x2, y2)``. [mm]
+    critical_mask : critical-zone cells (default: zone ``critical`` of the zone layer). [-]
+    needs : cells needing repair, for ``not-beyond-corrosion``. [-]
+    zone_labels, zone_names : zone layer, for the critical-zone default. [-]
+
+    Returns
+    -------
+    DataFrame with columns ``patch``, ``flags`` (``;``-separated violations) and
+    ``ok`` (no violation).  Flags: ``too-small`` (smaller side below
+    ``patch_min_size_mm``), ``overlaps-without-min-size`` (overlaps a seam or
+    another patch but below ``patch_min_size_overlap_mm``), ``too-close`` (a
+    parallel edge of another patch within ``patch_weld_clearance_mm``),
+    ``weld-clearance`` (a seam alongside an edge within the clearance),
+    ``critical-zone-special-repair`` (touches the critical zone; plus
+    ``critical-zone-thickness`` when thicker than
+    ``patch_critical_max_thickness_mm``), ``not-beyond-corrosion`` (a cell
+    needing repair closer than ``patch_extend_beyond_mm`` to the outline).
+    """
+    _validate_table(patches)
+    x0, y0, pitch = float(x0), float(y0), float(pitch)
+    R, rad, thk, ids = _rects_of(patches)
+    segs, use = _seam_set(seams, plate, x0, y0, pitch, rules.v("patch_weld_clearance_mm"))
+    crit = _critical_of(critical_mask, zone_labels, zone_names)
+    nd = None if needs is None else np.asarray(needs, dtype=bool)
+    flags = _rule_flags(R, rad, thk, rules=rules, segs=segs, use=use, critical=crit, needs=nd,
+                        x0=x0, y0=y0, pitch=pitch)
+    return pd.DataFrame({"patch": ids, "flags": [";".join(f) for f in flags],
+                         "ok": [not f for f in flags]}, columns=["patch", "flags", "ok"])
+
+
+# ---------------------------------------------------------------------------
+# plan + repaired maps in one call
+# ---------------------------------------------------------------------------
+@dataclass
+class RepairPlan:
+    """A repair proposal and the floor as repaired.
+
+    Attributes
+    ----------
+    needs : cells needing repair. [-]
+    patches : patch table (:data:`PATCH_COLUMNS`).
+    thickness, rate_top, rate_under : maps as repaired (see :func:`apply_patches`). [mm], [mm/y]
+    covered : cells under a patch. [-]
+    n_uncovered : cells needing repair that no patch covers (0 for a proposal). [-]
+    target_years : target interval, if planned for one. [y]
+    repair_to_mm : repair-to thickness, if planned the code's way. [mm]
+    """
+
+    needs: np.ndarray
+    patches: pd.DataFrame
+    thickness: np.ndarray
+    rate_top: np.ndarray
+    rate_under: np.ndarray
+    covered: np.ndarray
+    n_uncovered: int
+    target_years: float | None = None
+    repair_to_mm: float | None = None
+
+    @property
+    def area_m2(self) -> float:
+        """Total patch area. [m²]"""
+        return float(self.patches["area_m2"].sum()) if len(self.patches) else 0.0
+
+    @property
+    def mass_kg(self) -> float:
+        """Total patch steel mass. [kg]"""
+        return float(self.patches["mass_kg"].sum()) if len(self.patches) else 0.0
+
+
+def _plan(thickness, rate_top, rate_under, needs, *, x0, y0, pitch, rules, under_cause_removed,
+          target_years, repair_to_mm, **kw):
+    patches = plan_patches(needs, x0=x0, y0=y0, pitch=pitch, rules=rules, **kw)
+    t_rep, rt_rep, ru_rep, cov = apply_patches(
+        thickness, rate_top, rate_under, patches, x0=x0, y0=y0, pitch=pitch, rules=rules,
+        under_cause_removed=under_cause_removed)
+    n_unc = int(np.count_nonzero(needs & ~cov))
+    return RepairPlan(needs, patches, t_rep, rt_rep, ru_rep, cov, n_unc, target_years, repair_to_mm)
+
+
+def plan_repairs(thickness, rate_top, rate_under, *, mrt_mm, target_years, x0, y0, pitch, rules,
+                 under_cause_removed=False, **plan_kw) -> RepairPlan:
+    """Patches for a target interval and the floor as repaired.
+
+    Parameters
+    ----------
+    thickness, rate_top, rate_under : maps on the grid. [mm], [mm/y]
+    mrt_mm : MRT, scalar or per cell. [mm]
+    target_years : target interval. [y]
+    x0, y0, pitch : grid geometry. [mm]
+    rules : rule set. [-]
+    under_cause_removed : see :func:`apply_patches`. [-]
+    **plan_kw : further keywords of :func:`plan_patches` (seams, plate,
+        critical_mask, zone_labels, zone_names, patch_thickness_mm, …).
+
+    Returns
+    -------
+    :class:`RepairPlan`
+    """
+    needs = cells_needing_repair(thickness, rate_top, rate_under, mrt_mm=mrt_mm, target_years=target_years)
+    return _plan(thickness, rate_top, rate_under, needs, x0=x0, y0=y0, pitch=pitch, rules=rules,
+                 under_cause_removed=under_cause_removed, target_years=float(target_years),
+                 repair_to_mm=None, **plan_kw)
+
+
+def repair_to_plan(thickness, rate_top, rate_under, *, repair_to_mm, x0, y0, pitch, rules,
+                   under_cause_removed=False, **plan_kw) -> RepairPlan:
+    """The code's way: patch every cell thinner than a repair-to thickness.
+
+    The repaired maps go back into the assessment, which then gives the interval the
+    repair buys under each method (code formula, co-located, extreme value).
+
+    Parameters
+    ----------
+    thickness, rate_top, rate_under : maps on the grid. [mm], [mm/y]
+    repair_to_mm : repair-to thickness, e.g. from ``assess.repair_to_thickness``. [mm]
+    x0, y0, pitch : grid geometry. [mm]
+    rules : rule set. [-]
+    under_cause_removed : see :func:`apply_patches`. [-]
+    **plan_kw : further keywords of :func:`plan_patches`.
+
+    Returns
+    -------
+    :class:`RepairPlan`
+    """
+    needs = cells_needing_repair(thickness, rate_top, rate_under, mrt_mm=0.0, target_years=0.0,
+                                 repair_to_mm=repair_to_mm)
+    return _plan(thickness, rate_top, rate_under, needs, x0=x0, y0=y0, pitch=pitch, rules=rules,
+                 under_cause_removed=under_cause_removed, target_years=None,
+                 repair_to_mm=float(repair_to_mm), **plan_kw)
+
+
+# ---------------------------------------------------------------------------
+# files
+# ---------------------------------------------------------------------------
+def _atomic_write(path, write):
+    path = os.fspath(path)
+    d = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=os.path.splitext(path)[1], dir=d)
+    os.close(fd)
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_patches_csv(patches, path) -> None:
+    """Write a patch table as ``patches.csv`` (:data:`PATCH_COLUMNS`, mm, m², kg).
+
+    Parameters
+    ----------
+    patches : patch table. [-]
+    path : output file. [-]
+    """
+    _validate_table(patches)
+    cols = [c for c in PATCH_COLUMNS if c in patches.columns]
+
+    def _w(tmp):
+        patches[cols].to_csv(tmp, index=False, float_format="%.6g", lineterminator="\n")
+    _atomic_write(path, _w)
+
+
+def _num_field(text, path, line, name, *, positive=False, nonneg=False, allow_blank=False):
+    s = text.strip()
+    if s == "":
+        if allow_blank:
+            return math.nan
+        raise InputError(f"{where(path, line, name)}: value missing")
+    try:
+        v = float(s)
+    except ValueError:
+        raise InputError(f"{where(path, line, name)}: not a number: {s!r}") from None
+    if not math.isfinite(v):
+        raise InputError(f"{where(path, line, name)}: must be finite, got {s!r}")
+    if positive and v <= 0:
+        raise InputError(f"{where(path, line, name)}: must be > 0, got {s}")
+    if nonneg and v < 0:
+        raise InputError(f"{where(path, line, name)}: must be >= 0, got {s}")
+    return v
+
+
+def _read_patches_csv(path):
+    rows = []
+    with open(path, newline="", encoding="utf-8-sig") as fh:
+        lines = [(k + 1, ln) for k, ln in enumerate(fh.read().splitlines())]
+    body = [(n, ln) for n, ln in lines if ln.strip() and not ln.lstrip().startswith("#")]
+    if not body:
+        raise InputError(f"{where(path, 1)}: no header row")
+    hline, header = body[0]
+    cols = [c.strip() for c in next(csv.reader([header]))]
+    for c in cols:
+        if c not in PATCH_COLUMNS:
+            raise InputError(f"{where(path, hline, c)}: unknown column (expected {', '.join(PATCH_COLUMNS)})")
+    if len(set(cols)) != len(cols):
+        dup = next(c for c in cols if cols.count(c) > 1)
+        raise InputError(f"{where(path, hline, dup)}: duplicate column")
+    for c in _REQUIRED_CSV:
+        if c not in cols:
+            raise InputError(f"{where(path, hline, c)}: required column missing")
+    seen = set()
+    for n, ln in body[1:]:
+        vals = next(csv.reader([ln]))
+        if len(vals) != len(cols):
+            raise InputError(f"{where(path, n)}: expected {len(cols)} fields, got {len(vals)}")
+        r = dict(zip(cols, vals))
+        pid = r["patch"].strip()
+        if not pid:
+            raise InputError(f"{where(path, n, 'patch')}: empty patch id")
+        if pid in seen:
+            raise InputError(f"{where(path, n, 'patch')}: duplicate patch id {pid!r}")
+        seen.add(pid)
+        xa = _num_field(r["x_min_mm"], path, n, "x_min_mm")
+        ya = _num_field(r["y_min_mm"], path, n, "y_min_mm")
+        xb = _num_field(r["x_max_mm"], path, n, "x_max_mm")
+        yb = _num_field(r["y_max_mm"], path, n, "y_max_mm")
+        if xb <= xa:
+            raise InputError(f"{where(path, n, 'x_max_mm')}: must exceed x_min_mm ({xb:g} <= {xa:g})")
+        if yb <= ya:
+            raise InputError(f"{where(path, n, 'y_max_mm')}: must exceed y_min_mm ({yb:g} <= {ya:g})")
+        rad = _num_field(r.get("corner_radius_mm", ""), path, n, "corner_radius_mm", nonneg=True,
+                         allow_blank=True)
+        rad = 0.0 if math.isnan(rad) else rad
+        if rad > min(xb - xa, yb - ya) / 2.0 + _TOL:
+            raise InputError(f"{where(path, n, 'corner_radius_mm')}: exceeds half the smaller side "
+                             f"({rad:g} > {min(xb - xa, yb - ya) / 2.0:g})")
+        thk = _num_field(r.get("thickness_mm", ""), path, n, "thickness_mm", positive=True, allow_blank=True)
+        for opt in ("area_m2", "mass_kg", "n_cells_covered"):
+            if opt in r:
+                _num_field(r[opt], path, n, opt, nonneg=True, allow_blank=True)
+        rows.append({"patch": pid, "zone": r.get("zone", "").strip(), "x_min_mm": xa, "y_min_mm": ya,
+                     "x_max_mm": xb, "y_max_mm": yb, "corner_radius_mm": rad, "thickness_mm": thk,
+                     "flags": r.get("flags", "").strip(), "note": ""})
+    return rows
+
+
+def _dxf_outline_rect(e, kind):
+    """(rect, radius, exact) of one closed outline; exact = it is a rounded rectangle."""
+    from ezdxf import path as _path
+
+    if kind == "CIRCLE":
+        cx, cy = e.dxf.center.x, e.dxf.center.y
+        r = float(e.dxf.radius)
+        return (cx - r, cy - r, cx + r, cy + r), r, True
+    p = _path.make_path(e)
+    pts = np.array([(v.x, v.y) for v in p.flattening(distance=0.001)])
+    rect = (float(pts[:, 0].min()), float(pts[:, 1].min()), float(pts[:, 0].max()), float(pts[:, 1].max()))
+    # polygon area of the flattened outline (shoelace)
+    area = 0.5 * abs(float(np.dot(pts[:-1, 0], pts[1:, 1]) - np.dot(pts[1:, 0], pts[:-1, 1])
+                           + pts[-1, 0] * pts[0, 1] - pts[0, 0] * pts[-1, 1]))
+    if kind == "LWPOLYLINE":
+        vb = np.array([(x, y, b) for x, y, b in e.get_points("xyb")], dtype=np.float64)
+    else:
+        vb = np.array([(v.dxf.location.x, v.dxf.location.y, v.dxf.bulge) for v in e.vertices],
+                      dtype=np.float64)
+    radius = 0.0
+    bul = vb[:, 2]
+    if np.any(bul != 0):
+        k = int(np.flatnonzero(bul != 0)[0])
+        a = vb[k, :2]
+        b = vb[(k + 1) % len(vb), :2]
+        chord = float(np.hypot(*(b - a)))
+        theta = 4.0 * math.atan(abs(float(bul[k])))
+        radius = chord / (2.0 * math.sin(theta / 2.0)) if theta > 0 else 0.0
+    w, h = rect[2] - rect[0], rect[3] - rect[1]
+    radius = min(radius, min(w, h) / 2.0)
+    expected = float(rounded_rect_area_mm2(w, h, radius))
+    exact = abs(area - expected) <= 1e-4 * max(expected, 1.0) + 1e-3 * (w + h)
+    if not exact:
+        radius = 0.0
+    return rect, radius, exact
+
+
+def _read_patches_dxf(path):
+    import ezdxf
+
+    try:
+        doc = ezdxf.readfile(path)
+    except (OSError, ezdxf.DXFError) as exc:
+        raise InputError(f"{where(path)}: not a readable DXF file ({type(exc).__name__})") from None
+    code = int(doc.header.get("$INSUNITS", 0) or 0)
+    if code == 0:
+        scale = 1.0  # unitless drawings are taken as mm
+    elif code in _DXF_UNITS_MM:
+        scale = _DXF_UNITS_MM[code]
+    else:
+        from ezdxf import units as _units
+        try:
+            scale = float(_units.conversion_factor(code, 4))
+        except Exception:
+            raise InputError(f"{where(path, field='$INSUNITS')}: unsupported drawing unit code {code}") from None
+    outlines, texts, skipped = [], [], {}
+    for e in doc.modelspace():
+        kind = e.dxftype()
+        if kind in ("LWPOLYLINE", "POLYLINE"):
+            closed = e.closed if kind == "LWPOLYLINE" else e.is_closed
+            if kind == "POLYLINE" and (e.is_3d_polyline or e.is_poly_face_mesh or e.is_polygon_mesh):
+                skipped[kind + " (3D/mesh)"] = skipped.get(kind + " (3D/mesh)", 0) + 1
+                continue
+            if not closed:
+                skipped["open " + kind] = skipped.get("open " + kind, 0) + 1
+                continue
+            outlines.append((e, kind))
+        elif kind == "CIRCLE":
+            outlines.append((e, kind))
+        elif kind == "TEXT":
+            texts.append((e.get_placement()[1], e.dxf.text.strip()))
+        elif kind == "MTEXT":
+            texts.append((e.dxf.insert, e.plain_text().strip()))
+        else:
+            skipped[kind] = skipped.get(kind, 0) + 1
+    if skipped:
+        what = ", ".join(f"{n} {k}" for k, n in sorted(skipped.items()))
+        warnings.warn(f"{where(path)}: ignored entities that are not closed outlines: {what}",
+                      ScanWarning, stacklevel=3)
+    rows, seen = [], set()
+    approx = 0
+    for k, (e, kind) in enumerate(outlines):
+        rect, radius, exact = _dxf_outline_rect(e, kind)
+        rect = tuple(v * scale for v in rect)
+        radius *= scale
+        if rect[2] - rect[0] <= 0 or rect[3] - rect[1] <= 0:
+            raise InputError(f"{where(path, field=f'{kind} handle {e.dxf.handle}')}: outline has no area")
+        cx, cy = (rect[0] + rect[2]) / 2.0, (rect[1] + rect[3]) / 2.0
+        pid = ""
+        best = math.inf
+        for pt, txt in texts:
+            px, py = pt[0] * scale, pt[1] * scale
+            if txt and rect[0] <= px <= rect[2] and rect[1] <= py <= rect[3]:
+                d = math.hypot(px - cx, py - cy)
+                if d < best and txt not in seen:
+                    pid, best = txt, d
+        if not pid:
+            pid = f"D{k + 1:03d}"
+            while pid in seen:
+                pid += "x"
+        seen.add(pid)
+        thk, zone = math.nan, ""
+        if e.has_xdata(_DXF_APPID):
+            tags = list(e.get_xdata(_DXF_APPID))
+            for a, b in zip(tags, tags[1:]):
+                if a.code == 1000 and a.value == "thickness_mm" and b.code == 1040:
+                    thk = float(b.value) * scale
+                if a.code == 1000 and a.value == "zone" and b.code == 1000:
+                    zone = str(b.value)
+        note = "" if exact else f"bounding rectangle of a {kind} outline"
+        approx += 0 if exact else 1
+        rows.append({"patch": pid, "zone": zone, "x_min_mm": rect[0], "y_min_mm": rect[1],
+                     "x_max_mm": rect[2], "y_max_mm": rect[3], "corner_radius_mm": radius,
+                     "thickness_mm": thk, "flags": "", "note": note})
+    if approx:
+        warnings.warn(f"{where(path)}: {approx} outline(s) are not rounded rectangles and were "
+                      "replaced by their bounding rectangles (see column 'note')",
+                      ScanWarning, stacklevel=3)
+    return rows
+
+
+def read_patches(path, *, rules=None) -> pd.DataFrame:
+    """Read an engineer's patch set: ``patches.csv`` columns or a DXF of closed outlines.
+
+    Parameters
+    ----------
+    path : ``.csv`` (the :data:`PATCH_COLUMNS`; ``patch`` and the four rectangle
+        columns required, blanks allowed in ``corner_radius_mm`` (0) and
+        ``thickness_mm`` (the default applies later); ``area_m2`` and ``mass_kg``
+        are recomputed) or ``.dxf`` (closed LWPOLYLINE / POLYLINE and CIRCLE
+        entities, each replaced by its bounding rectangle; a rounded rectangle or a
+        circle is kept exactly with its corner radius; a TEXT inside an outline
+        names the patch; drawing units from ``$INSUNITS``, unitless = mm). [-]
+    rules : rule set whose ``steel_density_kg_m3`` gives the recomputed masses;
+        default the ``api653`` rule set. [-]
+
+    Returns
+    -------
+    DataFrame with :data:`PATCH_COLUMNS` plus ``note``; ``n_cells_covered`` is 0
+    until re-assessed.
+
+    Raises
+    ------
+    InputError
+        one line naming the file and the line (CSV) or entity (DXF).
+    """
+    if rules is None:
+        from .rules import get_ruleset
+        rules = get_ruleset()
+    density_kg_m3 = rules.v("steel_density_kg_m3")
+    p = os.fspath(path)
+    if not os.path.isfile(p):
+        raise InputError(f"{where(p)}: no such file")
+    ext = os.path.splitext(p)[1].lower()
+    if ext == ".csv":
+        rows = _read_patches_csv(p)
+    elif ext == ".dxf":
+        rows = _read_patches_dxf(p)
+    else:
+        raise InputError(f"{where(p)}: patch files must be .csv or .dxf")
+    df = pd.DataFrame(rows, columns=["patch", "zone", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm",
+                                     "corner_radius_mm", "thickness_mm", "flags", "note"])
+    for c in ("x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm", "corner_radius_mm", "thickness_mm"):
+        df[c] = df[c].astype(float)
+    w = df["x_max_mm"] - df["x_min_mm"]
+    h = df["y_max_mm"] - df["y_min_mm"]
+    df["area_m2"] = rounded_rect_area_mm2(w.to_numpy(), h.to_numpy(), df["corner_radius_mm"].to_numpy()) / 1e6
+    df["mass_kg"] = patch_mass_kg(df["area_m2"].to_numpy(), df["thickness_mm"].to_numpy(),
+                                  density_kg_m3=density_kg_m3)
+    df["n_cells_covered"] = 0
+    return df[PATCH_COLUMNS + ["note"]]
+
+
+def _outline_points(rect, radius):
+    """LWPOLYLINE vertices (x, y, bulge), counter-clockwise, of a rounded rectangle."""
+    xa, ya, xb, yb = rect
+    r = float(radius)
+    if r <= 0:
+        return [(xa, ya, 0.0), (xb, ya, 0.0), (xb, yb, 0.0), (xa, yb, 0.0)]
+    bq = math.tan(math.pi / 8.0)      # bulge of a 90° arc, counter-clockwise
+    pts = [(xa + r, ya, 0.0), (xb - r, ya, bq), (xb, ya + r, 0.0), (xb, yb - r, bq),
+           (xb - r, yb, 0.0), (xa + r, yb, bq), (xa, yb - r, 0.0), (xa, ya + r, bq)]
+    out = []
+    n = len(pts)
+    for k, p in enumerate(pts):   # drop zero-length straight pieces (a side of exactly 2R)
+        q = pts[(k + 1) % n]
+        if p[2] == 0.0 and abs(p[0] - q[0]) < 1e-9 and abs(p[1] - q[1]) < 1e-9:
+            continue
+        out.append(p)
+    return out
+
+
+def write_patches_dxf(patches, path) -> None:
+    """Write patch outlines for CAD (DXF R2010, units mm).
+
+    One closed LWPOLYLINE per patch on layer ``SCANANALYSE_PATCH``, corners rounded
+    with bulges, thickness and zone in XDATA (application ``SCANANALYSE``); the
+    patch id as a TEXT at the centre on layer ``SCANANALYSE_PATCH_ID``.
+    :func:`read_patches` reads the file back to the same rectangles.
+
+    Parameters
+    ----------
+    patches : patch table. [-]
+    path : output ``.dxf`` file. [-]
+    """
+    import ezdxf
+    from ezdxf.enums import TextEntityAlignment
+
+    _validate_table(patches)
+    R, rad, thk, ids = _rects_of(patches)
+    zones = [str(z) for z in patches["zone"]] if "zone" in patches else [""] * len(R)
+    doc = ezdxf.new("R2010", setup=False)
+    doc.units = ezdxf.units.MM
+    doc.header["$MEASUREMENT"] = 1
+    doc.layers.add(_DXF_LAYER, color=1)
+    doc.layers.add(_DXF_TEXT_LAYER, color=7)
+    doc.appids.add(_DXF_APPID)
+    msp = doc.modelspace()
+    for k in range(len(R)):
+        rect = tuple(float(v) for v in R[k])
+        pl = msp.add_lwpolyline(_outline_points(rect, rad[k]), format="xyb", close=True,
+                                dxfattribs={"layer": _DXF_LAYER})
+        xd = [(1000, "zone"), (1000, zones[k] if zones[k] != "nan" else "")]
+        if np.isfinite(thk[k]):
+            xd = [(1000, "thickness_mm"), (1040, float(thk[k]))] + xd
+        pl.set_xdata(_DXF_APPID, xd)
+        height = max(10.0, min(rect[2] - rect[0], rect[3] - rect[1]) / 6.0)
+        txt = msp.add_text(ids[k], height=height, dxfattribs={"layer": _DXF_TEXT_LAYER})
+        txt.set_placement(((rect[0] + rect[2]) / 2.0, (rect[1] + rect[3]) / 2.0),
+                          align=TextEntityAlignment.MIDDLE_CENTER)
+    _atomic_write(path, doc.saveas)

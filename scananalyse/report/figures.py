@@ -1,0 +1,741 @@
+"""Figures of the report, drawn with matplotlib's object API (no pyplot state).
+
+Every function takes ``ax=None`` and returns the :class:`matplotlib.figure.Figure`
+it drew on; with ``ax=None`` a new figure is created with
+:class:`matplotlib.figure.Figure` (never registered with pyplot, so nothing leaks
+and nothing needs closing).  Inputs are plain arrays and tables in internal units
+(mm, mm/y, years); the ``units`` argument only changes what is shown.
+
+Floor maps show floor coordinates in metres, the shell circle, a scale bar and a
+datum arrow, with continuous perceptually uniform colour maps from matplotlib's
+viridis family (viridis, magma, plasma, cividis) and a light grey for cells that
+were not scanned.  Big grids are block-reduced to at most ``max_pixels`` pixels
+*conservatively*: the thinnest cell of a block for thickness and remaining life,
+the deepest for loss and the fastest for rates, so no bad spot disappears from
+the picture (:func:`decimate`).
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import os
+import tempfile
+
+import numpy as np
+from matplotlib.figure import Figure
+from matplotlib.colors import ListedColormap, BoundaryNorm
+from matplotlib.lines import Line2D
+from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
+import matplotlib as mpl
+
+from . import units as U
+
+__all__ = [
+    "NOT_SCANNED_COLOUR",
+    "CMAPS",
+    "decimate",
+    "decimation_caption",
+    "floor_map",
+    "registration_overlay",
+    "probability_plot",
+    "return_level_plot",
+    "method_comparison",
+    "save_png",
+    "png_bytes",
+]
+
+#: Colour of cells that were not scanned (neutral light grey).
+NOT_SCANNED_COLOUR = "#d4d4d4"
+
+#: Colour map per map kind: continuous, perceptually uniform (matplotlib's viridis family).
+#: Low thickness / short life are dark; deep loss / fast rate are dark.
+CMAPS = {
+    "thickness": "viridis",
+    "loss": "magma_r",
+    "rate": "plasma_r",
+    "life": "cividis",
+}
+
+#: Block reduction per kind: the conservative choice for display.
+_REDUCE = {"thickness": "min", "loss": "max", "rate": "max", "life": "min", "side": "max"}
+
+#: Map kind -> quantity for unit conversion.
+_QUANTITY = {"thickness": "thickness", "loss": "depth", "rate": "rate", "life": "years"}
+
+# side codes (scan.py): 0 unknown, 1 top, 2 under
+_SIDE_COLOURS = ["#f2efe6", "#d9822b", "#2f6f9f"]
+_SIDE_NAMES = ["unknown", "top (product side)", "under (soil side)"]
+
+_FIGSIZE_MAP = (7.2, 7.0)
+_SEAM_COLOUR = "#3b3b3b"
+
+
+def _new_axes(ax, figsize):
+    if ax is None:
+        fig = Figure(figsize=figsize, layout="constrained")
+        ax = fig.add_subplot()
+    else:
+        fig = ax.get_figure()
+    return fig, ax
+
+
+# ---------------------------------------------------------------------------
+# decimation
+# ---------------------------------------------------------------------------
+def decimate(values, *, how: str = "min", max_pixels: int = 1_500_000):
+    """Block-reduce a grid to at most ``max_pixels`` cells, ignoring NaN.
+
+    Blocks are ``f × f`` cells with the smallest integer ``f`` that brings the grid
+    under ``max_pixels``; the last row/column of blocks may be partial.  A block
+    with no finite cell is NaN.  Uses ``numpy.fmin/fmax.reduceat`` (no per-cell
+    loops, no full-size copy).
+
+    Parameters
+    ----------
+    values : 2-D grid. [any]
+    how : ``"min"`` or ``"max"``: which value of a block to keep.
+    max_pixels : largest number of output cells.
+
+    Returns
+    -------
+    (reduced, f) : the reduced grid (float32) and the block size. [same unit, cells]
+    """
+    a = np.asarray(values)
+    if a.ndim != 2:
+        raise ValueError(f"decimate needs a 2-D grid, got shape {a.shape}")
+    if how not in ("min", "max"):
+        raise ValueError(f"how must be 'min' or 'max', got {how!r}")
+    n = a.shape[0] * a.shape[1]
+    f = 1
+    if n > max_pixels:
+        f = int(math.ceil(math.sqrt(n / max_pixels)))
+        while math.ceil(a.shape[0] / f) * math.ceil(a.shape[1] / f) > max_pixels:
+            f += 1
+    if f == 1:
+        return a.astype(np.float32, copy=False), 1
+    op = np.fmin if how == "min" else np.fmax
+    rows = np.arange(0, a.shape[0], f)
+    cols = np.arange(0, a.shape[1], f)
+    if a.dtype.kind == "f":
+        a = a.astype(np.float32, copy=False)
+    else:
+        a = a.astype(np.float32)
+    r = op.reduceat(a, rows, axis=0)
+    r = op.reduceat(r, cols, axis=1)
+    return r.astype(np.float32, copy=False), f
+
+
+def decimation_caption(kind: str, factor: int) -> str:
+    """Sentence for a figure caption saying how a map was reduced for display."""
+    if factor <= 1:
+        return "Shown at full resolution (one pixel per scan cell)."
+    which = {"min": "thinnest", "max": "deepest"}[_REDUCE.get(kind, "min")]
+    what = {
+        "thickness": "the thinnest cell",
+        "loss": "the deepest loss",
+        "rate": "the fastest rate",
+        "life": "the shortest remaining life",
+        "side": "the underside where any cell is underside",
+    }.get(kind, f"the {which} cell")
+    return (f"Reduced for display: each pixel covers {factor} × {factor} scan cells and shows "
+            f"{what} among them (conservative); the tables use every cell.")
+
+
+# ---------------------------------------------------------------------------
+# map furniture: scale bar, datum arrow
+# ---------------------------------------------------------------------------
+def _nice_length(span_m: float) -> float:
+    target = span_m / 5.0
+    if not np.isfinite(target) or target <= 0:
+        return 1.0
+    exp = math.floor(math.log10(target))
+    for m in (5, 2, 1):
+        if m * 10 ** exp <= target:
+            return m * 10 ** exp
+    return 10 ** exp
+
+
+def _scale_bar(ax, xlim, ylim):
+    span = xlim[1] - xlim[0]
+    L = _nice_length(span)
+    h = 0.012 * (ylim[1] - ylim[0])
+    x0 = xlim[0] + 0.04 * span
+    y0 = ylim[0] + 0.035 * (ylim[1] - ylim[0])
+    # four alternating segments, our own design: dark/light with a dark frame
+    for k in range(4):
+        ax.add_patch(Rectangle((x0 + k * L / 4, y0), L / 4, h,
+                               facecolor="#222222" if k % 2 == 0 else "white",
+                               edgecolor="#222222", linewidth=0.6, zorder=6))
+    label = f"{L:g} m"
+    ax.text(x0 + L / 2, y0 + 1.6 * h, label, ha="center", va="bottom", fontsize=7.5,
+            zorder=6, bbox=dict(boxstyle="square,pad=0.15", facecolor="white",
+                                edgecolor="none", alpha=0.75))
+
+
+def _datum_arrow(ax):
+    # a slim needle: left half filled, right half open, pointing to +y of the floor frame
+    cx, cy, hgt, wid = 0.93, 0.86, 0.09, 0.025
+    tip = (cx, cy + hgt / 2)
+    base = cy - hgt / 2
+    ax.add_patch(Polygon([tip, (cx - wid, base), (cx, base + hgt * 0.25)], closed=True,
+                         transform=ax.transAxes, facecolor="#222222", edgecolor="#222222",
+                         linewidth=0.6, zorder=7))
+    ax.add_patch(Polygon([tip, (cx + wid, base), (cx, base + hgt * 0.25)], closed=True,
+                         transform=ax.transAxes, facecolor="white", edgecolor="#222222",
+                         linewidth=0.6, zorder=7))
+    ax.text(cx, base - 0.012, "+y\ndatum", transform=ax.transAxes, ha="center", va="top",
+            fontsize=7, zorder=7, linespacing=0.9)
+
+
+def _find_col(df, names):
+    for n in names:
+        if n in df.columns:
+            return n
+    return None
+
+
+# ---------------------------------------------------------------------------
+# floor map
+# ---------------------------------------------------------------------------
+def floor_map(values, *, extent, title, label, units="mm", kind="thickness", diameter_mm=None,
+              centre=(0.0, 0.0), plate=None, contours=None, patches=None, indications=None,
+              max_pixels=1_500_000, vmin=None, vmax=None, ax=None):
+    """Map of one quantity over the floor.
+
+    Parameters
+    ----------
+    values : 2-D grid on the scan's grid, row 0 at the smallest y; NaN = not scanned.
+        For ``kind="side"`` the side codes (0 unknown, 1 top, 2 under).
+        [mm, mm/y or y, by kind]
+    extent : (x_min, x_max, y_min, y_max) of the cell edges (``FloorScan.extent``). [mm]
+    title : figure title (plain text).
+    label : colour-bar label without the unit, e.g. ``"remaining thickness"``.
+    units : display units, ``"mm"`` (mm, mm/y) or ``"in"`` (in for thickness, mils
+        for loss, mpy for rates).
+    kind : ``"thickness"``, ``"loss"``, ``"rate"``, ``"life"`` or ``"side"``.
+    diameter_mm : inside diameter of the shell, drawn as a circle. [mm]
+    centre : tank centre in the floor frame. [mm]
+    plate : optional plate-id layer on the same grid (−1 none); seams are drawn where
+        the plate id changes.
+    contours : list of ``(level, label, style)``; ``level`` in internal units [mm,
+        mm/y, y]; ``style`` a matplotlib line style string (``"-"``, ``"--"``, …) or
+        a dict of ``contour`` keyword arguments.
+    patches : DataFrame with ``x_min_mm, y_min_mm, x_max_mm, y_max_mm`` and
+        optionally ``corner_radius_mm``: patch outlines (rounded rectangles). [mm]
+    indications : DataFrame with ``x_mm, y_mm`` (and optionally ``id`` and a depth
+        column): the positions are ringed, the ten deepest labelled. [mm]
+    max_pixels : the grid is block-reduced (:func:`decimate`) to at most this many
+        pixels: min for thickness and life, max for loss and rate.
+    vmin, vmax : colour range in internal units (default: data range; life is
+        clipped to [0, 50] y).
+    ax : axes to draw on (default: a new figure).
+
+    Returns
+    -------
+    Figure : with attribute ``scananalyse_caption`` (the decimation sentence) and
+        ``scananalyse_factor`` (block size).
+    """
+    if kind not in _REDUCE:
+        raise ValueError(f"kind must be one of {tuple(_REDUCE)}, got {kind!r}")
+    U._check(units)
+    fig, ax = _new_axes(ax, _FIGSIZE_MAP)
+    v, f = decimate(values, how=_REDUCE[kind], max_pixels=max_pixels)
+    nr_full, nc_full = np.shape(values)
+    x_min, x_max, y_min, y_max = (float(e) / 1000.0 for e in extent)
+    px = (x_max - x_min) / nc_full
+    py = (y_max - y_min) / nr_full
+    ext_m = (x_min, x_min + v.shape[1] * f * px, y_min, y_min + v.shape[0] * f * py)
+
+    if kind == "side":
+        codes = np.where(np.isfinite(v), v, -1).astype(np.int16)
+        data = np.ma.masked_less(codes, 0)
+        cmap = ListedColormap(_SIDE_COLOURS).with_extremes(bad=NOT_SCANNED_COLOUR)
+        norm = BoundaryNorm([-0.5, 0.5, 1.5, 2.5], 3)
+        ax.imshow(data, origin="lower", extent=ext_m, cmap=cmap, norm=norm,
+                  interpolation="nearest", zorder=1)
+        handles = [Patch(facecolor=c, edgecolor="#555555", linewidth=0.5, label=n)
+                   for c, n in zip(_SIDE_COLOURS, _SIDE_NAMES)]
+        disp = None
+    else:
+        q = _QUANTITY[kind]
+        disp = U.convert(v, q, units).astype(np.float32)
+        lo = vmin if vmin is None else U.convert(vmin, q, units)
+        hi = vmax if vmax is None else U.convert(vmax, q, units)
+        finite = np.isfinite(disp)
+        extend = "neither"
+        if kind == "life":
+            lo = 0.0 if lo is None else lo
+            if hi is None:
+                fin_max = float(np.max(disp[finite])) if finite.any() else 50.0
+                hi = min(50.0, max(fin_max, 1.0))
+            disp = np.where(np.isposinf(disp), hi, disp)
+            neg = bool(np.any(disp[np.isfinite(disp)] < lo))
+            pos = bool(np.any(disp[np.isfinite(disp)] > hi)) or bool(np.any(np.isposinf(v)))
+            extend = {(False, False): "neither", (True, False): "min", (False, True): "max",
+                      (True, True): "both"}[(neg, pos)]
+        if lo is None:
+            lo = float(np.min(disp[finite])) if finite.any() else 0.0
+        if hi is None:
+            hi = float(np.max(disp[finite])) if finite.any() else 1.0
+        if not hi > lo:
+            hi = lo + (abs(lo) * 0.01 if lo else 1.0)
+        cmap = mpl.colormaps[CMAPS[kind]].with_extremes(bad=NOT_SCANNED_COLOUR)
+        im = ax.imshow(np.ma.masked_invalid(disp), origin="lower", extent=ext_m, cmap=cmap,
+                       vmin=lo, vmax=hi, interpolation="nearest", zorder=1)
+        cb = fig.colorbar(im, ax=ax, shrink=0.82, pad=0.02, extend=extend)
+        cb.set_label(f"{label} [{U.unit_label(q, units)}]")
+        handles = []
+    handles.append(Patch(facecolor=NOT_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5,
+                         label="not scanned"))
+
+    # plate seams: where the plate id changes between neighbouring (sub-sampled) cells
+    if plate is not None:
+        p = np.asarray(plate)[::f, ::f]
+        seam = np.zeros(p.shape, dtype=bool)
+        dr = (p[1:, :] != p[:-1, :]) & (p[1:, :] >= 0) & (p[:-1, :] >= 0)
+        dc = (p[:, 1:] != p[:, :-1]) & (p[:, 1:] >= 0) & (p[:, :-1] >= 0)
+        seam[1:, :] |= dr
+        seam[:, 1:] |= dc
+        if seam.any():
+            ext_p = (x_min, x_min + p.shape[1] * f * px, y_min, y_min + p.shape[0] * f * py)
+            ax.imshow(np.ma.masked_where(~seam, seam.astype(np.float32)), origin="lower",
+                      extent=ext_p, cmap=ListedColormap([_SEAM_COLOUR]), vmin=0, vmax=1,
+                      interpolation="nearest", alpha=0.75, zorder=2)
+            handles.append(Line2D([], [], color=_SEAM_COLOUR, lw=1.2, alpha=0.75,
+                                  label="plate seam"))
+
+    # contours (e.g. MRT, repair threshold) on the displayed grid
+    if contours and disp is not None:
+        q = _QUANTITY[kind]
+        yy = ext_m[2] + (np.arange(disp.shape[0]) + 0.5) * f * py
+        xx = ext_m[0] + (np.arange(disp.shape[1]) + 0.5) * f * px
+        finite = np.isfinite(disp)
+        dmin = float(np.min(disp[finite])) if finite.any() else np.nan
+        dmax = float(np.max(disp[finite])) if finite.any() else np.nan
+        defaults = ["#111111", "#c0392b", "#ffffff"]
+        for k, item in enumerate(contours):
+            level, clabel, style = (tuple(item) + (None, None))[:3]
+            lvl = U.convert(level, q, units)
+            kw = {"colors": defaults[k % len(defaults)], "linewidths": 1.4}
+            if isinstance(style, dict):
+                kw.update(style)
+            elif style:
+                kw["linestyles"] = style
+            ls = kw.get("linestyles", "solid")
+            if np.isfinite(lvl) and dmin < lvl < dmax:
+                ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
+            unit = U.unit_label(q, units)
+            nd = U.decimals(q, units)
+            col = kw["colors"] if isinstance(kw["colors"], str) else kw["colors"][0]
+            handles.append(Line2D([], [], color=col, lw=kw["linewidths"],
+                                  linestyle=ls if isinstance(ls, str) else "solid",
+                                  label=f"{clabel or 'contour'} ({lvl:.{nd}f} {unit})"
+                                  + ("" if np.isfinite(lvl) and dmin < lvl < dmax
+                                     else " – not reached")))
+
+    # patch plates: rounded rectangles
+    if patches is not None and len(patches):
+        rcol = _find_col(patches, ["corner_radius_mm"])
+        for _, row in patches.iterrows():
+            x0, y0 = row["x_min_mm"] / 1000.0, row["y_min_mm"] / 1000.0
+            w = (row["x_max_mm"] - row["x_min_mm"]) / 1000.0
+            h = (row["y_max_mm"] - row["y_min_mm"]) / 1000.0
+            r = float(row[rcol]) / 1000.0 if rcol is not None and np.isfinite(row[rcol]) else 0.0
+            r = max(0.0, min(r, w / 2, h / 2))
+            ax.add_patch(FancyBboxPatch((x0, y0), w, h,
+                                        boxstyle=f"round,pad=0,rounding_size={r}",
+                                        facecolor="none", edgecolor="#00a36c", linewidth=1.4,
+                                        zorder=5))
+        handles.append(Patch(facecolor="none", edgecolor="#00a36c", linewidth=1.4,
+                             label="patch plate"))
+
+    # indications: ringed, deepest ten labelled
+    if indications is not None and len(indications):
+        xc = _find_col(indications, ["x_mm", "x_centroid_mm", "x"])
+        yc = _find_col(indications, ["y_mm", "y_centroid_mm", "y"])
+        if xc is not None and yc is not None:
+            ax.scatter(indications[xc] / 1000.0, indications[yc] / 1000.0, s=22,
+                       facecolors="none", edgecolors="#e41a1c", linewidths=0.8, zorder=5)
+            dc_ = _find_col(indications, ["depth_max_mm", "depth_mm", "loss_max_mm"])
+            idc = _find_col(indications, ["id", "indication"])
+            top = indications.nlargest(10, dc_) if dc_ is not None else indications.head(10)
+            if idc is not None:
+                for _, row in top.iterrows():
+                    ax.annotate(str(row[idc]), (row[xc] / 1000.0, row[yc] / 1000.0),
+                                xytext=(3, 3), textcoords="offset points", fontsize=6.5,
+                                color="#7a0000", zorder=6)
+            handles.append(Line2D([], [], marker="o", linestyle="none", markerfacecolor="none",
+                                  markeredgecolor="#e41a1c", label="indication"))
+
+    # shell circle and limits
+    cx, cy = centre[0] / 1000.0, centre[1] / 1000.0
+    xl = [ext_m[0], ext_m[1]]
+    yl = [ext_m[2], ext_m[3]]
+    if diameter_mm:
+        R = diameter_mm / 2000.0
+        ax.add_patch(Circle((cx, cy), R, facecolor="none", edgecolor="#333333", linewidth=1.2,
+                            zorder=5))
+        handles.append(Line2D([], [], color="#333333", lw=1.2, label="shell (inside)"))
+        xl = [min(xl[0], cx - R), max(xl[1], cx + R)]
+        yl = [min(yl[0], cy - R), max(yl[1], cy + R)]
+    mx = 0.06 * max(xl[1] - xl[0], yl[1] - yl[0])
+    xl = (xl[0] - mx, xl[1] + mx)
+    yl = (yl[0] - mx, yl[1] + mx)
+    ax.set_xlim(*xl)
+    ax.set_ylim(*yl)
+    ax.set_aspect("equal")
+    ax.set_xlabel("x [m]")
+    ax.set_ylabel("y [m]")
+    ax.set_title(title, fontsize=11, loc="left")
+    ax.tick_params(labelsize=8)
+    _scale_bar(ax, xl, yl)
+    _datum_arrow(ax)
+    # legend under the map, so nothing covers the floor
+    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.09), fontsize=7.5,
+              ncol=min(4, len(handles)), frameon=False, handlelength=1.8, columnspacing=1.2)
+    fig.scananalyse_factor = f
+    fig.scananalyse_caption = decimation_caption(kind, f)
+    return fig
+
+
+# ---------------------------------------------------------------------------
+# registration overlay
+# ---------------------------------------------------------------------------
+def _composite(new, old):
+    """RGB image: white background, new only orange, old only blue, both near-black."""
+    n = np.asarray(new, dtype=bool)
+    o = np.asarray(old, dtype=bool)
+    img = np.ones(n.shape + (3,), dtype=np.float32)
+    img[n & ~o] = (0.90, 0.45, 0.05)
+    img[o & ~n] = (0.15, 0.45, 0.80)
+    img[n & o] = (0.10, 0.10, 0.10)
+    return img
+
+
+def registration_overlay(new_features, old_features_before, old_features_after, *, extent,
+                         max_pixels=1_500_000, ax=None):
+    """Two-colour composite of the scans' feature masks before and after alignment.
+
+    Parameters
+    ----------
+    new_features : boolean mask on the new grid (e.g. unscanned seams, pits) of the new scan.
+    old_features_before : the older scan's feature mask on the new grid *without*
+        the registration transform (raw coordinates).
+    old_features_after : the older scan's feature mask resampled onto the new grid
+        *with* the transform.
+    extent : (x_min, x_max, y_min, y_max) of the new grid's cell edges. [mm]
+    max_pixels : masks are block-reduced with "any" to at most this many pixels.
+    ax : None, or a pair of axes (before, after).
+
+    Returns
+    -------
+    Figure : two panels; dark where the features coincide, orange new only, blue old only.
+    """
+    if ax is None:
+        fig = Figure(figsize=(10.0, 5.2), layout="constrained")
+        axes = fig.subplots(1, 2, sharex=True, sharey=True)
+    else:
+        axes = list(ax)
+        if len(axes) != 2:
+            raise ValueError("registration_overlay needs ax=None or a pair of axes")
+        fig = axes[0].get_figure()
+    x_min, x_max, y_min, y_max = (float(e) / 1000.0 for e in extent)
+    masks = [np.asarray(m, dtype=bool) for m in (new_features, old_features_before,
+                                                 old_features_after)]
+    shp = masks[0].shape
+    for m in masks[1:]:
+        if m.shape != shp:
+            raise ValueError(f"feature masks differ in shape: {shp} vs {m.shape}")
+    red = [decimate(m.astype(np.float32), how="max", max_pixels=max_pixels) for m in masks]
+    f = red[0][1]
+    nb, ob, oa = (r[0] > 0.5 for r in red)
+    px, py = (x_max - x_min) / shp[1], (y_max - y_min) / shp[0]
+    ext = (x_min, x_min + nb.shape[1] * f * px, y_min, y_min + nb.shape[0] * f * py)
+    for a, old, ttl in ((axes[0], ob, "before alignment"), (axes[1], oa, "after alignment")):
+        a.imshow(_composite(nb, old), origin="lower", extent=ext, interpolation="nearest")
+        both = np.count_nonzero(nb & old)
+        union = np.count_nonzero(nb | old)
+        jac = both / union if union else float("nan")
+        a.set_title(f"{ttl}: shared features {100 * jac:.0f} %", fontsize=10, loc="left")
+        a.set_xlabel("x [m]")
+        a.set_aspect("equal")
+        a.tick_params(labelsize=8)
+    axes[0].set_ylabel("y [m]")
+    handles = [Patch(facecolor=(0.90, 0.45, 0.05), label="newer scan only"),
+               Patch(facecolor=(0.15, 0.45, 0.80), label="older scan only"),
+               Patch(facecolor=(0.10, 0.10, 0.10), label="both (aligned)")]
+    axes[1].legend(handles=handles, loc="upper right", fontsize=7, framealpha=0.9)
+    fig.scananalyse_factor = f
+    fig.scananalyse_caption = ("Feature masks (unscanned seams and deep loss) of the two scans; "
+                               "shared-feature score = cells in both / cells in either."
+                               + ("" if f == 1 else f" Masks reduced {f} × {f} for display "
+                                  "(a pixel is marked if any cell in it is)."))
+    return fig
+
+
+# ---------------------------------------------------------------------------
+# extreme values
+# ---------------------------------------------------------------------------
+def _get(d, *names, default=None):
+    for n in names:
+        if isinstance(d, dict):
+            if n in d and d[n] is not None:
+                return d[n]
+        elif getattr(d, n, None) is not None:
+            return getattr(d, n)
+    return default
+
+
+def _gringorten(n: int) -> np.ndarray:
+    """Gringorten plotting positions (i − 0.44)/(n + 0.12), i = 1..n [seen: Gringorten 1963]."""
+    i = np.arange(1, n + 1, dtype=np.float64)
+    return (i - 0.44) / (n + 0.12)
+
+
+def probability_plot(plot_data, *, title, units="mm", ax=None):
+    """Gumbel probability plot: sorted block maxima against the reduced variate.
+
+    Parameters
+    ----------
+    plot_data : mapping (or object with attributes) with
+        ``maxima`` or ``x`` (block maxima, any order; NaN for a censored block) [mm];
+        optionally ``reduced_variate`` or ``reduced`` (same length as the sorted
+        uncensored maxima, else
+        Gringorten positions are used: y = −ln(−ln p), p = (i − 0.44)/(n + 0.12));
+        ``censored`` (bool mask or count of blocks below ``threshold``);
+        ``n_censored``; ``threshold`` [mm]; the fitted curve as ``line_reduced``
+        and ``line_x`` [mm] (as in :class:`scananalyse.extremes.ProbabilityPlot`), or
+        ``loc``/``mu`` and ``scale``/``sigma`` of the fitted
+        Gumbel [mm]; optionally ``shape``/``xi`` for a GEV fit (drawn as a curve);
+        ``method`` (fit name for the legend).
+    title : plain-text title.
+    units : display units (``"in"`` shows mils).
+    ax : axes to draw on.
+
+    Returns
+    -------
+    Figure
+    """
+    fig, ax = _new_axes(ax, (6.0, 4.6))
+    x = np.asarray(_get(plot_data, "maxima", "x", "values", default=[]), dtype=np.float64)
+    cens = _get(plot_data, "censored", default=None)
+    thr = _get(plot_data, "threshold", default=None)
+    n_cens = int(_get(plot_data, "n_censored", default=0))
+    if cens is not None and np.ndim(cens) == 1 and len(cens) == len(x):
+        cmask = np.asarray(cens, dtype=bool)
+        n_cens += int(cmask.sum())
+        obs = np.sort(x[~cmask & np.isfinite(x)])
+    else:
+        if cens is not None and np.ndim(cens) == 0:
+            n_cens += int(cens)
+        n_cens += int(np.count_nonzero(~np.isfinite(x)))
+        obs = np.sort(x[np.isfinite(x)])
+    n = n_cens + obs.size
+    yv = _get(plot_data, "reduced_variate", "reduced", default=None)
+    if yv is not None and len(yv) == obs.size:
+        y = np.asarray(yv, dtype=np.float64)
+    else:
+        p = _gringorten(n)[n_cens:] if n else np.array([])
+        y = -np.log(-np.log(p))
+    xd = U.convert(obs, "depth", units)
+    unit = U.unit_label("depth", units)
+    ax.plot(y, xd, "o", ms=4, mfc="#2f6f9f", mec="#1b3f5c", mew=0.5,
+            label=f"block maxima (n = {obs.size})")
+    if n_cens:
+        ax.annotate(f"{n_cens} block(s) below the threshold (censored)", xy=(0.02, 0.97),
+                    xycoords="axes fraction", va="top", fontsize=8)
+    if thr is not None and np.isfinite(thr):
+        ax.axhline(U.convert(thr, "depth", units), color="#888888", lw=0.8, ls=":",
+                   label="detection threshold")
+    method = _get(plot_data, "method", default="fit")
+    line_r = _get(plot_data, "line_reduced", default=None)
+    line_x = _get(plot_data, "line_x", default=None)
+    loc = _get(plot_data, "loc", "mu")
+    scale = _get(plot_data, "scale", "sigma")
+    shape = float(_get(plot_data, "shape", "xi", default=0.0))
+    if line_r is not None and line_x is not None:
+        ax.plot(np.asarray(line_r, float), U.convert(np.asarray(line_x, float), "depth", units),
+                "-", color="#c0392b", lw=1.3, label=f"fitted {method}")
+    elif loc is not None and scale is not None and y.size:
+        yy = np.linspace(min(y.min(), -1.5) - 0.2, max(y.max(), 3.0) + 0.5, 200)
+        if abs(shape) < 1e-9:
+            q = loc + scale * yy
+            lab = (f"Gumbel {method}: μ = {U.convert(loc, 'depth', units):.2f}, "
+                   f"σ = {U.convert(scale, 'depth', units):.2f} {unit}")
+        else:
+            # GEV quantile, ξ convention of Coles (2001): x = μ + σ/ξ ((−ln p)^(−ξ) − 1)
+            pp = np.exp(-np.exp(-yy))
+            q = loc + scale / shape * ((-np.log(pp)) ** (-shape) - 1.0)
+            lab = f"GEV {method}: ξ = {shape:.3f}"
+        ax.plot(yy, U.convert(q, "depth", units), "-", color="#c0392b", lw=1.3, label=lab)
+    # secondary axis: non-exceedance probability
+    ax.set_xlabel("Gumbel reduced variate  −ln(−ln p)")
+    ax.set_ylabel(f"deepest loss in block [{unit}]")
+    ax.set_title(title, fontsize=10.5, loc="left")
+    ax.grid(True, color="#e3e3e3", lw=0.6)
+    ax.legend(fontsize=7.5, loc="lower right")
+    ax.tick_params(labelsize=8)
+    top = ax.secondary_xaxis("top", functions=(lambda v: v, lambda v: v))
+    ticks_p = np.array([0.1, 0.5, 0.9, 0.99])
+    top.set_ticks(-np.log(-np.log(ticks_p)))
+    top.set_xticklabels([f"{t:g}" for t in ticks_p], fontsize=7)
+    top.set_xlabel("p", fontsize=8)
+    return fig
+
+
+def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title=None,
+                      ax=None):
+    """Return level against return period, with confidence bounds and the zone's T.
+
+    Parameters
+    ----------
+    curve_T : return periods (blocks), ascending. [1]
+    level : return level at each T. [mm]
+    lower, upper : confidence bounds at each T (None to omit). [mm]
+    zone_T : the zone's return period T = zone area / block area. [1]
+    units : display units.
+    title : plain-text title (default "Return level").
+    ax : axes to draw on.
+
+    Returns
+    -------
+    Figure
+    """
+    fig, ax = _new_axes(ax, (6.0, 4.6))
+    T = np.asarray(curve_T, dtype=np.float64)
+    lv = U.convert(np.asarray(level, dtype=np.float64), "depth", units)
+    unit = U.unit_label("depth", units)
+    if lower is not None and upper is not None:
+        lo = U.convert(np.asarray(lower, dtype=np.float64), "depth", units)
+        hi = U.convert(np.asarray(upper, dtype=np.float64), "depth", units)
+        ok = np.isfinite(lo) & np.isfinite(hi)
+        ax.fill_between(T[ok], lo[ok], hi[ok], color="#9ecae1", alpha=0.6, lw=0,
+                        label="confidence bounds")
+    ax.plot(T, lv, "-", color="#08519c", lw=1.5, label="return level")
+    if zone_T is not None and np.isfinite(zone_T) and zone_T > 0:
+        ok = np.isfinite(lv) & (T > 0)
+        if ok.sum() >= 2:
+            lvT = float(np.interp(np.log(zone_T), np.log(T[ok]), lv[ok]))
+            ax.axvline(zone_T, color="#c0392b", lw=1.0, ls="--")
+            ax.plot([zone_T], [lvT], "o", color="#c0392b", ms=6,
+                    label=f"zone T = {zone_T:.0f}: {lvT:.{U.decimals('depth', units)}f} {unit}")
+    ax.set_xscale("log")
+    ax.set_xlabel("return period T [blocks]")
+    ax.set_ylabel(f"deepest loss expected [{unit}]")
+    ax.set_title(title or "Return level", fontsize=10.5, loc="left")
+    ax.grid(True, which="both", color="#e3e3e3", lw=0.6)
+    ax.legend(fontsize=7.5, loc="upper left")
+    ax.tick_params(labelsize=8)
+    return fig
+
+
+# ---------------------------------------------------------------------------
+# method comparison
+# ---------------------------------------------------------------------------
+_METHOD_COLS = [
+    (("interval_code_y",), "code formula", "s", "#6a3d9a"),
+    (("life_local_y",), "co-located projection", "D", "#1f78b4"),
+    (("life_eva_y", "interval_eva_y", "life_extreme_y"), "extreme-value life", "^", "#e66101"),
+    (("interval_cap_y", "cap_y", "cap"), "cap", "|", "#333333"),
+]
+
+
+def method_comparison(zones_df, *, x_max=None, ax=None):
+    """Per zone: code-formula interval, co-located life, extreme-value life, cap and
+    the recommended interval (bar), with the zone's flags written beside it.
+
+    Infinite values (no measurable corrosion) are drawn as an arrow at the right
+    edge; negative code intervals (zone already below MRT) left of the zero line.
+
+    Parameters
+    ----------
+    zones_df : DataFrame with ``zone``, ``interval_recommended_y`` and any of
+        ``interval_code_y``, ``life_local_y``, ``life_eva_y``, ``interval_cap_y``
+        (or ``cap_y``), ``flags``. [y]
+    x_max : right end of the axis [y] (default: a little beyond the largest finite value).
+    ax : axes to draw on.
+
+    Returns
+    -------
+    Figure
+    """
+    n = len(zones_df)
+    fig, ax = _new_axes(ax, (7.5, 1.2 + 0.75 * max(n, 1)))
+    zones = [str(z) for z in zones_df["zone"]] if "zone" in zones_df else \
+        [str(i) for i in range(n)]
+    ypos = np.arange(n)[::-1].astype(float)
+    cols = [(next((c for c in names if c in zones_df.columns), None), lab, mk, colr)
+            for names, lab, mk, colr in _METHOD_COLS]
+    rec = zones_df["interval_recommended_y"].to_numpy(dtype=float) \
+        if "interval_recommended_y" in zones_df else np.full(n, np.nan)
+    allv = [rec] + [zones_df[c].to_numpy(dtype=float) for c, *_ in cols if c]
+    allv = np.concatenate(allv) if allv else np.array([])
+    fin = allv[np.isfinite(allv)]
+    hi = x_max if x_max is not None else (max(float(fin.max()), 1.0) * 1.12 if fin.size else 10)
+    lo = min(0.0, float(fin.min()) * 1.1) if fin.size else 0.0
+    ax.barh(ypos, np.where(np.isfinite(rec), np.clip(rec, 0, hi), 0), height=0.5,
+            color="#cfe3d4", edgecolor="#2e7d4f", lw=0.8, label="recommended", zorder=1)
+    for yk, r in zip(ypos, rec):
+        ax.text(max(r, 0) if np.isfinite(r) else 0, yk - 0.33, f" {U.fmt_number(r, 1)} y",
+                fontsize=7.5, va="center", color="#1e5635")
+    for c, lab, mk, colr in cols:
+        if c is None:
+            continue
+        vals = zones_df[c].to_numpy(dtype=float)
+        shown = np.clip(vals, lo, hi)
+        ok = np.isfinite(vals)
+        ax.scatter(shown[ok], ypos[ok] + 0.08, marker=mk, s=46 if mk != "|" else 220,
+                   color=colr, zorder=3, label=lab, linewidths=1.5 if mk == "|" else 0.5,
+                   edgecolors="white" if mk != "|" else None)
+        inf = np.isposinf(vals)
+        for yk in ypos[inf]:
+            ax.annotate("", xy=(hi, yk + 0.08), xytext=(hi * 0.93, yk + 0.08),
+                        arrowprops=dict(arrowstyle="->", color=colr, lw=1.2), zorder=3)
+            ax.text(hi * 0.93, yk + 0.24, "∞", color=colr, fontsize=8, ha="center")
+    if "flags" in zones_df:
+        for yk, fl in zip(ypos, zones_df["flags"]):
+            if isinstance(fl, str) and fl.strip():
+                ax.text(hi, yk + 0.36, fl.replace(";", "; ") + " ", fontsize=6.8, ha="right",
+                        va="center", color="#a50f15", style="italic")
+    ax.axvline(0, color="#777777", lw=0.8)
+    ax.set_yticks(ypos)
+    ax.set_yticklabels(zones)
+    ax.set_ylim(-0.7, n - 0.3)
+    ax.set_xlim(lo - 0.5 if lo < 0 else 0, hi)
+    ax.set_xlabel("years")
+    ax.set_title("Interval and remaining life by method", fontsize=10.5, loc="left")
+    ax.grid(True, axis="x", color="#e3e3e3", lw=0.6)
+    ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.18 if n > 1 else -0.35),
+              ncol=5, frameon=False)
+    ax.tick_params(labelsize=8)
+    return fig
+
+
+# ---------------------------------------------------------------------------
+# output
+# ---------------------------------------------------------------------------
+_PNG_META = {"Software": None}
+
+
+def save_png(fig, path, dpi=130):
+    """Write ``fig`` as PNG to ``path`` (temporary file, then rename); return the path."""
+    path = os.fspath(path)
+    d = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=".fig-", suffix=".png", dir=d)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fig.savefig(fh, format="png", dpi=dpi, metadata=_PNG_META)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def png_bytes(fig, dpi=130) -> bytes:
+    """The figure as PNG bytes (no software URL in the metadata)."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, metadata=_PNG_META)
+    return buf.getvalue()

@@ -1,0 +1,410 @@
+"""Rule sets: every value the assessment and repair planning use, with its source.
+
+A rule set is named, documented, module-level data (:data:`RULESETS`).  Each value
+is a :class:`RuleValue` carrying its unit, a tag saying how sure we are of it and
+where it comes from; the report prints the whole table
+(:meth:`RuleSet.table`) so the reader sees which values were used.
+
+Tags
+----
+``seen``
+    read in a published source (named in ``source``).
+``memory``
+    recalled, to be treated as a default the user checks against the edition in force.
+``practice``
+    common practice with no single source.
+``derived``
+    arithmetic on other values.
+``user``
+    replaced by the user (job file ``[rules.overrides]``); ``source`` keeps the
+    value it replaced.
+
+All lengths are mm, rates mm/y, intervals years, whatever the scan's units.
+The standard in force, the owner's authorised inspector and local regulations
+decide; these values are defaults to be checked.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass
+
+from .errors import InputError, where
+
+__all__ = ["RuleValue", "RuleSet", "RULESETS", "TAGS", "get_ruleset"]
+
+#: Accepted tags of a :class:`RuleValue`.
+TAGS = ("seen", "memory", "practice", "derived", "user")
+
+
+@dataclass(frozen=True)
+class RuleValue:
+    """One rule value with its unit and provenance.
+
+    Parameters
+    ----------
+    value : the number. [unit]
+    unit : unit text, e.g. ``"mm"``, ``"y"``, ``"mm/y"``, ``"kg/m3"``, ``"1"``.
+    tag : one of :data:`TAGS`.
+    source : where the value comes from (publication, clause), or what it replaced.
+    note : optional remark (conversion, caveat).
+    """
+
+    value: float
+    unit: str
+    tag: str
+    source: str
+    note: str = ""
+
+    def __post_init__(self):
+        if self.tag not in TAGS:
+            raise ValueError(f"rule tag must be one of {TAGS}, got {self.tag!r}")
+
+
+def _rv(value, unit, tag, source, note=""):
+    return RuleValue(float(value), unit, tag, source, note)
+
+
+# Fields that must be strictly positive (used as divisors or widths).
+_POSITIVE = {
+    "critical_zone_width_mm", "interval_step_y", "repair_to_step_mm", "ca_credit_rate_mm_y",
+    "steel_density_kg_m3", "patch_thickness_mm",
+}
+# Fields that are fractions in [0, 1].
+_FRACTION = {"critical_zone_min_t0_fraction", "critical_zone_min_shell_fraction"}
+
+
+@dataclass(frozen=True)
+class RuleSet:
+    """The rule values of one named rule set (all :class:`RuleValue`).
+
+    Attributes
+    ----------
+    name : rule-set name (``"api653"``).
+    mrt_no_leak_detection_mm : MRT with no means of leak detection and containment
+        (API 653 Table 4.4). [mm]
+    mrt_leak_detection_mm : MRT with leak detection and containment. [mm]
+    mrt_reinforced_lining_mm : MRT with a reinforced lining thicker than
+        ``lining_min_thickness_mm``. [mm]
+    lining_min_thickness_mm : lining thickness above which the reinforced-lining MRT
+        applies. [mm]
+    critical_zone_width_mm : width of the critical zone, radially inward from the
+        inside of the shell. [mm]
+    critical_zone_min_t0_fraction : critical-zone minimum as a fraction of the
+        original plate thickness. [1]
+    critical_zone_min_shell_fraction : critical-zone minimum as a fraction of the
+        lower shell course tmin. [1]
+    critical_zone_min_floor_mm : the critical-zone minimum is never below this. [mm]
+    interval_cap_y : interval cap without a release-prevention barrier. [y]
+    interval_cap_rpb_y : interval cap with a release-prevention barrier. [y]
+    initial_interval_y : base initial internal interval when no rates are known. [y]
+    credit_frp_lining_y, credit_thin_film_y, credit_cp_y, credit_rpb_y : additions to
+        the initial interval for a fibreglass-reinforced lining, a thin-film coating,
+        cathodic protection and a release-prevention barrier. [y]
+    ca_credit_above_mm : corrosion allowance above which the initial interval is
+        lengthened. [mm]
+    ca_credit_rate_mm_y : rate dividing the excess corrosion allowance into extra
+        years. [mm/y]
+    patch_min_size_overlap_mm : smallest patch dimension when it overlaps a seam or
+        another patch. [mm]
+    patch_min_size_mm : smallest patch dimension when it overlaps neither. [mm]
+    patch_extend_beyond_mm : a small patch extends at least this beyond the
+        corrosion. [mm]
+    patch_weld_clearance_mm : patch fillet welds at least this far from existing
+        bottom welds. [mm]
+    patch_critical_max_thickness_mm : greatest patch thickness in the critical zone
+        (special shapes only there). [mm]
+    patch_corner_radius_mm : corner radius of proposed rectangular patches. [mm]
+    patch_thickness_mm : default patch-plate thickness. [mm]
+    shell_lap_joint_clearance_mm : least distance from the inside of the shell to a
+        lap joint in the bottom (API 650). [mm]
+    steel_density_kg_m3 : density of carbon steel for patch masses. [kg/m³]
+    interval_step_y : recommended intervals are rounded down to this step. [y]
+    repair_to_step_mm : repair-to thicknesses are rounded up to this step. [mm]
+    noise_k : a change counts as growth when above ``noise_k`` times its standard
+        deviation. [1]
+    min_coverage_pct : zones scanned less than this are flagged ``low-coverage``. [%]
+    """
+
+    name: str
+    mrt_no_leak_detection_mm: RuleValue
+    mrt_leak_detection_mm: RuleValue
+    mrt_reinforced_lining_mm: RuleValue
+    lining_min_thickness_mm: RuleValue
+    critical_zone_width_mm: RuleValue
+    critical_zone_min_t0_fraction: RuleValue
+    critical_zone_min_shell_fraction: RuleValue
+    critical_zone_min_floor_mm: RuleValue
+    interval_cap_y: RuleValue
+    interval_cap_rpb_y: RuleValue
+    initial_interval_y: RuleValue
+    credit_frp_lining_y: RuleValue
+    credit_thin_film_y: RuleValue
+    credit_cp_y: RuleValue
+    credit_rpb_y: RuleValue
+    ca_credit_above_mm: RuleValue
+    ca_credit_rate_mm_y: RuleValue
+    patch_min_size_overlap_mm: RuleValue
+    patch_min_size_mm: RuleValue
+    patch_extend_beyond_mm: RuleValue
+    patch_weld_clearance_mm: RuleValue
+    patch_critical_max_thickness_mm: RuleValue
+    patch_corner_radius_mm: RuleValue
+    patch_thickness_mm: RuleValue
+    shell_lap_joint_clearance_mm: RuleValue
+    steel_density_kg_m3: RuleValue
+    interval_step_y: RuleValue
+    repair_to_step_mm: RuleValue
+    noise_k: RuleValue
+    min_coverage_pct: RuleValue
+
+    # --- access ---------------------------------------------------------
+    @classmethod
+    def value_names(cls) -> tuple[str, ...]:
+        """Names of the rule values (every field but ``name``), in table order."""
+        return tuple(f.name for f in dataclasses.fields(cls) if f.name != "name")
+
+    def v(self, name: str) -> float:
+        """The number of rule value ``name``. [its unit]"""
+        return getattr(self, name).value
+
+    def table(self) -> list[dict]:
+        """Rows ``{name, value, unit, tag, source, note}`` for the report, in field order."""
+        rows = []
+        for n in self.value_names():
+            rv = getattr(self, n)
+            rows.append({"name": n, "value": rv.value, "unit": rv.unit, "tag": rv.tag,
+                         "source": rv.source, "note": rv.note})
+        return rows
+
+    # --- rules as functions --------------------------------------------
+    def mrt_mm(self, *, leak_detection: bool = False, reinforced_lining: bool = False) -> float:
+        """Minimum remaining thickness of the bottom, API 653 Table 4.4 case.
+
+        Parameters
+        ----------
+        leak_detection : the tank has a means of leak detection and containment.
+        reinforced_lining : the bottom has a reinforced lining thicker than
+            ``lining_min_thickness_mm``.
+
+        Returns
+        -------
+        float : MRT. [mm]
+        """
+        if leak_detection:
+            return self.v("mrt_leak_detection_mm")
+        if reinforced_lining:
+            return self.v("mrt_reinforced_lining_mm")
+        return self.v("mrt_no_leak_detection_mm")
+
+    def critical_zone_min_mm(self, t0_mm: float, shell_tmin_mm: float | None = None) -> float:
+        """Minimum thickness in the critical zone.
+
+        The smaller of ``critical_zone_min_t0_fraction`` × the original plate
+        thickness and ``critical_zone_min_shell_fraction`` × the lower shell course
+        tmin (when known), but not below ``critical_zone_min_floor_mm``.
+
+        Parameters
+        ----------
+        t0_mm : original plate thickness, without corrosion allowance. [mm]
+        shell_tmin_mm : tmin of the lower shell course, if known. [mm]
+
+        Returns
+        -------
+        float : critical-zone minimum. [mm]
+        """
+        cands = [self.v("critical_zone_min_t0_fraction") * float(t0_mm)]
+        if shell_tmin_mm is not None:
+            cands.append(self.v("critical_zone_min_shell_fraction") * float(shell_tmin_mm))
+        return max(min(cands), self.v("critical_zone_min_floor_mm"))
+
+    def interval_cap_years(self, release_prevention_barrier: bool = False) -> float:
+        """Interval cap: ``interval_cap_rpb_y`` with a release-prevention barrier, else ``interval_cap_y``. [y]"""
+        return self.v("interval_cap_rpb_y" if release_prevention_barrier else "interval_cap_y")
+
+    def initial_interval_years(self, *, frp_lining: bool = False, thin_film_coating: bool = False,
+                               cp_effective: bool = False, release_prevention_barrier: bool = False,
+                               corrosion_allowance_mm: float | None = None) -> float:
+        """Initial internal interval when no corrosion rates are known (API 653 §6.4.2).
+
+        ``initial_interval_y`` plus each safeguard's credit, plus
+        (CA − ``ca_credit_above_mm``)/``ca_credit_rate_mm_y`` years when the corrosion
+        allowance exceeds ``ca_credit_above_mm``, capped at :meth:`interval_cap_years`.
+
+        Parameters
+        ----------
+        frp_lining : fibreglass-reinforced lining.
+        thin_film_coating : thin-film coating (ignored when ``frp_lining``).
+        cp_effective : effective cathodic protection.
+        release_prevention_barrier : release-prevention barrier under the bottom.
+        corrosion_allowance_mm : corrosion allowance of the bottom, if known. [mm]
+
+        Returns
+        -------
+        float : initial interval. [y]
+        """
+        y = self.v("initial_interval_y")
+        if frp_lining:
+            y += self.v("credit_frp_lining_y")
+        elif thin_film_coating:
+            y += self.v("credit_thin_film_y")
+        if cp_effective:
+            y += self.v("credit_cp_y")
+        if release_prevention_barrier:
+            y += self.v("credit_rpb_y")
+        if corrosion_allowance_mm is not None and corrosion_allowance_mm > self.v("ca_credit_above_mm"):
+            y += (corrosion_allowance_mm - self.v("ca_credit_above_mm")) / self.v("ca_credit_rate_mm_y")
+        return min(y, self.interval_cap_years(release_prevention_barrier))
+
+    def round_interval(self, years: float) -> float:
+        """Round an interval DOWN to ``interval_step_y`` (NaN and inf pass through). [y]"""
+        if not math.isfinite(years):
+            return years
+        step = self.v("interval_step_y")
+        return math.floor(years / step + 1e-9) * step
+
+    def round_repair_to(self, thickness_mm: float) -> float:
+        """Round a repair-to thickness UP to ``repair_to_step_mm``. [mm]"""
+        step = self.v("repair_to_step_mm")
+        return math.ceil(thickness_mm / step - 1e-9) * step
+
+
+_IN = 25.4  # mm per inch, exact
+
+_API653 = RuleSet(
+    name="api653",
+    mrt_no_leak_detection_mm=_rv(
+        2.54, "mm", "seen", "API 653 Table 4.4 (quoted in 14 CCR §1773.4(e) and by Carucci)",
+        "0.10 in; no means of leak detection and containment"),
+    mrt_leak_detection_mm=_rv(
+        1.27, "mm", "seen", "API 653 Table 4.4 (quoted in 14 CCR §1773.4(e) and by Carucci)",
+        "0.05 in; with leak detection and containment"),
+    mrt_reinforced_lining_mm=_rv(
+        1.27, "mm", "seen", "API 653 Table 4.4 (quoted in 14 CCR §1773.4(e) and by Carucci)",
+        "0.05 in; reinforced lining > 0.05 in thick per API RP 652 [memory]"),
+    lining_min_thickness_mm=_rv(
+        1.27, "mm", "seen", "API 653 Table 4.4", "0.05 in"),
+    critical_zone_width_mm=_rv(
+        75.0, "mm", "seen", "API 653 definition of the critical zone (quoted in a Q&A set)",
+        "3 in, radially inward from the inside edge of the shell"),
+    critical_zone_min_t0_fraction=_rv(
+        0.5, "1", "memory", "API 653 §4.4 critical-zone rule",
+        "half the original plate thickness (without corrosion allowance)"),
+    critical_zone_min_shell_fraction=_rv(
+        0.5, "1", "memory", "API 653 §4.4 critical-zone rule", "50 % of the lower shell course tmin"),
+    critical_zone_min_floor_mm=_rv(
+        2.54, "mm", "memory", "API 653 §4.4 critical-zone rule", "never below 0.1 in"),
+    interval_cap_y=_rv(
+        20.0, "y", "seen", "API 653 §6.4.2 (training slides)", "without a release-prevention barrier"),
+    interval_cap_rpb_y=_rv(
+        30.0, "y", "seen", "API 653 §6.4.2 (training slides)", "with a release-prevention barrier"),
+    initial_interval_y=_rv(
+        10.0, "y", "seen", "API 653 §6.4.2 (training slides)", "base when corrosion rates are unknown"),
+    credit_frp_lining_y=_rv(5.0, "y", "seen", "API 653 §6.4.2 (training slides)",
+                            "fibreglass-reinforced lining"),
+    credit_thin_film_y=_rv(2.0, "y", "seen", "API 653 §6.4.2 (training slides)", "thin-film coating"),
+    credit_cp_y=_rv(5.0, "y", "seen", "API 653 §6.4.2 (training slides)", "cathodic protection"),
+    credit_rpb_y=_rv(10.0, "y", "seen", "API 653 §6.4.2 (training slides)",
+                     "release-prevention barrier"),
+    ca_credit_above_mm=_rv(0.150 * _IN, "mm", "seen", "API 653 §6.4.2 (training slides)",
+                           "0.150 in"),
+    ca_credit_rate_mm_y=_rv(15 * 0.0254, "mm/y", "seen", "API 653 §6.4.2 (training slides)",
+                            "15 mpy"),
+    patch_min_size_overlap_mm=_rv(
+        300.0, "mm", "seen", "API 653 §9.10.1.1 (quoted in repair procedures)",
+        "12 in, as the metric 300 mm quoted; overlapping a seam or another patch"),
+    patch_min_size_mm=_rv(
+        150.0, "mm", "seen", "API 653 §9.10.1.1 (quoted in repair procedures)",
+        "6 in; only if overlapping neither a seam nor a patch"),
+    patch_extend_beyond_mm=_rv(
+        50.0, "mm", "seen", "API 653 §9.10.1.1 (quoted in repair procedures)",
+        "2 in beyond the corrosion, for patches smaller than 300 mm"),
+    patch_weld_clearance_mm=_rv(
+        50.0, "mm", "seen", "API 653 Fig. 9.13 (cited by study flashcards)",
+        "2 in from existing bottom welds"),
+    patch_critical_max_thickness_mm=_rv(
+        6.35, "mm", "memory", "API 653 §9.10.1 critical-zone patches",
+        "1/4 in; special shapes (tombstone) only in the critical zone"),
+    patch_corner_radius_mm=_rv(
+        50.0, "mm", "practice", "common practice, no source",
+        "rounded corners are required [seen: §9.10.1.1]; this radius is a common choice"),
+    patch_thickness_mm=_rv(6.35, "mm", "practice", "common practice, no source",
+                           "1/4 in, the API 650 minimum bottom plate [seen: Carucci]"),
+    shell_lap_joint_clearance_mm=_rv(
+        600.0, "mm", "seen", "API 650 §5.5.2 (quoted in training notes)",
+        "24 in from the inside of the shell to any lap joint"),
+    steel_density_kg_m3=_rv(7850.0, "kg/m3", "practice", "engineering handbooks, carbon steel"),
+    interval_step_y=_rv(0.5, "y", "practice", "common practice, no source",
+                        "recommended intervals are rounded down to this"),
+    repair_to_step_mm=_rv(0.005 * _IN, "mm", "seen",
+                          "MFL threshold table from API 653 3rd ed. §4.4.7.1 (tank consultancy)",
+                          "0.005 in; repair-to thicknesses rounded up"),
+    noise_k=_rv(2.0, "1", "practice", "common practice, no source",
+                "a change below about 2 sigma is not evidence of growth"),
+    min_coverage_pct=_rv(90.0, "%", "practice", "common practice, no source",
+                         "typically at least 95 % of a floor is scanned [seen: NDT service page]"),
+)
+
+#: Registry of named rule sets.
+RULESETS: dict[str, RuleSet] = {"api653": _API653}
+
+
+def _is_number(x) -> bool:
+    return isinstance(x, (int, float)) and not isinstance(x, bool)
+
+
+def get_ruleset(name: str = "api653", overrides: dict | None = None, *,
+                source: str | None = None) -> RuleSet:
+    """A named rule set, optionally with some values replaced.
+
+    Parameters
+    ----------
+    name : key of :data:`RULESETS`.
+    overrides : ``{field name: number or RuleValue}``.  A number keeps the field's
+        unit and gets tag ``user``, its source recording the value it replaced.
+    source : file the overrides came from, for error messages (default ``"rules"``).
+
+    Returns
+    -------
+    RuleSet
+
+    Raises
+    ------
+    InputError
+        Unknown rule-set name, unknown field, or a value of the wrong type or range;
+        one line naming the field.
+    """
+    src = source if source is not None else "rules"
+    if not isinstance(name, str) or name not in RULESETS:
+        raise InputError(f"{where(src, field='name')}: unknown rule set {name!r} "
+                         f"(known: {', '.join(sorted(RULESETS))})")
+    base = RULESETS[name]
+    if not overrides:
+        return base
+    if not isinstance(overrides, dict):
+        raise InputError(f"{where(src, field='overrides')}: expected a table of rule values")
+    names = set(RuleSet.value_names())
+    changes = {}
+    for key, val in overrides.items():
+        if key not in names:
+            raise InputError(f"{where(src, field=str(key))}: unknown rule value "
+                             f"(see RuleSet.table() for the names)")
+        old = getattr(base, key)
+        if isinstance(val, RuleValue):
+            new = val
+        elif _is_number(val):
+            new = RuleValue(float(val), old.unit, "user",
+                            f"override (was {old.value:g} {old.unit}, {old.tag})", old.note)
+        else:
+            raise InputError(f"{where(src, field=key)}: expected a number [{old.unit}], "
+                             f"got {type(val).__name__}")
+        v = new.value
+        if not _is_number(v) or not math.isfinite(v) or v < 0:
+            raise InputError(f"{where(src, field=key)}: must be a finite number >= 0, got {v!r}")
+        if key in _POSITIVE and v <= 0:
+            raise InputError(f"{where(src, field=key)}: must be > 0, got {v!r}")
+        if key in _FRACTION and v > 1:
+            raise InputError(f"{where(src, field=key)}: must be a fraction in [0, 1], got {v!r}")
+        changes[key] = new
+    return dataclasses.replace(base, **changes)
