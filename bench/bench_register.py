@@ -54,8 +54,8 @@ def main(argv=None) -> int:
     shift_rc, _, _ = phase_cross_correlation(a, b, upsample_factor=10)
     t_sk = time.perf_counter() - t0
     # skimage's shift (rows, cols) registers moving b onto reference a: a(p) ~ b(p - shift)
-    sk_dx = float(shift_rc[1]) * new.pitch + (old.x0 - new.x0)
-    sk_dy = float(shift_rc[0]) * new.pitch + (old.y0 - new.y0)
+    sk_dx = float(shift_rc[1]) * new.pitch + (new.x0 - old.x0)
+    sk_dy = float(shift_rc[0]) * new.pitch + (new.y0 - old.y0)
     del a, b
 
     tracemalloc.start()

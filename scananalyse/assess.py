@@ -634,6 +634,15 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
                 r_src = "zone-max-sum"
                 flags.append("eva-rate-assumed")
             life_eva = eva_life(t0=t0, depth_upper=d_life, mrt=mrt, rate=r_eva)
+            life_dr = life_eva
+            direct = _attr(ex, "life_eva_y")
+            if direct is not None and not math.isnan(direct):
+                # The caller gives the extreme-value life itself (block minima of the
+                # co-located life); the deepest-pit-with-fastest-rate figure stays for
+                # reference in ``life_eva_depth_rate_y``.
+                life_eva = max(float(direct), 0.0)
+                r_src = "life-blocks"
+            row["life_eva_depth_rate_y"] = life_dr
             if t0 - d_life < mrt:
                 flags.append("eva-below-mrt")
         row.update({"depth_eva_mm": d_eva if d_eva is not None else math.nan,

@@ -221,7 +221,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     # --- extremes ------------------------------------------------------------------
     with prog.stage("extremes"):
-        ext_depth, ext_rate = _zone_extremes(new, lr, zmap, job, old is not None)
+        ext_depth, ext_rate = _zone_extremes(new.thickness, lr.rate_top, lr.rate_under, zmap,
+                                             nominal=new.meta.nominal, censored=lr.censored,
+                                             threshold=new.meta.threshold, pitch=new.pitch, job=job)
 
     # --- assessment ----------------------------------------------------------------
     options = assess.AssessOptions(
@@ -229,23 +231,25 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
         release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
         target_interval_years=job.target_interval)
-    ext_for_assess = _merge_extremes(ext_depth, ext_rate)
     with prog.stage("assessment"):
+        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
+        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
+        ext_life = _life_extremes(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
+                                  censored=lr.censored, threshold=new.meta.threshold, pitch=new.pitch, job=job)
+        ext_for_assess = _merge_extremes(ext_depth, ext_rate, ext_life)
         table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
                                     rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
                                     options=options, extremes=ext_for_assess, pitch_mm=new.pitch,
                                     rate_short_available=old is not None)
-        table = _add_eva_columns(table, ext_depth)
-        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
-        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
+        table = _add_eva_columns(table, ext_depth, ext_life)
 
     # --- indications ---------------------------------------------------------------
     with prog.stage("indications"):
-        ind, gone = _indications(new, old_on_new, lr, side, zmap, job)
+        ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job)
 
     # --- repairs -------------------------------------------------------------------
     with prog.stage("repairs"):
-        rep = _repairs(new, lr, zmap, rules, options, ext_for_assess, mrt, job, old is not None)
+        rep = _repairs(new, lr, side, zmap, rules, options, ext_for_assess, mrt, job, old is not None)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
@@ -254,28 +258,29 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     **rep)
 
 
-def _zone_extremes(new, lr, zmap, job, have_short):
-    """Block-maxima statistics of loss depth and of the rate sum, per zone."""
-    from .extremes import zone_extremes
+def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, threshold, pitch, job):
+    """Block-maxima statistics of loss depth and of the summed rate, per zone.
 
-    scanned = new.scanned
-    # Censored cells are valid cells whose value lies below the threshold: give them 0
-    # so blocks with no detected loss are left-censored at the threshold.
-    depth = np.where(scanned, np.nan_to_num(lr.loss, nan=0.0), np.nan).astype(np.float32)
-    if lr.censored is not None:
-        depth[lr.censored & scanned] = 0.0
-    rate_sum = (np.nan_to_num(lr.rate_top, nan=np.nan) + np.nan_to_num(lr.rate_under, nan=np.nan)).astype(np.float32)
-    thr = new.meta.threshold or None
+    Loss is nominal − thickness; censored cells (reported as nominal, true loss below the
+    threshold) are valid cells with value 0, so a block with no detected loss enters the
+    fit as left-censored at the threshold.
+    """
+    scanned = np.isfinite(thickness)
+    depth = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
+    if censored is not None:
+        depth[censored & scanned] = 0.0
+    rate_sum = (rate_top + rate_under).astype(np.float32)
+    thr = threshold or None
     ext_d, ext_r = {}, {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
-            ext_d[name] = _gumbel_or_gev(depth, mask, pitch_mm=new.pitch, zone_area_mm2=area,
+            ext_d[name] = _gumbel_or_gev(depth, mask, pitch_mm=pitch, zone_area_mm2=area,
                                          block_mm=job.block_mm, threshold=thr, seed=job.seed, valid=scanned)
             if np.isfinite(rate_sum[mask]).any():
-                ext_r[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=new.pitch, zone_area_mm2=area,
+                ext_r[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=pitch, zone_area_mm2=area,
                                              block_mm=job.block_mm, threshold=None, seed=job.seed,
                                              valid=np.isfinite(rate_sum))
     return ext_d, ext_r
@@ -299,23 +304,101 @@ def _gumbel_or_gev(values, mask, **kw):
     return z
 
 
-def _add_eva_columns(table: pd.DataFrame, ext_depth: dict) -> pd.DataFrame:
-    """Append the extreme-value fit's particulars (method, T, blocks, GEV test) per zone."""
+def _add_eva_columns(table: pd.DataFrame, ext_depth: dict, ext_life: dict) -> pd.DataFrame:
+    """Append the extreme-value fits' particulars (method, T, blocks, GEV test) per zone."""
     cols = ["depth_pred_upper_mm", "eva_method", "eva_T", "eva_block_mm", "eva_n_blocks", "eva_n_censored",
             "eva_gev_p", "eva_reason"]
-    rows = [{c: ext_depth[z].row().get(c) if z in ext_depth else None for c in cols} for z in table["zone"]]
-    return pd.concat([table.reset_index(drop=True), pd.DataFrame(rows, columns=cols)], axis=1)
+    rows = []
+    for z in table["zone"]:
+        row = {c: ext_depth[z].row().get(c) if z in ext_depth else None for c in cols}
+        lz = ext_life.get(z)
+        row["life_eva_method"] = lz["method"] if lz else ""
+        row["life_eva_reason"] = lz["reason"] if lz else "zone not scanned"
+        rows.append(row)
+    extra = pd.DataFrame(rows, columns=cols + ["life_eva_method", "life_eva_reason"])
+    return pd.concat([table.reset_index(drop=True), extra], axis=1)
 
 
-def _merge_extremes(ext_depth, ext_rate) -> dict:
+#: Longest horizon searched for the extreme-value life; beyond it the life is reported
+#: as this value (every interval cap is shorter). [y]
+LIFE_HORIZON_Y = 60.0
+
+
+def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored, threshold, pitch, job,
+                   methods: dict | None = None) -> dict:
+    """Extreme-value life per zone: when the deepest loss expected over the whole zone reaches
+    the zone's allowance (nominal − MRT), each cell's loss growing at its own measured rates.
+
+    For a horizon H the projected loss is ``loss + (r_top + r_under)·H`` cell by cell (rates
+    stay co-located, unlike combining the deepest pit with the fastest rate found anywhere).
+    The deepest projected loss over the zone is the greater of the deepest seen in the
+    scanned cells and the deepest expected in the part nobody scanned: the predictive upper
+    bound (``level``) of the block maxima fit (censored at the threshold) for
+    T = unscanned zone area / block area (at least 2).  It is compared with the allowance.  The life is the H where they meet (bisection, 0.05 y),
+    0 if the allowance is already used up at H = 0, and :data:`LIFE_HORIZON_Y` if never
+    reached within it.  The distribution (Gumbel or GEV) is chosen once at H = 0.
+    Returns zone -> ``{"life_eva_y", "method", "reason"}``.
+    """
+    from .extremes import zone_extremes
+
+    scanned = np.isfinite(thickness)
+    depth0 = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
+    if censored is not None:
+        depth0[censored & scanned] = 0.0
+    rate = np.nan_to_num(np.fmax(rate_top, 0), nan=0.0) + np.nan_to_num(np.fmax(rate_under, 0), nan=0.0)
+    rate = rate.astype(np.float32)
+    out = {}
+    for k, name in enumerate(zmap.names):
+        mask = zmap.labels == k
+        if not (scanned & mask).any():
+            continue
+        allowance = float(nominal - np.nanmin(np.where(mask, mrt, np.nan)))
+        in_zone = scanned & mask
+        hidden_mm2 = max(0.0, float(zmap.areas_mm2[k]) - np.count_nonzero(in_zone) * pitch * pitch)
+        kw = dict(pitch_mm=pitch, zone_area_mm2=max(hidden_mm2, 1.0), block_mm=job.block_mm,
+                  threshold=threshold or None, seed=job.seed, valid=scanned)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ScanWarning)
+            z0 = _gumbel_or_gev(depth0, mask, **kw)
+            if not z0:
+                out[name] = {"life_eva_y": None, "method": "", "reason": z0.reason}
+                continue
+            method = "gev" if z0.fit is not None and getattr(z0.fit, "distribution", "") == "gev" else "mle"
+            extra = {"method": "gev", "bound_method": "profile"} if method == "gev" else {}
+
+            def excess(h):
+                proj = depth0 + rate * np.float32(h)
+                seen = float(np.nanmax(proj[in_zone]))
+                if hidden_mm2 <= 0:
+                    return seen - allowance
+                z = zone_extremes(proj, mask, **kw, **extra)
+                return max(seen, z.depth_pred_upper_mm if z else np.inf) - allowance
+
+            if excess(0.0) >= 0:
+                life = 0.0
+            elif excess(LIFE_HORIZON_Y) < 0:
+                life = LIFE_HORIZON_Y
+            else:
+                lo, hi = 0.0, LIFE_HORIZON_Y
+                while hi - lo > 0.05:
+                    mid = 0.5 * (lo + hi)
+                    lo, hi = (mid, hi) if excess(mid) < 0 else (lo, mid)
+                life = lo
+        out[name] = {"life_eva_y": life, "method": z0.row().get("eva_method", ""), "reason": ""}
+    return out
+
+
+def _merge_extremes(ext_depth, ext_rate, ext_life=None) -> dict:
     out = {}
     for name, d in ext_depth.items():
         if not d:
             continue
         r = ext_rate.get(name)
+        lz = (ext_life or {}).get(name)
         out[name] = {"depth_eva_mm": d.depth_eva_mm, "depth_eva_upper_mm": d.depth_eva_upper_mm,
                      "depth_pred_upper_mm": d.depth_pred_upper_mm,
-                     "rate_eva_mm_y": (r.depth_eva_mm if r else None)}
+                     "rate_eva_mm_y": (r.depth_eva_mm if r else None),
+                     "life_eva_y": (lz["life_eva_y"] if lz else None)}
     return out
 
 
@@ -326,7 +409,7 @@ def _reporting_depth(new: FloorScan) -> float:
     return float(thr) if thr else 0.1 * new.meta.nominal
 
 
-def _indications(new, old_on_new, lr, side, zmap, job):
+def _indications(new, old, transform, lr, side, zmap, job):
     from . import indications as ind_mod
 
     depth = _reporting_depth(new)
@@ -336,21 +419,16 @@ def _indications(new, old_on_new, lr, side, zmap, job):
                                            zone_labels=zmap.labels, zone_names=zmap.names, rate=rate,
                                            thickness=new.thickness, return_labels=True)
     gone = None
-    if old_on_new is not None:
-        from .rates import loss_map
-
-        old_loss = loss_map(old_on_new.thickness, new.meta.nominal)
-        old_ind, old_labels = ind_mod.find_indications(old_loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
-                                                       reporting_depth_mm=depth, zone_labels=zmap.labels,
-                                                       zone_names=zmap.names, thickness=old_on_new.thickness,
-                                                       return_labels=True)
+    if old is not None:
+        old_ind, old_labels = ind_mod.old_indications(old, new, transform, reporting_depth_mm=depth,
+                                                      zone_labels=zmap.labels, zone_names=zmap.names)
         ind = ind_mod.match_indications(ind, old_ind, labels, old_labels, growth_sigma_mm=lr.growth_sigma,
                                         dt_years=lr.dt_years)
         gone = ind_mod.gone_indications(old_ind, ind)
     return ind, gone
 
 
-def _repairs(new, lr, zmap, rules, options, ext, mrt, job, have_old) -> dict:
+def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old) -> dict:
     """Patch planning for the target interval, or the engineer's patches, then re-assessment."""
     from . import assess, repair
 
@@ -359,25 +437,36 @@ def _repairs(new, lr, zmap, rules, options, ext, mrt, job, have_old) -> dict:
                                         target_years=job.target_interval, repair_to_mm=job.repair_to_mm)
     checks = None
     if job.patches:
-        patches = repair.read_patches(job.patches)
+        patches = repair.read_patches(job.patches, rules=rules)
     else:
         patches = repair.plan_patches(needs, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules, plate=new.plate,
                                       critical_mask=critical, zone_labels=zmap.labels, zone_names=zmap.names,
                                       patch_thickness_mm=job.patch_thickness_mm)
     checks = repair.check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
-                                      plate=new.plate, critical_mask=critical, needs=needs)
-    uncovered = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
-    n_uncovered = int(uncovered[0] if isinstance(uncovered, tuple) else np.count_nonzero(uncovered))
+                                      plate=new.plate, critical_mask=critical, needs=needs,
+                                      zone_labels=zmap.labels, zone_names=zmap.names)
+    n_uncovered, _ = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
     t_rep, rt_rep, ru_rep, covered = repair.apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
                                                           x0=new.x0, y0=new.y0, pitch=new.pitch,
-                                                          patch_thickness_mm=job.patch_thickness_mm)
-    side_rep = None
-    zones_rep = assess.assess_zones(thickness=t_rep, side=None if side_rep is None else side_rep, rate_top=rt_rep,
+                                                          patch_thickness_mm=job.patch_thickness_mm, rules=rules)
+    # Patched cells: the patch is the new top surface; its loss so far is nil, so the side
+    # attribution no longer matters there (rates carry the side).
+    # The floor as repaired gets its own extreme-value statistics: patched cells read the
+    # patch thickness (no loss), the rest as found.
+    ext_d_rep, ext_r_rep = _zone_extremes(t_rep, rt_rep, ru_rep, zmap, nominal=new.meta.nominal,
+                                          censored=lr.censored & ~covered, threshold=new.meta.threshold,
+                                          pitch=new.pitch, job=job)
+    life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
+    ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
+                               censored=lr.censored & ~covered, threshold=new.meta.threshold, pitch=new.pitch, job=job)
+    zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
-                                    extremes=ext, pitch_mm=new.pitch, rate_short_available=have_old)
-    return {"needs_repair": needs, "patches": patches, "patch_checks": checks, "uncovered_cells": n_uncovered,
+                                    extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
+                                    rate_short_available=have_old)
+    zones_rep = _add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
+    return {"needs_repair": needs, "patches": patches, "patch_checks": checks, "uncovered_cells": int(n_uncovered),
             "zones_repaired": zones_rep,
-            "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep,
+            "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep, "life_local_repaired": life_rep,
                               "rate_under_repaired": ru_rep, "patched": covered},
             "repair_to_table": None}
 
@@ -494,7 +583,7 @@ def _return_curve(z):
     cen = np.asarray(z.blocks.censored, dtype=bool)
     for T in Ts:
         try:
-            b = return_level_bounds(z.fit, mx, T, level=z.level, one_sided=True, n_boot=300, seed=0,
+            b = return_level_bounds(z.fit, mx, T, level=z.level, one_sided=True, method="profile",
                                     censored=cen if cen.any() else None, threshold=z.threshold if cen.any() else None)
             ups.append(b.upper)
         except Exception:  # bounds are a display aid here; the table's bound comes from zone_extremes

@@ -465,7 +465,7 @@ def compute_rates(new: FloorScan, old_on_new: FloorScan | None, side: np.ndarray
         thr_old = old_on_new.meta.threshold
         with np.errstate(invalid="ignore"):
             # crossed: below the older scan's threshold, reported now; the older loss is
-            # unknown in [0, thr_old): estimate it as f * thr_old (options.crossed)
+            # unknown in [0, thr_old): estimated per options.crossed
             crossed = censored_map(old_loss, thr_old) & ~censored & np.isfinite(growth)
             if crossed.any():
                 old_est = _crossed_old_loss(loss, old_loss, crossed, float(thr_old),

@@ -11,11 +11,13 @@ and resamples the older scan onto the newer grid for the later stages.
 
 Method (documented in ``docs/registration.md``):
 
-1. *Feature image* of each scan on its own grid: 1 where a cell inside the grid
-   was not scanned (weld seams, plate edges, the shell margin, obstructions show
-   as lines and areas of unscanned cells), ``clip(loss / (0.25 nominal), 0, 1)``
-   where it was (pits and patches).  A pyramid of 2x2 block means of it.
-2. *Coarse search* on a pyramid level of about 256+ cells across: for each
+1. *Feature image* of each scan on its own grid: 1 where a cell was not scanned
+   in a narrow line (weld seams, plate edges), 0 in large unscanned areas (outside
+   the floor, margin, obstructions: their outline changes between outages),
+   ``clip(loss / (0.25 nominal), 0, 1)`` where scanned (pits and patches).
+   A pyramid of 2x2 block means of it.
+2. *Coarse search* on a pyramid level of about 128+ cells across (coverage outline
+   added back at weight 0.5): for each
    rotation of a sweep over the allowed range, the older level is resampled
    (bilinear) onto the newer level's grid, padded by the largest allowed shift,
    and a masked normalised cross-correlation over all shifts is computed with
@@ -43,7 +45,6 @@ two point patterns. IEEE Trans. PAMI 13(4), 376-380.
 
 from __future__ import annotations
 
-import dataclasses
 import json
 import math
 import os
@@ -69,6 +70,7 @@ __all__ = [
     "sample_thickness",
     "feature_image",
     "write_registration",
+    "read_control_points_named",
 ]
 
 #: Unscanned cells count 1 in the feature image; loss counts up to 1 at this fraction of nominal.
@@ -338,8 +340,8 @@ def read_control_points(path) -> tuple[np.ndarray, np.ndarray]:
 
     Returns
     -------
-    (old_xy, new_xy) : two (n, 2) float64 arrays in mm; the names are in
-        ``read_control_points.last_names`` is not used: call :func:`read_control_points_named`. [mm]
+    (old_xy, new_xy) : two (n, 2) float64 arrays; :func:`read_control_points_named`
+        also returns the point names. [mm]
 
     Raises
     ------
@@ -737,7 +739,6 @@ def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
     TX, TY = np.meshgrid(tau, tau)
     in_window = np.hypot(TX, TY) <= max_shift_mm + 1e-9
     best = []
-    maps = []
     go = old_lv.coarse(boundary_weight)
     for ang in angles_deg:
         th = math.radians(ang)
@@ -774,7 +775,6 @@ def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
         di = _parabolic(ncc[i - 1, j], ncc[i, j], ncc[i + 1, j]) if 0 < i < ncc.shape[0] - 1 else 0.0
         dj = _parabolic(ncc[i, j - 1], ncc[i, j], ncc[i, j + 1]) if 0 < j < ncc.shape[1] - 1 else 0.0
         best.append((float(ncc[i, j]), (j - s + dj) * pc, (i - s + di) * pc))
-        maps.append(ncc)
     return best
 
 
@@ -826,7 +826,7 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
     converged = False
     cov = None
     it = 0
-    first = True
+
     def evaluate(params):
         th_, dx_, dy_, gain_, off_ = params
         c, s = math.cos(th_), math.sin(th_)
@@ -1068,7 +1068,8 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         da = _parabolic(peaks[ib - 1], peaks[ib], peaks[ib + 1]) if 0 < ib < len(peaks) - 1 else 0.0
         ang = float(angles[ib] + da * step)
         tr = RigidTransform(ang, centre_tr.dx_mm + res[ib][1], centre_tr.dy_mm + res[ib][2])
-        contrast = float(peaks[ib] - np.median(peaks)) if len(peaks) >= 5 else None
+        # rotation contrast: meaningful only over a wide sweep (not the small control-point window)
+        contrast = float(peaks[ib] - np.median(peaks)) if half_rot >= 2.0 and len(peaks) >= 5 else None
         details.update(coarse_pitch_mm=new_c.pitch, angle_step_deg=step, n_angles=int(len(angles)),
                        coarse_peak_ncc=float(peaks[ib]), coarse_estimate=tr.to_dict())
 
@@ -1144,7 +1145,7 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
     if final is auto_tr and auto_tr is not None:
         score = score_auto
     else:
-        pn_ = _pyramid(new) if cp_tr is None or auto else _pyramid(new)
+        pn_ = _pyramid(new)
         po_ = _pyramid(old)
         score_lv = pn_[min(1, len(pn_) - 1)] if pn_[0].img.size > 4 * QUALITY_CELLS else pn_[0]
         score = _ncc_aligned(score_lv, _closest_level(po_, score_lv.pitch), final)

@@ -402,7 +402,7 @@ def _clearance_violation(segs, xish, rect, c):
 
 
 def _rect_gaps(R, chunk=1024):
-    """Yield (i_index_array, j_index_array) of pairs i<j with their rectangle gap (chunked)."""
+    """Yield (first row, rectangle gaps, (x overlap, y overlap)) for row chunks against all."""
     n = len(R)
     for s in range(0, n, chunk):
         a = R[s:s + chunk]
@@ -561,9 +561,8 @@ def _not_beyond(needs, rect, radius, margin, x0, y0, pitch):
     return bool(np.any(~inside & near))
 
 
-def _pair_flags(R, c, min_overlap):
-    """Per patch: too close to another patch (parallel edges within c); overlapping
-    another while smaller than the overlap minimum."""
+def _pair_flags(R, c):
+    """Per patch: too close to another patch (parallel edges within c); overlapping another."""
     n = len(R)
     close = np.zeros(n, dtype=bool)
     ov_any = np.zeros(n, dtype=bool)
@@ -602,7 +601,7 @@ def _rule_flags(R, rad, thk, *, rules, segs, use, critical, needs, x0, y0, pitch
     min_over = rules.v("patch_min_size_overlap_mm")
     tmax_crit = rules.v("patch_critical_max_thickness_mm")
     xish = np.abs(segs[:, 2] - segs[:, 0]) >= np.abs(segs[:, 3] - segs[:, 1]) if len(segs) else np.zeros(0, bool)
-    close, ov_patch = _pair_flags(R, c, min_over)
+    close, ov_patch = _pair_flags(R, c)
     out = []
     for k in range(len(R)):
         rect = tuple(R[k])
@@ -748,7 +747,6 @@ def plan_patches(needs, *, x0, y0, pitch, rules, seams=None, plate=None, critica
     grow = m + extra + pitch / 2.0
     R = np.column_stack([x0 + bb[:, 0] * pitch - grow, y0 + bb[:, 1] * pitch - grow,
                          x0 + bb[:, 2] * pitch + grow, y0 + bb[:, 3] * pitch + grow])
-    # a patch never needs a radius beyond half its smallest allowed side
     for _ in range(int(max_iter)):
         before = R.copy()
         changed = True

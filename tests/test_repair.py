@@ -46,16 +46,16 @@ def test_rule_values_are_the_published_ones():
 # independent geometry used by the checks below
 # ---------------------------------------------------------------------------
 def outline_samples(xa, ya, xb, yb, r, step=0.25):
-    """Dense points on a rounded-rectangle outline (independent of repair.py)."""
+    """Dense points, in order round the outline, of a rounded rectangle (independent of repair.py)."""
+    edges = ((xa + r, ya, xb - r, ya), (xb, ya + r, xb, yb - r),
+             (xb - r, yb, xa + r, yb), (xa, yb - r, xa, ya + r))
+    arcs = ((xb - r, ya + r, -90), (xb - r, yb - r, 0), (xa + r, yb - r, 90), (xa + r, ya + r, 180))
     pts = []
-    for (x1, y1, x2, y2) in ((xa + r, ya, xb - r, ya), (xb, ya + r, xb, yb - r),
-                             (xb - r, yb, xa + r, yb), (xa, yb - r, xa, ya + r)):
+    for (x1, y1, x2, y2), (cx, cy, a0) in zip(edges, arcs):
         n = max(2, int(math.hypot(x2 - x1, y2 - y1) / step) + 1)
         t = np.linspace(0, 1, n)
         pts.append(np.column_stack([x1 + t * (x2 - x1), y1 + t * (y2 - y1)]))
-    if r > 0:
-        for (cx, cy, a0) in ((xb - r, ya + r, -90), (xb - r, yb - r, 0), (xa + r, yb - r, 90),
-                             (xa + r, ya + r, 180)):
+        if r > 0:
             a = np.radians(np.linspace(a0, a0 + 90, 721))
             pts.append(np.column_stack([cx + r * np.cos(a), cy + r * np.sin(a)]))
     return np.concatenate(pts)
@@ -185,8 +185,7 @@ def test_critical_zone_patches_are_flagged():
     labels = np.where(crit, 0, 1)
     df = repair.plan_patches(nd, x0=0.0, y0=0.0, pitch=10.0, rules=RULES, zone_labels=labels,
                              zone_names=["critical", "interior"])
-    by_zone = dict(zip(df.zone, df["flags"]))
-    assert by_zone == {"interior": ""} or len(df) == 2
+    assert len(df) == 2
     assert sorted(df["flags"].tolist()) == ["", repair.FLAG_CRITICAL]
     assert set(df.zone) == {"interior"}             # the corrosion itself lies in the interior
     # a thicker plate than the critical-zone maximum (1/4 in) gets a second flag
@@ -405,9 +404,12 @@ def test_plan_repairs_meets_the_target_outside_the_patches():
     assert np.all(life[~plan.covered] >= 10.0 - 1e-4)          # ground truth: own-rate projection
     assert plan.area_m2 == pytest.approx(plan.patches.area_m2.sum())
     # the code's way: everything thinner than 3.5 mm is patched
-    plan2 = repair.repair_to_plan(t, rt, ru, repair_to_mm=3.5, x0=0.0, y0=0.0, pitch=10.0, rules=RULES)
-    assert plan2.n_uncovered == 0
+    t3 = np.where(rng.random((200, 200)) < 0.001, 3.0, 5.5).astype(np.float32)
+    r3 = np.full(t3.shape, 0.02, dtype=np.float32)
+    plan2 = repair.repair_to_plan(t3, r3, r3, repair_to_mm=3.5, x0=0.0, y0=0.0, pitch=10.0, rules=RULES)
+    assert plan2.n_uncovered == 0 and 0 < plan2.covered.mean() < 0.9
     assert np.nanmin(plan2.thickness[~plan2.covered]) >= 3.5
+    assert np.all(plan2.thickness[plan2.covered] == np.float32(RULES.v("patch_thickness_mm")))
 
 
 # ---------------------------------------------------------------------------

@@ -242,7 +242,7 @@ def test_bad_plate(tmp_path, value):
 
 
 def test_duplicate_cell_names_both_lines(tmp_path):
-    expect_error(write(tmp_path, changed(l15="0,0,6.0,top,1")), r":15: duplicate cell \(0.0, 0.0\), already given on line 12")
+    expect_error(write(tmp_path, changed(l15="0,0,6.0,top,1")), r":15: duplicate cell \(0, 0\), already given on line 12")
 
 
 def test_duplicate_cell_within_tolerance(tmp_path):
@@ -274,7 +274,7 @@ def test_grid_too_large_from_header(tmp_path):
 def test_cell_outside_declared_grid(tmp_path):
     lines = changed()
     lines[10:10] = ["# x0: 0", "# y0: 0", "# rows: 2", "# cols: 1"]  # table header now line 15
-    expect_error(write(tmp_path, lines), r":17: cell \(10.0, 0.0\) lies outside the grid")
+    expect_error(write(tmp_path, lines), r":17: cell \(10, 0\) lies outside the grid")
 
 
 def test_unknown_column_warns(tmp_path):

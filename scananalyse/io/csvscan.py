@@ -261,13 +261,17 @@ def _row_error(path, hdr, row: int, column: str, nominal_mm: float, factor: floa
 def _check_field_count(path, hdr: _Header, n_rows: int) -> None:
     """Refuse rows with fewer fields than the header row (commas counted in blocks)."""
     commas = 0
-    with open(path, "rb") as fh:
+    block = bytearray(1 << 22)
+    view = np.frombuffer(block, dtype=np.uint8)
+    hits = np.empty(view.shape, dtype=bool)
+    with open(path, "rb", buffering=0) as fh:
         fh.seek(hdr.table_offset)
         while True:
-            block = fh.read(1 << 24)
-            if not block:
+            got = fh.readinto(block)
+            if not got:
                 break
-            commas += int(np.count_nonzero(np.frombuffer(block, dtype=np.uint8) == 44))
+            np.equal(view[:got], 44, out=hits[:got])  # 44 = ord(",")
+            commas += int(np.count_nonzero(hits[:got]))
     if commas == n_rows * (len(hdr.columns) - 1):
         return
     # Slow path: find the short row (quoted commas may explain the count instead).
@@ -366,26 +370,32 @@ def read_csv_scan(path) -> FloorScan:
     plate_ids = _plate_ids(df, path, hdr) if "plate" in cols else None
     del df
 
-    # ---- put the rows on the grid (file units); in-place array passes only ----
+    # ---- put the rows on the grid (file units) ----------------------------------
+    # Fresh large arrays cost page faults, so the parsed x and y buffers are reused
+    # in place (they become column and row indices) with one scratch array.
     if grid is None:
         x0_u, y0_u = float(x.min()), float(y.min())
     else:
         x0_u, y0_u, nrows, ncols = grid
-    idx = {}
+    x, y = _writable(x), _writable(y)
+    spare = np.empty_like(x)
+    index = {}
     for name, coord, anchor in (("x", x, x0_u), ("y", y, y0_u)):
-        frac = coord - anchor
-        frac /= pitch_u
-        near = np.rint(frac)
-        frac -= near  # now the distance from the nearest node [cells]
-        if max(float(frac.max()), -float(frac.min())) > v.OFF_GRID_TOLERANCE:
-            row = int(np.argmax(np.abs(frac) > v.OFF_GRID_TOLERANCE))
+        coord -= anchor
+        coord /= pitch_u
+        near = np.rint(coord, out=spare)
+        dist = np.subtract(coord, near, out=coord)  # distance from the nearest centre [cells]
+        if max(float(dist.max()), -float(dist.min())) > v.OFF_GRID_TOLERANCE:
+            row = int(np.argmax(np.abs(dist) > v.OFF_GRID_TOLERANCE))
             line = _data_lines(path, hdr.table_line, [row])[row]
+            text = _line_fields(path, line)[hdr.columns.index(name)].strip()
             raise InputError(
-                f"{where(path, line, name)}: {float(coord[row])!r} is off the grid ({abs(frac[row]):.3f} "
+                f"{where(path, line, name)}: {text} is off the grid ({abs(dist[row]):.3f} "
                 f"of a cell from the nearest centre; pitch {pitch_u:g}, anchor {anchor:g})")
-        idx[name] = near
-        del frac
-    jf, iff = idx.pop("x"), idx.pop("y")
+        index[name] = near
+        spare = dist  # the distances are no longer needed: reuse the buffer
+    del spare, dist, near, coord
+    jf, iff = index.pop("x"), index.pop("y")
     if grid is None:
         nrows_f, ncols_f = float(iff.max()) + 1.0, float(jf.max()) + 1.0
         v.check_grid_size(nrows_f, ncols_f, path, hdr.table_line, "x, y")
@@ -395,13 +405,12 @@ def read_csv_scan(path) -> FloorScan:
         outside = (jf < 0) | (jf >= ncols) | (iff < 0) | (iff >= nrows)
         row = int(np.argmax(outside))
         line = _data_lines(path, hdr.table_line, [row])[row]
-        raise InputError(f"{where(path, line)}: cell ({float(x[row])!r}, {float(y[row])!r}) lies outside the "
+        raise InputError(f"{where(path, line)}: cell ({_cell_text(path, hdr, line)}) lies outside the "
                          f"grid given by x0, y0, rows, cols")
     iff *= ncols  # exact: whole numbers far below 2**53
     iff += jf
-    del jf
-    flat = iff.astype(np.int64)
-    del iff
+    flat = iff.astype(np.intp)
+    del jf, iff, x, y
 
     cells = nrows * ncols
     thickness = np.full(cells, np.nan, dtype=np.float32)
@@ -411,7 +420,7 @@ def read_csv_scan(path) -> FloorScan:
         thickness[flat] = t * factor
     filled = int(np.count_nonzero(~np.isnan(thickness)))
     if filled != n:
-        raise _duplicate_error(path, hdr, flat, x, y)
+        raise _duplicate_error(path, hdr, flat)
     side = plate = None
     if side_codes is not None:
         side = np.zeros(cells, dtype=np.int8)
@@ -425,7 +434,7 @@ def read_csv_scan(path) -> FloorScan:
                      pitch=pitch_mm, meta=meta, side=side, plate=plate, source=path)
 
 
-def _duplicate_error(path, hdr, flat, x, y) -> InputError:
+def _duplicate_error(path, hdr, flat) -> InputError:
     """Name both lines of the first repeated cell (by the later line). Error path only."""
     order = np.argsort(flat, kind="stable")
     sf = flat[order]
@@ -434,8 +443,24 @@ def _duplicate_error(path, hdr, flat, x, y) -> InputError:
     k = int(np.argmin(second))
     a, b = int(order[dup[k]]), int(second[k])
     lines = _data_lines(path, hdr.table_line, [a, b])
-    return InputError(f"{where(path, lines[b])}: duplicate cell ({float(x[b])!r}, {float(y[b])!r}), "
+    return InputError(f"{where(path, lines[b])}: duplicate cell ({_cell_text(path, hdr, lines[b])}), "
                       f"already given on line {lines[a]}")
+
+
+def _cell_text(path, hdr, line) -> str:
+    """``x, y`` as written on a file line. Error path only."""
+    fields = _line_fields(path, line)
+    return ", ".join(fields[hdr.columns.index(c)].strip() for c in ("x", "y"))
+
+
+def _writable(a: np.ndarray) -> np.ndarray:
+    """``a`` itself when it may be modified in place (a buffer only this reader holds), else a copy."""
+    if not a.flags.writeable:
+        try:
+            a.flags.writeable = True
+        except ValueError:
+            return a.copy()
+    return a
 
 
 def _side_codes(df, path, hdr) -> np.ndarray:

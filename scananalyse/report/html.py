@@ -23,7 +23,6 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html as _html
-import math
 import os
 import re
 import tempfile
@@ -178,6 +177,8 @@ def _table(df: pd.DataFrame | None, units: str, *, columns=None, cls="data",
             klass = ' class="num"' if num else ""
             if c == "flags" and text not in ("", "–"):
                 klass = ' class="flags"'
+            elif str(c) in ("next_due", "date", "inspected", "installed"):
+                klass = ' class="date"'
             out.append(f"<td{klass}>{text}</td>")
         out.append("</tr>")
     out.append("</tbody></table></div>")
@@ -210,7 +211,7 @@ def _png_uri(png: bytes) -> str:
 
 def _figures(items) -> str:
     out = []
-    for k, item in enumerate(items or ()):
+    for item in items or ():
         caption, png = item[0], item[1]
         out.append(f'<figure><img alt="{esc(caption)}" src="{_png_uri(png)}">'
                    f"<figcaption>{esc(caption)}</figcaption></figure>")
@@ -472,6 +473,7 @@ th .unit, .kv .unit { display: block; font-weight: 400; color: var(--muted); fon
 .kv .unit { display: inline; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 td.flags { color: var(--warn); }
+td.date { white-space: nowrap; overflow-wrap: normal !important; }
 table.kv th { text-align: left; font-weight: 500; padding: 0.15rem 1.2rem 0.15rem 0;
               color: var(--muted); }
 table.kv td { padding: 0.15rem 0; }
@@ -507,7 +509,7 @@ table.pagewrap > tbody > tr > td, table.pagewrap > tfoot > tr > td { padding: 0;
   .tablewrap { overflow: visible; }
   table.wide { font-size: 6.8pt; }
   table.data th, table.data td { padding: 0.15rem 0.3rem; }
-  figure img { max-height: 200mm; width: auto; border: none; }
+  figure img { max-height: 118mm; width: auto; max-width: 100%; border: none; }
   .maps, .pair { display: block; }
   /* the footer repeats on every printed page; the empty table footer of the page
      wrapper repeats too and keeps the same height free, so no text runs under it */

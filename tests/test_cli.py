@@ -1,0 +1,152 @@
+"""End-to-end through the CLI (``main([...])``): every command, exit codes, no tracebacks."""
+
+import hashlib
+import re
+import json
+import os
+
+import pandas as pd
+import pytest
+
+from scananalyse.cli import main
+
+ZONE_COLUMNS = ["zone", "area_m2", "coverage_pct", "t_min_mm", "depth_max_mm", "depth_eva_mm",
+                "depth_eva_upper_mm", "rate_top_max_mm_y", "rate_under_max_mm_y", "mrt_mm",
+                "interval_code_y", "life_local_y", "interval_recommended_y", "next_due", "limiting", "flags"]
+PATCH_COLUMNS = ["patch", "zone", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm", "corner_radius_mm",
+                 "thickness_mm", "area_m2", "mass_kg", "flags"]
+
+
+def _sha(path):
+    with open(path, "rb") as f:
+        return hashlib.sha256(f.read()).hexdigest()
+
+
+def test_version_and_help(capsys):
+    assert main(["--version"]) == 0
+    assert "scananalyse" in capsys.readouterr().out
+    for cmd in ("check", "convert", "register", "compare", "assess", "demo", "fleet"):
+        assert main([cmd, "--help"]) == 0
+        assert "usage" in capsys.readouterr().out
+
+
+def test_check_prints_summary(small_pair_files, capsys):
+    assert main(["check", small_pair_files["new_csv"]]) == 0
+    out = capsys.readouterr().out
+    assert "valid floor-scan file" in out and "SYN-E2E" in out and "20 mm pitch" in out
+
+
+def test_convert_round_trip_and_refuses_overwrite(small_pair_files, tmp_path, capsys):
+    h5 = tmp_path / "a.h5"
+    csv = tmp_path / "b.csv"
+    assert main(["convert", small_pair_files["new_csv"], str(h5)]) == 0
+    assert main(["convert", str(h5), str(csv)]) == 0
+    from scananalyse.io import read_scan
+
+    a, b = read_scan(small_pair_files["new_csv"]), read_scan(csv)
+    assert a.same_grid(b)
+    assert (pd.isna(a.thickness) == pd.isna(b.thickness)).all()
+    capsys.readouterr()
+    assert main(["convert", small_pair_files["new_csv"], str(h5)]) == 2
+    assert "exists" in capsys.readouterr().err
+
+
+def test_compare_writes_every_output(small_pair_files, tmp_path, capsys):
+    out = tmp_path / "cmp"
+    before = {k: _sha(v) for k, v in small_pair_files.items() if isinstance(v, str) and os.path.isfile(v)}
+    rc = main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+               "--out", str(out), "--quiet"])
+    assert rc == 0
+    console = capsys.readouterr().out
+    assert "per zone" in console and "report:" in console and "authorised inspector" in console
+    for f in ("zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv",
+              "registration.json", "results.h5", "report.html"):
+        assert (out / f).is_file(), f
+    assert list((out / "figures").glob("*.png"))
+    zones = pd.read_csv(out / "zones.csv")
+    assert list(zones.columns[: len(ZONE_COLUMNS)]) == ZONE_COLUMNS
+    assert set(zones["zone"]) >= {"critical", "interior"}
+    assert list(pd.read_csv(out / "patches.csv").columns[: len(PATCH_COLUMNS)]) == PATCH_COLUMNS
+    reg = json.loads((out / "registration.json").read_text())
+    for k in ("dx_mm", "dy_mm", "rotation_deg", "score", "overlap_pct"):
+        assert k in reg
+    truth = small_pair_files["pair"].truth
+    # registration contract (design §3.3): the known synthetic transform comes back
+    assert abs(reg["rotation_deg"] - truth.rotation_deg) < 0.05
+    assert abs(reg["dx_mm"] - truth.dx_mm) < 6 and abs(reg["dy_mm"] - truth.dy_mm) < 6
+    # inputs never modified
+    after = {k: _sha(v) for k, v in small_pair_files.items() if isinstance(v, str) and os.path.isfile(v)}
+    assert before == after
+
+
+def test_compare_bad_input_is_one_line_exit_2_and_no_folder(small_pair_files, tmp_path, capsys):
+    bad = tmp_path / "bad.csv"
+    with open(small_pair_files["new_csv"]) as f:
+        text = f.read()
+    text, n = re.subn(r"(?m)^# pitch: .*$", "# pitch: -20", text)
+    assert n == 1
+    bad.write_text(text)
+    out = tmp_path / "cmp"
+    rc = main(["compare", small_pair_files["old_csv"], str(bad), "--diameter", "4000", "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert err.count("\n") == 1 and "bad.csv" in err and "pitch" in err and "Traceback" not in err
+    assert not out.exists() and not [p for p in tmp_path.iterdir() if p.name.startswith(".cmp")]
+
+
+def test_compare_requires_diameter_and_fresh_folder(small_pair_files, tmp_path, capsys):
+    out = tmp_path / "x"
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--out", str(out)]) == 2
+    assert "--diameter" in capsys.readouterr().err
+    out.mkdir()
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+                 "--out", str(out), "--quiet"]) == 2
+    assert "use --force" in capsys.readouterr().err
+
+
+def test_older_and_newer_swapped_is_refused(small_pair_files, tmp_path, capsys):
+    rc = main(["compare", small_pair_files["new_h5"], small_pair_files["old_h5"], "--diameter", "4000",
+               "--out", str(tmp_path / "o"), "--quiet"])
+    assert rc == 2 and "must be inspected after" in capsys.readouterr().err
+
+
+def test_register_command(small_pair_files, tmp_path, capsys):
+    out = tmp_path / "reg"
+    assert main(["register", small_pair_files["old_csv"], small_pair_files["new_csv"], "--out", str(out),
+                 "--quiet"]) == 0
+    reg = json.loads((out / "registration.json").read_text())
+    assert abs(reg["rotation_deg"] - small_pair_files["pair"].truth.rotation_deg) < 0.05
+    assert "rotation" in capsys.readouterr().out
+
+
+def test_assess_single_inspection(small_pair_files, tmp_path, capsys):
+    out = tmp_path / "one"
+    assert main(["assess", small_pair_files["new_h5"], "--diameter", "4000", "--out", str(out), "--quiet"]) == 0
+    assert not (out / "registration.json").exists()
+    zones = pd.read_csv(out / "zones.csv")
+    scanned = zones[zones["coverage_pct"] > 0]
+    assert len(scanned) and scanned["flags"].fillna("").str.contains("no-short-term-rates").all()
+    html = (out / "report.html").read_text()
+    assert "long-term" in html.lower()
+    assert "one inspection" in capsys.readouterr().out
+
+
+def test_units_in_display(small_pair_files, tmp_path, capsys):
+    out = tmp_path / "inch"
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+                 "--out", str(out), "--quiet", "--units", "in"]) == 0
+    assert "thickness in" in capsys.readouterr().out
+    # files keep SI columns whatever the display units
+    assert "t_min_mm" in pd.read_csv(out / "zones.csv").columns
+
+
+def test_internal_fault_is_exit_1_without_traceback(monkeypatch, small_pair_files, capsys):
+    import scananalyse.io as sio
+
+    def boom(path):
+        raise RuntimeError("simulated fault")
+
+    monkeypatch.setattr(sio, "read_scan", boom)
+    assert main(["check", small_pair_files["new_csv"]]) == 1
+    err = capsys.readouterr().err
+    assert "internal error" in err and "Traceback" not in err
