@@ -97,15 +97,22 @@ class CompareResult:
             lines.append(f"registration: rotation {r['rotation_deg']:.3f} deg, shift "
                          f"({r['dx_mm']:.1f}, {r['dy_mm']:.1f}) mm, score {r['score'] or 0:.2f}, "
                          f"overlap {r['overlap_pct'] or 0:.1f} %" + ("" if r["reliable"] else "  ** UNRELIABLE **"))
-        hdr = f"{'zone':<12}{'t_min':>8}{'code':>8}{'local':>8}{'eva':>8}{'recomm.':>9}  {'next due':<11}{'limiting':<12}flags"
-        lines.append(f"per zone (thickness {lu}, intervals in years):")
-        lines.append(hdr)
-        for _, z in self.zones.iterrows():
-            lines.append(
-                f"{str(z['zone']):<12}{_fmt(to_display(z['t_min_mm'], u)):>8}{_fmt(z['interval_code_y']):>8}"
-                f"{_fmt(z['life_local_y']):>8}{_fmt(z.get('life_eva_y', float('nan'))):>8}"
-                f"{_fmt(z['interval_recommended_y']):>9}  {str(z['next_due'] or '-'):<11}{str(z['limiting'] or '-'):<12}"
-                f"{z['flags'] or ''}")
+        nd = 3 if u == "in" else 1
+        hdr = f"  {'zone':<12}{'t_min':>8}{'code':>8}{'local':>8}{'eva':>8}{'recomm.':>9}  {'next due':<11}{'limiting':<10}flags"
+        for title, table in (("as found", self.zones), ("after the proposed repairs", self.zones_repaired)):
+            if table is None:
+                continue
+            lines.append(f"per zone, {title} (thickness {lu}; code formula, co-located, extreme-value and "
+                         f"recommended intervals in years):")
+            lines.append(hdr)
+            for _, z in table.iterrows():
+                due = z["next_due"] if isinstance(z["next_due"], str) and z["next_due"] else "-"
+                flags = z["flags"] if isinstance(z["flags"], str) else ""
+                lines.append(
+                    f"  {str(z['zone']):<12}{_fmt(to_display(z['t_min_mm'], u), nd):>8}{_fmt(z['interval_code_y']):>8}"
+                    f"{_fmt(z['life_local_y']):>8}{_fmt(z.get('life_eva_y', float('nan'))):>8}"
+                    f"{_fmt(z['interval_recommended_y']):>9}  {due:<11}{str(z['limiting'] or '-') if isinstance(z['limiting'], str) else '-':<10}"
+                    f"{flags}")
         if len(self.patches):
             area = float(self.patches["area_m2"].sum())
             lines.append(f"proposed patch plates: {len(self.patches)}, {area:.2f} m2 in all (patches.csv, patches.dxf)")
@@ -509,38 +516,39 @@ def _figures(an: Analysis, units: str) -> dict:
     ext = new.extent
     diam = an.zones.geometry.diameter_mm
     centre = an.zones.geometry.centre
-    mrt_levels = sorted({float(v) for v in np.unique(an.mrt_map[np.isfinite(an.mrt_map)])})
     out = []
-    mrt_c = [(m, f"MRT {m:.2f} mm", "--") for m in mrt_levels[:2]]
+    zt = an.zone_table.set_index("zone")
+    main_zone = "interior" if "interior" in zt.index else zt["area_m2"].idxmax()
+    mrt_c = [(float(zt.loc[main_zone, "mrt_mm"]), f"MRT ({main_zone})", "--")]
     if an.job.repair_to_mm:
-        mrt_c.append((an.job.repair_to_mm, f"repair-to {an.job.repair_to_mm:.2f} mm", ":"))
+        mrt_c.append((an.job.repair_to_mm, "repair-to thickness", ":"))
     common = dict(extent=ext, units=units, diameter_mm=diam, centre=centre, plate=new.plate)
-    out.append(("maps", "Remaining thickness at the newer inspection, with MRT contours.",
+    out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
                 F.floor_map(new.thickness, title="Remaining thickness now", label="remaining thickness",
                             kind="thickness", contours=mrt_c, **common)))
-    out.append(("maps", "Top-side (product-side) loss.",
+    out.append(("maps", "loss_top", "Top-side (product-side) loss.",
                 F.floor_map(lr.loss_top, title="Top-side loss", label="top-side loss", kind="loss", **common)))
-    out.append(("maps", "Underside (soil-side) loss, unattributed loss included by default.",
+    out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
                 F.floor_map(lr.loss_under, title="Underside loss", label="underside loss", kind="loss", **common)))
     if not an.single:
-        out.append(("maps", "Short-term top-side rate (change between the inspections ÷ years between them).",
+        out.append(("maps", "rate_short_top", "Short-term top-side rate (change between the inspections ÷ years between them).",
                     F.floor_map(lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
                                 kind="rate", **common)))
-        out.append(("maps", "Short-term underside rate.",
+        out.append(("maps", "rate_short_under", "Short-term underside rate.",
                     F.floor_map(lr.rate_short_under, title="Short-term underside rate", label="underside rate",
                                 kind="rate", **common)))
     else:
-        out.append(("maps", "Long-term governing rate (both sides summed), one inspection only.",
+        out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
                     F.floor_map(np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
                                 label="rate, both sides", kind="rate", **common)))
-    out.append(("maps", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
+    out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",
                 F.floor_map(an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
                             contours=[(an.job.target_interval, f"target {an.job.target_interval:g} y", "--")],
                             **common)))
-    out.append(("maps", "Cells needing repair for the target interval and the proposed patch plates.",
-                F.floor_map(np.where(new.scanned, an.needs_repair.astype(np.float32) * new.thickness, np.nan)
-                            if False else new.thickness, title="Repairs: patch plates on the thickness map",
+    out.append(("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
+                "MRT before the target interval at their own rates lie inside them).",
+                F.floor_map(new.thickness, title="Repairs: patch plates on the thickness map",
                             label="remaining thickness", kind="thickness",
                             patches=an.patches if len(an.patches) else None, indications=None, **common)))
     if an.registration is not None and an.old_on_new is not None:
@@ -552,19 +560,23 @@ def _figures(an: Analysis, units: str) -> dict:
         feat_before = ~np.isfinite(raw.thickness) | (np.nan_to_num(old_loss_raw) >= _reporting_depth(new))
         old_loss = new.meta.nominal - an.old_on_new.thickness
         feat_after = ~np.isfinite(an.old_on_new.thickness) | (np.nan_to_num(old_loss) >= _reporting_depth(new))
-        out.append(("registration", "Features of the two scans (unscanned seams and margins, loss above the "
+        out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
                     "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
                     F.registration_overlay(feat_new, feat_before, feat_after, extent=ext)))
-    out.append(("methods", "Per zone: the code-formula interval, the co-located projection, the extreme-value "
-                "life, the cap and the recommendation.", F.method_comparison(an.zone_table)))
+    out.append(("methods", "methods_as_found", "As found: per zone, the code-formula interval, the co-located "
+                "projection, the extreme-value life, the cap and the recommendation.",
+                F.method_comparison(an.zone_table)))
+    out.append(("methods", "methods_repaired", "After the proposed repairs: the same per zone.",
+                F.method_comparison(an.zones_repaired)))
     for name, z in an.extremes_depth.items():
         if not z or z.plot is None:
             continue
-        out.append((f"extremes:{name}", f"Gumbel probability plot of block-maximum loss, zone {name}.",
+        out.append((f"extremes:{name}", f"probability_{name}", f"Probability plot of block-maximum loss, zone {name} "
+                    f"({z.row().get('eva_method', '')}).",
                     F.probability_plot(z.plot, title=f"Block maxima, zone {name}", units=units)))
         curve = _return_curve(z)
         if curve is not None:
-            out.append((f"extremes:{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
+            out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
                         f"T = {z.T:.0f} blocks is marked.",
                         F.return_level_plot(*curve, zone_T=z.T, units=units, title=f"Return level, zone {name}")))
     return out
@@ -594,10 +606,12 @@ def _return_curve(z):
 def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
     from .report.html import ReportData
 
+    floor_mm2 = math.pi * (an.zones.geometry.diameter_mm / 2) ** 2
+
     def insp(label, s):
         return {"label": label, "date": s.meta.inspected.isoformat(), "method": s.meta.method or "-",
                 "file": os.path.basename(s.source or "-"), "pitch_mm": s.pitch,
-                "coverage_pct": 100.0 * s.n_scanned / max(1, s.shape[0] * s.shape[1]),
+                "coverage_pct": min(100.0, 100.0 * s.n_scanned * s.cell_area / floor_mm2),
                 "threshold_mm": s.meta.threshold, "sigma_mm": s.meta.sigma}
 
     inspections = ([insp("older", an.old)] if an.old is not None else []) + [insp("newer" if an.old else "only", an.new)]
@@ -628,15 +642,24 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
     assumptions.append("Maps are drawn from decimated grids on big floors (minimum thickness / maximum loss and "
                        "rate per displayed pixel), so the worst value is never hidden; the tables use every cell.")
     notes = list(an.notes)
-    if att:
-        notes.append("Attribution: " + ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in att.items()
-                                                 if isinstance(v, (int, float, str))))
+    if att and att.get("cells_with_loss"):
+        notes.append(
+            f"Attribution: of {att['cells_with_loss']} cells with reported loss, {att['cells_top']} were attributed "
+            f"to the top side and {att['cells_under']} to the underside by the operator"
+            + (f", {att['cells_top_depth']} have a measured top-side depth" if att.get("cells_top_depth") else "")
+            + f"; {att['cells_defaulted']} ({att['defaulted_pct']:.0f} %) were not attributed and count as "
+            f"{'underside' if att['default_side'] == 'under' else 'top-side'} loss (the default).")
     if an.uncovered_cells:
         notes.append(f"{an.uncovered_cells} cells needing repair for the target interval are not covered by any patch.")
     return ReportData(
         tank={"name": an.new.meta.tank, "diameter_mm": an.zones.geometry.diameter_mm},
         inspections=inspections, zones=an.zone_table, zones_repaired=an.zones_repaired,
-        patches=an.patches, indications=an.indications, registration=registration_dict,
+        patches=an.patches, indications=an.indications,
+        registration=None if registration_dict is None else {
+            k: registration_dict.get(k) for k in ("method", "rotation_deg", "dx_mm", "dy_mm", "score",
+                                                  "overlap_pct", "residual_rms_mm", "reliable", "warnings",
+                                                  "std_rotation_deg", "std_shift_mm", "control_residuals_mm",
+                                                  "control_rms_mm", "convention")},
         rules_table=an.rules.table(), assumptions=assumptions, figures=fig_dict, extremes=ext,
         flags_explained=FLAGS_EXPLAINED, units=units, timings=dict(an.timings),
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
@@ -684,10 +707,11 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> 
         figdir = folder / "figures"
         figdir.mkdir(exist_ok=True)
         figs = []
-        for i, (sec, cap, fig) in enumerate(_figures(an, units), start=1):
-            stem = f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in (sec + "_" + (fig.axes[0].get_title() if fig.axes else "fig")))[:60]
+        for i, (sec, slug, cap, fig) in enumerate(_figures(an, units), start=1):
+            stem = f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in slug)[:60]
             F.save_png(fig, figdir / f"{stem}.png")
-            figs.append((sec, cap, F.png_bytes(fig)))
+            extra = getattr(fig, "scananalyse_caption", "")
+            figs.append((sec, f"{cap} {extra}".strip(), F.png_bytes(fig)))
             files.append(f"figures/{stem}.png")
         data = _report_data(an, units, reg_dict, figs)
         write_report(data, folder / "report.html")

@@ -1,6 +1,6 @@
 """Property-based tests (hypothesis) of the readers and of invariants of the analysis (issue 9).
 
-Properties (each drawn from seeded strategies, ``derandomize=False`` so a CI run
+Properties (each drawn from seeded strategies, ``derandomize=True`` so a CI run
 is reproducible; ``deadline=None`` because the first example pays for imports):
 
 1. CSV round trip: any valid small grid written with ``write_csv_scan`` reads back identical.
@@ -38,7 +38,7 @@ from scananalyse.io import read_csv_scan, read_h5_scan, write_csv_scan, write_h5
 from scananalyse.io import validate as v
 from scananalyse.scan import FloorScan, ScanMeta
 
-COMMON = dict(deadline=None, derandomize=False, suppress_health_check=[HealthCheck.function_scoped_fixture,
+COMMON = dict(deadline=None, derandomize=True, suppress_health_check=[HealthCheck.function_scoped_fixture,
                                                                      HealthCheck.too_slow])
 
 # --------------------------------------------------------------------------- strategies
@@ -61,7 +61,7 @@ def valid_scans(draw):
     pitch = draw(st.floats(0.5, 200.0, allow_nan=False).map(lambda u: u / factor)) * factor
     x0 = draw(st.floats(-5e4, 5e4, allow_nan=False).map(lambda u: u / factor)) * factor
     y0 = draw(st.floats(-5e4, 5e4, allow_nan=False).map(lambda u: u / factor)) * factor
-    top = np.float32(2.99 * nominal)
+    top = np.float32(3 * nominal)
     if float(top) > 3 * nominal:  # float32 rounding must not put a value above the format's limit
         top = np.nextafter(top, np.float32(0))
     t = draw(hnp.arrays(np.float32, (rows, cols),
@@ -109,7 +109,7 @@ def work(tmp_path_factory):
 
 
 # --------------------------------------------------------------------------- 1, 2 round trips
-@settings(max_examples=800, **COMMON)
+@settings(max_examples=60, **COMMON)
 @given(scan=valid_scans())
 def test_csv_round_trip(work, scan):
     p = work / "rt.csv"
@@ -118,7 +118,7 @@ def test_csv_round_trip(work, scan):
     assert_same_scan(scan, back, layers_only_on_scanned=True)
 
 
-@settings(max_examples=800, **COMMON)
+@settings(max_examples=60, **COMMON)
 @given(scan=valid_scans())
 def test_h5_round_trip(work, scan):
     p = work / "rt.h5"
@@ -199,7 +199,7 @@ def check_read_outcome(path):
     return scan
 
 
-@settings(max_examples=3000, **COMMON)
+@settings(max_examples=150, **COMMON)
 @given(data=corruptions())
 def test_corrupted_csv_fails_cleanly(work, data):
     p = work / "corrupt.csv"
@@ -268,7 +268,7 @@ def rate_inputs(draw):
     return new, old, side, opts
 
 
-@settings(max_examples=800, **COMMON)
+@settings(max_examples=60, **COMMON)
 @given(inp=rate_inputs())
 def test_rates_never_negative(inp):
     from scananalyse.rates import RateOptions, compute_rates
@@ -343,7 +343,7 @@ def assess_inputs(draw):
                 rate_short_available=draw(st.booleans())), opts
 
 
-@settings(max_examples=400, **COMMON)
+@settings(max_examples=50, **COMMON)
 @given(inp=assess_inputs())
 def test_recommended_interval_within_bounds(inp):
     from scananalyse.assess import AssessOptions, assess_zones
@@ -389,7 +389,7 @@ def repair_masks(draw):
     return needs, dict(x0=draw(st.floats(-3000, 3000)), y0=draw(st.floats(-3000, 3000)), pitch=pitch), plate
 
 
-@settings(max_examples=200, **COMMON)
+@settings(max_examples=25, **COMMON)
 @given(inp=repair_masks())
 def test_patches_cover_every_cell_needing_repair(inp):
     from scananalyse.repair import plan_patches, uncovered_cells
@@ -404,3 +404,43 @@ def test_patches_cover_every_cell_needing_repair(inp):
     assert n == 0, (n, np.argwhere(mask)[:5].tolist(), len(patches))
     if not needs.any():
         assert len(patches) == 0
+
+
+# --------------------------------------------------------------------------- regressions
+# Inputs found by the properties above with more examples (fuzz/fuzz_readers.py and
+# max_examples in the thousands); kept as fixed cases so every run checks them.
+def test_regression_carriage_return_in_column_header_row(work):
+    """A lone CR inside the first non-comment line (found by the corruption property)."""
+    p = work / "cr.csv"
+    p.write_bytes(b"\x01\rformat: scananalyse-scan 1\n# inspected: 2027-03-01\n# units: mm\n# pitch: 10\n"
+                  b"# nominal: 6.35\nx,y,thickness\n0,0,5\n")
+    assert check_read_outcome(p) is None
+
+
+def test_regression_thickness_at_three_times_nominal_round_trips(work):
+    """A float32 thickness at the 3 x nominal limit is valid in memory and in HDF5; its CSV
+    text (shortest decimal of the float32) must read back too (found by the CSV round trip)."""
+    nominal = 14.580445612795899
+    t = np.float32(3 * nominal)
+    if float(t) > 3 * nominal:
+        t = np.nextafter(t, np.float32(0))
+    scan = FloorScan(np.array([[t]], np.float32), x0=0.0, y0=0.0, pitch=1.0,
+                     meta=ScanMeta(inspected=dt.date(2000, 1, 1), nominal=nominal))
+    write_h5_scan(scan, work / "limit.h5")
+    assert_same_scan(scan, read_h5_scan(work / "limit.h5"), layers_only_on_scanned=False)
+    write_csv_scan(scan, work / "limit.csv")
+    assert_same_scan(scan, read_csv_scan(work / "limit.csv"), layers_only_on_scanned=True)
+
+
+def test_regression_tiny_rates_give_long_life_without_warning():
+    """Subnormal rates (1e-39 mm/y) mean a practically unlimited life, not a RuntimeWarning
+    (found by the interval-bounds property; pytest turns warnings into errors)."""
+    from scananalyse.assess import local_life_map
+
+    t = np.full((2, 3), 5.0, np.float32)
+    tiny = np.full((2, 3), 1e-39, np.float32)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        life = local_life_map(t, np.zeros_like(t), tiny, 2.54)
+    # (5 - 2.54) / 1e-39 overflows float32: the life is beyond any interval (inf).
+    assert np.all(life > 1e30)

@@ -1,0 +1,87 @@
+"""Fleet runs on a real Dask LocalCluster (two worker processes on loopback)."""
+
+import pandas as pd
+import pytest
+
+from scananalyse.errors import InputError
+from scananalyse.fleet import rank_fleet, read_manifest, run_fleet
+
+
+@pytest.fixture(scope="module")
+def fleet_dir(tmp_path_factory):
+    from scananalyse.io import write_scan
+    from scananalyse.synth import make_pair
+
+    d = tmp_path_factory.mktemp("fleet")
+    rows = ["tank,old,new,diameter"]
+    for i, (tank, seed) in enumerate([("TK-A", 1), ("TK-B", 2)]):
+        pair = make_pair(diameter_mm=3000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, tank=tank,
+                         rotation_deg=1.0, shift_mm=(30.0, 20.0))
+        (d / tank).mkdir()
+        write_scan(pair.old, d / tank / "old.h5")
+        write_scan(pair.new, d / tank / "new.h5")
+        rows.append(f"{tank},{tank}/old.h5,{tank}/new.h5,3000")
+    (d / "TK-BAD").mkdir()
+    (d / "TK-BAD" / "new.csv").write_text("# format: scananalyse-scan 1\n# inspected: 2024-13-45\n# units: mm\n"
+                                          "# pitch: 20\n# nominal: 6.35\nx,y,thickness\n0,0,6.3\n")
+    rows.append("TK-BAD,TK-A/old.h5,TK-BAD/new.csv,3000")
+    (d / "manifest.csv").write_text("\n".join(rows) + "\n")
+    return d
+
+
+def test_fleet_on_local_cluster_ranks_and_survives_a_bad_tank(fleet_dir, tmp_path):
+    out = tmp_path / "fleet"
+    res = run_fleet(fleet_dir / "manifest.csv", out_dir=out, workers=2, quiet=True)
+    df = pd.read_csv(out / "fleet.csv")
+    assert len(df) == 3 and list(df["rank"]) == [1, 2, 3]
+    bad = df[df["tank"] == "TK-BAD"].iloc[0]
+    # a tank that fails is one row with its error, listed first (needs attention)
+    assert bad["status"] == "error" and "new.csv" in bad["error"] and "inspected" in bad["error"]
+    assert df.iloc[0]["tank"] == "TK-BAD"
+    good = df[df["status"] == "ok"]
+    assert set(good["tank"]) == {"TK-A", "TK-B"}
+    # most urgent first: recommended interval ascending among the assessed tanks
+    assert list(good["interval_recommended_y"]) == sorted(good["interval_recommended_y"])
+    for r in good.itertuples():
+        assert (out / r.report).is_file()
+        z = pd.read_csv(out / r.tank / "zones.csv")
+        assert r.interval_recommended_y == pytest.approx(z["interval_recommended_y"].min())
+    html = (out / "fleet.html").read_text()
+    assert 'href="TK-A/report.html"' in html and "authorised inspector" in html
+    assert "most urgent" in res["summary"]
+
+    # a rerun keeps complete results
+    again = run_fleet(fleet_dir / "manifest.csv", out_dir=out, workers=2, quiet=True)
+    st = dict(zip(again["table"]["tank"], again["table"]["status"]))
+    assert st["TK-A"] == "ok (kept)" and st["TK-B"] == "ok (kept)" and st["TK-BAD"] == "error"
+
+
+def test_manifest_errors(tmp_path):
+    p = tmp_path / "m.csv"
+    p.write_text("tank,old,diameter\nA,a.h5,3\n")
+    with pytest.raises(InputError, match=r"m\.csv:1: field 'new': missing column"):
+        read_manifest(p)
+    p.write_text("tank,old,new,diameter\nA,a.h5,b.h5,wide\n")
+    with pytest.raises(InputError, match=r"m\.csv:2: field 'diameter': not a number"):
+        read_manifest(p)
+    p.write_text("tank,old,new,diameter\nA,../a.h5,b.h5,3\n")
+    with pytest.raises(InputError, match=r"m\.csv:2: field 'old': path '\.\./a\.h5' escapes"):
+        read_manifest(p)
+    p.write_text("tank,old,new,diameter\nA,a.h5,b.h5,3\nA,c.h5,d.h5,3\n")
+    with pytest.raises(InputError, match=r"m\.csv:3: field 'tank': 'A' repeats line 2"):
+        read_manifest(p)
+    p.write_text("tank,old,new,diameter\n")
+    with pytest.raises(InputError, match=r"lists no tanks"):
+        read_manifest(p)
+
+
+def test_ranking_order():
+    rows = [
+        {"tank": "slow", "status": "ok", "interval_recommended_y": 12.0, "below_mrt": False, "code_exceeds_local": False},
+        {"tank": "fast", "status": "ok", "interval_recommended_y": 3.0, "below_mrt": False, "code_exceeds_local": True},
+        {"tank": "tie-flagged", "status": "ok", "interval_recommended_y": 12.0, "below_mrt": True,
+         "code_exceeds_local": False},
+        {"tank": "broken", "status": "error", "error": "x"},
+    ]
+    df = rank_fleet(rows)
+    assert list(df["tank"]) == ["broken", "fast", "tie-flagged", "slow"]
