@@ -205,6 +205,13 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     with prog.stage("rates"):
         ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
         lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
+        if old_on_new is not None:
+            lr, n_filled = _fill_uncovered_rates(lr, new, old_on_new)
+            if n_filled:
+                assumptions.append(
+                    f"{n_filled} cells of indications lay outside the older scan's coverage: they take the "
+                    "short-term rate scaled from the same indication's measured cells (a pit deepens as fast as "
+                    "its fastest measured part, in proportion to depth), not only the long-term rate.")
     att = attribution.attribution_summary(side_raw, lr.loss, top_depth=top_depth, default=job.default_side)
     if old is not None:
         assumptions.append(
@@ -263,6 +270,48 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     extremes_rate=ext_rate, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     **rep)
+
+
+def _fill_uncovered_rates(lr, new, old_on_new):
+    """Short-term rates for indication cells the older scan did not cover.
+
+    Such a cell has only a long-term rate, which understates a pit that began late.  It takes
+    its own loss times the largest ratio of short-term rate to loss measured in the same
+    connected indication (a pit deepening in proportion, as its measured part does); the
+    governing rate is then recomputed as the greater of short- and long-term.
+    Returns the updated :class:`~scananalyse.rates.LossRates` and the number of cells filled.
+    """
+    import dataclasses
+
+    from scipy import ndimage
+
+    from .indications import label_indications
+
+    labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
+    n = int(labels.max())
+    uncovered = (labels > 0) & ~np.isfinite(old_on_new.thickness) & np.isfinite(new.thickness) & ~lr.repaired
+    if n == 0 or not uncovered.any():
+        return lr, 0
+    changes = {}
+    for side in ("top", "under"):
+        short = getattr(lr, f"rate_short_{side}")
+        loss_s = getattr(lr, f"loss_{side}")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where((labels > 0) & np.isfinite(short) & (loss_s > 0), short / loss_s, -1.0)
+        best = ndimage.maximum(ratio, labels, index=np.arange(1, n + 1))
+        best = np.concatenate([[-1.0], np.asarray(best, dtype=np.float32)])
+        fill = np.where(uncovered & (best[labels] >= 0), best[labels] * np.nan_to_num(loss_s), -1.0)
+        take = uncovered & (fill >= 0)
+        new_short = short.copy()
+        new_short[take] = fill[take]
+        changes[f"rate_short_{side}"] = new_short
+        gov = getattr(lr, f"rate_{side}").copy()
+        gov[take] = np.fmax(gov[take], fill[take])
+        changes[f"rate_{side}"] = gov.astype(np.float32)
+    filled = int(np.count_nonzero(uncovered & ((changes["rate_short_top"] >= 0) | (changes["rate_short_under"] >= 0))))
+    counts = dict(lr.counts)
+    counts["short_rate_filled_from_indication"] = filled
+    return dataclasses.replace(lr, counts=counts, **changes), filled
 
 
 def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, threshold, pitch, job):
@@ -326,6 +375,9 @@ def _add_eva_columns(table: pd.DataFrame, ext_depth: dict, ext_life: dict) -> pd
     return pd.concat([table.reset_index(drop=True), extra], axis=1)
 
 
+#: Probability that the deepest projected loss in the unscanned part stays below the value
+#: used for the extreme-value life.
+LIFE_LEVEL = 0.9
 #: Longest horizon searched for the extreme-value life; beyond it the life is reported
 #: as this value (every interval cap is shorter). [y]
 LIFE_HORIZON_Y = 60.0
@@ -339,14 +391,17 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
     For a horizon H the projected loss is ``loss + (r_top + r_under)·H`` cell by cell (rates
     stay co-located, unlike combining the deepest pit with the fastest rate found anywhere).
     The deepest projected loss over the zone is the greater of the deepest seen in the
-    scanned cells and the deepest expected in the part nobody scanned: the predictive upper
-    bound (``level``) of the block maxima fit (censored at the threshold) for
-    T = unscanned zone area / block area (at least 2).  It is compared with the allowance.  The life is the H where they meet (bisection, 0.05 y),
+    scanned cells and the deepest expected in the part nobody scanned: the
+    :data:`LIFE_LEVEL` quantile of the largest of T block maxima of the fitted distribution
+    (censored at the threshold), T = unscanned zone area / block area (at least 1).  It is
+    compared with the allowance.  (The quantile is from the fitted parameters; their own
+    uncertainty is in the table's ``depth_eva_upper_mm`` and ``depth_pred_upper_mm``.)  The life is the H where they meet (bisection, 0.05 y),
     0 if the allowance is already used up at H = 0, and :data:`LIFE_HORIZON_Y` if never
     reached within it.  The distribution (Gumbel or GEV) is chosen once at H = 0.
     Returns zone -> ``{"life_eva_y", "method", "reason"}``.
     """
-    from .extremes import zone_extremes
+    from .errors import FitError
+    from .extremes import block_maxima, fit_gev_mle, fit_gumbel_mle, max_quantile
 
     scanned = np.isfinite(thickness)
     depth0 = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
@@ -371,15 +426,26 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
                 out[name] = {"life_eva_y": None, "method": "", "reason": z0.reason}
                 continue
             method = "gev" if z0.fit is not None and getattr(z0.fit, "distribution", "") == "gev" else "mle"
-            extra = {"method": "gev", "bound_method": "profile"} if method == "gev" else {}
+
+            b_cells = max(1, int(round(job.block_mm / pitch)))
+            T_hidden = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
+            fitter = fit_gev_mle if method == "gev" else fit_gumbel_mle
+            thr = threshold or None
 
             def excess(h):
                 proj = depth0 + rate * np.float32(h)
                 seen = float(np.nanmax(proj[in_zone]))
                 if hidden_mm2 <= 0:
                     return seen - allowance
-                z = zone_extremes(proj, mask, **kw, **extra)
-                return max(seen, z.depth_pred_upper_mm if z else np.inf) - allowance
+                bm = block_maxima(proj, valid=in_zone, block_cells=b_cells, min_coverage=0.5, threshold=thr)
+                x, cens = bm.maxima, bm.censored
+                if thr is None:
+                    x, cens = x[~cens], None
+                try:
+                    hidden = float(max_quantile(fitter(x, censored=cens, threshold=thr), T_hidden, LIFE_LEVEL))
+                except FitError:
+                    hidden = np.inf  # no estimate: take the allowance as used up (conservative)
+                return max(seen, hidden) - allowance
 
             if excess(0.0) >= 0:
                 life = 0.0

@@ -427,6 +427,8 @@ def _bilinear_nan(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray
 
     The result is NaN where the nearest cell is outside the grid or NaN; elsewhere
     it is the bilinear weighted mean over the valid ones of the four neighbours.
+    Neighbours are gathered with flat ``numpy.take`` (indices clipped into the grid,
+    out-of-grid and NaN neighbours given weight 0), float32 throughout.
     """
     h, w = img.shape
     out = np.full(ri.shape, np.nan, dtype=np.float32)
@@ -435,30 +437,41 @@ def _bilinear_nan(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray
     ok = (rn >= 0) & (rn <= h - 1) & (cn >= 0) & (cn <= w - 1)
     if not ok.any():
         return out
-    ri, ci = ri[ok], ci[ok]
-    near = img[rn[ok].astype(np.intp), cn[ok].astype(np.intp)]
-    r0 = np.floor(ri)
-    c0 = np.floor(ci)
-    fr = (ri - r0).astype(np.float32)
-    fc = (ci - c0).astype(np.float32)
-    r0 = r0.astype(np.intp)
-    c0 = c0.astype(np.intp)
+    flat = img.reshape(-1) if img.flags.c_contiguous else np.ascontiguousarray(img).reshape(-1)
+    all_ok = bool(ok.all())
+    if not all_ok:
+        ri, ci, rn, cn = ri[ok], ci[ok], rn[ok], cn[ok]
+    else:
+        ri, ci, rn, cn = ri.reshape(-1), ci.reshape(-1), rn.reshape(-1), cn.reshape(-1)
+    near = flat.take(rn.astype(np.intp) * w + cn.astype(np.intp))
+    r0f = np.floor(ri)
+    c0f = np.floor(ci)
+    fr = (ri - r0f).astype(np.float32)
+    fc = (ci - c0f).astype(np.float32)
+    r0 = r0f.astype(np.intp)
+    c0 = c0f.astype(np.intp)
+    del r0f, c0f, rn, cn
     acc = np.zeros(ri.shape, dtype=np.float32)
     wsum = np.zeros(ri.shape, dtype=np.float32)
-    for dr, dc, wt in ((0, 0, (1 - fr) * (1 - fc)), (0, 1, (1 - fr) * fc),
-                       (1, 0, fr * (1 - fc)), (1, 1, fr * fc)):
+    zero = np.float32(0)
+    for dr, dc in ((0, 0), (0, 1), (1, 0), (1, 1)):
+        wr = fr if dr else np.float32(1) - fr
+        wc = fc if dc else np.float32(1) - fc
+        wt = wr * wc
         rr = r0 + dr
         cc = c0 + dc
         inb = (rr >= 0) & (rr < h) & (cc >= 0) & (cc < w)
-        v = np.full(ri.shape, np.nan, dtype=np.float32)
-        v[inb] = img[rr[inb], cc[inb]]
-        good = np.isfinite(v)
-        acc[good] += wt[good] * v[good]
-        wsum[good] += wt[good]
-    val = np.full(ri.shape, np.nan, dtype=np.float32)
+        v = flat.take(np.clip(rr, 0, h - 1) * w + np.clip(cc, 0, w - 1))
+        good = inb & np.isfinite(v)
+        acc += np.where(good, wt * v, zero)
+        wsum += np.where(good, wt, zero)
     fin = np.isfinite(near) & (wsum > 0)
-    val[fin] = acc[fin] / wsum[fin]
-    out[ok] = val
+    with np.errstate(invalid="ignore", divide="ignore"):
+        val = np.where(fin, acc / wsum, np.float32(np.nan)).astype(np.float32, copy=False)
+    if all_ok:
+        out[...] = val.reshape(out.shape)
+    else:
+        out[ok] = val
     return out
 
 

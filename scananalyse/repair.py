@@ -181,19 +181,26 @@ def _runs_to_segments(row, key, vertical, x0, y0, pitch):
 
 
 def _boundaries_along_rows(ids, kmax):
-    """Unit boundaries between different plate ids along axis 1, across ≤ kmax unscanned cells."""
+    """Unit boundaries between different plate ids along axis 1, across ≤ kmax unscanned cells.
+
+    Works on the flat (row-major) indices of the valid cells: each valid cell's next
+    valid cell along its row is simply the next flat index when it lies on the same row.
+    """
     ny, nx = ids.shape
-    valid = ids >= 0
-    cols = np.arange(nx, dtype=np.int32)
-    nxt = np.where(valid, cols[None, :], np.int32(nx))
-    nxt = np.minimum.accumulate(nxt[:, ::-1], axis=1)[:, ::-1]
-    nxt_after = np.empty_like(nxt)
-    nxt_after[:, :-1] = nxt[:, 1:]
-    nxt_after[:, -1] = nx
-    ii, jj = np.nonzero(valid & (nxt_after < nx) & (nxt_after - cols[None, :] - 1 <= kmax))
-    jn = nxt_after[ii, jj]
-    diff = ids[ii, jj] != ids[ii, jn]
-    return ii[diff].astype(np.int64), (jj[diff] + jn[diff]).astype(np.int64)
+    empty = np.zeros(0, dtype=np.int64)
+    flat_ids = ids.reshape(-1) if ids.flags.c_contiguous else np.ascontiguousarray(ids).reshape(-1)
+    flat = np.flatnonzero(flat_ids >= 0)
+    if flat.size < 2:
+        return empty, empty
+    a = flat[:-1]
+    b = flat[1:]
+    pair = ((a // nx) == (b // nx)) & (b - a - 1 <= kmax)
+    a = a[pair]
+    b = b[pair]
+    diff = flat_ids[a] != flat_ids[b]
+    a = a[diff]
+    b = b[diff]
+    return (a // nx).astype(np.int64), (a % nx + b % nx).astype(np.int64)
 
 
 def seams_from_plate(plate, *, x0, y0, pitch, max_gap_mm=100.0) -> np.ndarray:

@@ -25,7 +25,7 @@ from hypothesis import strategies as st
 from scananalyse.errors import InputError, ScanWarning
 from scananalyse.io import read_csv_scan
 
-SETTINGS = dict(deadline=None, derandomize=False,
+SETTINGS = dict(deadline=None, derandomize=True,
                 suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 
 NUMBERS = ["0", "10", "-10", "6.35", "+6.35", ".5", "5.", "1e1", "1E-3", "1e309", "-1e309", "4.9e-324", "nan",
@@ -124,12 +124,9 @@ def assert_clean(call, path):
             return None
 
 
-@settings(max_examples=5000, **SETTINGS)
+@settings(max_examples=400, **SETTINGS)
 @given(data=csv_files())
 def test_fuzz_csv_parser(tmp_path_factory, data):
-    from hypothesis import assume
-    import re as _re
-    assume(not _re.search(rb"\r(?!\n)", data))
     p = tmp_path_factory.getbasetemp() / "fuzz.csv"
     p.write_bytes(data)
     scan = assert_clean(lambda: read_csv_scan(p), p)
@@ -221,3 +218,21 @@ def test_fuzz_manifest_reader(tmp_path_factory, rows, header):
     for e in entries or []:
         for col in ("old", "new"):
             assert str(e[col]).startswith(str(d.resolve())), e
+
+
+# --------------------------------------------------------------------------- regressions
+def test_regression_cr_only_line_endings(tmp_path):
+    """A spreadsheet saved with CR-only line endings (classic Mac CSV): read or refused in one
+    line, never a csv module traceback (found by test_fuzz_csv_parser)."""
+    p = tmp_path / "mac.csv"
+    p.write_bytes("\r".join(VALID_HEADER + ["x,y,thickness", "0,0,5.1", "10,0,5.2"]).encode() + b"\r")
+    assert_clean(lambda: read_csv_scan(p), p)
+    p.write_bytes(b"x,y,thickness\r0,0,0")
+    assert_clean(lambda: read_csv_scan(p), p)
+
+
+def test_regression_double_bom(tmp_path):
+    """Two byte-order marks then a CR inside the first line (found by test_fuzz_csv_parser)."""
+    p = tmp_path / "bom.csv"
+    p.write_bytes(b"\xef\xbb\xbf\xef\xbb\xbf#\r0\n# format: scananalyse-scan 1\n#\n")
+    assert_clean(lambda: read_csv_scan(p), p)

@@ -718,14 +718,35 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
 _PNG_META = {"Software": None}
 
 
+def _render_png(fig, dpi) -> bytes:
+    """PNG bytes of ``fig`` at ``dpi``, rendered once while the figure is unchanged.
+
+    The bytes are kept on the figure with the dpi; the figure is then marked not
+    stale, and any later change to it or its artists marks it stale again
+    (matplotlib propagates ``stale`` from every artist up to the figure), which
+    forces a fresh render.  So ``save_png`` followed by ``png_bytes`` (the report
+    does both) draws the figure once instead of twice.
+    """
+    cached = getattr(fig, "_scananalyse_png", None)
+    if cached is not None and cached[0] == dpi and not fig.stale:
+        return cached[1]
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, metadata=_PNG_META)
+    data = buf.getvalue()
+    fig._scananalyse_png = (dpi, data)
+    fig.stale = False
+    return data
+
+
 def save_png(fig, path, dpi=130):
     """Write ``fig`` as PNG to ``path`` (temporary file, then rename); return the path."""
     path = os.fspath(path)
     d = os.path.dirname(os.path.abspath(path))
+    data = _render_png(fig, dpi)
     fd, tmp = tempfile.mkstemp(prefix=".fig-", suffix=".png", dir=d)
     try:
         with os.fdopen(fd, "wb") as fh:
-            fig.savefig(fh, format="png", dpi=dpi, metadata=_PNG_META)
+            fh.write(data)
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
@@ -736,6 +757,4 @@ def save_png(fig, path, dpi=130):
 
 def png_bytes(fig, dpi=130) -> bytes:
     """The figure as PNG bytes (no software URL in the metadata)."""
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, metadata=_PNG_META)
-    return buf.getvalue()
+    return _render_png(fig, dpi)

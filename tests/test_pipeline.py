@@ -1,0 +1,82 @@
+"""The whole analysis on synthetic floors with known truth (invented data)."""
+
+import numpy as np
+import pytest
+
+from scananalyse.job import Job
+from scananalyse.pipeline import analyse
+from scananalyse.synth import make_pair
+
+
+def _true_life(pair, mrt_map, exclude=None):
+    """Remaining life of the real metal: (true t − MRT) ÷ true growth rate.
+
+    The growth rate is the true mean rate between the two inspections (both faces), the rate
+    a pair of inspections can see; in areas repaired between the inspections (thicker now
+    than before) it is the true current rate of the restarted corrosion.  A pit that began
+    shortly before the newer inspection grows faster than any two-inspection method can
+    measure: that limit is stated in the report's assumptions, not tested away here.
+    """
+    tr = pair.truth
+    current = tr.rate_top_true + tr.rate_under_true
+    mean = tr.rate_mean_true
+    rate = np.where(tr.t_new_true > tr.t_old_true, current, mean)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        life = np.where(rate > 0, (tr.t_new_true - mrt_map) / rate, np.inf)
+    life = np.where(np.isfinite(tr.t_new_true), np.maximum(life, 0), np.nan)
+    if exclude is not None:
+        life = np.where(exclude, np.nan, life)
+    return life
+
+
+@pytest.mark.parametrize("seed", [3, 4, 5, 6, 7, 8])
+def test_recommended_interval_never_exceeds_true_life_after_repair(seed):
+    # Issue requirement: after the proposed repairs, the recommended interval does not exceed the
+    # true remaining life of the metal left unrepaired by more than 10 %.  True life uses the
+    # synthetic truth (thickness and growth rates of both faces at every cell), which the analysis
+    # never sees.  Checked on the scanned metal left unrepaired: the unscanned metal is covered
+    # only statistically (extreme values), and how often that bound holds is measured over many
+    # seeds by bench/bench_eva_coverage.py, not asserted cell by cell here.
+    pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, rotation_deg=1.2,
+                     shift_mm=(50.0, -30.0))
+    an = analyse(pair.new, pair.old, job=Job(diameter=5000.0, target_interval=10.0))
+    patched = an.repaired_maps["patched"]
+    life = _true_life(pair, an.mrt_map, exclude=patched | ~pair.new.scanned)
+    zones = an.zones
+    checked = 0
+    for _, row in an.zones_repaired.iterrows():
+        rec = row["interval_recommended_y"]
+        if not np.isfinite(rec):
+            continue
+        true_min = np.nanmin(np.where(zones.labels == zones.index(row["zone"]), life, np.nan))
+        assert rec <= 1.10 * true_min + 1e-9, (row["zone"], rec, true_min)
+        checked += 1
+    assert checked >= 1
+
+
+def test_code_formula_flagged_where_it_exceeds_co_located_life():
+    # A floor whose pits mostly began recently and grow fast: the code formula's age-based
+    # UPr (thinnest area over the whole age) is slow, the measured short-term rate is not.
+    pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=0, new_pit_fraction=0.9,
+                     max_pit_rate=0.5, deep_fraction=0.0, n_top_pits=5, n_under_pits=20, repairs=0)
+    an = analyse(pair.new, pair.old, job=Job(diameter=5000.0))
+    z = an.zone_table.set_index("zone").loc["interior"]
+    assert z["interval_code_y"] > z["life_local_y"]
+    assert "code-exceeds-local" in z["flags"].split(";")
+    # and the recommendation follows the metal, not the formula
+    assert z["interval_recommended_y"] <= z["life_local_y"]
+    # the age-based underside rate is well below the measured one
+    assert z["upr_mm_y"] < 0.7 * z["rate_under_max_mm_y"]
+
+
+def test_single_inspection_uses_long_term_rates_only():
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=2)
+    an = analyse(pair.new, None, job=Job(diameter=4000.0))
+    assert an.registration is None and an.old_on_new is None
+    assert np.isnan(an.rates.rate_short_top).all() and np.isnan(an.rates.rate_short_under).all()
+    tab = an.zone_table.set_index("zone")
+    assert "no-short-term-rates" in tab.loc["interior", "flags"]
+    # long-term rate = loss ÷ years in service (domain.md §3)
+    age = pair.new.meta.age_years
+    i = np.nanargmax(an.rates.loss_under)
+    assert an.rates.rate_long_under.flat[i] == pytest.approx(an.rates.loss_under.flat[i] / age, rel=1e-4)
