@@ -173,9 +173,12 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
 
     import h5py
 
+    from scananalyse import assess, extremes, indications, rates, register, repair, zones  # noqa: F401
     from scananalyse.job import Job
     from scananalyse.pipeline import compare
+    from scananalyse.report import figures, html  # noqa: F401
 
+    rss_imports = _maxrss_bytes()  # the interpreter and libraries, before any grid exists
     p = _paths(workdir, size, seed)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -187,7 +190,11 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
     with h5py.File(os.path.join(p["out"], "results.h5"), "r") as f:
         stages = {k: float(v) for k, v in f["timings"].attrs.items()} if "timings" in f else {}
     figs = [n for n in res.files if n.startswith("figures/")]
-    return {"t_compare_s": t_total, "stages_s": stages, "run_maxrss_bytes": rss, "n_figures": len(figs),
+    # results.h5 is written during "outputs", before that stage and "report" end: the
+    # rest of the wall time is theirs.
+    stages["outputs+report"] = max(0.0, t_total - sum(stages.values()))
+    return {"t_compare_s": t_total, "stages_s": stages, "run_maxrss_bytes": rss,
+            "import_maxrss_bytes": rss_imports, "n_figures": len(figs),
             "report_bytes": os.path.getsize(res.report_path), "n_patches": int(len(res.patches)),
             "n_indications": int(len(res.indications))}
 
@@ -251,7 +258,9 @@ def _print_row(r: dict) -> None:
     base = r["t_raw_read_s"] + r["t_pcc_s"]
     print(f"  {r['size_m']:g} m: compare {r['t_compare_s']:.2f} s = {_ratio(r['t_compare_s'], base)} "
           f"(raw read {r['t_raw_read_s']:.2f} s + phase correlation {r['t_pcc_s']:.2f} s); "
-          f"peak {r['run_maxrss_bytes'] / 2**30:.2f} GiB = {r['run_maxrss_bytes'] / r['cells_new']:.0f} B/cell")
+          f"peak {r['run_maxrss_bytes'] / 2**30:.2f} GiB = {r['run_maxrss_bytes'] / r['cells_new']:.0f} B/cell "
+          f"({(r['run_maxrss_bytes'] - r['import_maxrss_bytes']) / r['cells_new']:.0f} B/cell above the "
+          f"{r['import_maxrss_bytes'] / 2**20:.0f} MiB of the imported libraries)")
     st = r.get("stages_s", {})
     npass = r["t_numpy_pass_s"]
     print("    stages [s] (and x one numpy pass of " f"{npass * 1e3:.1f} ms): "
@@ -268,12 +277,12 @@ def _print_row(r: dict) -> None:
 def summary(rows: list[dict]) -> str:
     """Markdown table of the figures and the verdict on each target."""
     lines = ["| floor | grid (M cells) | compare [s] | × (raw read + PCC) | raw read [s] | PCC [s] | "
-             "numpy pass [ms] | load × raw | register × PCC | CSV × pandas | peak [GiB] | B/cell |",
-             "|---|---|---|---|---|---|---|---|---|---|---|---|"]
+             "numpy pass [ms] | load × raw | register × PCC | CSV × pandas | peak [GiB] | B/cell | B/cell net |",
+             "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
     by = {r["size_m"]: r for r in rows}
     for r in rows:
         if "t_compare_s" not in r:
-            lines.append(f"| {r['size_m']:g} m | - | failed: {r.get('error', '?')} |" + " |" * 9)
+            lines.append(f"| {r['size_m']:g} m | - | failed: {r.get('error', '?')} |" + " |" * 10)
             continue
         base = r["t_raw_read_s"] + r["t_pcc_s"]
         csvr = _ratio(r.get("t_read_csv_scan_s"), r.get("t_pandas_read_csv_s"))
@@ -282,7 +291,8 @@ def summary(rows: list[dict]) -> str:
             f"{r['t_compare_s'] / base:.2f} | {r['t_raw_read_s']:.2f} | {r['t_pcc_s']:.2f} | "
             f"{r['t_numpy_pass_s'] * 1e3:.1f} | {_ratio(r['t_read_scan_s'], r['t_raw_read_s'])} | "
             f"{_ratio(r['t_register_s'], r['t_pcc_s'])} | {csvr} | {r['run_maxrss_bytes'] / 2**30:.2f} | "
-            f"{r['run_maxrss_bytes'] / r['cells_new']:.0f} |")
+            f"{r['run_maxrss_bytes'] / r['cells_new']:.0f} | "
+            f"{(r['run_maxrss_bytes'] - r['import_maxrss_bytes']) / r['cells_new']:.0f} |")
     lines.append("")
     stage_names = []
     for r in rows:
@@ -307,10 +317,11 @@ def summary(rows: list[dict]) -> str:
             x = r["t_read_csv_scan_s"] / r["t_pandas_read_csv_s"]
             lines.append(f"- CSV load ≤ {TARGET_CSV_X:g}× pandas.read_csv ({r['size_m']:g} m): {x:.2f}× "
                          f"{_verdict(x <= TARGET_CSV_X)}")
-    worst = max((r["run_maxrss_bytes"] / r["cells_new"] for r in rows if "run_maxrss_bytes" in r), default=None)
-    if worst is not None:
-        lines.append(f"- peak memory ≤ {TARGET_BYTES_PER_CELL:g} B/cell (worst size): {worst:.0f} "
-                     f"{_verdict(worst <= TARGET_BYTES_PER_CELL)}")
+    for r in rows:
+        if "run_maxrss_bytes" in r and r["cells_new"] >= 5e6:  # below that the libraries dominate
+            b = r["run_maxrss_bytes"] / r["cells_new"]
+            lines.append(f"- peak memory ≤ {TARGET_BYTES_PER_CELL:g} B/cell ({r['size_m']:g} m): {b:.0f} "
+                         f"{_verdict(b <= TARGET_BYTES_PER_CELL)}")
     if all(s in by and "t_compare_s" in by[s] for s in (30.0, 60.0)):
         x = by[60.0]["t_compare_s"] / by[30.0]["t_compare_s"]
         cells = by[60.0]["cells_new"] / by[30.0]["cells_new"]

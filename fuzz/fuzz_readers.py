@@ -33,6 +33,7 @@ import hashlib
 import os
 import sys
 import tempfile
+import threading
 import time
 import traceback
 import warnings
@@ -160,7 +161,34 @@ def signature(exc: BaseException) -> str:
     return f"{type(exc).__name__} at {where}"
 
 
-def fuzz_mutate(kind: str, *, seconds: float, iterations: int, seed: int, crashes: Path) -> dict:
+class Watchdog:
+    """Detect an input on which a reader never returns (a loop inside a C library cannot be
+    interrupted from Python): save it as ``hang-<sha>`` with a note and end the process."""
+
+    def __init__(self, limit_s: float, crashes: Path, counts: dict):
+        self.limit_s = limit_s
+        self.crashes = crashes
+        self.counts = counts
+        self.started = None
+        self.work = None
+        threading.Thread(target=self._watch, daemon=True).start()
+
+    def _watch(self):
+        while True:
+            time.sleep(0.5)
+            t, work = self.started, self.work
+            if t is not None and time.monotonic() - t > self.limit_s:
+                data = work.read_bytes()
+                keep = self.crashes / f"hang-{hashlib.sha256(data).hexdigest()[:12]}{work.suffix}"
+                keep.write_bytes(data)
+                keep.with_suffix(".txt").write_text(f"reader did not return within {self.limit_s} s\n")
+                print(f"HANG: the reader did not return within {self.limit_s} s on {keep}; counts so far "
+                      f"{self.counts}", flush=True)
+                os._exit(1)
+
+
+def fuzz_mutate(kind: str, *, seconds: float, iterations: int, seed: int, crashes: Path,
+                hang_s: float = 30.0) -> dict:
     rng = np.random.default_rng(seed)
     crashes.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory() as d:
@@ -170,12 +198,15 @@ def fuzz_mutate(kind: str, *, seconds: float, iterations: int, seed: int, crashe
     work = crashes / ("current.csv" if kind == "csv" else "current.h5")
     counts = {"ok": 0, "refused": 0, "failed": 0}
     failures: dict[str, str] = {}
+    dog = Watchdog(hang_s, crashes, counts)
+    dog.work = work
     t0 = time.monotonic()
     n = 0
     while n < iterations and time.monotonic() - t0 < seconds:
         data = mutate(seeds[int(rng.integers(0, len(seeds)))], rng, text=(kind == "csv"))
         work.write_bytes(data)
         n += 1
+        dog.started = time.monotonic()
         try:
             counts[run_one(reader, work)] += 1
         except BaseException as exc:  # noqa: BLE001 - every other outcome is the finding
@@ -190,13 +221,19 @@ def fuzz_mutate(kind: str, *, seconds: float, iterations: int, seed: int, crashe
                 keep.with_suffix(".txt").write_text(f"{sig}\n{type(exc).__name__}: {exc}\n\n"
                                                     + "".join(traceback.format_exception(exc)))
                 failures[sig] = str(keep)
+        finally:
+            dog.started = None
     work.unlink(missing_ok=True)
     return {"target": f"{kind}-mutate", "iterations": n, "seconds": round(time.monotonic() - t0, 1), **counts,
             "unique_failures": failures}
 
 
+class _TimeUp(BaseException):
+    """Ends a hypothesis run when the time budget is spent (BaseException: not a finding)."""
+
+
 def fuzz_grammar(*, seconds: float, iterations: int, seed: int, crashes: Path) -> dict:
-    from hypothesis import HealthCheck, given, settings
+    from hypothesis import HealthCheck, Phase, given, settings
     from hypothesis.errors import Unsatisfiable
 
     sys.path.insert(0, str(HERE.parent / "tests"))
@@ -209,11 +246,11 @@ def fuzz_grammar(*, seconds: float, iterations: int, seed: int, crashes: Path) -
     t0 = time.monotonic()
 
     @settings(max_examples=iterations, deadline=None, database=None, derandomize=False,
-              suppress_health_check=list(HealthCheck), phases=None)
+              suppress_health_check=list(HealthCheck), phases=[Phase.generate])
     @given(data=csv_files())
     def one(data):
         if time.monotonic() - t0 > seconds:
-            return
+            raise _TimeUp
         work.write_bytes(data)
         try:
             counts[run_one(read_csv_scan, work)] += 1
@@ -229,7 +266,7 @@ def fuzz_grammar(*, seconds: float, iterations: int, seed: int, crashes: Path) -
     np.random.seed(seed)  # hypothesis draws its own randomness; this only fixes numpy's global state
     try:
         one()
-    except Unsatisfiable:
+    except (Unsatisfiable, _TimeUp):
         pass
     work.unlink(missing_ok=True)
     return {"target": "csv-grammar", "iterations": sum(counts.values()), "seconds": round(time.monotonic() - t0, 1),
@@ -243,6 +280,7 @@ def main(argv=None) -> int:
     ap.add_argument("--iterations", type=int, default=10 ** 9, help="most inputs per target")
     ap.add_argument("--seed", type=int, default=1, help="seed of the mutation RNG")
     ap.add_argument("--crashes", default="fuzz_crashes", help="folder for failing inputs (created)")
+    ap.add_argument("--hang-seconds", type=float, default=30.0, help="an input read longer than this is a hang [s]")
     args = ap.parse_args(argv)
     crashes = Path(args.crashes)
     targets = ["csv-mutate", "h5-mutate", "csv-grammar"] if args.target == "all" else [args.target]
@@ -253,7 +291,7 @@ def main(argv=None) -> int:
                                crashes=crashes)
         else:
             res = fuzz_mutate(t.split("-")[0], seconds=args.seconds, iterations=args.iterations, seed=args.seed,
-                              crashes=crashes)
+                              crashes=crashes, hang_s=args.hang_seconds)
         print(f"{res['target']}: {res['iterations']} inputs in {res['seconds']} s: {res['ok']} read, "
               f"{res['refused']} refused cleanly, {res['failed']} failures")
         for sig, path in res["unique_failures"].items():

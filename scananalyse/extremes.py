@@ -1491,7 +1491,8 @@ def _predictive_upper(fit, loc, scale, shape, T, level):
 
 def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0,
                   threshold=None, min_coverage=0.5, level=0.9, method="mle", seed=0,
-                  valid=None, bound_method="bootstrap", n_boot=1000) -> ZoneExtremes:
+                  valid=None, bound_method="bootstrap", n_boot=1000,
+                  gev_test=True) -> ZoneExtremes:
     r"""Deepest value to expect over a whole zone, from block maxima.
 
     Parameters
@@ -1526,6 +1527,10 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         Method of the return-level bound (see :func:`return_level_bounds`).
     n_boot : int
         Bootstrap resamples. [-]
+    gev_test : bool
+        Run the likelihood-ratio test of Gumbel against GEV (a GEV fit, the
+        costliest step after the bootstrap); False leaves ``lr_test`` None, for
+        callers that only need the bounds (e.g. a search over a horizon). [-]
 
     Returns
     -------
@@ -1611,8 +1616,8 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
                             n_censored=int(cens.sum()), fit=fit, warnings=tuple(warn), blocks=bm,
                             **common)
     try:
-        lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=u)
-        if lr.reject_gumbel and fit.distribution == "gumbel":
+        lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=u) if gev_test else None
+        if lr is not None and lr.reject_gumbel and fit.distribution == "gumbel":
             warn.append(f"GEV fits better than Gumbel (p = {lr.p_value:.3f}, "
                         f"xi = {lr.gev.shape:.2f})")
     except FitError as exc:

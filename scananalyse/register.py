@@ -805,7 +805,7 @@ def _parabolic(ym, y0, yp) -> float:
 # refinement: Gauss-Newton (Lucas-Kanade) on the strongest-gradient cells
 # --------------------------------------------------------------------------------------
 def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_samples: int,
-                  max_iter: int = 20, tol_cells: float = 0.005):
+                  max_iter: int = 20, tol_cells: float = 0.005, lam0: float = 1e-3):
     fn = new_lv.smooth
     h, w = fn.shape
     gxn, gyn = new_lv.grad
@@ -854,6 +854,15 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
         a = np.abs(r)
         return float(np.mean(np.where(a <= k, 0.5 * r * r, k * (a - 0.5 * k))))
 
+    def try_step(step):
+        """(cost, state, params) after ``step`` (theta scaled by rchar), None if too few samples."""
+        trial = params + step * np.array([1.0 / rchar, 1, 1, 1, 1])
+        state = evaluate(trial)
+        g_t, in_t = state[0], state[1]
+        if np.count_nonzero(in_t) < 50:
+            return None
+        return huber_cost(trial[3] * g_t[in_t] + trial[4] - fv[in_t], k), state, trial
+
     params = np.array([th, dx, dy, gain, off], dtype=np.float64)
     g, inside, qx, qy, c, s = evaluate(params)
     if np.count_nonzero(inside) < 50:
@@ -867,7 +876,7 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
     mad = np.median(np.abs(r_all - np.median(r_all))) * 1.4826
     k = 2.0 * max(mad, 1e-6)          # Huber threshold, fixed for the level
     cost = huber_cost(r_all, k)
-    lam = 1e-3
+    lam = lam0
     H = None
     s2 = None
     for it in range(1, max_iter + 1):
@@ -892,6 +901,7 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
         grad = JW.T @ r
         s2 = float(np.sum(wts * r * r) / max(1, r.size - 5))
         accepted = False
+        taken = np.zeros(5)
         for _ in range(12):
             # Levenberg-Marquardt damping; a step is kept only if the robust cost drops
             Hd = H + lam * np.diag(np.diag(H))
@@ -902,20 +912,33 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
             geo = math.hypot(step[0], math.hypot(step[1], step[2]))
             if geo > pitch:            # at most one cell of displacement per step
                 step *= pitch / geo
-            trial = params + step * np.array([1.0 / rchar, 1, 1, 1, 1])
-            g_t, in_t, qx_t, qy_t, c_t, s_t = evaluate(trial)
-            if np.count_nonzero(in_t) < 50:
+            tried = try_step(step)
+            if tried is None:
                 lam *= 10
                 continue
-            cost_t = huber_cost(trial[3] * g_t[in_t] + trial[4] - fv[in_t], k)
-            if cost_t <= cost:
-                params, cost = trial, cost_t
-                g, inside, qx, qy, c, s = g_t, in_t, qx_t, qy_t, c_t, s_t
+            # Parabolic line search along the step (cost at 0 and 1, slope at 0): the Gauss-Newton
+            # model neglects the residual curvature term, and near seams whose two pictures differ
+            # the true curvature can be twice the model's, so full steps overshoot and the
+            # iterates zig-zag across the minimum (the cause of non-convergence on some floors).
+            slope = float(grad @ step) / max(1, r.size)
+            a2 = (tried[0] - cost) - slope
+            if slope < 0 and a2 > 0:
+                t_star = -slope / (2.0 * a2)
+                if 0.05 <= t_star <= 0.85:
+                    short = try_step(step * t_star)
+                    if short is not None and short[0] < tried[0]:
+                        tried = short
+            if tried[0] <= cost:
+                cost = tried[0]
+                taken = tried[2] - params
+                params = tried[2]
+                g, inside, qx, qy, c, s = tried[1]
                 lam = max(lam / 10, 1e-7)
                 accepted = True
                 break
             lam *= 10
-        small = abs(step[0]) < tol_cells * pitch and math.hypot(step[1], step[2]) < tol_cells * pitch
+        small = (abs(taken[0]) * rchar < tol_cells * pitch
+                 and math.hypot(taken[1], taken[2]) < tol_cells * pitch)
         if small or not accepted:
             converged = small or lam > 1e3   # no further descent possible: at the minimum
             break
@@ -1046,7 +1069,7 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
     auto_tr = None
     contrast = None
     std_rot = std_shift = None
-    auto_ok = False
+    auto_ok = coarse_ok = False
     score_auto = float("nan")
     if cp_tr is None or auto:
         t0 = time.perf_counter()
@@ -1086,16 +1109,53 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         details.update(coarse_pitch_mm=new_c.pitch, angle_step_deg=step, n_angles=int(len(angles)),
                        coarse_peak_ncc=float(peaks[ib]), coarse_estimate=tr.to_dict())
 
+        # next-best coarse candidates: other local maxima of the sweep within 80 % of the best peak
+        cands = []
+        for j in np.argsort(-peaks):
+            j = int(j)
+            if j == ib or peaks[j] < 0.8 * peaks[ib] or len(cands) >= 2:
+                continue
+            if (j == 0 or peaks[j] >= peaks[j - 1]) and (j == len(peaks) - 1 or peaks[j] >= peaks[j + 1]):
+                cands.append(RigidTransform(float(angles[j]), centre_tr.dx_mm + res[j][1],
+                                            centre_tr.dy_mm + res[j][2]))
+        coarse_tr = tr
+
         t0 = time.perf_counter()
         info = None
         levels_done = []
+        last_good = None
         for k in range(kc - 1 if kc > 0 else 0, -1, -1):
             lv_n = pn[k]
             lv_o = _closest_level(po, lv_n.pitch)
-            tr, info = _refine_level(lv_n, lv_o, tr, n_samples=n_samples)
-            levels_done.append({"pitch_mm": lv_n.pitch, "old_pitch_mm": lv_o.pitch,
-                                "iterations": info["iterations"], "converged": info["converged"],
-                                "samples": info["n"]})
+            start = tr
+            tr, info = _refine_level(lv_n, lv_o, start, n_samples=n_samples)
+            entry = {"pitch_mm": lv_n.pitch, "old_pitch_mm": lv_o.pitch,
+                     "iterations": info["iterations"], "converged": info["converged"],
+                     "samples": info["n"]}
+            if not info["converged"] and info["n"] >= 50:
+                # Restarts: from the same start with heavy damping, then from the next-best
+                # coarse candidates (only at the first level refined, which starts from them).
+                starts = [start] + (cands if not levels_done else [])
+                for st_tr in starts:
+                    tr2, info2 = _refine_level(lv_n, lv_o, st_tr, n_samples=n_samples,
+                                               max_iter=40, lam0=1.0)
+                    entry.setdefault("restarts", []).append(
+                        {"start": st_tr.to_dict(), "iterations": info2["iterations"],
+                         "converged": info2["converged"]})
+                    if info2["converged"]:
+                        tr, info = tr2, info2
+                        entry["converged"] = True
+                        break
+            levels_done.append(entry)
+            if not info["converged"]:
+                if last_good is not None:
+                    # keep the finest level that converged
+                    tr, info = last_good
+                    details["refine_stopped_at_pitch_mm"] = lv_n.pitch
+                else:
+                    tr = coarse_tr          # not the wandering iterate
+                break
+            last_good = (tr, info)
             # Many samples and no move at this level: a finer level would not move either
             # (saves the full-resolution passes on large floors).
             if (k > 0 and info["converged"] and info["iterations"] == 1 and info["n"] >= n_samples
@@ -1120,7 +1180,8 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         if contrast is not None and contrast < min_rotation_contrast:
             reasons.append(f"flat rotation sweep (contrast {contrast:.3f} < {min_rotation_contrast:g}): "
                            "the floor shows too few features (seams, plate edges, pits) to fix the rotation")
-        if info is None or not info["converged"]:
+        coarse_only = info is None or not info["converged"]
+        if coarse_only:
             reasons.append("the refinement did not converge")
         else:
             if std_rot is not None and std_rot > max_std_rotation_deg:
@@ -1130,6 +1191,8 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         if ov_auto < min_overlap_pct:
             reasons.append(f"small overlap {ov_auto:.1f} % (< {min_overlap_pct:g} %)")
         auto_ok = not reasons
+        # a good coarse peak whose refinement failed is still far better than the identity
+        coarse_ok = coarse_only and len(reasons) == 1
         if not auto_ok:
             notes.append("automatic registration unreliable: " + "; ".join(reasons))
 
@@ -1146,6 +1209,11 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
             # the automatic answer must stay near the control points (it was searched there)
             ddx, ddy = (np.subtract(auto_tr.apply(0.0, 0.0), cp_tr.apply(0.0, 0.0)))
             details["auto_minus_control_at_origin_mm"] = [float(ddx), float(ddy)]
+    elif coarse_ok:
+        final, method = auto_tr, "auto-coarse"
+        reliable = False
+        notes.append(f"the coarse estimate is used (good to about a coarse cell, "
+                     f"{details['coarse_pitch_mm']:g} mm); give control points to confirm it")
     else:
         final, method = RigidTransform(), "identity"
         reliable = False

@@ -200,7 +200,7 @@ def _find_col(df, names):
 # ---------------------------------------------------------------------------
 def floor_map(values, *, extent, title, label, units="mm", kind="thickness", diameter_mm=None,
               centre=(0.0, 0.0), plate=None, contours=None, patches=None, indications=None,
-              max_pixels=1_500_000, vmin=None, vmax=None, ax=None):
+              max_pixels=600_000, vmin=None, vmax=None, ax=None):
     """Map of one quantity over the floor.
 
     Parameters
@@ -414,7 +414,7 @@ def _composite(new, old):
 
 
 def registration_overlay(new_features, old_features_before, old_features_after, *, extent,
-                         max_pixels=1_500_000, ax=None):
+                         max_pixels=600_000, ax=None):
     """Two-colour composite of the scans' feature masks before and after alignment.
 
     Parameters
