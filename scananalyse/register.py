@@ -88,6 +88,15 @@ BOUNDARY_WEIGHT = 0.5
 N_SAMPLES = 100000
 #: Largest number of cells used for the score and quality figures (strided subsample above).
 QUALITY_CELLS = 500_000
+#: A pit (for the sub-cell stage) is a group of cells whose loss exceeds the floor's median loss
+#: by more than this fraction of nominal ...
+PIT_THRESHOLD_FRACTION = 0.12
+#: ... of at least this many cells.
+PIT_MIN_CELLS = 3
+#: Fewest matched pits for the sub-cell translation from pit centroids.
+PIT_MIN_MATCHES = 4
+#: Largest standard error of the pit translation accepted, in cells of the newer scan.
+PIT_MAX_SE_CELLS = 0.1
 #: Factor applied to Gauss-Newton standard errors for the correlation of neighbouring samples
 #: (Gaussian smoothing of one cell plus bilinear interpolation; common practice, no source).
 STD_INFLATION = 3.0
@@ -806,6 +815,10 @@ def _parabolic(ym, y0, yp) -> float:
 # --------------------------------------------------------------------------------------
 def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_samples: int,
                   max_iter: int = 20, tol_cells: float = 0.005, lam0: float = 1e-3):
+    """Gauss-Newton / Levenberg-Marquardt fit of (theta, dx, dy, gain, offset) on one level.
+
+    ``lam0`` is the starting damping (large for a restart after a failed run).
+    """
     fn = new_lv.smooth
     h, w = fn.shape
     gxn, gyn = new_lv.grad
@@ -937,10 +950,11 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
                 accepted = True
                 break
             lam *= 10
-        small = (abs(taken[0]) * rchar < tol_cells * pitch
-                 and math.hypot(taken[1], taken[2]) < tol_cells * pitch)
-        if small or not accepted:
-            converged = small or lam > 1e3   # no further descent possible: at the minimum
+        if not accepted:
+            converged = lam > 1e3     # no further descent possible: at the minimum
+            break
+        if abs(taken[0]) * rchar < tol_cells * pitch and math.hypot(taken[1], taken[2]) < tol_cells * pitch:
+            converged = True
             break
     th, dx, dy, gain, off = (float(v) for v in params)
     if converged and H is not None:
@@ -995,6 +1009,113 @@ def _thickness_quality(new: FloorScan, old: FloorScan, tr: RigidTransform) -> tu
         return overlap, float("nan")
     d = ts[rows[both], cols[both]].astype(np.float64) - to[both]
     return overlap, float(np.sqrt(np.mean(d * d)))
+
+
+def _pit_centroids(scan: FloorScan) -> tuple[np.ndarray, np.ndarray]:
+    """Loss-weighted centroids of the isolated pits of a scan, at sub-cell precision.
+
+    A pit is a connected group (4-neighbours) of at least :data:`PIT_MIN_CELLS` scanned
+    cells whose loss exceeds the floor's median loss by more than
+    :data:`PIT_THRESHOLD_FRACTION` of nominal; its centroid is weighted by
+    ``clip(excess loss / (LOSS_SCALE_FRACTION nominal), 0, 1)``.  Groups within two cells
+    of an unscanned cell are left out: part of such a pit is hidden, differently in each
+    outage.  A pit's profile is smooth and crosses the cells at every phase, so its
+    centroid carries the sub-cell position that the unscanned seam bands lose.
+
+    Returns
+    -------
+    (xy, area) : (n, 2) centroids in the scan's own frame [mm] and areas [mm²].
+    """
+    t = scan.thickness
+    h, w = t.shape
+    nom = float(scan.meta.nominal)
+    fin = t.ravel()[::max(1, t.size // 200000)]
+    fin = fin[np.isfinite(fin)]
+    if fin.size == 0:
+        return np.zeros((0, 2)), np.zeros(0)
+    level = float(np.median(fin))                      # thickness of the general (unpitted) floor
+    with np.errstate(invalid="ignore"):
+        mask = t < np.float32(level - PIT_THRESHOLD_FRACTION * nom)      # NaN compares False
+    lab, n = _ndi.label(mask)
+    if n == 0:
+        return np.zeros((0, 2)), np.zeros(0)
+    cells = np.flatnonzero(mask)
+    del mask
+    li = lab.ravel()[cells]
+    del lab
+    tv = t.ravel()[cells].astype(np.float64)
+    wv = np.clip((level - tv) / (LOSS_SCALE_FRACTION * nom), 0.0, 1.0)
+    rows, cols = np.divmod(cells, w)
+    # within two cells of an unscanned cell or of the grid edge (gathers on the pit cells only)
+    near = np.zeros(cells.size, dtype=bool)
+    tflat = t.reshape(-1) if t.flags.c_contiguous else np.ascontiguousarray(t).reshape(-1)
+    for dr in range(-2, 3):
+        rr = rows + dr
+        for dc in range(-2, 3):
+            cc = cols + dc
+            inb = (rr >= 0) & (rr < h) & (cc >= 0) & (cc < w)
+            v = tflat.take(np.clip(rr, 0, h - 1) * w + np.clip(cc, 0, w - 1))
+            near |= ~inb | np.isnan(v)
+    touch = np.bincount(li, near, minlength=n + 1)
+    area = np.bincount(li, minlength=n + 1)
+    m = np.bincount(li, wv, minlength=n + 1)
+    sx = np.bincount(li, wv * cols, minlength=n + 1)
+    sy = np.bincount(li, wv * rows, minlength=n + 1)
+    ok = (area >= PIT_MIN_CELLS) & (touch == 0) & (m > 0)
+    ok[0] = False
+    xy = np.column_stack([scan.x0 + scan.pitch * sx[ok] / m[ok], scan.y0 + scan.pitch * sy[ok] / m[ok]])
+    return xy, area[ok] * scan.pitch ** 2
+
+
+def _pit_shift(new: FloorScan, old: FloorScan, tr: RigidTransform):
+    """Sub-cell translation correction of ``tr`` from matched pit centroids.
+
+    The pits of each scan (:func:`_pit_centroids`) are matched as mutual nearest neighbours
+    after ``tr`` (within twice the coarser pitch, areas within a factor of 3: pits grow
+    between outages); the correction is the mean displacement of the matches after an
+    iterated 3-MAD rejection (pits that merged, grew unevenly or were repaired).  The
+    rotation of ``tr`` is kept.
+
+    Returns
+    -------
+    (correction_xy, standard_error_xy, n_used) : [mm], [mm], [-]; None if fewer than 2 matches.
+    """
+    from scipy.spatial import cKDTree
+
+    cn, an = _pit_centroids(new)
+    co, ao = _pit_centroids(old)
+    if len(cn) < 2 or len(co) < 2:
+        return None, {"pits_new": int(len(cn)), "pits_old": int(len(co)), "matched": 0}
+    ox, oy = tr.apply(co[:, 0], co[:, 1])
+    om = np.column_stack([ox, oy])
+    radius = 2.0 * max(new.pitch, old.pitch)
+    d_no, j = cKDTree(om).query(cn, distance_upper_bound=radius)
+    _, i_back = cKDTree(cn).query(om)
+    idx = np.flatnonzero(np.isfinite(d_no))
+    idx = idx[i_back[j[idx]] == idx]                          # mutual nearest neighbours
+    ratio = an[idx] / ao[j[idx]]
+    idx = idx[(ratio > 1.0 / 3.0) & (ratio < 3.0)]
+    info = {"pits_new": int(len(cn)), "pits_old": int(len(co)), "matched": int(idx.size)}
+    if idx.size < 2:
+        return None, info
+    d = cn[idx] - om[j[idx]]
+    keep = np.ones(len(d), dtype=bool)
+    for _ in range(5):
+        med = np.median(d[keep], axis=0)
+        rr = np.hypot(d[:, 0] - med[0], d[:, 1] - med[1])
+        lim = 3.0 * (1.4826 * float(np.median(rr[keep])) + 0.05 * new.pitch)
+        nk = rr <= lim
+        if nk.sum() < 2 or np.array_equal(nk, keep):
+            keep = nk if nk.sum() >= 2 else keep
+            break
+        keep = nk
+    n_used = int(keep.sum())
+    info["used"] = n_used
+    if n_used < 2:
+        return None, info
+    corr = d[keep].mean(axis=0)
+    se = d[keep].std(axis=0, ddof=1) / math.sqrt(n_used)
+    return (corr, se, n_used), info
 
 
 def _as_control_points(cp):
@@ -1163,11 +1284,40 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
                 break
         timings["refine"] = time.perf_counter() - t0
         details["refine_levels"] = levels_done
-        auto_tr = tr
         if info is not None and info.get("cov") is not None:
             cov = info["cov"]
             std_rot = math.degrees(math.sqrt(max(cov[0, 0], 0.0))) * STD_INFLATION
             std_shift = math.sqrt(max(cov[1, 1] + cov[2, 2], 0.0)) * STD_INFLATION
+
+        # Sub-cell stage: the seam bands only fix the shift to within a cell (docs, "Limits");
+        # the centroids of the pits seen in both scans carry the fraction.
+        if info is not None and info["converged"]:
+            t0 = time.perf_counter()
+            pit, pinfo = _pit_shift(new, old, tr)
+            pinfo["applied"] = False
+            if pit is not None:
+                corr, se, n_used = pit
+                pinfo.update(correction_mm=[float(corr[0]), float(corr[1])],
+                             standard_error_mm=float(math.hypot(se[0], se[1])))
+                bound = 1.5 * max(new.pitch, old.pitch)
+                if (n_used >= PIT_MIN_MATCHES and math.hypot(se[0], se[1]) <= PIT_MAX_SE_CELLS * new.pitch
+                        and math.hypot(corr[0], corr[1]) <= bound):
+                    # Inverse-variance mean of the two: the seam estimate's error is a quantisation
+                    # error, uniform over a cell of the newer grid, and of the older one too when
+                    # its grid is not rotated enough for its phase to vary along the seams.
+                    rim = max(math.hypot(x, y) for x in (new.x[0], new.x[-1]) for y in (new.y[0], new.y[-1]))
+                    var_seam = new.pitch ** 2 / 12.0
+                    if abs(math.radians(tr.rotation_deg)) * rim < old.pitch:
+                        var_seam += old.pitch ** 2 / 12.0
+                    wgt = var_seam / (var_seam + se * se)            # per axis, weight of the pits
+                    details["seam_estimate"] = tr.to_dict()
+                    tr = RigidTransform(tr.rotation_deg, tr.dx_mm + float(wgt[0] * corr[0]),
+                                        tr.dy_mm + float(wgt[1] * corr[1]))
+                    std_shift = float(math.sqrt(np.sum(var_seam * se * se / (var_seam + se * se))))
+                    pinfo.update(applied=True, pit_weight=[float(wgt[0]), float(wgt[1])])
+            details["pit_stage"] = pinfo
+            timings["pits"] = time.perf_counter() - t0
+        auto_tr = tr
         t0 = time.perf_counter()
         score_lv = pn[min(1, len(pn) - 1)] if pn[0].img.size > 4 * QUALITY_CELLS else pn[0]
         score_auto = _ncc_aligned(score_lv, _closest_level(po, score_lv.pitch), auto_tr)

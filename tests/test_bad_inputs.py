@@ -660,3 +660,29 @@ def test_check_never_writes_next_to_input(corpus, capsys):
     before = target.stat().st_mtime_ns, target.read_bytes()
     run_cli(["check", path], capsys)
     assert (target.stat().st_mtime_ns, target.read_bytes()) == before
+
+
+# --------------------------------------------------------------------------- fuzz finds
+#: Files found by fuzz/fuzz_readers.py (mutations of valid files), kept in tests/data/bad/.
+FOUND = Path(__file__).resolve().parent / "data" / "bad"
+FOUND_FILES = sorted(p.name for p in FOUND.iterdir() if p.suffix in (".csv", ".h5"))
+
+
+def test_found_files_present():
+    assert len(FOUND_FILES) >= 5
+
+
+@pytest.mark.parametrize("name", FOUND_FILES)
+def test_fuzz_found_files_refused(good_pair, capsys, tmp_path, name):
+    """Corrupt files (a CR inside a table row; damaged HDF5 object headers, attribute tables,
+    link heaps, datatypes) are bad input: exit 2, one line naming the file, through check and compare."""
+    src = FOUND / name
+    path = tmp_path / name  # a copy, so the test never touches the kept file
+    path.write_bytes(src.read_bytes())
+    status, out, err = run_cli(["check", path], capsys)
+    assert_one_error_line(status, err, F(path))
+    out_dir = tmp_path / "result"
+    status, out, err = run_cli(["compare", good_pair["old_h5"], path, "--diameter", "3000", "--out", out_dir,
+                                "--quiet"], capsys)
+    assert_one_error_line(status, err, F(path))
+    assert sorted(p.name for p in tmp_path.iterdir()) == [name]

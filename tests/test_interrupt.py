@@ -108,6 +108,19 @@ def test_complete_run_succeeds(complete_run):
     assert sorted(p.name for p in out.parent.iterdir()) == ["result"]
 
 
+def test_output_folder_has_ordinary_permissions(complete_run):
+    """The results are meant to be shared: the folder gets the permissions of a folder made by
+    mkdir under the user's umask, not the owner-only mode of a private temporary folder."""
+    umask = os.umask(0)
+    os.umask(umask)
+    probe = complete_run["out"].parent / "probe"
+    probe.mkdir()
+    try:
+        assert (complete_run["out"].stat().st_mode & 0o777) == (probe.stat().st_mode & 0o777) == (0o777 & ~umask)
+    finally:
+        probe.rmdir()
+
+
 def test_inputs_read_only_and_unchanged(complete_run):
     assert complete_run["after"] == complete_run["before"]
     opens = complete_run["opens"]

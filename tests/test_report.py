@@ -318,36 +318,42 @@ def _table_with_header(p, first):
     raise AssertionError(f"no table starting with {first!r}")
 
 
+def _by_zone(p):
+    """The zone table, laid out one row per quantity and one column per zone (and state)."""
+    for t in p.tables:
+        if t and t[0] and t[0][0].startswith("quantity"):
+            return t
+    raise AssertionError("no zone table (first header 'quantity')")
+
+
+def _zv(t, zone, qty):
+    """(cell text, row header text) of quantity ``qty`` for ``zone`` as found."""
+    j = next(k for k, h in enumerate(t[0]) if h.startswith(zone))
+    row = next(r for r in t[1:] if r[0].startswith(qty))
+    return row[j], row[0]
+
+
 def test_nan_inf_and_units_mm(page):
     _, text = page
-    p = _parse(text)
-    t = _table_with_header(p, "zone")  # the full zone table (first wide one)
-    head = [h for h in t[0]]
-    rows = {r[0]: r for r in t[1:]}
-    i_local = next(k for k, h in enumerate(head) if h.startswith("life_local"))
-    i_code = next(k for k, h in enumerate(head) if h.startswith("interval_code"))
-    i_tmin = next(k for k, h in enumerate(head) if h.startswith("t_min"))
-    assert rows["critical"][i_local] == "∞"        # no corrosion: infinite life
-    assert rows[HOSTILE][i_tmin] == "–"            # all-unscanned zone: NaN
-    assert rows["interior"][i_code] == "−0.4"      # below MRT: negative code interval
-    assert rows["interior"][i_tmin] == "3.30"
-    assert "mm/y" in head[next(k for k, h in enumerate(head) if h.startswith("rate_top"))]
+    t = _by_zone(_parse(text))
+    assert _zv(t, "critical", "life_local")[0] == "∞"        # no corrosion: infinite life
+    assert _zv(t, HOSTILE, "t_min")[0] == "–"                # all-unscanned zone: NaN
+    assert _zv(t, "interior", "interval_code")[0] == "−0.4"  # below MRT: negative code interval
+    assert _zv(t, "interior", "t_min")[0] == "3.30"
+    assert "mm/y" in _zv(t, "interior", "rate_top")[1]
 
 
 def test_units_in():
     data = build_data(units="in")
     text = render_report(data)
-    p = _parse(text)
-    t = _table_with_header(p, "zone")
-    head = t[0]
-    rows = {r[0]: r for r in t[1:]}
-    i_rate = next(k for k, h in enumerate(head) if h.startswith("rate_top"))
-    i_mrt = next(k for k, h in enumerate(head) if h.startswith("mrt"))
-    i_depth = next(k for k, h in enumerate(head) if h.startswith("depth_max"))
+    t = _by_zone(_parse(text))
     # 1 mpy = 0.0254 mm/y; 1 in = 25.4 mm; 1 mil = 0.0254 mm (domain.md §3, seen)
-    assert head[i_rate].endswith("mpy") and rows["interior"][i_rate] == "10.0"
-    assert head[i_mrt].endswith("in") and rows["interior"][i_mrt] == "0.100"
-    assert head[i_depth].endswith("mils") and rows["interior"][i_depth] == "120"
+    v, h = _zv(t, "interior", "rate_top")
+    assert h.endswith("mpy") and v == "10.0"
+    v, h = _zv(t, "interior", "mrt")
+    assert h.endswith("in") and v == "0.100"
+    v, h = _zv(t, "interior", "depth_max")
+    assert h.endswith("mils") and v == "120"
     assert "in, mils, mpy" in text
 
 

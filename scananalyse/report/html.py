@@ -300,14 +300,41 @@ def _maps(d: ReportData) -> str:
     return '<div class="maps">' + _figures(figs) + "</div>"
 
 
+def _table_by_zone(found: pd.DataFrame | None, repaired: pd.DataFrame | None, units: str) -> str:
+    """Every zones.csv column as a row, one column per zone (as found, and after repair)."""
+    if found is None or len(found) == 0:
+        return '<p class="empty">no zones assessed</p>'
+    zones = [str(z) for z in found["zone"]]
+    heads = []
+    for z in zones:
+        heads.append(f'<th scope="col">{esc(z)}<span class="unit">as found</span></th>')
+        if repaired is not None:
+            heads.append(f'<th scope="col">{esc(z)}<span class="unit">after repair</span></th>')
+    rep = None if repaired is None else repaired.set_index("zone")
+    fnd = found.set_index("zone")
+    out = ['<div class="tablewrap"><table class="data byzone"><thead><tr><th scope="col">quantity</th>']
+    out += heads
+    out.append("</tr></thead><tbody>")
+    for c in [c for c in found.columns if c != "zone"]:
+        base, unit, q, nd = U.display_column(str(c), units)
+        u = f' <span class="unit">{esc(unit)}</span>' if unit else ""
+        out.append(f'<tr><th scope="row">{esc(base)}{u}</th>')
+        for z in zones:
+            for frame in ([fnd] if rep is None else [fnd, rep]):
+                v = frame.loc[z, c] if (z in frame.index and c in frame.columns) else None
+                text, num = _cell(v, str(c), units)
+                klass = ' class="num"' if num else (' class="flags"' if c == "flags" and text not in ("", "–") else "")
+                out.append(f"<td{klass}>{text}</td>")
+        out.append("</tr>")
+    out.append("</tbody></table></div>")
+    return "".join(out)
+
+
 def _zones(d: ReportData) -> str:
-    parts = ["<p>Every column of <code>zones.csv</code>; the files keep SI units, the page "
+    parts = ["<p>Every column of <code>zones.csv</code> (and <code>zones_repaired.csv</code>), one row "
+             "per quantity; the files keep SI units, the page "
              f"shows {esc('mm and mm/y' if d.units == 'mm' else 'in, mils and mpy')}.</p>",
-             "<h3>As found</h3>", _table(d.zones, d.units, cls="data wide",
-                                         empty="no zones assessed")]
-    if d.zones_repaired is not None:
-        parts += ["<h3>After the proposed repairs</h3>",
-                  _table(d.zones_repaired, d.units, cls="data wide")]
+             _table_by_zone(d.zones, d.zones_repaired, d.units)]
     if d.patches is not None:
         parts += ["<h3>Proposed patch plates</h3>",
                   _table(d.patches, d.units, cls="data wide", empty="no patch plates needed")]
@@ -465,6 +492,8 @@ table.data thead th { background: var(--band); border-bottom: 2px solid #9aa3ad;
                       font-weight: 600; vertical-align: bottom; }
 table.data tbody tr:nth-child(even) td { background: #fafbfc; }
 table.wide { font-size: 0.76rem; }
+table.byzone th[scope="row"] { text-align: left; font-weight: 500; white-space: nowrap; }
+table.byzone td { max-width: 22rem; overflow-wrap: anywhere; }
 table.wide td { overflow-wrap: anywhere; }
 table.wide td.num { overflow-wrap: normal; }
 table.data th, table.data td { padding: 0.25rem 0.45rem; }
