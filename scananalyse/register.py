@@ -26,8 +26,14 @@ Method (documented in ``docs/registration.md``):
 3. *Refinement*, coarse to fine down to the newer scan's pitch: Gauss-Newton
    (Lucas-Kanade, forward additive) over (theta, dx, dy) plus a gain and offset,
    on the cells of the newer feature image with the strongest gradients,
-   Huber-weighted, with the older image sampled bilinearly.
-4. *Quality*: the masked NCC of the aligned feature images (score, 0-1), the
+   Huber-weighted, with the older image sampled bilinearly; Levenberg-Marquardt
+   damping with a parabolic line search along each step.  A level that does not
+   converge is restarted (heavier damping, then the next-best coarse candidates);
+   failing that the finest converged level, or the coarse estimate, is kept.
+4. *Sub-cell stage*: the seam bands fix the shift only to within a cell, so the
+   translation is corrected by the mean displacement of the loss-weighted centroids
+   of the pits matched between the two scans, when enough pits match.
+5. *Quality*: the masked NCC of the aligned feature images (score, 0-1), the
    overlap of the scanned areas, the thickness RMS difference in the overlap,
    the rotation contrast of the sweep and the Gauss-Newton standard errors;
    a featureless floor is flagged with :class:`~scananalyse.errors.RegistrationWarning`
@@ -56,6 +62,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import fft as _fft
 from scipy import ndimage as _ndi
+from scipy.spatial import cKDTree
 
 from .errors import InputError, RegistrationWarning, where
 from .scan import PLATE_NONE, SIDE_UNKNOWN, FloorScan, MM_PER_IN
@@ -194,7 +201,8 @@ class Registration:
     score : masked normalised cross-correlation of the aligned feature images, clipped to 0-1.
     overlap_pct : share of the newer scan's scanned cells that the older scan covers after alignment. [%]
     residual_rms_mm : RMS thickness difference (new minus resampled old) in the overlap. [mm]
-    method : ``"auto"``, ``"control-points"``, ``"auto+control-points"`` or ``"identity"``.
+    method : ``"auto"``, ``"control-points"``, ``"auto+control-points"``, ``"auto-coarse"``
+        (the refinement failed; the coarse estimate, not reliable) or ``"identity"``.
     reliable : False when the estimate should not be trusted (featureless floor, low score,
         small overlap, control points that disagree).
     warnings : plain-language reasons behind ``reliable`` and any fallback.
@@ -1078,10 +1086,9 @@ def _pit_shift(new: FloorScan, old: FloorScan, tr: RigidTransform):
 
     Returns
     -------
-    (correction_xy, standard_error_xy, n_used) : [mm], [mm], [-]; None if fewer than 2 matches.
+    (fit, info) : ``fit`` is ``(correction_xy [mm], standard_error_xy [mm], n_used)`` or None
+        with fewer than 2 usable matches; ``info`` the pit counts for the record.
     """
-    from scipy.spatial import cKDTree
-
     cn, an = _pit_centroids(new)
     co, ao = _pit_centroids(old)
     if len(cn) < 2 or len(co) < 2:
@@ -1167,7 +1174,8 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
     Warns
     -----
     RegistrationWarning : the automatic estimate is unreliable (the result then falls back to
-        the control points, or the identity without them), or the control points disagree.
+        the control points; without them to the coarse estimate when only the refinement
+        failed, else the identity), or the control points disagree.
     """
     t_start = time.perf_counter()
     timings: dict[str, float] = {}

@@ -158,7 +158,7 @@ def test_refinement_failure_keeps_coarse_estimate(monkeypatch):
 def test_subcell_shift_axis_aligned(pitch_old):
     # Ground truth: synth.make_pair's transform, a pure fractional-cell shift with both grids
     # axis-aligned (synthetic ground truth).  The seam bands alone fix the shift only to within
-    # a cell here (4.9 mm error at pitch_old 10 before the pit stage); the pits seen in both
+    # a cell here (about 5 mm error at pitch_old 10 without the pit stage); the pits seen in both
     # scans bring it within the 0.3-cell target.
     p = pair(diameter_mm=8000.0, pitch_new=10.0, pitch_old=pitch_old, rotation_deg=0.0,
              shift_mm=(137.0, -84.0), seed=11)
