@@ -253,7 +253,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
         life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
         ext_life = _life_extremes(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
-                                  censored=lr.censored, threshold=new.meta.threshold, pitch=new.pitch, job=job)
+                                  censored=lr.censored, threshold=new.meta.threshold, pitch=new.pitch, job=job,
+                                  methods=ext_depth)
         ext_for_assess = _merge_extremes(ext_depth, ext_rate, ext_life)
         table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
                                     rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
@@ -287,8 +288,6 @@ def _fill_uncovered_rates(lr, new, old_on_new):
     """
     import dataclasses
 
-    from scipy import ndimage
-
     from .indications import label_indications
 
     labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
@@ -302,8 +301,9 @@ def _fill_uncovered_rates(lr, new, old_on_new):
         loss_s = getattr(lr, f"loss_{side}")
         with np.errstate(divide="ignore", invalid="ignore"):
             ratio = np.where((labels > 0) & np.isfinite(short) & (loss_s > 0), short / loss_s, -1.0)
-        best = ndimage.maximum(ratio, labels, index=np.arange(1, n + 1))
-        best = np.concatenate([[-1.0], np.asarray(best, dtype=np.float32)])
+        sel = labels > 0
+        best = np.full(n + 1, -1.0, dtype=np.float32)
+        np.maximum.at(best, labels[sel], ratio[sel].astype(np.float32))
         fill = np.where(uncovered & (best[labels] >= 0), best[labels] * np.nan_to_num(loss_s), -1.0)
         take = uncovered & (fill >= 0)
         new_short = short.copy()
@@ -399,7 +399,8 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
     :data:`LIFE_LEVEL` quantile of the largest of T block maxima of the fitted distribution
     (censored at the threshold), T = unscanned zone area / block area (at least 1).  It is
     compared with the allowance.  (The quantile is from the fitted parameters; their own
-    uncertainty is in the table's ``depth_eva_upper_mm`` and ``depth_pred_upper_mm``.)  The life is the H where they meet (bisection, 0.05 y),
+    uncertainty is in the table's ``depth_eva_upper_mm`` and ``depth_pred_upper_mm``.)
+    The life is the H where they meet (Brent's method, within 0.05 y on the short side),
     0 if the allowance is already used up at H = 0, and :data:`LIFE_HORIZON_Y` if never
     reached within it.  The distribution (Gumbel or GEV) is chosen once at H = 0.
     Returns zone -> ``{"life_eva_y", "method", "reason"}``.
@@ -425,7 +426,10 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
                   threshold=threshold or None, seed=job.seed, valid=scanned)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
-            z0 = _gumbel_or_gev(depth0, mask, **kw)
+            # the depth fit at H = 0 is the zone's depth statistics: reuse it when given
+            z0 = (methods or {}).get(name)
+            if z0 is None:
+                z0 = _gumbel_or_gev(depth0, mask, **kw)
             if not z0:
                 out[name] = {"life_eva_y": None, "method": "", "reason": z0.reason}
                 continue
@@ -456,11 +460,11 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
             elif excess(LIFE_HORIZON_Y) < 0:
                 life = LIFE_HORIZON_Y
             else:
-                lo, hi = 0.0, LIFE_HORIZON_Y
-                while hi - lo > 0.05:
-                    mid = 0.5 * (lo + hi)
-                    lo, hi = (mid, hi) if excess(mid) < 0 else (lo, mid)
-                life = lo
+                from scipy.optimize import brentq
+
+                # the excess grows with H (every projected loss does); Brent's method needs
+                # far fewer fits than bisection; the root is taken 0.05 y on the short side
+                life = max(0.0, brentq(excess, 0.0, LIFE_HORIZON_Y, xtol=0.02) - 0.05)
         out[name] = {"life_eva_y": life, "method": z0.row().get("eva_method", ""), "reason": ""}
     return out
 
@@ -535,7 +539,8 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old) -> di
                                           pitch=new.pitch, job=job)
     life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
-                               censored=lr.censored & ~covered, threshold=new.meta.threshold, pitch=new.pitch, job=job)
+                               censored=lr.censored & ~covered, threshold=new.meta.threshold, pitch=new.pitch, job=job,
+                               methods=ext_d_rep)
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
