@@ -40,6 +40,11 @@ Example::
 
     [report]
     units = "mm"
+
+    [zones]                  # optional user zones, carved out of the interior
+    rings = 2                # a ring x sector grid ...
+    sectors = 4
+    polygons = [{name = "draw-off", points = [[-3000, -500], [-2000, -500], [-2000, 500]]}]
 """
 
 from __future__ import annotations
@@ -86,6 +91,9 @@ class Job:
     rule_overrides: dict = field(default_factory=dict)
     units: str = "mm"
     block_mm: float = 1000.0
+    zone_rings: int | None = None
+    zone_sectors: int | None = None
+    zone_polygons: list = field(default_factory=list)  # [(name, [(x, y), ...]) in the scans' units]
     seed: int = 0
     allow_absolute_paths: bool = False
     source: str | None = None
@@ -119,6 +127,9 @@ _SCHEMA = {
     ("rules", "overrides"): ("rule_overrides", (dict,)),
     ("report", "units"): ("units", (str,)),
     ("statistics", "block_mm"): ("block_mm", _NUM),
+    ("zones", "rings"): ("zone_rings", (int,)),
+    ("zones", "sectors"): ("zone_sectors", (int,)),
+    ("zones", "polygons"): ("zone_polygons", (list,)),
     ("statistics", "seed"): ("seed", (int,)),
     ("paths", "allow_absolute"): ("allow_absolute_paths", (bool,)),
 }
@@ -143,6 +154,27 @@ def resolve_path(value: str, base: Path, *, allow_absolute: bool, what: str) -> 
         if not allow_absolute:
             raise InputError(f"{what}: path {value!r} escapes the folder {str(base)!r}") from None
     return str(full)
+
+
+def _polygons(val, name):
+    """``[{name = "sump area", points = [[x, y], ...]}, ...]`` -> [(name, [(x, y), ...])]."""
+    out = []
+    for i, item in enumerate(val, start=1):
+        where_ = f"{name}: field 'zones.polygons[{i}]'"
+        if not isinstance(item, dict) or set(item) - {"name", "points"} or "points" not in item:
+            raise InputError(f"{where_}: expected a table with 'name' and 'points'")
+        pts = item["points"]
+        if not isinstance(pts, list) or len(pts) < 3:
+            raise InputError(f"{where_}: 'points' needs at least 3 [x, y] pairs")
+        clean = []
+        for p in pts:
+            if not (isinstance(p, list) and len(p) == 2
+                    and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in p)):
+                raise InputError(f"{where_}: each point must be [x, y] numbers")
+            clean.append((float(p[0]), float(p[1])))
+        label = str(item.get("name") or f"zone{i}")
+        out.append((label, clean))
+    return out
 
 
 def read_job(path) -> Job:
@@ -173,6 +205,10 @@ def read_job(path) -> Job:
             if not isinstance(val, types):
                 want = "/".join(t.__name__ for t in types)
                 raise InputError(f"{name}: field '{section}.{key}': expected {want}, got {type(val).__name__}")
+            if fname in ("zone_rings", "zone_sectors") and not 1 <= val <= 100:
+                raise InputError(f"{name}: field '{section}.{key}': must be between 1 and 100, got {val}")
+            if fname == "zone_polygons":
+                val = _polygons(val, name)
             if fname == "centre":
                 if len(val) != 2 or not all(isinstance(v, _NUM) and not isinstance(v, bool) for v in val):
                     raise InputError(f"{name}: field 'floor.centre': expected two numbers")
@@ -184,6 +220,8 @@ def read_job(path) -> Job:
                 if val < 0 or (val == 0 and fname in ("diameter",)):
                     raise InputError(f"{name}: field '{section}.{key}': must be positive, got {val}")
             values[fname] = val
+    if ("zone_rings" in values) != ("zone_sectors" in values):
+        raise InputError(f"{name}: field 'zones.rings': give both zones.rings and zones.sectors")
     if values.get("default_side", "under") not in ("under", "top"):
         raise InputError(f"{name}: field 'attribution.default_side': must be 'under' or 'top'")
     if values.get("units", "mm") not in ("mm", "in"):

@@ -235,7 +235,11 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         geom = zones.FloorGeometry(diameter_mm=_to_mm(job.diameter, new),
                                    centre=(_to_mm(job.centre[0], new), _to_mm(job.centre[1], new)),
                                    annular_width_mm=_to_mm(job.annular_width, new))
-        zmap = zones.zone_map(new, geom, rules)
+        # polygons first: the first listed user zone wins where zones overlap
+        user = [(zname, [(_to_mm(x, new), _to_mm(y, new)) for x, y in pts]) for zname, pts in job.zone_polygons or []]
+        if job.zone_rings:
+            user.append(zones.ring_sector_zones(job.zone_rings, job.zone_sectors))
+        zmap = zones.zone_map(new, geom, rules, user_zones=user or None)
 
     # --- extremes ------------------------------------------------------------------
     with prog.stage("extremes"):
@@ -335,6 +339,8 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
+        if not area > 0 or not mask.any():
+            continue
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
             ext_d[name] = _gumbel_or_gev(depth, mask, pitch_mm=pitch, zone_area_mm2=area,
@@ -417,7 +423,7 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
     out = {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
-        if not (scanned & mask).any():
+        if not (scanned & mask).any() or not float(zmap.areas_mm2[k]) > 0:
             continue
         allowance = float(nominal - np.nanmin(np.where(mask, mrt, np.nan)))
         in_zone = scanned & mask

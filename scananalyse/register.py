@@ -85,6 +85,9 @@ LOSS_SCALE_FRACTION = 0.25
 #: The coarse search runs on the finest pyramid level whose long side is at most this many cells
 #: more than needed (the coarsest level with at least this many cells on its long side).
 COARSE_CELLS = 128
+#: ... but no coarser than this: a 40 mm seam band keeps a quarter of a coarse cell, so the seams
+#: still show in the sweep on large floors (at 640 mm, the old choice for 100 m, they vanish). [mm]
+COARSE_MAX_PITCH_MM = 160.0
 #: An entirely unscanned block of this size marks a large unscanned area (weld seams are narrower). [mm]
 LARGE_AREA_MM = 80.0
 #: Feature value of narrow unscanned cells (weld seams, plate edges); loss counts up to 1.
@@ -734,8 +737,13 @@ def _sample_level(lv: _Level, arr: np.ndarray, qx, qy):
 # --------------------------------------------------------------------------------------
 def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
                       centre: tuple[float, float], max_shift_mm: float,
-                      min_overlap_frac: float = 0.25, boundary_weight: float = BOUNDARY_WEIGHT):
+                      min_overlap_frac: float = 0.25, boundary_weight: float = BOUNDARY_WEIGHT,
+                      extra_weights: tuple = ()):
     """Best (ncc, tau_x, tau_y) per angle; tau in mm, the shift to add to ``centre``.
+
+    With ``extra_weights`` the same sweep is also computed for feature images with the
+    large unscanned areas at those weights (sharing the resampling and the mask
+    transforms), and a list of the per-angle lists is returned, ``boundary_weight`` first.
 
     Notes
     -----
@@ -745,21 +753,25 @@ def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
              sqrt([C(f1^2, m2) - C(f1, m2)^2 / C(m1, m2)] [C(m1, f2^2) - C(m1, f2)^2 / C(m1, m2)]),
     f1 and f2 already multiplied by their masks.
     """
-    fn = new_lv.coarse(boundary_weight)
-    h, w = fn.shape
+    weights = (boundary_weight,) + tuple(extra_weights)
+    h, w = new_lv.img.shape
     pc = new_lv.pitch
     s = int(math.ceil(max_shift_mm / pc)) + 1
     eh, ew = h + 2 * s, w + 2 * s
     shape = (_fft.next_fast_len(eh + s + 1, real=True), _fft.next_fast_len(ew + s + 1, real=True))
-    a = np.zeros((eh, ew), dtype=np.float64)
-    m1 = np.zeros((eh, ew), dtype=np.float64)
-    a[s:s + h, s:s + w] = fn
-    m1[s:s + h, s:s + w] = 1.0
     kw = dict(s=shape, workers=-1)
-    fa = _fft.rfft2(a, **kw)
-    fa2 = _fft.rfft2(a * a, **kw)
+    m1 = np.zeros((eh, ew), dtype=np.float64)
+    m1[s:s + h, s:s + w] = 1.0
     fm1 = _fft.rfft2(m1, **kw)
     n1 = float(m1.sum())
+    del m1
+    fas, fa2s = [], []
+    for bw in weights:
+        a = np.zeros((eh, ew), dtype=np.float64)
+        a[s:s + h, s:s + w] = new_lv.coarse(bw)
+        fas.append(_fft.rfft2(a, **kw))
+        fa2s.append(_fft.rfft2(a * a, **kw))
+    del a
     ex = new_lv.x0 - s * pc + pc * np.arange(ew)
     ey = new_lv.y0 - s * pc + pc * np.arange(eh)
     X, Y = np.meshgrid(ex - centre[0], ey - centre[1])
@@ -768,44 +780,46 @@ def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
     tau = np.arange(-s, s + 1) * pc
     TX, TY = np.meshgrid(tau, tau)
     in_window = np.hypot(TX, TY) <= max_shift_mm + 1e-9
-    best = []
-    go = old_lv.coarse(boundary_weight)
+    best = [[] for _ in weights]
+    gos = [old_lv.coarse(bw) for bw in weights]
+
+    def corr(p, q):
+        full = _fft.irfft2(p * np.conj(q), s=shape, workers=-1)
+        return full[np.ix_(win_r, win_c)]
+
     for ang in angles_deg:
         th = math.radians(ang)
         c, sn = math.cos(th), math.sin(th)
         qx = c * X + sn * Y
         qy = -sn * X + c * Y
-        g, inside = _sample_level(old_lv, go, qx, qy)
+        g0, inside = _sample_level(old_lv, gos[0], qx, qy)
         m2 = inside.astype(np.float64)
-        g = g.astype(np.float64) * m2
-        fb = _fft.rfft2(g, **kw)
-        fb2 = _fft.rfft2(g * g, **kw)
         fm2 = _fft.rfft2(m2, **kw)
-
-        def corr(p, q):
-            full = _fft.irfft2(p * np.conj(q), s=shape, workers=-1)
-            return full[np.ix_(win_r, win_c)]
-
         c_mm = corr(fm1, fm2)
-        c_ab = corr(fa, fb)
-        c_am = corr(fa, fm2)
-        c_mb = corr(fm1, fb)
-        c_a2m = corr(fa2, fm2)
-        c_mb2 = corr(fm1, fb2)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            cm = np.maximum(c_mm, 1e-9)
-            num = c_ab - c_am * c_mb / cm
-            va = c_a2m - c_am ** 2 / cm
-            vb = c_mb2 - c_mb ** 2 / cm
-            ncc = num / np.sqrt(np.maximum(va, 0) * np.maximum(vb, 0))
-        ok = in_window & (c_mm >= min_overlap_frac * n1) & (va > 1e-9 * cm) & (vb > 1e-9 * cm)
-        ncc = np.where(ok & np.isfinite(ncc), ncc, -1.0)
-        k = int(np.argmax(ncc))
-        i, j = divmod(k, ncc.shape[1])
-        di = _parabolic(ncc[i - 1, j], ncc[i, j], ncc[i + 1, j]) if 0 < i < ncc.shape[0] - 1 else 0.0
-        dj = _parabolic(ncc[i, j - 1], ncc[i, j], ncc[i, j + 1]) if 0 < j < ncc.shape[1] - 1 else 0.0
-        best.append((float(ncc[i, j]), (j - s + dj) * pc, (i - s + di) * pc))
-    return best
+        cm = np.maximum(c_mm, 1e-9)
+        for iw in range(len(weights)):
+            g = g0 if iw == 0 else _sample_level(old_lv, gos[iw], qx, qy)[0]
+            g = g.astype(np.float64) * m2
+            fb = _fft.rfft2(g, **kw)
+            fb2 = _fft.rfft2(g * g, **kw)
+            c_ab = corr(fas[iw], fb)
+            c_am = corr(fas[iw], fm2)
+            c_mb = corr(fm1, fb)
+            c_a2m = corr(fa2s[iw], fm2)
+            c_mb2 = corr(fm1, fb2)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                num = c_ab - c_am * c_mb / cm
+                va = c_a2m - c_am ** 2 / cm
+                vb = c_mb2 - c_mb ** 2 / cm
+                ncc = num / np.sqrt(np.maximum(va, 0) * np.maximum(vb, 0))
+            ok = in_window & (c_mm >= min_overlap_frac * n1) & (va > 1e-9 * cm) & (vb > 1e-9 * cm)
+            ncc = np.where(ok & np.isfinite(ncc), ncc, -1.0)
+            k = int(np.argmax(ncc))
+            i, j = divmod(k, ncc.shape[1])
+            di = _parabolic(ncc[i - 1, j], ncc[i, j], ncc[i + 1, j]) if 0 < i < ncc.shape[0] - 1 else 0.0
+            dj = _parabolic(ncc[i, j - 1], ncc[i, j], ncc[i, j + 1]) if 0 < j < ncc.shape[1] - 1 else 0.0
+            best[iw].append((float(ncc[i, j]), (j - s + dj) * pc, (i - s + di) * pc))
+    return best if extra_weights else best[0]
 
 
 def _parabolic(ym, y0, yp) -> float:
@@ -1206,10 +1220,11 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         po = _pyramid(old)
         timings["features"] = time.perf_counter() - t0
 
-        # coarse level: coarsest new level with at least COARSE_CELLS on the long side
+        # coarse level: coarsest new level with at least COARSE_CELLS on the long side, but not
+        # coarser than COARSE_MAX_PITCH_MM (on large floors the seam bands would vanish)
         kc = 0
         for k, lv in enumerate(pn):
-            if max(lv.img.shape) >= COARSE_CELLS:
+            if max(lv.img.shape) >= COARSE_CELLS and lv.pitch <= COARSE_MAX_PITCH_MM * (1 + 1e-9):
                 kc = k
         new_c = pn[kc]
         old_c = _closest_level(po, new_c.pitch)
@@ -1225,18 +1240,29 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         angles = centre_tr.rotation_deg + step * np.arange(-nstep, nstep + 1)
         t0 = time.perf_counter()
         # shift centre for each angle: rotate about the origin, then translate by the seed's shift
-        res = _masked_ncc_sweep(new_c, old_c, angles, (centre_tr.dx_mm, centre_tr.dy_mm),
-                                shift_r + new_c.pitch)
+        # The sweep runs twice in one pass: with the coverage outline (to place the floor) and
+        # without it (seams, plate edges and pits only: for the rotation contrast).
+        res, res_seam = _masked_ncc_sweep(new_c, old_c, angles, (centre_tr.dx_mm, centre_tr.dy_mm),
+                                          shift_r + new_c.pitch, extra_weights=(0.0,))
         timings["coarse_search"] = time.perf_counter() - t0
         peaks = np.array([r[0] for r in res])
         ib = int(np.argmax(peaks))
         da = _parabolic(peaks[ib - 1], peaks[ib], peaks[ib + 1]) if 0 < ib < len(peaks) - 1 else 0.0
         ang = float(angles[ib] + da * step)
         tr = RigidTransform(ang, centre_tr.dx_mm + res[ib][1], centre_tr.dy_mm + res[ib][2])
-        # rotation contrast: meaningful only over a wide sweep (not the small control-point window)
-        contrast = float(peaks[ib] - np.median(peaks)) if half_rot >= 2.0 and len(peaks) >= 5 else None
+        # Rotation contrast, meaningful only over a wide sweep (not the small control-point window):
+        # the seam-only NCC at the chosen angle (best of it and its two neighbours) minus the median
+        # over the sweep.  Not the NCC with the outline: a round outline fits at every angle, and on
+        # large floors, where the coarse cell is several seam widths, it dominates that NCC, so its
+        # peak stood only 0.002-0.02 above its median although the rotation was well determined.
+        peaks_seam = np.array([r[0] for r in res_seam])
+        contrast = None
+        if half_rot >= 2.0 and len(peaks) >= 5:
+            contrast = float(np.max(peaks_seam[max(0, ib - 1):ib + 2]) - np.median(peaks_seam))
+            details["rotation_contrast_with_outline"] = float(peaks[ib] - np.median(peaks))
         details.update(coarse_pitch_mm=new_c.pitch, angle_step_deg=step, n_angles=int(len(angles)),
-                       coarse_peak_ncc=float(peaks[ib]), coarse_estimate=tr.to_dict())
+                       coarse_peak_ncc=float(peaks[ib]), coarse_peak_ncc_seams=float(peaks_seam[ib]),
+                       coarse_estimate=tr.to_dict())
 
         # next-best coarse candidates: other local maxima of the sweep within 80 % of the best peak
         cands = []

@@ -93,3 +93,37 @@ def test_job_defaults_are_the_documented_ones():
     # Defaults stated in docs and domain notes: unattributed loss is underside (domain.md §2),
     # target interval 10 years (design contract §3.4).
     assert job.default_side == "under" and job.target_interval == 10.0 and job.units == "mm"
+
+
+def test_user_zones_reach_the_zone_table(tmp_path):
+    # A ring x sector grid and a polygon from the job file become zones of their own.
+    from scananalyse.pipeline import analyse
+    from scananalyse.synth import make_pair
+
+    p = _write(tmp_path, """
+[floor]
+diameter = 4000
+[zones]
+rings = 2
+sectors = 2
+polygons = [{name = "draw-off", points = [[-1500, -400], [-800, -400], [-800, 300], [-1500, 300]]}]
+""")
+    job = read_job(p)
+    assert job.zone_rings == 2 and job.zone_polygons[0][0] == "draw-off"
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=4)
+    an = analyse(pair.new, None, job=job)
+    names = list(an.zone_table["zone"])
+    assert {"critical", "draw-off", "r1s1", "r1s2", "r2s1", "r2s2"} <= set(names)
+    poly = an.zone_table.set_index("zone").loc["draw-off", "area_m2"]
+    assert poly == pytest.approx(0.7 * 0.7, rel=0.05)  # 700 mm x 700 mm square, cell-counted
+
+
+@pytest.mark.parametrize("text, match", [
+    ("[zones]\nrings = 2\n", r"give both zones\.rings and zones\.sectors"),
+    ("[zones]\nrings = 0\nsectors = 2\n", r"field 'zones\.rings': must be between 1 and 100"),
+    ("[zones]\npolygons = [{name = \"a\", points = [[0, 0], [1, 1]]}]\n", r"zones\.polygons\[1\]'.*at least 3"),
+    ("[zones]\npolygons = [{name = \"a\", points = [[0, 0], [1, \"x\"], [2, 2]]}]\n", r"zones\.polygons\[1\]'.*numbers"),
+])
+def test_bad_user_zones(tmp_path, text, match):
+    with pytest.raises(InputError, match=match):
+        read_job(_write(tmp_path, text))
