@@ -35,6 +35,8 @@ def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
         p.add_argument("--control-points", help="matching points old/new for registration (docs/registration.md)")
     p.add_argument("--patches", help="re-assess with the engineer's own patch set (patches CSV or DXF)")
     p.add_argument("--repair-to", type=float, help="repair everything below this thickness [mm] (the code's way)")
+    p.add_argument("--under-cause-removed", action="store_true",
+                   help="the cause of underside corrosion under the patches is removed: no underside rate there")
     p.add_argument("--ruleset", help="rule set name (default api653)")
     p.add_argument("--units", choices=["mm", "in"], help="display units in the report and console (files keep SI)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
@@ -107,7 +109,7 @@ def _job_from_args(args):
         if v is not None:
             changes[f] = os.path.abspath(v) if f in ("shapes", "repairs", "control_points", "patches") else v
     for a, f in {"leak_detection": "leak_detection", "cp": "cp_effective", "coated": "coated",
-                 "rpb": "release_prevention_barrier"}.items():
+                 "rpb": "release_prevention_barrier", "under_cause_removed": "under_cause_removed"}.items():
         if getattr(args, a, False):
             changes[f] = True
     job = job.replace(**changes)

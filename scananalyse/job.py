@@ -87,6 +87,7 @@ class Job:
     patch_thickness_mm: float | None = None
     repair_to_mm: float | None = None
     patches: str | None = None
+    under_cause_removed: bool = False
     ruleset: str = "api653"
     rule_overrides: dict = field(default_factory=dict)
     units: str = "mm"
@@ -123,6 +124,7 @@ _SCHEMA = {
     ("repair", "patch_thickness"): ("patch_thickness_mm", _NUM),
     ("repair", "repair_to"): ("repair_to_mm", _NUM),
     ("repair", "patches"): ("patches", (str,)),
+    ("repair", "under_cause_removed"): ("under_cause_removed", (bool,)),
     ("rules", "name"): ("ruleset", (str,)),
     ("rules", "overrides"): ("rule_overrides", (dict,)),
     ("report", "units"): ("units", (str,)),

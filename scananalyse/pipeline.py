@@ -61,6 +61,7 @@ class Analysis:
     zones_repaired: pd.DataFrame
     repaired_maps: dict
     repair_to_table: pd.DataFrame | None
+    patch_note: str | None
     attribution: dict
     assumptions: list
     notes: list = field(default_factory=list)
@@ -86,6 +87,7 @@ class CompareResult:
     tank: str
     single: bool
     files: list
+    notes: list = field(default_factory=list)
 
     def console_summary(self) -> str:
         u = self.units
@@ -119,6 +121,8 @@ class CompareResult:
         else:
             lines.append("proposed patch plates: none needed for the target interval")
         lines.append(f"indications: {len(self.indications)} (indications.csv)")
+        for n in self.notes:
+            lines.append("note: " + n)
         lines.append(f"report: {self.report_path}")
         lines.append("CAUTION: " + CAUTION)
         return "\n".join(lines)
@@ -535,7 +539,8 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old) -> di
     n_uncovered, _ = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
     t_rep, rt_rep, ru_rep, covered = repair.apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
                                                           x0=new.x0, y0=new.y0, pitch=new.pitch,
-                                                          patch_thickness_mm=job.patch_thickness_mm, rules=rules)
+                                                          patch_thickness_mm=job.patch_thickness_mm, rules=rules,
+                                                          under_cause_removed=job.under_cause_removed)
     # Patched cells: the patch is the new top surface; its loss so far is nil, so the side
     # attribution no longer matters there (rates carry the side).
     # The floor as repaired gets its own extreme-value statistics: patched cells read the
@@ -552,7 +557,15 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old) -> di
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
                                     rate_short_available=have_old)
     zones_rep = _add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
-    return {"needs_repair": needs, "patches": patches, "patch_checks": checks, "uncovered_cells": int(n_uncovered),
+    patch_note = None
+    if covered.any():
+        life_p = float(np.nanmin(np.where(covered, life_rep, np.nan))) if np.isfinite(np.where(covered, life_rep, np.nan)).any() else np.inf
+        if life_p < job.target_interval:
+            patch_note = (f"The patch plates themselves last {life_p:.1f} years at the measured rates (the underside "
+                          "rate is kept under a patch unless its cause is removed), short of the target of "
+                          f"{job.target_interval:g} years: consider thicker plates, effective cathodic protection "
+                          "or removing the cause (--under-cause-removed), or replacing plate.")
+    return {"needs_repair": needs, "patches": patches, "patch_note": patch_note, "patch_checks": checks, "uncovered_cells": int(n_uncovered),
             "zones_repaired": zones_rep,
             "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep, "life_local_repaired": life_rep,
                               "rate_under_repaired": ru_rep, "patched": covered},
@@ -737,6 +750,8 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
             + (f", {att['cells_top_depth']} have a measured top-side depth" if att.get("cells_top_depth") else "")
             + f"; {att['cells_defaulted']} ({att['defaulted_pct']:.0f} %) were not attributed and count as "
             f"{'underside' if att['default_side'] == 'under' else 'top-side'} loss (the default).")
+    if an.patch_note:
+        notes.append(an.patch_note)
     if an.uncovered_cells:
         notes.append(f"{an.uncovered_cells} cells needing repair for the target interval are not covered by any patch.")
     return ReportData(
@@ -831,7 +846,8 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
     return CompareResult(out_dir=str(out_dir), zones=an.zone_table, zones_repaired=an.zones_repaired,
                          patches=an.patches, indications=an.indications, registration=reg,
                          report_path=str(Path(out_dir) / "report.html"), units=job.units,
-                         tank=an.new.meta.tank, single=single, files=files)
+                         tank=an.new.meta.tank, single=single, files=files,
+                         notes=list(an.notes) + ([an.patch_note] if an.patch_note else []))
 
 
 def compare(old_path, new_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:
