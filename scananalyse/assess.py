@@ -294,7 +294,7 @@ def local_life_map(thickness, rate_top, rate_under, mrt) -> np.ndarray:
     s = (np.maximum(np.asarray(rate_top, dtype=np.float32), np.float32(0))
          + np.maximum(np.asarray(rate_under, dtype=np.float32), np.float32(0)))
     margin = t - np.asarray(mrt, dtype=np.float32)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         life = margin / s
     life = np.where(s > 0, life, np.float32(np.inf))
     life = np.where(margin < 0, np.float32(0), life)

@@ -89,6 +89,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, default=None, help="local cluster worker processes (default: cores)")
     p.add_argument("--scheduler", default=None, help="address of an existing Dask scheduler")
     p.add_argument("--force", action="store_true", help="recompute tanks whose results exist")
+    p.add_argument("--timeout", type=float, default=None,
+                   help="give up on tanks without a result after this many seconds of the whole run")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     return parser
 
@@ -201,7 +203,7 @@ def _cmd_fleet(args) -> int:
     from .fleet import run_fleet
 
     res = run_fleet(args.manifest, out_dir=args.out, workers=args.workers, scheduler=args.scheduler,
-                    force=args.force, quiet=args.quiet)
+                    force=args.force, quiet=args.quiet, timeout_s=args.timeout)
     print(res["summary"])
     return 0
 
@@ -228,8 +230,10 @@ def main(argv=None) -> int:
         return 2
     old_show = warnings.showwarning
     warnings.showwarning = _show_warning
+    from .outputs import interrupts_as_keyboard
+
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), interrupts_as_keyboard():
             warnings.simplefilter("always", ScanWarning)
             return _COMMANDS[args.command](args)
     except InputError as exc:
@@ -241,6 +245,9 @@ def main(argv=None) -> int:
     except BrokenPipeError:
         return 1
     except Exception as exc:  # an internal fault: say so in one line, traceback only with --debug
+        if isinstance(exc.__context__, KeyboardInterrupt) or isinstance(exc.__cause__, KeyboardInterrupt):
+            sys.stderr.write("scananalyse: interrupted; no complete output was written\n")
+            return 130
         if args.debug:
             raise
         sys.stderr.write(f"scananalyse: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)\n")

@@ -191,7 +191,7 @@ tr.bad td {{ background: #fde8e0; }} .caution {{ border-left: 4px solid #b5471b;
 
 
 def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str | None = None,
-              force: bool = False, quiet: bool = False) -> dict:
+              force: bool = False, quiet: bool = False, timeout_s: float | None = None) -> dict:
     """Run every tank of a manifest on Dask; write ``fleet.csv`` and ``fleet.html``.
 
     Returns a dict with ``table`` (the ranked DataFrame), ``summary`` (text) and ``seconds``.
@@ -214,12 +214,23 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
     try:
         futures = [client.submit(run_tank, e, str(out), force, key=f"tank-{i}-{_safe_name(e['tank'])}", pure=False)
                    for i, e in enumerate(entries)]
-        for k, fut in enumerate(as_completed(futures), start=1):
-            row = fut.result()
-            rows.append(row)
-            if not quiet:
-                msg = row.get("error") or f"{row.get('interval_recommended_y', float('nan')):.1f} y, {row.get('worst_zone', '')}"
-                sys.stderr.write(f"scananalyse fleet: [{k}/{len(entries)}] {row['tank']}: {row['status']}: {msg}\n")
+        done = set()
+        try:
+            for k, fut in enumerate(as_completed(futures, timeout=timeout_s), start=1):
+                row = fut.result()
+                done.add(fut.key)
+                rows.append(row)
+                if not quiet:
+                    msg = row.get("error") or f"{row.get('interval_recommended_y', float('nan')):.1f} y, {row.get('worst_zone', '')}"
+                    sys.stderr.write(f"scananalyse fleet: [{k}/{len(entries)}] {row['tank']}: {row['status']}: {msg}\n")
+        except TimeoutError:
+            # a tank that never finishes (e.g. a damaged HDF5 file hanging the HDF5 library)
+            # becomes one row, like any other failed tank
+            for e, fut in zip(entries, futures):
+                if fut.key not in done:
+                    fut.cancel()
+                    rows.append({"tank": e["tank"], "status": "timeout", "report": "",
+                                 "error": f"no result within {timeout_s:g} s"})
     finally:
         client.close()
         if cluster is not None:

@@ -15,7 +15,7 @@ import math
 import os
 import shutil
 import signal
-import tempfile
+import secrets
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -61,7 +61,9 @@ def output_folder(path, *, force: bool = False):
             raise InputError(f"{target}: output folder exists; use --force to replace it")
     parent = target.resolve().parent
     parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=parent))
+    # not mkdtemp: it makes the folder 0700; an output folder gets the ordinary umask mode
+    tmp = parent / f".{target.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
+    tmp.mkdir(0o777)
     try:
         with interrupts_as_keyboard():
             yield tmp

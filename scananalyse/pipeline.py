@@ -149,8 +149,28 @@ def _to_mm(value, scan: FloorScan):
 # ------------------------------------------------------------------------------------
 # analysis
 # ------------------------------------------------------------------------------------
+def read_job_inputs(job: Job, new: FloorScan, rules=None) -> dict:
+    """Read every file the job names besides the scans (shapes, top-side depth, repair
+    records, the engineer's patches), so bad files are refused before any work is done."""
+    from . import attribution, rates, repair
+    from .rules import get_ruleset
+
+    rules = rules or get_ruleset(job.ruleset, job.rule_overrides or None)
+    top_depth = None
+    if job.top_depth:
+        from .io import read_scan
+
+        top_depth = attribution.top_depth_map(read_scan(job.top_depth), new)
+    return {
+        "shapes": attribution.read_shapes(job.shapes, scan=new) if job.shapes else None,
+        "top_depth": top_depth,
+        "repairs": rates.read_repairs(job.repairs, scan=new) if job.repairs else None,
+        "patches": repair.read_patches(job.patches, rules=rules) if job.patches else None,
+    }
+
+
 def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
-            registration=None) -> Analysis:
+            registration=None, inputs: dict | None = None) -> Analysis:
     """Run every computing stage on one floor (no files written).
 
     Parameters
@@ -160,6 +180,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     job : settings (diameter etc. in the scans' units).
     progress : optional :class:`Progress`.
     registration : optional precomputed :class:`~scananalyse.register.Registration`.
+    inputs : the job's other files already read (:func:`read_job_inputs`); read here if None.
     """
     from . import assess, attribution, extremes, indications, rates, repair, zones
     from .rules import get_ruleset
@@ -170,6 +191,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     if job.diameter is None:
         raise InputError("--diameter: the tank's inside diameter is required")
     rules = get_ruleset(job.ruleset, job.rule_overrides or None)
+    if inputs is None:
+        inputs = read_job_inputs(job, new, rules)
 
     # --- registration ------------------------------------------------------------
     reg = registration
@@ -193,15 +216,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     # --- attribution ---------------------------------------------------------------
     with prog.stage("attribution"):
-        shapes = attribution.read_shapes(job.shapes, scan=new) if job.shapes else None
+        shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
         side_raw = attribution.raw_side_map(new, shapes=shapes)
         side = attribution.resolve_side(side_raw, job.default_side)
-        top_depth = None
-        if job.top_depth:
-            from .io import read_scan
-
-            top_depth = attribution.top_depth_map(read_scan(job.top_depth), new)
-        repairs = rates.read_repairs(job.repairs, scan=new) if job.repairs else None
     assumptions.append(f"Unattributed loss is counted as {job.default_side}side loss"
                        if job.default_side == "under" else "Unattributed loss is counted as top-side loss")
 
@@ -276,7 +293,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     # --- repairs -------------------------------------------------------------------
     with prog.stage("repairs"):
-        rep = _repairs(new, lr, side, zmap, rules, options, ext_for_assess, mrt, job, old is not None)
+        rep = _repairs(new, lr, side, zmap, rules, options, ext_for_assess, mrt, job, old is not None,
+                       inputs["patches"])
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
@@ -519,7 +537,7 @@ def _indications(new, old, transform, lr, side, zmap, job):
     return ind, gone
 
 
-def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old) -> dict:
+def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old, own_patches=None) -> dict:
     """Patch planning for the target interval, or the engineer's patches, then re-assessment."""
     from . import assess, repair
 
@@ -527,8 +545,8 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old) -> di
     needs = repair.cells_needing_repair(new.thickness, lr.rate_top, lr.rate_under, mrt_mm=mrt,
                                         target_years=job.target_interval, repair_to_mm=job.repair_to_mm)
     checks = None
-    if job.patches:
-        patches = repair.read_patches(job.patches, rules=rules)
+    if own_patches is not None:
+        patches = own_patches
     else:
         patches = repair.plan_patches(needs, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules, plate=new.plate,
                                       critical_mask=critical, zone_labels=zmap.labels, zone_names=zmap.names,
@@ -831,15 +849,32 @@ def _load(path, prog):
     return read_scan(path)
 
 
+def _import_stages():
+    """Import every stage up front: an interrupt must never land inside a lazy import."""
+    from . import assess, attribution, extremes, indications, rates, register, repair, zones  # noqa: F401
+    from .report import figures, html  # noqa: F401
+
+
+def _check_out_dir(out_dir, force):
+    p = Path(out_dir)
+    if p.exists() and not p.is_dir():
+        raise InputError(f"{p}: exists and is not a folder")
+    if p.exists() and not force:
+        raise InputError(f"{p}: output folder exists; use --force to replace it")
+
+
 def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
     from .outputs import output_folder
 
+    _import_stages()
+    _check_out_dir(out_dir, force)
     prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
     with prog.stage("load"):
         new = _load(new_path, prog)
         old = None if single else _load(old_path, prog)
+        inputs = read_job_inputs(job, new)
     with output_folder(out_dir, force=force) as tmp:
-        an = analyse(new, old, job=job, progress=prog)
+        an = analyse(new, old, job=job, progress=prog, inputs=inputs)
         files = write_outputs(an, tmp, progress=prog)
     prog.finish()
     reg = an.registration.to_dict() if an.registration is not None else None
@@ -865,6 +900,8 @@ def register_files(old_path, new_path, *, out_dir, control_points=None, force=Fa
     from .outputs import output_folder, write_json
     from .register import register
 
+    _import_stages()
+    _check_out_dir(out_dir, force)
     prog = Progress(["load", "registration"], quiet=quiet)
     with prog.stage("load"):
         old = _load(old_path, prog)

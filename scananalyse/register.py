@@ -96,6 +96,9 @@ SEAM_VALUE = 1.0
 BOUNDARY_WEIGHT = 0.5
 #: Cells of the newer feature image used per Gauss-Newton level (strongest gradients).
 N_SAMPLES = 100000
+#: The finer refinement levels are skipped when a level with the full sample count moved the
+#: estimate by at most this many cells of the newer scan anywhere on the floor.
+SKIP_MOVE_CELLS = 0.05
 #: Largest number of cells used for the score and quality figures (strided subsample above).
 QUALITY_CELLS = 500_000
 #: A pit (for the sub-cell stage) is a group of cells whose loss exceeds the floor's median loss
@@ -587,30 +590,37 @@ def _large_unscanned(unscanned: np.ndarray, pitch: float, block_mm: float) -> np
     """Unscanned cells belonging to large unscanned areas (outside the floor, obstructions).
 
     A morphological opening of the unscanned mask by a square of about ``block_mm``
-    (box filters, so the cost does not grow with the size) keeps the areas such a
-    square fits into and drops the narrow unscanned lines of weld seams; the result
-    is then grown by the same square so the ends of seams that run into a large area
-    are left out in both outages alike.  Outside the grid counts as unscanned.  On
-    fine grids the opening runs on 2x2 (or coarser) block means to save time.
+    (separable running minimum and maximum filters, so the cost does not grow with the
+    size) keeps the areas such a square fits into and drops the narrow unscanned lines of
+    weld seams; the result is then grown by the same square so the ends of seams that run
+    into a large area are left out in both outages alike.  Outside the grid counts as
+    unscanned.  On fine grids the opening runs on blocks of 2x2 (or more) cells, a block
+    counting as unscanned when all its cells are, to save time.
     """
-    u = unscanned.astype(np.float32)
+    # Blocks of f x f cells that are entirely unscanned (odd last row/column dropped).
+    full_blocks = unscanned
     f = 1
-    while pitch * f * 8 <= block_mm and min(u.shape) >= 64:
-        u = _half(u)
+    while pitch * f * 8 <= block_mm and min(full_blocks.shape) >= 64:
+        h2, w2 = full_blocks.shape[0] // 2, full_blocks.shape[1] // 2
+        full_blocks = (full_blocks[0:2 * h2:2, 0:2 * w2:2] & full_blocks[1:2 * h2:2, 0:2 * w2:2]
+                       & full_blocks[0:2 * h2:2, 1:2 * w2:2] & full_blocks[1:2 * h2:2, 1:2 * w2:2])
         f *= 2
     k = max(3, int(math.ceil(block_mm / (pitch * f))) | 1)
-    core = _ndi.uniform_filter(u, size=k, mode="constant", cval=1.0) > 0.999
-    del u
-    opened = _ndi.uniform_filter(core.astype(np.float32), size=2 * k - 1, mode="constant",
-                                 cval=0.0) > 1e-3
-    if f > 1:
-        opened = np.repeat(np.repeat(opened, f, axis=0), f, axis=1)
-        h, w = unscanned.shape
-        full = np.zeros((h, w), dtype=bool)
-        full[:opened.shape[0], :opened.shape[1]] = opened[:h, :w]
-        opened = full
-    opened &= unscanned
-    return opened
+    # Opening by a k x k square: erosion (every block of the square unscanned), then dilation.
+    core = _ndi.minimum_filter(full_blocks, size=k, mode="constant", cval=True)
+    del full_blocks
+    opened = _ndi.maximum_filter(core, size=2 * k - 1, mode="constant", cval=False)
+    del core
+    if f == 1:
+        opened &= unscanned
+        return opened
+    h, w = unscanned.shape
+    hb, wb = opened.shape
+    out = np.zeros((h, w), dtype=bool)
+    out[:hb * f, :wb * f] = unscanned[:hb * f, :wb * f]
+    view = out[:hb * f, :wb * f].reshape(hb, f, wb, f)
+    view &= opened[:, None, :, None]
+    return out
 
 
 def _features(scan: FloorScan, *, loss_scale_mm: float | None = None,
@@ -622,8 +632,8 @@ def _features(scan: FloorScan, *, loss_scale_mm: float | None = None,
     np.clip(f, 0.0, 1.0, out=f)
     unscanned = np.isnan(t)
     big = _large_unscanned(unscanned, scan.pitch, block_mm)
-    f[unscanned] = np.float32(SEAM_VALUE)
-    f[big] = 0.0
+    np.copyto(f, np.float32(SEAM_VALUE), where=unscanned)
+    np.copyto(f, np.float32(0.0), where=big)
     return f, big
 
 
@@ -709,7 +719,8 @@ def _gradient(a: np.ndarray, pitch: float) -> tuple[np.ndarray, np.ndarray]:
 
 def _pyramid(scan: FloorScan, min_cells: int = 16) -> list[_Level]:
     img, big = _features(scan)
-    levels = [_Level(img, big.astype(np.float32), scan.x0, scan.y0, scan.pitch)]
+    # the finest level keeps the large-area mask as bool (_half and coarse() take it as 0/1)
+    levels = [_Level(img, big, scan.x0, scan.y0, scan.pitch)]
     while min(levels[-1].img.shape) // 2 >= min_cells:
         lv = levels[-1]
         levels.append(_Level(_half(lv.img), _half(lv.big), lv.x0 + lv.pitch / 2,
@@ -1311,10 +1322,15 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
                     tr = coarse_tr          # not the wandering iterate
                 break
             last_good = (tr, info)
-            # Many samples and no move at this level: a finer level would not move either
-            # (saves the full-resolution passes on large floors).
-            if (k > 0 and info["converged"] and info["iterations"] == 1 and info["n"] >= n_samples
-                    and info.get("cov") is not None):
+            # Many samples and (almost) no move at this level: a finer level would not move either
+            # (saves the full-resolution passes on large floors).  The move is bounded over the
+            # floor by |change of shift| + |change of angle| x rim radius.
+            move = (math.hypot(tr.dx_mm - start.dx_mm, tr.dy_mm - start.dy_mm)
+                    + abs(tr.theta - start.theta) * rmax)
+            entry["move_mm"] = float(move)
+            if (k > 0 and info["converged"] and info["n"] >= n_samples and info.get("cov") is not None
+                    and (info["iterations"] == 1 or move <= SKIP_MOVE_CELLS * new.pitch)):
+                details["refine_skipped_below_pitch_mm"] = lv_n.pitch
                 break
         timings["refine"] = time.perf_counter() - t0
         details["refine_levels"] = levels_done

@@ -48,6 +48,34 @@ class _Header:
 
 
 # --------------------------------------------------------------------------- reading
+_CR_MESSAGE = "carriage return inside a line (old Mac line endings?); save with LF or CRLF"
+
+
+def _looks_utf16(head: bytes) -> bool:
+    """True for UTF-16 text: a UTF-16 byte-order mark, or ASCII with every other byte NUL."""
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")):
+        return True
+    pairs = head[: len(head) // 2 * 2]
+    if len(pairs) < 16:
+        return False
+    even, odd = pairs[0::2], pairs[1::2]
+    # ASCII text as UTF-16: one byte of each pair NUL, the other printable or a line break.
+    for nul, text in ((even, odd), (odd, even)):
+        if nul.count(0) == len(nul) and all(b >= 32 or b in (9, 10, 13) for b in text):
+            return True
+    return False
+
+
+def _nul_line(head: bytes) -> int:
+    """1-based line of the first NUL byte in ``head``; 1 when the text before it is not UTF-8."""
+    at = head.index(b"\x00")
+    start = head.rfind(b"\n", 0, at) + 1
+    try:
+        head[:start].decode("utf-8")
+    except UnicodeDecodeError:
+        return 1  # binary from the start, not a text file with one bad byte
+    return head[:start].count(b"\n") + 1
+
 def _read_header(path: str) -> _Header:
     """Parse ``# key: value`` lines and the column header row (bytes, strict UTF-8)."""
     hdr = _Header()
@@ -56,8 +84,11 @@ def _read_header(path: str) -> _Header:
         if head.startswith(b"\x89HDF"):
             raise InputError(f"{where(path, 1)}: this is an HDF5 file, not a floor-scan CSV "
                              "(give it a .h5 name)")
+        if _looks_utf16(head):
+            raise InputError(f"{where(path, 1)}: UTF-16 text; save as UTF-8")
         if b"\x00" in head:
-            raise InputError(f"{where(path, 1)}: binary data, not a floor-scan CSV text file")
+            raise InputError(f"{where(path, _nul_line(head))}: binary data, not a floor-scan CSV "
+                             "text file")
         fh.seek(0)
         lineno = 0
         while True:
@@ -65,6 +96,8 @@ def _read_header(path: str) -> _Header:
             if not raw:
                 break
             lineno += 1
+            if b"\r" in raw.rstrip(b"\r\n"):
+                raise InputError(f"{where(path, lineno)}: {_CR_MESSAGE}")
             if len(raw) > _MAX_HEADER_LINE:
                 raise InputError(f"{where(path, lineno)}: line longer than {_MAX_HEADER_LINE} bytes "
                                  "above the table; not a floor-scan CSV")
@@ -83,7 +116,12 @@ def _read_header(path: str) -> _Header:
             if not text.startswith("#"):
                 hdr.table_line = lineno
                 hdr.table_offset = fh.tell()
-                hdr.columns = [c.strip().strip('"').strip().lower() for c in next(csv.reader([text]))]
+                try:
+                    names = next(csv.reader([text]), [])
+                except csv.Error as exc:
+                    raise InputError(f"{where(path, lineno)}: column header row cannot be read "
+                                     f"({exc})") from None
+                hdr.columns = [c.strip().strip('"').strip().lower() for c in names]
                 break
             body = text[1:]
             if ":" not in body:
