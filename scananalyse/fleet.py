@@ -167,8 +167,11 @@ def _fleet_html(df: pd.DataFrame) -> str:
         tank = f'<a href="{link}">{e(str(r["tank"]))}</a>' if link else e(str(r["tank"]))
         iv = r["interval_recommended_y"]
         iv = "–" if iv is None or (isinstance(iv, float) and not math.isfinite(iv)) or pd.isna(iv) else f"{float(iv):.1f}"
-        cells = [str(r["rank"]), tank, e(str(r["status"])), iv, e(str(r["worst_zone"] or "")),
-                 e(str(r["next_due"] or "")), e(str(r["flags"] or "")), e(str(r["error"] or ""))]
+        def txt(v):
+            return "" if v is None or (not isinstance(v, str) and pd.isna(v)) else e(str(v))
+
+        cells = [str(r["rank"]), tank, txt(r["status"]), iv, txt(r["worst_zone"]), txt(r["next_due"]),
+                 txt(r["flags"]), txt(r["error"])]
         cls = ' class="bad"' if not str(r["status"]).startswith("ok") else ""
         rows.append(f"<tr{cls}>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
     head = "".join(f"<th>{h}</th>" for h in ["#", "tank", "status", "recommended interval [y]", "worst zone",

@@ -85,3 +85,12 @@ def test_ranking_order():
     ]
     df = rank_fleet(rows)
     assert list(df["tank"]) == ["broken", "fast", "tie-flagged", "slow"]
+
+
+def test_fleet_time_limit_gives_rows_not_a_hang(fleet_dir, tmp_path):
+    # A tank with no result within the limit becomes a row with status 'timeout'.
+    res = run_fleet(fleet_dir / "manifest.csv", out_dir=tmp_path / "f", workers=1, quiet=True, timeout_s=0.01)
+    df = res["table"]
+    assert len(df) == 3 and (df["status"] == "timeout").any()
+    assert df[df["status"] == "timeout"]["error"].str.contains("no result within").all()
+    assert (tmp_path / "f" / "fleet.csv").is_file()

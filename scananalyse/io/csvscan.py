@@ -96,7 +96,7 @@ def _read_header(path: str) -> _Header:
             if not raw:
                 break
             lineno += 1
-            if b"\r" in raw.rstrip(b"\r\n"):
+            if _has_bare_cr(raw):
                 raise InputError(f"{where(path, lineno)}: {_CR_MESSAGE}")
             if len(raw) > _MAX_HEADER_LINE:
                 raise InputError(f"{where(path, lineno)}: line longer than {_MAX_HEADER_LINE} bytes "
@@ -218,7 +218,12 @@ def _data_lines(path: str, table_line: int, rows) -> dict[int, int]:
     return out
 
 
-def _line_fields(path: str, lineno: int) -> list[str]:
+def _data_line(path: str, hdr: "_Header", row: int) -> int | None:
+    """File line number (1-based) of table row ``row``, or None if not found. Error path only."""
+    return _data_lines(path, hdr.table_line, [row]).get(row)
+
+
+def _line_fields(path: str, lineno: int | None) -> list[str]:
     """The comma-separated fields of one file line. Error path only."""
     with open(path, "rb") as fh:
         for n, raw in enumerate(fh, start=1):
@@ -274,13 +279,15 @@ def _locate_non_numeric(path: str, hdr: _Header, parser_message: str) -> InputEr
     if not found:
         return _scan_table(path, hdr, parser_message)
     row, _, name = min(found)
-    line = _data_lines(path, hdr.table_line, [row])[row]
+    line = _data_line(path, hdr, row)
     return InputError(f"{where(path, line, name)}: {df[name].iloc[row].strip()!r} is not a number")
 
 
 def _row_error(path, hdr, row: int, column: str, nominal_mm: float, factor: float) -> InputError:
     """Explain why table row ``row`` has a missing or bad value in ``column``. Error path only."""
-    line = _data_lines(path, hdr.table_line, [row])[row]
+    line = _data_line(path, hdr, row)
+    if line is None:
+        return InputError(f"{where(path, None, column)}: missing or bad value in table row {row + 1}")
     fields = _line_fields(path, line)
     if len(fields) < len(hdr.columns):
         return InputError(f"{where(path, line)}: short row, {len(fields)} fields where the header row "
@@ -296,20 +303,61 @@ def _row_error(path, hdr, row: int, column: str, nominal_mm: float, factor: floa
     return InputError(f"{where(path, line, column)}: {tok!r} is not finite")
 
 
-def _check_field_count(path, hdr: _Header, n_rows: int) -> None:
-    """Refuse rows with fewer fields than the header row (commas counted in blocks)."""
+def _has_bare_cr(raw: bytes) -> bool:
+    """True when a carriage return stands inside the line, not as (part of) its ending."""
+    return b"\r" in raw.rstrip(b"\r\n")
+
+
+def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
+    """One pass over the table bytes: refuse a carriage return inside a line; count the commas.
+
+    pandas ends a line at a lone CR where the line-by-line error paths do not,
+    so such a file is refused before it is parsed.  The CR search is a
+    ``memchr`` per block (a file without CR costs almost nothing); only blocks
+    holding a CR are looked at byte by byte.
+
+    Returns
+    -------
+    The number of commas in the table when ``count_commas``, else None.
+    """
     commas = 0
     block = bytearray(1 << 22)
     view = np.frombuffer(block, dtype=np.uint8)
-    hits = np.empty(view.shape, dtype=bool)
+    hits = np.empty(view.shape, dtype=bool) if count_commas else None
+    pending = False  # the previous block ended with a CR
+    bare = False
     with open(path, "rb", buffering=0) as fh:
         fh.seek(hdr.table_offset)
         while True:
             got = fh.readinto(block)
             if not got:
                 break
-            np.equal(view[:got], 44, out=hits[:got])  # 44 = ord(",")
-            commas += int(np.count_nonzero(hits[:got]))
+            if pending and block[0] not in (10, 13):
+                bare = True
+                break
+            pending = False
+            if block.find(b"\r", 0, got) >= 0:
+                at = np.flatnonzero(view[:got] == 13)  # 13 = CR
+                if at[-1] == got - 1:
+                    pending, at = True, at[:-1]
+                follow = view[at + 1]
+                if np.any((follow != 10) & (follow != 13)):  # a CR followed by line content
+                    bare = True
+                    break
+            if count_commas:
+                np.equal(view[:got], 44, out=hits[:got])  # 44 = ord(",")
+                commas += int(np.count_nonzero(hits[:got]))
+    if bare:
+        with open(path, "rb") as fh:
+            for lineno, raw in enumerate(fh, start=1):
+                if lineno > hdr.table_line and _has_bare_cr(raw):
+                    raise InputError(f"{where(path, lineno)}: {_CR_MESSAGE}")
+        raise InputError(f"{where(path)}: {_CR_MESSAGE}")  # not reached: the pass found one
+    return commas if count_commas else None
+
+
+def _check_field_count(path, hdr: _Header, n_rows: int, commas: int) -> None:
+    """Refuse rows with fewer fields than the header row (``commas`` counted in the table)."""
     if commas == n_rows * (len(hdr.columns) - 1):
         return
     # Slow path: find the short row (quoted commas may explain the count instead).
@@ -376,6 +424,7 @@ def read_csv_scan(path) -> FloorScan:
     if unknown:
         warnings.warn(f"{where(path, hdr.table_line)}: columns ignored: {', '.join(unknown)}",
                       ScanWarning, stacklevel=2)
+    commas = _check_table_bytes(path, hdr, count_commas=any(c not in COLUMNS_REQUIRED for c in cols))
     dtype = {c: ("category" if c not in _NUMERIC_COLUMNS else np.float64) for c in cols}
     try:
         df = pd.read_csv(path, engine="c", skiprows=hdr.table_line, header=None, names=cols,
@@ -401,9 +450,9 @@ def read_csv_scan(path) -> FloorScan:
         row, column = min(candidates, key=lambda rc: (rc[0], COLUMNS_REQUIRED.index(rc[1])))
         raise _row_error(path, hdr, row, column, meta.nominal, factor)
 
-    if any(c not in COLUMNS_REQUIRED for c in cols):
+    if commas is not None:
         # Rows short of trailing optional fields parse without a trace; count the commas.
-        _check_field_count(path, hdr, n)
+        _check_field_count(path, hdr, n, commas)
     side_codes = _side_codes(df, path, hdr) if "side" in cols else None
     plate_ids = _plate_ids(df, path, hdr) if "plate" in cols else None
     del df
@@ -425,8 +474,10 @@ def read_csv_scan(path) -> FloorScan:
         dist = np.subtract(coord, near, out=coord)  # distance from the nearest centre [cells]
         if max(float(dist.max()), -float(dist.min())) > v.OFF_GRID_TOLERANCE:
             row = int(np.argmax(np.abs(dist) > v.OFF_GRID_TOLERANCE))
-            line = _data_lines(path, hdr.table_line, [row])[row]
-            text = _line_fields(path, line)[hdr.columns.index(name)].strip()
+            line = _data_line(path, hdr, row)
+            fields = _line_fields(path, line)
+            k = hdr.columns.index(name)
+            text = fields[k].strip() if k < len(fields) else "?"
             raise InputError(
                 f"{where(path, line, name)}: {text} is off the grid ({abs(dist[row]):.3f} "
                 f"of a cell from the nearest centre; pitch {pitch_u:g}, anchor {anchor:g})")
@@ -442,7 +493,7 @@ def read_csv_scan(path) -> FloorScan:
           or float(iff.max()) >= nrows):
         outside = (jf < 0) | (jf >= ncols) | (iff < 0) | (iff >= nrows)
         row = int(np.argmax(outside))
-        line = _data_lines(path, hdr.table_line, [row])[row]
+        line = _data_line(path, hdr, row)
         raise InputError(f"{where(path, line)}: cell ({_cell_text(path, hdr, line)}) lies outside the "
                          f"grid given by x0, y0, rows, cols")
     iff *= ncols  # exact: whole numbers far below 2**53
@@ -481,6 +532,8 @@ def _duplicate_error(path, hdr, flat) -> InputError:
     k = int(np.argmin(second))
     a, b = int(order[dup[k]]), int(second[k])
     lines = _data_lines(path, hdr.table_line, [a, b])
+    if a not in lines or b not in lines:
+        return InputError(f"{where(path)}: duplicate cell in table rows {a + 1} and {b + 1}")
     return InputError(f"{where(path, lines[b])}: duplicate cell ({_cell_text(path, hdr, lines[b])}), "
                       f"already given on line {lines[a]}")
 
@@ -488,6 +541,8 @@ def _duplicate_error(path, hdr, flat) -> InputError:
 def _cell_text(path, hdr, line) -> str:
     """``x, y`` as written on a file line. Error path only."""
     fields = _line_fields(path, line)
+    if len(fields) < len(hdr.columns):
+        return "?"
     return ", ".join(fields[hdr.columns.index(c)].strip() for c in ("x", "y"))
 
 
@@ -508,7 +563,7 @@ def _side_codes(df, path, hdr) -> np.ndarray:
     codes = col.cat.codes.to_numpy()
     if bad:
         row = int(np.argmax(np.isin(codes, bad)))
-        line = _data_lines(path, hdr.table_line, [row])[row]
+        line = _data_line(path, hdr, row)
         raise InputError(f"{where(path, line, 'side')}: {col.iloc[row]!r} is not a side "
                          "(allowed: top, under, unknown or empty)")
     lut = np.array([v.SIDE_LABELS[c] for c in cats] + [0], dtype=np.int8)
@@ -522,7 +577,7 @@ def _plate_ids(df, path, hdr) -> np.ndarray:
         bad = ~missing & ((p != np.floor(p)) | (p < PLATE_NONE) | (p > np.iinfo(np.int32).max))
     if bad.any():
         row = int(np.argmax(bad))
-        line = _data_lines(path, hdr.table_line, [row])[row]
+        line = _data_line(path, hdr, row)
         raise InputError(f"{where(path, line, 'plate')}: {float(p[row])!r} is not a plate id "
                          "(a whole number >= 0, or empty for none)")
     return np.where(missing, PLATE_NONE, p).astype(np.int32)

@@ -99,6 +99,74 @@ def _layer(f, name, shape, path, kinds_ok, lo, hi, out_dtype):
     return data.astype(out_dtype, copy=False)
 
 
+def _read_open(f: h5py.File, path: str):
+    """Validate and read an open scan file: (t, x0, y0, pitch_mm, meta, factor, side, plate)."""
+    _refuse_links(f, path)
+    fmt = v.parse_text(_attr(f, "format", path, "format"), path, None, "format")
+    if fmt != v.FORMAT_NAME:
+        raise InputError(f"{where(path, None, 'format')}: {fmt!r} is not the floor-scan format "
+                         f"'{v.FORMAT_NAME}'")
+    version = _attr(f, "version", path, "version")
+    try:
+        ok = np.ndim(version) == 0 and float(version) == v.FORMAT_VERSION
+    except (TypeError, ValueError):
+        ok = False
+    if not ok or isinstance(version, (str, bytes)):
+        shown = version.item() if isinstance(version, np.generic) else version
+        raise InputError(f"{where(path, None, 'version')}: unsupported version {shown!r} "
+                         f"(this reader knows version {v.FORMAT_VERSION})")
+    fields = {}
+    for key in f.attrs:
+        if key in ("format", "version"):
+            continue
+        fields[key] = (_attr(f, key, path, key), None)
+    fields["format"] = (fmt, None)
+    reserved = [k for k in fields if k in v.GRID_KEYS]
+    if reserved:
+        raise InputError(f"{where(path, None, reserved[0])}: reserved root attribute (the grid "
+                         "anchor belongs on the thickness dataset)")
+    meta, pitch_mm, factor = v.build_meta(fields, path)
+
+    ds = _dataset(f, "thickness", path, required=True)
+    if ds.ndim != 2:
+        raise InputError(f"{where(path, None, 'thickness')}: must be 2-D (rows, cols), "
+                         f"has shape {ds.shape}")
+    if ds.dtype not in (np.dtype("<f4"), np.dtype(">f4"), np.dtype("<f8"), np.dtype(">f8")):
+        raise InputError(f"{where(path, None, 'thickness')}: dtype {ds.dtype} is not float32 "
+                         "or float64")
+    rows, cols = ds.shape
+    if rows == 0 or cols == 0:
+        raise InputError(f"{where(path, None, 'thickness')}: empty grid {ds.shape}")
+    v.check_grid_size(rows, cols, path, None, "thickness")
+    x0 = v.parse_number(_attr(ds, "x0", path, "thickness.x0"), path, None, "thickness.x0",
+                        sign="any")
+    y0 = v.parse_number(_attr(ds, "y0", path, "thickness.y0"), path, None, "thickness.y0",
+                        sign="any")
+
+    if factor == 1.0 and ds.dtype.itemsize == 4:
+        t = _read(ds, path, "thickness")
+        if t.dtype != np.float32:  # big-endian on disk
+            t = t.astype(np.float32)
+    else:
+        # Convert block by block: no full float64 copy of the grid.
+        t = np.empty((rows, cols), dtype=np.float32)
+        for r0 in range(0, rows, _BLOCK_ROWS):
+            block = _read(ds, path, "thickness", np.s_[r0:r0 + _BLOCK_ROWS]).astype(np.float64)
+            if factor != 1.0:
+                block *= factor
+            t[r0:r0 + block.shape[0]] = block
+    bad = v.first_bad_thickness(t, meta.nominal, 1.0, allow_nan=True)
+    if bad is not None:
+        i, j = np.unravel_index(bad, t.shape)
+        problem = v.thickness_problem(float(t[i, j]) / factor, meta.nominal, factor)
+        raise InputError(f"{where(path, None, 'thickness')}: at [{i}, {j}]: {problem}")
+    if not np.isfinite(t).any():
+        raise InputError(f"{where(path, None, 'thickness')}: no scanned cells (all NaN)")
+    side = _layer(f, "side", t.shape, path, "iu", 0, 2, np.int8)
+    plate = _layer(f, "plate", t.shape, path, "iu", PLATE_NONE, np.iinfo(np.int32).max, np.int32)
+    return t, x0, y0, pitch_mm, meta, factor, side, plate
+
+
 def read_h5_scan(path) -> FloorScan:
     """Read a floor-scan HDF5 v1 file into a :class:`FloorScan` (lengths in mm).
 
@@ -128,71 +196,16 @@ def read_h5_scan(path) -> FloorScan:
             raise InputError(f"{where(path)}: not an HDF5 file") from None
         raise InputError(f"{where(path)}: HDF5 file is truncated or corrupt") from None
     with f:
+        # A damaged file makes h5py fail in many ways (KeyError from a broken object header,
+        # RuntimeError from an attribute table, TypeError/ValueError from a datatype message,
+        # SystemError from its lock): all of them are bad input, not a program error.
         try:
-            _refuse_links(f, path)
-        except (OSError, RuntimeError, KeyError) as exc:
-            raise InputError(f"{where(path)}: HDF5 file is truncated or corrupt ({exc})") from None
-        fmt = v.parse_text(_attr(f, "format", path, "format"), path, None, "format")
-        if fmt != v.FORMAT_NAME:
-            raise InputError(f"{where(path, None, 'format')}: {fmt!r} is not the floor-scan format "
-                             f"'{v.FORMAT_NAME}'")
-        version = _attr(f, "version", path, "version")
-        try:
-            ok = np.ndim(version) == 0 and float(version) == v.FORMAT_VERSION
-        except (TypeError, ValueError):
-            ok = False
-        if not ok or isinstance(version, (str, bytes)):
-            raise InputError(f"{where(path, None, 'version')}: unsupported version {version!r} "
-                             f"(this reader knows version {v.FORMAT_VERSION})")
-        fields = {}
-        for key in f.attrs:
-            if key in ("format", "version"):
-                continue
-            fields[key] = (_attr(f, key, path, key), None)
-        fields["format"] = (fmt, None)
-        reserved = [k for k in fields if k in v.GRID_KEYS]
-        if reserved:
-            raise InputError(f"{where(path, None, reserved[0])}: reserved root attribute (the grid "
-                             "anchor belongs on the thickness dataset)")
-        meta, pitch_mm, factor = v.build_meta(fields, path)
-
-        ds = _dataset(f, "thickness", path, required=True)
-        if ds.ndim != 2:
-            raise InputError(f"{where(path, None, 'thickness')}: must be 2-D (rows, cols), "
-                             f"has shape {ds.shape}")
-        if ds.dtype not in (np.dtype("<f4"), np.dtype(">f4"), np.dtype("<f8"), np.dtype(">f8")):
-            raise InputError(f"{where(path, None, 'thickness')}: dtype {ds.dtype} is not float32 "
-                             "or float64")
-        rows, cols = ds.shape
-        if rows == 0 or cols == 0:
-            raise InputError(f"{where(path, None, 'thickness')}: empty grid {ds.shape}")
-        v.check_grid_size(rows, cols, path, None, "thickness")
-        x0 = v.parse_number(_attr(ds, "x0", path, "thickness.x0"), path, None, "thickness.x0",
-                            sign="any")
-        y0 = v.parse_number(_attr(ds, "y0", path, "thickness.y0"), path, None, "thickness.y0",
-                            sign="any")
-
-        if factor == 1.0 and ds.dtype.itemsize == 4:
-            t = _read(ds, path, "thickness")
-            if t.dtype != np.float32:  # big-endian on disk
-                t = t.astype(np.float32)
-        else:
-            # Convert block by block: no full float64 copy of the grid.
-            t = np.empty((rows, cols), dtype=np.float32)
-            for r0 in range(0, rows, _BLOCK_ROWS):
-                block = _read(ds, path, "thickness", np.s_[r0:r0 + _BLOCK_ROWS]).astype(np.float64)
-                if factor != 1.0:
-                    block *= factor
-                t[r0:r0 + block.shape[0]] = block
-        bad = v.first_bad_thickness(t, meta.nominal, 1.0, allow_nan=True)
-        if bad is not None:
-            i, j = np.unravel_index(bad, t.shape)
-            problem = v.thickness_problem(float(t[i, j]) / factor, meta.nominal, factor)
-            raise InputError(f"{where(path, None, 'thickness')}: at [{i}, {j}]: {problem}")
-        if not np.isfinite(t).any():
-            raise InputError(f"{where(path, None, 'thickness')}: no scanned cells (all NaN)")
-        side = _layer(f, "side", t.shape, path, "iu", 0, 2, np.int8)
-        plate = _layer(f, "plate", t.shape, path, "iu", PLATE_NONE, np.iinfo(np.int32).max, np.int32)
+            t, x0, y0, pitch_mm, meta, factor, side, plate = _read_open(f, path)
+        except InputError:
+            raise
+        except (OSError, RuntimeError, KeyError, ValueError, TypeError, SystemError) as exc:
+            raise InputError(f"{where(path)}: HDF5 file is truncated or corrupt "
+                             f"({' '.join(str(exc).split())})") from None
     return FloorScan(thickness=t, x0=x0 * factor, y0=y0 * factor, pitch=pitch_mm, meta=meta,
                      side=side, plate=plate, source=path)
 

@@ -25,6 +25,7 @@ __all__ = [
     "UNIT_FACTORS",
     "MAX_GRID_CELLS",
     "MAX_THICKNESS_OVER_NOMINAL",
+    "MAX_NOMINAL_MM",
     "OFF_GRID_TOLERANCE",
     "SIDE_LABELS",
     "REQUIRED_KEYS",
@@ -56,6 +57,9 @@ MAX_GRID_CELLS = 400_000_000
 #: A thickness above this multiple of the nominal thickness is refused as absurd
 #: (a unit mix-up or a corrupt value, not a real plate).
 MAX_THICKNESS_OVER_NOMINAL = 3.0
+#: A nominal plate thickness above this is refused as absurd (tank floors are
+#: 5 to 25 mm plate; 100 mm means wrong units or a corrupt value). [mm]
+MAX_NOMINAL_MM = 100.0
 #: Coordinates must lie within this fraction of the pitch of a grid node.
 OFF_GRID_TOLERANCE = 0.01
 #: Allowed values of the CSV ``side`` column and their codes (scan.SIDE_*); an
@@ -106,10 +110,11 @@ def parse_date(value, path, line, key) -> _dt.date:
 def parse_number(value, path, line, key, *, sign: str = "positive") -> float:
     """A finite real number; ``sign`` is ``"positive"`` (> 0), ``"nonneg"`` (>= 0) or ``"any"``."""
     if isinstance(value, (bool, np.bool_)):
-        raise InputError(f"{where(path, line, key)}: expected a number, got {value!r}")
+        shown = value.item() if isinstance(value, np.generic) else value
+        raise InputError(f"{where(path, line, key)}: expected a number, got {shown!r}")
     if isinstance(value, (int, float, np.integer, np.floating)):
         number = float(value)
-        shown = repr(value)
+        shown = repr(value.item() if isinstance(value, np.generic) else value)
     elif isinstance(value, np.ndarray) and value.shape == () and value.dtype.kind in "iuf":
         number = float(value)
         shown = repr(number)
@@ -170,6 +175,9 @@ def build_meta(fields: dict, path) -> tuple[ScanMeta, float, float]:
     pitch = parse_number(value, path, line, "pitch") * factor
     value, line = required("nominal")
     nominal = parse_number(value, path, line, "nominal") * factor
+    if nominal > MAX_NOMINAL_MM:
+        raise InputError(f"{where(path, line, 'nominal')}: {nominal / factor:g} {units} is above the "
+                         f"limit of {MAX_NOMINAL_MM:g} mm for a floor plate; wrong units or a corrupt value")
 
     def optional_number(key):
         if key not in fields:
@@ -207,8 +215,13 @@ def check_grid_size(rows: float, cols: float, path, line=None, field=None) -> No
 
 
 def _thickness_limit(nominal_mm: float) -> float:
-    """Largest accepted thickness [mm]; the 1e-9 slack keeps exactly 3 x nominal valid despite rounding."""
-    return MAX_THICKNESS_OVER_NOMINAL * nominal_mm * (1 + 1e-9)
+    """Largest accepted thickness [mm].
+
+    The 1e-6 slack keeps exactly 3 x nominal valid despite rounding: a float32
+    at the limit written as its shortest decimal (up to 9 significant digits)
+    reads back up to about 6e-8 relative above it.
+    """
+    return MAX_THICKNESS_OVER_NOMINAL * nominal_mm * (1 + 1e-6)
 
 
 def thickness_problem(value: float, nominal_mm: float, factor: float) -> str | None:
@@ -230,7 +243,7 @@ def first_bad_thickness(t: np.ndarray, nominal_mm: float, factor: float, *, allo
     :data:`MAX_THICKNESS_OVER_NOMINAL` x nominal.  NaN is allowed when
     ``allow_nan`` (HDF5: not scanned).
     """
-    limit = _thickness_limit(nominal_mm) / factor
+    limit = np.float64(_thickness_limit(nominal_mm) / factor)  # float64: no float32 overflow
     flat = t.reshape(-1)
     if flat.size == 0:
         return None
@@ -238,10 +251,10 @@ def first_bad_thickness(t: np.ndarray, nominal_mm: float, factor: float, *, allo
         lo, hi = np.fmin.reduce(flat), np.fmax.reduce(flat)  # NaN skipped
     else:
         lo, hi = flat.min(), flat.max()  # NaN propagates and fails the test below
-    if lo > 0 and hi <= limit:
+    if lo > 0 and np.float64(hi) <= limit:
         return None
     with np.errstate(invalid="ignore"):
-        good = (flat > 0) & (flat <= limit)
+        good = (flat > 0) & (flat <= limit)  # a float64 scalar: compared in float64 (NEP 50)
     if allow_nan:
         good |= np.isnan(flat)
     if good.all():
