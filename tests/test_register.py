@@ -132,6 +132,25 @@ def test_hard_seeds_converge(seed):
     assert es <= SHIFT_TOL_CELLS * 20.0, f"shift error {es:.2f} mm"
 
 
+# Large floors: the rotation contrast was once measured on the coarse search's image, in which
+# the round coverage outline (a fit at every angle) dominates once the coarse cell is several
+# seam widths; the coarse level grew with the floor (320 mm on a 42-60 m floor), the seams faded,
+# the sweep's peak stood 0.006-0.019 above its median and well-registered floors fell back to the
+# identity (30, 60 and 100 m floors at 10/12.5 mm; this 42 m floor at 40/50 mm is the same case
+# at a size that generates in a few seconds: contrast 0.013, coarse pitch 320 mm).
+def test_large_floor_not_flagged_flat():
+    # Ground truth: synth.make_pair's known transform, 2.0 deg, (120, -80) mm (synthetic ground truth).
+    p = pair(diameter_mm=42000.0, pitch_new=40.0, pitch_old=50.0, seed=1)
+    reg = register(p.new, p.old)
+    er, es = errors(reg, p.truth)
+    assert reg.method == "auto" and reg.reliable, reg.warnings
+    assert er <= ROT_TOL_DEG, f"rotation error {er:.4f} deg"
+    assert es <= SHIFT_TOL_CELLS * 40.0, f"shift error {es:.2f} mm"
+    # a floor full of seams must show a clear rotation peak, far above the threshold (0.02)
+    assert reg.rotation_contrast >= 0.2
+    assert reg.rotation_contrast >= 5.0 * reg.details["rotation_contrast_noise"]
+
+
 def test_refinement_failure_keeps_coarse_estimate(monkeypatch):
     # Ground truth: synth.make_pair's transform; the coarse search alone finds it to about a
     # coarse cell (its grid step), so a refinement that never converges must not give the identity.
@@ -344,6 +363,18 @@ def test_featureless_floor_warns_and_falls_back():
         reg2 = register(new, old, control_points=(pts, np.column_stack([nx, ny])))
     assert reg2.method == "control-points"
     assert reg2.transform.rotation_deg == pytest.approx(2.0, abs=1e-9)
+
+
+@pytest.mark.parametrize("diam,pitch", [(26000.0, 40.0), (5000.0, 20.0), (2000.0, 10.0)])
+def test_featureless_floor_flat_sweep(diam, pitch):
+    # Ground truth: a uniform disc with reading noise has no rotational features (geometry), so
+    # the rotation contrast must stay below its threshold at every size: the contrast without the
+    # outline is the maximum of noise correlations there (0.035-0.07 on the two small floors).
+    new = _plain_floor(diam, pitch, 1)
+    old = _plain_floor(diam, pitch, 2, RigidTransform(2.0, 0.0, 0.0))
+    with pytest.warns(RegistrationWarning, match="flat rotation sweep"):
+        reg = register(new, old)
+    assert not reg.reliable and reg.method == "identity"
 
 
 @settings(max_examples=4, deadline=None)
