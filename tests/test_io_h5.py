@@ -293,3 +293,60 @@ def test_external_storage_refused(tmp_path):
         ds = f.create_dataset("thickness", shape=(3, 3), dtype=np.float32, external=[(str(raw), 0, 36)])
         ds.attrs["x0"], ds.attrs["y0"] = 0.0, 0.0
     expect_error(p, r": field 'thickness': dataset with external storage refused")
+
+
+# ---------------------------------------------------------------- damaged files
+BAD_DIR = __import__("pathlib").Path(__file__).parent / "data" / "bad"
+
+
+@pytest.mark.parametrize("name", ["h5_corrupt_attribute_table.h5", "h5_corrupt_datatype.h5",
+                                  "h5_corrupt_datatype_time.h5", "h5_corrupt_link_heap.h5",
+                                  "h5_corrupt_object_header.h5"])
+def test_kept_damaged_files_refused(name):
+    # Files damaged by byte corruption (kept in tests/data/bad): h5py raises KeyError,
+    # RuntimeError, TypeError, ValueError or SystemError on them; the reader names the file.
+    msg = expect_error(BAD_DIR / name, r": HDF5 file is truncated or corrupt \(.+\)")
+    assert "Traceback" not in msg
+
+
+def test_kept_absurd_nominal_refused():
+    expect_error(BAD_DIR / "h5_corrupt_nominal_absurd.h5",
+                 r": field 'nominal': .* mm is above the limit of 100 mm")
+
+
+def test_absurd_nominal_attribute(tmp_path):
+    # A nominal far beyond float32 range: refused by the 100 mm limit, no overflow warning.
+    expect_error(good_file(tmp_path / "a.h5", nominal=np.float64(1.4e69)),
+                 r": field 'nominal': 1.4e\+69 mm is above the limit of 100 mm")
+    assert read_h5_scan(good_file(tmp_path / "b.h5", nominal=100.0)).meta.nominal == 100.0
+
+
+def test_version_shown_without_numpy_repr(tmp_path):
+    msg = expect_error(good_file(tmp_path / "a.h5", version=np.int64(2)),
+                       r": field 'version': unsupported version 2 \(")
+    assert "np." not in msg
+
+
+def test_random_byte_damage_fails_cleanly(tmp_path):
+    # Seeded damage: 40 copies of a valid file with 1 to 8 bytes overwritten at random places
+    # (synthetic ground truth: each read returns a scan or raises InputError naming the file,
+    # nothing else; pytest turns warnings into errors).
+    p = tmp_path / "good.h5"
+    write_h5_scan(make_scan(), p)
+    data = p.read_bytes()
+    rng = np.random.default_rng(5)
+    outcomes = {"read": 0, "refused": 0}
+    for k in range(40):
+        buf = bytearray(data)
+        for pos in rng.integers(0, len(buf), rng.integers(1, 9)):
+            buf[pos] = int(rng.integers(0, 256))
+        q = tmp_path / f"damaged{k}.h5"
+        q.write_bytes(bytes(buf))
+        try:
+            read_h5_scan(q)
+            outcomes["read"] += 1
+        except InputError as exc:
+            msg = str(exc)
+            assert "\n" not in msg and msg.startswith(str(q)), msg
+            outcomes["refused"] += 1
+    assert sum(outcomes.values()) == 40

@@ -330,3 +330,158 @@ def test_unknown_extension_and_missing_file(tmp_path):
     missing = os.path.join(str(tmp_path), "nope.csv")
     with pytest.raises(InputError, match=re.escape(missing) + r": no such file"):
         read_scan(missing)
+
+
+# ---------------------------------------------------------------- line endings, encodings, limits
+CR_MSG = r"carriage return inside a line \(old Mac line endings\?\); save with LF or CRLF"
+
+
+def test_cr_only_line_endings_refused(tmp_path):
+    # A classic Mac export: CR alone ends each line, so the whole file is one LF line (line 1).
+    data = ("\r".join(BASE) + "\r").encode("utf-8")
+    expect_error(write(tmp_path, data), ":1: " + CR_MSG)
+
+
+def test_cr_inside_header_line(tmp_path):
+    expect_error(write(tmp_path, changed(l2="# tank: TK\r-07")), ":2: " + CR_MSG)
+
+
+def test_cr_inside_column_header_row(tmp_path):
+    expect_error(write(tmp_path, changed(l11="x,y,thick\rness,side,plate")), ":11: " + CR_MSG)
+
+
+@pytest.mark.parametrize("row", [
+    "10,0,6.1,und\rer,1",  # the row splits into two bad rows for a CR-aware parser
+    "10,0,6.1,under,1\r10,20,5.5,top,1",  # two valid rows joined by a CR: still refused
+])
+def test_cr_inside_table_row(tmp_path, row):
+    # A lone CR must be refused where the line-by-line error paths see it (file line 13),
+    # not be taken as a line break by the table parser.
+    expect_error(write(tmp_path, changed(l13=row)), ":13: " + CR_MSG)
+
+
+def test_double_cr_before_lf_refused(tmp_path):
+    # "\r\r\n" is an empty line more for a CR-aware parser, not for a line-by-line reader:
+    # the line numbers would disagree, so the first such line is refused.
+    data = ("\n".join(BASE[:12]) + "\r\r\n" + "\n".join(BASE[12:]) + "\n").encode("utf-8")
+    expect_error(write(tmp_path, data), ":12: " + CR_MSG)
+    data = ("\r\r\n".join(BASE) + "\r\r\n").encode("utf-8")
+    expect_error(write(tmp_path, data, "all.csv"), ":1: " + CR_MSG)
+
+
+def test_cr_at_end_of_file_accepted(tmp_path):
+    # A last line ended by a lone CR (no LF after it): a line ending for every reader.
+    data = ("\n".join(BASE) + "\r").encode("utf-8")
+    scan = read_csv_scan(write(tmp_path, data))
+    np.testing.assert_array_equal(scan.thickness, np.float32([[6.2, 6.1], [5.9, 6.0]]))
+
+
+def _table_with_cr_at(offset_in_table: int, header: list[str]) -> tuple[bytes, int, int]:
+    """CRLF file whose table (after the column header row) has a CR at ``offset_in_table``.
+
+    Returns (file bytes, 1-based file line of that row, number of rows).  The row
+    before the target is padded with trailing zeros in its thickness so that its
+    CR lands exactly there (ground truth by construction).
+    """
+    head = ("\r\n".join(header) + "\r\n").encode()
+    rows, pos, k = [], 0, 0
+    while pos <= offset_in_table + 64:
+        rows.append(f"{(k % 700) * 10},{(k // 700) * 10},5.5")
+        pos += len(rows[-1]) + 2
+        k += 1
+    pos = 0
+    for i, r in enumerate(rows):
+        cr = pos + len(r)
+        if cr >= offset_in_table:
+            prev = rows[i - 1]
+            prev_cr = pos - 2
+            pad = offset_in_table - prev_cr
+            rows[i - 1] = prev + "0" * pad
+            target = i - 1
+            break
+        pos = cr + 2
+    body = "\r\n".join(rows) + "\r\n"
+    data = head + body.encode()
+    at = len(head) + offset_in_table
+    assert data[at:at + 2] == b"\r\n"
+    return data, len(header) + 1 + target, len(rows)
+
+
+def test_cr_at_block_boundary(tmp_path):
+    # The reader scans the table in 4 MiB blocks: a CRLF split across two blocks is a line
+    # ending; a lone CR there (the next block starting with row content) is refused.
+    header = BASE[:10] + ["x,y,thickness"]
+    block = 1 << 22
+    data, line, n = _table_with_cr_at(block - 1, header)
+    scan = read_csv_scan(write(tmp_path, data, "ok.csv"))
+    assert scan.n_scanned == n
+    at = len(data) - len(data.split(b"\r\n", len(header))[-1]) + block - 1
+    bad = data[:at + 1] + data[at + 2:]  # drop the LF after that CR
+    expect_error(write(tmp_path, bad, "bad.csv"), f":{line}: " + CR_MSG)
+
+
+def test_nul_in_table_names_its_line(tmp_path):
+    data = ("\n".join(BASE) + "\n").encode().replace(b"10,0,6.1,under", b"10,0,6.\x001,under")
+    expect_error(write(tmp_path, data), r":13: binary data")
+
+
+@pytest.mark.parametrize("encoding", ["utf-16", "utf-16-le", "utf-16-be"])
+def test_utf16_export_named(tmp_path, encoding):
+    # "utf-16" writes a byte-order mark; the -le/-be exports have none.
+    data = ("\n".join(BASE) + "\n").encode(encoding)
+    expect_error(write(tmp_path, data), r":1: UTF-16 text; save as UTF-8")
+
+
+def test_absurd_nominal_refused(tmp_path):
+    # Limit 100 mm (docs/formats.md): tank floor plate is 5 to 25 mm (common practice, no source).
+    assert v.MAX_NOMINAL_MM == 100.0
+    ok = read_csv_scan(write(tmp_path, changed(l7="# nominal: 100"), "ok.csv"))
+    assert ok.meta.nominal == 100.0
+    expect_error(write(tmp_path, changed(l7="# nominal: 100.5")),
+                 r":7: field 'nominal': 100.5 mm is above the limit of 100 mm")
+    # 4 in = 101.6 mm (1 in = 25.4 mm exactly).
+    expect_error(write(tmp_path, changed(l5="# units: in", l7="# nominal: 4")),
+                 r":7: field 'nominal': 4 in is above the limit of 100 mm")
+    expect_error(write(tmp_path, changed(l7="# nominal: 1.4e69")), r":7: field 'nominal': .*above the limit")
+
+
+def test_first_bad_thickness_huge_limit_no_overflow():
+    # A float32 grid checked against a limit beyond float32 range: compared in float64, no
+    # RuntimeWarning (pytest turns warnings into errors).
+    t = np.float32([[5.0, 6.0], [np.nan, 7.0]])
+    assert v.first_bad_thickness(t, 1e69, 1.0, allow_nan=True) is None
+    assert v.first_bad_thickness(np.float32([1.0, -1.0]), 1e69, 1.0, allow_nan=False) == 1
+
+
+def test_float32_at_three_times_nominal_round_trips(tmp_path):
+    # For random nominals, the largest float32 not above 3 x nominal is valid in memory;
+    # written as its shortest decimal it must read back to the same float32 (synthetic truth).
+    from scananalyse.io import write_csv_scan
+    from scananalyse.scan import FloorScan, ScanMeta
+    import datetime as dt
+
+    rng = np.random.default_rng(20)
+    for k, nominal in enumerate(rng.uniform(3.0, 30.0, 40)):
+        t = np.float32(3 * nominal)
+        if float(t) > 3 * nominal:
+            t = np.nextafter(t, np.float32(0))
+        assert v.first_bad_thickness(np.float32([t]), nominal, 1.0, allow_nan=False) is None
+        scan = FloorScan(np.array([[t, nominal]], np.float32), x0=0.0, y0=0.0, pitch=1.0,
+                         meta=ScanMeta(inspected=dt.date(2000, 1, 1), nominal=float(nominal)))
+        path = tmp_path / f"limit{k}.csv"
+        write_csv_scan(scan, path)
+        back = read_csv_scan(path)
+        assert back.thickness[0, 0] == t
+
+
+def test_numpy_scalars_shown_plainly():
+    # Messages show the value as the user wrote it, not a numpy repr such as np.float64(nan).
+    with pytest.raises(InputError) as info:
+        v.parse_number(np.float64("nan"), "f.h5", None, "nominal")
+    assert "np." not in str(info.value) and "nan is not finite" in str(info.value)
+    with pytest.raises(InputError) as info:
+        v.parse_number(np.bool_(True), "f.h5", None, "pitch")
+    assert "np." not in str(info.value) and "got True" in str(info.value)
+    with pytest.raises(InputError) as info:
+        v.parse_number(np.int64(-2), "f.h5", None, "pitch")
+    assert str(info.value) == "f.h5: field 'pitch': must be positive, got -2"

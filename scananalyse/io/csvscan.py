@@ -304,15 +304,25 @@ def _row_error(path, hdr, row: int, column: str, nominal_mm: float, factor: floa
 
 
 def _has_bare_cr(raw: bytes) -> bool:
-    """True when a carriage return stands inside the line, not as (part of) its ending."""
-    return b"\r" in raw.rstrip(b"\r\n")
+    """True when a line holds a carriage return that is not its CRLF (or end-of-file CR) ending.
+
+    pandas ends a line at any CR, the line-by-line reading here only at LF: a
+    CR elsewhere (old Mac line endings, a stray CR in a cell, ``\\r\\r\\n``)
+    would shift every line number after it, so it is refused.
+    """
+    if raw.endswith(b"\r\n"):
+        raw = raw[:-2]
+    elif raw.endswith((b"\n", b"\r")):
+        raw = raw[:-1]
+    return b"\r" in raw
 
 
 def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
     """One pass over the table bytes: refuse a carriage return inside a line; count the commas.
 
     pandas ends a line at a lone CR where the line-by-line error paths do not,
-    so such a file is refused before it is parsed.  The CR search is a
+    so such a file is refused before it is parsed (a CR at the very end of the
+    file is a line ending for both).  The CR search is a
     ``memchr`` per block (a file without CR costs almost nothing); only blocks
     holding a CR are looked at byte by byte.
 
@@ -332,7 +342,7 @@ def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
             got = fh.readinto(block)
             if not got:
                 break
-            if pending and block[0] not in (10, 13):
+            if pending and block[0] != 10:
                 bare = True
                 break
             pending = False
@@ -340,8 +350,7 @@ def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
                 at = np.flatnonzero(view[:got] == 13)  # 13 = CR
                 if at[-1] == got - 1:
                     pending, at = True, at[:-1]
-                follow = view[at + 1]
-                if np.any((follow != 10) & (follow != 13)):  # a CR followed by line content
+                if np.any(view[at + 1] != 10):  # a CR not followed by LF
                     bare = True
                     break
             if count_commas:
