@@ -343,10 +343,16 @@ def test_random_byte_damage_fails_cleanly(tmp_path):
         q = tmp_path / f"damaged{k}.h5"
         q.write_bytes(bytes(buf))
         try:
-            read_h5_scan(q)
-            outcomes["read"] += 1
+            scan = read_h5_scan(q)
         except InputError as exc:
             msg = str(exc)
             assert "\n" not in msg and msg.startswith(str(q)), msg
             outcomes["refused"] += 1
-    assert sum(outcomes.values()) == 40
+            continue
+        # What is read must satisfy the format's own limits (docs/formats.md).
+        t = scan.thickness[np.isfinite(scan.thickness)]
+        assert t.size and t.min() > 0 and t.max() <= 3 * scan.meta.nominal * (1 + 1e-6)
+        assert 0 < scan.meta.nominal <= v.MAX_NOMINAL_MM and scan.pitch > 0
+        outcomes["read"] += 1
+    # Both outcomes occur (damage in raw data may leave a valid file; in metadata it does not).
+    assert outcomes["refused"] >= 5 and outcomes["read"] >= 1, outcomes

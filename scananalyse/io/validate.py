@@ -296,6 +296,11 @@ def format_scalar(value_mm: float, factor: float) -> str:
         text = f"{target:.{digits}g}"
         back = float(text)
         if back == target or (factor != 1.0 and back * factor == value_mm):
+            if "e" in text and 1e-6 <= abs(back) < 1e15:
+                # plain notation for ordinary magnitudes: "10", not "1e+01"
+                plain = np.format_float_positional(back, trim="-")
+                if float(plain) == back:
+                    text = plain
             return text
     return repr(target)
 
