@@ -656,7 +656,7 @@ def _figures(an: Analysis, units: str) -> dict:
     out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",
                 F.floor_map(an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
-                            contours=[(an.job.target_interval, f"target {an.job.target_interval:g} y", "--")],
+                            contours=[(an.job.target_interval, "target interval", "--")],
                             **common)))
     out.append(("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
                 "MRT before the target interval at their own rates lie inside them).",
