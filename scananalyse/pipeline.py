@@ -60,7 +60,6 @@ class Analysis:
     uncovered_cells: int
     zones_repaired: pd.DataFrame
     repaired_maps: dict
-    repair_to_table: pd.DataFrame | None
     patch_note: str | None
     attribution: dict
     assumptions: list
@@ -576,18 +575,28 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old, own_p
                                     rate_short_available=have_old)
     zones_rep = _add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
     patch_note = None
-    if covered.any():
-        life_p = float(np.nanmin(np.where(covered, life_rep, np.nan))) if np.isfinite(np.where(covered, life_rep, np.nan)).any() else np.inf
+    if own_patches is not None and len(patches):
+        # the engineer's patches carry the checker's verdict, not whatever the file said
+        patches = patches.drop(columns=["flags"], errors="ignore").merge(checks[["patch", "flags"]], on="patch",
+                                                                         how="left")
+        bad = checks[~checks["ok"].astype(bool)]
+        if len(bad):
+            patch_note = (f"{len(bad)} of the {len(patches)} given patch plates break a patch rule "
+                          f"({', '.join(bad['patch'].astype(str).head(5))}{' …' if len(bad) > 5 else ''}); "
+                          "see the flags column of patches.csv.")
+    life_on_patches = np.where(covered, life_rep, np.nan)
+    if covered.any() and np.isfinite(life_on_patches).any():
+        life_p = float(np.nanmin(life_on_patches))
         if life_p < job.target_interval:
-            patch_note = (f"The patch plates themselves last {life_p:.1f} years at the measured rates (the underside "
-                          "rate is kept under a patch unless its cause is removed), short of the target of "
-                          f"{job.target_interval:g} years: consider thicker plates, effective cathodic protection "
-                          "or removing the cause (--under-cause-removed), or replacing plate.")
-    return {"needs_repair": needs, "patches": patches, "patch_note": patch_note, "patch_checks": checks, "uncovered_cells": int(n_uncovered),
-            "zones_repaired": zones_rep,
+            life_text = (f"The patch plates themselves last {life_p:.1f} years at the measured rates (the underside "
+                         "rate is kept under a patch unless its cause is removed), short of the target of "
+                         f"{job.target_interval:g} years: consider thicker plates, effective cathodic protection "
+                         "or removing the cause (--under-cause-removed), or replacing plate.")
+            patch_note = f"{patch_note} {life_text}" if patch_note else life_text
+    return {"needs_repair": needs, "patches": patches, "patch_note": patch_note, "patch_checks": checks,
+            "uncovered_cells": int(n_uncovered), "zones_repaired": zones_rep,
             "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep, "life_local_repaired": life_rep,
-                              "rate_under_repaired": ru_rep, "patched": covered},
-            "repair_to_table": None}
+                              "rate_under_repaired": ru_rep, "patched": covered}}
 
 
 # ------------------------------------------------------------------------------------
@@ -613,10 +622,6 @@ FLAGS_EXPLAINED = {
     "critical-zone-special-repair": "A patch touches the critical zone: only special shapes or plate replacement "
                                     "are allowed there.",
 }
-
-
-def _decimated_xy_extent(scan):
-    return scan.extent
 
 
 def _figures(an: Analysis, units: str) -> dict:
@@ -843,7 +848,7 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> 
 # ------------------------------------------------------------------------------------
 # entry points
 # ------------------------------------------------------------------------------------
-def _load(path, prog):
+def _load(path):
     from .io import read_scan
 
     return read_scan(path)
@@ -870,8 +875,8 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
     _check_out_dir(out_dir, force)
     prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
     with prog.stage("load"):
-        new = _load(new_path, prog)
-        old = None if single else _load(old_path, prog)
+        new = _load(new_path)
+        old = None if single else _load(old_path)
         inputs = read_job_inputs(job, new)
     with output_folder(out_dir, force=force) as tmp:
         an = analyse(new, old, job=job, progress=prog, inputs=inputs)
@@ -904,8 +909,8 @@ def register_files(old_path, new_path, *, out_dir, control_points=None, force=Fa
     _check_out_dir(out_dir, force)
     prog = Progress(["load", "registration"], quiet=quiet)
     with prog.stage("load"):
-        old = _load(old_path, prog)
-        new = _load(new_path, prog)
+        old = _load(old_path)
+        new = _load(new_path)
     with output_folder(out_dir, force=force) as tmp:
         with prog.stage("registration"):
             reg = register(new, old, control_points=control_points)

@@ -150,3 +150,35 @@ def test_internal_fault_is_exit_1_without_traceback(monkeypatch, small_pair_file
     assert main(["check", small_pair_files["new_csv"]]) == 1
     err = capsys.readouterr().err
     assert "internal error" in err and "Traceback" not in err
+
+
+def test_engineers_own_patches_are_checked_and_used(small_pair_files, tmp_path, capsys):
+    # Design contract §3.4: --patches re-assesses with exactly the engineer's patch set, checking
+    # each against the patch rules (domain.md §6) and counting cells no patch covers.
+    first = tmp_path / "first"
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+                 "--out", str(first), "--quiet"]) == 0
+    proposed = pd.read_csv(first / "patches.csv")
+    assert len(proposed) >= 2
+    mine = proposed.copy()
+    # shrink the first patch to 100 mm square around its centre: below every minimum size
+    cx = (mine.loc[0, "x_min_mm"] + mine.loc[0, "x_max_mm"]) / 2
+    cy = (mine.loc[0, "y_min_mm"] + mine.loc[0, "y_max_mm"]) / 2
+    mine.loc[0, ["x_min_mm", "x_max_mm", "y_min_mm", "y_max_mm"]] = [cx - 50, cx + 50, cy - 50, cy + 50]
+    mine.loc[0, "corner_radius_mm"] = 20.0
+    mine.loc[0, "area_m2"] = 0.01
+    mine = mine.drop(index=len(mine) - 1)  # and leave one area unpatched
+    own = tmp_path / "mine.csv"
+    mine.to_csv(own, index=False)
+    capsys.readouterr()
+    second = tmp_path / "second"
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+                 "--out", str(second), "--quiet", "--patches", str(own)]) == 0
+    out = capsys.readouterr().out
+    got = pd.read_csv(second / "patches.csv")
+    assert list(got["patch"]) == list(mine["patch"])
+    flags0 = str(got.loc[0, "flags"])
+    assert "too-small" in flags0 or "not-beyond-corrosion" in flags0
+    assert "break a patch rule" in out
+    html = (second / "report.html").read_text()
+    assert "not covered by any patch" in html
