@@ -80,3 +80,24 @@ def test_single_inspection_uses_long_term_rates_only():
     age = pair.new.meta.age_years
     i = np.nanargmax(an.rates.loss_under)
     assert an.rates.rate_long_under.flat[i] == pytest.approx(an.rates.loss_under.flat[i] / age, rel=1e-4)
+
+
+def test_inch_files_give_the_same_answer_as_mm_files(tmp_path):
+    # The same floor written in inches (1 in = 25.4 mm exactly) and given a diameter in inches
+    # must give the same per-zone results as the millimetre files: units are converted on load.
+    from scananalyse.io import read_scan, write_scan
+
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=6)
+    paths = {}
+    for tag, scan in (("old", pair.old), ("new", pair.new)):
+        inch = scan.with_thickness(scan.thickness, meta=scan.meta.replace(units="in"))
+        paths[tag] = tmp_path / f"{tag}_in.csv"
+        write_scan(inch, paths[tag])
+    assert "# units: in" in paths["new"].read_text()[:400]
+    old_in, new_in = read_scan(paths["old"]), read_scan(paths["new"])
+    a = analyse(pair.new, pair.old, job=Job(diameter=4000.0)).zone_table.set_index("zone")
+    b = analyse(new_in, old_in, job=Job(diameter=4000.0 / 25.4)).zone_table.set_index("zone")
+    for col in ("area_m2", "coverage_pct", "t_min_mm", "depth_max_mm", "rate_under_max_mm_y", "mrt_mm",
+                "interval_code_y", "life_local_y", "interval_recommended_y"):
+        np.testing.assert_allclose(b[col].to_numpy(float), a[col].to_numpy(float), rtol=1e-4, atol=1e-4,
+                                   err_msg=col)
