@@ -192,14 +192,16 @@ def _boundaries_along_rows(ids, kmax):
     flat = np.flatnonzero(flat_ids >= 0)
     if flat.size < 2:
         return empty, empty
-    a = flat[:-1]
-    b = flat[1:]
+    # Cheap test first (consecutive valid cells of different ids, on the int32 ids), then
+    # the row and gap tests on the few candidates only: the same pairs, without integer
+    # division over every valid cell.
+    v = flat_ids[flat]
+    k = np.flatnonzero(v[1:] != v[:-1])
+    a = flat[k]
+    b = flat[k + 1]
     pair = ((a // nx) == (b // nx)) & (b - a - 1 <= kmax)
     a = a[pair]
     b = b[pair]
-    diff = flat_ids[a] != flat_ids[b]
-    a = a[diff]
-    b = b[diff]
     return (a // nx).astype(np.int64), (a % nx + b % nx).astype(np.int64)
 
 
@@ -593,34 +595,41 @@ def _not_beyond(needs, rect, radius, margin, x0, y0, pitch):
 
 
 def _pair_flags(R, c):
-    """Per patch: too close to another patch (parallel edges within c); overlapping another."""
+    """Per patch: too close to another patch (parallel edges within c); overlapping another.
+
+    Candidate pairs come from :func:`_near_pairs` (k-d tree): the distance between two
+    parallel edges is never below the gap between the rectangles, so pairs farther apart
+    than c can be neither too close nor overlapping.
+    """
     n = len(R)
     close = np.zeros(n, dtype=bool)
     ov_any = np.zeros(n, dtype=bool)
     if n < 2:
         return close, ov_any
-    for s in range(0, n, 512):
-        a = R[s:s + 512]
-        idx = np.arange(s, s + len(a))
-        # vertical edges: x positions, y spans
-        dmin = np.full((len(a), n), np.inf)
-        for ea in (0, 2):
-            for eb in (0, 2):
-                gap_span = np.maximum.reduce([np.zeros((len(a), n)), R[None, :, 1] - a[:, None, 3],
-                                              a[:, None, 1] - R[None, :, 3]])
-                dmin = np.minimum(dmin, np.hypot(a[:, None, ea] - R[None, :, eb], gap_span))
-        for ea in (1, 3):
-            for eb in (1, 3):
-                gap_span = np.maximum.reduce([np.zeros((len(a), n)), R[None, :, 0] - a[:, None, 2],
-                                              a[:, None, 0] - R[None, :, 2]])
-                dmin = np.minimum(dmin, np.hypot(a[:, None, ea] - R[None, :, eb], gap_span))
-        dmin[np.arange(len(a)), idx] = np.inf
-        close[idx] = (dmin < c - _TOL).any(axis=1)
-        ox = np.minimum(a[:, None, 2], R[None, :, 2]) - np.maximum(a[:, None, 0], R[None, :, 0])
-        oy = np.minimum(a[:, None, 3], R[None, :, 3]) - np.maximum(a[:, None, 1], R[None, :, 1])
-        ov = (ox > _TOL) & (oy > _TOL)
-        ov[np.arange(len(a)), idx] = False
-        ov_any[idx] = ov.any(axis=1)
+    i, j, gap, ox, oy = _near_pairs(R, c)
+    keep = gap < c - _TOL
+    ov = (ox > _TOL) & (oy > _TOL)
+    ov_any[i[ov]] = True
+    ov_any[j[ov]] = True
+    i, j = i[keep], j[keep]
+    if i.size == 0:
+        return close, ov_any
+    a, b = R[i], R[j]
+    zero = np.zeros(i.size)
+    dmin = np.full(i.size, np.inf)
+    # vertical edges: x positions, gap between the y spans
+    gap_y = np.maximum.reduce([zero, b[:, 1] - a[:, 3], a[:, 1] - b[:, 3]])
+    for ea in (0, 2):
+        for eb in (0, 2):
+            dmin = np.minimum(dmin, np.hypot(a[:, ea] - b[:, eb], gap_y))
+    # horizontal edges: y positions, gap between the x spans
+    gap_x = np.maximum.reduce([zero, b[:, 0] - a[:, 2], a[:, 0] - b[:, 2]])
+    for ea in (1, 3):
+        for eb in (1, 3):
+            dmin = np.minimum(dmin, np.hypot(a[:, ea] - b[:, eb], gap_x))
+    hit = dmin < c - _TOL
+    close[i[hit]] = True
+    close[j[hit]] = True
     return close, ov_any
 
 

@@ -200,7 +200,7 @@ def _find_col(df, names):
 # ---------------------------------------------------------------------------
 def floor_map(values, *, extent, title, label, units="mm", kind="thickness", diameter_mm=None,
               centre=(0.0, 0.0), plate=None, contours=None, patches=None, indications=None,
-              max_pixels=600_000, vmin=None, vmax=None, ax=None):
+              max_pixels=400_000, vmin=None, vmax=None, ax=None):
     """Map of one quantity over the floor.
 
     Parameters
@@ -226,7 +226,9 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     indications : DataFrame with ``x_mm, y_mm`` (and optionally ``id`` and a depth
         column): the positions are ringed, the ten deepest labelled. [mm]
     max_pixels : the grid is block-reduced (:func:`decimate`) to at most this many
-        pixels: min for thickness and life, max for loss and rate.
+        pixels: min for thickness and life, max for loss and rate.  The default keeps
+        the image no wider than the floor is drawn at 130 dpi (about 640 px), so the
+        renderer never drops a reduced pixel and the conservative reduction shows.
     vmin, vmax : colour range in internal units (default: data range; life is
         clipped to [0, 50] y).
     ax : axes to draw on (default: a new figure).
@@ -414,7 +416,7 @@ def _composite(new, old):
 
 
 def registration_overlay(new_features, old_features_before, old_features_after, *, extent,
-                         max_pixels=600_000, ax=None):
+                         max_pixels=300_000, ax=None):
     """Two-colour composite of the scans' feature masks before and after alignment.
 
     Parameters
