@@ -377,15 +377,31 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
 GEV_ALPHA = 0.05
 
 
-def _gumbel_or_gev(values, mask, **kw):
+#: Smallest block side tried when a zone is too small or narrow for the configured blocks. [mm]
+MIN_BLOCK_MM = 100.0
+
+
+def _gumbel_or_gev(values, mask, *, block_mm, pitch_mm, **kw):
     """Gumbel (the standard method for pit depths) unless the likelihood-ratio test rejects
     it at :data:`GEV_ALPHA` in favour of a GEV, which is then used with profile-likelihood
-    bounds [Coles 2001, §3.3; Laycock 1990].  ``eva_method`` in zones.csv says which."""
+    bounds [Coles 2001, §3.3; Laycock 1990].  ``eva_method`` in zones.csv says which.
+
+    Larger blocks are better than more blocks [J-STAGE 43(5):258], so the configured block
+    side is used first; only when a zone is too small or too narrow for a fit with it (too
+    few blocks reach the coverage rule) is the side halved, down to :data:`MIN_BLOCK_MM` or
+    five cells.  ``eva_block_mm`` in zones.csv gives the side used.
+    """
     from .extremes import zone_extremes
 
-    z = zone_extremes(values, mask, **kw)
+    smallest = max(MIN_BLOCK_MM, 5 * pitch_mm)
+    b = block_mm
+    while True:
+        z = zone_extremes(values, mask, block_mm=b, pitch_mm=pitch_mm, **kw)
+        if z or b / 2 < smallest:
+            break
+        b /= 2
     if z and z.lr_test is not None and z.lr_test.p_value < GEV_ALPHA:
-        g = zone_extremes(values, mask, method="gev", bound_method="profile", **kw)
+        g = zone_extremes(values, mask, method="gev", bound_method="profile", block_mm=b, pitch_mm=pitch_mm, **kw)
         if g:
             return g
     return z
@@ -462,7 +478,7 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
                 continue
             method = "gev" if z0.fit is not None and getattr(z0.fit, "distribution", "") == "gev" else "mle"
 
-            b_cells = max(1, int(round(job.block_mm / pitch)))
+            b_cells = max(1, int(round((z0.block_mm if np.isfinite(z0.block_mm) else job.block_mm) / pitch)))
             T_hidden = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
             fitter = fit_gev_mle if method == "gev" else fit_gumbel_mle
             thr = threshold or None
@@ -748,8 +764,9 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
     assumptions = list(an.assumptions)
     assumptions.append(f"Indications: connected regions (8-connected) of loss at or above "
                        f"{_reporting_depth(an.new):.2f} mm (the detection threshold, or 10 % of nominal without one).")
-    assumptions.append(f"Extreme values: blocks of {an.job.block_mm:g} mm square, counted when at least half "
-                       "scanned; Gumbel maximum likelihood with left-censoring at the detection threshold "
+    assumptions.append(f"Extreme values: blocks of {an.job.block_mm:g} mm square (halved, down to "
+                       f"{MIN_BLOCK_MM:g} mm, in zones too small or narrow for a fit; eva_block_mm gives the side "
+                       "used), counted when at least half scanned; Gumbel maximum likelihood with left-censoring at the detection threshold "
                        f"(GEV instead when the likelihood-ratio test rejects Gumbel at {GEV_ALPHA:g}); return "
                        "period T = whole zone area ÷ block area; 90 % one-sided upper bound by seeded parametric "
                        "bootstrap (profile likelihood for GEV); depth_pred_upper_mm is the predictive 90 % bound.")

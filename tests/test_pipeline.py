@@ -101,3 +101,19 @@ def test_inch_files_give_the_same_answer_as_mm_files(tmp_path):
                 "interval_code_y", "life_local_y", "interval_recommended_y"):
         np.testing.assert_allclose(b[col].to_numpy(float), a[col].to_numpy(float), rtol=1e-4, atol=1e-4,
                                    err_msg=col)
+
+
+def test_small_zones_get_extreme_values_with_smaller_blocks():
+    # Zones too small for 1 m blocks (a 3 x 4 ring-sector grid on an 8 m floor) get a fit with a
+    # halved block side instead of none; zones.csv says which side was used.  The whole
+    # interior keeps the configured 1 m blocks (larger blocks are preferred when they fit).
+    pair = make_pair(diameter_mm=8000.0, pitch_new=20.0, pitch_old=25.0, seed=8)
+    an = analyse(pair.new, pair.old, job=Job(diameter=8000.0, zone_rings=3, zone_sectors=4))
+    z = an.zone_table.set_index("zone")
+    user = z[z["kind"] == "user"]
+    assert len(user) == 12
+    smaller = user[user["eva_block_mm"] < 1000.0]
+    assert len(smaller) >= 1
+    assert np.isfinite(smaller["depth_eva_mm"]).any()
+    baseline = analyse(pair.new, pair.old, job=Job(diameter=8000.0)).zone_table.set_index("zone")
+    assert baseline.loc["interior", "eva_block_mm"] == pytest.approx(1000.0)
