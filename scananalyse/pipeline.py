@@ -774,9 +774,10 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
         "Extreme-value life: each cell's loss projected forward at its own measured top + underside rates; the "
         "life is when the deepest projected loss over the zone reaches nominal − MRT, the deepest being the "
         f"greater of the deepest scanned value and the {LIFE_LEVEL:.0%} quantile of the largest of T block maxima, "
-        "T = unscanned zone area ÷ block area. On 30 synthetic floors with pits hidden in unscanned ground this "
-        "life was at most 1.1 × the true life of all the metal in 23; a hidden pit deeper than anything scanned "
-        "cannot be ruled out by statistics: prove up unscanned areas (hand UT) where the zone's life is short.")
+        "T = unscanned zone area ÷ block area. On 30 synthetic floors whose pits fall where they may, scanned or "
+        "not, this life was at most 1.1 × the true life of all the metal in 23; with deep pits deliberately hidden "
+        "under unscanned ground, in 6. A hidden pit deeper than anything scanned cannot be ruled out by "
+        "statistics: prove up unscanned areas (hand UT) where the zone's life is short.")
     assumptions.append("Repair planning: cells that would fall below MRT before the target interval at their own "
                        "rates are grouped into patch plates; patched cells take the patch thickness and keep their "
                        "measured rates (the cause of the underside corrosion is not assumed removed).")
