@@ -119,7 +119,9 @@ class CompareResult:
             lines.append(f"proposed patch plates: {len(self.patches)}, {area:.2f} m2 in all (patches.csv, patches.dxf)")
         else:
             lines.append("proposed patch plates: none needed for the target interval")
-        lines.append(f"indications: {len(self.indications)} (indications.csv)")
+        st = self.indications["status"].value_counts() if "status" in self.indications else {}
+        parts = [f"{int(st[k])} {k}" for k in ("new", "grown", "stable", "not found") if k in st]
+        lines.append(f"indications: {len(self.indications)} (indications.csv)" + (f": {', '.join(parts)}" if parts else ""))
         for n in self.notes:
             lines.append("note: " + n)
         lines.append(f"report: {self.report_path}")
@@ -181,7 +183,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     registration : optional precomputed :class:`~scananalyse.register.Registration`.
     inputs : the job's other files already read (:func:`read_job_inputs`); read here if None.
     """
-    from . import assess, attribution, extremes, indications, rates, repair, zones
+    from . import assess, attribution, rates, zones
     from .rules import get_ruleset
 
     prog = progress or Progress(quiet=True)
@@ -549,6 +551,17 @@ def _indications(new, old, transform, lr, side, zmap, job):
         ind = ind_mod.match_indications(ind, old_ind, labels, old_labels, growth_sigma_mm=lr.growth_sigma,
                                         dt_years=lr.dt_years)
         gone = ind_mod.gone_indications(old_ind, ind)
+        if len(gone):
+            # older regions no newer one matches (repaired, replaced or below the reporting depth
+            # now): listed too, so the inspector sees what went away
+            g = gone.copy()
+            g["old_id"] = g["id"]
+            g["depth_old_mm"] = g["depth_max_mm"]
+            g["id"] = pd.NA
+            for c in ("depth_max_mm", "t_min_mm", "rate_max_mm_y", "growth_mm", "growth_rate_mm_y"):
+                g[c] = np.nan
+            g = g[[c for c in ind.columns if c in g.columns]]
+            ind = pd.concat([ind, g], ignore_index=True)
     return ind, gone
 
 
