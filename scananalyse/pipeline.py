@@ -729,6 +729,7 @@ def _figures(an: Analysis, units: str) -> dict:
 
 
 def _return_curve(z):
+    from .errors import FitError
     from .extremes import return_level, return_level_bounds
 
     if z.fit is None or z.blocks is None:
@@ -744,8 +745,8 @@ def _return_curve(z):
             b = return_level_bounds(z.fit, mx, T, level=z.level, one_sided=True, method="profile",
                                     censored=cen if cen.any() else None, threshold=z.threshold if cen.any() else None)
             ups.append(b.upper)
-        except Exception:  # bounds are a display aid here; the table's bound comes from zone_extremes
-            ups.append(np.nan)
+        except (FitError, ValueError, ArithmeticError):
+            ups.append(np.nan)  # a display aid only: the table's bound comes from zone_extremes
     return Ts, lvl, None, np.array(ups)
 
 
@@ -772,7 +773,6 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
             row["rate_eva_mm_y"] = r.depth_eva_mm
             row["rate_eva_upper_mm_y"] = r.depth_eva_upper_mm
         ext[name] = row
-    lr = an.rates
     att = an.attribution
     assumptions = list(an.assumptions)
     assumptions.append(f"Indications: connected regions (8-connected) of loss at or above "
@@ -793,7 +793,10 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
         "statistics: prove up unscanned areas (hand UT) where the zone's life is short.")
     assumptions.append("Repair planning: cells that would fall below MRT before the target interval at their own "
                        "rates are grouped into patch plates; patched cells take the patch thickness and keep their "
-                       "measured rates (the cause of the underside corrosion is not assumed removed).")
+                       "measured top-side rate and "
+                       + ("no underside rate (the user says the cause of the underside corrosion was removed)."
+                          if an.job.under_cause_removed else
+                          "their measured underside rate (the cause of the underside corrosion is not assumed removed)."))
     assumptions.append("Maps are drawn from decimated grids on big floors (minimum thickness / maximum loss and "
                        "rate per displayed pixel), so the worst value is never hidden; the tables use every cell.")
     notes = list(an.notes)
