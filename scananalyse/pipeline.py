@@ -24,7 +24,7 @@ from .job import Job
 from .progress import Progress
 from .scan import MM_PER_IN, FloorScan, to_display
 
-__all__ = ["Analysis", "CompareResult", "analyse", "write_outputs", "compare", "assess_single",
+__all__ = ["Analysis", "CompareResult", "analyse", "actions", "write_outputs", "compare", "assess_single",
            "register_files", "run_demo", "sample_dir"]
 
 STAGES_PAIR = ["load", "registration", "attribution", "rates", "zones", "extremes", "assessment",
@@ -750,6 +750,33 @@ def _return_curve(z):
     return Ts, lvl, None, np.array(ups)
 
 
+def actions(an: Analysis) -> list[str]:
+    """Plain sentences on what each zone's result asks of the inspector and the engineer."""
+    out = []
+    found = an.zone_table.set_index("zone")
+    rep = an.zones_repaired.set_index("zone") if an.zones_repaired is not None else None
+    for zone, z in found.iterrows():
+        flags = set(str(z["flags"]).split(";")) if isinstance(z["flags"], str) else set()
+        if "no-data" in flags:
+            out.append(f"Zone {zone} was not scanned: assess it by hand UT before setting its interval.")
+            continue
+        if "below-mrt" in flags:
+            out.append(f"Zone {zone} is below MRT now (thinnest {z['t_min_mm']:.2f} mm against {z['mrt_mm']:.2f} mm): "
+                       "repair before return to service.")
+        if "code-exceeds-local" in flags:
+            out.append(f"In zone {zone} the code formula gives {z['interval_code_y']:.1f} y but the co-located "
+                       f"projection from the measured rates only {z['life_local_y']:.1f} y: the formula overstates what "
+                       "the metal supports; the recommendation follows the metal.")
+        if rep is not None and zone in rep.index:
+            r = rep.loc[zone]
+            if isinstance(r["limiting"], str) and r["limiting"] == "eva" and np.isfinite(r["interval_recommended_y"]):
+                hidden = max(0.0, float(r["area_m2"]) * (1 - float(r["coverage_pct"]) / 100))
+                out.append(f"After repair, zone {zone} is limited by the extreme-value life ({r['life_eva_y']:.1f} y): "
+                           f"the {hidden:.1f} m² nobody scanned may hide deeper pits; proving them up by hand UT (adding the "
+                           "readings to the newer scan file) and re-running can lengthen the interval.")
+    return out
+
+
 def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
     from .report.html import ReportData
 
@@ -799,7 +826,7 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
                           "their measured underside rate (the cause of the underside corrosion is not assumed removed)."))
     assumptions.append("Maps are drawn from decimated grids on big floors (minimum thickness / maximum loss and "
                        "rate per displayed pixel), so the worst value is never hidden; the tables use every cell.")
-    notes = list(an.notes)
+    notes = actions(an) + list(an.notes)
     if att and att.get("cells_with_loss"):
         notes.append(
             f"Attribution: of {att['cells_with_loss']} cells with reported loss, {att['cells_top']} were attributed "
@@ -921,7 +948,7 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
                          patches=an.patches, indications=an.indications, registration=reg,
                          report_path=str(Path(out_dir) / "report.html"), units=job.units,
                          tank=an.new.meta.tank, single=single, files=files,
-                         notes=list(an.notes) + ([an.patch_note] if an.patch_note else []))
+                         notes=actions(an) + list(an.notes) + ([an.patch_note] if an.patch_note else []))
 
 
 def compare(old_path, new_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:

@@ -67,6 +67,12 @@ def test_code_formula_flagged_where_it_exceeds_co_located_life():
     assert z["interval_recommended_y"] <= z["life_local_y"]
     # the age-based underside rate is well below the measured one
     assert z["upr_mm_y"] < 0.7 * z["rate_under_max_mm_y"]
+    # and the summary says so in words
+    from scananalyse.pipeline import actions
+
+    said = actions(an)
+    assert any("zone interior the code formula gives" in a and "overstates" in a for a in said)
+    assert any(a.startswith("Zone critical was not scanned") for a in said)
 
 
 def test_single_inspection_uses_long_term_rates_only():
