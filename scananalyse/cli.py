@@ -219,7 +219,15 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def main(argv=None) -> int:
-    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault)."""
+    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault, 130 interrupted)."""
+    try:
+        return _main(argv)
+    except KeyboardInterrupt:  # an interrupt that lands outside the command itself (set-up, clean-up)
+        sys.stderr.write("scananalyse: interrupted; no complete output was written\n")
+        return 130
+
+
+def _main(argv=None) -> int:
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
@@ -230,12 +238,16 @@ def main(argv=None) -> int:
         return 2
     old_show = warnings.showwarning
     warnings.showwarning = _show_warning
-    from .outputs import interrupts_as_keyboard
+    from .outputs import interrupt_count, interrupts_as_keyboard
 
+    seen = interrupt_count()
     try:
         with warnings.catch_warnings(), interrupts_as_keyboard():
             warnings.simplefilter("always", ScanWarning)
-            return _COMMANDS[args.command](args)
+            code = _COMMANDS[args.command](args)
+        if interrupt_count() > seen:  # an interrupt that a finaliser swallowed: never report success
+            raise KeyboardInterrupt
+        return code
     except InputError as exc:
         sys.stderr.write(f"scananalyse: error: {exc}\n")
         return 2
@@ -245,7 +257,9 @@ def main(argv=None) -> int:
     except BrokenPipeError:
         return 1
     except Exception as exc:  # an internal fault: say so in one line, traceback only with --debug
-        if isinstance(exc.__context__, KeyboardInterrupt) or isinstance(exc.__cause__, KeyboardInterrupt):
+        if (interrupt_count() > seen or isinstance(exc.__context__, KeyboardInterrupt)
+                or isinstance(exc.__cause__, KeyboardInterrupt)):
+            # an interrupt that surfaced as another error (e.g. swallowed in a finaliser)
             sys.stderr.write("scananalyse: interrupted; no complete output was written\n")
             return 130
         if args.debug:

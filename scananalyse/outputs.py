@@ -23,7 +23,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["output_folder", "write_json", "write_results_h5", "interrupts_as_keyboard"]
+__all__ = ["output_folder", "write_json", "write_results_h5", "interrupts_as_keyboard", "interrupt_count"]
 
 #: Name of the marker file written last into every complete output folder.
 COMPLETE_MARKER = "COMPLETE"
@@ -31,19 +31,38 @@ COMPLETE_MARKER = "COMPLETE"
 
 @contextmanager
 def interrupts_as_keyboard():
-    """Turn SIGTERM into KeyboardInterrupt for the duration, so cleanup runs."""
+    """Turn SIGTERM (and SIGINT) into KeyboardInterrupt for the duration, so cleanup runs.
+
+    Every interrupt is also counted (:func:`interrupt_count`): a KeyboardInterrupt raised while
+    Python runs a weak-reference callback or a finaliser (matplotlib, h5py) is swallowed as
+    "ignored", so :func:`output_folder` checks the record before it declares a folder
+    complete, and the CLI before it reports success.
+    """
     def _handler(signum, frame):
+        _INTERRUPTS.append(signum)
         raise KeyboardInterrupt(f"signal {signum}")
 
     try:
-        old = signal.signal(signal.SIGTERM, _handler)
+        old_term = signal.signal(signal.SIGTERM, _handler)
+        old_int = signal.signal(signal.SIGINT, _handler)
     except ValueError:  # not the main thread (e.g. a Dask worker thread)
         yield
         return
     try:
         yield
     finally:
-        signal.signal(signal.SIGTERM, old)
+        signal.signal(signal.SIGTERM, old_term)
+        signal.signal(signal.SIGINT, old_int)
+
+
+#: Signals received by :func:`interrupts_as_keyboard` handlers in this process.
+_INTERRUPTS: list = []
+
+
+def interrupt_count() -> int:
+    """How many interrupts :func:`interrupts_as_keyboard` handlers have received in this
+    process; callers compare it before and after a piece of work."""
+    return len(_INTERRUPTS)
 
 
 @contextmanager
@@ -62,11 +81,14 @@ def output_folder(path, *, force: bool = False):
     parent = target.resolve().parent
     parent.mkdir(parents=True, exist_ok=True)
     # not mkdtemp: it makes the folder 0700; an output folder gets the ordinary umask mode
+    seen = interrupt_count()
     tmp = parent / f".{target.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
     tmp.mkdir(0o777)
     try:
         with interrupts_as_keyboard():
             yield tmp
+            if interrupt_count() > seen:  # an interrupt swallowed somewhere inside (see interrupts_as_keyboard)
+                raise KeyboardInterrupt("interrupted while writing")
             (tmp / COMPLETE_MARKER).write_text("complete\n")
             if target.exists():
                 old = parent / f".{target.name}.old-{os.getpid()}"

@@ -63,3 +63,25 @@ def test_results_h5_and_json(tmp_path):
         assert f["timings"].attrs["load"] == 0.5 and "none" not in f["maps"]
     write_json({"a": float("nan"), "b": [1.0, float("inf")], "c": np.float32(2.5)}, tmp_path / "x.json")
     assert (tmp_path / "x.json").read_text().replace(" ", "").replace("\n", "") == '{"a":null,"b":[1.0,null],"c":2.5}'
+
+
+def test_interrupt_swallowed_inside_the_block_still_leaves_nothing(tmp_path):
+    # Python swallows a KeyboardInterrupt raised in a weak-reference callback or finaliser
+    # ("Exception ignored in ..."); the handler also counts the signal, and the folder is
+    # not declared complete when one arrived during the block.
+    import os
+    import signal
+
+    target = tmp_path / "out"
+    with pytest.raises(KeyboardInterrupt):
+        with output_folder(target) as tmp:
+            (tmp / "a.txt").write_text("1")
+            try:
+                os.kill(os.getpid(), signal.SIGTERM)  # handled: KeyboardInterrupt raised here...
+            except KeyboardInterrupt:
+                pass  # ...and swallowed, as a finaliser would
+    assert list(tmp_path.iterdir()) == []
+    # a later, uninterrupted run in the same process is not affected
+    with output_folder(target) as tmp:
+        (tmp / "b.txt").write_text("2")
+    assert (target / "b.txt").exists()
