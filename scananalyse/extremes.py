@@ -34,6 +34,7 @@ __all__ = [
     "EULER_GAMMA",
     "MIN_UNCENSORED",
     "BlockMaxima",
+    "projected_block_maxima",
     "GumbelFit",
     "GEVFit",
     "LRTest",
@@ -390,6 +391,67 @@ def block_maxima(values, *, valid=None, block_cells=None, labels=None,
                        threshold=None if threshold is None else float(threshold))
 
 
+def projected_block_maxima(depth, rate, *, valid, block_cells, min_coverage=0.5, threshold=None):
+    r"""Block maxima of a loss projected linearly in time, for many horizons at one cost.
+
+    ``maxima_at(H)`` returns what ``block_maxima(depth + rate * H, valid=valid,
+    block_cells=block_cells, min_coverage=min_coverage, threshold=threshold)`` returns,
+    without passing over the whole grid for each horizon: the counted tiles (the
+    coverage rule does not depend on H) are gathered once into a tile-major array, and
+    each call is one multiply-add and one contiguous maximum per tile.
+
+    Parameters
+    ----------
+    depth : (M, N) array_like
+        Loss now; NaN where not scanned. [mm]
+    rate : (M, N) array_like
+        Its growth rate; NaN is taken as 0. [mm/y]
+    valid : (M, N) bool array_like
+        Cells examined (scanned, in the zone). [-]
+    block_cells, min_coverage, threshold : as for :func:`block_maxima`. [cells, -, mm]
+
+    Returns
+    -------
+    callable
+        ``maxima_at(H) -> BlockMaxima`` for a horizon H. [y]
+    """
+    d = np.asarray(depth, dtype=np.float32)
+    r = np.nan_to_num(np.asarray(rate, dtype=np.float32), nan=0.0)
+    ok = np.asarray(valid, dtype=bool)
+    if d.shape != ok.shape or r.shape != d.shape:
+        raise InputError("projected_block_maxima: fields 'depth', 'rate' and 'valid' must have one shape")
+    bm0 = block_maxima(d, valid=ok, block_cells=block_cells, min_coverage=min_coverage,
+                       threshold=threshold)
+    b = int(block_cells)
+    m, n = d.shape
+    nbr, nbc = -(-m // b), -(-n // b)
+    tiles = bm0.keys[:, 0] * nbc + bm0.keys[:, 1] if bm0.n_blocks else np.zeros(0, dtype=np.int64)
+
+    def gather(a, fill):
+        # the counted tiles' cells, one row per tile (rows padded with ``fill``)
+        pad = np.full((nbr * b, nbc * b), fill, dtype=np.float32)
+        pad[:m, :n] = a
+        return pad.reshape(nbr, b, nbc, b).transpose(0, 2, 1, 3).reshape(nbr * nbc, b * b)[tiles]
+
+    use = ok & np.isfinite(d)
+    d_t = gather(np.where(use, d, -np.inf), -np.inf)
+    r_t = gather(np.where(use, r, 0.0), 0.0)
+    del use
+    thr = None if threshold is None else float(threshold)
+
+    def maxima_at(horizon: float) -> BlockMaxima:
+        mx = (d_t + r_t * np.float32(horizon)).max(axis=1).astype(float) if tiles.size else np.zeros(0)
+        none = ~np.isfinite(mx)
+        cens = none.copy()
+        if thr is not None:
+            cens |= mx < thr
+        return BlockMaxima(maxima=np.where(none, np.nan, mx), censored=cens, coverage=bm0.coverage,
+                           area_cells=bm0.area_cells, block_area_cells=bm0.block_area_cells,
+                           keys=bm0.keys, n_candidates=bm0.n_candidates, threshold=thr)
+
+    return maxima_at
+
+
 # --------------------------------------------------------------------------
 # Fit results
 # --------------------------------------------------------------------------
@@ -725,12 +787,13 @@ def _gev_optimise(xu, k, u, start, *, restarts=True):
         return -_gev_loglik(loc0 + sc0 * th[0], sc0 * math.exp(th[1]), th[2], xu, k, u)
 
     best = None
+    # from a nearby solution (no restarts) the parameters are wanted to ~1e-7 of the scale
+    tol = {"xatol": 1e-9, "fatol": 1e-12} if restarts else {"xatol": 1e-7, "fatol": 1e-10}
     for xi0 in ((start[2], -0.1, 0.1) if restarts else (start[2],)):
         th = np.array([0.0, 0.0, xi0])
         if not np.isfinite(nll(th)):
             continue
-        res = optimize.minimize(nll, th, method="Nelder-Mead",
-                                options={"xatol": 1e-9, "fatol": 1e-12, "maxiter": 4000})
+        res = optimize.minimize(nll, th, method="Nelder-Mead", options={**tol, "maxiter": 4000})
         if best is None or res.fun < best.fun:
             best = res
     if best is None:
@@ -745,7 +808,7 @@ def _gev_optimise(xu, k, u, start, *, restarts=True):
             -float(res.fun))
 
 
-def fit_gev_mle(x, *, censored=None, threshold=None) -> GEVFit:
+def fit_gev_mle(x, *, censored=None, threshold=None, start=None) -> GEVFit:
     r"""GEV fit by maximum likelihood, with left-censored blocks.
 
     Parameters
@@ -756,6 +819,10 @@ def fit_gev_mle(x, *, censored=None, threshold=None) -> GEVFit:
         True for left-censored blocks (default: ``x < threshold``).
     threshold : float, optional
         Censoring threshold; censored blocks contribute :math:`\ln F(u)`. [mm or mm/y]
+    start : (loc, scale, shape), optional
+        A nearby solution (e.g. the fit of slightly different maxima): one optimisation
+        from it instead of the restarts; if it does not reach the Gumbel likelihood the
+        full restarts run.  [mm or mm/y, -]
 
     Returns
     -------
@@ -787,7 +854,20 @@ def fit_gev_mle(x, *, censored=None, threshold=None) -> GEVFit:
     """
     g = fit_gumbel_mle(x, censored=censored, threshold=threshold)
     xu, k, u = _prepare(x, censored, threshold, name="fit_gev_mle")
-    out = _gev_optimise(xu, k, u, (g.loc, g.scale, 0.0))
+    out = None
+    if start is not None and np.all(np.isfinite(start)) and start[1] > 0:
+        loc0, sc0, xi0 = (float(v) for v in start)
+        # widen the start's scale until every value (and the threshold) lies inside its support
+        lo = min(float(xu.min()), u) if k and u is not None else float(xu.min())
+        if xi0 < 0:
+            sc0 = max(sc0, 1.1 * -xi0 * (float(xu.max()) - loc0))
+        elif xi0 > 0:
+            sc0 = max(sc0, 1.1 * xi0 * (loc0 - lo))
+        out = _gev_optimise(xu, k, u, (loc0, sc0, xi0), restarts=False)
+        if out is not None and (out[3] < g.loglik - 1e-6 or out[2] <= -1.0):
+            out = None
+    if out is None:
+        out = _gev_optimise(xu, k, u, (g.loc, g.scale, 0.0))
     if out is None:
         raise FitError("fit_gev_mle: the likelihood maximisation did not converge")
     loc, scale, shape, ll = out
@@ -1066,8 +1146,9 @@ def _profile_bounds(fit, xu, k, u, T, crit, one_sided):
                         break
             if not np.isfinite(f(th0)):
                 continue
+            # the deviance is wanted to about 1e-6 against a chi-squared quantile of order 1
             r = optimize.minimize(f, th0, method="Nelder-Mead",
-                                  options={"xatol": 1e-9, "fatol": 1e-11, "maxiter": 3000})
+                                  options={"xatol": 1e-7, "fatol": 1e-9, "maxiter": 3000})
             best = min(best, r.fun)
         return 2.0 * (best - nll_hat) - crit
 
@@ -1077,8 +1158,8 @@ def _profile_bounds(fit, xu, k, u, T, crit, one_sided):
         b = zhat + sign * step
         for _ in range(60):
             if dev(b) > 0:
-                return optimize.brentq(dev, a, b, xtol=1e-9 * fit.scale) if sign > 0 else \
-                    optimize.brentq(dev, b, a, xtol=1e-9 * fit.scale)
+                return optimize.brentq(dev, a, b, xtol=1e-6 * fit.scale) if sign > 0 else \
+                    optimize.brentq(dev, b, a, xtol=1e-6 * fit.scale)
             a, step = b, step * 2.0
             b = zhat + sign * step
         raise FitError("return_level_bounds: the profile likelihood does not reach the bound")
@@ -1492,7 +1573,7 @@ def _predictive_upper(fit, loc, scale, shape, T, level):
 def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0,
                   threshold=None, min_coverage=0.5, level=0.9, method="mle", seed=0,
                   valid=None, bound_method="bootstrap", n_boot=1000,
-                  gev_test=True) -> ZoneExtremes:
+                  gev_test=True, gev_alpha=0.05) -> ZoneExtremes:
     r"""Deepest value to expect over a whole zone, from block maxima.
 
     Parameters
@@ -1515,9 +1596,12 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         Least valid fraction of a block for it to count. [-]
     level : float
         One-sided confidence level of the upper bounds. [-]
-    method : {"mle", "gev", "lmoments", "moments"}
+    method : {"mle", "gev", "auto", "lmoments", "moments"}
         Estimator: Gumbel MLE (censored when a threshold is given), GEV MLE,
-        Gumbel L-moments or moments (the last two on uncensored blocks only).
+        "auto" (Gumbel MLE unless the likelihood-ratio test rejects it at
+        ``gev_alpha`` in favour of the GEV, which is then used with profile bounds:
+        Coles 2001 §3.3), Gumbel L-moments or moments (the last two on uncensored
+        blocks only).
     seed : int
         Seed of the bootstrap. [-]
     valid : (M, N) bool array_like, optional
@@ -1531,6 +1615,8 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         Run the likelihood-ratio test of Gumbel against GEV (a GEV fit, the
         costliest step after the bootstrap); False leaves ``lr_test`` None, for
         callers that only need the bounds (e.g. a search over a horizon). [-]
+    gev_alpha : float
+        Level of that test for ``method="auto"``. [-]
 
     Returns
     -------
@@ -1560,8 +1646,8 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         raise InputError("zone_extremes: fields 'pitch_mm' and 'block_mm' must be > 0")
     if not zone_area_mm2 > 0:
         raise InputError(f"zone_extremes: field 'zone_area_mm2' must be > 0, got {zone_area_mm2}")
-    if method not in _FITTERS:
-        raise InputError(f"zone_extremes: field 'method' must be one of {sorted(_FITTERS)}, "
+    if method not in _FITTERS and method != "auto":
+        raise InputError(f"zone_extremes: field 'method' must be one of {sorted(_FITTERS) + ['auto']}, "
                          f"got {method!r}")
     ok = zm & (np.isfinite(v) if valid is None else np.asarray(valid, dtype=bool))
     b = max(1, int(round(block_mm / pitch_mm)))
@@ -1587,11 +1673,25 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
                             n_censored=int(cens.sum()), warnings=tuple(warn), blocks=bm, **common)
     if method in ("lmoments", "moments") and cens.any():
         warn.append(f"{method} ignores the {int(cens.sum())} censored blocks (biased high)")
+    lr = None
+    lr_done = False
     try:
-        fit = _FITTERS[method](x, cens, threshold)
+        fit = _FITTERS["mle" if method == "auto" else method](x, cens, threshold)
     except FitError as exc:
         return ZoneExtremes(reason=str(exc), observed_max=obs, n_blocks=bm.n_blocks,
                             n_censored=int(cens.sum()), warnings=tuple(warn), blocks=bm, **common)
+    if method == "auto":
+        # one GEV fit serves both the test and, when the test rejects the Gumbel, the estimate
+        lr_done = True
+        try:
+            lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=threshold if cens.any() else None,
+                                       alpha=gev_alpha)
+        except FitError as exc:
+            warn.append(f"GEV test not available: {exc}")
+        if lr is not None and lr.reject_gumbel:
+            fit = lr.gev
+            if bound_method == "bootstrap":
+                bound_method = "profile"  # the GEV bootstrap refits one by one
     if method in ("lmoments", "moments"):
         x, cens = x[~cens], cens[~cens]
     T = T_raw
@@ -1615,14 +1715,15 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         return ZoneExtremes(reason=str(exc), observed_max=obs, n_blocks=bm.n_blocks,
                             n_censored=int(cens.sum()), fit=fit, warnings=tuple(warn), blocks=bm,
                             **common)
-    try:
-        lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=u) if gev_test else None
-        if lr is not None and lr.reject_gumbel and fit.distribution == "gumbel":
-            warn.append(f"GEV fits better than Gumbel (p = {lr.p_value:.3f}, "
-                        f"xi = {lr.gev.shape:.2f})")
-    except FitError as exc:
-        lr = None
-        warn.append(f"GEV test not available: {exc}")
+    if not lr_done:
+        try:
+            lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=u) if gev_test else None
+        except FitError as exc:
+            lr = None
+            warn.append(f"GEV test not available: {exc}")
+    if lr is not None and lr.reject_gumbel and fit.distribution == "gumbel":
+        warn.append(f"GEV fits better than Gumbel (p = {lr.p_value:.3f}, "
+                    f"xi = {lr.gev.shape:.2f})")
     if np.isfinite(obs) and obs > bounds.upper:
         warn.append("deepest measured value exceeds the upper bound of the return level")
     xu = x[~cens]

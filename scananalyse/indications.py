@@ -235,21 +235,17 @@ def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells
     Labelling the older scan after bilinear resampling would lose shallow indications:
     a reported cell mixed with its censored (nominal) neighbours drops below the
     reporting depth. So the regions are labelled on the older grid and carried by
-    nearest cell (``register.resample_onto`` carries the ``plate`` layer that way);
-    their depth is the older scan's own reading, not a smoothed one.
+    nearest cell (``register.resample_layer``); their depth is the older scan's own
+    reading, not a smoothed one.
     """
-    import dataclasses
-
-    from .register import resample_onto
+    from .register import resample_layer
     from .rates import loss_map
 
     old_loss = loss_map(old.thickness, float(old.meta.nominal))
     lab_old = label_indications(old_loss, reporting_depth_mm=reporting_depth_mm,
                                 min_cells=min_cells)
     n = int(lab_old.max())
-    carrier = dataclasses.replace(old, plate=lab_old, side=None)
-    lab_new = resample_onto(carrier, new, transform).plate
-    lab_new = np.where(lab_new > 0, lab_new, 0).astype(np.int32)
+    lab_new = resample_layer(lab_old.astype(np.int32, copy=False), old, new, transform, fill=0)
     present = np.zeros(n + 1, dtype=bool)
     present[np.unique(lab_new)] = True
     present[0] = False

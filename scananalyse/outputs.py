@@ -130,6 +130,43 @@ def write_json(obj, path):
     Path(path).write_text(json.dumps(_clean(obj), indent=2, default=_json_default) + "\n")
 
 
+#: Chunk side of the result maps [cells] and their deflate level (1: fast, the maps
+#: compress well after the byte shuffle anyway).
+CHUNK = 256
+GZIP_LEVEL = 1
+
+
+def _packed_chunk(a: np.ndarray, r0: int, c0: int, chunks) -> bytes:
+    """One chunk as HDF5 stores it with the shuffle and deflate filters.
+
+    The chunk is padded to the full chunk shape (edge chunks), its bytes shuffled (the
+    HDF5 shuffle filter: all first bytes of the elements, then all second bytes, ...)
+    and compressed with zlib, the format of HDF5's deflate filter.  zlib releases the GIL,
+    so chunks compress in parallel threads.
+    """
+    import zlib
+
+    block = a[r0:r0 + chunks[0], c0:c0 + chunks[1]]
+    if block.shape != tuple(chunks):
+        full = np.zeros(chunks, dtype=a.dtype)
+        full[:block.shape[0], :block.shape[1]] = block
+        block = full
+    raw = np.ascontiguousarray(block).view(np.uint8).reshape(-1, a.dtype.itemsize)
+    return zlib.compress(np.ascontiguousarray(raw.T).tobytes(), GZIP_LEVEL)
+
+
+def _write_chunks(dset, a: np.ndarray, chunks) -> None:
+    """Fill a chunked (shuffle + deflate) dataset from ``a``, compressing chunks on all
+    cores and writing them in order with ``write_direct_chunk``."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    offsets = [(r, c) for r in range(0, a.shape[0], chunks[0]) for c in range(0, a.shape[1], chunks[1])]
+    workers = max(1, min(4, os.cpu_count() or 1))
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        for (r, c), data in zip(offsets, pool.map(lambda rc: _packed_chunk(a, rc[0], rc[1], chunks), offsets)):
+            dset.id.write_direct_chunk((r, c), data)
+
+
 def write_results_h5(path, maps: dict, *, x0: float, y0: float, pitch: float, attrs: dict | None = None,
                      timings: dict | None = None):
     """Write every map on the new scan's grid into one HDF5 file.
@@ -165,8 +202,13 @@ def write_results_h5(path, maps: dict, *, x0: float, y0: float, pitch: float, at
                 a = a.astype(np.uint8)
             elif a.dtype.kind == "f" and a.dtype != np.float32:
                 a = a.astype(np.float32)
-            chunks = (min(256, a.shape[0]), min(256, a.shape[1])) if a.ndim == 2 and a.size else None
-            g.create_dataset(name, data=a, compression="gzip", compression_opts=1, shuffle=True, chunks=chunks)
+            if a.ndim == 2 and a.size:
+                chunks = (min(CHUNK, a.shape[0]), min(CHUNK, a.shape[1]))
+                d = g.create_dataset(name, shape=a.shape, dtype=a.dtype, compression="gzip",
+                                     compression_opts=GZIP_LEVEL, shuffle=True, chunks=chunks)
+                _write_chunks(d, a, chunks)
+            else:
+                g.create_dataset(name, data=a)
         if timings:
             t = f.create_group("timings")
             for k, v in timings.items():

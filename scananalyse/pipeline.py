@@ -227,8 +227,12 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     with prog.stage("rates"):
         ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
         lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
+        from .indications import label_indications
+
+        # the indication regions (labelled once: the rate fill and the indication list use them)
+        ind_labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
         if old_on_new is not None:
-            lr, n_filled = _fill_uncovered_rates(lr, new, old_on_new)
+            lr, n_filled = _fill_uncovered_rates(lr, new, old_on_new, ind_labels)
             if n_filled:
                 assumptions.append(
                     f"{n_filled} cells of indications lay outside the older scan's coverage: they take the "
@@ -290,7 +294,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     # --- indications ---------------------------------------------------------------
     with prog.stage("indications"):
-        ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job)
+        ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job,
+                                 labels=ind_labels)
 
     # --- repairs -------------------------------------------------------------------
     with prog.stage("repairs"):
@@ -304,42 +309,54 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     **rep)
 
 
-def _fill_uncovered_rates(lr, new, old_on_new):
+def _fill_uncovered_rates(lr, new, old_on_new, labels=None):
     """Short-term rates for indication cells the older scan did not cover.
 
     Such a cell has only a long-term rate, which understates a pit that began late.  It takes
     its own loss times the largest ratio of short-term rate to loss measured in the same
     connected indication (a pit deepening in proportion, as its measured part does); the
     governing rate is then recomputed as the greater of short- and long-term.
+    ``labels`` is the indication label map of ``lr.loss`` (computed here if None).  Only the
+    labelled cells are visited.
     Returns the updated :class:`~scananalyse.rates.LossRates` and the number of cells filled.
     """
     import dataclasses
 
     from .indications import label_indications
 
-    labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
-    n = int(labels.max())
-    uncovered = (labels > 0) & ~np.isfinite(old_on_new.thickness) & np.isfinite(new.thickness) & ~lr.repaired
-    if n == 0 or not uncovered.any():
+    if labels is None:
+        labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
+    n = int(labels.max()) if labels.size else 0
+    if n == 0:
+        return lr, 0
+    idx = np.flatnonzero(labels)
+    lab = labels.reshape(-1)[idx]
+    uncovered = (~np.isfinite(old_on_new.thickness.reshape(-1)[idx]) & np.isfinite(new.thickness.reshape(-1)[idx])
+                 & ~lr.repaired.reshape(-1)[idx])
+    if not uncovered.any():
         return lr, 0
     changes = {}
+    filled_any = np.zeros(idx.size, dtype=bool)
     for side in ("top", "under"):
-        short = getattr(lr, f"rate_short_{side}")
-        loss_s = getattr(lr, f"loss_{side}")
+        short_full = getattr(lr, f"rate_short_{side}")
+        short = short_full.reshape(-1)[idx]
+        loss_s = getattr(lr, f"loss_{side}").reshape(-1)[idx]
         with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = np.where((labels > 0) & np.isfinite(short) & (loss_s > 0), short / loss_s, -1.0)
-        sel = labels > 0
+            ratio = np.where(np.isfinite(short) & (loss_s > 0), short / loss_s, -1.0).astype(np.float32)
         best = np.full(n + 1, -1.0, dtype=np.float32)
-        np.maximum.at(best, labels[sel], ratio[sel].astype(np.float32))
-        fill = np.where(uncovered & (best[labels] >= 0), best[labels] * np.nan_to_num(loss_s), -1.0)
+        np.maximum.at(best, lab, ratio)
+        b = best[lab]
+        fill = np.where(uncovered & (b >= 0), b * np.nan_to_num(loss_s), -1.0)
         take = uncovered & (fill >= 0)
-        new_short = short.copy()
-        new_short[take] = fill[take]
+        filled_any |= take
+        new_short = short_full.copy()
+        new_short.reshape(-1)[idx[take]] = fill[take]
         changes[f"rate_short_{side}"] = new_short
-        gov = getattr(lr, f"rate_{side}").copy()
-        gov[take] = np.fmax(gov[take], fill[take])
-        changes[f"rate_{side}"] = gov.astype(np.float32)
-    filled = int(np.count_nonzero(uncovered & ((changes["rate_short_top"] >= 0) | (changes["rate_short_under"] >= 0))))
+        gov = getattr(lr, f"rate_{side}").astype(np.float32, copy=True)
+        g = gov.reshape(-1)
+        g[idx[take]] = np.fmax(g[idx[take]], fill[take])
+        changes[f"rate_{side}"] = gov
+    filled = int(np.count_nonzero(filled_any))
     counts = dict(lr.counts)
     counts["short_rate_filled_from_indication"] = filled
     return dataclasses.replace(lr, counts=counts, **changes), filled
@@ -398,14 +415,14 @@ def _gumbel_or_gev(values, mask, *, block_mm, pitch_mm, **kw):
     smallest = max(MIN_BLOCK_MM, 5 * pitch_mm)
     b = block_mm
     while True:
-        z = zone_extremes(values, mask, block_mm=b, pitch_mm=pitch_mm, **kw)
+        # "auto": one block-maxima pass and one GEV fit serve the test and the estimate
+        z = zone_extremes(values, mask, method="auto", gev_alpha=GEV_ALPHA, block_mm=b, pitch_mm=pitch_mm, **kw)
+        if not z and z.fit is not None and z.fit.distribution == "gev":
+            # the GEV's bounds failed: the Gumbel, as the test's fallback
+            z = zone_extremes(values, mask, block_mm=b, pitch_mm=pitch_mm, **kw)
         if z or b / 2 < smallest:
             break
         b /= 2
-    if z and z.lr_test is not None and z.lr_test.p_value < GEV_ALPHA:
-        g = zone_extremes(values, mask, method="gev", bound_method="profile", block_mm=b, pitch_mm=pitch_mm, **kw)
-        if g:
-            return g
     return z
 
 
@@ -451,7 +468,7 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
     Returns zone -> ``{"life_eva_y", "method", "reason"}``.
     """
     from .errors import FitError
-    from .extremes import block_maxima, fit_gev_mle, fit_gumbel_mle, max_quantile
+    from .extremes import fit_gev_mle, fit_gumbel_mle, max_quantile, projected_block_maxima
 
     scanned = np.isfinite(thickness)
     depth0 = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
@@ -482,15 +499,26 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
 
             b_cells = max(1, int(round((z0.block_mm if np.isfinite(z0.block_mm) else job.block_mm) / pitch)))
             T_hidden = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
-            fitter = fit_gev_mle if method == "gev" else fit_gumbel_mle
             thr = threshold or None
+            # the previous horizon's GEV (first: the depth fit at H = 0): a warm start for the next
+            last = [(z0.fit.loc, z0.fit.scale, z0.fit.shape) if method == "gev" else None]
+
+            def fitter(x, censored, threshold):
+                if method != "gev":
+                    return fit_gumbel_mle(x, censored=censored, threshold=threshold)
+                f = fit_gev_mle(x, censored=censored, threshold=threshold, start=last[0])
+                last[0] = (f.loc, f.scale, f.shape)
+                return f
+
+            d_zone, r_zone = depth0[in_zone], rate[in_zone]
+            maxima_at = (projected_block_maxima(depth0, rate, valid=in_zone, block_cells=b_cells, min_coverage=0.5,
+                                                threshold=thr) if hidden_mm2 > 0 else None)
 
             def excess(h):
-                proj = depth0 + rate * np.float32(h)
-                seen = float(np.nanmax(proj[in_zone]))
-                if hidden_mm2 <= 0:
+                seen = float(np.nanmax(d_zone + r_zone * np.float32(h)))
+                if maxima_at is None:
                     return seen - allowance
-                bm = block_maxima(proj, valid=in_zone, block_cells=b_cells, min_coverage=0.5, threshold=thr)
+                bm = maxima_at(h)
                 x, cens = bm.maxima, bm.censored
                 if thr is None:
                     x, cens = x[~cens], None
@@ -535,7 +563,7 @@ def _reporting_depth(new: FloorScan) -> float:
     return float(thr) if thr else 0.1 * new.meta.nominal
 
 
-def _indications(new, old, transform, lr, side, zmap, job):
+def _indications(new, old, transform, lr, side, zmap, job, labels=None):
     from . import indications as ind_mod
 
     depth = _reporting_depth(new)
@@ -543,7 +571,7 @@ def _indications(new, old, transform, lr, side, zmap, job):
     ind, labels = ind_mod.find_indications(lr.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
                                            reporting_depth_mm=depth, side=side, plate=new.plate,
                                            zone_labels=zmap.labels, zone_names=zmap.names, rate=rate,
-                                           thickness=new.thickness, return_labels=True)
+                                           thickness=new.thickness, labels=labels, return_labels=True)
     gone = None
     if old is not None:
         old_ind, old_labels = ind_mod.old_indications(old, new, transform, reporting_depth_mm=depth,
@@ -698,12 +726,16 @@ def _figures(an: Analysis, units: str) -> dict:
                             label="remaining thickness", kind="thickness",
                             patches=an.patches if len(an.patches) else None, indications=None, **common)))
     if an.registration is not None and an.old_on_new is not None:
-        from .register import RigidTransform, resample_onto
+        from .register import RigidTransform, resample_layer
 
         feat_new = ~new.scanned | (np.nan_to_num(lr.loss) >= _reporting_depth(new))
-        raw = resample_onto(an.old, new, RigidTransform())
-        old_loss_raw = new.meta.nominal - raw.thickness
-        feat_before = ~np.isfinite(raw.thickness) | (np.nan_to_num(old_loss_raw) >= _reporting_depth(new))
+        # before alignment: the older scan's features on its own grid, placed by its raw
+        # coordinates (nearest cell; a display aid, so no interpolation is needed)
+        with np.errstate(invalid="ignore"):
+            feat_old = ~np.isfinite(an.old.thickness) | ((an.old.meta.nominal - an.old.thickness)
+                                                         >= _reporting_depth(new))
+        feat_before = resample_layer(feat_old, an.old, new, RigidTransform(), fill=True)
+        del feat_old
         old_loss = new.meta.nominal - an.old_on_new.thickness
         feat_after = ~np.isfinite(an.old_on_new.thickness) | (np.nan_to_num(old_loss) >= _reporting_depth(new))
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "

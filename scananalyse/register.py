@@ -74,6 +74,7 @@ __all__ = [
     "register",
     "fit_control_points",
     "read_control_points",
+    "resample_layer",
     "resample_onto",
     "sample_thickness",
     "feature_image",
@@ -536,6 +537,54 @@ def _chunk_rows(shape, max_cells=1 << 20) -> int:
     return max(1, int(max_cells // max(1, shape[1])))
 
 
+def _old_indices(old: FloorScan, new: FloorScan, transform: RigidTransform):
+    """Fractional (row, col) indices into ``old`` of ``new``'s cell centres, in row chunks.
+
+    Yields ``(r0, r1, ri, ci)`` for new rows ``r0:r1`` (float64 arrays of about 10^6 cells):
+    the indices are affine in the new cell indices, so no full-grid arrays are made.
+    """
+    inv = transform.inverse()
+    c, s = math.cos(inv.theta), math.sin(inv.theta)
+    h, w = new.shape
+    xs = new.x
+    ys = new.y
+    step = _chunk_rows((h, w))
+    for r0 in range(0, h, step):
+        r1 = min(h, r0 + step)
+        yy = ys[r0:r1, None]
+        xo = c * xs[None, :] - s * yy + inv.dx_mm
+        yo = s * xs[None, :] + c * yy + inv.dy_mm
+        ri = (yo - old.y0) / old.pitch
+        ci = (xo - old.x0) / old.pitch
+        del xo, yo
+        yield r0, r1, ri, ci
+
+
+def resample_layer(layer: np.ndarray, old: FloorScan, new: FloorScan, transform: RigidTransform, *,
+                   fill) -> np.ndarray:
+    """A layer on the older scan's grid (labels, ids, codes) carried onto the newer grid by
+    nearest cell.
+
+    Parameters
+    ----------
+    layer : array of ``old``'s grid shape (any dtype). [-]
+    old, new : the two scans (their grids are used). [-]
+    transform : old-to-new transform (from :func:`register`). [-]
+    fill : value where the nearest older cell is outside the older grid. [-]
+
+    Returns
+    -------
+    Array of ``new``'s grid shape and ``layer``'s dtype. [-]
+    """
+    layer = np.asarray(layer)
+    if layer.shape != old.shape:
+        raise ValueError(f"layer shape {layer.shape} is not the older grid's {old.shape}")
+    out = np.empty(new.shape, dtype=layer.dtype)
+    for r0, r1, ri, ci in _old_indices(old, new, transform):
+        out[r0:r1] = _nearest(layer, ri, ci, fill)
+    return out
+
+
 def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> FloorScan:
     """The older scan's values on the newer scan's grid.
 
@@ -562,24 +611,11 @@ def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> 
     area is kept right up to seams and edges, and no value mixes in an unscanned cell.
     Work is done in row chunks (about 10^6 cells) so no full-grid float64 arrays are made.
     """
-    inv = transform.inverse()
-    c, s = math.cos(inv.theta), math.sin(inv.theta)
     h, w = new.shape
     thick = np.empty((h, w), dtype=np.float32)
     side = None if old.side is None else np.empty((h, w), dtype=np.int8)
     plate = None if old.plate is None else np.empty((h, w), dtype=np.int32)
-    xs = new.x
-    ys = new.y
-    step = _chunk_rows((h, w))
-    # Fractional old indices are affine in the new cell indices: compute per chunk.
-    for r0 in range(0, h, step):
-        r1 = min(h, r0 + step)
-        yy = ys[r0:r1, None]
-        xo = c * xs[None, :] - s * yy + inv.dx_mm
-        yo = s * xs[None, :] + c * yy + inv.dy_mm
-        ri = (yo - old.y0) / old.pitch
-        ci = (xo - old.x0) / old.pitch
-        del xo, yo
+    for r0, r1, ri, ci in _old_indices(old, new, transform):
         thick[r0:r1] = _bilinear_nan(old.thickness, ri, ci)
         if side is not None:
             side[r0:r1] = _nearest(old.side, ri, ci, SIDE_UNKNOWN)
