@@ -681,8 +681,13 @@ FLAGS_EXPLAINED = {
 }
 
 
-def _figures(an: Analysis, units: str) -> dict:
-    """Every report figure as (section, caption, Figure)."""
+def _figure_specs(an: Analysis, units: str) -> list:
+    """Every report figure as ``(section, slug, caption, build)``; ``build()`` draws the Figure.
+
+    The figures are built lazily, so the report's renderer can draw them in any process.
+    """
+    from functools import partial
+
     from .report import figures as F
 
     new = an.new
@@ -698,65 +703,70 @@ def _figures(an: Analysis, units: str) -> dict:
         mrt_c.append((an.job.repair_to_mm, "repair-to thickness", ":"))
     common = dict(extent=ext, units=units, diameter_mm=diam, centre=centre, plate=new.plate)
     out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
-                F.floor_map(new.thickness, title="Remaining thickness now", label="remaining thickness",
-                            kind="thickness", contours=mrt_c, **common)))
+                partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
+                        kind="thickness", contours=mrt_c, **common)))
     out.append(("maps", "loss_top", "Top-side (product-side) loss.",
-                F.floor_map(lr.loss_top, title="Top-side loss", label="top-side loss", kind="loss", **common)))
+                partial(F.floor_map, lr.loss_top, title="Top-side loss", label="top-side loss", kind="loss", **common)))
     out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
-                F.floor_map(lr.loss_under, title="Underside loss", label="underside loss", kind="loss", **common)))
+                partial(F.floor_map, lr.loss_under, title="Underside loss", label="underside loss", kind="loss", **common)))
     if not an.single:
         out.append(("maps", "rate_short_top", "Short-term top-side rate (change between the inspections ÷ years between them).",
-                    F.floor_map(lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
-                                kind="rate", **common)))
+                    partial(F.floor_map, lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
+                            kind="rate", **common)))
         out.append(("maps", "rate_short_under", "Short-term underside rate.",
-                    F.floor_map(lr.rate_short_under, title="Short-term underside rate", label="underside rate",
-                                kind="rate", **common)))
+                    partial(F.floor_map, lr.rate_short_under, title="Short-term underside rate", label="underside rate",
+                            kind="rate", **common)))
     else:
         out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
-                    F.floor_map(np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
-                                label="rate, both sides", kind="rate", **common)))
+                    partial(F.floor_map, np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
+                            label="rate, both sides", kind="rate", **common)))
     out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",
-                F.floor_map(an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
-                            contours=[(an.job.target_interval, "target interval", "--")],
-                            **common)))
+                partial(F.floor_map, an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
+                        contours=[(an.job.target_interval, "target interval", "--")],
+                        **common)))
     out.append(("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
                 "MRT before the target interval at their own rates lie inside them).",
-                F.floor_map(new.thickness, title="Repairs: patch plates on the thickness map",
-                            label="remaining thickness", kind="thickness",
-                            patches=an.patches if len(an.patches) else None, indications=None, **common)))
+                partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
+                        label="remaining thickness", kind="thickness",
+                        patches=an.patches if len(an.patches) else None, indications=None, **common)))
     if an.registration is not None and an.old_on_new is not None:
-        from .register import RigidTransform, resample_layer
+        def registration_figure():
+            from .register import RigidTransform, resample_layer
 
-        feat_new = ~new.scanned | (np.nan_to_num(lr.loss) >= _reporting_depth(new))
-        # before alignment: the older scan's features on its own grid, placed by its raw
-        # coordinates (nearest cell; a display aid, so no interpolation is needed)
-        with np.errstate(invalid="ignore"):
-            feat_old = ~np.isfinite(an.old.thickness) | ((an.old.meta.nominal - an.old.thickness)
-                                                         >= _reporting_depth(new))
-        feat_before = resample_layer(feat_old, an.old, new, RigidTransform(), fill=True)
-        del feat_old
-        old_loss = new.meta.nominal - an.old_on_new.thickness
-        feat_after = ~np.isfinite(an.old_on_new.thickness) | (np.nan_to_num(old_loss) >= _reporting_depth(new))
+            feat_new = ~new.scanned | (np.nan_to_num(lr.loss) >= _reporting_depth(new))
+            # before alignment: the older scan's features on its own grid, placed by its raw
+            # coordinates (nearest cell; a display aid, so no interpolation is needed)
+            with np.errstate(invalid="ignore"):
+                feat_old = ~np.isfinite(an.old.thickness) | ((an.old.meta.nominal - an.old.thickness)
+                                                             >= _reporting_depth(new))
+            feat_before = resample_layer(feat_old, an.old, new, RigidTransform(), fill=True)
+            del feat_old
+            old_loss = new.meta.nominal - an.old_on_new.thickness
+            feat_after = ~np.isfinite(an.old_on_new.thickness) | (np.nan_to_num(old_loss) >= _reporting_depth(new))
+            return F.registration_overlay(feat_new, feat_before, feat_after, extent=ext)
+
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
                     "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
-                    F.registration_overlay(feat_new, feat_before, feat_after, extent=ext)))
+                    registration_figure))
     out.append(("methods", "methods_as_found", "As found: per zone, the code-formula interval, the co-located "
                 "projection, the extreme-value life, the cap and the recommendation.",
-                F.method_comparison(an.zone_table)))
+                partial(F.method_comparison, an.zone_table)))
     out.append(("methods", "methods_repaired", "After the proposed repairs: the same per zone.",
-                F.method_comparison(an.zones_repaired)))
+                partial(F.method_comparison, an.zones_repaired)))
     for name, z in an.extremes_depth.items():
         if not z or z.plot is None:
             continue
         out.append((f"extremes:{name}", f"probability_{name}", f"Probability plot of block-maximum loss, zone {name} "
                     f"({z.row().get('eva_method', '')}).",
-                    F.probability_plot(z.plot, title=f"Block maxima, zone {name}", units=units)))
-        curve = _return_curve(z)
-        if curve is not None:
+                    partial(F.probability_plot, z.plot, title=f"Block maxima, zone {name}", units=units)))
+        if z.fit is not None and z.blocks is not None:
+            def return_figure(z=z, name=name):
+                return F.return_level_plot(*_return_curve(z), zone_T=z.T, units=units,
+                                           title=f"Return level, zone {name}")
+
             out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
-                        f"T = {z.T:.0f} blocks is marked.",
-                        F.return_level_plot(*curve, zone_T=z.T, units=units, title=f"Return level, zone {name}")))
+                        f"T = {z.T:.0f} blocks is marked.", return_figure))
     return out
 
 
@@ -889,52 +899,52 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> 
     from . import repair
     from .indications import write_indications_csv
     from .outputs import write_json, write_results_h5
-    from .report import figures as F
     from .report.html import write_report
+    from .report.render import FigureRenderer
 
     prog = progress or Progress(quiet=True)
     folder = Path(folder)
     units = an.job.units
     files = []
-    with prog.stage("outputs"):
-        an.zone_table.to_csv(folder / "zones.csv", index=False)
-        an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
-        repair.write_patches_csv(an.patches, folder / "patches.csv")
-        repair.write_patches_dxf(an.patches, folder / "patches.dxf")
-        write_indications_csv(an.indications, folder / "indications.csv")
-        files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
-        reg_dict = None
-        if an.registration is not None:
-            reg_dict = an.registration.to_dict()
-            write_json(reg_dict, folder / "registration.json")
-            files.append("registration.json")
-        maps = dict(an.rates.maps())
-        maps.update({"thickness": an.new.thickness, "side_raw": an.side_raw, "side": an.side,
-                     "zone": an.zones.labels, "life_local": an.life_map, "mrt": an.mrt_map,
-                     "needs_repair": an.needs_repair})
-        if an.old_on_new is not None:
-            maps["thickness_old_on_new"] = an.old_on_new.thickness
-        maps.update(an.repaired_maps)
-        attrs = {"tank": an.new.meta.tank, "inspected_new": an.new.meta.inspected.isoformat(),
-                 "inspected_old": an.old.meta.inspected.isoformat() if an.old else "",
-                 "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__,
-                 "caution": CAUTION}
-        write_results_h5(folder / "results.h5", maps, x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
-                         attrs=attrs, timings=an.timings)
-        files.append("results.h5")
-    with prog.stage("report"):
-        figdir = folder / "figures"
-        figdir.mkdir(exist_ok=True)
-        figs = []
-        for i, (sec, slug, cap, fig) in enumerate(_figures(an, units), start=1):
-            stem = f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in slug)[:60]
-            F.save_png(fig, figdir / f"{stem}.png")
-            extra = getattr(fig, "scananalyse_caption", "")
-            figs.append((sec, f"{cap} {extra}".strip(), F.png_bytes(fig)))
-            files.append(f"figures/{stem}.png")
-        data = _report_data(an, units, reg_dict, figs)
-        write_report(data, folder / "report.html")
-        files.append("report.html")
+    figdir = folder / "figures"
+    figdir.mkdir(exist_ok=True)
+    # the figures are drawn by a helper process (where that is safe) while the data files
+    # are written here; then both draw what is left (report/render.py)
+    with FigureRenderer(_figure_specs(an, units), figdir) as renderer:
+        with prog.stage("outputs"):
+            an.zone_table.to_csv(folder / "zones.csv", index=False)
+            an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
+            repair.write_patches_csv(an.patches, folder / "patches.csv")
+            repair.write_patches_dxf(an.patches, folder / "patches.dxf")
+            write_indications_csv(an.indications, folder / "indications.csv")
+            files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
+            reg_dict = None
+            if an.registration is not None:
+                reg_dict = an.registration.to_dict()
+                write_json(reg_dict, folder / "registration.json")
+                files.append("registration.json")
+            maps = dict(an.rates.maps())
+            maps.update({"thickness": an.new.thickness, "side_raw": an.side_raw, "side": an.side,
+                         "zone": an.zones.labels, "life_local": an.life_map, "mrt": an.mrt_map,
+                         "needs_repair": an.needs_repair})
+            if an.old_on_new is not None:
+                maps["thickness_old_on_new"] = an.old_on_new.thickness
+            maps.update(an.repaired_maps)
+            attrs = {"tank": an.new.meta.tank, "inspected_new": an.new.meta.inspected.isoformat(),
+                     "inspected_old": an.old.meta.inspected.isoformat() if an.old else "",
+                     "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__,
+                     "caution": CAUTION}
+            write_results_h5(folder / "results.h5", maps, x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
+                             attrs=attrs, timings=an.timings)
+            files.append("results.h5")
+        with prog.stage("report"):
+            figs = []
+            for sec, cap, png, name in renderer.finish():
+                figs.append((sec, cap, png))
+                files.append(name)
+            data = _report_data(an, units, reg_dict, figs)
+            write_report(data, folder / "report.html")
+            files.append("report.html")
     return files
 
 
@@ -950,7 +960,7 @@ def _load(path):
 def _import_stages():
     """Import every stage up front: an interrupt must never land inside a lazy import."""
     from . import assess, attribution, extremes, indications, rates, register, repair, zones  # noqa: F401
-    from .report import figures, html  # noqa: F401
+    from .report import figures, html, render  # noqa: F401
 
 
 def _check_out_dir(out_dir, force):

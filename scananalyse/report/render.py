@@ -1,0 +1,186 @@
+"""Drawing the report's figures on every core.
+
+A report has a dozen figures; drawing them (block reduction, colour mapping, layout,
+PNG encoding) is most of the time spent on the outputs, and matplotlib draws on one core.
+:class:`FigureRenderer` forks one helper process when that is safe: both processes take
+the next figure from a shared queue (a pipe of figure numbers: each read of four bytes
+takes one) and write it as a PNG, while the main process first writes the data files.
+The helper shares the analysis through the fork (nothing is copied or pickled) and
+reports the captions of its figures through a second pipe.
+
+It falls back to drawing everything in the main process when forking is not safe or
+not useful: another Python thread is running (e.g. inside a Dask worker), the process
+may use only one core, the platform has no ``fork``, there are fewer than two figures,
+or ``SCANANALYSE_SERIAL=1`` is set.  If the helper fails or is killed, the figures it
+did not deliver are drawn by the main process, so a failure there costs time, never a
+figure.  Interrupts: the helper exits on its own interrupt without writing anything
+more; :meth:`FigureRenderer.close` (always called by the main process) kills and reaps
+it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import struct
+import threading
+import warnings
+from pathlib import Path
+
+__all__ = ["FigureRenderer", "parallel_possible"]
+
+_TOKEN = struct.Struct("<I")
+
+
+def _usable_cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+def parallel_possible() -> bool:
+    """True when a helper process may be forked to draw figures (see the module notes)."""
+    return (hasattr(os, "fork") and os.environ.get("SCANANALYSE_SERIAL", "") != "1"
+            and _usable_cores() >= 2 and threading.current_thread() is threading.main_thread()
+            and threading.active_count() == 1)
+
+
+class FigureRenderer:
+    """Draw ``specs`` into ``figdir`` as PNG files, in two processes when possible.
+
+    Parameters
+    ----------
+    specs : list of ``(section, slug, caption, build)``; ``build()`` returns a
+        matplotlib Figure. [-]
+    figdir : existing folder for the PNG files. [-]
+    dpi : resolution of the PNG files. [dots per inch]
+    parallel : None (decide with :func:`parallel_possible`), True or False. [-]
+
+    The helper (if any) starts drawing at construction; :meth:`finish` makes the
+    calling process draw the rest and returns the figures in ``specs`` order.
+    """
+
+    def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None):
+        self.specs = list(specs)
+        self.figdir = Path(figdir)
+        self.dpi = dpi
+        self.stems = [f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in slug)[:60]
+                      for i, (_, slug, _, _) in enumerate(self.specs, start=1)]
+        self._pid = None
+        self._queue_r = self._reply_r = None
+        self.parallel = False
+        want = parallel_possible() if parallel is None else bool(parallel)
+        if want and len(self.specs) >= 2 and hasattr(os, "fork"):
+            self._start_helper()
+
+    # -- helper process ------------------------------------------------------------
+    def _start_helper(self) -> None:
+        queue_r, queue_w = os.pipe()
+        reply_r, reply_w = os.pipe()
+        # every figure number goes into the queue before the fork (a few bytes per figure,
+        # far below a pipe's buffer), then the write end is closed: an empty queue is EOF
+        os.write(queue_w, b"".join(_TOKEN.pack(i) for i in range(len(self.specs))))
+        os.close(queue_w)
+        with warnings.catch_warnings():
+            # Python 3.12+ warns about forking with native threads (e.g. the BLAS pool);
+            # the helper only draws and writes files, and exits with os._exit
+            warnings.simplefilter("ignore", DeprecationWarning)
+            pid = os.fork()
+        if pid == 0:  # the helper
+            code = 1
+            try:
+                os.close(reply_r)
+                done = self._work(queue_r)
+                data = json.dumps(done).encode()
+                view = memoryview(data)
+                while view:
+                    view = view[os.write(reply_w, view):]
+                code = 0
+            except BaseException:  # noqa: BLE001 - the main process draws what is missing
+                code = 1
+            finally:
+                os._exit(code)
+        os.close(reply_w)
+        self._pid = pid
+        self._queue_r = queue_r
+        self._reply_r = reply_r
+        self.parallel = True
+
+    def _work(self, queue_r) -> dict:
+        """Take figure numbers from the queue until it is empty; returns number -> caption."""
+        from . import figures as F
+
+        done = {}
+        while True:
+            raw = os.read(queue_r, _TOKEN.size)
+            if len(raw) < _TOKEN.size:
+                return done
+            (i,) = _TOKEN.unpack(raw)
+            done[i] = self._draw(i, F)
+
+    def _draw(self, i: int, F) -> str:
+        _, _, _, build = self.specs[i]
+        fig = build()
+        F.save_png(fig, self.figdir / f"{self.stems[i]}.png", dpi=self.dpi)
+        return getattr(fig, "scananalyse_caption", "")
+
+    # -- main process --------------------------------------------------------------
+    def finish(self) -> list:
+        """Draw the remaining figures here; return ``[(section, caption, png_bytes, file)]``
+        in ``specs`` order (``file`` relative to the output folder)."""
+        from . import figures as F
+
+        extras: dict = {}
+        if self.parallel:
+            extras.update(self._work(self._queue_r))
+            os.close(self._queue_r)
+            self._queue_r = None
+            chunks = []
+            while True:
+                b = os.read(self._reply_r, 1 << 16)
+                if not b:
+                    break
+                chunks.append(b)
+            os.close(self._reply_r)
+            self._reply_r = None
+            _, status = os.waitpid(self._pid, 0)
+            self._pid = None
+            if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
+                extras.update({int(k): v for k, v in json.loads(b"".join(chunks)).items()})
+        out = []
+        for i, (sec, _, cap, _) in enumerate(self.specs):
+            if i not in extras:  # serial mode, or the helper did not deliver it
+                extras[i] = self._draw(i, F)
+            path = self.figdir / f"{self.stems[i]}.png"
+            out.append((sec, f"{cap} {extras[i]}".strip(), path.read_bytes(), f"figures/{path.name}"))
+        return out
+
+    def close(self) -> None:
+        """Stop the helper if it still runs (after an error or interrupt) and free the pipes."""
+        if self._pid is not None:
+            try:
+                os.kill(self._pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+            try:
+                os.waitpid(self._pid, 0)
+            except ChildProcessError:
+                pass
+            self._pid = None
+        for name in ("_queue_r", "_reply_r"):
+            fd = getattr(self, name)
+            if fd is not None:
+                try:
+                    os.close(fd)
+                except OSError:
+                    pass
+                setattr(self, name, None)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False

@@ -1,0 +1,100 @@
+"""The report's figure renderer: the same PNG files with or without the helper process,
+and no figure lost when the helper fails."""
+
+import os
+
+import numpy as np
+import pytest
+from matplotlib.figure import Figure
+
+from scananalyse.report.render import FigureRenderer, parallel_possible
+
+pytestmark = pytest.mark.skipif(not hasattr(os, "fork"), reason="the helper process needs fork()")
+
+
+def _spec(k):
+    def build():
+        fig = Figure(figsize=(3, 2))
+        ax = fig.add_subplot()
+        x = np.linspace(0, 1, 50)
+        ax.plot(x, x ** (k + 1))
+        ax.set_title(f"figure {k}")
+        fig.scananalyse_caption = f"caption {k}"
+        return fig
+    return ("maps", f"fig {k}", f"Figure {k}.", build)
+
+
+def test_parallel_and_serial_give_the_same_files(tmp_path):
+    # matplotlib's Agg output is deterministic: the helper's files must be byte-identical
+    # to the ones drawn in this process, in the specs' order, with the builders' captions
+    specs = [_spec(k) for k in range(5)]
+    out = {}
+    for mode in (False, True):
+        d = tmp_path / str(mode)
+        d.mkdir()
+        with FigureRenderer(specs, d, parallel=mode) as r:
+            assert r.parallel is mode
+            out[mode] = r.finish()
+        assert sorted(p.name for p in d.iterdir()) == [f"0{k + 1}_fig_{k}.png" for k in range(5)]
+    assert [o[:2] for o in out[True]] == [("maps", f"Figure {k}. caption {k}") for k in range(5)]
+    assert [o[1:] for o in out[True]] == [o[1:] for o in out[False]]
+    assert all(png.startswith(b"\x89PNG") for _, _, png, _ in out[True])
+
+
+def test_figures_the_helper_does_not_deliver_are_drawn_here(tmp_path):
+    parent = os.getpid()
+
+    def dies_in_helper():
+        if os.getpid() != parent:
+            os._exit(3)  # the helper is killed half-way
+        return _spec(9)[3]()
+
+    specs = [_spec(0), ("maps", "fragile", "Fragile.", dies_in_helper), _spec(2), _spec(3)]
+    with FigureRenderer(specs, tmp_path, parallel=True) as r:
+        got = r.finish()
+    assert [g[1] for g in got] == ["Figure 0. caption 0", "Fragile. caption 9", "Figure 2. caption 2",
+                                   "Figure 3. caption 3"]
+    assert len(list(tmp_path.glob("*.png"))) == 4
+
+
+def test_an_error_in_a_figure_reaches_the_caller(tmp_path):
+    def broken():
+        raise ValueError("cannot draw this")
+
+    specs = [_spec(0), ("maps", "broken", "Broken.", broken)]
+    with pytest.raises(ValueError, match="cannot draw this"):
+        with FigureRenderer(specs, tmp_path, parallel=True) as r:
+            r.finish()
+
+
+def test_close_stops_a_running_helper(tmp_path):
+    import time
+
+    def slow():
+        time.sleep(30)
+        return _spec(1)[3]()
+
+    specs = [("maps", "slow", "Slow.", slow)] * 2
+    r = FigureRenderer(specs, tmp_path, parallel=True)
+    pid = r._pid
+    t0 = time.perf_counter()
+    r.close()
+    assert time.perf_counter() - t0 < 5
+    with pytest.raises(ChildProcessError):
+        os.waitpid(pid, os.WNOHANG)  # reaped: no zombie left
+
+
+def test_no_helper_when_another_thread_runs(tmp_path):
+    import threading
+
+    ev = threading.Event()
+    t = threading.Thread(target=ev.wait)
+    t.start()
+    try:
+        assert not parallel_possible()
+        with FigureRenderer([_spec(0), _spec(1)], tmp_path) as r:
+            assert not r.parallel
+            assert len(r.finish()) == 2
+    finally:
+        ev.set()
+        t.join()
