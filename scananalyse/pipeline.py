@@ -511,21 +511,28 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
                 return f
 
             d_zone, r_zone = depth0[in_zone], rate[in_zone]
-            maxima_at = (projected_block_maxima(depth0, rate, valid=in_zone, block_cells=b_cells, min_coverage=0.5,
-                                                threshold=thr) if hidden_mm2 > 0 else None)
+            projector = []  # built on the first horizon after H = 0
 
             def excess(h):
                 seen = float(np.nanmax(d_zone + r_zone * np.float32(h)))
-                if maxima_at is None:
+                if hidden_mm2 <= 0:
                     return seen - allowance
-                bm = maxima_at(h)
-                x, cens = bm.maxima, bm.censored
-                if thr is None:
-                    x, cens = x[~cens], None
-                try:
-                    hidden = float(max_quantile(fitter(x, censored=cens, threshold=thr), T_hidden, LIFE_LEVEL))
-                except FitError:
-                    hidden = np.inf  # no estimate: take the allowance as used up (conservative)
+                if h == 0:
+                    fit = z0.fit  # the zone's depth fit is the fit of these very block maxima
+                else:
+                    if not projector:
+                        projector.append(projected_block_maxima(depth0, rate, valid=in_zone, block_cells=b_cells,
+                                                                min_coverage=0.5, threshold=thr))
+                    bm = projector[0](h)
+                    x, cens = bm.maxima, bm.censored
+                    if thr is None:
+                        x, cens = x[~cens], None
+                    try:
+                        fit = fitter(x, censored=cens, threshold=thr)
+                    except FitError:
+                        fit = None
+                # no estimate: take the allowance as used up (conservative)
+                hidden = np.inf if fit is None else float(max_quantile(fit, T_hidden, LIFE_LEVEL))
                 return max(seen, hidden) - allowance
 
             if excess(0.0) >= 0:
@@ -777,7 +784,7 @@ def _return_curve(z):
     if z.fit is None or z.blocks is None:
         return None
     T_max = max(10.0, 3 * z.T)
-    Ts = np.unique(np.geomspace(2.0, T_max, 7).round(2))
+    Ts = np.unique(np.geomspace(2.0, T_max, 5).round(2))  # a smooth curve on the log axis
     lvl = np.array([float(return_level(z.fit, T)) for T in Ts])
     ups = []
     mx = np.asarray(z.blocks.maxima, dtype=float)

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from matplotlib.figure import Figure
-from matplotlib.patches import Circle, FancyBboxPatch
+from matplotlib.patches import Circle
 from PIL import Image
 from scipy import stats
 from skimage.measure import block_reduce
@@ -160,9 +160,11 @@ def test_floor_map_patches_seams_indications_side():
     fig = F.floor_map(t, extent=EXT, title="t", label="thickness", plate=plate, patches=patches,
                       indications=ind, diameter_mm=3000.0)
     ax = fig.axes[0]
-    boxes = [p for p in ax.patches if isinstance(p, FancyBboxPatch)]
-    assert len(boxes) == 2
-    bb = boxes[0].get_bbox()
+    from matplotlib.collections import PatchCollection
+
+    outlines = [c for c in ax.collections if isinstance(c, PatchCollection)]
+    assert len(outlines) == 1 and len(outlines[0].get_paths()) == 2
+    bb = outlines[0].get_paths()[0].get_extents()  # the first patch, in metres
     assert (bb.x0, bb.y0, bb.x1, bb.y1) == pytest.approx((-0.5, -0.3, -0.1, 0.0))
     seam = ax.images[1].get_array()
     cols = np.where((~np.ma.getmaskarray(seam)).any(axis=0))[0]

@@ -26,6 +26,7 @@ import numpy as np
 from matplotlib.figure import Figure
 from matplotlib.colors import ListedColormap, BoundaryNorm
 from matplotlib.lines import Line2D
+from matplotlib.collections import PatchCollection
 from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
 import matplotlib as mpl
 
@@ -83,6 +84,29 @@ def _new_axes(ax, figsize):
 # ---------------------------------------------------------------------------
 # decimation
 # ---------------------------------------------------------------------------
+def _factor(shape, max_pixels: int) -> int:
+    """Smallest block side f that brings a grid of ``shape`` under ``max_pixels`` blocks."""
+    n = shape[0] * shape[1]
+    f = 1
+    if n > max_pixels:
+        f = int(math.ceil(math.sqrt(n / max_pixels)))
+        while math.ceil(shape[0] / f) * math.ceil(shape[1] / f) > max_pixels:
+            f += 1
+    return f
+
+
+def _decimate_any(mask, f: int) -> np.ndarray:
+    """Blocks of ``f × f`` cells of a boolean grid: True where any cell is (edge blocks partial)."""
+    m = np.asarray(mask, dtype=bool)
+    if f == 1:
+        return m
+    h, w = m.shape
+    hb, wb = -(-h // f), -(-w // f)
+    pad = np.zeros((hb * f, wb * f), dtype=bool)
+    pad[:h, :w] = m
+    return pad.reshape(hb, f, wb, f).any(axis=3).any(axis=1)
+
+
 def decimate(values, *, how: str = "min", max_pixels: int = 1_500_000):
     """Block-reduce a grid to at most ``max_pixels`` cells, ignoring NaN.
 
@@ -106,12 +130,7 @@ def decimate(values, *, how: str = "min", max_pixels: int = 1_500_000):
         raise ValueError(f"decimate needs a 2-D grid, got shape {a.shape}")
     if how not in ("min", "max"):
         raise ValueError(f"how must be 'min' or 'max', got {how!r}")
-    n = a.shape[0] * a.shape[1]
-    f = 1
-    if n > max_pixels:
-        f = int(math.ceil(math.sqrt(n / max_pixels)))
-        while math.ceil(a.shape[0] / f) * math.ceil(a.shape[1] / f) > max_pixels:
-            f += 1
+    f = _factor(a.shape, max_pixels)
     if f == 1:
         return a.astype(np.float32, copy=False), 1
     op = np.fmin if how == "min" else np.fmax
@@ -339,16 +358,19 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     # patch plates: rounded rectangles
     if patches is not None and len(patches):
         rcol = _find_col(patches, ["corner_radius_mm"])
-        for _, row in patches.iterrows():
-            x0, y0 = row["x_min_mm"] / 1000.0, row["y_min_mm"] / 1000.0
-            w = (row["x_max_mm"] - row["x_min_mm"]) / 1000.0
-            h = (row["y_max_mm"] - row["y_min_mm"]) / 1000.0
-            r = float(row[rcol]) / 1000.0 if rcol is not None and np.isfinite(row[rcol]) else 0.0
-            r = max(0.0, min(r, w / 2, h / 2))
-            ax.add_patch(FancyBboxPatch((x0, y0), w, h,
-                                        boxstyle=f"round,pad=0,rounding_size={r}",
-                                        facecolor="none", edgecolor="#00a36c", linewidth=1.4,
-                                        zorder=5))
+        x0s = patches["x_min_mm"].to_numpy(float) / 1000.0
+        y0s = patches["y_min_mm"].to_numpy(float) / 1000.0
+        ws = patches["x_max_mm"].to_numpy(float) / 1000.0 - x0s
+        hs = patches["y_max_mm"].to_numpy(float) / 1000.0 - y0s
+        rs = (np.nan_to_num(patches[rcol].to_numpy(float), nan=0.0) / 1000.0 if rcol is not None
+              else np.zeros(len(patches)))
+        rs = np.clip(rs, 0.0, np.minimum(ws, hs) / 2)
+        # one collection (adding hundreds of single patches is slow); the floor's limits
+        # are set below, so the collection does not update them
+        outlines = [FancyBboxPatch((x0, y0), w, h, boxstyle=f"round,pad=0,rounding_size={r}")
+                    for x0, y0, w, h, r in zip(x0s, y0s, ws, hs, rs)]
+        ax.add_collection(PatchCollection(outlines, facecolor="none", edgecolor="#00a36c",
+                                          linewidth=1.4, zorder=5), autolim=False)
         handles.append(Patch(facecolor="none", edgecolor="#00a36c", linewidth=1.4,
                              label="patch plate"))
 
@@ -449,9 +471,8 @@ def registration_overlay(new_features, old_features_before, old_features_after, 
     for m in masks[1:]:
         if m.shape != shp:
             raise ValueError(f"feature masks differ in shape: {shp} vs {m.shape}")
-    red = [decimate(m.astype(np.float32), how="max", max_pixels=max_pixels) for m in masks]
-    f = red[0][1]
-    nb, ob, oa = (r[0] > 0.5 for r in red)
+    f = _factor(shp, max_pixels)
+    nb, ob, oa = (_decimate_any(m, f) for m in masks)
     px, py = (x_max - x_min) / shp[1], (y_max - y_min) / shp[0]
     ext = (x_min, x_min + nb.shape[1] * f * px, y_min, y_min + nb.shape[0] * f * py)
     for a, old, ttl in ((axes[0], ob, "before alignment"), (axes[1], oa, "after alignment")):
