@@ -449,7 +449,8 @@ def _attr(obj, name):
 
 def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
                  options: AssessOptions | None = None, extremes: dict | None = None,
-                 pitch_mm: float | None = None, rate_short_available: bool = True) -> pd.DataFrame:
+                 pitch_mm: float | None = None, rate_short_available: bool = True,
+                 life_map=None) -> pd.DataFrame:
     """Assess every zone: code formula, co-located and extreme-value lives, recommendation.
 
     Parameters
@@ -469,6 +470,8 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     pitch_mm : grid pitch, checked against the zone map if given. [mm]
     rate_short_available : False for a single inspection (long-term rates only):
         every zone gets ``no-short-term-rates``.
+    life_map : the :func:`local_life_map` of these maps with the zones' MRT, when the
+        caller already has it (computed here if None). [y]
 
     Returns
     -------
@@ -546,7 +549,8 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     rtip_z = zones.reduce(np.where(top_cells, t, nanf), np.min)
     mrt_z = zone_mrt(zones, rules, options, t0=t0)
     if has_rates:
-        life_map = local_life_map(t, rt, ru, mrt_map(zones, rules, options, t0=t0))
+        if life_map is None or np.shape(life_map) != t.shape:
+            life_map = local_life_map(t, rt, ru, mrt_map(zones, rules, options, t0=t0))
         life_z = zones.reduce(life_map, np.min)
         rtop_z = zones.reduce(np.where(scanned, rt, nanf), np.max)
         rund_z = zones.reduce(np.where(scanned, ru, nanf), np.max)

@@ -289,7 +289,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
                                     rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
                                     options=options, extremes=ext_for_assess, pitch_mm=new.pitch,
-                                    rate_short_available=old is not None)
+                                    rate_short_available=old is not None, life_map=life)
         table = _add_eva_columns(table, ext_depth, ext_life)
 
     # --- indications ---------------------------------------------------------------
@@ -636,7 +636,7 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old, own_p
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
-                                    rate_short_available=have_old)
+                                    rate_short_available=have_old, life_map=life_rep)
     zones_rep = _add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
     patch_note = None
     if own_patches is not None and len(patches):

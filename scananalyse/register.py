@@ -452,57 +452,61 @@ def read_control_points_named(path) -> tuple[np.ndarray, np.ndarray, list[str]]:
 # --------------------------------------------------------------------------------------
 # sampling and resampling
 # --------------------------------------------------------------------------------------
-def _bilinear_nan(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray:
-    """NaN-aware bilinear sample of ``img`` at fractional (row, col) indices.
-
-    The result is NaN where the nearest cell is outside the grid or NaN; elsewhere
-    it is the bilinear weighted mean over the valid ones of the four neighbours.
-    Neighbours are gathered with flat ``numpy.take`` (indices clipped into the grid,
-    out-of-grid and NaN neighbours given weight 0), float32 throughout.
-    """
+def _packed(img: np.ndarray) -> np.ndarray:
+    """``img`` as complex64 with a one-cell border: real = value (0 where NaN), imag = 1
+    where the value is finite.  One gather then fetches a neighbour's value and weight."""
     h, w = img.shape
-    out = np.full(ri.shape, np.nan, dtype=np.float32)
+    p = np.zeros((h + 2, w + 2), dtype=np.complex64)
+    fin = np.isfinite(img)
+    p.real[1:-1, 1:-1] = np.where(fin, img, np.float32(0))
+    p.imag[1:-1, 1:-1] = fin
+    return p
+
+
+def _bilinear_packed(p: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray:
+    """NaN-aware bilinear sample at fractional (row, col) indices of the grid packed by
+    :func:`_packed` (see :func:`_bilinear_nan`)."""
+    h, w = p.shape[0] - 2, p.shape[1] - 2
+    flat = p.reshape(-1)
+    W = w + 2
     rn = np.rint(ri)
     cn = np.rint(ci)
     ok = (rn >= 0) & (rn <= h - 1) & (cn >= 0) & (cn <= w - 1)
-    if not ok.any():
-        return out
-    flat = img.reshape(-1) if img.flags.c_contiguous else np.ascontiguousarray(img).reshape(-1)
-    all_ok = bool(ok.all())
-    if not all_ok:
-        ri, ci, rn, cn = ri[ok], ci[ok], rn[ok], cn[ok]
-    else:
-        ri, ci, rn, cn = ri.reshape(-1), ci.reshape(-1), rn.reshape(-1), cn.reshape(-1)
-    near = flat.take(rn.astype(np.intp) * w + cn.astype(np.intp))
     r0f = np.floor(ri)
     c0f = np.floor(ci)
     fr = (ri - r0f).astype(np.float32)
     fc = (ci - c0f).astype(np.float32)
-    r0 = r0f.astype(np.intp)
-    c0 = c0f.astype(np.intp)
-    del r0f, c0f, rn, cn
-    acc = np.zeros(ri.shape, dtype=np.float32)
-    wsum = np.zeros(ri.shape, dtype=np.float32)
-    zero = np.float32(0)
-    for dr, dc in ((0, 0), (0, 1), (1, 0), (1, 1)):
-        wr = fr if dr else np.float32(1) - fr
-        wc = fc if dc else np.float32(1) - fc
-        wt = wr * wc
-        rr = r0 + dr
-        cc = c0 + dc
-        inb = (rr >= 0) & (rr < h) & (cc >= 0) & (cc < w)
-        v = flat.take(np.clip(rr, 0, h - 1) * w + np.clip(cc, 0, w - 1))
-        good = inb & np.isfinite(v)
-        acc += np.where(good, wt * v, zero)
-        wsum += np.where(good, wt, zero)
-    fin = np.isfinite(near) & (wsum > 0)
+    near_r = rn > r0f  # the nearest cell is the upper / right neighbour
+    near_c = cn > c0f
+    # points whose nearest cell is in the grid have r0 in [-1, h-1]: the border makes
+    # every neighbour an index of the padded grid (others are clipped, then masked by ok)
+    base = (np.clip(r0f, -1, h - 1).astype(np.intp) + 1) * W + (np.clip(c0f, -1, w - 1).astype(np.intp) + 1)
+    del rn, cn, r0f, c0f
+    one = np.float32(1)
+    gr = one - fr
+    gc = one - fc
+    z00 = flat.take(base)
+    z01 = flat.take(base + 1)
+    z10 = flat.take(base + W)
+    z11 = flat.take(base + W + 1)
+    del base
+    s = z00 * (gr * gc) + z01 * (gr * fc) + z10 * (fr * gc) + z11 * (fr * fc)
+    near = np.where(near_r, np.where(near_c, z11.imag, z10.imag), np.where(near_c, z01.imag, z00.imag))
+    good = ok & (near > 0) & (s.imag > 0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        val = np.where(fin, acc / wsum, np.float32(np.nan)).astype(np.float32, copy=False)
-    if all_ok:
-        out[...] = val.reshape(out.shape)
-    else:
-        out[ok] = val
-    return out
+        return np.where(good, s.real / s.imag, np.float32(np.nan)).astype(np.float32, copy=False)
+
+
+def _bilinear_nan(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray:
+    """NaN-aware bilinear sample of ``img`` at fractional (row, col) indices.
+
+    The result is NaN where the nearest cell is outside the grid or NaN; elsewhere
+    it is the bilinear weighted mean over the valid ones of the four neighbours
+    (out-of-grid and NaN neighbours given weight 0), float32 throughout.  The grid is
+    packed once (:func:`_packed`: value and validity in one complex64 with a border),
+    so each neighbour is one flat ``numpy.take`` with no bounds arithmetic.
+    """
+    return _bilinear_packed(_packed(np.asarray(img, dtype=np.float32)), np.asarray(ri), np.asarray(ci))
 
 
 def _nearest(layer: np.ndarray, ri: np.ndarray, ci: np.ndarray, fill) -> np.ndarray:
@@ -510,9 +514,9 @@ def _nearest(layer: np.ndarray, ri: np.ndarray, ci: np.ndarray, fill) -> np.ndar
     rn = np.rint(ri)
     cn = np.rint(ci)
     ok = (rn >= 0) & (rn <= h - 1) & (cn >= 0) & (cn <= w - 1)
-    out = np.full(ri.shape, fill, dtype=layer.dtype)
-    out[ok] = layer[rn[ok].astype(np.intp), cn[ok].astype(np.intp)]
-    return out
+    flat = layer.reshape(-1) if layer.flags.c_contiguous else np.ascontiguousarray(layer).reshape(-1)
+    idx = np.clip(rn, 0, h - 1).astype(np.intp) * w + np.clip(cn, 0, w - 1).astype(np.intp)
+    return np.where(ok, flat.take(idx), np.asarray(fill, dtype=layer.dtype)).astype(layer.dtype, copy=False)
 
 
 def sample_thickness(scan: FloorScan, x, y) -> np.ndarray:
@@ -615,8 +619,9 @@ def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> 
     thick = np.empty((h, w), dtype=np.float32)
     side = None if old.side is None else np.empty((h, w), dtype=np.int8)
     plate = None if old.plate is None else np.empty((h, w), dtype=np.int32)
+    packed = _packed(np.asarray(old.thickness, dtype=np.float32))
     for r0, r1, ri, ci in _old_indices(old, new, transform):
-        thick[r0:r1] = _bilinear_nan(old.thickness, ri, ci)
+        thick[r0:r1] = _bilinear_packed(packed, ri, ci)
         if side is not None:
             side[r0:r1] = _nearest(old.side, ri, ci, SIDE_UNKNOWN)
         if plate is not None:

@@ -189,6 +189,7 @@ class ZoneMap:
     pitch: float
     geometry: FloorGeometry
     _groups: list | None = field(default=None, repr=False)
+    _zoned: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -229,6 +230,7 @@ class ZoneMap:
             start = int(np.count_nonzero(flat < 0))
             bounds = start + np.concatenate([[0], np.cumsum(counts)])
             self._groups = [order[bounds[k]:bounds[k + 1]] for k in range(len(self.names))]
+            self._zoned = order[start:]  # every zoned cell, zone after zone (the groups joined)
         return self._groups
 
     def n_cells(self) -> np.ndarray:
@@ -252,7 +254,20 @@ class ZoneMap:
             raise ValueError(f"values shape {v.shape} differs from the zone grid {self.shape}")
         flat = v.ravel()
         out = np.full(len(self.names), np.nan)
-        for k, g in enumerate(self.groups()):
+        fast = {np.min: np.fmin, np.max: np.fmax, np.nanmin: np.fmin, np.nanmax: np.fmax}.get(func)
+        groups = self.groups()
+        if fast is not None and v.dtype.kind in "fiu" and groups:
+            # one gather of all zoned cells (zone after zone) and one NaN-skipping reduction
+            # per zone: fmin/fmax ignore NaN, and give NaN only when every value is NaN
+            sizes = np.array([g.size for g in groups])
+            vals = flat[self._zoned]
+            starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+            has = sizes > 0
+            if has.any():
+                red = fast.reduceat(vals, starts[has])
+                out[has] = red.astype(np.float64)
+            return out
+        for k, g in enumerate(groups):
             vals = flat[g]
             if vals.dtype.kind == "f":
                 vals = vals[~np.isnan(vals)]
