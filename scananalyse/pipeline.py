@@ -171,7 +171,7 @@ def read_job_inputs(job: Job, new: FloorScan, rules=None) -> dict:
 
 
 def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
-            registration=None, inputs: dict | None = None) -> Analysis:
+            registration=None, inputs: dict | None = None, on_maps=None) -> Analysis:
     """Run every computing stage on one floor (no files written).
 
     Parameters
@@ -182,6 +182,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     progress : optional :class:`Progress`.
     registration : optional precomputed :class:`~scananalyse.register.Registration`.
     inputs : the job's other files already read (:func:`read_job_inputs`); read here if None.
+    on_maps : optional callable, given the map figures' specs (:func:`_map_specs`) as soon as
+        the rates and zones are known, so a caller can start drawing them while the
+        assessment runs (``_run`` does).
     """
     from . import assess, attribution, rates, zones
     from .rules import get_ruleset
@@ -267,6 +270,14 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             user.append(zones.ring_sector_zones(job.zone_rings, job.zone_sectors))
         zmap = zones.zone_map(new, geom, rules, user_zones=user or None)
 
+    options = assess.AssessOptions(
+        leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
+        coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
+        release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
+        target_interval_years=job.target_interval)
+    if on_maps is not None:
+        on_maps(_map_specs(new, lr, zmap, rules, options, job, job.units, single=old is None))
+
     # --- extremes ------------------------------------------------------------------
     with prog.stage("extremes"):
         ext_depth, ext_rate = _zone_extremes(new.thickness, lr.rate_top, lr.rate_under, zmap,
@@ -274,11 +285,6 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                              threshold=new.meta.threshold, pitch=new.pitch, job=job)
 
     # --- assessment ----------------------------------------------------------------
-    options = assess.AssessOptions(
-        leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
-        coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
-        release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
-        target_interval_years=job.target_interval)
     with prog.stage("assessment"):
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
         life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
@@ -693,21 +699,28 @@ def _figure_specs(an: Analysis, units: str) -> list:
 
     The figures are built lazily, so the report's renderer can draw them in any process.
     """
+    return (_map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single)
+            + _result_specs(an, units))
+
+
+def _map_specs(new, lr, zmap, rules, options, job, units, *, single) -> list:
+    """The figures known once the rates are: thickness, loss and rate maps (see _figure_specs)."""
     from functools import partial
 
+    from . import assess
     from .report import figures as F
 
-    new = an.new
-    lr = an.rates
     ext = new.extent
-    diam = an.zones.geometry.diameter_mm
-    centre = an.zones.geometry.centre
+    diam = zmap.geometry.diameter_mm
+    centre = zmap.geometry.centre
     out = []
-    zt = an.zone_table.set_index("zone")
-    main_zone = "interior" if "interior" in zt.index else zt["area_m2"].idxmax()
-    mrt_c = [(float(zt.loc[main_zone, "mrt_mm"]), f"MRT ({main_zone})", "--")]
-    if an.job.repair_to_mm:
-        mrt_c.append((an.job.repair_to_mm, "repair-to thickness", ":"))
+    mrt_z = assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal)
+    areas = np.asarray(zmap.areas_mm2, dtype=float)
+    k_main = zmap.names.index("interior") if "interior" in zmap.names else int(np.argmax(areas))
+    main_zone = zmap.names[k_main]
+    mrt_c = [(float(mrt_z[k_main]), f"MRT ({main_zone})", "--")]
+    if job.repair_to_mm:
+        mrt_c.append((job.repair_to_mm, "repair-to thickness", ":"))
     common = dict(extent=ext, units=units, diameter_mm=diam, centre=centre, plate=new.plate)
     out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
                 partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
@@ -716,7 +729,7 @@ def _figure_specs(an: Analysis, units: str) -> list:
                 partial(F.floor_map, lr.loss_top, title="Top-side loss", label="top-side loss", kind="loss", **common)))
     out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
                 partial(F.floor_map, lr.loss_under, title="Underside loss", label="underside loss", kind="loss", **common)))
-    if not an.single:
+    if not single:
         out.append(("maps", "rate_short_top", "Short-term top-side rate (change between the inspections ÷ years between them).",
                     partial(F.floor_map, lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
                             kind="rate", **common)))
@@ -727,6 +740,21 @@ def _figure_specs(an: Analysis, units: str) -> list:
         out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
                     partial(F.floor_map, np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
                             label="rate, both sides", kind="rate", **common)))
+    return out
+
+
+def _result_specs(an: Analysis, units: str) -> list:
+    """The figures of the assessment's results (see _figure_specs)."""
+    from functools import partial
+
+    from .report import figures as F
+
+    new = an.new
+    lr = an.rates
+    ext = new.extent
+    common = dict(extent=ext, units=units, diameter_mm=an.zones.geometry.diameter_mm,
+                  centre=an.zones.geometry.centre, plate=new.plate)
+    out = []
     out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",
                 partial(F.floor_map, an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
@@ -901,8 +929,12 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
 
 
-def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> list:
-    """Write every output file of an analysis into ``folder`` (which must exist)."""
+def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, map_figures=None) -> list:
+    """Write every output file of an analysis into ``folder`` (which must exist).
+
+    ``map_figures`` is a :class:`~scananalyse.report.render.FigureRenderer` already drawing the
+    map figures (:func:`_map_specs`) into ``folder/figures``; if None they are drawn here.
+    """
     from . import repair
     from .indications import write_indications_csv
     from .outputs import write_json, write_results_h5
@@ -917,7 +949,9 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> 
     figdir.mkdir(exist_ok=True)
     # the figures are drawn by a helper process (where that is safe) while the data files
     # are written here; then both draw what is left (report/render.py)
-    with FigureRenderer(_figure_specs(an, units), figdir) as renderer:
+    specs = _result_specs(an, units) if map_figures is not None else _figure_specs(an, units)
+    first = 1 + (len(map_figures.specs) if map_figures is not None else 0)
+    with FigureRenderer(specs, figdir, first=first) as renderer:
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
@@ -946,7 +980,7 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None) -> 
             files.append("results.h5")
         with prog.stage("report"):
             figs = []
-            for sec, cap, png, name in renderer.finish():
+            for sec, cap, png, name in (map_figures.finish() if map_figures is not None else []) + renderer.finish():
                 figs.append((sec, cap, png))
                 files.append(name)
             data = _report_data(an, units, reg_dict, figs)
@@ -979,7 +1013,10 @@ def _check_out_dir(out_dir, force):
 
 
 def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
+    from contextlib import ExitStack
+
     from .outputs import output_folder
+    from .report.render import FigureRenderer
 
     _import_stages()
     _check_out_dir(out_dir, force)
@@ -988,9 +1025,17 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
         new = _load(new_path)
         old = None if single else _load(old_path)
         inputs = read_job_inputs(job, new)
-    with output_folder(out_dir, force=force) as tmp:
-        an = analyse(new, old, job=job, progress=prog, inputs=inputs)
-        files = write_outputs(an, tmp, progress=prog)
+    with output_folder(out_dir, force=force) as tmp, ExitStack() as helpers:
+        (tmp / "figures").mkdir()
+        early = []
+
+        def draw_maps(specs):
+            # the map figures are drawn (by a helper process where possible) while the
+            # assessment runs; the renderer is stopped on any error or interrupt
+            early.append(helpers.enter_context(FigureRenderer(specs, tmp / "figures")))
+
+        an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_maps=draw_maps)
+        files = write_outputs(an, tmp, progress=prog, map_figures=early[0] if early else None)
     prog.finish()
     reg = an.registration.to_dict() if an.registration is not None else None
     return CompareResult(out_dir=str(out_dir), zones=an.zone_table, zones_repaired=an.zones_repaired,

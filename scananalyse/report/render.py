@@ -57,17 +57,18 @@ class FigureRenderer:
     figdir : existing folder for the PNG files. [-]
     dpi : resolution of the PNG files. [dots per inch]
     parallel : None (decide with :func:`parallel_possible`), True or False. [-]
+    first : number of the first figure (file names start with the number). [-]
 
     The helper (if any) starts drawing at construction; :meth:`finish` makes the
     calling process draw the rest and returns the figures in ``specs`` order.
     """
 
-    def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None):
+    def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1):
         self.specs = list(specs)
         self.figdir = Path(figdir)
         self.dpi = dpi
         self.stems = [f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in slug)[:60]
-                      for i, (_, slug, _, _) in enumerate(self.specs, start=1)]
+                      for i, (_, slug, _, _) in enumerate(self.specs, start=first)]
         self._pid = None
         self._queue_r = self._reply_r = None
         self.parallel = False
