@@ -216,8 +216,9 @@ def small_scans(draw):
     meta = ScanMeta(inspected=dt.date(2020, 1, 31), nominal=nominal, units=units,
                     tank=draw(st.sampled_from(["", "TK-1", "Tank 9 / east"])),
                     threshold=draw(st.none() | st.floats(0, 3)) , sigma=None,
+                    # header values: runs of spaces are written as one (docs/formats.md), so none are drawn
                     extra=draw(st.dictionaries(st.sampled_from(["crew", "probe_id", "note"]),
-                                               st.from_regex(r"[A-Za-z0-9][A-Za-z0-9 ,.;-]{0,20}[A-Za-z0-9]",
+                                               st.from_regex(r"[A-Za-z0-9]+([ ,.;-][A-Za-z0-9]+){0,5}",
                                                              fullmatch=True), max_size=2)))
     if meta.threshold is not None:
         meta = meta.replace(threshold=meta.threshold * factor)
@@ -260,3 +261,165 @@ def test_docs_examples_read_to_the_same_scan(tmp_path):
     assert_same_scan(a, b)
     np.testing.assert_array_equal(a.side, b.side)
     np.testing.assert_array_equal(a.plate, b.plate)
+
+
+# ------------------------------------------- fast placement and the checked path
+# The reader puts a good table on the grid in one blocked pass (csvscan._place_fast)
+# and only goes through the checks one by one (csvscan._place_checked) when a block
+# fails; both must give the same scan, and errors in any block must name their line.
+from scananalyse.errors import InputError  # noqa: E402
+from scananalyse.io import csvscan  # noqa: E402
+
+
+def big_table(tmp_path, units="mm", *, layers=True, name="big.csv", grid_keys=True):
+    """A scan spanning several blocks of the fast pass (written, so the file is valid), and its lines."""
+    s = make_scan(units, layers=layers, seed=11, rows=330, cols=260)
+    assert s.n_scanned > 2 * csvscan._BLOCK_ROWS + 1000  # two blocks and part of a third
+    path = tmp_path / name
+    write_csv_scan(s, path)
+    lines = path.read_text().splitlines()
+    if not grid_keys:
+        lines = [ln for ln in lines if not ln.startswith(("# x0:", "# y0:", "# rows:", "# cols:"))]
+        path.write_text("\n".join(lines) + "\n")
+    return s, path, lines
+
+
+def count_checked(monkeypatch) -> list:
+    """Record each use of the checked path; the list grows by one per use."""
+    calls = []
+    checked = csvscan._place_checked
+
+    def spy(*args, **kwargs):
+        calls.append(1)
+        return checked(*args, **kwargs)
+
+    monkeypatch.setattr(csvscan, "_place_checked", spy)
+    return calls
+
+
+def read_checked(path, monkeypatch):
+    """Read with the blocked pass switched off: every table goes through the checks one by one."""
+    with monkeypatch.context() as m:
+        m.setattr(csvscan, "_place_fast", lambda *args, **kwargs: None)
+        return read_csv_scan(path)
+
+
+@pytest.mark.parametrize("units", ["mm", "in"])
+@pytest.mark.parametrize("layers", [True, False])
+def test_fast_and_checked_placement_agree(tmp_path, monkeypatch, units, layers):
+    # Synthetic ground truth: the scan written is the scan read, by either path, bit for bit.
+    s, path, _ = big_table(tmp_path, units, layers=layers)
+    calls = count_checked(monkeypatch)
+    fast = read_csv_scan(path)
+    assert calls == []  # a good table: the blocked pass alone
+    checked = read_checked(path, monkeypatch)
+    assert calls == [1]
+    assert_same_scan(s, fast)
+    assert_same_scan(s, checked)
+    np.testing.assert_array_equal(fast.thickness.view(np.uint32), checked.thickness.view(np.uint32))
+    for name in ("side", "plate"):
+        a, b = getattr(fast, name), getattr(checked, name)
+        assert (a is None) == (b is None) == (not layers)
+        if a is not None:
+            assert a.dtype == b.dtype and np.array_equal(a, b)
+
+
+@pytest.mark.parametrize("units", ["mm", "in"])
+def test_fast_and_checked_placement_agree_without_grid_keys(tmp_path, monkeypatch, units):
+    # Without x0, y0, rows, cols the grid spans the scanned cells: the written scan less its
+    # unscanned first row and last column (make_scan leaves those empty; synthetic ground truth).
+    s, path, _ = big_table(tmp_path, units, grid_keys=False)
+    fast, checked = read_csv_scan(path), read_checked(path, monkeypatch)
+    assert fast.shape == checked.shape == (s.shape[0] - 1, s.shape[1] - 1)
+    assert (fast.x0, fast.y0, fast.pitch) == (checked.x0, checked.y0, checked.pitch)
+    assert fast.y0 == pytest.approx(s.y0 + s.pitch, rel=1e-12) and fast.x0 == pytest.approx(s.x0, rel=1e-12)
+    np.testing.assert_array_equal(fast.thickness.view(np.uint32), s.thickness[1:, :-1].view(np.uint32))
+    np.testing.assert_array_equal(fast.thickness.view(np.uint32), checked.thickness.view(np.uint32))
+    m = s.scanned[1:, :-1]
+    np.testing.assert_array_equal(fast.side[m], s.side[1:, :-1][m])
+    np.testing.assert_array_equal(fast.plate, checked.plate)
+
+
+def data_line_after_block(lines, header_row, block=1):
+    """0-based index in ``lines`` of a data row inside the given block of the fast pass."""
+    return header_row + 1 + block * csvscan._BLOCK_ROWS + 123
+
+
+def test_side_spelling_in_a_later_block(tmp_path, monkeypatch):
+    # " Top " and "UNDER" are accepted labels (formats.md); written in the second block they
+    # make the fast pass give up, and the result must still be the scan with those cells set.
+    s, path, lines = big_table(tmp_path)
+    head = lines.index("x,y,thickness,side,plate")
+    k = data_line_after_block(lines, head)
+    expect_side = s.side.copy()
+    for offset, label, code in ((0, " Top ", scanmod.SIDE_TOP), (1, "UNDER", scanmod.SIDE_UNDER)):
+        fields = lines[k + offset].split(",")
+        fields[3] = label
+        lines[k + offset] = ",".join(fields)
+        x, y = float(fields[0]), float(fields[1])
+        expect_side[int(round((y - s.y0) / s.pitch)), int(round((x - s.x0) / s.pitch))] = code
+    path.write_text("\n".join(lines) + "\n")
+    calls = count_checked(monkeypatch)
+    back = read_csv_scan(path)
+    assert calls == [1]
+    np.testing.assert_array_equal(back.side[s.scanned], expect_side[s.scanned])
+    np.testing.assert_array_equal(back.thickness.view(np.uint32), s.thickness.view(np.uint32))
+
+
+@pytest.mark.parametrize("column,value,message", [
+    (2, "0", r"field 'thickness': thickness 0\.0 is not positive"),
+    (2, "inf", r"field 'thickness': thickness inf is not finite"),
+    (0, "inf", r"field 'x': 'inf' is not finite"),
+    (1, "1e400", r"field 'y': '1e400' is not finite"),
+    (0, "3.5", r"field 'x': 3\.5 is off the grid"),
+    (3, "sideways", r"field 'side': 'sideways' is not a side"),
+    (4, "2.5", r"field 'plate': 2\.5 is not a plate id"),
+    (4, "-3", r"field 'plate': -3\.0 is not a plate id"),
+])
+def test_error_in_a_later_block_names_its_line(tmp_path, column, value, message):
+    # One bad cell in the third block: the one-line error names that file line (1-based).
+    s, path, lines = big_table(tmp_path)
+    head = lines.index("x,y,thickness,side,plate")
+    k = data_line_after_block(lines, head, block=2)
+    fields = lines[k].split(",")
+    fields[column] = value
+    lines[k] = ",".join(fields)
+    path.write_text("\n".join(lines) + "\n")
+    with pytest.raises(InputError, match=rf"big\.csv:{k + 1}: {message}"):
+        read_csv_scan(path)
+
+
+def test_duplicate_cell_across_blocks(tmp_path):
+    # The first row repeated at the end: the later line is named, with the first one.
+    s, path, lines = big_table(tmp_path)
+    head = lines.index("x,y,thickness,side,plate")
+    lines.append(lines[head + 1])
+    path.write_text("\n".join(lines) + "\n")
+    x, y = lines[head + 1].split(",")[:2]
+    with pytest.raises(InputError, match=rf"big\.csv:{len(lines)}: duplicate cell \({x}, {y}\), "
+                                         rf"already given on line {head + 2}"):
+        read_csv_scan(path)
+
+
+def test_text_not_utf8_in_side_named_before_later_errors(tmp_path):
+    # A side cell that is not UTF-8 makes the table unreadable: it is named first, even
+    # though a later line also has a bad thickness (the earliest problem wins).
+    path = tmp_path / "u8.csv"
+    path.write_bytes(b"# format: scananalyse-scan 1\n# inspected: 2024-01-01\n# units: mm\n# pitch: 10\n"
+                     b"# nominal: 6\nx,y,thickness,side,plate\n0,0,5,top,1\n10,0,5,t\xffp,1\n"
+                     b"0,10,-5,top,1\n")
+    with pytest.raises(InputError, match=r"u8\.csv:8: not UTF-8 text"):
+        read_csv_scan(path)
+
+
+def test_infinite_coordinates_raise_no_numpy_warning(tmp_path):
+    # inf - inf inside the fast pass must not surface as a RuntimeWarning (only the InputError).
+    import warnings
+
+    path = tmp_path / "inf.csv"
+    path.write_text("# format: scananalyse-scan 1\n# inspected: 2024-01-01\n# units: mm\n# pitch: 10\n"
+                    "# nominal: 6\nx,y,thickness\n0,0,5\ninf,0,5\n0,-inf,5\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises(InputError, match=r"inf\.csv:8: field 'x': 'inf' is not finite"):
+            read_csv_scan(path)

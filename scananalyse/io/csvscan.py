@@ -1,9 +1,13 @@
 """Floor-scan CSV, version 1: read and write (design contract 3.1, docs/formats.md).
 
 Reading is vectorised: the ``# key: value`` header lines are parsed here, the
-table by pandas' C reader with explicit dtypes, and the rows are put on the
-grid with array operations.  Only when the table is bad does the reader go
-back over the file line by line, to name the offending line.
+table by pandas' C reader with explicit dtypes that keep its parallel reader
+on (``side`` as 8-byte strings, not ``category``), and the rows are checked
+and put on the grid in one pass over cache-sized blocks (:func:`_place_fast`).
+Only when a check fails, or the table is unusual (side labels in capitals), do
+the checks run one by one (:func:`_place_checked`), going back over the file
+line by line to name the offending line.  A good large file reads in about
+the time of a plain ``pandas.read_csv`` of it (``bench/bench_io.py``).
 """
 
 from __future__ import annotations
@@ -35,6 +39,22 @@ _MAX_HEADER_LINES = 10000
 _NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
 _INF = {"inf", "+inf", "-inf", "infinity", "+infinity", "-infinity"}
 _NUMERIC_COLUMNS = ("x", "y", "thickness", "plate")
+#: Bytes read per block by the table byte check: small enough for the comma mask
+#: to stay in the processor cache (4 MiB blocks were a third slower). [bytes]
+_SCAN_BLOCK = 1 << 18
+#: The ``side`` column is parsed as 8-byte strings (numpy ``S8``, one 64-bit word
+#: a cell): the allowed labels are at most 7 bytes, so a longer cell, cut to 8,
+#: can never equal one.  A fixed dtype keeps every chunk of pandas' parallel
+#: reader on the same dtype; ``category`` (inferred per chunk) made the chunks
+#: disagree and pandas read the whole file again serially (3.5 x slower).
+_SIDE_WIDTH = 8
+#: Each allowed label as the 64-bit word of its ``S8`` cell, with its side code.
+_SIDE_WORDS = tuple((int(np.frombuffer(label.encode("ascii").ljust(_SIDE_WIDTH, b"\0"), np.uint64)[0]), code)
+                    for label, code in v.SIDE_LABELS.items())
+assert max(len(label) for label in v.SIDE_LABELS) < _SIDE_WIDTH
+#: Rows handled per block by :func:`_place_fast`: the temporaries of a block stay
+#: in the processor cache. [rows]
+_BLOCK_ROWS = 1 << 15
 
 
 class _Header:
@@ -324,14 +344,15 @@ def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
     so such a file is refused before it is parsed (a CR at the very end of the
     file is a line ending for both).  The CR search is a
     ``memchr`` per block (a file without CR costs almost nothing); only blocks
-    holding a CR are looked at byte by byte.
+    holding a CR are looked at byte by byte.  The blocks are small
+    (:data:`_SCAN_BLOCK`) so that the comma mask stays in the processor cache.
 
     Returns
     -------
     The number of commas in the table when ``count_commas``, else None.
     """
     commas = 0
-    block = bytearray(1 << 22)
+    block = bytearray(_SCAN_BLOCK)
     view = np.frombuffer(block, dtype=np.uint8)
     hits = np.empty(view.shape, dtype=bool) if count_commas else None
     pending = False  # the previous block ended with a CR
@@ -435,6 +456,8 @@ def read_csv_scan(path) -> FloorScan:
                       ScanWarning, stacklevel=2)
     commas = _check_table_bytes(path, hdr, count_commas=any(c not in COLUMNS_REQUIRED for c in cols))
     dtype = {c: ("category" if c not in _NUMERIC_COLUMNS else np.float64) for c in cols}
+    if "side" in dtype:
+        dtype["side"] = np.dtype(f"S{_SIDE_WIDTH}")
     try:
         df = pd.read_csv(path, engine="c", skiprows=hdr.table_line, header=None, names=cols,
                          dtype=dtype, keep_default_na=False,
@@ -447,10 +470,169 @@ def read_csv_scan(path) -> FloorScan:
     n = len(df)
     if n == 0:
         raise InputError(f"{where(path, hdr.table_line)}: the table has no data rows")
+    table = _Table(df)
+    del df
+    if commas is None or commas == n * (len(cols) - 1):
+        scan = _place_fast(table, grid, pitch_u, pitch_mm, meta, factor, path)
+        if scan is not None:
+            return scan
+    # Something is wrong (or unusual, such as side labels in capitals): the checks one
+    # by one, in the documented order, each naming the first offending line.
+    return _place_checked(table, grid, pitch_u, pitch_mm, meta, factor, path, hdr, commas)
 
-    x = df["x"].to_numpy(np.float64)
-    y = df["y"].to_numpy(np.float64)
-    t = df["thickness"].to_numpy(np.float64)
+
+class _Table:
+    """The parsed columns as numpy arrays (views of pandas' buffers); ``None`` when absent."""
+
+    def __init__(self, df: pd.DataFrame):
+        self.n = len(df)
+        self.x = df["x"].to_numpy(np.float64)
+        self.y = df["y"].to_numpy(np.float64)
+        self.t = df["thickness"].to_numpy(np.float64)
+        self.side = df["side"] if "side" in df.columns else None
+        self.plate = df["plate"].to_numpy(np.float64) if "plate" in df.columns else None
+
+
+def _place_fast(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path) -> FloorScan | None:
+    """The scan of a good table in one blocked pass, or None when any check fails.
+
+    Every check of :func:`_place_checked` is made, block by block, on cache-sized
+    temporaries (finite coordinates on the grid, inside the grid keys, thickness,
+    exact side labels, plate ids, no cell twice) and the rows are put on the grid
+    as they pass.  It raises nothing: at the first failure it gives up and
+    :func:`_place_checked` finds and names the problem.  The parsed arrays are
+    not modified.  The arithmetic is the one of :func:`_place_checked`, so both
+    give identical grids.
+    """
+    # inf - inf and overflowing coordinates only make a check fail: no warnings.
+    with np.errstate(invalid="ignore", over="ignore"):
+        return _place_fast_body(table, grid, pitch_u, pitch_mm, meta, factor, path)
+
+
+def _place_fast_body(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path) -> FloorScan | None:
+    """Body of :func:`_place_fast` (same arguments, same result)."""
+    n = table.n
+    x, y, t = table.x, table.y, table.t
+    words = None
+    if table.side is not None:
+        words = _side_words(table.side)
+        if words is None:
+            return None
+    if grid is None:
+        # rint((c - anchor) / pitch) never decreases as c grows, so the largest
+        # index comes from the largest coordinate.
+        x0_u, x1_u, y0_u, y1_u = float(x.min()), float(x.max()), float(y.min()), float(y.max())
+        ncols_f = float(np.rint((x1_u - x0_u) / pitch_u)) + 1.0
+        nrows_f = float(np.rint((y1_u - y0_u) / pitch_u)) + 1.0
+        if not nrows_f * ncols_f <= v.MAX_GRID_CELLS:  # also False for NaN and inf
+            return None
+        nrows, ncols = int(nrows_f), int(ncols_f)
+    else:
+        x0_u, y0_u, nrows, ncols = grid
+    cells = nrows * ncols
+    thickness = np.full(cells, np.nan, dtype=np.float32)
+    side = np.zeros(cells, dtype=np.int8) if words is not None else None
+    plate = np.full(cells, PLATE_NONE, dtype=np.int32) if table.plate is not None else None
+    size = min(n, _BLOCK_ROWS)
+    bufs = ((x, np.empty(size), np.empty(size)), (y, np.empty(size), np.empty(size)))
+    tol = v.OFF_GRID_TOLERANCE
+    id_max = np.iinfo(np.int32).max
+    for start in range(0, n, _BLOCK_ROWS):
+        stop = min(n, start + _BLOCK_ROWS)
+        k = stop - start
+        tb = t[start:stop]
+        if v.first_bad_thickness(tb, meta.nominal, factor, allow_nan=False) is not None:
+            return None
+        index = []
+        for (coord, dist, near), anchor, limit in zip(bufs, (x0_u, y0_u), (ncols, nrows)):
+            c = np.subtract(coord[start:stop], anchor, out=dist[:k])
+            c /= pitch_u
+            r = np.rint(c, out=near[:k])
+            c -= r  # distance from the nearest centre [cells]; NaN for a coordinate not finite
+            if not (c.max() <= tol and -c.min() <= tol and r.min() >= 0 and r.max() < limit):
+                return None
+            index.append(r)
+        jf, iff = index
+        iff *= ncols  # exact: whole numbers far below 2**53
+        iff += jf
+        flat = iff.astype(np.intp)
+        # Cast first: a float32 scatter is faster than one that casts (same rounding).
+        thickness[flat] = (tb if factor == 1.0 else tb * factor).astype(np.float32)
+        if words is not None:
+            codes = _side_block(words[start:stop])
+            if codes is None:
+                return None
+            if codes is not _NO_CODES:
+                side[flat] = codes
+        if plate is not None:
+            pb = table.plate[start:stop]
+            lo, hi = pb.min(), pb.max()
+            if np.isnan(lo):  # empty cells (NaN propagates through min): none
+                pb = np.where(np.isnan(pb), float(PLATE_NONE), pb)
+                lo, hi = pb.min(), pb.max()
+            if not (lo >= PLATE_NONE and hi <= id_max):
+                return None
+            ids = pb.astype(np.int32)
+            if not (ids == pb).all():  # whole numbers only
+                return None
+            plate[flat] = ids
+    if int(np.count_nonzero(~np.isnan(thickness))) != n:
+        return None  # a cell given twice
+    if side is not None:
+        side = side.reshape(nrows, ncols)
+    if plate is not None:
+        plate = plate.reshape(nrows, ncols)
+    return FloorScan(thickness=thickness.reshape(nrows, ncols), x0=x0_u * factor, y0=y0_u * factor,
+                     pitch=pitch_mm, meta=meta, side=side, plate=plate, source=path)
+
+
+#: Returned by :func:`_side_block` for a block of code 0 only (nothing to write).
+_NO_CODES = np.zeros(0, dtype=np.int8)
+
+
+def _side_block(words: np.ndarray):
+    """Side codes of ``S8`` cells seen as 64-bit words; None when one is not an exact label.
+
+    The labels are tried in :data:`_SIDE_WORDS` order (unknown first) and the
+    search stops once every cell is matched; :data:`_NO_CODES` when every code
+    is 0 (unknown).
+    """
+    matched = 0
+    codes = None
+    for word, code in _SIDE_WORDS:
+        hit = words == word
+        count = int(np.count_nonzero(hit))
+        matched += count
+        if count and code:
+            if codes is None:
+                codes = np.zeros(words.size, dtype=np.int8)
+            codes[hit] = code
+        if matched == words.size:
+            return _NO_CODES if codes is None else codes
+    return None
+
+
+def _place_checked(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path, hdr,
+                   commas) -> FloorScan:
+    """Check the table in the documented order, naming the first problem; else the scan.
+
+    The path for a table that :func:`_place_fast` gave up on: raises the
+    :class:`InputError` of the first check that fails, or returns the scan of
+    a good but unusual table (side labels in capitals or with spaces).  It
+    reuses the parsed x and y buffers in place.
+    """
+    n = table.n
+    side_codes = side_text = None
+    if table.side is not None:
+        side_codes = _side_codes(table.side)
+        if side_codes is None:
+            # Not every cell an exact label: read the column as text now, so that text
+            # which is not UTF-8 is refused first, as a table that cannot be read.
+            try:
+                side_text = _side_text(path, hdr)
+            except (UnicodeDecodeError, pd.errors.ParserError) as exc:
+                raise _scan_table(path, hdr, str(exc)) from None
+    x, y, t = table.x, table.y, table.t
     # Missing or bad values: the earliest row wins, then the column order x, y, thickness.
     candidates = [(r, c) for r, c in ((_first_nonfinite(x), "x"), (_first_nonfinite(y), "y"),
                                       (v.first_bad_thickness(t, meta.nominal, factor, allow_nan=False),
@@ -462,9 +644,9 @@ def read_csv_scan(path) -> FloorScan:
     if commas is not None:
         # Rows short of trailing optional fields parse without a trace; count the commas.
         _check_field_count(path, hdr, n, commas)
-    side_codes = _side_codes(df, path, hdr) if "side" in cols else None
-    plate_ids = _plate_ids(df, path, hdr) if "plate" in cols else None
-    del df
+    if side_text is not None:
+        side_codes = _side_codes_text(side_text, path, hdr)
+    plate_ids = _plate_ids(table.plate, path, hdr) if table.plate is not None else None
 
     # ---- put the rows on the grid (file units) ----------------------------------
     # Fresh large arrays cost page faults, so the parsed x and y buffers are reused
@@ -565,8 +747,37 @@ def _writable(a: np.ndarray) -> np.ndarray:
     return a
 
 
-def _side_codes(df, path, hdr) -> np.ndarray:
-    col = df["side"]
+def _side_codes(col: pd.Series) -> np.ndarray | None:
+    """Side codes (int8) of the ``side`` column parsed as ``S8`` cells, or None.
+
+    None when some cell is not an allowed label written exactly (another
+    spelling such as `` Top `` or ``UNDER``, or a bad value): then
+    :func:`_side_text` and :func:`_side_codes_text` read and check the column.
+    """
+    words = _side_words(col)
+    codes = None if words is None else _side_block(words)
+    if codes is _NO_CODES:
+        return np.zeros(words.size, dtype=np.int8)
+    return codes
+
+
+def _side_words(col: pd.Series) -> np.ndarray | None:
+    """The ``S8`` cells of the parsed ``side`` column as 64-bit words (a view), or None."""
+    words = col.to_numpy()
+    if words.dtype != np.dtype(f"S{_SIDE_WIDTH}"):
+        return None
+    return np.ascontiguousarray(words).view(np.uint64)
+
+
+def _side_text(path, hdr) -> pd.Series:
+    """The ``side`` column read again as text (categories as written). Unusual files only."""
+    return pd.read_csv(path, engine="c", skiprows=hdr.table_line, header=None, names=hdr.columns,
+                       usecols=["side"], dtype={"side": "category"}, keep_default_na=False,
+                       encoding="utf-8", skip_blank_lines=True)["side"]
+
+
+def _side_codes_text(col: pd.Series, path, hdr) -> np.ndarray:
+    """Side codes of the ``side`` column as text: labels in any case, with spaces; refuse others."""
     cats = [str(c).strip().lower() for c in col.cat.categories]
     bad = [i for i, c in enumerate(cats) if c not in v.SIDE_LABELS]
     codes = col.cat.codes.to_numpy()
@@ -579,8 +790,8 @@ def _side_codes(df, path, hdr) -> np.ndarray:
     return lut[codes]  # code -1 (missing) picks the trailing 0 = unknown
 
 
-def _plate_ids(df, path, hdr) -> np.ndarray:
-    p = df["plate"].to_numpy(np.float64)
+def _plate_ids(p: np.ndarray, path, hdr) -> np.ndarray:
+    """Plate ids (int32, :data:`PLATE_NONE` for empty cells) of the parsed ``plate`` column (float64)."""
     missing = np.isnan(p)
     with np.errstate(invalid="ignore"):
         bad = ~missing & ((p != np.floor(p)) | (p < PLATE_NONE) | (p > np.iinfo(np.int32).max))
