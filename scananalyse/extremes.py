@@ -424,19 +424,22 @@ def projected_block_maxima(depth, rate, *, valid, block_cells, min_coverage=0.5,
                        threshold=threshold)
     b = int(block_cells)
     m, n = d.shape
-    nbr, nbc = -(-m // b), -(-n // b)
+    nbc = -(-n // b)
     tiles = bm0.keys[:, 0] * nbc + bm0.keys[:, 1] if bm0.n_blocks else np.zeros(0, dtype=np.int64)
 
-    def gather(a, fill):
-        # the counted tiles' cells, one row per tile (rows padded with ``fill``)
-        pad = np.full((nbr * b, nbc * b), fill, dtype=np.float32)
-        pad[:m, :n] = a
-        return pad.reshape(nbr, b, nbc, b).transpose(0, 2, 1, 3).reshape(nbr * nbc, b * b)[tiles]
-
-    use = ok & np.isfinite(d)
-    d_t = gather(np.where(use, d, -np.inf), -np.inf)
-    r_t = gather(np.where(use, r, 0.0), 0.0)
-    del use
+    # the counted tiles' cells, one row per tile (unusable cells: depth -inf, rate 0),
+    # gathered one band of tile rows at a time so no full-grid copy is made
+    d_t = np.empty((tiles.size, b * b), dtype=np.float32)
+    r_t = np.empty((tiles.size, b * b), dtype=np.float32)
+    t_row, t_col = (bm0.keys[:, 0], bm0.keys[:, 1]) if tiles.size else (np.zeros(0, int), np.zeros(0, int))
+    for tr in np.unique(t_row):
+        sel = np.flatnonzero(t_row == tr)
+        rows = slice(int(tr) * b, min(m, (int(tr) + 1) * b))
+        use = ok[rows] & np.isfinite(d[rows])
+        for src, dst, fill in ((d, d_t, -np.inf), (r, r_t, 0.0)):
+            band = np.full((b, nbc * b), fill, dtype=np.float32)
+            band[:use.shape[0], :n] = np.where(use, src[rows], np.float32(fill))
+            dst[sel] = band.reshape(b, nbc, b).transpose(1, 0, 2)[t_col[sel]].reshape(sel.size, b * b)
     thr = None if threshold is None else float(threshold)
 
     def maxima_at(horizon: float) -> BlockMaxima:

@@ -480,8 +480,8 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
     depth0 = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
     if censored is not None:
         depth0[censored & scanned] = 0.0
-    rate = np.nan_to_num(np.fmax(rate_top, 0), nan=0.0) + np.nan_to_num(np.fmax(rate_under, 0), nan=0.0)
-    rate = rate.astype(np.float32)
+    rate = np.fmax(np.asarray(rate_top, dtype=np.float32), np.float32(0))  # fmax: NaN -> 0 as well
+    rate += np.fmax(np.asarray(rate_under, dtype=np.float32), np.float32(0))
     out = {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
@@ -551,7 +551,12 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
                 # the excess grows with H (every projected loss does); Brent's method needs
                 # far fewer fits than bisection; the root is taken 0.05 y on the short side
                 life = max(0.0, brentq(excess, 0.0, LIFE_HORIZON_Y, xtol=0.02) - 0.05)
+            # the closures above are kept alive by reference cycles until a garbage
+            # collection: let go of the zone's grids now (tens of bytes per cell)
+            projector.clear()
+            del d_zone, r_zone
         out[name] = {"life_eva_y": life, "method": z0.row().get("eva_method", ""), "reason": ""}
+    del depth0, rate
     return out
 
 
