@@ -34,6 +34,7 @@ __all__ = [
     "EULER_GAMMA",
     "MIN_UNCENSORED",
     "BlockMaxima",
+    "ProjectedMaxima",
     "projected_block_maxima",
     "GumbelFit",
     "GEVFit",
@@ -322,14 +323,9 @@ def block_maxima(values, *, valid=None, block_cells=None, labels=None,
         raise InputError("block_maxima: field 'block_cells'/'labels': give exactly one")
     if not 0.0 <= float(min_coverage) <= 1.0:
         raise InputError(f"block_maxima: field 'min_coverage' must be in [0, 1], got {min_coverage}")
-    finite = np.isfinite(v)
-    ok = finite if valid is None else (np.asarray(valid, dtype=bool) & np.ones_like(finite))
-    if ok.shape != v.shape:
+    if valid is not None and np.shape(valid) != v.shape:
         raise InputError("block_maxima: field 'valid' must have the shape of 'values'")
-    has = ok & finite
-    # -inf where there is no usable value; float32 keeps big grids small
-    work = np.where(has, v, -np.inf).astype(np.float32 if v.dtype == np.float32 else np.float64,
-                                            copy=False)
+    wdtype = np.float32 if v.dtype == np.float32 else np.float64  # float32 keeps big grids small
 
     if block_cells is not None:
         b = int(block_cells)
@@ -337,18 +333,35 @@ def block_maxima(values, *, valid=None, block_cells=None, labels=None,
             raise InputError(f"block_maxima: field 'block_cells' must be >= 1, got {block_cells}")
         m, n = v.shape
         nbr, nbc = -(-m // b), -(-n // b)
-        pm, pn = nbr * b - m, nbc * b - n
-        if pm or pn:
-            work = np.pad(work, ((0, pm), (0, pn)), constant_values=-np.inf)
-            ok_p = np.pad(ok, ((0, pm), (0, pn)), constant_values=False)
-        else:
-            ok_p = ok
-        mx = work.reshape(nbr, b, nbc, b).max(axis=(1, 3)).ravel()
-        cnt = ok_p.reshape(nbr, b, nbc, b).sum(axis=(1, 3), dtype=np.int64).ravel()
+        mx = np.empty((nbr, nbc), dtype=wdtype)
+        cnt = np.empty((nbr, nbc), dtype=np.int64)
+        val = None if valid is None else np.asarray(valid, dtype=bool)
+        # one band of tile rows at a time: the temporaries stay a band in size
+        work = np.full((b, nbc * b), -np.inf, dtype=wdtype)
+        okb = np.zeros((b, nbc * b), dtype=bool)
+        for r in range(nbr):
+            rows = slice(r * b, min(m, (r + 1) * b))
+            vb = v[rows]
+            h = vb.shape[0]
+            fin = np.isfinite(vb)
+            ok_r = fin if val is None else val[rows]
+            work[:h, :n] = np.where(ok_r & fin, vb, -np.inf)
+            okb[:h, :n] = ok_r
+            if h < b:  # the last band is partial: the missing rows hold nothing
+                work[h:] = -np.inf
+                okb[h:] = False
+            mx[r] = work.reshape(b, nbc, b).max(axis=(0, 2))
+            cnt[r] = okb.reshape(b, nbc, b).sum(axis=(0, 2), dtype=np.int64)
+        mx = mx.ravel()
+        cnt = cnt.ravel()
         area = np.full(mx.shape, b * b, dtype=np.int64)
         rr, cc = np.divmod(np.arange(mx.size), nbc)
         keys = np.stack([rr, cc], axis=1)
     else:
+        finite = np.isfinite(v)
+        ok = finite if valid is None else np.asarray(valid, dtype=bool)
+        # -inf where there is no usable value
+        work = np.where(ok & finite, v, -np.inf).astype(wdtype, copy=False)
         lab = np.asarray(labels)
         if lab.shape != v.shape:
             raise InputError("block_maxima: field 'labels' must have the shape of 'values'")
@@ -391,14 +404,59 @@ def block_maxima(values, *, valid=None, block_cells=None, labels=None,
                        threshold=None if threshold is None else float(threshold))
 
 
-def projected_block_maxima(depth, rate, *, valid, block_cells, min_coverage=0.5, threshold=None):
+class ProjectedMaxima:
+    """Block maxima and the deepest value of ``depth + rate * H`` for any horizon H.
+
+    Made by :func:`projected_block_maxima`.  Calling it with H returns the
+    :class:`BlockMaxima` that ``block_maxima(depth + rate * H, ...)`` returns;
+    :meth:`deepest` gives the largest projected value over every valid cell.
+    """
+
+    def __init__(self, bm0, d_t, r_t, d_rest, r_rest, threshold):
+        self._bm0 = bm0
+        self._d_t, self._r_t = d_t, r_t
+        self._d_rest, self._r_rest = d_rest, r_rest
+        self._thr = threshold
+        self._last = None
+
+    def _tile_max(self, horizon: float) -> np.ndarray:
+        if self._last is None or self._last[0] != horizon:
+            mx = ((self._d_t + self._r_t * np.float32(horizon)).max(axis=1).astype(float)
+                  if self._d_t.shape[0] else np.zeros(0))
+            self._last = (horizon, mx)
+        return self._last[1]
+
+    def __call__(self, horizon: float) -> BlockMaxima:
+        mx = self._tile_max(horizon)
+        none = ~np.isfinite(mx)
+        cens = none.copy()
+        if self._thr is not None:
+            cens |= mx < self._thr
+        bm0 = self._bm0
+        return BlockMaxima(maxima=np.where(none, np.nan, mx), censored=cens, coverage=bm0.coverage,
+                           area_cells=bm0.area_cells, block_area_cells=bm0.block_area_cells,
+                           keys=bm0.keys, n_candidates=bm0.n_candidates, threshold=self._thr)
+
+    def deepest(self, horizon: float) -> float:
+        """Largest ``depth + rate * H`` over every valid cell (NaN if there is none). [mm]"""
+        mx = self._tile_max(horizon)
+        best = float(np.max(mx)) if mx.size else -np.inf
+        if self._d_rest.size:
+            best = max(best, float(np.max(self._d_rest + self._r_rest * np.float32(horizon))))
+        return best if np.isfinite(best) else float("nan")
+
+
+def projected_block_maxima(depth, rate, *, valid, block_cells, min_coverage=0.5, threshold=None
+                           ) -> ProjectedMaxima:
     r"""Block maxima of a loss projected linearly in time, for many horizons at one cost.
 
-    ``maxima_at(H)`` returns what ``block_maxima(depth + rate * H, valid=valid,
+    ``p(H)`` returns what ``block_maxima(depth + rate * H, valid=valid,
     block_cells=block_cells, min_coverage=min_coverage, threshold=threshold)`` returns,
-    without passing over the whole grid for each horizon: the counted tiles (the
-    coverage rule does not depend on H) are gathered once into a tile-major array, and
-    each call is one multiply-add and one contiguous maximum per tile.
+    and ``p.deepest(H)`` the largest projected value over all valid cells, without
+    passing over the whole grid for each horizon: the counted tiles (the coverage rule
+    does not depend on H) are gathered once into a tile-major array, the valid cells
+    outside them into a short list, and each call is one multiply-add and one
+    contiguous maximum per tile.
 
     Parameters
     ----------
@@ -412,11 +470,11 @@ def projected_block_maxima(depth, rate, *, valid, block_cells, min_coverage=0.5,
 
     Returns
     -------
-    callable
-        ``maxima_at(H) -> BlockMaxima`` for a horizon H. [y]
+    ProjectedMaxima
+        Callable on a horizon H [y].
     """
     d = np.asarray(depth, dtype=np.float32)
-    r = np.nan_to_num(np.asarray(rate, dtype=np.float32), nan=0.0)
+    r = np.asarray(rate, dtype=np.float32)
     ok = np.asarray(valid, dtype=bool)
     if d.shape != ok.shape or r.shape != d.shape:
         raise InputError("projected_block_maxima: fields 'depth', 'rate' and 'valid' must have one shape")
@@ -424,35 +482,39 @@ def projected_block_maxima(depth, rate, *, valid, block_cells, min_coverage=0.5,
                        threshold=threshold)
     b = int(block_cells)
     m, n = d.shape
-    nbc = -(-n // b)
-    tiles = bm0.keys[:, 0] * nbc + bm0.keys[:, 1] if bm0.n_blocks else np.zeros(0, dtype=np.int64)
+    nbr, nbc = -(-m // b), -(-n // b)
+    k = bm0.n_blocks
+    t_row = bm0.keys[:, 0] if k else np.zeros(0, dtype=np.int64)
+    t_col = bm0.keys[:, 1] if k else np.zeros(0, dtype=np.int64)
 
     # the counted tiles' cells, one row per tile (unusable cells: depth -inf, rate 0),
-    # gathered one band of tile rows at a time so no full-grid copy is made
-    d_t = np.empty((tiles.size, b * b), dtype=np.float32)
-    r_t = np.empty((tiles.size, b * b), dtype=np.float32)
-    t_row, t_col = (bm0.keys[:, 0], bm0.keys[:, 1]) if tiles.size else (np.zeros(0, int), np.zeros(0, int))
-    for tr in np.unique(t_row):
-        sel = np.flatnonzero(t_row == tr)
-        rows = slice(int(tr) * b, min(m, (int(tr) + 1) * b))
+    # and the usable cells outside them, gathered one band of tile rows at a time so no
+    # full-grid copy is made
+    d_t = np.empty((k, b * b), dtype=np.float32)
+    r_t = np.empty((k, b * b), dtype=np.float32)
+    d_rest, r_rest = [], []
+    for tr in range(nbr):
+        rows = slice(tr * b, min(m, (tr + 1) * b))
         use = ok[rows] & np.isfinite(d[rows])
+        if not use.any():
+            continue
+        sel = np.flatnonzero(t_row == tr)
+        counted = np.zeros(nbc, dtype=bool)
+        counted[t_col[sel]] = True
+        rest = use & ~np.repeat(counted, b)[None, :n]
+        if rest.any():
+            d_rest.append(d[rows][rest])
+            r_rest.append(np.nan_to_num(r[rows][rest], nan=0.0))
+        if not sel.size:
+            continue
         for src, dst, fill in ((d, d_t, -np.inf), (r, r_t, 0.0)):
             band = np.full((b, nbc * b), fill, dtype=np.float32)
             band[:use.shape[0], :n] = np.where(use, src[rows], np.float32(fill))
+            if fill == 0.0:
+                np.nan_to_num(band, copy=False, nan=0.0)  # a NaN rate counts as 0
             dst[sel] = band.reshape(b, nbc, b).transpose(1, 0, 2)[t_col[sel]].reshape(sel.size, b * b)
-    thr = None if threshold is None else float(threshold)
-
-    def maxima_at(horizon: float) -> BlockMaxima:
-        mx = (d_t + r_t * np.float32(horizon)).max(axis=1).astype(float) if tiles.size else np.zeros(0)
-        none = ~np.isfinite(mx)
-        cens = none.copy()
-        if thr is not None:
-            cens |= mx < thr
-        return BlockMaxima(maxima=np.where(none, np.nan, mx), censored=cens, coverage=bm0.coverage,
-                           area_cells=bm0.area_cells, block_area_cells=bm0.block_area_cells,
-                           keys=bm0.keys, n_candidates=bm0.n_candidates, threshold=thr)
-
-    return maxima_at
+    cat = (lambda parts: np.concatenate(parts) if parts else np.zeros(0, dtype=np.float32))
+    return ProjectedMaxima(bm0, d_t, r_t, cat(d_rest), cat(r_rest), None if threshold is None else float(threshold))
 
 
 # --------------------------------------------------------------------------

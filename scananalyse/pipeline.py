@@ -8,6 +8,8 @@ folder that appears only when complete.  A notebook user can call
 
 from __future__ import annotations
 
+import dataclasses
+
 import datetime as _dt
 import math
 import os
@@ -214,7 +216,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         with prog.stage("registration"):
             if reg is None:
                 reg = register(new, old, control_points=job.control_points)
-            old_on_new = resample_onto(old, new, reg.transform)
+            # only the thickness is used on the newer grid (the layers are not carried)
+            old_on_new = resample_onto(dataclasses.replace(old, side=None, plate=None), new, reg.transform)
         if not reg.reliable:
             notes.append("registration is UNRELIABLE: " + "; ".join(reg.warnings))
 
@@ -302,6 +305,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     with prog.stage("indications"):
         ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job,
                                  labels=ind_labels)
+        del ind_labels
 
     # --- repairs -------------------------------------------------------------------
     with prog.stage("repairs"):
@@ -326,8 +330,6 @@ def _fill_uncovered_rates(lr, new, old_on_new, labels=None):
     labelled cells are visited.
     Returns the updated :class:`~scananalyse.rates.LossRates` and the number of cells filled.
     """
-    import dataclasses
-
     from .indications import label_indications
 
     if labels is None:
@@ -368,6 +370,16 @@ def _fill_uncovered_rates(lr, new, old_on_new, labels=None):
     return dataclasses.replace(lr, counts=counts, **changes), filled
 
 
+def _depth_map(thickness, nominal, censored) -> np.ndarray:
+    """Loss depth for the extreme-value fits: nominal − thickness, at least 0, NaN where not
+    scanned, 0 on censored cells (valid, nothing reported); float32, no full-grid temporaries."""
+    depth = np.float32(nominal) - np.asarray(thickness, dtype=np.float32)
+    np.maximum(depth, np.float32(0), out=depth)  # NaN (not scanned) stays NaN
+    if censored is not None:
+        depth[censored & ~np.isnan(depth)] = 0.0
+    return depth
+
+
 def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, threshold, pitch, job):
     """Block-maxima statistics of loss depth and of the summed rate, per zone.
 
@@ -376,9 +388,7 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
     fit as left-censored at the threshold.
     """
     scanned = np.isfinite(thickness)
-    depth = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
-    if censored is not None:
-        depth[censored & scanned] = 0.0
+    depth = _depth_map(thickness, nominal, censored)
     rate_sum = (rate_top + rate_under).astype(np.float32)
     thr = threshold or None
     ext_d, ext_r = {}, {}
@@ -477,9 +487,7 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
     from .extremes import fit_gev_mle, fit_gumbel_mle, max_quantile, projected_block_maxima
 
     scanned = np.isfinite(thickness)
-    depth0 = np.where(scanned, np.maximum(np.float32(nominal) - thickness, 0), np.nan).astype(np.float32)
-    if censored is not None:
-        depth0[censored & scanned] = 0.0
+    depth0 = _depth_map(thickness, nominal, censored)
     rate = np.fmax(np.asarray(rate_top, dtype=np.float32), np.float32(0))  # fmax: NaN -> 0 as well
     rate += np.fmax(np.asarray(rate_under, dtype=np.float32), np.float32(0))
     out = {}
@@ -487,7 +495,7 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
         mask = zmap.labels == k
         if not (scanned & mask).any() or not float(zmap.areas_mm2[k]) > 0:
             continue
-        allowance = float(nominal - np.nanmin(np.where(mask, mrt, np.nan)))
+        allowance = float(nominal - np.nanmin(np.asarray(mrt, dtype=np.float32)[mask]))
         in_zone = scanned & mask
         hidden_mm2 = max(0.0, float(zmap.areas_mm2[k]) - np.count_nonzero(in_zone) * pitch * pitch)
         kw = dict(pitch_mm=pitch, zone_area_mm2=max(hidden_mm2, 1.0), block_mm=job.block_mm,
@@ -516,19 +524,18 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
                 last[0] = (f.loc, f.scale, f.shape)
                 return f
 
-            d_zone, r_zone = depth0[in_zone], rate[in_zone]
-            projector = []  # built on the first horizon after H = 0
+            projector = []  # built on the first call: the zone's cells, tile by tile
 
             def excess(h):
-                seen = float(np.nanmax(d_zone + r_zone * np.float32(h)))
+                if not projector:
+                    projector.append(projected_block_maxima(depth0, rate, valid=in_zone, block_cells=b_cells,
+                                                            min_coverage=0.5, threshold=thr))
+                seen = projector[0].deepest(h)  # the deepest projected loss among the scanned cells
                 if hidden_mm2 <= 0:
                     return seen - allowance
                 if h == 0:
                     fit = z0.fit  # the zone's depth fit is the fit of these very block maxima
                 else:
-                    if not projector:
-                        projector.append(projected_block_maxima(depth0, rate, valid=in_zone, block_cells=b_cells,
-                                                                min_coverage=0.5, threshold=thr))
                     bm = projector[0](h)
                     x, cens = bm.maxima, bm.censored
                     if thr is None:
@@ -554,7 +561,6 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
             # the closures above are kept alive by reference cycles until a garbage
             # collection: let go of the zone's grids now (tens of bytes per cell)
             projector.clear()
-            del d_zone, r_zone
         out[name] = {"life_eva_y": life, "method": z0.row().get("eva_method", ""), "reason": ""}
     del depth0, rate
     return out

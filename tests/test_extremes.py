@@ -555,3 +555,30 @@ def test_projected_block_maxima_equal_the_direct_computation():
         np.testing.assert_array_equal(got.keys, want.keys)
         np.testing.assert_allclose(got.maxima, want.maxima, rtol=1e-6)
         np.testing.assert_array_equal(got.censored, want.censored)
+        # the deepest projected value over every valid cell, tiles counted or not
+        proj = depth + np.nan_to_num(rate) * np.float32(h)
+        assert at.deepest(h) == pytest.approx(float(np.max(proj[valid])), rel=1e-6)
+
+
+def test_tile_block_maxima_equal_a_loop_over_the_tiles():
+    # the definition, tile by tile: coverage = valid cells / b², kept at >= 50 %, maximum of
+    # the finite valid values, censored below the threshold or when there is none
+    rng = np.random.default_rng(21)
+    shape, b = (83, 61), 9
+    v = rng.gamma(2.0, 0.4, shape).astype(np.float32)
+    v[rng.random(shape) < 0.2] = np.nan
+    valid = rng.random(shape) < 0.8
+    got = ex.block_maxima(v, valid=valid, block_cells=b, min_coverage=0.5, threshold=0.8)
+    want = []
+    for r in range(0, shape[0], b):
+        for c in range(0, shape[1], b):
+            ok = valid[r:r + b, c:c + b]
+            if ok.sum() == 0 or ok.sum() / b ** 2 < 0.5:
+                continue
+            vals = v[r:r + b, c:c + b][ok]
+            vals = vals[np.isfinite(vals)]
+            want.append((r // b, c // b, vals.max() if vals.size else np.nan))
+    assert got.n_blocks == len(want) > 20
+    np.testing.assert_array_equal(got.keys, [(r, c) for r, c, _ in want])
+    np.testing.assert_array_equal(got.maxima, [m for _, _, m in want])
+    np.testing.assert_array_equal(got.censored, [not (m >= 0.8) for _, _, m in want])
