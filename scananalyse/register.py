@@ -541,11 +541,12 @@ def _chunk_rows(shape, max_cells=1 << 20) -> int:
     return max(1, int(max_cells // max(1, shape[1])))
 
 
-def _old_indices(old: FloorScan, new: FloorScan, transform: RigidTransform):
+def _chunks(old: FloorScan, new: FloorScan, transform: RigidTransform):
     """Fractional (row, col) indices into ``old`` of ``new``'s cell centres, in row chunks.
 
-    Yields ``(r0, r1, ri, ci)`` for new rows ``r0:r1`` (float64 arrays of about 10^6 cells):
-    the indices are affine in the new cell indices, so no full-grid arrays are made.
+    Yields ``(r0, r1, indices)`` for new rows ``r0:r1``; ``indices()`` computes that chunk's
+    ``(ri, ci)`` (float64, about 10^6 cells: the indices are affine in the new cell indices,
+    so no full-grid arrays are made).  Chunks are independent, so threads may take them.
     """
     inv = transform.inverse()
     c, s = math.cos(inv.theta), math.sin(inv.theta)
@@ -553,15 +554,27 @@ def _old_indices(old: FloorScan, new: FloorScan, transform: RigidTransform):
     xs = new.x
     ys = new.y
     step = _chunk_rows((h, w))
+
+    def make(r0, r1):
+        def indices():
+            yy = ys[r0:r1, None]
+            xo = c * xs[None, :] - s * yy + inv.dx_mm
+            yo = s * xs[None, :] + c * yy + inv.dy_mm
+            return (yo - old.y0) / old.pitch, (xo - old.x0) / old.pitch
+        return indices
+
     for r0 in range(0, h, step):
         r1 = min(h, r0 + step)
-        yy = ys[r0:r1, None]
-        xo = c * xs[None, :] - s * yy + inv.dx_mm
-        yo = s * xs[None, :] + c * yy + inv.dy_mm
-        ri = (yo - old.y0) / old.pitch
-        ci = (xo - old.x0) / old.pitch
-        del xo, yo
-        yield r0, r1, ri, ci
+        yield r0, r1, make(r0, r1)
+
+
+def _threads() -> int:
+    """Threads for chunked grid work (numpy releases the GIL inside its loops)."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        n = os.cpu_count() or 1
+    return max(1, min(4, n))
 
 
 def resample_layer(layer: np.ndarray, old: FloorScan, new: FloorScan, transform: RigidTransform, *,
@@ -584,9 +597,26 @@ def resample_layer(layer: np.ndarray, old: FloorScan, new: FloorScan, transform:
     if layer.shape != old.shape:
         raise ValueError(f"layer shape {layer.shape} is not the older grid's {old.shape}")
     out = np.empty(new.shape, dtype=layer.dtype)
-    for r0, r1, ri, ci in _old_indices(old, new, transform):
-        out[r0:r1] = _nearest(layer, ri, ci, fill)
+
+    def one(chunk):
+        r0, r1, indices = chunk
+        out[r0:r1] = _nearest(layer, *indices(), fill)
+
+    _each_chunk(one, list(_chunks(old, new, transform)))
     return out
+
+
+def _each_chunk(fn, chunks) -> None:
+    """``fn`` on every chunk, in threads when there are several cores (numpy releases the
+    GIL inside its loops; the chunks write disjoint rows)."""
+    if len(chunks) > 1 and _threads() > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=_threads()) as pool:
+            list(pool.map(fn, chunks))
+    else:
+        for ch in chunks:
+            fn(ch)
 
 
 def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> FloorScan:
@@ -620,12 +650,17 @@ def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> 
     side = None if old.side is None else np.empty((h, w), dtype=np.int8)
     plate = None if old.plate is None else np.empty((h, w), dtype=np.int32)
     packed = _packed(np.asarray(old.thickness, dtype=np.float32))
-    for r0, r1, ri, ci in _old_indices(old, new, transform):
+
+    def one(chunk):
+        r0, r1, indices = chunk
+        ri, ci = indices()
         thick[r0:r1] = _bilinear_packed(packed, ri, ci)
         if side is not None:
             side[r0:r1] = _nearest(old.side, ri, ci, SIDE_UNKNOWN)
         if plate is not None:
             plate[r0:r1] = _nearest(old.plate, ri, ci, PLATE_NONE)
+
+    _each_chunk(one, list(_chunks(old, new, transform)))
     return FloorScan(thickness=thick, x0=new.x0, y0=new.y0, pitch=new.pitch, meta=old.meta,
                      side=side, plate=plate, source=old.source)
 
