@@ -625,15 +625,18 @@ def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old, own_p
     needs = repair.cells_needing_repair(new.thickness, lr.rate_top, lr.rate_under, mrt_mm=mrt,
                                         target_years=job.target_interval, repair_to_mm=job.repair_to_mm)
     checks = None
+    # the plate layer's seams, derived once for the planner and the checker
+    plate_seams = (repair.seams_from_plate(new.plate, x0=new.x0, y0=new.y0, pitch=new.pitch)
+                   if new.plate is not None else None)
     if own_patches is not None:
         patches = own_patches
     else:
         patches = repair.plan_patches(needs, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules, plate=new.plate,
                                       critical_mask=critical, zone_labels=zmap.labels, zone_names=zmap.names,
-                                      patch_thickness_mm=job.patch_thickness_mm)
+                                      patch_thickness_mm=job.patch_thickness_mm, plate_seams=plate_seams)
     checks = repair.check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
                                       plate=new.plate, critical_mask=critical, needs=needs,
-                                      zone_labels=zmap.labels, zone_names=zmap.names)
+                                      zone_labels=zmap.labels, zone_names=zmap.names, plate_seams=plate_seams)
     n_uncovered, _ = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
     t_rep, rt_rep, ru_rep, covered = repair.apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
                                                           x0=new.x0, y0=new.y0, pitch=new.pitch,

@@ -506,7 +506,41 @@ def _bilinear_nan(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray
     packed once (:func:`_packed`: value and validity in one complex64 with a border),
     so each neighbour is one flat ``numpy.take`` with no bounds arithmetic.
     """
-    return _bilinear_packed(_packed(np.asarray(img, dtype=np.float32)), np.asarray(ri), np.asarray(ci))
+    img = np.asarray(img, dtype=np.float32)
+    ri = np.asarray(ri)
+    ci = np.asarray(ci)
+    if ri.size * 4 < img.size:
+        return _bilinear_few(img, ri, ci)  # packing the whole grid would cost more than the points
+    return _bilinear_packed(_packed(img), ri, ci)
+
+
+def _bilinear_few(img: np.ndarray, ri: np.ndarray, ci: np.ndarray) -> np.ndarray:
+    """:func:`_bilinear_nan` for a few points: the four neighbours read from ``img`` itself."""
+    h, w = img.shape
+    flat = img.reshape(-1) if img.flags.c_contiguous else np.ascontiguousarray(img).reshape(-1)
+    rn = np.rint(ri)
+    cn = np.rint(ci)
+    ok = (rn >= 0) & (rn <= h - 1) & (cn >= 0) & (cn <= w - 1)
+    near = np.where(ok, flat.take(np.clip(rn, 0, h - 1).astype(np.intp) * w
+                                  + np.clip(cn, 0, w - 1).astype(np.intp)), np.float32(np.nan))
+    r0 = np.floor(ri)
+    c0 = np.floor(ci)
+    fr = (ri - r0).astype(np.float32)
+    fc = (ci - c0).astype(np.float32)
+    acc = np.zeros(ri.shape, dtype=np.float32)
+    wsum = np.zeros(ri.shape, dtype=np.float32)
+    for dr, dc in ((0, 0), (0, 1), (1, 0), (1, 1)):
+        wt = (fr if dr else np.float32(1) - fr) * (fc if dc else np.float32(1) - fc)
+        rr = r0 + dr
+        cc = c0 + dc
+        inb = (rr >= 0) & (rr <= h - 1) & (cc >= 0) & (cc <= w - 1)
+        v = flat.take(np.clip(rr, 0, h - 1).astype(np.intp) * w + np.clip(cc, 0, w - 1).astype(np.intp))
+        good = inb & np.isfinite(v)
+        acc += np.where(good, wt * v, np.float32(0))
+        wsum += np.where(good, wt, np.float32(0))
+    fin = ok & np.isfinite(near) & (wsum > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(fin, acc / wsum, np.float32(np.nan)).astype(np.float32, copy=False)
 
 
 def _nearest(layer: np.ndarray, ri: np.ndarray, ci: np.ndarray, fill) -> np.ndarray:

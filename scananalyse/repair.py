@@ -233,8 +233,9 @@ def seams_from_plate(plate, *, x0, y0, pitch, max_gap_mm=100.0) -> np.ndarray:
     return np.concatenate([sv, sh], axis=0)
 
 
-def _seam_set(seams, plate, x0, y0, pitch, clearance):
-    """(segments (n, 4), used-for-clearance mask (n,)) from the user's seams and/or plate layer."""
+def _seam_set(seams, plate, x0, y0, pitch, clearance, plate_seams=None):
+    """(segments (n, 4), used-for-clearance mask (n,)) from the user's seams and/or plate layer
+    (``plate_seams``: the plate layer's segments when already derived)."""
     parts, use = [], []
     if seams is not None:
         s = np.asarray(seams, dtype=np.float64)
@@ -245,7 +246,7 @@ def _seam_set(seams, plate, x0, y0, pitch, clearance):
         parts.append(s)
         use.append(np.ones(len(s), dtype=bool))
     if plate is not None:
-        s = seams_from_plate(plate, x0=x0, y0=y0, pitch=pitch)
+        s = plate_seams if plate_seams is not None else seams_from_plate(plate, x0=x0, y0=y0, pitch=pitch)
         length = np.hypot(s[:, 2] - s[:, 0], s[:, 3] - s[:, 1])
         parts.append(s)
         use.append(length >= clearance - _TOL)
@@ -704,7 +705,7 @@ def _patch_table(R, rad, thk, flags, zones, ncov, density):
 
 def plan_patches(needs, *, x0, y0, pitch, rules, seams=None, plate=None, critical_mask=None,
                  zone_labels=None, zone_names=None, patch_thickness_mm=None,
-                 allow_small=True, fix_clearance=True, max_iter=100) -> pd.DataFrame:
+                 allow_small=True, fix_clearance=True, max_iter=100, plate_seams=None) -> pd.DataFrame:
     """Group cells needing repair into patch plates that obey the patch rules.
 
     Parameters
@@ -719,6 +720,7 @@ def plan_patches(needs, *, x0, y0, pitch, rules, seams=None, plate=None, critica
         ``steel_density_kg_m3``.
     seams : existing bottom welds as segments ``(x1, y1, x2, y2)``. [mm]
     plate : plate-id layer on the grid; its plate boundaries are seams too. [-]
+    plate_seams : ``seams_from_plate(plate, ...)`` when the caller already has it. [mm]
     critical_mask : bool array of critical-zone cells; default the zone named
         ``critical`` in ``zone_labels``/``zone_names`` when given. [-]
     zone_labels : int array of zone labels on the grid (−1 none). [-]
@@ -772,7 +774,7 @@ def plan_patches(needs, *, x0, y0, pitch, rules, seams=None, plate=None, critica
     thk = float(rules.v("patch_thickness_mm") if patch_thickness_mm is None else patch_thickness_mm)
     if not math.isfinite(thk) or thk <= 0:
         raise InputError(f"repair: field 'patch_thickness_mm': must be > 0, got {patch_thickness_mm!r}")
-    segs, use = _seam_set(seams, plate, x0, y0, pitch, c)
+    segs, use = _seam_set(seams, plate, x0, y0, pitch, c, plate_seams)
     xish = np.abs(segs[:, 2] - segs[:, 0]) >= np.abs(segs[:, 3] - segs[:, 1]) if len(segs) else np.zeros(0, bool)
     crit = _critical_of(critical_mask, zone_labels, zone_names)
     density = rules.v("steel_density_kg_m3")
@@ -947,7 +949,7 @@ def uncovered_cells(needs, patches, *, x0, y0, pitch):
 
 
 def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, critical_mask=None,
-                      needs=None, zone_labels=None, zone_names=None) -> pd.DataFrame:
+                      needs=None, zone_labels=None, zone_names=None, plate_seams=None) -> pd.DataFrame:
     """Check every patch of a (user's) patch set against the patch rules.
 
     Parameters
@@ -958,6 +960,7 @@ def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, 
     rules : rule set (the ``patch_*`` values). [-]
     plate : plate-id layer; its boundaries are seams. [-]
     seams : seam segments ``(x1, y1, x2, y2)``. [mm]
+    plate_seams : ``seams_from_plate(plate, ...)`` when the caller already has it. [mm]
     critical_mask : critical-zone cells (default: zone ``critical`` of the zone layer). [-]
     needs : cells needing repair, for ``not-beyond-corrosion``. [-]
     zone_labels, zone_names : zone layer, for the critical-zone default. [-]
@@ -978,7 +981,7 @@ def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, 
     _validate_table(patches)
     x0, y0, pitch = float(x0), float(y0), float(pitch)
     R, rad, thk, ids = _rects_of(patches)
-    segs, use = _seam_set(seams, plate, x0, y0, pitch, rules.v("patch_weld_clearance_mm"))
+    segs, use = _seam_set(seams, plate, x0, y0, pitch, rules.v("patch_weld_clearance_mm"), plate_seams)
     crit = _critical_of(critical_mask, zone_labels, zone_names)
     nd = None if needs is None else np.asarray(needs, dtype=bool)
     flags = _rule_flags(R, rad, thk, rules=rules, segs=segs, use=use, critical=crit, needs=nd,

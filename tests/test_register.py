@@ -436,3 +436,21 @@ def test_registration_json(tmp_path):
         assert key in d
     assert d["dx_mm"] == pytest.approx(reg.transform.dx_mm)
     assert 0.0 <= d["score"] <= 1.0
+
+
+def test_bilinear_paths_for_few_and_many_points_agree():
+    # the packed-grid path (many points) and the direct path (few points) are two codings of
+    # one definition: the same values and the same NaN cells, borders and NaN cells included
+    from scananalyse import register as R
+
+    rng = np.random.default_rng(8)
+    img = rng.normal(6.0, 0.3, (40, 50)).astype(np.float32)
+    img[rng.random(img.shape) < 0.2] = np.nan
+    ri = rng.uniform(-1.5, 41.5, 30000)
+    ci = rng.uniform(-1.5, 51.5, 30000)
+    ri[:50] = np.round(ri[:50]) + 0.5  # exact halves: the nearest-cell tie rule
+    many = R._bilinear_packed(R._packed(img), ri, ci)
+    few = R._bilinear_few(img, ri, ci)
+    np.testing.assert_array_equal(np.isnan(many), np.isnan(few))
+    np.testing.assert_allclose(many, few, rtol=1e-6, equal_nan=True)
+    assert 0.2 < np.isnan(many).mean() < 0.6  # NaN cells and points outside the grid both occur
