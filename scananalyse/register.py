@@ -579,15 +579,17 @@ def _chunks(old: FloorScan, new: FloorScan, transform: RigidTransform):
     """Fractional (row, col) indices into ``old`` of ``new``'s cell centres, in row chunks.
 
     Yields ``(r0, r1, indices)`` for new rows ``r0:r1``; ``indices()`` computes that chunk's
-    ``(ri, ci)`` (float64, about 10^6 cells: the indices are affine in the new cell indices,
-    so no full-grid arrays are made).  Chunks are independent, so threads may take them.
+    ``(ri, ci)`` (float64: the indices are affine in the new cell indices, so no full-grid
+    arrays are made).
     """
     inv = transform.inverse()
     c, s = math.cos(inv.theta), math.sin(inv.theta)
     h, w = new.shape
     xs = new.x
     ys = new.y
-    step = _chunk_rows((h, w))
+    # chunks of about 2.6e5 cells: the temporaries (about 100 bytes a cell) stay in the
+    # processor's cache better than with 1e6 (0.76 -> 0.45 s at 30 m, measured)
+    step = _chunk_rows((h, w), max_cells=1 << 18)
 
     def make(r0, r1):
         def indices():
@@ -600,15 +602,6 @@ def _chunks(old: FloorScan, new: FloorScan, transform: RigidTransform):
     for r0 in range(0, h, step):
         r1 = min(h, r0 + step)
         yield r0, r1, make(r0, r1)
-
-
-def _threads() -> int:
-    """Threads for chunked grid work (numpy releases the GIL inside its loops)."""
-    try:
-        n = len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        n = os.cpu_count() or 1
-    return max(1, min(4, n))
 
 
 def resample_layer(layer: np.ndarray, old: FloorScan, new: FloorScan, transform: RigidTransform, *,
@@ -641,16 +634,14 @@ def resample_layer(layer: np.ndarray, old: FloorScan, new: FloorScan, transform:
 
 
 def _each_chunk(fn, chunks) -> None:
-    """``fn`` on every chunk, in threads when there are several cores (numpy releases the
-    GIL inside its loops; the chunks write disjoint rows)."""
-    if len(chunks) > 1 and _threads() > 1:
-        from concurrent.futures import ThreadPoolExecutor
+    """``fn`` on every chunk, one after the other.
 
-        with ThreadPoolExecutor(max_workers=_threads()) as pool:
-            list(pool.map(fn, chunks))
-    else:
-        for ch in chunks:
-            fn(ch)
+    (Threads would halve the time, numpy releasing the GIL, but glibc's per-thread
+    arenas then keep the threads' freed temporaries: +8 bytes per cell of peak memory on
+    a 30 m floor, measured; so the chunks run in the calling thread.)
+    """
+    for ch in chunks:
+        fn(ch)
 
 
 def resample_onto(old: FloorScan, new: FloorScan, transform: RigidTransform) -> FloorScan:
