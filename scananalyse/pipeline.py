@@ -783,16 +783,20 @@ def _result_specs(an: Analysis, units: str) -> list:
         def registration_figure():
             from .register import RigidTransform, resample_layer
 
-            feat_new = ~new.scanned | (np.nan_to_num(lr.loss) >= _reporting_depth(new))
+            depth = _reporting_depth(new)
+
+            def features(t, nominal):
+                # unscanned, or loss (nominal - t) at or above the reporting depth: boolean
+                # comparisons only (NaN compares False), no float copies of the grid
+                with np.errstate(invalid="ignore"):
+                    return ~np.isfinite(t) | (t <= np.float32(nominal - depth))
+
+            feat_new = features(new.thickness, new.meta.nominal)
             # before alignment: the older scan's features on its own grid, placed by its raw
             # coordinates (nearest cell; a display aid, so no interpolation is needed)
-            with np.errstate(invalid="ignore"):
-                feat_old = ~np.isfinite(an.old.thickness) | ((an.old.meta.nominal - an.old.thickness)
-                                                             >= _reporting_depth(new))
-            feat_before = resample_layer(feat_old, an.old, new, RigidTransform(), fill=True)
-            del feat_old
-            old_loss = new.meta.nominal - an.old_on_new.thickness
-            feat_after = ~np.isfinite(an.old_on_new.thickness) | (np.nan_to_num(old_loss) >= _reporting_depth(new))
+            feat_before = resample_layer(features(an.old.thickness, an.old.meta.nominal), an.old, new,
+                                         RigidTransform(), fill=True)
+            feat_after = features(an.old_on_new.thickness, new.meta.nominal)
             return F.registration_overlay(feat_new, feat_before, feat_after, extent=ext)
 
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
