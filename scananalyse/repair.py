@@ -441,8 +441,22 @@ def _near_pairs(R, c):
     cx = 0.5 * (R[:, 0] + R[:, 2])
     cy = 0.5 * (R[:, 1] + R[:, 3])
     half = 0.5 * np.hypot(R[:, 2] - R[:, 0], R[:, 3] - R[:, 1])
-    pairs = cKDTree(np.column_stack([cx, cy])).query_pairs(2 * float(half.max()) + max(c, 0.0) + _TOL,
-                                                           output_type="ndarray")
+    reach = max(c, 0.0) + _TOL
+    tree = cKDTree(np.column_stack([cx, cy]))
+    # One large rectangle (a merged patch, a replaced plate) must not widen the search for
+    # all: pairs of ordinary rectangles are searched within twice the largest ordinary
+    # half-diagonal, and each large one on its own within its half-diagonal plus the largest.
+    big = half > 4.0 * float(np.median(half))
+    h_small = float(half[~big].max()) if (~big).any() else 0.0
+    found = [tree.query_pairs(2 * h_small + reach, output_type="ndarray")]
+    h_max = float(half.max())
+    for k in np.flatnonzero(big):
+        near = np.asarray(tree.query_ball_point((cx[k], cy[k]), half[k] + h_max + reach), dtype=np.int64)
+        near = near[near != k]
+        found.append(np.column_stack([np.minimum(near, k), np.maximum(near, k)]))
+    pairs = np.concatenate([f.reshape(-1, 2).astype(np.int64) for f in found])
+    if len(pairs):
+        pairs = np.unique(pairs, axis=0)
     if len(pairs) == 0:
         e = np.zeros(0)
         return e.astype(int), e.astype(int), e, e, e

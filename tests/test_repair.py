@@ -586,3 +586,30 @@ def test_speed_seven_million_cells():
     print(f"\nplan_patches: {nd.size / 1e6:.1f} M cells, {len(df)} patches, {dt:.2f} s")
     assert n_unc == 0 and len(df) > 100
     assert dt < 30.0
+
+
+def test_near_pairs_equal_all_pairs_with_a_few_large_rectangles():
+    # ground truth: the gap of every pair computed directly (all n² pairs); the search must
+    # find every pair closer than c, also when a few rectangles are far larger than the rest
+    from scananalyse import repair as rp
+
+    rng = np.random.default_rng(4)
+    n = 300
+    x = rng.uniform(0, 20000, n)
+    y = rng.uniform(0, 20000, n)
+    w = rng.uniform(100, 400, n)
+    h = rng.uniform(100, 400, n)
+    w[:3] = [6000, 3000, 9000]  # merged patches / replaced plates
+    h[:3] = [2500, 7000, 1200]
+    R = np.column_stack([x, y, x + w, y + h])
+    c = 300.0
+    i, j, gap, _ox, _oy = rp._near_pairs(R, c)
+    got = {(a, b) for a, b, g in zip(i, j, gap) if g < c}
+    want = set()
+    for a in range(n):
+        for b in range(a + 1, n):
+            dx = max(0.0, R[b, 0] - R[a, 2], R[a, 0] - R[b, 2])
+            dy = max(0.0, R[b, 1] - R[a, 3], R[a, 1] - R[b, 3])
+            if np.hypot(dx, dy) < c:
+                want.add((a, b))
+    assert got == want and len(want) > 20
