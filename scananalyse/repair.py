@@ -338,12 +338,26 @@ def _clip_params(s, xa, ya, xb, yb):
     return t0, t1
 
 
-def _seams_through(segs, rect):
-    """True if any segment passes through the open interior of rect (xa, ya, xb, yb)."""
+def _seg_boxes(segs):
+    """Bounding boxes (x_min, x_max, y_min, y_max) of segments (n, 4)."""
+    return (np.minimum(segs[:, 0], segs[:, 2]), np.maximum(segs[:, 0], segs[:, 2]),
+            np.minimum(segs[:, 1], segs[:, 3]), np.maximum(segs[:, 1], segs[:, 3]))
+
+
+def _seams_through(segs, rect, boxes=None):
+    """True if any segment passes through the open interior of rect (xa, ya, xb, yb).
+
+    ``boxes`` (:func:`_seg_boxes` of ``segs``, when the caller tests many rectangles): only
+    segments whose bounding box meets the rectangle are clipped.
+    """
     if len(segs) == 0:
         return False
     xa, ya, xb, yb = rect
-    t0, t1 = _clip_params(segs, xa + _TOL, ya + _TOL, xb - _TOL, yb - _TOL)
+    sx0, sx1, sy0, sy1 = boxes if boxes is not None else _seg_boxes(segs)
+    near = (sx1 > xa) & (sx0 < xb) & (sy1 > ya) & (sy0 < yb)
+    if not near.any():
+        return False
+    t0, t1 = _clip_params(segs[near], xa + _TOL, ya + _TOL, xb - _TOL, yb - _TOL)
     return bool(np.any(t1 - t0 > 1e-12))
 
 
@@ -657,19 +671,21 @@ def _rule_flags(R, rad, thk, *, rules, segs, use, critical, needs, x0, y0, pitch
     tmax_crit = rules.v("patch_critical_max_thickness_mm")
     xish = np.abs(segs[:, 2] - segs[:, 0]) >= np.abs(segs[:, 3] - segs[:, 1]) if len(segs) else np.zeros(0, bool)
     close, ov_patch = _pair_flags(R, c)
+    boxes = _seg_boxes(segs) if len(segs) else None
+    segs_use, xish_use = segs[use], xish[use]  # the seams that count for the clearance rule
     out = []
     for k in range(len(R)):
         rect = tuple(R[k])
         f = []
         size = min(rect[2] - rect[0], rect[3] - rect[1])
-        over = ov_patch[k] or _seams_through(segs, rect)
+        over = ov_patch[k] or _seams_through(segs, rect, boxes)
         if check_min_size and size < min_small - _TOL:
             f.append(FLAG_TOO_SMALL)
         if check_min_size and over and size < min_over - _TOL:
             f.append(FLAG_OVERLAP_SIZE)
         if close[k]:
             f.append(FLAG_TOO_CLOSE)
-        if _clearance_violation(segs[use], xish[use], rect, c)[0]:
+        if _clearance_violation(segs_use, xish_use, rect, c)[0]:
             f.append(FLAG_WELD_CLEARANCE)
         if critical is not None and _touches(critical, rect, x0, y0, pitch):
             f.append(FLAG_CRITICAL)
@@ -809,13 +825,16 @@ def plan_patches(needs, *, x0, y0, pitch, rules, seams=None, plate=None, critica
         while changed:
             R, changed = _merge_close(R, c)
         over = _overlaps_other(R)
-        over |= np.array([_seams_through(segs, tuple(r)) for r in R], dtype=bool) if len(segs) else False
+        if len(segs):
+            boxes = _seg_boxes(segs)
+            over |= np.array([_seams_through(segs, tuple(r), boxes) for r in R], dtype=bool)
         R = _grow_to(R, np.where(over, min_over, min_small))
         changed = True
         while changed:
             R, changed = _merge_close(R, c)
         if fix_clearance and np.any(use):
-            R = np.array([_clearance_violation(segs[use], xish[use], tuple(r), c)[1] for r in R],
+            segs_use, xish_use = segs[use], xish[use]
+            R = np.array([_clearance_violation(segs_use, xish_use, tuple(r), c)[1] for r in R],
                          dtype=np.float64)
         if R.shape == before.shape and np.allclose(R, before, rtol=0, atol=_TOL):
             break
