@@ -13,7 +13,8 @@ newer scan and 12.5 mm for the older one) the script
    one's shape), ``pandas.read_csv`` on the CSV; and the public-API stages that have
    a direct baseline: ``read_scan`` of both, ``read_csv_scan``, ``register``;
 3. runs the whole ``compare`` (report included) in another fresh process, whose
-   ``ru_maxrss`` is the honest peak memory of the job, and reads the per-stage
+   ``ru_maxrss`` is the honest peak memory of the main process (the report's figure
+   helpers, forked processes, report their private memory beside it), and reads the per-stage
    timings the pipeline stored in ``results.h5`` (group ``timings``).
 
 Every figure is printed as a ratio to a baseline of the same run, so the ratios
@@ -180,6 +181,26 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
 
     rss_imports = _maxrss_bytes()  # the interpreter and libraries, before any grid exists
     p = _paths(workdir, size, seed)
+    # The report's figure helpers (forked processes) hold memory of their own: record each
+    # one's private (unshared) memory from /proc when it finishes drawing, through a pipe.
+    from scananalyse.report import render as _render
+
+    parent = os.getpid()
+    priv_r, priv_w = os.pipe()
+    orig_work = _render.FigureRenderer._work
+
+    def work(self, queue_r):
+        out = orig_work(self, queue_r)
+        if os.getpid() != parent:
+            kb = 0
+            with open("/proc/self/smaps_rollup") as fh:
+                for line in fh:
+                    if line.startswith(("Private_Clean:", "Private_Dirty:")):
+                        kb += int(line.split()[1])
+            os.write(priv_w, f"{kb * 1024}\n".encode())
+        return out
+
+    _render.FigureRenderer._work = work
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         t0 = time.perf_counter()
@@ -187,6 +208,10 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
                       quiet=True)
         t_total = time.perf_counter() - t0
     rss = _maxrss_bytes()
+    os.close(priv_w)
+    helper_private = []
+    with os.fdopen(priv_r) as fh:
+        helper_private = [int(x) for x in fh.read().split()]
     with h5py.File(os.path.join(p["out"], "results.h5"), "r") as f:
         stages = {k: float(v) for k, v in f["timings"].attrs.items()} if "timings" in f else {}
     figs = [n for n in res.files if n.startswith("figures/")]
@@ -194,6 +219,7 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
     # rest of the wall time is theirs.
     stages["outputs+report"] = max(0.0, t_total - sum(stages.values()))
     return {"t_compare_s": t_total, "stages_s": stages, "run_maxrss_bytes": rss,
+            "helper_private_bytes": helper_private,
             "import_maxrss_bytes": rss_imports, "n_figures": len(figs),
             "report_bytes": os.path.getsize(res.report_path), "n_patches": int(len(res.patches)),
             "n_indications": int(len(res.indications))}
@@ -261,6 +287,9 @@ def _print_row(r: dict) -> None:
           f"peak {r['run_maxrss_bytes'] / 2**30:.2f} GiB = {r['run_maxrss_bytes'] / r['cells_new']:.0f} B/cell "
           f"({(r['run_maxrss_bytes'] - r['import_maxrss_bytes']) / r['cells_new']:.0f} B/cell above the "
           f"{r['import_maxrss_bytes'] / 2**20:.0f} MiB of the imported libraries)")
+    if r.get("helper_private_bytes"):
+        print("    figure helpers' private memory (while they ran, on top of the main process): "
+              + ", ".join(f"{b / r['cells_new']:.0f} B/cell" for b in r["helper_private_bytes"]))
     st = r.get("stages_s", {})
     npass = r["t_numpy_pass_s"]
     print("    stages [s] (and x one numpy pass of " f"{npass * 1e3:.1f} ms): "

@@ -10,7 +10,7 @@ reports the captions of its figures through a second pipe.
 
 It falls back to drawing everything in the main process when forking is not safe or
 not useful: another Python thread is running (e.g. inside a Dask worker), the process
-may use only one core, the platform has no ``fork``, there are fewer than two figures,
+may use only one core, the platform is not Linux, there are fewer than two figures,
 or ``SCANANALYSE_SERIAL=1`` is set.  If the helper fails or is killed, the figures it
 did not deliver are drawn by the main process, so a failure there costs time, never a
 figure.  Interrupts: the helper exits on its own interrupt without writing anything
@@ -24,6 +24,7 @@ import json
 import os
 import signal
 import struct
+import sys
 import threading
 import warnings
 from pathlib import Path
@@ -42,7 +43,10 @@ def _usable_cores() -> int:
 
 def parallel_possible() -> bool:
     """True when a helper process may be forked to draw figures (see the module notes)."""
-    return (hasattr(os, "fork") and os.environ.get("SCANANALYSE_SERIAL", "") != "1"
+    # Linux only: forking a process that uses macOS system frameworks (e.g. Accelerate
+    # under numpy) without exec is not safe there
+    return (sys.platform.startswith("linux") and hasattr(os, "fork")
+            and os.environ.get("SCANANALYSE_SERIAL", "") != "1"
             and _usable_cores() >= 2 and threading.current_thread() is threading.main_thread()
             and threading.active_count() == 1)
 
