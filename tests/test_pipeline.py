@@ -123,3 +123,25 @@ def test_small_zones_get_extreme_values_with_smaller_blocks():
     assert np.isfinite(smaller["depth_eva_mm"]).any()
     baseline = analyse(pair.new, pair.old, job=Job(diameter=8000.0)).zone_table.set_index("zone")
     assert baseline.loc["interior", "eva_block_mm"] == pytest.approx(1000.0)
+
+
+def test_small_pages_only_for_the_run_and_restored():
+    # the run switches off numpy's huge-page advice (a measured stall on Linux, see
+    # pipeline._small_pages) and gives the caller's setting back, also after an error
+    import numpy as np
+
+    from scananalyse import pipeline as P
+
+    core = getattr(np, "_core", None) or np.core
+    setter = core.multiarray._set_madvise_hugepage
+    original = setter(True)
+    try:
+        with P._small_pages():
+            assert setter(False) is False  # off inside the run
+        assert setter(True) is True  # the caller's "on" is back
+        with pytest.raises(RuntimeError):
+            with P._small_pages():
+                raise RuntimeError("boom")
+        assert setter(True) is True
+    finally:
+        setter(original)
