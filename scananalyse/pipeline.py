@@ -816,7 +816,9 @@ def _result_specs(an: Analysis, units: str) -> list:
                     partial(F.probability_plot, z.plot, title=f"Block maxima, zone {name}", units=units)))
         if z.fit is not None and z.blocks is not None:
             def return_figure(z=z, name=name):
-                return F.return_level_plot(*_return_curve(z), zone_T=z.T, units=units,
+                T_line, lvl, lower, upper, T_bound = _return_curve(z)
+                return F.return_level_plot(T_line, lvl, lower, upper, bound_T=T_bound, zone_T=z.T, units=units,
+                                           bound_label=f"{100 * z.level:.0f} % upper bound",
                                            title=f"Return level, zone {name}")
 
             out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
@@ -831,8 +833,12 @@ def _return_curve(z):
     if z.fit is None or z.blocks is None:
         return None
     T_max = max(10.0, 3 * z.T)
-    Ts = np.unique(np.geomspace(2.0, T_max, 5).round(2))  # a smooth curve on the log axis
-    lvl = np.array([float(return_level(z.fit, T)) for T in Ts])
+    T_line = np.geomspace(2.0, T_max, 60)  # the return level is a formula: a smooth line
+    lvl = np.array([float(return_level(z.fit, T)) for T in T_line])
+    # the bound is a profile-likelihood search per period: at five periods and the zone's T
+    grid = np.geomspace(2.0, T_max, 5)
+    grid = grid[np.abs(np.log(grid / z.T)) > np.log(1.25)] if z.T > 0 else grid  # none next to the zone's T
+    Ts = np.unique(np.r_[grid, z.T].round(2))
     ups = []
     mx = np.asarray(z.blocks.maxima, dtype=float)
     cen = np.asarray(z.blocks.censored, dtype=bool)
@@ -843,7 +849,7 @@ def _return_curve(z):
             ups.append(b.upper)
         except (FitError, ValueError, ArithmeticError):
             ups.append(np.nan)  # a display aid only: the table's bound comes from zone_extremes
-    return Ts, lvl, None, np.array(ups)
+    return T_line, lvl, None, np.array(ups), Ts
 
 
 def actions(an: Analysis) -> list[str]:

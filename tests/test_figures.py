@@ -266,6 +266,17 @@ def test_return_level_plot_marks_zone_T():
     assert marker.get_ydata()[0] == pytest.approx(352.5, rel=5e-3)
     assert ax.get_xscale() == "log"
     assert len(ax.collections) >= 1  # the bounds band
+    # one-sided: only an upper bound, given at its own periods, is drawn as a line through them
+    Tb = np.array([2.0, 10.0, 100.0])
+    up = stats.gumbel_r.ppf(1 - 1 / Tb, loc, scale) + 25.0
+    fig = F.return_level_plot(T, level, None, up, bound_T=Tb, zone_T=10.0, units="mm",
+                              bound_label="90 % upper bound")
+    ax = fig.axes[0]
+    line = [l for l in ax.lines if l.get_label() == "90 % upper bound"]
+    assert len(line) == 1
+    np.testing.assert_allclose(line[0].get_xdata(), Tb)
+    np.testing.assert_allclose(line[0].get_ydata(), up)
+    assert "90 % upper bound" in [t.get_text() for t in ax.get_legend().get_texts()]
 
 
 def test_method_comparison_markers_and_flags():

@@ -608,15 +608,18 @@ def probability_plot(plot_data, *, title, units="mm", ax=None):
 
 
 def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title=None,
-                      ax=None):
+                      ax=None, bound_T=None, bound_label="confidence bounds"):
     """Return level against return period, with confidence bounds and the zone's T.
 
     Parameters
     ----------
     curve_T : return periods (blocks), ascending. [1]
     level : return level at each T. [mm]
-    lower, upper : confidence bounds at each T (None to omit). [mm]
+    lower, upper : confidence bounds at each of ``bound_T`` (None to omit); with ``upper``
+        alone, the upper bound is drawn as a dashed line through its points. [mm]
     zone_T : the zone's return period T = zone area / block area. [1]
+    bound_T : return periods of the bounds (default ``curve_T``). [1]
+    bound_label : legend text of the bounds.
     units : display units.
     title : plain-text title (default "Return level").
     ax : axes to draw on.
@@ -629,12 +632,18 @@ def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title
     T = np.asarray(curve_T, dtype=np.float64)
     lv = U.convert(np.asarray(level, dtype=np.float64), "depth", units)
     unit = U.unit_label("depth", units)
+    TB = T if bound_T is None else np.asarray(bound_T, dtype=np.float64)
     if lower is not None and upper is not None:
         lo = U.convert(np.asarray(lower, dtype=np.float64), "depth", units)
         hi = U.convert(np.asarray(upper, dtype=np.float64), "depth", units)
         ok = np.isfinite(lo) & np.isfinite(hi)
-        ax.fill_between(T[ok], lo[ok], hi[ok], color="#9ecae1", alpha=0.6, lw=0,
-                        label="confidence bounds")
+        ax.fill_between(TB[ok], lo[ok], hi[ok], color="#9ecae1", alpha=0.6, lw=0,
+                        label=bound_label)
+    elif upper is not None:
+        hi = U.convert(np.asarray(upper, dtype=np.float64), "depth", units)
+        ok = np.isfinite(hi)
+        if ok.any():
+            ax.plot(TB[ok], hi[ok], "--o", color="#4292c6", lw=1.2, ms=3.5, label=bound_label)
     ax.plot(T, lv, "-", color="#08519c", lw=1.5, label="return level")
     if zone_T is not None and np.isfinite(zone_T) and zone_T > 0:
         ok = np.isfinite(lv) & (T > 0)
