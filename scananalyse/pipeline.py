@@ -9,7 +9,6 @@ folder that appears only when complete.  A notebook user can call
 from __future__ import annotations
 
 import dataclasses
-
 import datetime as _dt
 import math
 import os
@@ -190,6 +189,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         assessment runs (``_run`` does).
     """
     from . import assess, attribution, rates, zones
+    from .indications import label_indications
     from .rules import get_ruleset
 
     prog = progress or Progress(quiet=True)
@@ -234,8 +234,6 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     with prog.stage("rates"):
         ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
         lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
-        from .indications import label_indications
-
         # the indication regions (labelled once: the rate fill and the indication list use them)
         ind_labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
         if old_on_new is not None:
@@ -310,7 +308,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     # --- repairs -------------------------------------------------------------------
     with prog.stage("repairs"):
-        rep = _repairs(new, lr, side, zmap, rules, options, ext_for_assess, mrt, job, old is not None,
+        rep = _repairs(new, lr, side, zmap, rules, options, mrt, job, old is not None,
                        inputs["patches"])
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
@@ -618,7 +616,7 @@ def _indications(new, old, transform, lr, side, zmap, job, labels=None):
     return ind, gone
 
 
-def _repairs(new, lr, side, zmap, rules, options, ext, mrt, job, have_old, own_patches=None) -> dict:
+def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None) -> dict:
     """Patch planning for the target interval, or the engineer's patches, then re-assessment."""
     from . import assess, repair
 
