@@ -707,6 +707,21 @@ FLAGS_EXPLAINED = {
 }
 
 
+#: Rough drawing cost of the report's figures (relative; measured on a 30 m floor: the
+#: return-level curve's profile bounds and the registration overlay's feature masks are the
+#: heaviest), used to hand out the costliest first.
+_DRAW_COST = {"return_level": 8, "registration": 7, "patches": 4, "life_local": 4, "thickness": 4,
+              "loss": 3, "rate": 3, "probability": 2, "methods": 1}
+
+
+def _costliest_first(specs) -> list:
+    """Indices of ``specs`` ordered by :data:`_DRAW_COST` of their slugs, costliest first."""
+    def cost(i):
+        slug = specs[i][1]
+        return max((c for prefix, c in _DRAW_COST.items() if slug.startswith(prefix)), default=2)
+    return sorted(range(len(specs)), key=lambda i: (-cost(i), i))
+
+
 def _figure_specs(an: Analysis, units: str) -> list:
     """Every report figure as ``(section, slug, caption, build)``; ``build()`` draws the Figure.
 
@@ -974,7 +989,7 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, map
     # are written here; then both draw what is left (report/render.py)
     specs = _result_specs(an, units) if map_figures is not None else _figure_specs(an, units)
     first = 1 + (len(map_figures.specs) if map_figures is not None else 0)
-    with FigureRenderer(specs, figdir, first=first) as renderer:
+    with FigureRenderer(specs, figdir, first=first, order=_costliest_first(specs)) as renderer:
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)

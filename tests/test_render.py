@@ -41,6 +41,16 @@ def test_parallel_and_serial_give_the_same_files(tmp_path):
     assert all(png.startswith(b"\x89PNG") for _, _, png, _ in out[True])
 
 
+def test_queue_order_changes_who_draws_what_not_the_files(tmp_path):
+    specs = [_spec(k) for k in range(4)]
+    with FigureRenderer(specs, tmp_path, parallel=True, order=[3, 1, 0, 2]) as r:
+        got = r.finish()
+    assert [g[3] for g in got] == [f"figures/0{k + 1}_fig_{k}.png" for k in range(4)]  # specs' order
+    assert [g[1] for g in got] == [f"Figure {k}. caption {k}" for k in range(4)]
+    with pytest.raises(ValueError, match="permutation"):
+        FigureRenderer(specs, tmp_path, parallel=False, order=[0, 0, 1, 2])
+
+
 def test_figures_the_helper_does_not_deliver_are_drawn_here(tmp_path):
     parent = os.getpid()
 

@@ -62,13 +62,21 @@ class FigureRenderer:
     dpi : resolution of the PNG files. [dots per inch]
     parallel : None (decide with :func:`parallel_possible`), True or False. [-]
     first : number of the first figure (file names start with the number). [-]
+    order : the order in which the figures are taken (a permutation of their indices;
+        default the specs' order); put the costliest first. [-]
 
     The helper (if any) starts drawing at construction; :meth:`finish` makes the
     calling process draw the rest and returns the figures in ``specs`` order.
     """
 
-    def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1):
+    def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1,
+                 order=None):
         self.specs = list(specs)
+        # the queue's order: the costliest figures first, so that neither process is left
+        # drawing a long one alone at the end (the files keep the specs' numbering)
+        self.order = list(range(len(self.specs))) if order is None else [int(i) for i in order]
+        if sorted(self.order) != list(range(len(self.specs))):
+            raise ValueError("order must be a permutation of the figure indices")
         self.figdir = Path(figdir)
         self.dpi = dpi
         self.stems = [f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in slug)[:60]
@@ -86,7 +94,7 @@ class FigureRenderer:
         reply_r, reply_w = os.pipe()
         # every figure number goes into the queue before the fork (a few bytes per figure,
         # far below a pipe's buffer), then the write end is closed: an empty queue is EOF
-        os.write(queue_w, b"".join(_TOKEN.pack(i) for i in range(len(self.specs))))
+        os.write(queue_w, b"".join(_TOKEN.pack(i) for i in self.order))
         os.close(queue_w)
         with warnings.catch_warnings():
             # Python 3.12+ warns about forking with native threads (e.g. the BLAS pool);
