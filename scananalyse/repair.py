@@ -924,7 +924,10 @@ def apply_patches(thickness, rate_top, rate_under, patches, *, x0, y0, pitch,
     Returns
     -------
     (thickness_rep, rate_top_rep, rate_under_rep, covered) : float32 maps and the
-    bool mask of patched cells.
+    bool mask of patched cells.  A rate map the patches leave unchanged (the top-side
+    rate always, the underside rate unless ``under_cause_removed``) is returned as the
+    given array itself when that is already float32, not a copy: no full-grid copy is
+    made for a map that does not change (the results file then links the two names).
 
     Notes
     -----
@@ -955,10 +958,10 @@ def apply_patches(thickness, rate_top, rate_under, patches, *, x0, y0, pitch,
         raise InputError("repair: field 'thickness_mm': a patch has no thickness and no default was given")
     scanned = np.isfinite(t)
     t_rep = np.where(cov & scanned, tp, t).astype(np.float32)
-    ru_rep = ru.copy()
+    ru_rep = ru
     if under_cause_removed:
         ru_rep = np.where(cov & scanned & ~np.isnan(ru), np.float32(0), ru).astype(np.float32)
-    return t_rep, rt.copy(), ru_rep, cov
+    return t_rep, rt, ru_rep, cov
 
 
 def uncovered_cells(needs, patches, *, x0, y0, pitch):

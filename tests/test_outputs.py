@@ -65,12 +65,19 @@ def test_results_h5_and_json(tmp_path):
     assert (tmp_path / "x.json").read_text().replace(" ", "").replace("\n", "") == '{"a":null,"b":[1.0,null],"c":2.5}'
 
 
-def test_results_h5_chunks_written_directly_read_back_by_hdf5(tmp_path):
+@pytest.mark.parametrize("compressor", ["isal", "zlib"])
+def test_results_h5_chunks_written_directly_read_back_by_hdf5(tmp_path, monkeypatch, compressor):
     # The maps' chunks are shuffled and deflated by our code and written raw; the HDF5
     # library's own shuffle and deflate filters (through h5py) must decode them to the
     # same values, edge chunks included (grids that are not multiples of the chunk side).
+    # Both compressors (ISA-L's, and the zlib module where isal is missing) are checked.
+    import zlib
+
+    from scananalyse import outputs
     from scananalyse.outputs import CHUNK
 
+    if compressor == "zlib":
+        monkeypatch.setattr(outputs, "_deflater", lambda: ((lambda d: zlib.compress(d, 1)), "zlib"))
     rng = np.random.default_rng(5)
     shape = (CHUNK * 2 + 37, CHUNK + 3)
     t = rng.normal(6.0, 0.4, shape).astype(np.float32)
@@ -86,6 +93,23 @@ def test_results_h5_chunks_written_directly_read_back_by_hdf5(tmp_path):
             got = d[()]
             assert got.dtype == want.dtype and got.shape == want.shape
             np.testing.assert_array_equal(got, want)
+        # the raw stored chunk is a zlib stream of the byte-shuffled chunk (HDF5's filters)
+        raw = f["maps"]["t"].id.read_direct_chunk((0, 0))[1]
+        block = t[:CHUNK, :CHUNK]
+        assert zlib.decompress(raw) == np.ascontiguousarray(block.view(np.uint8).reshape(-1, 4).T).tobytes()
+
+
+def test_results_h5_same_array_twice_is_one_dataset_under_two_names(tmp_path):
+    # A map passed twice (the same array object) is written once and hard-linked; an
+    # equal copy is a dataset of its own.
+    a = np.arange(12, dtype=np.float32).reshape(3, 4)
+    write_results_h5(tmp_path / "r.h5", {"rate": a, "rate_repaired": a, "copy": a.copy()}, x0=0, y0=0, pitch=10)
+    with h5py.File(tmp_path / "r.h5", "r") as f:
+        g = f["maps"]
+        assert g["rate"].id == g["rate_repaired"].id          # one object, two links
+        assert g["copy"].id != g["rate"].id
+        for name in ("rate", "rate_repaired", "copy"):
+            np.testing.assert_array_equal(g[name][()], a)
 
 
 def test_interrupt_swallowed_inside_the_block_still_leaves_nothing(tmp_path):

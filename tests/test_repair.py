@@ -353,8 +353,11 @@ def test_apply_patches_semantics():
     assert np.all(t2[~cov] == t[~cov])
     assert np.array_equal(rt2, rt)                   # product side still corrodes the patch
     assert np.array_equal(ru2, ru)                   # measured underside rate kept by default
+    assert rt2 is rt and ru2 is ru                   # design rule: no full-grid copy of an unchanged map
+    ru_before = ru.copy()
     _, _, ru3, _ = repair.apply_patches(t, rt, ru, p, x0=0.0, y0=0.0, pitch=10.0, under_cause_removed=True)
     assert np.all(ru3[cov & np.isfinite(t)] == 0) and np.all(ru3[~cov] == ru[~cov])
+    assert ru3 is not ru and np.array_equal(ru, ru_before)   # the input is never modified
     # a missing thickness takes the rule value, or fails without one
     p2 = _one_patch(15.0, 15.0, 75.0, 75.0, t=np.nan)
     t4, *_ = repair.apply_patches(t, rt, ru, p2, x0=0.0, y0=0.0, pitch=10.0, rules=RULES)
