@@ -1196,12 +1196,20 @@ def _profile_bounds(fit, xu, k, u, T, crit, one_sided):
             return (mu, s, xi)
         return (z + s * math.log(y), s)
 
+    # The nuisance optimum moves smoothly with z, so each profile evaluation also starts
+    # from the optimum of the previous one (``warm``), beside the fit's own parameters; the
+    # fit's shape +-0.2 (against a second mode of the GEV profile) are tried at the first.
+    warm = []
+
     def dev(z):
         f = lambda th: nll(full(z, th))  # noqa: E731
         starts = [np.array([0.0, fit.shape])] if is_gev else [np.array([0.0])]
-        if is_gev:
+        if warm:
+            starts.insert(0, warm[-1])
+        elif is_gev:
             starts += [np.array([0.0, fit.shape - 0.2]), np.array([0.0, fit.shape + 0.2])]
         best = np.inf
+        best_th = None
         for th0 in starts:
             if not np.isfinite(f(th0)):
                 th0 = th0.copy()
@@ -1214,7 +1222,10 @@ def _profile_bounds(fit, xu, k, u, T, crit, one_sided):
             # the deviance is wanted to about 1e-6 against a chi-squared quantile of order 1
             r = optimize.minimize(f, th0, method="Nelder-Mead",
                                   options={"xatol": 1e-7, "fatol": 1e-9, "maxiter": 3000})
-            best = min(best, r.fun)
+            if r.fun < best:
+                best, best_th = r.fun, np.asarray(r.x, dtype=float)
+        if best_th is not None:
+            warm.append(best_th)
         return 2.0 * (best - nll_hat) - crit
 
     def find(sign):

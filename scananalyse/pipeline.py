@@ -851,11 +851,16 @@ def _return_curve(z):
     # the bound is a profile-likelihood search per period: at five periods and the zone's T
     grid = np.geomspace(2.0, T_max, 5)
     grid = grid[np.abs(np.log(grid / z.T)) > np.log(1.25)] if z.T > 0 else grid  # none next to the zone's T
-    Ts = np.unique(np.r_[grid, z.T].round(2))
+    Ts = np.unique(np.r_[grid.round(2), z.T])
     ups = []
     mx = np.asarray(z.blocks.maxima, dtype=float)
     cen = np.asarray(z.blocks.censored, dtype=bool)
+    b_zone = getattr(z, "bounds", None)
     for T in Ts:
+        if T == z.T and b_zone is not None and b_zone.method == "profile" and b_zone.one_sided \
+                and b_zone.level == z.level:
+            ups.append(b_zone.upper)  # the table's own bound at the zone's T: not searched twice
+            continue
         try:
             b = return_level_bounds(z.fit, mx, T, level=z.level, one_sided=True, method="profile",
                                     censored=cen if cen.any() else None, threshold=z.threshold if cen.any() else None)

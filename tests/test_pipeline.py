@@ -145,3 +145,29 @@ def test_small_pages_only_for_the_run_and_restored():
         assert setter(True) is True
     finally:
         setter(original)
+
+
+def test_return_curve_bound_at_zone_T_is_the_tables_and_others_are_searched():
+    # The return-level figure's upper bound: at the zone's T it is the table's own bound
+    # (depth_eva_upper_mm, not searched a second time), at the other periods a fresh
+    # profile-likelihood search (Coles 2001, §3.3.3) at that period; the bound grows with T.
+    from scananalyse.extremes import return_level_bounds
+    from scananalyse.pipeline import _return_curve
+
+    pair = make_pair(diameter_mm=8000.0, pitch_new=20.0, pitch_old=25.0, seed=8)
+    an = analyse(pair.new, pair.old, job=Job(diameter=8000.0))
+    z = an.extremes_depth["interior"]
+    assert z.fit is not None and z.bounds.method == "profile"
+    T_line, lvl, lower, upper, Ts = _return_curve(z)
+    assert lower is None and Ts.size == upper.size >= 4
+    at = np.flatnonzero(Ts == z.T)
+    assert at.size == 1 and upper[at[0]] == z.depth_eva_upper_mm
+    assert np.all(np.diff(upper) > 0)
+    cen = np.asarray(z.blocks.censored, dtype=bool)
+    for T, up in zip(Ts, upper):
+        if T == z.T:
+            continue
+        b = return_level_bounds(z.fit, np.asarray(z.blocks.maxima, float), T, level=z.level, one_sided=True,
+                                method="profile", censored=cen if cen.any() else None,
+                                threshold=z.threshold if cen.any() else None)
+        assert up == b.upper
