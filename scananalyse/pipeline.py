@@ -173,7 +173,7 @@ def read_job_inputs(job: Job, new: FloorScan, rules=None) -> dict:
 
 
 def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
-            registration=None, inputs: dict | None = None, on_maps=None) -> Analysis:
+            registration=None, inputs: dict | None = None, on_figures=None) -> Analysis:
     """Run every computing stage on one floor (no files written).
 
     Parameters
@@ -184,9 +184,12 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     progress : optional :class:`Progress`.
     registration : optional precomputed :class:`~scananalyse.register.Registration`.
     inputs : the job's other files already read (:func:`read_job_inputs`); read here if None.
-    on_maps : optional callable, given the map figures' specs (:func:`_map_specs`) as soon as
-        the rates and zones are known, so a caller can start drawing them while the
-        assessment runs (``_run`` does).
+    on_figures : optional callable, given report figures' specs (see :func:`_figure_specs`)
+        as soon as their data are known, so a caller can start drawing them while the
+        analysis goes on (``_run`` does): the maps, the co-located life and the
+        registration overlay once the zones are known (:func:`_map_specs`), then the
+        as-found results after the indications (:func:`_as_found_specs`).  The figures
+        left (the repairs', :func:`_repair_specs`) are drawn with the outputs.
     """
     from . import assess, attribution, rates, zones
     from .indications import label_indications
@@ -271,14 +274,18 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         if job.zone_rings:
             user.append(zones.ring_sector_zones(job.zone_rings, job.zone_sectors))
         zmap = zones.zone_map(new, geom, rules, user_zones=user or None)
-
-    options = assess.AssessOptions(
-        leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
-        coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
-        release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
-        target_interval_years=job.target_interval)
-    if on_maps is not None:
-        on_maps(_map_specs(new, lr, zmap, rules, options, job, job.units, single=old is None))
+        options = assess.AssessOptions(
+            leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
+            coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
+            release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
+            target_interval_years=job.target_interval)
+        # the MRT and co-located life maps come with the zones, so that their figures can
+        # be drawn while the rest of the assessment runs
+        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
+        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
+    if on_figures is not None:
+        on_figures(_map_specs(new, lr, zmap, rules, options, job, job.units, single=old is None, life=life,
+                              old=old, old_on_new=old_on_new))
 
     # --- extremes ------------------------------------------------------------------
     with prog.stage("extremes"):
@@ -288,8 +295,6 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     # --- assessment ----------------------------------------------------------------
     with prog.stage("assessment"):
-        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
-        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
         ext_life = _life_extremes(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
                                   censored=lr.censored, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                   methods=ext_depth)
@@ -305,6 +310,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job,
                                  labels=ind_labels)
         del ind_labels
+    if on_figures is not None:
+        on_figures(_as_found_specs(table, ext_depth, job.units))
 
     # --- repairs -------------------------------------------------------------------
     with prog.stage("repairs"):
@@ -723,24 +730,45 @@ def _costliest_first(specs) -> list:
 
 
 def _figure_specs(an: Analysis, units: str) -> list:
-    """Every report figure as ``(section, slug, caption, build)``; ``build()`` draws the Figure.
+    """Every report figure as ``(section, slug, caption, build)`` in the report's order;
+    ``build()`` draws the Figure.
 
     The figures are built lazily, so the report's renderer can draw them in any process.
+    They come in three groups, each known at a stage of the analysis (see
+    :func:`analyse`'s ``on_figures``): :func:`_map_specs`, :func:`_as_found_specs` and
+    :func:`_repair_specs`; this function puts them in the report's order.
     """
-    return (_map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single)
-            + _result_specs(an, units))
+    specs = (_map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single,
+                        life=an.life_map, old=an.old, old_on_new=an.old_on_new)
+             + _as_found_specs(an.zone_table, an.extremes_depth, units)
+             + _repair_specs(an, units))
+    return _in_report_order(specs)
 
 
-def _map_specs(new, lr, zmap, rules, options, job, units, *, single) -> list:
-    """The figures known once the rates are: thickness, loss and rate maps (see _figure_specs)."""
+#: The report's order of the figures, by slug (prefix); figures of one rank keep their order.
+_REPORT_RANK = (("life_local", 1), ("patches", 2), ("registration", 3), ("methods_as_found", 4),
+                ("methods_repaired", 5), ("probability_", 6), ("return_level_", 6))
+
+
+def _in_report_order(specs) -> list:
+    def rank(spec):
+        return next((r for prefix, r in _REPORT_RANK if spec[1].startswith(prefix)), 0)
+    return sorted(specs, key=rank)  # stable: the maps, and each zone's pair, keep their order
+
+
+def _map_common(new, zmap, units) -> dict:
+    return dict(extent=new.extent, units=units, diameter_mm=zmap.geometry.diameter_mm,
+                centre=zmap.geometry.centre, plate=new.plate)
+
+
+def _map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None) -> list:
+    """The figures known once the rates and zones are: thickness, loss and rate maps, the
+    co-located life map and (two inspections) the registration overlay (see _figure_specs)."""
     from functools import partial
 
     from . import assess
     from .report import figures as F
 
-    ext = new.extent
-    diam = zmap.geometry.diameter_mm
-    centre = zmap.geometry.centre
     out = []
     mrt_z = assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal)
     areas = np.asarray(zmap.areas_mm2, dtype=float)
@@ -749,7 +777,7 @@ def _map_specs(new, lr, zmap, rules, options, job, units, *, single) -> list:
     mrt_c = [(float(mrt_z[k_main]), f"MRT ({main_zone})", "--")]
     if job.repair_to_mm:
         mrt_c.append((job.repair_to_mm, "repair-to thickness", ":"))
-    common = dict(extent=ext, units=units, diameter_mm=diam, centre=centre, plate=new.plate)
+    common = _map_common(new, zmap, units)
     out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
                 partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
                         kind="thickness", contours=mrt_c, **common)))
@@ -768,32 +796,12 @@ def _map_specs(new, lr, zmap, rules, options, job, units, *, single) -> list:
         out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
                     partial(F.floor_map, np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
                             label="rate, both sides", kind="rate", **common)))
-    return out
-
-
-def _result_specs(an: Analysis, units: str) -> list:
-    """The figures of the assessment's results (see _figure_specs)."""
-    from functools import partial
-
-    from .report import figures as F
-
-    new = an.new
-    lr = an.rates
-    ext = new.extent
-    common = dict(extent=ext, units=units, diameter_mm=an.zones.geometry.diameter_mm,
-                  centre=an.zones.geometry.centre, plate=new.plate)
-    out = []
     out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",
-                partial(F.floor_map, an.life_map, title="Remaining life per cell", label="remaining life", kind="life",
-                        contours=[(an.job.target_interval, "target interval", "--")],
+                partial(F.floor_map, life, title="Remaining life per cell", label="remaining life", kind="life",
+                        contours=[(job.target_interval, "target interval", "--")],
                         **common)))
-    out.append(("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
-                "MRT before the target interval at their own rates lie inside them).",
-                partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
-                        label="remaining thickness", kind="thickness",
-                        patches=an.patches if len(an.patches) else None, indications=None, **common)))
-    if an.registration is not None and an.old_on_new is not None:
+    if old is not None and old_on_new is not None:
         def registration_figure():
             from .register import RigidTransform, resample_layer
 
@@ -808,20 +816,28 @@ def _result_specs(an: Analysis, units: str) -> list:
             feat_new = features(new.thickness, new.meta.nominal)
             # before alignment: the older scan's features on its own grid, placed by its raw
             # coordinates (nearest cell; a display aid, so no interpolation is needed)
-            feat_before = resample_layer(features(an.old.thickness, an.old.meta.nominal), an.old, new,
+            feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new,
                                          RigidTransform(), fill=True)
-            feat_after = features(an.old_on_new.thickness, new.meta.nominal)
-            return F.registration_overlay(feat_new, feat_before, feat_after, extent=ext)
+            feat_after = features(old_on_new.thickness, new.meta.nominal)
+            return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent)
 
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
                     "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
                     registration_figure))
-    out.append(("methods", "methods_as_found", "As found: per zone, the code-formula interval, the co-located "
-                "projection, the extreme-value life, the cap and the recommendation.",
-                partial(F.method_comparison, an.zone_table)))
-    out.append(("methods", "methods_repaired", "After the proposed repairs: the same per zone.",
-                partial(F.method_comparison, an.zones_repaired)))
-    for name, z in an.extremes_depth.items():
+    return out
+
+
+def _as_found_specs(zone_table, extremes_depth, units) -> list:
+    """The figures of the as-found results: the methods per zone, and each zone's
+    extreme-value probability and return-level plots (see _figure_specs)."""
+    from functools import partial
+
+    from .report import figures as F
+
+    out = [("methods", "methods_as_found", "As found: per zone, the code-formula interval, the co-located "
+            "projection, the extreme-value life, the cap and the recommendation.",
+            partial(F.method_comparison, zone_table))]
+    for name, z in extremes_depth.items():
         if not z or z.plot is None:
             continue
         out.append((f"extremes:{name}", f"probability_{name}", f"Probability plot of block-maximum loss, zone {name} "
@@ -837,6 +853,24 @@ def _result_specs(an: Analysis, units: str) -> list:
             out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
                         f"T = {z.T:.0f} blocks is marked.", return_figure))
     return out
+
+
+def _repair_specs(an: Analysis, units: str) -> list:
+    """The figures of the proposed repairs: the patch plates and the methods per zone after
+    them (see _figure_specs)."""
+    from functools import partial
+
+    from .report import figures as F
+
+    new = an.new
+    return [("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
+             "MRT before the target interval at their own rates lie inside them).",
+             partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
+                     label="remaining thickness", kind="thickness",
+                     patches=an.patches if len(an.patches) else None, indications=None,
+                     **_map_common(new, an.zones, units))),
+            ("methods", "methods_repaired", "After the proposed repairs: the same per zone.",
+             partial(F.method_comparison, an.zones_repaired))]
 
 
 def _return_curve(z):
@@ -972,17 +1006,19 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
 
 
-def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, map_figures=None) -> list:
+def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, early=None) -> list:
     """Write every output file of an analysis into ``folder`` (which must exist).
 
-    ``map_figures`` is a :class:`~scananalyse.report.render.FigureRenderer` already drawing the
-    map figures (:func:`_map_specs`) into ``folder/figures``; if None they are drawn here.
+    ``early`` lists :class:`~scananalyse.report.render.FigureRenderer` objects already
+    drawing some of the report's figures into ``folder/figures`` (``analyse``'s
+    ``on_figures``), each file named by :func:`~scananalyse.report.render.file_stem` of its
+    slug; the other figures are drawn here, and all are then numbered in the report's order.
     """
     from . import repair
     from .indications import write_indications_csv
     from .outputs import write_json, write_results_h5
     from .report.html import write_report
-    from .report.render import FigureRenderer
+    from .report.render import FigureRenderer, file_stem
 
     prog = progress or Progress(quiet=True)
     folder = Path(folder)
@@ -990,11 +1026,14 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, map
     files = []
     figdir = folder / "figures"
     figdir.mkdir(exist_ok=True)
-    # the figures are drawn by a helper process (where that is safe) while the data files
-    # are written here; then both draw what is left (report/render.py)
-    specs = _result_specs(an, units) if map_figures is not None else _figure_specs(an, units)
-    first = 1 + (len(map_figures.specs) if map_figures is not None else 0)
-    with FigureRenderer(specs, figdir, first=first, order=_costliest_first(specs)) as renderer:
+    # the figures not drawn yet are drawn by a helper process (where that is safe) while
+    # the data files are written here; then both draw what is left (report/render.py)
+    specs = _figure_specs(an, units)
+    early = list(early or [])
+    taken = {sp[1] for r in early for sp in r.specs}
+    rest = [sp for sp in specs if sp[1] not in taken]
+    with FigureRenderer(rest, figdir, order=_costliest_first(rest),
+                        stems=[file_stem(sp[1]) for sp in rest]) as renderer:
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
@@ -1022,10 +1061,19 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, map
                              attrs=attrs, timings=an.timings)
             files.append("results.h5")
         with prog.stage("report"):
+            drawn = {}  # slug -> (caption, png bytes, file)
+            for r in early + [renderer]:
+                for sp, (_, cap, png, name) in zip(r.specs, r.finish()):
+                    drawn[sp[1]] = (cap, png, folder / name)
             figs = []
-            for sec, cap, png, name in (map_figures.finish() if map_figures is not None else []) + renderer.finish():
+            for n, (sec, slug, _, _) in enumerate(specs, start=1):
+                cap, png, path = drawn.pop(slug)
+                final = figdir / f"{n:02d}_{file_stem(slug)}.png"
+                os.replace(path, final)  # numbered in the report's order
                 figs.append((sec, cap, png))
-                files.append(name)
+                files.append(f"figures/{final.name}")
+            for _, _, path in drawn.values():  # drawn early but not in the report (never expected)
+                path.unlink(missing_ok=True)
             data = _report_data(an, units, reg_dict, figs)
             write_report(data, folder / "report.html")
             files.append("report.html")
@@ -1086,7 +1134,7 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
     from contextlib import ExitStack
 
     from .outputs import output_folder
-    from .report.render import FigureRenderer
+    from .report.render import FigureRenderer, file_stem
 
     _import_stages()
     _check_out_dir(out_dir, force)
@@ -1099,13 +1147,14 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
         (tmp / "figures").mkdir()
         early = []
 
-        def draw_maps(specs):
-            # the map figures are drawn (by a helper process where possible) while the
-            # assessment runs; the renderer is stopped on any error or interrupt
-            early.append(helpers.enter_context(FigureRenderer(specs, tmp / "figures")))
+        def draw_early(specs):
+            # figures whose data are known are drawn (by a helper process where possible)
+            # while the analysis goes on; each renderer is stopped on any error or interrupt
+            early.append(helpers.enter_context(FigureRenderer(specs, tmp / "figures", order=_costliest_first(specs),
+                                                              stems=[file_stem(sp[1]) for sp in specs])))
 
-        an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_maps=draw_maps)
-        files = write_outputs(an, tmp, progress=prog, map_figures=early[0] if early else None)
+        an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early)
+        files = write_outputs(an, tmp, progress=prog, early=early)
     prog.finish()
     reg = an.registration.to_dict() if an.registration is not None else None
     return CompareResult(out_dir=str(out_dir), zones=an.zone_table, zones_repaired=an.zones_repaired,

@@ -108,3 +108,32 @@ def test_no_helper_when_another_thread_runs(tmp_path):
     finally:
         ev.set()
         t.join()
+
+
+def test_helper_runs_below_the_main_process_and_stems_name_the_files(tmp_path):
+    # The helper lowers its own priority (niceness +10, capped at 19 by the kernel); the
+    # main process keeps its own.  Explicit stems name the files.
+    import time
+
+    base = os.nice(0)
+
+    def spec(k):
+        def build():
+            time.sleep(0.05)  # long enough for the helper to take some of the queue
+            fig = Figure(figsize=(2, 2))
+            fig.scananalyse_caption = f"{os.getpid()}:{os.nice(0)}"
+            return fig
+        return ("maps", f"s{k}", "", build)
+
+    specs = [spec(k) for k in range(6)]
+    with FigureRenderer(specs, tmp_path, parallel=True, stems=[f"name_{k}" for k in range(6)]) as r:
+        got = r.finish()
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(f"name_{k}.png" for k in range(6))
+    who = [tuple(int(v) for v in g[1].split(":")) for g in got]
+    helper = [n for pid, n in who if pid != os.getpid()]
+    main = [n for pid, n in who if pid == os.getpid()]
+    assert helper, "the helper drew nothing"
+    assert all(n == min(19, base + 10) for n in helper)
+    assert all(n == base for n in main) and os.nice(0) == base
+    with pytest.raises(ValueError, match="stems"):
+        FigureRenderer(specs, tmp_path, parallel=False, stems=["a"] * 6)

@@ -29,9 +29,16 @@ import threading
 import warnings
 from pathlib import Path
 
-__all__ = ["FigureRenderer", "parallel_possible"]
+__all__ = ["FigureRenderer", "file_stem", "parallel_possible"]
 
 _TOKEN = struct.Struct("<I")
+#: Niceness added in a helper process (it yields the CPU to the main process under contention).
+_HELPER_NICENESS = 10
+
+
+def file_stem(slug: str) -> str:
+    """The file-name form of a figure's slug: letters and digits kept, the rest ``_``."""
+    return "".join(c if c.isalnum() else "_" for c in slug)[:60]
 
 
 def _usable_cores() -> int:
@@ -64,13 +71,15 @@ class FigureRenderer:
     first : number of the first figure (file names start with the number). [-]
     order : the order in which the figures are taken (a permutation of their indices;
         default the specs' order); put the costliest first. [-]
+    stems : file names (without ``.png``) of the figures, one per spec, all different;
+        default ``NN_slug`` numbered from ``first``. [-]
 
     The helper (if any) starts drawing at construction; :meth:`finish` makes the
     calling process draw the rest and returns the figures in ``specs`` order.
     """
 
     def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1,
-                 order=None):
+                 order=None, stems=None):
         self.specs = list(specs)
         # the queue's order: the costliest figures first, so that neither process is left
         # drawing a long one alone at the end (the files keep the specs' numbering)
@@ -79,8 +88,12 @@ class FigureRenderer:
             raise ValueError("order must be a permutation of the figure indices")
         self.figdir = Path(figdir)
         self.dpi = dpi
-        self.stems = [f"{i:02d}_" + "".join(c if c.isalnum() else "_" for c in slug)[:60]
-                      for i, (_, slug, _, _) in enumerate(self.specs, start=first)]
+        if stems is None:
+            self.stems = [f"{i:02d}_" + file_stem(slug) for i, (_, slug, _, _) in enumerate(self.specs, start=first)]
+        else:
+            self.stems = [str(x) for x in stems]
+            if len(self.stems) != len(self.specs) or len(set(self.stems)) != len(self.stems):
+                raise ValueError("stems must give one different file name per figure")
         self._pid = None
         self._queue_r = self._reply_r = None
         self.parallel = False
@@ -105,6 +118,12 @@ class FigureRenderer:
             code = 1
             try:
                 os.close(reply_r)
+                try:
+                    # below the main process, whose analysis is the critical path: the
+                    # helper takes the second core and what the main process leaves idle
+                    os.nice(_HELPER_NICENESS)
+                except OSError:
+                    pass
                 done = self._work(queue_r)
                 data = json.dumps(done).encode()
                 view = memoryview(data)
