@@ -721,6 +721,10 @@ _DRAW_COST = {"return_level": 8, "registration": 7, "patches": 4, "life_local": 
               "loss": 3, "rate": 3, "probability": 2, "methods": 1}
 
 
+#: Figure helper processes alive at once, at most (each holds 5-20 bytes per cell of its own).
+_MAX_HELPERS = int(os.environ.get("SCANANALYSE_MAX_HELPERS", "2"))
+
+
 def _costliest_first(specs) -> list:
     """Indices of ``specs`` ordered by :data:`_DRAW_COST` of their slugs, costliest first."""
     def cost(i):
@@ -1032,8 +1036,10 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     early = list(early or [])
     taken = {sp[1] for r in early for sp in r.specs}
     rest = [sp for sp in specs if sp[1] not in taken]
-    with FigureRenderer(rest, figdir, order=_costliest_first(rest),
-                        stems=[file_stem(sp[1]) for sp in rest]) as renderer:
+    # at most _MAX_HELPERS at a time (memory): if they still draw, the rest are drawn here
+    busy = sum(r.helper_running() for r in early) >= _MAX_HELPERS
+    with FigureRenderer(rest, figdir, order=_costliest_first(rest), stems=[file_stem(sp[1]) for sp in rest],
+                        parallel=False if busy else None) as renderer:
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
@@ -1146,12 +1152,20 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
     with output_folder(out_dir, force=force) as tmp, ExitStack() as helpers:
         (tmp / "figures").mkdir()
         early = []
+        waiting = []
 
         def draw_early(specs):
             # figures whose data are known are drawn (by a helper process where possible)
-            # while the analysis goes on; each renderer is stopped on any error or interrupt
-            early.append(helpers.enter_context(FigureRenderer(specs, tmp / "figures", order=_costliest_first(specs),
-                                                              stems=[file_stem(sp[1]) for sp in specs])))
+            # while the analysis goes on; each renderer is stopped on any error or interrupt.
+            # At most _MAX_HELPERS at a time (each holds memory of its own): while they
+            # still draw, later figures wait for the next group, or for the outputs.
+            waiting.extend(specs)
+            if sum(r.helper_running() for r in early) >= _MAX_HELPERS:
+                return
+            batch = waiting[:]
+            waiting.clear()
+            early.append(helpers.enter_context(FigureRenderer(batch, tmp / "figures", order=_costliest_first(batch),
+                                                              stems=[file_stem(sp[1]) for sp in batch])))
 
         an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early)
         files = write_outputs(an, tmp, progress=prog, early=early)

@@ -309,3 +309,35 @@ def test_png_output(tmp_path):
     assert p == str(tmp_path / "a.png")
     assert (tmp_path / "a.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert [f.name for f in tmp_path.iterdir()] == ["a.png"]
+
+
+def test_constrained_layout_run_once_gives_matplotlibs_own_pixels():
+    # _render_png runs a figure's constrained layout once and then draws it once; the pixels
+    # must equal matplotlib's own savefig of the same figure (which draws it twice).
+    import io
+
+    from matplotlib.figure import Figure
+    from PIL import Image
+
+    def build():
+        fig = Figure(figsize=(5.0, 4.0), layout="constrained")
+        ax = fig.add_subplot()
+        im = ax.imshow(np.arange(400.0).reshape(20, 20), origin="lower")
+        fig.colorbar(im, ax=ax, label="a long colour-bar label [mm]")
+        ax.set_title("a title that takes some room")
+        ax.set_xlabel("x [m]")
+        ax.legend(handles=[ax.plot([0, 19], [0, 19], label="line")[0]], loc="upper center",
+                  bbox_to_anchor=(0.5, -0.15), ncol=2)
+        draws = []
+        fig.canvas.mpl_connect("draw_event", lambda ev: draws.append(1))
+        return fig, draws
+
+    ref, ref_draws = build()
+    buf = io.BytesIO()
+    ref.savefig(buf, format="png", dpi=130)
+    ours, our_draws = build()
+    data = F._render_png(ours, 130)
+    a = np.asarray(Image.open(io.BytesIO(buf.getvalue())).convert("RGBA"))
+    b = np.asarray(Image.open(io.BytesIO(data)).convert("RGBA"))
+    assert a.shape == b.shape and np.array_equal(a, b)
+    assert len(ref_draws) == 2 and len(our_draws) == 1

@@ -750,6 +750,23 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
 _PNG_META = {"Software": None}
 
 
+def _fix_layout(fig, dpi) -> None:
+    """Run a figure's constrained layout once at ``dpi``, then keep the positions it found.
+
+    Saved with a layout engine, matplotlib draws the figure twice (a first draw only to run
+    the layout, which runs it again at the real draw); the positions found here are the same,
+    and the figure is then drawn once.  The figure's ``layout`` is left as None.
+    """
+    from matplotlib.layout_engine import ConstrainedLayoutEngine
+
+    engine = fig.get_layout_engine()
+    if not isinstance(engine, ConstrainedLayoutEngine):
+        return
+    fig.set_dpi(dpi)
+    engine.execute(fig)
+    fig.set_layout_engine(None)
+
+
 def _render_png(fig, dpi) -> bytes:
     """PNG bytes of ``fig`` at ``dpi``, rendered once while the figure is unchanged.
 
@@ -762,6 +779,7 @@ def _render_png(fig, dpi) -> bytes:
     cached = getattr(fig, "_scananalyse_png", None)
     if cached is not None and cached[0] == dpi and not fig.stale:
         return cached[1]
+    _fix_layout(fig, dpi)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi, metadata=_PNG_META)
     data = buf.getvalue()

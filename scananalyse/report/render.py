@@ -20,6 +20,7 @@ it.
 
 from __future__ import annotations
 
+import gc
 import json
 import os
 import signal
@@ -95,6 +96,7 @@ class FigureRenderer:
             if len(self.stems) != len(self.specs) or len(set(self.stems)) != len(self.stems):
                 raise ValueError("stems must give one different file name per figure")
         self._pid = None
+        self._status = None  # the helper's wait status once it has been reaped
         self._queue_r = self._reply_r = None
         self.parallel = False
         want = parallel_possible() if parallel is None else bool(parallel)
@@ -113,7 +115,19 @@ class FigureRenderer:
             # Python 3.12+ warns about forking with native threads (e.g. the BLAS pool);
             # the helper only draws and writes files, and exits with os._exit
             warnings.simplefilter("ignore", DeprecationWarning)
-            pid = os.fork()
+            # The objects that exist now are moved out of the garbage collector's reach for
+            # the fork: a collection in the helper would otherwise write to every object's
+            # header and so copy most of the shared Python heap into the helper's memory.
+            # The main process takes them back right after the fork.
+            # (Only if nothing was frozen before: the caller's own freeze is left alone.)
+            thaw = gc.get_freeze_count() == 0
+            gc.freeze()
+            pid = -1
+            try:
+                pid = os.fork()
+            finally:
+                if pid != 0 and thaw:
+                    gc.unfreeze()
         if pid == 0:  # the helper
             code = 1
             try:
@@ -177,7 +191,7 @@ class FigureRenderer:
                 chunks.append(b)
             os.close(self._reply_r)
             self._reply_r = None
-            _, status = os.waitpid(self._pid, 0)
+            status = self._status if self._status is not None else os.waitpid(self._pid, 0)[1]
             self._pid = None
             if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
                 extras.update({int(k): v for k, v in json.loads(b"".join(chunks)).items()})
@@ -189,9 +203,20 @@ class FigureRenderer:
             out.append((sec, f"{cap} {extras[i]}".strip(), path.read_bytes(), f"figures/{path.name}"))
         return out
 
+    def helper_running(self) -> bool:
+        """True while this renderer's helper process has not finished (it is reaped here
+        when it has; :meth:`finish` still collects what it drew)."""
+        if self._pid is None or self._status is not None:
+            return False
+        pid, status = os.waitpid(self._pid, os.WNOHANG)
+        if pid == 0:
+            return True
+        self._status = status
+        return False
+
     def close(self) -> None:
         """Stop the helper if it still runs (after an error or interrupt) and free the pipes."""
-        if self._pid is not None:
+        if self._pid is not None and self._status is None:
             try:
                 os.kill(self._pid, signal.SIGKILL)
             except ProcessLookupError:
