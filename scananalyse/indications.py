@@ -409,6 +409,9 @@ def write_indications_csv(df: pd.DataFrame, path) -> None:
     try:
         with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
             out.to_csv(fh, index=False)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; output files are for reading
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

@@ -1018,6 +1018,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     ``on_figures``), each file named by :func:`~scananalyse.report.render.file_stem` of its
     slug; the other figures are drawn here, and all are then numbered in the report's order.
     """
+    from functools import partial
+
     from . import repair
     from .indications import write_indications_csv
     from .outputs import write_json, write_results_h5
@@ -1038,13 +1040,14 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     rest = [sp for sp in specs if sp[1] not in taken]
     # at most _MAX_HELPERS at a time (memory): if they still draw, the rest are drawn here
     busy = sum(r.helper_running() for r in early) >= _MAX_HELPERS
+    # the patch drawing (DXF) is written like a figure, by the helper where there is one
+    dxf = partial(repair.write_patches_dxf, an.patches, folder / "patches.dxf")
     with FigureRenderer(rest, figdir, order=_costliest_first(rest), stems=[file_stem(sp[1]) for sp in rest],
-                        parallel=False if busy else None) as renderer:
+                        parallel=False if busy else None, tasks=[dxf]) as renderer:
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
             repair.write_patches_csv(an.patches, folder / "patches.csv")
-            repair.write_patches_dxf(an.patches, folder / "patches.dxf")
             write_indications_csv(an.indications, folder / "indications.csv")
             files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
             reg_dict = None
@@ -1083,6 +1086,10 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
             data = _report_data(an, units, reg_dict, figs)
             write_report(data, folder / "report.html")
             files.append("report.html")
+    # a helper killed while writing leaves its temporary file (the file itself was then
+    # written again here): none belongs in the output folder
+    for stale in list(figdir.glob(".fig-*")) + list(folder.glob(".tmp-*")):
+        stale.unlink(missing_ok=True)
     return files
 
 

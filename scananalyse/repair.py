@@ -1137,6 +1137,9 @@ def _atomic_write(path, write):
     os.close(fd)
     try:
         write(tmp)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; output files are for reading
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

@@ -119,6 +119,12 @@ def test_output_folder_has_ordinary_permissions(complete_run):
         assert (complete_run["out"].stat().st_mode & 0o777) == (probe.stat().st_mode & 0o777) == (0o777 & ~umask)
     finally:
         probe.rmdir()
+    # and every file in it the mode of a file made by open() under the same umask (the
+    # atomic writers' temporary files are created owner-only), and no temporary file left
+    files = [p for p in complete_run["out"].rglob("*") if p.is_file()]
+    assert len(files) > 10 and not [p for p in files if p.name.startswith(".")]
+    for p in files:
+        assert (p.stat().st_mode & 0o777) == (0o666 & ~umask), p.name
 
 
 def test_inputs_read_only_and_unchanged(complete_run):

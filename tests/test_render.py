@@ -137,3 +137,49 @@ def test_helper_runs_below_the_main_process_and_stems_name_the_files(tmp_path):
     assert all(n == base for n in main) and os.nice(0) == base
     with pytest.raises(ValueError, match="stems"):
         FigureRenderer(specs, tmp_path, parallel=False, stems=["a"] * 6)
+
+
+def test_tasks_run_once_in_either_process_and_a_failure_surfaces_in_the_caller(tmp_path):
+    # A task (an output file written like a figure) runs exactly once: in the helper when
+    # it takes it, else here.  One that fails in the helper is run again here, where its
+    # error reaches the caller.
+    def task(name):
+        def run():
+            with open(tmp_path / name, "a") as fh:
+                fh.write(f"{os.getpid()}\n")
+        return run
+
+    specs = [_spec(k) for k in range(3)]
+    for mode in (False, True):
+        d = tmp_path / f"figs_{mode}"
+        d.mkdir()
+        with FigureRenderer(specs, d, parallel=mode, tasks=[task(f"t_{mode}.txt")]) as r:
+            assert r.parallel is mode
+            got = r.finish()
+        assert len(got) == 3
+        lines = (tmp_path / f"t_{mode}.txt").read_text().split()
+        assert len(lines) == 1                      # once, whoever ran it
+    parent = os.getpid()
+
+    def fails_in_helper():
+        if os.getpid() != parent:
+            raise RuntimeError("helper side")
+        raise ValueError("main side")
+
+    with FigureRenderer(specs, tmp_path / "figs_True", parallel=True, tasks=[fails_in_helper]) as r:
+        with pytest.raises(ValueError, match="main side"):
+            r.finish()
+
+
+def test_helper_running_reaps_a_finished_helper_and_finish_still_collects(tmp_path):
+    import time
+
+    specs = [_spec(k) for k in range(3)]
+    with FigureRenderer(specs, tmp_path, parallel=True) as r:
+        deadline = time.monotonic() + 30
+        while r.helper_running() and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert not r.helper_running()               # reaped, and stays so
+        got = r.finish()
+    assert [g[3] for g in got] == [f"figures/0{k + 1}_fig_{k}.png" for k in range(3)]
+    assert all(png.startswith(b"\x89PNG") for _, _, png, _ in got)

@@ -797,6 +797,9 @@ def save_png(fig, path, dpi=130):
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; figures are for reading
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

@@ -74,19 +74,25 @@ class FigureRenderer:
         default the specs' order); put the costliest first. [-]
     stems : file names (without ``.png``) of the figures, one per spec, all different;
         default ``NN_slug`` numbered from ``first``. [-]
+    tasks : other output files to write the same way: callables without arguments, each
+        writing its own file (atomically: a task killed half-way must leave nothing);
+        they are queued before the figures. [-]
 
     The helper (if any) starts drawing at construction; :meth:`finish` makes the
-    calling process draw the rest and returns the figures in ``specs`` order.
+    calling process draw (and write) the rest and returns the figures in ``specs`` order.
     """
 
     def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1,
-                 order=None, stems=None):
+                 order=None, stems=None, tasks=()):
         self.specs = list(specs)
+        self.tasks = list(tasks)
         # the queue's order: the costliest figures first, so that neither process is left
         # drawing a long one alone at the end (the files keep the specs' numbering)
         self.order = list(range(len(self.specs))) if order is None else [int(i) for i in order]
         if sorted(self.order) != list(range(len(self.specs))):
             raise ValueError("order must be a permutation of the figure indices")
+        # tasks have the numbers after the figures' and go first
+        self._queue = [len(self.specs) + k for k in range(len(self.tasks))] + self.order
         self.figdir = Path(figdir)
         self.dpi = dpi
         if stems is None:
@@ -100,7 +106,7 @@ class FigureRenderer:
         self._queue_r = self._reply_r = None
         self.parallel = False
         want = parallel_possible() if parallel is None else bool(parallel)
-        if want and len(self.specs) >= 2 and hasattr(os, "fork"):
+        if want and len(self._queue) >= 2 and hasattr(os, "fork"):
             self._start_helper()
 
     # -- helper process ------------------------------------------------------------
@@ -109,7 +115,7 @@ class FigureRenderer:
         reply_r, reply_w = os.pipe()
         # every figure number goes into the queue before the fork (a few bytes per figure,
         # far below a pipe's buffer), then the write end is closed: an empty queue is EOF
-        os.write(queue_w, b"".join(_TOKEN.pack(i) for i in self.order))
+        os.write(queue_w, b"".join(_TOKEN.pack(i) for i in self._queue))
         os.close(queue_w)
         with warnings.catch_warnings():
             # Python 3.12+ warns about forking with native threads (e.g. the BLAS pool);
@@ -155,7 +161,8 @@ class FigureRenderer:
         self.parallel = True
 
     def _work(self, queue_r) -> dict:
-        """Take figure numbers from the queue until it is empty; returns number -> caption."""
+        """Take numbers from the queue until it is empty; returns number -> caption ("" for
+        a task)."""
         from . import figures as F
 
         done = {}
@@ -164,7 +171,11 @@ class FigureRenderer:
             if len(raw) < _TOKEN.size:
                 return done
             (i,) = _TOKEN.unpack(raw)
-            done[i] = self._draw(i, F)
+            if i >= len(self.specs):
+                self.tasks[i - len(self.specs)]()
+                done[i] = ""
+            else:
+                done[i] = self._draw(i, F)
 
     def _draw(self, i: int, F) -> str:
         _, _, _, build = self.specs[i]
@@ -195,6 +206,9 @@ class FigureRenderer:
             self._pid = None
             if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
                 extras.update({int(k): v for k, v in json.loads(b"".join(chunks)).items()})
+        for k, task in enumerate(self.tasks):
+            if len(self.specs) + k not in extras:  # serial mode, or the helper did not do it
+                task()
         out = []
         for i, (sec, _, cap, _) in enumerate(self.specs):
             if i not in extras:  # serial mode, or the helper did not deliver it
