@@ -395,7 +395,8 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
     """
     scanned = np.isfinite(thickness)
     depth = _depth_map(thickness, nominal, censored)
-    rate_sum = (rate_top + rate_under).astype(np.float32)
+    rate_sum = np.add(rate_top, rate_under, dtype=np.float32)
+    rate_valid = np.isfinite(rate_sum)  # once for all zones
     thr = threshold or None
     ext_d, ext_r = {}, {}
     for k, name in enumerate(zmap.names):
@@ -407,10 +408,10 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
             warnings.simplefilter("ignore", ScanWarning)
             ext_d[name] = _gumbel_or_gev(depth, mask, pitch_mm=pitch, zone_area_mm2=area,
                                          block_mm=job.block_mm, threshold=thr, seed=job.seed, valid=scanned)
-            if np.isfinite(rate_sum[mask]).any():
+            if np.logical_and(rate_valid, mask).any():
                 ext_r[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=pitch, zone_area_mm2=area,
                                              block_mm=job.block_mm, threshold=None, seed=job.seed,
-                                             valid=np.isfinite(rate_sum))
+                                             valid=rate_valid)
     return ext_d, ext_r
 
 
