@@ -247,7 +247,7 @@ def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells
     n = int(lab_old.max())
     lab_new = resample_layer(lab_old.astype(np.int32, copy=False), old, new, transform, fill=0)
     present = np.zeros(n + 1, dtype=bool)
-    present[np.unique(lab_new)] = True
+    present |= np.bincount(lab_new.ravel(), minlength=n + 1)[:n + 1] > 0  # linear, not a sort
     present[0] = False
     # renumber the carried regions 1..m (a region may fall outside the newer grid)
     remap = np.zeros(n + 1, dtype=np.int32)

@@ -166,6 +166,10 @@ def ring_sector_zones(n_rings: int, n_sectors: int, *, start_deg: float = 0.0,
     return RingSectorGrid(int(n_rings), int(n_sectors), float(start_deg), outer_radius_mm)
 
 
+#: Up to this many zones, :meth:`ZoneMap.groups` makes one pass per zone instead of a sort.
+_FEW_ZONES = 8
+
+
 @dataclass(eq=False)
 class ZoneMap:
     """Zone labels on a scan grid and the whole area of each zone.
@@ -222,17 +226,27 @@ class ZoneMap:
         return float(self.areas_mm2[self.index(name)]) / 1e6
 
     def groups(self) -> list[np.ndarray]:
-        """Flat cell indices of each zone (computed once with one stable sort)."""
+        """Flat cell indices of each zone, ascending (computed once).
+
+        One pass per zone where there are few zones (linear in the grid), else one stable
+        sort; both give the same indices.
+        """
         if self._groups is None:
             flat = self.labels.ravel()
-            order = np.argsort(flat, kind="stable")
-            if order.size < 2 ** 31:
-                order = order.astype(np.int32)  # half the memory of the default int64
+            small = flat.size < 2 ** 31
             counts = np.bincount(flat[flat >= 0].astype(np.int64), minlength=len(self.names))
-            start = int(np.count_nonzero(flat < 0))
-            bounds = start + np.concatenate([[0], np.cumsum(counts)])
-            self._groups = [order[bounds[k]:bounds[k + 1]] for k in range(len(self.names))]
-            self._zoned = order[start:]  # every zoned cell, zone after zone (the groups joined)
+            bounds = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
+            if len(self.names) <= _FEW_ZONES:
+                zoned = np.empty(int(bounds[-1]), dtype=np.int32 if small else np.int64)
+                for k in range(len(self.names)):  # one zone at a time: one zone's int64 indices at most
+                    zoned[bounds[k]:bounds[k + 1]] = np.flatnonzero(flat == k)
+            else:
+                order = np.argsort(flat, kind="stable")
+                if small:
+                    order = order.astype(np.int32)  # half the memory of the default int64
+                zoned = order[int(np.count_nonzero(flat < 0)):]
+            self._groups = [zoned[bounds[k]:bounds[k + 1]] for k in range(len(self.names))]
+            self._zoned = zoned  # every zoned cell, zone after zone (the groups joined)
         return self._groups
 
     def n_cells(self) -> np.ndarray:

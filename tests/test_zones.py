@@ -217,3 +217,22 @@ def test_zone_errors():
         zm.mask("annular")
     with pytest.raises(InputError, match=r"field 'n_rings'"):
         ring_sector_zones(0, 3)
+
+
+@pytest.mark.parametrize("n_zones", [3, 12])
+def test_zone_groups_are_each_zones_cells_ascending_by_either_path(n_zones, monkeypatch):
+    # groups() takes one pass per zone for few zones and a stable sort for many; both must
+    # give exactly np.flatnonzero(labels == k) per zone, and _zoned the groups joined.
+    from scananalyse import zones as Z
+
+    rng = np.random.default_rng(3)
+    labels = rng.integers(-1, n_zones, size=(37, 53)).astype(np.int16)
+    for few in (0, 100):  # force the sort, then the per-zone passes
+        monkeypatch.setattr(Z, "_FEW_ZONES", few)
+        zm = Z.ZoneMap(labels=labels, names=[f"z{k}" for k in range(n_zones)], kinds=["user"] * n_zones,
+                       areas_mm2=np.ones(n_zones), x0=0.0, y0=0.0, pitch=10.0, geometry=None)
+        g = zm.groups()
+        for k in range(n_zones):
+            np.testing.assert_array_equal(g[k], np.flatnonzero(labels.ravel() == k))
+            assert g[k].dtype == np.int32
+        np.testing.assert_array_equal(zm._zoned, np.concatenate(g))
