@@ -12,6 +12,7 @@ import dataclasses
 import datetime as _dt
 import math
 import os
+import sys
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -1139,8 +1140,60 @@ def _small_pages():
         setter(previous)
 
 
+#: glibc ``mallopt`` parameters (malloc.h) and their defaults.
+_M_TRIM_THRESHOLD, _M_MMAP_MAX = -1, -4
+_DEFAULT_TRIM_THRESHOLD, _DEFAULT_MMAP_MAX = 128 * 1024, 65536
+#: Free memory the heap may keep at its top during a run before giving it back. [bytes]
+_RUN_TRIM_THRESHOLD = 1 << 30
+
+
+def _glibc():
+    """The C library when it is glibc (``mallopt`` and ``malloc_trim``), else None."""
+    import ctypes
+    import ctypes.util
+    import platform
+
+    if not sys.platform.startswith("linux") or platform.libc_ver()[0] != "glibc":
+        return None
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        return libc if hasattr(libc, "mallopt") and hasattr(libc, "malloc_trim") else None
+    except OSError:
+        return None
+
+
+@contextmanager
+def _reuse_freed_memory():
+    """Run with glibc keeping freed large blocks for reuse, then give the memory back.
+
+    glibc serves every block of more than 32 MB (every full grid of a 30 m floor) with a
+    fresh ``mmap`` and unmaps it when freed, so each new grid is paged in again (zeroed
+    page by page: about 22 ms for a 36 MB grid on the bench machine, against 5 ms for the
+    arithmetic on it), and a run makes a few hundred of them.  For the run, large blocks
+    come from the heap instead (``M_MMAP_MAX`` 0) and the heap keeps up to 1 GiB free at
+    its top (``M_TRIM_THRESHOLD``), so a freed grid's pages serve the next one.  Measured:
+    30 m 13.0 -> 11.7 s, 60 m 52.7 -> 47.2 s; peak memory +5 bytes per cell.  Afterwards
+    the defaults are set again and ``malloc_trim`` returns the free memory.  Only glibc,
+    and only when no other thread runs (the settings are the whole process's).
+    """
+    import threading
+
+    libc = _glibc()
+    if libc is None or threading.active_count() != 1:
+        yield
+        return
+    libc.mallopt(_M_MMAP_MAX, 0)
+    libc.mallopt(_M_TRIM_THRESHOLD, _RUN_TRIM_THRESHOLD)
+    try:
+        yield
+    finally:
+        libc.mallopt(_M_MMAP_MAX, _DEFAULT_MMAP_MAX)
+        libc.mallopt(_M_TRIM_THRESHOLD, _DEFAULT_TRIM_THRESHOLD)
+        libc.malloc_trim(0)
+
+
 def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
-    with _small_pages():
+    with _small_pages(), _reuse_freed_memory():
         return _run_job(old_path, new_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=single)
 
 

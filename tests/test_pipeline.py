@@ -147,6 +147,49 @@ def test_small_pages_only_for_the_run_and_restored():
         setter(original)
 
 
+def _mmapped_blocks(libc):
+    """glibc's count of blocks served by mmap (mallinfo2().hblks)."""
+    import ctypes
+
+    class MallInfo2(ctypes.Structure):
+        _fields_ = [(n, ctypes.c_size_t) for n in ("arena", "ordblks", "smblks", "hblks", "hblkhd", "usmblks",
+                                                     "fsmblks", "uordblks", "fordblks", "keepcost")]
+
+    libc.mallinfo2.restype = MallInfo2
+    return libc.mallinfo2().hblks
+
+
+def test_freed_memory_reused_only_for_the_run(monkeypatch):
+    # Inside the run glibc serves a 48 MB block from the heap (no new mmap, so a freed
+    # grid's pages serve the next one); afterwards large blocks are mmapped again, also
+    # after an error (glibc's mallinfo2, man 3 mallinfo2).
+    import threading
+
+    from scananalyse import pipeline as P
+
+    libc = P._glibc()
+    if libc is None or not hasattr(libc, "mallinfo2"):
+        pytest.skip("needs glibc 2.33 or later")
+    monkeypatch.setattr(threading, "active_count", lambda: 1)  # other tests may leave threads
+    n = 12_000_000  # float32: 48 MB, above glibc's largest dynamic mmap threshold (32 MB)
+    with P._reuse_freed_memory():
+        before = _mmapped_blocks(libc)
+        a = np.ones(n, dtype=np.float32)
+        assert _mmapped_blocks(libc) == before  # from the heap
+        del a
+    before = _mmapped_blocks(libc)
+    b = np.ones(n, dtype=np.float32)
+    assert _mmapped_blocks(libc) == before + 1  # mmapped again after the run
+    del b
+    with pytest.raises(RuntimeError):
+        with P._reuse_freed_memory():
+            raise RuntimeError("boom")
+    before = _mmapped_blocks(libc)
+    c = np.ones(n, dtype=np.float32)
+    assert _mmapped_blocks(libc) == before + 1
+    del c
+
+
 def test_return_curve_bound_at_zone_T_is_the_tables_and_others_are_searched():
     # The return-level figure's upper bound: at the zone's T it is the table's own bound
     # (depth_eva_upper_mm, not searched a second time), at the other periods a fresh
