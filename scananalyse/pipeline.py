@@ -12,7 +12,6 @@ import dataclasses
 import datetime as _dt
 import math
 import os
-import sys
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -1147,21 +1146,6 @@ _DEFAULT_TRIM_THRESHOLD, _DEFAULT_MMAP_MAX = 128 * 1024, 65536
 _RUN_TRIM_THRESHOLD = 1 << 30
 
 
-def _glibc():
-    """The C library when it is glibc (``mallopt`` and ``malloc_trim``), else None."""
-    import ctypes
-    import ctypes.util
-    import platform
-
-    if not sys.platform.startswith("linux") or platform.libc_ver()[0] != "glibc":
-        return None
-    try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        return libc if hasattr(libc, "mallopt") and hasattr(libc, "malloc_trim") else None
-    except OSError:
-        return None
-
-
 @contextmanager
 def _reuse_freed_memory():
     """Run with glibc keeping freed large blocks for reuse, then give the memory back.
@@ -1178,7 +1162,9 @@ def _reuse_freed_memory():
     """
     import threading
 
-    libc = _glibc()
+    from ._libc import glibc
+
+    libc = glibc()
     if libc is None or threading.active_count() != 1:
         yield
         return

@@ -167,7 +167,9 @@ def test_freed_memory_reused_only_for_the_run(monkeypatch):
 
     from scananalyse import pipeline as P
 
-    libc = P._glibc()
+    from scananalyse._libc import glibc
+
+    libc = glibc()
     if libc is None or not hasattr(libc, "mallinfo2"):
         pytest.skip("needs glibc 2.33 or later")
     monkeypatch.setattr(threading, "active_count", lambda: 1)  # other tests may leave threads

@@ -30,6 +30,8 @@ import threading
 import warnings
 from pathlib import Path
 
+from .._libc import trim_free_memory
+
 __all__ = ["FigureRenderer", "file_stem", "parallel_possible"]
 
 _TOKEN = struct.Struct("<I")
@@ -127,6 +129,9 @@ class FigureRenderer:
             # The main process takes them back right after the fork.
             # (Only if nothing was frozen before: the caller's own freeze is left alone.)
             thaw = gc.get_freeze_count() == 0
+            # Free heap memory is handed back first: pages the helper inherits while they are
+            # free would be copied for nothing when the main process reuses them.
+            trim_free_memory()
             gc.freeze()
             pid = -1
             try:
