@@ -723,7 +723,16 @@ _DRAW_COST = {"return_level": 8, "registration": 7, "patches": 4, "life_local": 
 
 
 #: Figure helper processes alive at once, at most (each holds 5-20 bytes per cell of its own).
-_MAX_HELPERS = int(os.environ.get("SCANANALYSE_MAX_HELPERS", "2"))
+_MAX_HELPERS = 2
+
+
+def _draft_stems(specs, first: int) -> list:
+    """File names of figures drawn before the report's order is known: ``dNNN_slug``
+    numbered in the order they were handed out from ``first`` (unique whatever the zone
+    names); they are renamed ``NN_slug`` in the report's order at the end."""
+    from .report.render import file_stem
+
+    return [f"d{first + k:03d}_{file_stem(sp[1])}" for k, sp in enumerate(specs)]
 
 
 def _costliest_first(specs) -> list:
@@ -1016,8 +1025,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
 
     ``early`` lists :class:`~scananalyse.report.render.FigureRenderer` objects already
     drawing some of the report's figures into ``folder/figures`` (``analyse``'s
-    ``on_figures``), each file named by :func:`~scananalyse.report.render.file_stem` of its
-    slug; the other figures are drawn here, and all are then numbered in the report's order.
+    ``on_figures``), in their order of creation, each file named by :func:`_draft_stems`;
+    the other figures are drawn here, and all are then numbered in the report's order.
     """
     from functools import partial
 
@@ -1043,7 +1052,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     busy = sum(r.helper_running() for r in early) >= _MAX_HELPERS
     # the patch drawing (DXF) is written like a figure, by the helper where there is one
     dxf = partial(repair.write_patches_dxf, an.patches, folder / "patches.dxf")
-    with FigureRenderer(rest, figdir, order=_costliest_first(rest), stems=[file_stem(sp[1]) for sp in rest],
+    with FigureRenderer(rest, figdir, order=_costliest_first(rest),
+                        stems=_draft_stems(rest, sum(len(r.specs) for r in early)),
                         parallel=False if busy else None, tasks=[dxf]) as renderer:
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
@@ -1187,7 +1197,7 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
     from contextlib import ExitStack
 
     from .outputs import output_folder
-    from .report.render import FigureRenderer, file_stem
+    from .report.render import FigureRenderer
 
     _import_stages()
     _check_out_dir(out_dir, force)
@@ -1211,8 +1221,9 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
                 return
             batch = waiting[:]
             waiting.clear()
+            first = sum(len(r.specs) for r in early)
             early.append(helpers.enter_context(FigureRenderer(batch, tmp / "figures", order=_costliest_first(batch),
-                                                              stems=[file_stem(sp[1]) for sp in batch])))
+                                                              stems=_draft_stems(batch, first))))
 
         an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early)
         files = write_outputs(an, tmp, progress=prog, early=early)

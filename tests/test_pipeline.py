@@ -216,3 +216,13 @@ def test_return_curve_bound_at_zone_T_is_the_tables_and_others_are_searched():
                                 method="profile", censored=cen if cen.any() else None,
                                 threshold=z.threshold if cen.any() else None)
         assert up == b.upper
+
+
+def test_draft_figure_names_are_unique_whatever_the_zone_names():
+    # Zone names reach the figure slugs; two names that differ only in characters a file
+    # name cannot keep ("a b", "a_b") must still give two files.
+    from scananalyse.pipeline import _draft_stems
+
+    specs = [("extremes:a b", "probability_a b", "", None), ("extremes:a_b", "probability_a_b", "", None)]
+    stems = _draft_stems(specs, 7)
+    assert stems == ["d007_probability_a_b", "d008_probability_a_b"] and len(set(stems)) == 2
