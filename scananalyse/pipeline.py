@@ -1028,6 +1028,7 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     ``on_figures``), in their order of creation, each file named by :func:`_draft_stems`;
     the other figures are drawn here, and all are then numbered in the report's order.
     """
+    from contextlib import ExitStack
     from functools import partial
 
     from . import repair
@@ -1048,13 +1049,21 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     early = list(early or [])
     taken = {sp[1] for r in early for sp in r.specs}
     rest = [sp for sp in specs if sp[1] not in taken]
-    # at most _MAX_HELPERS at a time (memory): if they still draw, the rest are drawn here
-    busy = sum(r.helper_running() for r in early) >= _MAX_HELPERS
     # the patch drawing (DXF) is written like a figure, by the helper where there is one
     dxf = partial(repair.write_patches_dxf, an.patches, folder / "patches.dxf")
-    with FigureRenderer(rest, figdir, order=_costliest_first(rest),
-                        stems=_draft_stems(rest, sum(len(r.specs) for r in early)),
-                        parallel=False if busy else None, tasks=[dxf]) as renderer:
+    first = sum(len(r.specs) for r in early)
+
+    def helpers_busy():  # at most _MAX_HELPERS at a time (each holds memory of its own)
+        return sum(r.helper_running() for r in early) >= _MAX_HELPERS
+
+    def rest_renderer(parallel):
+        return FigureRenderer(rest, figdir, order=_costliest_first(rest), stems=_draft_stems(rest, first),
+                              parallel=parallel, tasks=[dxf])
+
+    with ExitStack() as stack:
+        # the rest go to a helper now if one may be forked, else after the data files (when
+        # the earlier helpers have had that long to finish), else they are drawn here
+        renderer = None if helpers_busy() else stack.enter_context(rest_renderer(None))
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
@@ -1080,6 +1089,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
             write_results_h5(folder / "results.h5", maps, x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
                              attrs=attrs, timings=an.timings)
             files.append("results.h5")
+        if renderer is None:
+            renderer = stack.enter_context(rest_renderer(False if helpers_busy() else None))
         with prog.stage("report"):
             drawn = {}  # slug -> (caption, png bytes, file)
             for r in early + [renderer]:

@@ -183,3 +183,24 @@ def test_helper_running_reaps_a_finished_helper_and_finish_still_collects(tmp_pa
         got = r.finish()
     assert [g[3] for g in got] == [f"figures/0{k + 1}_fig_{k}.png" for k in range(3)]
     assert all(png.startswith(b"\x89PNG") for _, _, png, _ in got)
+
+
+def test_compare_gives_the_same_report_figures_whatever_the_helper_cap(small_pair_files, tmp_path, monkeypatch):
+    # With no helper allowed (every group drawn here, the last one after the data files),
+    # one, or two at a time, the run gives the same numbered figures, byte for byte
+    # (matplotlib's Agg output is deterministic), and no draft file is left.
+    from scananalyse import pipeline as P
+    from scananalyse.job import Job
+
+    got = {}
+    for cap in (0, 1, 2):
+        monkeypatch.setattr(P, "_MAX_HELPERS", cap)
+        out = tmp_path / f"out{cap}"
+        res = P.compare(small_pair_files["old_h5"], small_pair_files["new_h5"], job=Job(diameter=4000.0),
+                        out_dir=out, quiet=True)
+        names = sorted(p.name for p in (out / "figures").iterdir())
+        assert names == sorted(f[len("figures/"):] for f in res.files if f.startswith("figures/"))
+        assert [n[:3] for n in names] == [f"{k:02d}_" for k in range(1, len(names) + 1)] and len(names) >= 10
+        assert (out / "patches.dxf").stat().st_size > 0
+        got[cap] = {n: (out / "figures" / n).read_bytes() for n in names}
+    assert got[0] == got[1] == got[2]
