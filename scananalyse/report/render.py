@@ -124,10 +124,10 @@ class FigureRenderer:
             # the helper only draws and writes files, and exits with os._exit
             warnings.simplefilter("ignore", DeprecationWarning)
             # The objects that exist now are moved out of the garbage collector's reach for
-            # the fork: a collection in the helper would otherwise write to every object's
-            # header and so copy most of the shared Python heap into the helper's memory.
-            # The main process takes them back right after the fork.
-            # (Only if nothing was frozen before: the caller's own freeze is left alone.)
+            # the fork: a collection in the helper would otherwise write to the header of every
+            # object it visits and so copy the pages they lie on (measured: a few bytes per
+            # cell at 30 m).  The main process takes them back right after the fork (only if
+            # nothing was frozen before: the caller's own freeze is left alone).
             thaw = gc.get_freeze_count() == 0
             # Free heap memory is handed back first: pages the helper inherits while they are
             # free would be copied for nothing when the main process reuses them.
