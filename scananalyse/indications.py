@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError, where
+from .outputs import publish_file
 from .scan import SIDE_NAMES, SIDE_UNKNOWN
 
 __all__ = [
@@ -409,10 +410,7 @@ def write_indications_csv(df: pd.DataFrame, path) -> None:
     try:
         with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
             out.to_csv(fh, index=False)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; output files are for reading
-        os.replace(tmp, path)
+        publish_file(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)

@@ -23,7 +23,8 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["output_folder", "write_json", "write_results_h5", "interrupts_as_keyboard", "interrupt_count"]
+__all__ = ["output_folder", "write_json", "write_results_h5", "interrupts_as_keyboard", "interrupt_count",
+           "publish_file"]
 
 #: Name of the marker file written last into every complete output folder.
 COMPLETE_MARKER = "COMPLETE"
@@ -100,6 +101,16 @@ def output_folder(path, *, force: bool = False):
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def publish_file(tmp, path) -> None:
+    """Give a finished temporary file the mode ``open`` would give under the umask, then
+    rename it to ``path``.  (``tempfile.mkstemp``, used for atomic writes, makes it 0600,
+    but output files are for sharing.)"""
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)
+    os.replace(tmp, path)
 
 
 def _json_default(o):

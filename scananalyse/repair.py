@@ -56,6 +56,7 @@ from scipy.sparse.csgraph import connected_components
 from skimage.measure import label as _sk_label
 
 from .errors import InputError, ScanWarning, where
+from .outputs import publish_file
 
 __all__ = [
     "PATCH_COLUMNS",
@@ -1137,10 +1138,7 @@ def _atomic_write(path, write):
     os.close(fd)
     try:
         write(tmp)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; output files are for reading
-        os.replace(tmp, path)
+        publish_file(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)

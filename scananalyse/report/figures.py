@@ -30,6 +30,7 @@ from matplotlib.collections import PatchCollection
 from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
 import matplotlib as mpl
 
+from ..outputs import publish_file
 from . import units as U
 
 __all__ = [
@@ -797,10 +798,7 @@ def save_png(fig, path, dpi=130):
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; figures are for reading
-        os.replace(tmp, path)
+        publish_file(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)

@@ -32,6 +32,7 @@ import numpy as np
 import pandas as pd
 
 from .. import CAUTION, __version__
+from ..outputs import publish_file
 from . import units as U
 
 __all__ = ["ReportData", "SECTIONS", "esc", "render_report", "write_report"]
@@ -606,10 +607,7 @@ def write_report(data: ReportData, path) -> str:
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
             fh.write(text)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; a report is for reading
-        os.replace(tmp, path)
+        publish_file(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
