@@ -8,6 +8,7 @@ folder that appears only when complete.  A notebook user can call
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import datetime as _dt
 import math
@@ -15,6 +16,7 @@ import os
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -29,9 +31,9 @@ from .scan import MM_PER_IN, FloorScan, to_display
 __all__ = ["Analysis", "CompareResult", "analyse", "actions", "write_outputs", "compare", "assess_single",
            "register_files", "run_demo", "sample_dir"]
 
-STAGES_PAIR = ["load", "registration", "attribution", "rates", "zones", "extremes", "assessment",
-               "indications", "repairs", "outputs", "report"]
-STAGES_SINGLE = [s for s in STAGES_PAIR if s != "registration"]
+STAGES_PAIR = ["load", "attribution", "zones", "extremes", "registration", "resampling", "rates", "assessment",
+               "repairs", "indications", "outputs", "report"]
+STAGES_SINGLE = [s for s in STAGES_PAIR if s not in ("registration", "resampling")]
 
 
 @dataclass
@@ -186,11 +188,23 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     inputs : the job's other files already read (:func:`read_job_inputs`); read here if None.
     on_figures : optional callable, given report figures' specs (see :func:`_figure_specs`)
         as soon as their data are known, so a caller can start drawing them while the
-        analysis goes on (``_run`` does): the maps, the co-located life and the
-        registration overlay once the zones are known (:func:`_map_specs`), then the
-        as-found results after the indications (:func:`_as_found_specs`).  The figures
-        left (the repairs', :func:`_repair_specs`) are drawn with the outputs.
+        analysis goes on (``_run`` does): the newer scan's thickness and loss maps once
+        the zones are known (:func:`_scan_map_specs`), the rate maps, the co-located life
+        and the registration overlay once the rates are (:func:`_rate_map_specs`), then the
+        as-found results after the indications (:func:`_as_found_specs`), and the patch-plate
+        map once the patches are known (:func:`_patches_spec`).  The one figure left (the
+        methods after the repairs, see :func:`_repair_specs`) is drawn with the outputs.
+
+    With two inspections and no ``registration`` given, the registration is computed in a
+    forked child process where that is safe (:class:`~scananalyse.forked.ForkedCall`), while
+    the attribution, zones and depth statistics, which need the newer scan only, run here.
     """
+    with contextlib.ExitStack() as children:  # forked children are stopped on any error or interrupt
+        return _analyse(new, old, job=job, progress=progress, registration=registration, inputs=inputs,
+                        on_figures=on_figures, children=children)
+
+
+def _analyse(new, old, *, job, progress, registration, inputs, on_figures, children) -> Analysis:
     from . import assess, attribution, rates, zones
     from .indications import label_indications
     from .rules import get_ruleset
@@ -204,9 +218,13 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     if inputs is None:
         inputs = read_job_inputs(job, new, rules)
 
-    # --- registration ------------------------------------------------------------
+    # --- registration, started ------------------------------------------------------
+    # It needs only the two scans and gives a small result, so it is computed in a
+    # forked child (forked.py) while the stages that need only the newer scan run here
+    # (attribution, zones, depth statistics); without a child it is computed now.
     reg = registration
     old_on_new = None
+    pending = None
     if old is not None:
         from .register import register, resample_onto
 
@@ -217,28 +235,64 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             src = new.source or "new scan"
             raise InputError(f"{src}: field 'inspected': the newer scan ({new.meta.inspected}) must be "
                              f"inspected after the older one ({old.meta.inspected})")
-        with prog.stage("registration"):
-            if reg is None:
-                reg = register(new, old, control_points=job.control_points)
+        if reg is None:
+            pending = _in_child(children, prog, "registration", register, new, old,
+                                control_points=job.control_points)
+
+    # --- attribution -----------------------------------------------------------
+    with prog.stage("attribution"):
+        shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
+        side_raw = attribution.raw_side_map(new, shapes=shapes)
+        side = attribution.resolve_side(side_raw, job.default_side)
+        ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
+        # the newer scan's loss and its split by side, and the indication regions
+        # (labelled once: the rate fill and the indication list use them)
+        layers = rates.loss_layers(new, side, top_depth=top_depth, options=ropt)
+        ind_labels = label_indications(layers.loss, reporting_depth_mm=_reporting_depth(new))
+    assumptions.append(f"Unattributed loss is counted as {job.default_side}side loss"
+                       if job.default_side == "under" else "Unattributed loss is counted as top-side loss")
+
+    # --- zones -----------------------------------------------------------------
+    with prog.stage("zones"):
+        geom = zones.FloorGeometry(diameter_mm=_to_mm(job.diameter, new),
+                                   centre=(_to_mm(job.centre[0], new), _to_mm(job.centre[1], new)),
+                                   annular_width_mm=_to_mm(job.annular_width, new))
+        # polygons first: the first listed user zone wins where zones overlap
+        user = [(zname, [(_to_mm(x, new), _to_mm(y, new)) for x, y in pts])
+                for zname, pts in job.zone_polygons or []]
+        if job.zone_rings:
+            user.append(zones.ring_sector_zones(job.zone_rings, job.zone_sectors))
+        zmap = zones.zone_map(new, geom, rules, user_zones=user or None)
+        options = assess.AssessOptions(
+            leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
+            coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
+            release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
+            target_interval_years=job.target_interval)
+        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
+    if on_figures is not None:
+        # the newer scan's own maps are drawn while the registration and rates run
+        on_figures(_scan_map_specs(new, layers, zmap, rules, options, job, job.units))
+
+    # --- extremes of depth -------------------------------------------------------
+    with prog.stage("extremes"):
+        ext_depth = _depth_extremes(new.thickness, zmap, nominal=new.meta.nominal, censored=layers.censored,
+                                    threshold=new.meta.threshold, pitch=new.pitch, job=job)
+
+    # --- registration, finished ------------------------------------------------------
+    if old is not None:
+        if reg is None:
+            reg = _result(prog, "registration", pending)
+        with prog.stage("resampling"):
             # only the thickness is used on the newer grid (the layers are not carried)
             old_on_new = resample_onto(dataclasses.replace(old, side=None, plate=None), new, reg.transform)
         if not reg.reliable:
             notes.append("registration is UNRELIABLE: " + "; ".join(reg.warnings))
 
-    # --- attribution ---------------------------------------------------------------
-    with prog.stage("attribution"):
-        shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
-        side_raw = attribution.raw_side_map(new, shapes=shapes)
-        side = attribution.resolve_side(side_raw, job.default_side)
-    assumptions.append(f"Unattributed loss is counted as {job.default_side}side loss"
-                       if job.default_side == "under" else "Unattributed loss is counted as top-side loss")
-
     # --- rates ---------------------------------------------------------------------
     with prog.stage("rates"):
-        ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
-        lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
-        # the indication regions (labelled once: the rate fill and the indication list use them)
-        ind_labels = label_indications(lr.loss, reporting_depth_mm=_reporting_depth(new))
+        lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt,
+                                 layers=layers)
+        del layers
         if old_on_new is not None:
             lr, n_filled = _fill_uncovered_rates(lr, new, old_on_new, ind_labels)
             if n_filled:
@@ -246,6 +300,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     f"{n_filled} cells of indications lay outside the older scan's coverage: they take the "
                     "short-term rate scaled from the same indication's measured cells (a pit deepens as fast as "
                     "its fastest measured part, in proportion to depth), not only the long-term rate.")
+        # the co-located life map comes with the rates, so that its figure can be drawn
+        # while the rest of the assessment runs
+        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
     att = attribution.attribution_summary(side_raw, lr.loss, top_depth=top_depth, default=job.default_side)
     if old is not None:
         assumptions.append(
@@ -263,38 +320,22 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         assumptions.append(
             f"Loss shallower than the detection threshold ({new.meta.threshold:.2f} mm) reads as nominal: it is "
             "treated as unknown (censored), not zero; the extreme-value fits take such blocks as left-censored.")
-
-    # --- zones ---------------------------------------------------------------------
-    with prog.stage("zones"):
-        geom = zones.FloorGeometry(diameter_mm=_to_mm(job.diameter, new),
-                                   centre=(_to_mm(job.centre[0], new), _to_mm(job.centre[1], new)),
-                                   annular_width_mm=_to_mm(job.annular_width, new))
-        # polygons first: the first listed user zone wins where zones overlap
-        user = [(zname, [(_to_mm(x, new), _to_mm(y, new)) for x, y in pts]) for zname, pts in job.zone_polygons or []]
-        if job.zone_rings:
-            user.append(zones.ring_sector_zones(job.zone_rings, job.zone_sectors))
-        zmap = zones.zone_map(new, geom, rules, user_zones=user or None)
-        options = assess.AssessOptions(
-            leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
-            coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
-            release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
-            target_interval_years=job.target_interval)
-        # the MRT and co-located life maps come with the zones, so that their figures can
-        # be drawn while the rest of the assessment runs
-        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
-        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
     if on_figures is not None:
-        on_figures(_map_specs(new, lr, zmap, rules, options, job, job.units, single=old is None, life=life,
-                              old=old, old_on_new=old_on_new))
+        on_figures(_rate_map_specs(new, lr, zmap, job, job.units, single=old is None, life=life,
+                                   old=old, old_on_new=old_on_new))
 
-    # --- extremes ------------------------------------------------------------------
-    with prog.stage("extremes"):
-        ext_depth, ext_rate = _zone_extremes(new.thickness, lr.rate_top, lr.rate_under, zmap,
-                                             nominal=new.meta.nominal, censored=lr.censored,
-                                             threshold=new.meta.threshold, pitch=new.pitch, job=job)
+    # --- indications, started ---------------------------------------------------------
+    # They need the rates, and only the outputs need them: computed in a forked child while
+    # the assessment and the repairs run here (the child's labels are let go of here; a
+    # failed child's list is made again from the rates)
+    transform = reg.transform if reg is not None else None
+    ind_call = _in_child(children, prog, "indications", _indications, new, old, transform, lr, side, zmap, job,
+                         labels=ind_labels, fallback=partial(_indications, new, old, transform, lr, side, zmap, job))
+    del ind_labels
 
     # --- assessment ----------------------------------------------------------------
     with prog.stage("assessment"):
+        ext_rate = _rate_extremes(lr.rate_top, lr.rate_under, zmap, pitch=new.pitch, job=job)
         ext_life = _life_extremes(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
                                   censored=lr.censored, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                   methods=ext_depth)
@@ -304,25 +345,42 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                     options=options, extremes=ext_for_assess, pitch_mm=new.pitch,
                                     rate_short_available=old is not None, life_map=life)
         table = _add_eva_columns(table, ext_depth, ext_life)
-
-    # --- indications ---------------------------------------------------------------
-    with prog.stage("indications"):
-        ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job,
-                                 labels=ind_labels)
-        del ind_labels
     if on_figures is not None:
         on_figures(_as_found_specs(table, ext_depth, job.units))
 
-    # --- repairs -------------------------------------------------------------------
+    # --- repairs -----------------------------------------------------------------------
     with prog.stage("repairs"):
         rep = _repairs(new, lr, side, zmap, rules, options, mrt, job, old is not None,
-                       inputs["patches"])
+                       inputs["patches"], on_figures=on_figures)
+
+    # --- indications, finished --------------------------------------------------------
+    ind, gone = _result(prog, "indications", ind_call)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
                     extremes_rate=ext_rate, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     **rep)
+
+
+def _in_child(children, prog, stage, fn, *args, fallback=None, **kwargs):
+    """``fn(*args, **kwargs)`` in a forked child (:class:`~scananalyse.forked.ForkedCall`,
+    stopped with ``children``) where that is safe; else computed now, timed as ``stage``.
+    Take the value with :func:`_result`."""
+    from .forked import ForkedCall, parallel_possible
+
+    if parallel_possible():
+        return children.enter_context(ForkedCall(fn, *args, parallel=True, fallback=fallback, **kwargs))
+    with prog.stage(stage):
+        return ForkedCall(fn, *args, parallel=False, **kwargs)
+
+
+def _result(prog, stage, call):
+    """The value of a :func:`_in_child` call; the wait for a child is timed as ``stage``."""
+    if not call.forked:
+        return call.result()
+    with prog.stage(stage):
+        return call.result()
 
 
 def _fill_uncovered_rates(lr, new, old_on_new, labels=None):
@@ -387,7 +445,15 @@ def _depth_map(thickness, nominal, censored) -> np.ndarray:
 
 
 def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, threshold, pitch, job):
-    """Block-maxima statistics of loss depth and of the summed rate, per zone.
+    """Block-maxima statistics of loss depth and of the summed rate, per zone
+    (:func:`_depth_extremes`, :func:`_rate_extremes`)."""
+    return (_depth_extremes(thickness, zmap, nominal=nominal, censored=censored, threshold=threshold,
+                            pitch=pitch, job=job),
+            _rate_extremes(rate_top, rate_under, zmap, pitch=pitch, job=job))
+
+
+def _depth_extremes(thickness, zmap, *, nominal, censored, threshold, pitch, job) -> dict:
+    """Block-maxima statistics of loss depth per zone.
 
     Loss is nominal − thickness; censored cells (reported as nominal, true loss below the
     threshold) are valid cells with value 0, so a block with no detected loss enters the
@@ -395,10 +461,8 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
     """
     scanned = np.isfinite(thickness)
     depth = _depth_map(thickness, nominal, censored)
-    rate_sum = np.add(rate_top, rate_under, dtype=np.float32)
-    rate_valid = np.isfinite(rate_sum)  # once for all zones
     thr = threshold or None
-    ext_d, ext_r = {}, {}
+    out = {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
@@ -406,13 +470,27 @@ def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, 
             continue
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
-            ext_d[name] = _gumbel_or_gev(depth, mask, pitch_mm=pitch, zone_area_mm2=area,
-                                         block_mm=job.block_mm, threshold=thr, seed=job.seed, valid=scanned)
-            if np.logical_and(rate_valid, mask).any():
-                ext_r[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=pitch, zone_area_mm2=area,
-                                             block_mm=job.block_mm, threshold=None, seed=job.seed,
-                                             valid=rate_valid)
-    return ext_d, ext_r
+            out[name] = _gumbel_or_gev(depth, mask, pitch_mm=pitch, zone_area_mm2=area,
+                                       block_mm=job.block_mm, threshold=thr, seed=job.seed, valid=scanned)
+    return out
+
+
+def _rate_extremes(rate_top, rate_under, zmap, *, pitch, job) -> dict:
+    """Block-maxima statistics of the summed rate (top + underside) per zone, over the
+    cells that have both rates."""
+    rate_sum = np.add(rate_top, rate_under, dtype=np.float32)
+    rate_valid = np.isfinite(rate_sum)  # once for all zones
+    out = {}
+    for k, name in enumerate(zmap.names):
+        mask = zmap.labels == k
+        area = float(zmap.areas_mm2[k])
+        if not area > 0 or not mask.any() or not np.logical_and(rate_valid, mask).any():
+            continue
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ScanWarning)
+            out[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=pitch, zone_area_mm2=area,
+                                       block_mm=job.block_mm, threshold=None, seed=job.seed, valid=rate_valid)
+    return out
 
 
 #: Significance level of the likelihood-ratio test of Gumbel against GEV (Coles 2001 §3.3).
@@ -624,9 +702,11 @@ def _indications(new, old, transform, lr, side, zmap, job, labels=None):
     return ind, gone
 
 
-def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None) -> dict:
-    """Patch planning for the target interval, or the engineer's patches, then re-assessment."""
+def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None, on_figures=None) -> dict:
+    """Patch planning for the target interval, or the engineer's patches, then re-assessment
+    (``on_figures`` is given the patch-plate map once the patches are known)."""
     from . import assess, repair
+    from .forked import ForkedCall
 
     critical = zmap.labels == zmap.index("critical") if "critical" in zmap.names else None
     needs = repair.cells_needing_repair(new.thickness, lr.rate_top, lr.rate_under, mrt_mm=mrt,
@@ -644,6 +724,8 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
     checks = repair.check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
                                       plate=new.plate, critical_mask=critical, needs=needs,
                                       zone_labels=zmap.labels, zone_names=zmap.names, plate_seams=plate_seams)
+    if on_figures is not None:
+        on_figures([_patches_spec(new, patches, zmap, job.units)])
     n_uncovered, _ = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
     t_rep, rt_rep, ru_rep, covered = repair.apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
                                                           x0=new.x0, y0=new.y0, pitch=new.pitch,
@@ -653,13 +735,18 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
     # attribution no longer matters there (rates carry the side).
     # The floor as repaired gets its own extreme-value statistics: patched cells read the
     # patch thickness (no loss), the rest as found.
-    ext_d_rep, ext_r_rep = _zone_extremes(t_rep, rt_rep, ru_rep, zmap, nominal=new.meta.nominal,
-                                          censored=lr.censored & ~covered, threshold=new.meta.threshold,
-                                          pitch=new.pitch, job=job)
-    life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
+    # The depth statistics go to a forked child where that is safe (forked.py) while the rate
+    # statistics and the life map are computed here.
+    cens_rep = lr.censored & ~covered
+    with ForkedCall(_depth_extremes, t_rep, zmap, nominal=new.meta.nominal, censored=cens_rep,
+                    threshold=new.meta.threshold, pitch=new.pitch, job=job) as depth_call:
+        ext_r_rep = _rate_extremes(rt_rep, ru_rep, zmap, pitch=new.pitch, job=job)
+        life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
+        ext_d_rep = depth_call.result()
     ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
-                               censored=lr.censored & ~covered, threshold=new.meta.threshold, pitch=new.pitch, job=job,
+                               censored=cens_rep, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                methods=ext_d_rep)
+    del cens_rep
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
@@ -776,10 +863,16 @@ def _map_common(new, zmap, units) -> dict:
 
 
 def _map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None) -> list:
-    """The figures known once the rates and zones are: thickness, loss and rate maps, the
-    co-located life map and (two inspections) the registration overlay (see _figure_specs)."""
-    from functools import partial
+    """The floor maps, the co-located life and (two inspections) the registration overlay
+    (see _figure_specs): :func:`_scan_map_specs` and :func:`_rate_map_specs`."""
+    return (_scan_map_specs(new, lr, zmap, rules, options, job, units)
+            + _rate_map_specs(new, lr, zmap, job, units, single=single, life=life, old=old, old_on_new=old_on_new))
 
+
+def _scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
+    """The maps that need the newer scan only, known once the zones are: thickness with
+    the MRT contour, top-side and underside loss (``layers``: ``rates.LossLayers`` or
+    ``LossRates``)."""
     from . import assess
     from .report import figures as F
 
@@ -796,9 +889,21 @@ def _map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=N
                 partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
                         kind="thickness", contours=mrt_c, **common)))
     out.append(("maps", "loss_top", "Top-side (product-side) loss.",
-                partial(F.floor_map, lr.loss_top, title="Top-side loss", label="top-side loss", kind="loss", **common)))
+                partial(F.floor_map, layers.loss_top, title="Top-side loss", label="top-side loss", kind="loss",
+                        **common)))
     out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
-                partial(F.floor_map, lr.loss_under, title="Underside loss", label="underside loss", kind="loss", **common)))
+                partial(F.floor_map, layers.loss_under, title="Underside loss", label="underside loss", kind="loss",
+                        **common)))
+    return out
+
+
+def _rate_map_specs(new, lr, zmap, job, units, *, single, life, old=None, old_on_new=None) -> list:
+    """The maps known once the rates are: short-term rates (or the long-term one), the
+    co-located life and (two inspections) the registration overlay."""
+    from .report import figures as F
+
+    out = []
+    common = _map_common(new, zmap, units)
     if not single:
         out.append(("maps", "rate_short_top", "Short-term top-side rate (change between the inspections ÷ years between them).",
                     partial(F.floor_map, lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
@@ -844,8 +949,6 @@ def _map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=N
 def _as_found_specs(zone_table, extremes_depth, units) -> list:
     """The figures of the as-found results: the methods per zone, and each zone's
     extreme-value probability and return-level plots (see _figure_specs)."""
-    from functools import partial
-
     from .report import figures as F
 
     out = [("methods", "methods_as_found", "As found: per zone, the code-formula interval, the co-located "
@@ -872,19 +975,23 @@ def _as_found_specs(zone_table, extremes_depth, units) -> list:
 def _repair_specs(an: Analysis, units: str) -> list:
     """The figures of the proposed repairs: the patch plates and the methods per zone after
     them (see _figure_specs)."""
-    from functools import partial
-
     from .report import figures as F
 
-    new = an.new
-    return [("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
-             "MRT before the target interval at their own rates lie inside them).",
-             partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
-                     label="remaining thickness", kind="thickness",
-                     patches=an.patches if len(an.patches) else None, indications=None,
-                     **_map_common(new, an.zones, units))),
+    return [_patches_spec(an.new, an.patches, an.zones, units),
             ("methods", "methods_repaired", "After the proposed repairs: the same per zone.",
              partial(F.method_comparison, an.zones_repaired))]
+
+
+def _patches_spec(new, patches, zmap, units):
+    """The patch-plate map (known as soon as the patches are, before the re-assessment)."""
+    from .report import figures as F
+
+    return ("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
+            "MRT before the target interval at their own rates lie inside them).",
+            partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
+                    label="remaining thickness", kind="thickness",
+                    patches=patches if len(patches) else None, indications=None,
+                    **_map_common(new, zmap, units)))
 
 
 def _return_curve(z):
@@ -1029,8 +1136,6 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     the other figures are drawn here, and all are then numbered in the report's order.
     """
     from contextlib import ExitStack
-    from functools import partial
-
     from . import repair
     from .indications import write_indications_csv
     from .outputs import write_json, write_results_h5

@@ -53,6 +53,8 @@ __all__ = [
     "RateOptions",
     "Repair",
     "LossRates",
+    "LossLayers",
+    "loss_layers",
     "read_repairs",
     "loss_map",
     "censored_map",
@@ -322,8 +324,60 @@ def _nan_map(shape) -> np.ndarray:
     return np.full(shape, np.nan, dtype=np.float32)
 
 
+@dataclass(eq=False, frozen=True)
+class LossLayers:
+    """The loss maps that need the newer scan only (no older scan, no registration):
+    ``loss`` and its split ``loss_top`` / ``loss_under`` [mm], and ``censored``."""
+
+    loss: np.ndarray
+    censored: np.ndarray
+    loss_top: np.ndarray
+    loss_under: np.ndarray
+
+
+def _checked_side(new: FloorScan, side, unknown_side: str) -> np.ndarray:
+    if side is None:
+        side = np.zeros(new.shape, dtype=np.int8)
+    side = np.asarray(side)
+    if side.shape != new.shape:
+        raise InputError(f"{where(new.source, None, 'side')}: side map shape {side.shape} "
+                         f"differs from the grid {new.shape}")
+    return resolve_side(side, unknown_side)
+
+
+def loss_layers(new: FloorScan, side: np.ndarray, *, top_depth=None,
+                options: RateOptions = RateOptions()) -> LossLayers:
+    """Loss, censoring and the per-side split of the newer scan (the first part of
+    :func:`compute_rates`, which takes them through ``layers``, so they can be known
+    while the registration still runs).
+
+    Parameters
+    ----------
+    new : the newer scan. [-]
+    side : int8 side map on ``new``'s grid; unknown cells (0) take ``options.unknown_side``. [-]
+    top_depth : optional measured top-side depth on ``new``'s grid (see :func:`compute_rates`). [mm]
+    options : :class:`RateOptions` (only ``unknown_side`` is used). [-]
+
+    Returns
+    -------
+    :class:`LossLayers`, float32 / bool maps on ``new``'s grid.
+    """
+    return _layers(new, _checked_side(new, side, options.unknown_side), top_depth)
+
+
+def _layers(new: FloorScan, side: np.ndarray, top_depth) -> LossLayers:
+    from .attribution import top_depth_map
+
+    loss = loss_map(new.thickness, float(new.meta.nominal))
+    censored = censored_map(loss, new.meta.threshold)
+    tdm = top_depth_map(top_depth, new) if top_depth is not None else None
+    loss_top, loss_under = split_loss(loss, side, top_depth=tdm)
+    return LossLayers(loss=loss, censored=censored, loss_top=loss_top, loss_under=loss_under)
+
+
 def compute_rates(new: FloorScan, old_on_new: FloorScan | None, side: np.ndarray, *,
-                  top_depth=None, repairs=None, options: RateOptions = RateOptions()) -> LossRates:
+                  top_depth=None, repairs=None, options: RateOptions = RateOptions(),
+                  layers: LossLayers | None = None) -> LossRates:
     """Loss, per-side loss and per-side short-/long-term and governing rate maps.
 
     Parameters
@@ -337,6 +391,8 @@ def compute_rates(new: FloorScan, old_on_new: FloorScan | None, side: np.ndarray
         NaN = not measured, ``attribution.top_depth_map``). [mm]
     repairs : optional list of :class:`Repair` (``read_repairs``). [-]
     options : :class:`RateOptions`. [-]
+    layers : the newer scan's :func:`loss_layers` for the same ``side``, ``top_depth`` and
+        ``options``, when already computed (they are used as they are, not copied). [-]
 
     Returns
     -------
@@ -355,29 +411,22 @@ def compute_rates(new: FloorScan, old_on_new: FloorScan | None, side: np.ndarray
     against k·σ_new; the long-term rate there runs from the repair date too. A record
     dated on or before the older scan only resets the long-term baseline.
     """
-    from .attribution import top_depth_map
-
     shape = new.shape
     meta = new.meta
-    if side is None:
-        side = np.zeros(shape, dtype=np.int8)
-    side = np.asarray(side)
-    if side.shape != shape:
-        raise InputError(f"{where(new.source, None, 'side')}: side map shape {side.shape} "
-                         f"differs from the grid {shape}")
-    side = resolve_side(side, options.unknown_side)
+    side = _checked_side(new, side, options.unknown_side)
     k = float(options.k_sigma)
     nominal = float(meta.nominal)
     threshold = meta.threshold
     zero = np.float32(0)
 
     t_new = new.thickness
-    loss = loss_map(t_new, nominal)
-    censored = censored_map(loss, threshold)
+    if layers is None:
+        layers = _layers(new, side, top_depth)
+    elif layers.loss.shape != shape:
+        raise ValueError(f"layers are for a grid of {layers.loss.shape}, not {shape}")
+    loss, censored = layers.loss, layers.censored
+    loss_top, loss_under = layers.loss_top, layers.loss_under
     scanned = np.isfinite(t_new)
-
-    tdm = top_depth_map(top_depth, new) if top_depth is not None else None
-    loss_top, loss_under = split_loss(loss, side, top_depth=tdm)
 
     # ---- repair records -------------------------------------------------
     record = np.zeros(shape, dtype=bool)

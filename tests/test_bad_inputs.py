@@ -573,14 +573,27 @@ def test_no_pickle_eval_exec_in_package():
     pattern = re.compile(r"\bimport\s+(pickle|cPickle|dill|marshal|shelve)\b|\bfrom\s+(pickle|dill|marshal|shelve)\b"
                          r"|\bpickle\.|\beval\s*\(|\bexec\s*\(|allow_pickle\s*=\s*True|read_pickle\s*\("
                          r"|yaml\.load\s*\(|shell\s*=\s*True|os\.system\s*\(")
+    # The one exception: forked.py sends a result from the package's own forked child to its
+    # parent through an anonymous pipe made just before the fork (never a file, a socket or
+    # anything from outside); exactly these lines, and nothing else there, may use pickle.
+    ipc = {("forked.py", "import pickle"),
+           ("forked.py", "data = pickle.dumps((value, sent), protocol=pickle.HIGHEST_PROTOCOL)"),
+           ("forked.py", 'value, sent = pickle.loads(b"".join(chunks))')}
     files = sorted(PACKAGE.rglob("*.py"))
     assert len(files) > 10
-    hits = []
+    hits, seen = [], set()
     for f in files:
         for n, line in enumerate(f.read_text(encoding="utf-8").splitlines(), start=1):
             if pattern.search(line):
-                hits.append(f"{f.relative_to(PACKAGE)}:{n}: {line.strip()}")
+                key = (str(f.relative_to(PACKAGE)), line.strip())
+                if key in ipc:
+                    seen.add(key)
+                else:
+                    hits.append(f"{key[0]}:{n}: {key[1]}")
     assert hits == []
+    assert seen == ipc  # the exception is still what it says (or the list is stale)
+    forked = (PACKAGE / "forked.py").read_text(encoding="utf-8")
+    assert "r, w = os.pipe()" in forked and "os.read(self._fd" in forked
 
 
 def test_h5_readers_refuse_links_directly(corpus):

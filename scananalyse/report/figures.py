@@ -261,7 +261,16 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     if kind not in _REDUCE:
         raise ValueError(f"kind must be one of {tuple(_REDUCE)}, got {kind!r}")
     U._check(units)
-    fig, ax = _new_axes(ax, _FIGSIZE_MAP)
+    own = ax is None
+    if own:
+        # laid out by _place_map (a layout computed from the floor's shape, not a layout
+        # engine: a report draws a dozen of these and the engine's text measuring costs
+        # about 0.2 s a map)
+        fig = Figure(figsize=_FIGSIZE_MAP)
+        ax = fig.add_subplot()
+    else:
+        fig = ax.get_figure()
+    cax = None
     v, f = decimate(values, how=_REDUCE[kind], max_pixels=max_pixels)
     nr_full, nc_full = np.shape(values)
     x_min, x_max, y_min, y_max = (float(e) / 1000.0 for e in extent)
@@ -305,7 +314,11 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
         cmap = mpl.colormaps[CMAPS[kind]].with_extremes(bad=NOT_SCANNED_COLOUR)
         im = ax.imshow(np.ma.masked_invalid(disp), origin="lower", extent=ext_m, cmap=cmap,
                        vmin=lo, vmax=hi, interpolation="nearest", zorder=1)
-        cb = fig.colorbar(im, ax=ax, shrink=0.82, pad=0.02, extend=extend)
+        if own:
+            cax = fig.add_axes((0.9, 0.1, 0.03, 0.8))  # placed by _place_map
+            cb = fig.colorbar(im, cax=cax, extend=extend)
+        else:
+            cb = fig.colorbar(im, ax=ax, shrink=0.82, pad=0.02, extend=extend)
         cb.set_label(f"{label} [{U.unit_label(q, units)}]")
         handles = []
     handles.append(Patch(facecolor=NOT_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5,
@@ -417,11 +430,47 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     _scale_bar(ax, xl, yl)
     _datum_arrow(ax)
     # legend under the map, so nothing covers the floor
-    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.09), fontsize=7.5,
-              ncol=min(4, len(handles)), frameon=False, handlelength=1.8, columnspacing=1.2)
+    ncol = min(4, len(handles))
+    legend = ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.09), fontsize=7.5,
+                       ncol=ncol, frameon=False, handlelength=1.8, columnspacing=1.2)
+    if own:
+        _place_map(fig, ax, cax, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
     fig.scananalyse_factor = f
     fig.scananalyse_caption = decimation_caption(kind, f)
     return fig
+
+
+#: Fixed margins of a floor map on its own figure [in]: left (y tick labels and label),
+#: top (title), bottom (x tick labels and label, above the legend), the colour bar's gap,
+#: width and the room for its tick labels and label, and the height of a legend row.
+_MAP_LEFT, _MAP_TOP, _MAP_BOTTOM = 0.62, 0.36, 0.52
+_CBAR_GAP, _CBAR_WIDTH, _CBAR_ROOM, _MAP_RIGHT = 0.14, 0.17, 0.78, 0.22
+_LEGEND_ROW, _LEGEND_PAD = 0.19, 0.12
+
+
+def _place_map(fig, ax, cax, legend, *, rows: int, aspect: float) -> None:
+    """Lay out a floor map on its own figure: the map as large as the margins allow at its
+    true shape (``aspect`` = height / width of its limits), the colour bar beside it at 82 %
+    of its height, the legend (``rows`` rows) under the x label.
+
+    The positions follow from the figure size and the fixed margins alone, so no text is
+    measured; the margins hold the labels a floor map has (tick labels of a few digits).
+    """
+    fw, fh = fig.get_size_inches()
+    right = _CBAR_GAP + _CBAR_WIDTH + _CBAR_ROOM if cax is not None else _MAP_RIGHT
+    legend_h = rows * _LEGEND_ROW + _LEGEND_PAD
+    avail_w = fw - _MAP_LEFT - right
+    avail_h = fh - _MAP_TOP - _MAP_BOTTOM - legend_h
+    w = min(avail_w, avail_h / aspect) if aspect > 0 else avail_w
+    h = w * aspect if aspect > 0 else avail_h
+    x0 = _MAP_LEFT + (avail_w - w) / 2
+    y0 = _MAP_BOTTOM + legend_h + (avail_h - h) / 2
+    ax.set_position((x0 / fw, y0 / fh, w / fw, h / fh))
+    if cax is not None:
+        ch = 0.82 * h
+        cax.set_position(((x0 + w + _CBAR_GAP) / fw, (y0 + (h - ch) / 2) / fh, _CBAR_WIDTH / fw, ch / fh))
+    # the legend's top just under the x label, in the map's axes fraction
+    legend.set_bbox_to_anchor((0.5, -(_MAP_BOTTOM - 0.04) / h))
 
 
 # ---------------------------------------------------------------------------

@@ -10,27 +10,24 @@ reports the captions of its figures through a second pipe.
 
 It falls back to drawing everything in the main process when forking is not safe or
 not useful: another Python thread is running (e.g. inside a Dask worker), the process
-may use only one core, the platform is not Linux, there are fewer than two figures,
-or ``SCANANALYSE_SERIAL=1`` is set.  If the helper fails or is killed, the figures it
-did not deliver are drawn by the main process, so a failure there costs time, never a
-figure.  Interrupts: the helper exits on its own interrupt without writing anything
+may use only one core, the platform is not Linux, there is nothing to draw, or
+``SCANANALYSE_SERIAL=1`` is set.  A single figure is worth a helper too: the main process
+goes on with the analysis while it is drawn.  If the helper fails or is killed, the
+figures it did not deliver are drawn by the main process, so a failure there costs time,
+never a figure.  Interrupts: the helper exits on its own interrupt without writing anything
 more; :meth:`FigureRenderer.close` (always called by the main process) kills and reaps
 it.
 """
 
 from __future__ import annotations
 
-import gc
 import json
 import os
 import signal
 import struct
-import sys
-import threading
-import warnings
 from pathlib import Path
 
-from .._libc import trim_free_memory
+from ..forked import fork_quietly, parallel_possible
 
 __all__ = ["FigureRenderer", "file_stem", "parallel_possible"]
 
@@ -42,23 +39,6 @@ _HELPER_NICENESS = 10
 def file_stem(slug: str) -> str:
     """The file-name form of a figure's slug: letters and digits kept, the rest ``_``."""
     return "".join(c if c.isalnum() else "_" for c in slug)[:60]
-
-
-def _usable_cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        return os.cpu_count() or 1
-
-
-def parallel_possible() -> bool:
-    """True when a helper process may be forked to draw figures (see the module notes)."""
-    # Linux only: forking a process that uses macOS system frameworks (e.g. Accelerate
-    # under numpy) without exec is not safe there
-    return (sys.platform.startswith("linux") and hasattr(os, "fork")
-            and os.environ.get("SCANANALYSE_SERIAL", "") != "1"
-            and _usable_cores() >= 2 and threading.current_thread() is threading.main_thread()
-            and threading.active_count() == 1)
 
 
 class FigureRenderer:
@@ -108,7 +88,7 @@ class FigureRenderer:
         self._queue_r = self._reply_r = None
         self.parallel = False
         want = parallel_possible() if parallel is None else bool(parallel)
-        if want and len(self._queue) >= 2 and hasattr(os, "fork"):
+        if want and self._queue and hasattr(os, "fork"):
             self._start_helper()
 
     # -- helper process ------------------------------------------------------------
@@ -119,26 +99,7 @@ class FigureRenderer:
         # far below a pipe's buffer), then the write end is closed: an empty queue is EOF
         os.write(queue_w, b"".join(_TOKEN.pack(i) for i in self._queue))
         os.close(queue_w)
-        with warnings.catch_warnings():
-            # Python 3.12+ warns about forking with native threads (e.g. the BLAS pool);
-            # the helper only draws and writes files, and exits with os._exit
-            warnings.simplefilter("ignore", DeprecationWarning)
-            # The objects that exist now are moved out of the garbage collector's reach for
-            # the fork: a collection in the helper would otherwise write to the header of every
-            # object it visits and so copy the pages they lie on (measured: a few bytes per
-            # cell at 30 m).  The main process takes them back right after the fork (only if
-            # nothing was frozen before: the caller's own freeze is left alone).
-            thaw = gc.get_freeze_count() == 0
-            # Free heap memory is handed back first: pages the helper inherits while they are
-            # free would be copied for nothing when the main process reuses them.
-            trim_free_memory()
-            gc.freeze()
-            pid = -1
-            try:
-                pid = os.fork()
-            finally:
-                if pid != 0 and thaw:
-                    gc.unfreeze()
+        pid = fork_quietly()  # objects frozen and free memory handed back (forked.py)
         if pid == 0:  # the helper
             code = 1
             try:
