@@ -146,7 +146,11 @@ def child_base(size: float, workdir: str, seed: int, repeat: int, csv: bool) -> 
     b = np.full(new.shape, nom, dtype=np.float32)
     r, c = min(new.shape[0], old.shape[0]), min(new.shape[1], old.shape[1])
     b[:r, :c] = np.nan_to_num(old.thickness[:r, :c], nan=nom)
+    # the first call in the process (as `compare` runs once per process), then the best of
+    # two more: the first pays the page faults of its ~1.4 GB of fresh FFT buffers, which
+    # cost 0.5-1.1 s more or less depending on the machine's memory state (seen: 0.53-1.67 s)
     t_pcc = _best(lambda: phase_cross_correlation(a, b, upsample_factor=10), 1)
+    t_pcc_warm = min(t_pcc, _best(lambda: phase_cross_correlation(a, b, upsample_factor=10), 2))
     del a, b
 
     with warnings.catch_warnings():
@@ -155,6 +159,7 @@ def child_base(size: float, workdir: str, seed: int, repeat: int, csv: bool) -> 
         reg = register(new, old)
         t_reg = time.perf_counter() - t0
     out = {"t_raw_read_s": t_raw, "t_read_scan_s": t_load, "t_numpy_pass_s": t_pass, "t_pcc_s": t_pcc,
+           "t_pcc_warm_s": t_pcc_warm,
            "t_register_s": t_reg, "register_reliable": bool(reg.reliable),
            "register_method": reg.to_dict().get("method")}
     if csv:
@@ -337,6 +342,10 @@ def _print_row(r: dict) -> None:
           f"peak {r['run_maxrss_bytes'] / 2**30:.2f} GiB = {r['run_maxrss_bytes'] / r['cells_new']:.0f} B/cell "
           f"({(r['run_maxrss_bytes'] - r['import_maxrss_bytes']) / r['cells_new']:.0f} B/cell above the "
           f"{r['import_maxrss_bytes'] / 2**20:.0f} MiB of the imported libraries)")
+    if r.get("t_pcc_warm_s"):
+        warm = r["t_raw_read_s"] + r["t_pcc_warm_s"]
+        print(f"    against the phase correlation's best of three ({r['t_pcc_warm_s']:.2f} s): "
+              f"{_ratio(r['t_compare_s'], warm)}")
     if r.get("job_pss_peak_bytes"):
         print(f"    whole job (main process and figure helpers, summed PSS sampled every 50 ms): "
               f"peak {r['job_pss_peak_bytes'] / r['cells_new']:.0f} B/cell")
@@ -359,18 +368,21 @@ def _print_row(r: dict) -> None:
 def summary(rows: list[dict]) -> str:
     """Markdown table of the figures and the verdict on each target."""
     lines = ["| floor | grid (M cells) | compare [s] | × (raw read + PCC) | raw read [s] | PCC [s] | "
+             "PCC best of 3 [s] | × (raw read + PCC best of 3) | "
              "numpy pass [ms] | load × raw | register × PCC | CSV × pandas | peak [GiB] | B/cell | B/cell net |",
-             "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
+             "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
     by = {r["size_m"]: r for r in rows}
     for r in rows:
         if "t_compare_s" not in r:
-            lines.append(f"| {r['size_m']:g} m | - | failed: {r.get('error', '?')} |" + " |" * 10)
+            lines.append(f"| {r['size_m']:g} m | - | failed: {r.get('error', '?')} |" + " |" * 12)
             continue
         base = r["t_raw_read_s"] + r["t_pcc_s"]
         csvr = _ratio(r.get("t_read_csv_scan_s"), r.get("t_pandas_read_csv_s"))
         lines.append(
             f"| {r['size_m']:g} m | {r['cells_new'] / 1e6:.1f} | {r['t_compare_s']:.2f} | "
             f"{r['t_compare_s'] / base:.2f} | {r['t_raw_read_s']:.2f} | {r['t_pcc_s']:.2f} | "
+            f"{r.get('t_pcc_warm_s', float('nan')):.2f} | "
+            f"{r['t_compare_s'] / (r['t_raw_read_s'] + r.get('t_pcc_warm_s', float('nan'))):.2f} | "
             f"{r['t_numpy_pass_s'] * 1e3:.1f} | {_ratio(r['t_read_scan_s'], r['t_raw_read_s'])} | "
             f"{_ratio(r['t_register_s'], r['t_pcc_s'])} | {csvr} | {r['run_maxrss_bytes'] / 2**30:.2f} | "
             f"{r['run_maxrss_bytes'] / r['cells_new']:.0f} | "
@@ -394,6 +406,10 @@ def summary(rows: list[dict]) -> str:
         r = by[30.0]
         x = r["t_compare_s"] / (r["t_raw_read_s"] + r["t_pcc_s"])
         lines.append(f"- compare on 30 m ≤ {TARGET_COMPARE_X:g}× (raw read + PCC): {x:.2f}× {_verdict(x <= TARGET_COMPARE_X)}")
+        if r.get("t_pcc_warm_s"):
+            xw = r["t_compare_s"] / (r["t_raw_read_s"] + r["t_pcc_warm_s"])
+            lines.append(f"- compare on 30 m ≤ {TARGET_COMPARE_X:g}× (raw read + PCC best of three): {xw:.2f}× "
+                         f"{_verdict(xw <= TARGET_COMPARE_X)}")
     for r in rows:
         if r.get("t_pandas_read_csv_s"):
             x = r["t_read_csv_scan_s"] / r["t_pandas_read_csv_s"]

@@ -96,14 +96,10 @@ class ForkedCall:
         (the child sees the memory as it was at the fork).
     *args, **kwargs : its arguments.
     parallel : None (decide with :func:`parallel_possible`), True or False.
-    fallback : optional callable without arguments giving the same value, called if the
-        child fails.  With one, the caller lets go of ``fn``'s arguments as soon as the
-        child runs (they may be big), so the fallback must not need them.
     """
 
-    def __init__(self, fn, *args, parallel: bool | None = None, fallback=None, **kwargs):
+    def __init__(self, fn, *args, parallel: bool | None = None, **kwargs):
         self._fn, self._args, self._kwargs = fn, args, kwargs
-        self._fallback = fallback
         self._pid = None
         self._fd = None
         self._done = False
@@ -111,11 +107,9 @@ class ForkedCall:
         self.forked = False
         if parallel_possible() if parallel is None else parallel:
             self._start()
-            if fallback is not None:
-                self._fn = self._args = self._kwargs = None
         else:
             self._value, self._done = fn(*args, **kwargs), True
-            self._fn = self._args = self._kwargs = self._fallback = None
+            self._fn = self._args = self._kwargs = None
 
     def _start(self) -> None:
         r, w = os.pipe()
@@ -166,9 +160,9 @@ class ForkedCall:
                     for message, category in sent:
                         warnings.warn(message, category, stacklevel=2)
         if not ok:
-            value = self._fallback() if self._fallback is not None else self._fn(*self._args, **self._kwargs)
+            value = self._fn(*self._args, **self._kwargs)
         self._value, self._done = value, True
-        self._fn = self._args = self._kwargs = self._fallback = None
+        self._fn = self._args = self._kwargs = None
         return value
 
     def close(self) -> None:

@@ -32,7 +32,7 @@ __all__ = ["Analysis", "CompareResult", "analyse", "actions", "write_outputs", "
            "register_files", "run_demo", "sample_dir"]
 
 STAGES_PAIR = ["load", "attribution", "zones", "extremes", "registration", "resampling", "rates", "assessment",
-               "repairs", "indications", "outputs", "report"]
+               "indications", "repairs", "outputs", "report"]
 STAGES_SINGLE = [s for s in STAGES_PAIR if s not in ("registration", "resampling")]
 
 
@@ -269,6 +269,8 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
             release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
             target_interval_years=job.target_interval)
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
+        # geometry of the newer scan the repairs need: derived while the registration runs
+        plate_seams = _plate_seams(new) if new.plate is not None else None
     if on_figures is not None:
         # the newer scan's own maps are drawn while the registration and rates run
         on_figures(_scan_map_specs(new, layers, zmap, rules, options, job, job.units))
@@ -324,15 +326,6 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
         on_figures(_rate_map_specs(new, lr, zmap, job, job.units, single=old is None, life=life,
                                    old=old, old_on_new=old_on_new))
 
-    # --- indications, started ---------------------------------------------------------
-    # They need the rates, and only the outputs need them: computed in a forked child while
-    # the assessment and the repairs run here (the child's labels are let go of here; a
-    # failed child's list is made again from the rates)
-    transform = reg.transform if reg is not None else None
-    ind_call = _in_child(children, prog, "indications", _indications, new, old, transform, lr, side, zmap, job,
-                         labels=ind_labels, fallback=partial(_indications, new, old, transform, lr, side, zmap, job))
-    del ind_labels
-
     # --- assessment ----------------------------------------------------------------
     with prog.stage("assessment"):
         ext_rate = _rate_extremes(lr.rate_top, lr.rate_under, zmap, pitch=new.pitch, job=job)
@@ -348,13 +341,18 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
     if on_figures is not None:
         on_figures(_as_found_specs(table, ext_depth, job.units))
 
+    # --- indications ---------------------------------------------------------------------
+    # (a forked child for them was tried: no faster at 30 m, and 20 bytes per cell more for
+    # the whole job, the child holding the main process's memory of the moment)
+    with prog.stage("indications"):
+        ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job,
+                                 labels=ind_labels)
+        del ind_labels
+
     # --- repairs -----------------------------------------------------------------------
     with prog.stage("repairs"):
         rep = _repairs(new, lr, side, zmap, rules, options, mrt, job, old is not None,
-                       inputs["patches"], on_figures=on_figures)
-
-    # --- indications, finished --------------------------------------------------------
-    ind, gone = _result(prog, "indications", ind_call)
+                       inputs["patches"], on_figures=on_figures, plate_seams=plate_seams)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
@@ -363,14 +361,14 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
                     **rep)
 
 
-def _in_child(children, prog, stage, fn, *args, fallback=None, **kwargs):
+def _in_child(children, prog, stage, fn, *args, **kwargs):
     """``fn(*args, **kwargs)`` in a forked child (:class:`~scananalyse.forked.ForkedCall`,
     stopped with ``children``) where that is safe; else computed now, timed as ``stage``.
     Take the value with :func:`_result`."""
     from .forked import ForkedCall, parallel_possible
 
     if parallel_possible():
-        return children.enter_context(ForkedCall(fn, *args, parallel=True, fallback=fallback, **kwargs))
+        return children.enter_context(ForkedCall(fn, *args, parallel=True, **kwargs))
     with prog.stage(stage):
         return ForkedCall(fn, *args, parallel=False, **kwargs)
 
@@ -702,19 +700,26 @@ def _indications(new, old, transform, lr, side, zmap, job, labels=None):
     return ind, gone
 
 
-def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None, on_figures=None) -> dict:
+def _plate_seams(new):
+    """The plate layer's seams, derived once for the patch planner and the rule checker."""
+    from . import repair
+
+    return repair.seams_from_plate(new.plate, x0=new.x0, y0=new.y0, pitch=new.pitch)
+
+
+def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None, on_figures=None,
+             plate_seams=None) -> dict:
     """Patch planning for the target interval, or the engineer's patches, then re-assessment
-    (``on_figures`` is given the patch-plate map once the patches are known)."""
+    (``on_figures`` is given the patch-plate map once the patches are known; ``plate_seams``
+    are :func:`_plate_seams`, derived here if not given)."""
     from . import assess, repair
-    from .forked import ForkedCall
 
     critical = zmap.labels == zmap.index("critical") if "critical" in zmap.names else None
     needs = repair.cells_needing_repair(new.thickness, lr.rate_top, lr.rate_under, mrt_mm=mrt,
                                         target_years=job.target_interval, repair_to_mm=job.repair_to_mm)
     checks = None
-    # the plate layer's seams, derived once for the planner and the checker
-    plate_seams = (repair.seams_from_plate(new.plate, x0=new.x0, y0=new.y0, pitch=new.pitch)
-                   if new.plate is not None else None)
+    if plate_seams is None and new.plate is not None:
+        plate_seams = _plate_seams(new)
     if own_patches is not None:
         patches = own_patches
     else:
@@ -735,14 +740,11 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
     # attribution no longer matters there (rates carry the side).
     # The floor as repaired gets its own extreme-value statistics: patched cells read the
     # patch thickness (no loss), the rest as found.
-    # The depth statistics go to a forked child where that is safe (forked.py) while the rate
-    # statistics and the life map are computed here.
     cens_rep = lr.censored & ~covered
-    with ForkedCall(_depth_extremes, t_rep, zmap, nominal=new.meta.nominal, censored=cens_rep,
-                    threshold=new.meta.threshold, pitch=new.pitch, job=job) as depth_call:
-        ext_r_rep = _rate_extremes(rt_rep, ru_rep, zmap, pitch=new.pitch, job=job)
-        life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
-        ext_d_rep = depth_call.result()
+    ext_d_rep, ext_r_rep = _zone_extremes(t_rep, rt_rep, ru_rep, zmap, nominal=new.meta.nominal,
+                                          censored=cens_rep, threshold=new.meta.threshold,
+                                          pitch=new.pitch, job=job)
+    life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
                                censored=cens_rep, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                methods=ext_d_rep)

@@ -197,6 +197,62 @@ def test_floor_map_with_ax_and_bad_kind():
         F.floor_map(np.ones((5, 5)), extent=(0, 50, 0, 50), title="x", label="t", kind="depth")
 
 
+def _drawn(fig, dpi=130):
+    """Draw a figure; return its renderer."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    fig.set_dpi(dpi)
+    fig.canvas.draw()
+    return fig.canvas.get_renderer()
+
+
+@pytest.mark.parametrize("case", ["round floor", "wide scan, no shell", "inches, long legend", "side"])
+def test_floor_map_layout_keeps_everything_inside_and_apart(case):
+    # Floor maps on their own figure are laid out from their shape (no layout engine): every
+    # text must lie inside the figure, the colour bar beside the map without touching it,
+    # and the legend below the x label, clear of the map.
+    t, _ = _radial()
+    kw = dict(extent=EXT, title="Remaining thickness now", label="remaining thickness", kind="thickness")
+    if case == "round floor":
+        kw.update(diameter_mm=3900.0)
+    elif case == "wide scan, no shell":
+        kw.update(extent=(-6000.0, 6000.0, -1500.0, 1500.0))
+    elif case == "inches, long legend":
+        plate = np.zeros(t.shape, dtype=np.int32)
+        plate[:, 200:] = 1
+        patches = pd.DataFrame({"x_min_mm": [-500.0], "y_min_mm": [-300.0], "x_max_mm": [-100.0],
+                                "y_max_mm": [0.0]})
+        ind = pd.DataFrame({"id": [1], "x_mm": [0.0], "y_mm": [0.0], "depth_max_mm": [3.0]})
+        kw.update(kind="loss", label="underside loss", units="in", diameter_mm=3900.0, plate=plate,
+                  patches=patches, indications=ind)
+        t = 6.35 - t
+    else:
+        t = np.where(np.isfinite(t), 2, 0).astype(np.float32)
+        kw.update(kind="side", label="side", diameter_mm=3900.0)
+    fig = F.floor_map(t, **kw)
+    assert fig.get_layout_engine() is None
+    r = _drawn(fig)
+    W, H = fig.bbox.width, fig.bbox.height
+    fw, fh = fig.get_size_inches()
+    inked = fig.get_tightbbox(r)  # everything drawn: texts, ticks, legend, colour bar [in]
+    assert inked.x0 >= 0 and inked.y0 >= 0 and inked.x1 <= fw and inked.y1 <= fh, (case, inked)
+    ax = fig.axes[0]
+    amap = ax.get_window_extent(r)
+    leg = ax.get_legend().get_window_extent(r)
+    xlab = ax.xaxis.label.get_window_extent(r)
+    assert leg.y1 <= xlab.y0 and leg.y1 < amap.y0, case
+    assert 0.55 * W < amap.width < W, case  # the map takes most of the width
+    if case != "wide scan, no shell":
+        assert amap.height > 0.6 * H, case  # and, being about square, most of the height
+    if kind_has_bar := kw["kind"] != "side":
+        cbar = fig.axes[1].get_window_extent(r)
+        assert cbar.x0 > amap.x1 and cbar.x1 < W, case
+        ticks = fig.axes[1].get_tightbbox(r)
+        assert ticks.x1 <= W, case
+    assert kind_has_bar == (len(fig.axes) == 2)
+
+
 # --------------------------------------------------------------------------- registration
 def test_registration_overlay_scores():
     new = np.zeros((100, 120), dtype=bool)

@@ -1,6 +1,9 @@
 """The whole analysis on synthetic floors with known truth (invented data)."""
 
+import os
+
 import numpy as np
+import pandas as pd
 import pytest
 
 from scananalyse.job import Job
@@ -226,3 +229,38 @@ def test_draft_figure_names_are_unique_whatever_the_zone_names():
     specs = [("extremes:a b", "probability_a b", "", None), ("extremes:a_b", "probability_a_b", "", None)]
     stems = _draft_stems(specs, 7)
     assert stems == ["d007_probability_a_b", "d008_probability_a_b"] and len(set(stems)) == 2
+
+
+def test_forked_children_give_the_serial_result(monkeypatch):
+    # The registration is computed in a forked child where that is safe, while the stages that
+    # need only the newer scan run: every table must be the serial run's.
+    from scananalyse import forked
+
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
+                     shift_mm=(40.0, 20.0))
+    job = Job(diameter=4000.0, target_interval=10.0)
+    if not hasattr(os, "fork"):
+        pytest.skip("no forked children without fork()")
+    # forced on: in the whole test session an idle thread of Dask's (test_fleet) makes
+    # parallel_possible() say no; the figure renderer's tests force their helper the same way
+    monkeypatch.setattr(forked, "parallel_possible", lambda: True)
+    made = []
+    real_start = forked.ForkedCall._start
+
+    def counting_start(self):
+        made.append(self._fn.__name__)
+        real_start(self)
+
+    monkeypatch.setattr(forked.ForkedCall, "_start", counting_start)
+    par = analyse(pair.new, pair.old, job=job)
+    assert made == ["register"]
+    monkeypatch.setattr(forked, "parallel_possible", lambda: False)
+    ser = analyse(pair.new, pair.old, job=job)
+    assert len(made) == 1  # none in the serial run
+    rp, rs = par.registration.to_dict(), ser.registration.to_dict()
+    assert rp.pop("timings_s").keys() == rs.pop("timings_s").keys()  # the times differ, nothing else
+    assert rp == rs
+    for name in ("zone_table", "zones_repaired", "indications", "patches"):
+        pd.testing.assert_frame_equal(getattr(par, name), getattr(ser, name), obj=name)
+    np.testing.assert_array_equal(par.life_map, ser.life_map)
+    assert par.assumptions == ser.assumptions and par.notes == ser.notes

@@ -365,3 +365,33 @@ def test_repair_record_on_synthetic_pair(tmp_path):
     got = np.nanmax(r.rate_short_under[rec])
     print(f"repaired area: underside rate true {truth:.4f} est {got:.4f}")
     assert got == pytest.approx(truth, rel=0.20)
+
+
+# ---------------------------------------------------------------- loss layers
+def test_loss_layers_given_to_compute_rates_are_used_as_they_are():
+    # the pipeline computes the newer scan's loss layers before the registration is known and
+    # hands them to compute_rates: the result must be the one compute_rates makes itself, and
+    # the maps the very arrays given (no copy, design rule of issue 8)
+    from scananalyse.rates import loss_layers
+
+    rng = np.random.default_rng(4)
+    t_old = NOM - rng.uniform(0, 2.0, (40, 30)).astype(np.float32)
+    t_new = t_old - rng.uniform(0, 0.6, (40, 30)).astype(np.float32)
+    t_new[3, :5] = np.nan
+    meta = NEW_META.replace(threshold=0.5)
+    old, new = pair(t_old, t_new, new_meta=meta)
+    side = np.where(rng.random((40, 30)) < 0.3, SIDE_TOP, 0).astype(np.int8)
+    top = np.full((40, 30), np.nan, np.float32)
+    top[10, 10] = 0.2
+    opts = RateOptions(unknown_side="top")
+    layers = loss_layers(new, side, top_depth=top, options=opts)
+    assert layers.loss.dtype == np.float32 and layers.censored.dtype == bool
+    with_layers = compute_rates(new, old, side, top_depth=top, options=opts, layers=layers)
+    alone = compute_rates(new, old, side, top_depth=top, options=opts)
+    for name in with_layers.MAP_NAMES:
+        np.testing.assert_array_equal(getattr(with_layers, name), getattr(alone, name), err_msg=name)
+    for name in ("loss", "censored", "loss_top", "loss_under"):
+        assert getattr(with_layers, name) is getattr(layers, name)
+    assert with_layers.summary() == alone.summary()
+    with pytest.raises(ValueError, match="grid"):
+        compute_rates(*pair(t_old[:5], t_new[:5]), None, layers=layers)
