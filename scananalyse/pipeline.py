@@ -191,9 +191,11 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         analysis goes on (``_run`` does): the newer scan's thickness and loss maps once
         the zones are known (:func:`_scan_map_specs`), the rate maps, the co-located life
         and the registration overlay once the rates are (:func:`_rate_map_specs`), then the
-        as-found results after the indications (:func:`_as_found_specs`), and the patch-plate
+        as-found results after the assessment (:func:`_as_found_specs`), and the patch-plate
         map once the patches are known (:func:`_patches_spec`).  The one figure left (the
         methods after the repairs, see :func:`_repair_specs`) is drawn with the outputs.
+        It is also called now and then with an empty list: a chance to start figures that
+        had to wait.
 
     With two inspections and no ``registration`` given, the registration is computed in a
     forked child process where that is safe (:class:`~scananalyse.forked.ForkedCall`), while
@@ -744,11 +746,15 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
     ext_d_rep, ext_r_rep = _zone_extremes(t_rep, rt_rep, ru_rep, zmap, nominal=new.meta.nominal,
                                           censored=cens_rep, threshold=new.meta.threshold,
                                           pitch=new.pitch, job=job)
+    if on_figures is not None:
+        on_figures([])  # figures that found the helpers busy may start now
     life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
                                censored=cens_rep, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                methods=ext_d_rep)
     del cens_rep
+    if on_figures is not None:
+        on_figures([])
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
@@ -1333,9 +1339,10 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
             # figures whose data are known are drawn (by a helper process where possible)
             # while the analysis goes on; each renderer is stopped on any error or interrupt.
             # At most _MAX_HELPERS at a time (each holds memory of its own): while they
-            # still draw, later figures wait for the next group, or for the outputs.
+            # still draw, later figures wait for the next call (the analysis also calls with
+            # no new figure now and then, to start those waiting), or for the outputs.
             waiting.extend(specs)
-            if sum(r.helper_running() for r in early) >= _MAX_HELPERS:
+            if not waiting or sum(r.helper_running() for r in early) >= _MAX_HELPERS:
                 return
             batch = waiting[:]
             waiting.clear()

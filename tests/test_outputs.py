@@ -132,3 +132,20 @@ def test_interrupt_swallowed_inside_the_block_still_leaves_nothing(tmp_path):
     with output_folder(target) as tmp:
         (tmp / "b.txt").write_text("2")
     assert (target / "b.txt").exists()
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.uint8, np.int16])
+def test_band_packing_gives_each_chunks_own_bytes(dtype):
+    # results.h5 packs a band of chunks with one transposing copy; each chunk's bytes must be
+    # those of the chunk packed alone (padding at the right and bottom edges, a strided input)
+    from scananalyse import outputs
+
+    rng = np.random.default_rng(3)
+    a = (rng.random((530, 1100)) * 100).astype(dtype)[::2, 1::2]  # 265 x 550, not contiguous
+    chunks = (64, 128)
+    deflate = outputs._deflater()[0]
+    for r0 in range(0, a.shape[0], chunks[0]):
+        band = outputs._packed_band(a, r0, chunks, deflate)
+        assert len(band) == -(-a.shape[1] // chunks[1])
+        for k, data in enumerate(band):
+            assert data == outputs._packed_chunk(a, r0, k * chunks[1], chunks, deflate), (r0, k)
