@@ -354,7 +354,7 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
     # --- repairs -----------------------------------------------------------------------
     with prog.stage("repairs"):
         rep = _repairs(new, lr, side, zmap, rules, options, mrt, job, old is not None,
-                       inputs["patches"], on_figures=on_figures, plate_seams=plate_seams)
+                       inputs["patches"], on_figures=on_figures, plate_seams=plate_seams, ext_rate=ext_rate)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
@@ -710,10 +710,11 @@ def _plate_seams(new):
 
 
 def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None, on_figures=None,
-             plate_seams=None) -> dict:
+             plate_seams=None, ext_rate=None) -> dict:
     """Patch planning for the target interval, or the engineer's patches, then re-assessment
     (``on_figures`` is given the patch-plate map once the patches are known; ``plate_seams``
-    are :func:`_plate_seams`, derived here if not given)."""
+    are :func:`_plate_seams`, derived here if not given; ``ext_rate`` the as-found rate
+    statistics, reused where the repaired floor keeps the rate maps as they are)."""
     from . import assess, repair
 
     critical = zmap.labels == zmap.index("critical") if "critical" in zmap.names else None
@@ -743,9 +744,12 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
     # The floor as repaired gets its own extreme-value statistics: patched cells read the
     # patch thickness (no loss), the rest as found.
     cens_rep = lr.censored & ~covered
-    ext_d_rep, ext_r_rep = _zone_extremes(t_rep, rt_rep, ru_rep, zmap, nominal=new.meta.nominal,
-                                          censored=cens_rep, threshold=new.meta.threshold,
-                                          pitch=new.pitch, job=job)
+    ext_d_rep = _depth_extremes(t_rep, zmap, nominal=new.meta.nominal, censored=cens_rep,
+                                threshold=new.meta.threshold, pitch=new.pitch, job=job)
+    if ext_rate is not None and rt_rep is lr.rate_top and ru_rep is lr.rate_under:
+        ext_r_rep = ext_rate  # the patches keep the measured rates: the same statistics
+    else:
+        ext_r_rep = _rate_extremes(rt_rep, ru_rep, zmap, pitch=new.pitch, job=job)
     if on_figures is not None:
         on_figures([])  # figures that found the helpers busy may start now
     life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)

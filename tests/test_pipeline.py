@@ -264,3 +264,36 @@ def test_forked_children_give_the_serial_result(monkeypatch):
         pd.testing.assert_frame_equal(getattr(par, name), getattr(ser, name), obj=name)
     np.testing.assert_array_equal(par.life_map, ser.life_map)
     assert par.assumptions == ser.assumptions and par.notes == ser.notes
+
+
+def test_repaired_floor_reuses_the_rate_statistics_only_while_its_rates_are_unchanged(monkeypatch):
+    # Patched cells keep their measured rates unless the underside cause is removed; then the
+    # repaired floor's rate maps are the as-found arrays themselves and their block-maxima
+    # statistics are reused, not computed again.  The reused values must be what computing
+    # them again on the repaired maps gives.
+    from scananalyse import pipeline
+
+    calls = []
+    real = pipeline._rate_extremes
+
+    def counted(*a, **k):
+        calls.append(1)
+        return real(*a, **k)
+
+    monkeypatch.setattr(pipeline, "_rate_extremes", counted)
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
+                     shift_mm=(40.0, 20.0))
+    an = analyse(pair.new, pair.old, job=Job(diameter=4000.0, target_interval=10.0))
+    assert len(an.patches) > 0 and len(calls) == 1  # the as-found statistics only
+    rep = an.repaired_maps
+    again = real(rep["rate_top_repaired"], rep["rate_under_repaired"], an.zones, pitch=pair.new.pitch, job=an.job)
+    checked = 0
+    for _, row in an.zones_repaired.iterrows():
+        if row["zone"] in again and np.isfinite(row["rate_eva_mm_y"]):
+            assert row["rate_eva_mm_y"] == again[row["zone"]].depth_eva_mm
+            checked += 1
+    assert checked >= 1
+    # the underside cause removed: patched cells lose their underside rate, so it is computed again
+    an2 = analyse(pair.new, pair.old, job=Job(diameter=4000.0, target_interval=10.0, under_cause_removed=True))
+    assert len(an2.patches) > 0 and len(calls) == 3
+    assert an2.repaired_maps["rate_under_repaired"] is not an2.rates.rate_under
