@@ -537,23 +537,28 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     is_mfl = method.strip().upper() == "MFL"
 
     # --- per-zone reductions on the grid -------------------------------
+    # each map's zoned cells are gathered once (zone after zone) and reduced per zone there
     unk_under = options.unknown_side == "under"
-    under_cells = (side == SIDE_UNDER) | ((side == SIDE_UNKNOWN) & unk_under)
-    top_cells = (side == SIDE_TOP) | ((side == SIDE_UNKNOWN) & (not unk_under))
     nanf = np.float32(np.nan)
-    scanned = ~np.isnan(t)
-    n_scanned = zones.count(scanned)
-    coverage = zones.coverage_pct(scanned)
-    t_min = zones.reduce(t, np.min)
-    rtbc_z = zones.reduce(np.where(under_cells, t, nanf), np.min)
-    rtip_z = zones.reduce(np.where(top_cells, t, nanf), np.min)
+    t_g = zones.gather(t)
+    side_g = zones.gather(side)
+    under_g = (side_g == SIDE_UNDER) | ((side_g == SIDE_UNKNOWN) & unk_under)
+    top_g = (side_g == SIDE_TOP) | ((side_g == SIDE_UNKNOWN) & (not unk_under))
+    del side_g
+    scanned_g = ~np.isnan(t_g)
+    n_scanned = zones.count_gathered(scanned_g)
+    coverage = zones.coverage_from_counts(n_scanned)
+    t_min = zones.reduce_gathered(t_g, np.min)
+    rtbc_z = zones.reduce_gathered(np.where(under_g, t_g, nanf), np.min)
+    rtip_z = zones.reduce_gathered(np.where(top_g, t_g, nanf), np.min)
+    del t_g, under_g, top_g
     mrt_z = zone_mrt(zones, rules, options, t0=t0)
     if has_rates:
         if life_map is None or np.shape(life_map) != t.shape:
             life_map = local_life_map(t, rt, ru, mrt_map(zones, rules, options, t0=t0))
-        life_z = zones.reduce(life_map, np.min)
-        rtop_z = zones.reduce(np.where(scanned, rt, nanf), np.max)
-        rund_z = zones.reduce(np.where(scanned, ru, nanf), np.max)
+        life_z = zones.reduce_gathered(zones.gather(life_map), np.min)
+        rtop_z = zones.reduce_gathered(np.where(scanned_g, zones.gather(rt), nanf), np.max)
+        rund_z = zones.reduce_gathered(np.where(scanned_g, zones.gather(ru), nanf), np.max)
     else:
         life_z = rtop_z = rund_z = np.full(len(zones.names), np.nan)
     cap = rules.interval_cap_years(options.release_prevention_barrier)

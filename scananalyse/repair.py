@@ -149,12 +149,14 @@ def cells_needing_repair(thickness, rate_top, rate_under, *, mrt_mm, target_year
     ty = float(target_years)
     if not math.isfinite(ty) or ty < 0:
         raise InputError(f"repair: field 'target_years': must be a number >= 0, got {target_years!r}")
-    rt_ = np.nan_to_num(np.asarray(rate_top, dtype=np.float32), nan=0.0, posinf=np.inf)
-    ru_ = np.nan_to_num(np.asarray(rate_under, dtype=np.float32), nan=0.0, posinf=np.inf)
-    s = np.maximum(rt_, np.float32(0)) + np.maximum(ru_, np.float32(0))
+    # fmax against 0: NaN and negative rates count as 0, +inf stays (one pass each, in place)
+    s = np.fmax(np.asarray(rate_top, dtype=np.float32), np.float32(0))
+    s += np.fmax(np.asarray(rate_under, dtype=np.float32), np.float32(0))
     mrt = np.asarray(mrt_mm, dtype=np.float32)
     with np.errstate(invalid="ignore"):
-        out = (t - s * np.float32(ty)) < mrt
+        s *= np.float32(ty)
+        np.subtract(t, s, out=s)  # t − (r_top + r_under)·target
+        out = s < mrt
     return np.isfinite(t) & out
 
 

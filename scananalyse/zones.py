@@ -270,25 +270,52 @@ class ZoneMap:
             raise ValueError(f"values shape {v.shape} differs from the zone grid {self.shape}")
         flat = v.ravel()
         out = np.full(len(self.names), np.nan)
-        fast = {np.min: np.fmin, np.max: np.fmax, np.nanmin: np.fmin, np.nanmax: np.fmax}.get(func)
         groups = self.groups()
-        if fast is not None and v.dtype.kind in "fiu" and groups:
+        if func in _FAST_REDUCE and v.dtype.kind in "fiu" and groups:
             # one gather of all zoned cells (zone after zone) and one NaN-skipping reduction
             # per zone: fmin/fmax ignore NaN, and give NaN only when every value is NaN
-            sizes = np.array([g.size for g in groups])
-            vals = flat[self._zoned]
-            starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
-            has = sizes > 0
-            if has.any():
-                red = fast.reduceat(vals, starts[has])
-                out[has] = red.astype(np.float64)
-            return out
+            return self.reduce_gathered(flat[self._zoned], func)
         for k, g in enumerate(groups):
             vals = flat[g]
             if vals.dtype.kind == "f":
                 vals = vals[~np.isnan(vals)]
             if vals.size:
                 out[k] = float(func(vals))
+        return out
+
+    def gather(self, values: np.ndarray) -> np.ndarray:
+        """The values of every zoned cell as one 1-D array, zone after zone (the cells of
+        :meth:`groups` joined), so that several per-zone reductions share one gather
+        (:meth:`reduce_gathered`, :meth:`count_gathered`); arithmetic on gathered arrays
+        costs the zoned cells only, not the whole grid."""
+        v = np.asarray(values)
+        if v.shape != self.shape:
+            raise ValueError(f"values shape {v.shape} differs from the zone grid {self.shape}")
+        self.groups()
+        return v.ravel()[self._zoned]
+
+    def _starts(self):
+        sizes = np.array([g.size for g in self.groups()], dtype=np.int64)
+        return np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64), sizes > 0
+
+    def reduce_gathered(self, vals: np.ndarray, func=np.min) -> np.ndarray:
+        """:meth:`reduce` (``np.min`` or ``np.max``, NaN skipped) of values gathered by
+        :meth:`gather`; float64, one value per zone, NaN for none."""
+        fast = _FAST_REDUCE.get(func)
+        if fast is None:
+            raise ValueError("reduce_gathered: func must be np.min, np.max, np.nanmin or np.nanmax")
+        out = np.full(len(self.names), np.nan)
+        starts, has = self._starts()
+        if has.any():
+            out[has] = fast.reduceat(vals, starts[has]).astype(np.float64)
+        return out
+
+    def count_gathered(self, mask_gathered: np.ndarray) -> np.ndarray:
+        """:meth:`count` of a boolean mask gathered by :meth:`gather`. [1]"""
+        out = np.zeros(len(self.names), dtype=np.int64)
+        starts, has = self._starts()
+        if has.any():
+            out[has] = np.add.reduceat(np.asarray(mask_gathered, dtype=bool), starts[has], dtype=np.int64)
         return out
 
     def count(self, mask: np.ndarray) -> np.ndarray:
@@ -311,10 +338,18 @@ class ZoneMap:
         ----------
         scanned : boolean mask of scanned cells on the grid.
         """
-        n = self.count(scanned).astype(np.float64)
+        return self.coverage_from_counts(self.count(scanned))
+
+    def coverage_from_counts(self, n_scanned) -> np.ndarray:
+        """:meth:`coverage_pct` from the scanned cells per zone. [%]"""
+        n = np.asarray(n_scanned, dtype=np.float64)
         with np.errstate(invalid="ignore", divide="ignore"):
             pct = np.where(self.areas_mm2 > 0, 100.0 * n * self.cell_area / self.areas_mm2, np.nan)
         return np.minimum(pct, 100.0)
+
+
+#: NaN-skipping per-zone reductions (fmin/fmax ignore NaN, NaN only when all are NaN).
+_FAST_REDUCE = {np.min: np.fmin, np.max: np.fmax, np.nanmin: np.fmin, np.nanmax: np.fmax}
 
 
 def _grid_of(obj):

@@ -180,6 +180,35 @@ def test_reduce_fast_path_equals_plain_numpy_per_zone():
     np.testing.assert_array_equal(zm.reduce(v, lambda a: a.min()), zm.reduce(v, np.min))
 
 
+def test_gathered_reductions_and_counts_equal_plain_numpy_per_zone():
+    # the zone assessment gathers each map's zoned cells once and reduces them per zone; the
+    # ground truth is numpy over each zone's mask, a zone without any cell included
+    rng = np.random.default_rng(5)
+    zm = zone_map(grid_for(2000, 20), FloorGeometry(2000.0), RULES,
+                  user_zones=[("outside", [(5000, 5000), (5100, 5000), (5000, 5100)])])  # no cell
+    v = rng.normal(6.0, 0.5, zm.shape).astype(np.float32)
+    v[rng.random(zm.shape) < 0.3] = np.nan
+    v[zm.mask("critical")] = np.nan  # a zone all NaN
+    g = zm.gather(v)
+    assert g.size == np.count_nonzero(zm.labels >= 0)
+    for func, ref in ((np.min, np.nanmin), (np.max, np.nanmax)):
+        out = zm.reduce_gathered(g, func)
+        np.testing.assert_array_equal(out, zm.reduce(v, func))
+        for k, name in enumerate(zm.names):
+            vals = v[zm.mask(name)]
+            want = ref(vals) if np.isfinite(vals).any() else np.nan
+            assert (np.isnan(out[k]) and np.isnan(want)) or out[k] == want, name
+    m = rng.random(zm.shape) < 0.4
+    counts = zm.count_gathered(zm.gather(m))
+    assert counts.tolist() == [int(np.count_nonzero(m & zm.mask(n))) for n in zm.names]
+    assert counts[zm.index("outside")] == 0
+    np.testing.assert_array_equal(zm.coverage_from_counts(counts), zm.coverage_pct(m))
+    with pytest.raises(ValueError, match="func"):
+        zm.reduce_gathered(g, np.mean)
+    with pytest.raises(ValueError, match="shape"):
+        zm.gather(v[:-1])
+
+
 def test_zone_map_from_floorscan():
     import datetime as dt
 
