@@ -175,7 +175,7 @@ def read_job_inputs(job: Job, new: FloorScan, rules=None) -> dict:
 
 
 def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
-            registration=None, inputs: dict | None = None, on_figures=None) -> Analysis:
+            registration=None, inputs: dict | None = None, on_figures=None, on_patches=None) -> Analysis:
     """Run every computing stage on one floor (no files written).
 
     Parameters
@@ -196,6 +196,10 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         methods after the repairs, see :func:`_repair_specs`) is drawn with the outputs.
         It is also called now and then with an empty list: a chance to start figures that
         had to wait.
+    on_patches : optional callable, given the proposed patch plates (DataFrame) as soon as
+        they are planned, just before ``on_figures`` gets their map (``_run`` writes
+        ``patches.dxf`` from them with that figure).  Not called for the engineer's own
+        patches, whose checked table is known only at the end.
 
     With two inspections and no ``registration`` given, the registration is computed in a
     forked child process where that is safe (:class:`~scananalyse.forked.ForkedCall`), while
@@ -203,10 +207,10 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     """
     with contextlib.ExitStack() as children:  # forked children are stopped on any error or interrupt
         return _analyse(new, old, job=job, progress=progress, registration=registration, inputs=inputs,
-                        on_figures=on_figures, children=children)
+                        on_figures=on_figures, on_patches=on_patches, children=children)
 
 
-def _analyse(new, old, *, job, progress, registration, inputs, on_figures, children) -> Analysis:
+def _analyse(new, old, *, job, progress, registration, inputs, on_figures, on_patches, children) -> Analysis:
     from . import assess, attribution, rates, zones
     from .indications import label_indications
     from .rules import get_ruleset
@@ -271,8 +275,10 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
             release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
             target_interval_years=job.target_interval)
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
-        # geometry of the newer scan the repairs need: derived while the registration runs
+        # geometry of the newer scan the repairs need, and the zones' cell indices (for
+        # every per-zone statistic): derived while the registration runs
         plate_seams = _plate_seams(new) if new.plate is not None else None
+        zmap.groups()
     if on_figures is not None:
         # the newer scan's own maps are drawn while the registration and rates run
         on_figures(_scan_map_specs(new, layers, zmap, rules, options, job, job.units))
@@ -354,7 +360,8 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, child
     # --- repairs -----------------------------------------------------------------------
     with prog.stage("repairs"):
         rep = _repairs(new, lr, side, zmap, rules, options, mrt, job, old is not None,
-                       inputs["patches"], on_figures=on_figures, plate_seams=plate_seams, ext_rate=ext_rate)
+                       inputs["patches"], on_figures=on_figures, on_patches=on_patches, plate_seams=plate_seams,
+                       ext_rate=ext_rate)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
@@ -710,7 +717,7 @@ def _plate_seams(new):
 
 
 def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patches=None, on_figures=None,
-             plate_seams=None, ext_rate=None) -> dict:
+             on_patches=None, plate_seams=None, ext_rate=None) -> dict:
     """Patch planning for the target interval, or the engineer's patches, then re-assessment
     (``on_figures`` is given the patch-plate map once the patches are known; ``plate_seams``
     are :func:`_plate_seams`, derived here if not given; ``ext_rate`` the as-found rate
@@ -732,6 +739,8 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
     checks = repair.check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
                                       plate=new.plate, critical_mask=critical, needs=needs,
                                       zone_labels=zmap.labels, zone_names=zmap.names, plate_seams=plate_seams)
+    if on_patches is not None and own_patches is None:
+        on_patches(patches)
     if on_figures is not None:
         on_figures([_patches_spec(new, patches, zmap, job.units)])
     n_uncovered, _ = repair.uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
@@ -1139,6 +1148,15 @@ def _report_data(an: Analysis, units: str, registration_dict, figs) -> object:
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
 
 
+def _dxf_task(patches, folder):
+    """Writing ``patches.dxf`` into ``folder``, as a renderer task (marked with its file)."""
+    from . import repair
+
+    task = partial(repair.write_patches_dxf, patches, Path(folder) / "patches.dxf")
+    task.scananalyse_file = "patches.dxf"
+    return task
+
+
 def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, early=None) -> list:
     """Write every output file of an analysis into ``folder`` (which must exist).
 
@@ -1167,7 +1185,9 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     taken = {sp[1] for r in early for sp in r.specs}
     rest = [sp for sp in specs if sp[1] not in taken]
     # the patch drawing (DXF) is written like a figure, by the helper where there is one
-    dxf = partial(repair.write_patches_dxf, an.patches, folder / "patches.dxf")
+    # (unless a helper already has it: analyse's on_patches)
+    dxf_early = any(getattr(t, "scananalyse_file", None) == "patches.dxf" for r in early for t in r.tasks)
+    dxf = [] if dxf_early else [_dxf_task(an.patches, folder)]
     first = sum(len(r.specs) for r in early)
 
     def helpers_busy():  # at most _MAX_HELPERS at a time (each holds memory of its own)
@@ -1175,7 +1195,7 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
 
     def rest_renderer(parallel):
         return FigureRenderer(rest, figdir, order=_costliest_first(rest), stems=_draft_stems(rest, first),
-                              parallel=parallel, tasks=[dxf])
+                              parallel=parallel, tasks=dxf)
 
     with ExitStack() as stack:
         # the rest go to a helper now if one may be forked, else after the data files (when
@@ -1338,6 +1358,7 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
         (tmp / "figures").mkdir()
         early = []
         waiting = []
+        waiting_tasks = []
 
         def draw_early(specs):
             # figures whose data are known are drawn (by a helper process where possible)
@@ -1348,13 +1369,21 @@ def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> Compa
             waiting.extend(specs)
             if not waiting or sum(r.helper_running() for r in early) >= _MAX_HELPERS:
                 return
-            batch = waiting[:]
+            batch, tasks = waiting[:], waiting_tasks[:]
             waiting.clear()
+            waiting_tasks.clear()
             first = sum(len(r.specs) for r in early)
             early.append(helpers.enter_context(FigureRenderer(batch, tmp / "figures", order=_costliest_first(batch),
-                                                              stems=_draft_stems(batch, first))))
+                                                              stems=_draft_stems(batch, first), tasks=tasks,
+                                                              tasks_first=False)))
 
-        an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early)
+        def patches_known(patches):
+            # the patch drawing goes with the next figures drawn (the patch-plate map's),
+            # after them: it is needed only at the end
+            waiting_tasks.append(_dxf_task(patches, tmp))
+
+        an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early,
+                     on_patches=patches_known)
         files = write_outputs(an, tmp, progress=prog, early=early)
     prog.finish()
     reg = an.registration.to_dict() if an.registration is not None else None

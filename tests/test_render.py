@@ -192,7 +192,21 @@ def test_compare_gives_the_same_report_figures_whatever_the_helper_cap(small_pai
     from scananalyse import pipeline as P
     from scananalyse.job import Job
 
-    got = {}
+    from scananalyse import repair
+
+    # patches.dxf is written once whoever writes it (with the patch-plate map's figures
+    # while the analysis goes on, or with the outputs): each call leaves a line in a log,
+    # from whichever process makes it
+    log = tmp_path / "dxf_calls.log"
+    real_dxf = repair.write_patches_dxf
+
+    def logged_dxf(patches, path):
+        with open(log, "a") as fh:
+            fh.write(f"{path}\n")
+        real_dxf(patches, path)
+
+    monkeypatch.setattr(repair, "write_patches_dxf", logged_dxf)
+    got, dxf = {}, {}
     for cap in (0, 1, 2):
         monkeypatch.setattr(P, "_MAX_HELPERS", cap)
         out = tmp_path / f"out{cap}"
@@ -201,6 +215,10 @@ def test_compare_gives_the_same_report_figures_whatever_the_helper_cap(small_pai
         names = sorted(p.name for p in (out / "figures").iterdir())
         assert names == sorted(f[len("figures/"):] for f in res.files if f.startswith("figures/"))
         assert [n[:3] for n in names] == [f"{k:02d}_" for k in range(1, len(names) + 1)] and len(names) >= 10
-        assert (out / "patches.dxf").stat().st_size > 0
         got[cap] = {n: (out / "figures" / n).read_bytes() for n in names}
+        back = repair.read_patches(out / "patches.dxf")
+        assert len(back) == len(res.patches) > 0
+        dxf[cap] = back[["x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"]].round(6).values.tolist()
     assert got[0] == got[1] == got[2]
+    assert dxf[0] == dxf[1] == dxf[2]
+    assert len(log.read_text().splitlines()) == 3  # once per run

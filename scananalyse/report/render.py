@@ -57,15 +57,15 @@ class FigureRenderer:
     stems : file names (without ``.png``) of the figures, one per spec, all different;
         default ``NN_slug`` numbered from ``first``. [-]
     tasks : other output files to write the same way: callables without arguments, each
-        writing its own file (atomically: a task killed half-way must leave nothing);
-        they are queued before the figures. [-]
+        writing its own file (atomically: a task killed half-way must leave nothing). [-]
+    tasks_first : queue the tasks before the figures (default) or after them. [-]
 
     The helper (if any) starts drawing at construction; :meth:`finish` makes the
     calling process draw (and write) the rest and returns the figures in ``specs`` order.
     """
 
     def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1,
-                 order=None, stems=None, tasks=()):
+                 order=None, stems=None, tasks=(), tasks_first: bool = True):
         self.specs = list(specs)
         self.tasks = list(tasks)
         # the queue's order: the costliest figures first, so that neither process is left
@@ -73,8 +73,9 @@ class FigureRenderer:
         self.order = list(range(len(self.specs))) if order is None else [int(i) for i in order]
         if sorted(self.order) != list(range(len(self.specs))):
             raise ValueError("order must be a permutation of the figure indices")
-        # tasks have the numbers after the figures' and go first
-        self._queue = [len(self.specs) + k for k in range(len(self.tasks))] + self.order
+        # tasks have the numbers after the figures'
+        numbered = [len(self.specs) + k for k in range(len(self.tasks))]
+        self._queue = numbered + self.order if tasks_first else self.order + numbered
         self.figdir = Path(figdir)
         self.dpi = dpi
         if stems is None:
