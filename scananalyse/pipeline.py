@@ -988,8 +988,9 @@ def _as_found_specs(zone_table, extremes_depth, units) -> list:
                                            bound_label=f"{100 * z.level:.0f} % upper bound",
                                            title=f"Return level, zone {name}")
 
-            out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound; the zone's "
-                        f"T = {z.T:.0f} blocks is marked.", return_figure))
+            out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound "
+                        "(profile likelihood at the dots; between them its margin over the return level is "
+                        f"interpolated); the zone's T = {z.T:.0f} blocks is marked.", return_figure))
     return out
 
 

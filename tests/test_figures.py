@@ -322,17 +322,29 @@ def test_return_level_plot_marks_zone_T():
     assert marker.get_ydata()[0] == pytest.approx(352.5, rel=5e-3)
     assert ax.get_xscale() == "log"
     assert len(ax.collections) >= 1  # the bounds band
-    # one-sided: only an upper bound, given at its own periods, is drawn as a line through them
+    # one-sided: only an upper bound, computed at its own periods (the dots); the line between
+    # them keeps the bound's margin over the return level, interpolated in log T, so it passes
+    # through every dot and never cuts under the curve where the margin is positive
     Tb = np.array([2.0, 10.0, 100.0])
-    up = stats.gumbel_r.ppf(1 - 1 / Tb, loc, scale) + 25.0
+    up = stats.gumbel_r.ppf(1 - 1 / Tb, loc, scale) + np.array([25.0, 40.0, 30.0])
     fig = F.return_level_plot(T, level, None, up, bound_T=Tb, zone_T=10.0, units="mm",
                               bound_label="90 % upper bound")
     ax = fig.axes[0]
     line = [l for l in ax.lines if l.get_label() == "90 % upper bound"]
-    assert len(line) == 1
-    np.testing.assert_allclose(line[0].get_xdata(), Tb)
-    np.testing.assert_allclose(line[0].get_ydata(), up)
+    dots = [l for l in ax.lines if l.get_label() == "_bound computed here"]
+    assert len(line) == 1 and len(dots) == 1
+    np.testing.assert_allclose(dots[0].get_xdata(), Tb)
+    np.testing.assert_allclose(dots[0].get_ydata(), up)
+    x, y = np.asarray(line[0].get_xdata()), np.asarray(line[0].get_ydata())
+    assert x.min() == 2.0 and x.max() == 100.0
+    np.testing.assert_allclose(np.interp(np.log(Tb), np.log(x), y), up, rtol=1e-12)  # through the dots
+    margin = y - stats.gumbel_r.ppf(1 - 1 / x, loc, scale)
+    assert margin.min() > 24.0  # between 25 and 40 everywhere (up to the curve's log interpolation)
     assert "90 % upper bound" in [t.get_text() for t in ax.get_legend().get_texts()]
+    # the period axis has plain numbers, not typeset powers of ten
+    _drawn(fig)  # tick labels are made at the draw
+    labels = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
+    assert labels and all("$" not in t for t in labels) and "10" in labels and "100" in labels
 
 
 def test_method_comparison_markers_and_flags():

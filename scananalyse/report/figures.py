@@ -25,6 +25,7 @@ import tempfile
 import numpy as np
 from matplotlib.figure import Figure
 from matplotlib.colors import ListedColormap, BoundaryNorm
+from matplotlib.ticker import FuncFormatter
 from matplotlib.lines import Line2D
 from matplotlib.collections import PatchCollection
 from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
@@ -691,9 +692,22 @@ def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title
                         label=bound_label)
     elif upper is not None:
         hi = U.convert(np.asarray(upper, dtype=np.float64), "depth", units)
-        ok = np.isfinite(hi)
-        if ok.any():
-            ax.plot(TB[ok], hi[ok], "--o", color="#4292c6", lw=1.2, ms=3.5, label=bound_label)
+        ok = np.isfinite(hi) & (TB > 0)
+        okc = np.isfinite(lv) & (T > 0)
+        if ok.sum() >= 2 and okc.sum() >= 2:
+            # the bound is computed at a few periods (the dots); between them its margin over
+            # the return level is interpolated in log T, so the line follows the curve's
+            # shape instead of cutting under it with straight segments
+            tb, hb = TB[ok], hi[ok]
+            margin = hb - np.interp(np.log(tb), np.log(T[okc]), lv[okc])
+            sel = okc & (T >= tb.min()) & (T <= tb.max())
+            line_T = np.unique(np.r_[T[sel], tb])
+            line_lv = np.interp(np.log(line_T), np.log(T[okc]), lv[okc])
+            line_hi = line_lv + np.interp(np.log(line_T), np.log(tb), margin)
+            ax.plot(line_T, line_hi, "--", color="#4292c6", lw=1.2, label=bound_label)
+            ax.plot(tb, hb, "o", color="#4292c6", ms=3.5, label="_bound computed here")
+        elif ok.any():
+            ax.plot(TB[ok], hi[ok], "o", color="#4292c6", ms=3.5, label=bound_label)
     ax.plot(T, lv, "-", color="#08519c", lw=1.5, label="return level")
     if zone_T is not None and np.isfinite(zone_T) and zone_T > 0:
         ok = np.isfinite(lv) & (T > 0)
@@ -703,6 +717,12 @@ def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title
             ax.plot([zone_T], [lvT], "o", color="#c0392b", ms=6,
                     label=f"zone T = {zone_T:.0f}: {lvT:.{U.decimals('depth', units)}f} {unit}")
     ax.set_xscale("log")
+    # plain numbers on the period axis (10, 100, ...; 2 and 5 as well over two decades or
+    # less), not powers of ten typeset as mathematics
+    pos = T[T > 0]
+    few = pos.size > 0 and pos.max() <= 100.0 * pos.min()
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: _period_label(v, (1,))))
+    ax.xaxis.set_minor_formatter(FuncFormatter(lambda v, _pos: _period_label(v, (2, 5) if few else ())))
     ax.set_xlabel("return period T [blocks]")
     ax.set_ylabel(f"deepest loss expected [{unit}]")
     ax.set_title(title or "Return level", fontsize=10.5, loc="left")
@@ -710,6 +730,17 @@ def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title
     ax.legend(fontsize=7.5, loc="upper left")
     ax.tick_params(labelsize=8)
     return fig
+
+
+def _period_label(v, leading) -> str:
+    """Tick label of a return period: the plain number when its leading digit is one of
+    ``leading`` and the rest are zeros (1, 10, 100 for ``(1,)``), else nothing."""
+    if not (np.isfinite(v) and v > 0):
+        return ""
+    e = math.floor(math.log10(v) + 1e-9)
+    m = v / 10.0 ** e
+    d = round(m)
+    return f"{v:g}" if d in leading and abs(m - d) < 1e-6 else ""
 
 
 # ---------------------------------------------------------------------------
