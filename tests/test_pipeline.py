@@ -297,3 +297,32 @@ def test_repaired_floor_reuses_the_rate_statistics_only_while_its_rates_are_unch
     an2 = analyse(pair.new, pair.old, job=Job(diameter=4000.0, target_interval=10.0, under_cause_removed=True))
     assert len(an2.patches) > 0 and len(calls) == 3
     assert an2.repaired_maps["rate_under_repaired"] is not an2.rates.rate_under
+
+
+def test_registration_child_is_stopped_when_the_analysis_fails(monkeypatch):
+    # an error in a stage that runs beside the registration's child: the child is killed
+    # and reaped before the error reaches the caller (no process outlives the run)
+    from scananalyse import forked, zones
+
+    if not hasattr(os, "fork"):
+        pytest.skip("no forked children without fork()")
+    monkeypatch.setattr(forked, "parallel_possible", lambda: True)
+    pids = []
+    real_start = forked.ForkedCall._start
+
+    def recording_start(self):
+        real_start(self)
+        pids.append(self._pid)
+
+    def broken_zone_map(*a, **k):
+        raise RuntimeError("zones failed")
+
+    monkeypatch.setattr(forked.ForkedCall, "_start", recording_start)
+    monkeypatch.setattr(zones, "zone_map", broken_zone_map)
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
+                     shift_mm=(40.0, 20.0))
+    with pytest.raises(RuntimeError, match="zones failed"):
+        analyse(pair.new, pair.old, job=Job(diameter=4000.0))
+    assert len(pids) == 1
+    with pytest.raises(ChildProcessError):
+        os.waitpid(pids[0], os.WNOHANG)  # already reaped
