@@ -345,6 +345,17 @@ def test_return_level_plot_marks_zone_T():
     _drawn(fig)  # tick labels are made at the draw
     labels = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
     assert labels and all("$" not in t for t in labels) and "10" in labels and "100" in labels
+    assert not [t for t in ax.get_xticklabels(minor=True) if t.get_text()]  # three decades: 10, 100 only
+    # over two decades or less (here 2 to 144, the demo floor's), 2 and 5 are labelled too, in
+    # the same size as 10 and 100
+    Ts = np.geomspace(2.0, 144.0, 60)
+    fig = F.return_level_plot(Ts, stats.gumbel_r.ppf(1 - 1 / Ts, loc, scale), None, None, zone_T=48.0)
+    ax = fig.axes[0]
+    _drawn(fig)
+    minor = [t for t in ax.get_xticklabels(minor=True) if t.get_text()]
+    major = [t for t in ax.get_xticklabels() if t.get_text()]
+    assert {"2", "5", "20", "50"} <= {t.get_text() for t in minor} and {"10", "100"} <= {t.get_text() for t in major}
+    assert {t.get_fontsize() for t in minor} == {t.get_fontsize() for t in major}
 
 
 def test_method_comparison_markers_and_flags():

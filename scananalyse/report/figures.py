@@ -728,7 +728,7 @@ def return_level_plot(curve_T, level, lower, upper, *, zone_T, units="mm", title
     ax.set_title(title or "Return level", fontsize=10.5, loc="left")
     ax.grid(True, which="both", color="#e3e3e3", lw=0.6)
     ax.legend(fontsize=7.5, loc="upper left")
-    ax.tick_params(labelsize=8)
+    ax.tick_params(which="both", labelsize=8)  # the minor labels (2, 5, 20, ...) as the major
     return fig
 
 
