@@ -34,7 +34,7 @@ import warnings
 
 from ._libc import trim_free_memory
 
-__all__ = ["ForkedCall", "parallel_possible"]
+__all__ = ["ForkedCall", "close_quietly", "fork_quietly", "parallel_possible", "stop_child"]
 
 
 def _usable_cores() -> int:
@@ -81,6 +81,26 @@ def fork_quietly() -> int:
             if pid != 0 and thaw:
                 gc.unfreeze()
     return pid
+
+
+def stop_child(pid: int) -> None:
+    """Kill a child process (SIGKILL) and reap it; nothing if it is already gone."""
+    try:
+        os.kill(pid, signal.SIGKILL)
+    except ProcessLookupError:
+        pass
+    try:
+        os.waitpid(pid, 0)
+    except ChildProcessError:
+        pass
+
+
+def close_quietly(fd: int) -> None:
+    """Close a file descriptor, ignoring one already closed."""
+    try:
+        os.close(fd)
+    except OSError:
+        pass
 
 
 class ForkedCall:
@@ -168,20 +188,10 @@ class ForkedCall:
     def close(self) -> None:
         """Kill and reap the child if it still runs; free the pipe."""
         if self._pid is not None:
-            try:
-                os.kill(self._pid, signal.SIGKILL)
-            except ProcessLookupError:
-                pass
-            try:
-                os.waitpid(self._pid, 0)
-            except ChildProcessError:
-                pass
+            stop_child(self._pid)
             self._pid = None
         if self._fd is not None:
-            try:
-                os.close(self._fd)
-            except OSError:
-                pass
+            close_quietly(self._fd)
             self._fd = None
 
     def __enter__(self):

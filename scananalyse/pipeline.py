@@ -468,35 +468,30 @@ def _depth_extremes(thickness, zmap, *, nominal, censored, threshold, pitch, job
     """
     scanned = np.isfinite(thickness)
     depth = _depth_map(thickness, nominal, censored)
-    thr = threshold or None
-    out = {}
-    for k, name in enumerate(zmap.names):
-        mask = zmap.labels == k
-        area = float(zmap.areas_mm2[k])
-        if not area > 0 or not mask.any():
-            continue
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", ScanWarning)
-            out[name] = _gumbel_or_gev(depth, mask, pitch_mm=pitch, zone_area_mm2=area,
-                                       block_mm=job.block_mm, threshold=thr, seed=job.seed, valid=scanned)
-    return out
+    return _zone_fits(depth, scanned, zmap, threshold=threshold or None, pitch=pitch, job=job)
 
 
 def _rate_extremes(rate_top, rate_under, zmap, *, pitch, job) -> dict:
     """Block-maxima statistics of the summed rate (top + underside) per zone, over the
-    cells that have both rates."""
+    cells that have both rates (zones without any are left out)."""
     rate_sum = np.add(rate_top, rate_under, dtype=np.float32)
     rate_valid = np.isfinite(rate_sum)  # once for all zones
+    return _zone_fits(rate_sum, rate_valid, zmap, threshold=None, pitch=pitch, job=job, need_valid=True)
+
+
+def _zone_fits(values, valid, zmap, *, threshold, pitch, job, need_valid=False) -> dict:
+    """:func:`_gumbel_or_gev` of ``values`` in each zone with cells (and, with
+    ``need_valid``, with a valid cell), zone name -> result."""
     out = {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
-        if not area > 0 or not mask.any() or not np.logical_and(rate_valid, mask).any():
+        if not area > 0 or not mask.any() or (need_valid and not np.logical_and(valid, mask).any()):
             continue
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
-            out[name] = _gumbel_or_gev(rate_sum, mask, pitch_mm=pitch, zone_area_mm2=area,
-                                       block_mm=job.block_mm, threshold=None, seed=job.seed, valid=rate_valid)
+            out[name] = _gumbel_or_gev(values, mask, pitch_mm=pitch, zone_area_mm2=area,
+                                       block_mm=job.block_mm, threshold=threshold, seed=job.seed, valid=valid)
     return out
 
 

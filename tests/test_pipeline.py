@@ -231,32 +231,47 @@ def test_draft_figure_names_are_unique_whatever_the_zone_names():
     assert stems == ["d007_probability_a_b", "d008_probability_a_b"] and len(set(stems)) == 2
 
 
-def test_forked_children_give_the_serial_result(monkeypatch):
+@pytest.fixture
+def forked_starts(monkeypatch):
+    """Forked children forced on, and a list of (function name, pid) of each one started.
+
+    Forced: in the whole test session an idle thread of Dask's (test_fleet) makes
+    parallel_possible() say no; the figure renderer's tests force their helper the same way.
+    """
+    from scananalyse import forked
+
+    if not hasattr(os, "fork"):
+        pytest.skip("no forked children without fork()")
+    monkeypatch.setattr(forked, "parallel_possible", lambda: True)
+    started = []
+    real_start = forked.ForkedCall._start
+
+    def recording_start(self):
+        name = self._fn.__name__
+        real_start(self)
+        started.append((name, self._pid))
+
+    monkeypatch.setattr(forked.ForkedCall, "_start", recording_start)
+    return started
+
+
+def _pair_4m():
+    return make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
+                     shift_mm=(40.0, 20.0))
+
+
+def test_forked_children_give_the_serial_result(forked_starts, monkeypatch):
     # The registration is computed in a forked child where that is safe, while the stages that
     # need only the newer scan run: every table must be the serial run's.
     from scananalyse import forked
 
-    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
-                     shift_mm=(40.0, 20.0))
+    pair = _pair_4m()
     job = Job(diameter=4000.0, target_interval=10.0)
-    if not hasattr(os, "fork"):
-        pytest.skip("no forked children without fork()")
-    # forced on: in the whole test session an idle thread of Dask's (test_fleet) makes
-    # parallel_possible() say no; the figure renderer's tests force their helper the same way
-    monkeypatch.setattr(forked, "parallel_possible", lambda: True)
-    made = []
-    real_start = forked.ForkedCall._start
-
-    def counting_start(self):
-        made.append(self._fn.__name__)
-        real_start(self)
-
-    monkeypatch.setattr(forked.ForkedCall, "_start", counting_start)
     par = analyse(pair.new, pair.old, job=job)
-    assert made == ["register"]
+    assert [name for name, _ in forked_starts] == ["register"]
     monkeypatch.setattr(forked, "parallel_possible", lambda: False)
     ser = analyse(pair.new, pair.old, job=job)
-    assert len(made) == 1  # none in the serial run
+    assert len(forked_starts) == 1  # none in the serial run
     rp, rs = par.registration.to_dict(), ser.registration.to_dict()
     assert rp.pop("timings_s").keys() == rs.pop("timings_s").keys()  # the times differ, nothing else
     assert rp == rs
@@ -281,8 +296,7 @@ def test_repaired_floor_reuses_the_rate_statistics_only_while_its_rates_are_unch
         return real(*a, **k)
 
     monkeypatch.setattr(pipeline, "_rate_extremes", counted)
-    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
-                     shift_mm=(40.0, 20.0))
+    pair = _pair_4m()
     an = analyse(pair.new, pair.old, job=Job(diameter=4000.0, target_interval=10.0))
     assert len(an.patches) > 0 and len(calls) == 1  # the as-found statistics only
     rep = an.repaired_maps
@@ -299,30 +313,18 @@ def test_repaired_floor_reuses_the_rate_statistics_only_while_its_rates_are_unch
     assert an2.repaired_maps["rate_under_repaired"] is not an2.rates.rate_under
 
 
-def test_registration_child_is_stopped_when_the_analysis_fails(monkeypatch):
+def test_registration_child_is_stopped_when_the_analysis_fails(forked_starts, monkeypatch):
     # an error in a stage that runs beside the registration's child: the child is killed
     # and reaped before the error reaches the caller (no process outlives the run)
-    from scananalyse import forked, zones
-
-    if not hasattr(os, "fork"):
-        pytest.skip("no forked children without fork()")
-    monkeypatch.setattr(forked, "parallel_possible", lambda: True)
-    pids = []
-    real_start = forked.ForkedCall._start
-
-    def recording_start(self):
-        real_start(self)
-        pids.append(self._pid)
+    from scananalyse import zones
 
     def broken_zone_map(*a, **k):
         raise RuntimeError("zones failed")
 
-    monkeypatch.setattr(forked.ForkedCall, "_start", recording_start)
     monkeypatch.setattr(zones, "zone_map", broken_zone_map)
-    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
-                     shift_mm=(40.0, 20.0))
+    pair = _pair_4m()
     with pytest.raises(RuntimeError, match="zones failed"):
         analyse(pair.new, pair.old, job=Job(diameter=4000.0))
-    assert len(pids) == 1
+    assert [name for name, _ in forked_starts] == ["register"]
     with pytest.raises(ChildProcessError):
-        os.waitpid(pids[0], os.WNOHANG)  # already reaped
+        os.waitpid(forked_starts[0][1], os.WNOHANG)  # already reaped

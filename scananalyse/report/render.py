@@ -23,11 +23,10 @@ from __future__ import annotations
 
 import json
 import os
-import signal
 import struct
 from pathlib import Path
 
-from ..forked import fork_quietly, parallel_possible
+from ..forked import close_quietly, fork_quietly, parallel_possible, stop_child
 
 __all__ = ["FigureRenderer", "file_stem", "parallel_possible"]
 
@@ -198,22 +197,12 @@ class FigureRenderer:
     def close(self) -> None:
         """Stop the helper if it still runs (after an error or interrupt) and free the pipes."""
         if self._pid is not None and self._status is None:
-            try:
-                os.kill(self._pid, signal.SIGKILL)
-            except ProcessLookupError:
-                pass
-            try:
-                os.waitpid(self._pid, 0)
-            except ChildProcessError:
-                pass
+            stop_child(self._pid)
             self._pid = None
         for name in ("_queue_r", "_reply_r"):
             fd = getattr(self, name)
             if fd is not None:
-                try:
-                    os.close(fd)
-                except OSError:
-                    pass
+                close_quietly(fd)
                 setattr(self, name, None)
 
     def __enter__(self):
