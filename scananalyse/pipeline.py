@@ -451,14 +451,6 @@ def _depth_map(thickness, nominal, censored) -> np.ndarray:
     return depth
 
 
-def _zone_extremes(thickness, rate_top, rate_under, zmap, *, nominal, censored, threshold, pitch, job):
-    """Block-maxima statistics of loss depth and of the summed rate, per zone
-    (:func:`_depth_extremes`, :func:`_rate_extremes`)."""
-    return (_depth_extremes(thickness, zmap, nominal=nominal, censored=censored, threshold=threshold,
-                            pitch=pitch, job=job),
-            _rate_extremes(rate_top, rate_under, zmap, pitch=pitch, job=job))
-
-
 def _depth_extremes(thickness, zmap, *, nominal, censored, threshold, pitch, job) -> dict:
     """Block-maxima statistics of loss depth per zone.
 
