@@ -328,3 +328,39 @@ def test_registration_child_is_stopped_when_the_analysis_fails(forked_starts, mo
     assert [name for name, _ in forked_starts] == ["register"]
     with pytest.raises(ChildProcessError):
         os.waitpid(forked_starts[0][1], os.WNOHANG)  # already reaped
+
+
+def test_cli_run_as_a_user_gets_it_matches_a_serial_run(small_pair_files, tmp_path):
+    # In this test session an idle Dask thread keeps every in-process run serial (see
+    # forked_starts), so the default paths are run here as a user runs them: the CLI in a
+    # process of its own, where the registration's child and the figure helpers are on.  The
+    # tables must be those of a SCANANALYSE_SERIAL=1 run; the progress lines show which ran.
+    import json
+    import subprocess
+    import sys
+
+    from scananalyse.forked import _usable_cores
+
+    outs, stages = {}, {}
+    for mode in ("default", "serial"):
+        env = dict(os.environ, MPLBACKEND="Agg")
+        env.pop("SCANANALYSE_SERIAL", None)
+        if mode == "serial":
+            env["SCANANALYSE_SERIAL"] = "1"
+        out = tmp_path / mode
+        cmd = [sys.executable, "-m", "scananalyse.cli", "compare", small_pair_files["old_h5"],
+               small_pair_files["new_h5"], "--diameter", "4000", "--out", str(out)]
+        res = subprocess.run(cmd, capture_output=True, text=True, env=env, stdin=subprocess.DEVNULL, timeout=300)
+        assert res.returncode == 0, res.stderr[-2000:]
+        stages[mode] = [line.split(":")[1].strip() for line in res.stderr.splitlines()
+                        if line.startswith("scananalyse: ") and line.rstrip().endswith(" s")]
+        outs[mode] = out
+    for name in ("zones.csv", "zones_repaired.csv", "patches.csv", "indications.csv"):
+        assert (outs["default"] / name).read_bytes() == (outs["serial"] / name).read_bytes(), name
+    reg = [json.loads((outs[m] / "registration.json").read_text()) for m in ("default", "serial")]
+    for r in reg:
+        r.pop("timings_s")
+    assert reg[0] == reg[1]
+    assert stages["serial"].index("registration") < stages["serial"].index("attribution")
+    if sys.platform.startswith("linux") and _usable_cores() >= 2:  # the child ran beside the first stages
+        assert stages["default"].index("attribution") < stages["default"].index("registration")
