@@ -34,7 +34,7 @@ import warnings
 
 from ._libc import trim_free_memory
 
-__all__ = ["ForkedCall", "close_quietly", "fork_quietly", "parallel_possible", "stop_child"]
+__all__ = ["ForkedCall", "close_quietly", "fork_quietly", "parallel_possible", "read_to_end", "stop_child"]
 
 
 def _usable_cores() -> int:
@@ -93,6 +93,16 @@ def stop_child(pid: int) -> None:
         os.waitpid(pid, 0)
     except ChildProcessError:
         pass
+
+
+def read_to_end(fd: int, size: int = 1 << 20) -> bytes:
+    """Everything a pipe gives until its write ends are closed."""
+    chunks = []
+    while True:
+        b = os.read(fd, size)
+        if not b:
+            return b"".join(chunks)
+        chunks.append(b)
 
 
 def close_quietly(fd: int) -> None:
@@ -160,19 +170,14 @@ class ForkedCall:
             return self._value
         value, ok = None, False
         if self._pid is not None:
-            chunks = []
-            while True:
-                b = os.read(self._fd, 1 << 20)
-                if not b:
-                    break
-                chunks.append(b)
+            chunks = read_to_end(self._fd)
             os.close(self._fd)
             self._fd = None
             _, status = os.waitpid(self._pid, 0)
             self._pid = None
             if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
                 try:
-                    value, sent = pickle.loads(b"".join(chunks))
+                    value, sent = pickle.loads(chunks)
                     ok = True
                 except Exception:  # noqa: BLE001 - computed here instead
                     ok = False

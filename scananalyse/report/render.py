@@ -26,7 +26,7 @@ import os
 import struct
 from pathlib import Path
 
-from ..forked import close_quietly, fork_quietly, parallel_possible, stop_child
+from ..forked import close_quietly, fork_quietly, parallel_possible, read_to_end, stop_child
 
 __all__ = ["FigureRenderer", "file_stem", "parallel_possible"]
 
@@ -160,18 +160,13 @@ class FigureRenderer:
             extras.update(self._work(self._queue_r))
             os.close(self._queue_r)
             self._queue_r = None
-            chunks = []
-            while True:
-                b = os.read(self._reply_r, 1 << 16)
-                if not b:
-                    break
-                chunks.append(b)
+            chunks = read_to_end(self._reply_r)
             os.close(self._reply_r)
             self._reply_r = None
             status = self._status if self._status is not None else os.waitpid(self._pid, 0)[1]
             self._pid = None
             if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
-                extras.update({int(k): v for k, v in json.loads(b"".join(chunks)).items()})
+                extras.update({int(k): v for k, v in json.loads(chunks).items()})
         for k, task in enumerate(self.tasks):
             if len(self.specs) + k not in extras:  # serial mode, or the helper did not do it
                 task()
