@@ -188,16 +188,16 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
 
     rss_imports = _maxrss_bytes()  # the interpreter and libraries, before any grid exists
     p = _paths(workdir, size, seed)
-    # The report's figure helpers (forked processes) hold memory of their own: record each
-    # one's private (unshared) memory from /proc when it finishes drawing, through a pipe.
+    # The report's figure helper (a forked process) holds memory of its own: record its
+    # private (unshared) memory from /proc after each job, through a pipe (the largest is kept).
     from scananalyse.report import render as _render
 
     parent = os.getpid()
     priv_r, priv_w = os.pipe()
-    orig_work = _render.FigureRenderer._work
+    orig_do = _render._do
 
-    def work(self, queue_r):
-        out = orig_work(self, queue_r)
+    def do(*a, **k):
+        out = orig_do(*a, **k)
         if os.getpid() != parent:
             kb = 0
             with open("/proc/self/smaps_rollup") as fh:
@@ -207,7 +207,7 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
             os.write(priv_w, f"{kb * 1024}\n".encode())
         return out
 
-    _render.FigureRenderer._work = work
+    _render._do = do
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         t0 = time.perf_counter()
@@ -216,9 +216,9 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
         t_total = time.perf_counter() - t0
     rss = _maxrss_bytes()
     os.close(priv_w)
-    helper_private = []
     with os.fdopen(priv_r) as fh:
-        helper_private = [int(x) for x in fh.read().split()]
+        seen = [int(x) for x in fh.read().split()]
+    helper_private = [max(seen)] if seen else []
     with h5py.File(os.path.join(p["out"], "results.h5"), "r") as f:
         stages = {k: float(v) for k, v in f["timings"].attrs.items()} if "timings" in f else {}
     figs = [n for n in res.files if n.startswith("figures/")]
@@ -350,7 +350,7 @@ def _print_row(r: dict) -> None:
         print(f"    whole job (main process and figure helpers, summed PSS sampled every 50 ms): "
               f"peak {r['job_pss_peak_bytes'] / r['cells_new']:.0f} B/cell")
     if r.get("helper_private_bytes"):
-        print("    figure helpers' private memory (while they ran, on top of the main process): "
+        print("    figure helper's private memory (the largest after a job, on top of the main process): "
               + ", ".join(f"{b / r['cells_new']:.0f} B/cell" for b in r["helper_private_bytes"]))
     st = r.get("stages_s", {})
     npass = r["t_numpy_pass_s"]

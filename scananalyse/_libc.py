@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import sys
 
-__all__ = ["glibc", "trim_free_memory"]
+__all__ = ["default_malloc", "glibc", "trim_free_memory"]
 
 _LIBC: list = []
+#: glibc ``mallopt`` parameters (malloc.h) and their defaults.
+_M_TRIM_THRESHOLD, _M_MMAP_MAX = -1, -4
+_DEFAULT_TRIM_THRESHOLD, _DEFAULT_MMAP_MAX = 128 * 1024, 65536
 
 
 def glibc():
@@ -35,4 +38,16 @@ def trim_free_memory() -> None:
     releases free pages inside the heap); nothing where the C library is not glibc."""
     libc = glibc()
     if libc is not None:
+        libc.malloc_trim(0)
+
+
+def default_malloc() -> None:
+    """glibc's default handling of large blocks (served by ``mmap``, unmapped when freed;
+    the heap's free top trimmed past 128 KiB), e.g. in a helper process forked during a
+    run that set it otherwise, then ``malloc_trim``; nothing where the C library is not
+    glibc."""
+    libc = glibc()
+    if libc is not None:
+        libc.mallopt(_M_MMAP_MAX, _DEFAULT_MMAP_MAX)
+        libc.mallopt(_M_TRIM_THRESHOLD, _DEFAULT_TRIM_THRESHOLD)
         libc.malloc_trim(0)

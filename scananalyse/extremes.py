@@ -419,10 +419,19 @@ class ProjectedMaxima:
         self._thr = threshold
         self._last = None
 
+    #: Tiles projected per pass (bounds the temporaries to a few megabytes).
+    _TILES_PER_PASS = 256
+
     def _tile_max(self, horizon: float) -> np.ndarray:
         if self._last is None or self._last[0] != horizon:
-            mx = ((self._d_t + self._r_t * np.float32(horizon)).max(axis=1).astype(float)
-                  if self._d_t.shape[0] else np.zeros(0))
+            k = self._d_t.shape[0]
+            mx = np.empty(k, dtype=float)
+            h = np.float32(horizon)
+            step = self._TILES_PER_PASS
+            for i in range(0, k, step):
+                part = self._r_t[i:i + step] * h
+                part += self._d_t[i:i + step]
+                mx[i:i + step] = part.max(axis=1)
             self._last = (horizon, mx)
         return self._last[1]
 

@@ -34,7 +34,8 @@ import warnings
 
 from ._libc import trim_free_memory
 
-__all__ = ["ForkedCall", "close_quietly", "fork_quietly", "parallel_possible", "read_to_end", "stop_child"]
+__all__ = ["ForkedCall", "close_quietly", "fork_quietly", "pack", "parallel_possible", "read_to_end", "stop_child",
+           "unpack"]
 
 
 def _usable_cores() -> int:
@@ -81,6 +82,18 @@ def fork_quietly() -> int:
             if pid != 0 and thaw:
                 gc.unfreeze()
     return pid
+
+
+def pack(obj) -> bytes:
+    """``obj`` as bytes for the package's own processes: a forked child's result to its
+    parent, or a figure to draw to the figure helper (report/render.py), always through an
+    anonymous pipe made just before the fork (never a file or a socket)."""
+    return pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
+
+
+def unpack(data: bytes):
+    """The object :func:`pack` made ``data`` from (only ever bytes read from such a pipe)."""
+    return pickle.loads(data)
 
 
 def stop_child(pid: int) -> None:
@@ -152,7 +165,7 @@ class ForkedCall:
                     warnings.simplefilter("always")
                     value = self._fn(*self._args, **self._kwargs)
                 sent = [(str(m.message), m.category) for m in caught]
-                data = pickle.dumps((value, sent), protocol=pickle.HIGHEST_PROTOCOL)
+                data = pack((value, sent))
                 view = memoryview(data)
                 while view:
                     view = view[os.write(w, view):]
@@ -177,7 +190,7 @@ class ForkedCall:
             self._pid = None
             if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
                 try:
-                    value, sent = pickle.loads(chunks)
+                    value, sent = unpack(chunks)
                     ok = True
                 except Exception:  # noqa: BLE001 - computed here instead
                     ok = False

@@ -194,11 +194,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         as-found results after the assessment (:func:`_as_found_specs`), and the patch-plate
         map once the patches are known (:func:`_patches_spec`).  The one figure left (the
         methods after the repairs, see :func:`_repair_specs`) is drawn with the outputs.
-        It is also called now and then with an empty list: a chance to start figures that
-        had to wait.
     on_patches : optional callable, given the proposed patch plates (DataFrame) as soon as
-        they are planned, just before ``on_figures`` gets their map (``_run`` writes
-        ``patches.dxf`` from them with that figure).  Not called for the engineer's own
+        they are planned, just before ``on_figures`` gets their map (``_run`` queues the
+        writing of ``patches.dxf`` from them).  Not called for the engineer's own
         patches, whose checked table is known only at the end.
 
     With two inspections and no ``registration`` given, the registration is computed in a
@@ -544,6 +542,20 @@ LIFE_LEVEL = 0.95
 LIFE_HORIZON_Y = 60.0
 
 
+def _masked_nanmin(values, mask, rows: int = 256):
+    """``np.nanmin(values[mask])`` a band of rows at a time (no zone-sized copy), as a
+    scalar of the values' dtype; NaN if no cell of the mask has a value."""
+    v = np.asarray(values)
+    best = None
+    for r0 in range(0, v.shape[0], rows):
+        sel = v[r0:r0 + rows][mask[r0:r0 + rows]]
+        sel = sel[~np.isnan(sel)]
+        if sel.size:
+            m = sel.min()
+            best = m if best is None or m < best else best
+    return v.dtype.type(np.nan) if best is None else best
+
+
 def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored, threshold, pitch, job,
                    methods: dict | None = None) -> dict:
     """Extreme-value life per zone: when the deepest loss expected over the whole zone reaches
@@ -574,7 +586,7 @@ def _life_extremes(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censo
         mask = zmap.labels == k
         if not (scanned & mask).any() or not float(zmap.areas_mm2[k]) > 0:
             continue
-        allowance = float(nominal - np.nanmin(np.asarray(mrt, dtype=np.float32)[mask]))
+        allowance = float(nominal - _masked_nanmin(np.asarray(mrt, dtype=np.float32), mask))
         in_zone = scanned & mask
         hidden_mm2 = max(0.0, float(zmap.areas_mm2[k]) - np.count_nonzero(in_zone) * pitch * pitch)
         kw = dict(pitch_mm=pitch, zone_area_mm2=max(hidden_mm2, 1.0), block_mm=job.block_mm,
@@ -746,15 +758,11 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
         ext_r_rep = ext_rate  # the patches keep the measured rates: the same statistics
     else:
         ext_r_rep = _rate_extremes(rt_rep, ru_rep, zmap, pitch=new.pitch, job=job)
-    if on_figures is not None:
-        on_figures([])  # figures that found the helpers busy may start now
     life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
                                censored=cens_rep, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                methods=ext_d_rep)
     del cens_rep
-    if on_figures is not None:
-        on_figures([])
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
@@ -815,10 +823,6 @@ FLAGS_EXPLAINED = {
 #: heaviest), used to hand out the costliest first.
 _DRAW_COST = {"return_level": 8, "registration": 7, "patches": 4, "life_local": 4, "thickness": 4,
               "loss": 3, "rate": 3, "probability": 2, "methods": 1}
-
-
-#: Figure helper processes alive at once, at most (each holds 5-20 bytes per cell of its own).
-_MAX_HELPERS = 2
 
 
 def _draft_stems(specs, first: int) -> list:
@@ -894,13 +898,13 @@ def _scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
         mrt_c.append((job.repair_to_mm, "repair-to thickness", ":"))
     common = _map_common(new, zmap, units)
     out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
-                partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
+                F.FloorMapJob(new.thickness, title="Remaining thickness now", label="remaining thickness",
                         kind="thickness", contours=mrt_c, **common)))
     out.append(("maps", "loss_top", "Top-side (product-side) loss.",
-                partial(F.floor_map, layers.loss_top, title="Top-side loss", label="top-side loss", kind="loss",
+                F.FloorMapJob(layers.loss_top, title="Top-side loss", label="top-side loss", kind="loss",
                         **common)))
     out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
-                partial(F.floor_map, layers.loss_under, title="Underside loss", label="underside loss", kind="loss",
+                F.FloorMapJob(layers.loss_under, title="Underside loss", label="underside loss", kind="loss",
                         **common)))
     return out
 
@@ -914,43 +918,24 @@ def _rate_map_specs(new, lr, zmap, job, units, *, single, life, old=None, old_on
     common = _map_common(new, zmap, units)
     if not single:
         out.append(("maps", "rate_short_top", "Short-term top-side rate (change between the inspections ÷ years between them).",
-                    partial(F.floor_map, lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
+                    F.FloorMapJob(lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
                             kind="rate", **common)))
         out.append(("maps", "rate_short_under", "Short-term underside rate.",
-                    partial(F.floor_map, lr.rate_short_under, title="Short-term underside rate", label="underside rate",
+                    F.FloorMapJob(lr.rate_short_under, title="Short-term underside rate", label="underside rate",
                             kind="rate", **common)))
     else:
         out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
-                    partial(F.floor_map, np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
+                    F.FloorMapJob(np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
                             label="rate, both sides", kind="rate", **common)))
     out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",
-                partial(F.floor_map, life, title="Remaining life per cell", label="remaining life", kind="life",
+                F.FloorMapJob(life, title="Remaining life per cell", label="remaining life", kind="life",
                         contours=[(job.target_interval, "target interval", "--")],
                         **common)))
     if old is not None and old_on_new is not None:
-        def registration_figure():
-            from .register import RigidTransform, resample_layer
-
-            depth = _reporting_depth(new)
-
-            def features(t, nominal):
-                # unscanned, or loss (nominal - t) at or above the reporting depth: boolean
-                # comparisons only (NaN compares False), no float copies of the grid
-                with np.errstate(invalid="ignore"):
-                    return ~np.isfinite(t) | (t <= np.float32(nominal - depth))
-
-            feat_new = features(new.thickness, new.meta.nominal)
-            # before alignment: the older scan's features on its own grid, placed by its raw
-            # coordinates (nearest cell; a display aid, so no interpolation is needed)
-            feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new,
-                                         RigidTransform(), fill=True)
-            feat_after = features(old_on_new.thickness, new.meta.nominal)
-            return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent)
-
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
                     "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
-                    registration_figure))
+                    _RegistrationFigure(new, old, old_on_new)))
     return out
 
 
@@ -969,15 +954,10 @@ def _as_found_specs(zone_table, extremes_depth, units) -> list:
                     f"({z.row().get('eva_method', '')}).",
                     partial(F.probability_plot, z.plot, title=f"Block maxima, zone {name}", units=units)))
         if z.fit is not None and z.blocks is not None:
-            def return_figure(z=z, name=name):
-                T_line, lvl, lower, upper, T_bound = _return_curve(z)
-                return F.return_level_plot(T_line, lvl, lower, upper, bound_T=T_bound, zone_T=z.T, units=units,
-                                           bound_label=f"{100 * z.level:.0f} % upper bound",
-                                           title=f"Return level, zone {name}")
-
             out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound "
                         "(profile likelihood at the dots; between them its margin over the return level is "
-                        f"interpolated); the zone's T = {z.T:.0f} blocks is marked.", return_figure))
+                        f"interpolated); the zone's T = {z.T:.0f} blocks is marked.",
+                        partial(_return_level_figure, z, name, units)))
     return out
 
 
@@ -997,10 +977,58 @@ def _patches_spec(new, patches, zmap, units):
 
     return ("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
             "MRT before the target interval at their own rates lie inside them).",
-            partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
+            F.FloorMapJob(new.thickness, title="Repairs: patch plates on the thickness map",
                     label="remaining thickness", kind="thickness",
                     patches=patches if len(patches) else None, indications=None,
                     **_map_common(new, zmap, units)))
+
+
+class _RegistrationFigure:
+    """The registration overlay (the scans' features before and after alignment), drawn
+    from the full grids by a call, or by the figure helper from its reduced masks
+    (:meth:`for_helper`, computed here)."""
+
+    def __init__(self, new, old, old_on_new):
+        self.new, self.old, self.old_on_new = new, old, old_on_new
+
+    def _masks(self):
+        from .register import RigidTransform, resample_layer
+
+        new, old = self.new, self.old
+        depth = _reporting_depth(new)
+
+        def features(t, nominal):
+            # unscanned, or loss (nominal - t) at or above the reporting depth: boolean
+            # comparisons only (NaN compares False), no float copies of the grid
+            with np.errstate(invalid="ignore"):
+                return ~np.isfinite(t) | (t <= np.float32(nominal - depth))
+
+        feat_new = features(new.thickness, new.meta.nominal)
+        # before alignment: the older scan's features on its own grid, placed by its raw
+        # coordinates (nearest cell; a display aid, so no interpolation is needed)
+        feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new, RigidTransform(), fill=True)
+        feat_after = features(self.old_on_new.thickness, new.meta.nominal)
+        return feat_new, feat_before, feat_after
+
+    def __call__(self):
+        from .report import figures as F
+
+        return F.registration_overlay(*self._masks(), extent=self.new.extent)
+
+    def for_helper(self):
+        from .report import figures as F
+
+        masks, f, shape = F.reduce_feature_masks(*self._masks())
+        return partial(F.registration_overlay, *masks, extent=self.new.extent, reduced=(f, shape))
+
+
+def _return_level_figure(z, name, units):
+    """The return-level plot of one zone's depth statistics ``z``."""
+    from .report import figures as F
+
+    T_line, lvl, lower, upper, T_bound = _return_curve(z)
+    return F.return_level_plot(T_line, lvl, lower, upper, bound_T=T_bound, zone_T=z.T, units=units,
+                               bound_label=f"{100 * z.level:.0f} % upper bound", title=f"Return level, zone {name}")
 
 
 def _return_curve(z):
@@ -1145,20 +1173,22 @@ def _dxf_task(patches, folder):
     return task
 
 
-def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, early=None) -> list:
+def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, queue=None, early=None) -> list:
     """Write every output file of an analysis into ``folder`` (which must exist).
 
-    ``early`` lists :class:`~scananalyse.report.render.FigureRenderer` objects already
-    drawing some of the report's figures into ``folder/figures`` (``analyse``'s
-    ``on_figures``), in their order of creation, each file named by :func:`_draft_stems`;
-    the other figures are drawn here, and all are then numbered in the report's order.
+    ``queue`` is the :class:`~scananalyse.report.render.FigureQueue` that draws the figures
+    (default: one made here, its helper forked now where that is safe); ``early`` maps the
+    slugs of the figures already handed to it (``analyse``'s ``on_figures``) to their job
+    numbers, each file named by :func:`_draft_stems`.  The other figures are added here, the
+    data files written while the helper draws, and all figures then numbered in the
+    report's order.
     """
     from contextlib import ExitStack
     from . import repair
     from .indications import write_indications_csv
     from .outputs import write_json, write_results_h5
     from .report.html import write_report
-    from .report.render import FigureRenderer, file_stem
+    from .report.render import FigureQueue, file_stem
 
     prog = progress or Progress(quiet=True)
     folder = Path(folder)
@@ -1166,29 +1196,21 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
     files = []
     figdir = folder / "figures"
     figdir.mkdir(exist_ok=True)
-    # the figures not drawn yet are drawn by a helper process (where that is safe) while
-    # the data files are written here; then both draw what is left (report/render.py)
     specs = _figure_specs(an, units)
-    early = list(early or [])
-    taken = {sp[1] for r in early for sp in r.specs}
-    rest = [sp for sp in specs if sp[1] not in taken]
-    # the patch drawing (DXF) is written like a figure, by the helper where there is one
-    # (unless a helper already has it: analyse's on_patches)
-    dxf_early = any(getattr(t, "scananalyse_file", None) == "patches.dxf" for r in early for t in r.tasks)
-    dxf = [] if dxf_early else [_dxf_task(an.patches, folder)]
-    first = sum(len(r.specs) for r in early)
-
-    def helpers_busy():  # at most _MAX_HELPERS at a time (each holds memory of its own)
-        return sum(r.helper_running() for r in early) >= _MAX_HELPERS
-
-    def rest_renderer(parallel):
-        return FigureRenderer(rest, figdir, order=_costliest_first(rest), stems=_draft_stems(rest, first),
-                              parallel=parallel, tasks=dxf)
-
+    early = dict(early or {})
     with ExitStack() as stack:
-        # the rest go to a helper now if one may be forked, else after the data files (when
-        # the earlier helpers have had that long to finish), else they are drawn here
-        renderer = None if helpers_busy() else stack.enter_context(rest_renderer(None))
+        if queue is None:
+            queue = stack.enter_context(FigureQueue())
+        jobs = dict(early)  # slug -> job number
+        rest = [sp for sp in specs if sp[1] not in jobs]
+        rest = [rest[i] for i in _costliest_first(rest)]
+        for sp, stem in zip(rest, _draft_stems(rest, len(queue.jobs))):
+            jobs[sp[1]] = queue.add(figdir / f"{stem}.png", sp[3])
+        # the patch drawing (DXF) is written like a figure, by the helper where there is
+        # one (unless it was queued already: analyse's on_patches)
+        if not any(getattr(fn, "scananalyse_file", None) == "patches.dxf" for kind, _, fn in queue.jobs
+                   if kind == "task"):
+            queue.add_task(_dxf_task(an.patches, folder))
         with prog.stage("outputs"):
             an.zone_table.to_csv(folder / "zones.csv", index=False)
             an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
@@ -1214,22 +1236,16 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, ear
             write_results_h5(folder / "results.h5", maps, x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
                              attrs=attrs, timings=an.timings)
             files.append("results.h5")
-        if renderer is None:
-            renderer = stack.enter_context(rest_renderer(False if helpers_busy() else None))
         with prog.stage("report"):
-            drawn = {}  # slug -> (caption, png bytes, file)
-            for r in early + [renderer]:
-                for sp, (_, cap, png, name) in zip(r.specs, r.finish()):
-                    drawn[sp[1]] = (cap, png, folder / name)
+            captions = queue.finish()
             figs = []
-            for n, (sec, slug, _, _) in enumerate(specs, start=1):
-                cap, png, path = drawn.pop(slug)
+            for n, (sec, slug, cap, _) in enumerate(specs, start=1):
+                job = jobs[slug]
+                path = queue.jobs[job][1]
                 final = figdir / f"{n:02d}_{file_stem(slug)}.png"
                 os.replace(path, final)  # numbered in the report's order
-                figs.append((sec, cap, png))
+                figs.append((sec, f"{cap} {captions[job]}".strip(), final.read_bytes()))
                 files.append(f"figures/{final.name}")
-            for _, _, path in drawn.values():  # drawn early but not in the report (never expected)
-                path.unlink(missing_ok=True)
             data = _report_data(an, units, reg_dict, figs)
             write_report(data, folder / "report.html")
             files.append("report.html")
@@ -1285,9 +1301,7 @@ def _small_pages():
         setter(previous)
 
 
-#: glibc ``mallopt`` parameters (malloc.h) and their defaults.
-_M_TRIM_THRESHOLD, _M_MMAP_MAX = -1, -4
-_DEFAULT_TRIM_THRESHOLD, _DEFAULT_MMAP_MAX = 128 * 1024, 65536
+from ._libc import _DEFAULT_MMAP_MAX, _DEFAULT_TRIM_THRESHOLD, _M_MMAP_MAX, _M_TRIM_THRESHOLD  # noqa: E402
 #: Free memory the heap may keep at its top during a run before giving it back. [bytes]
 _RUN_TRIM_THRESHOLD = 1 << 30
 
@@ -1330,49 +1344,45 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
 
 
 def _run_job(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
-    from contextlib import ExitStack
-
+    from ._libc import trim_free_memory
     from .outputs import output_folder
-    from .report.render import FigureRenderer
+    from .report.render import FigureQueue
 
     _import_stages()
     _check_out_dir(out_dir, force)
     prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
-    with prog.stage("load"):
-        new = _load(new_path)
-        old = None if single else _load(old_path)
-        inputs = read_job_inputs(job, new)
-    with output_folder(out_dir, force=force) as tmp, ExitStack() as helpers:
-        (tmp / "figures").mkdir()
-        early = []
-        waiting = []
-        waiting_tasks = []
+    # the figure helper is forked now, while this process holds only the libraries
+    # (report/render.py): figures are handed to it as their data become known
+    with FigureQueue() as queue:
+        with prog.stage("load"):
+            new = _load(new_path)
+            old = None if single else _load(old_path)
+            inputs = read_job_inputs(job, new)
+        with output_folder(out_dir, force=force) as tmp:
+            (tmp / "figures").mkdir()
+            early = {}  # slug -> job number
 
-        def draw_early(specs):
-            # figures whose data are known are drawn (by a helper process where possible)
-            # while the analysis goes on; each renderer is stopped on any error or interrupt.
-            # At most _MAX_HELPERS at a time (each holds memory of its own): while they
-            # still draw, later figures wait for the next call (the analysis also calls with
-            # no new figure now and then, to start those waiting), or for the outputs.
-            waiting.extend(specs)
-            if not waiting or sum(r.helper_running() for r in early) >= _MAX_HELPERS:
-                return
-            batch, tasks = waiting[:], waiting_tasks[:]
-            waiting.clear()
-            waiting_tasks.clear()
-            first = sum(len(r.specs) for r in early)
-            early.append(helpers.enter_context(FigureRenderer(batch, tmp / "figures", order=_costliest_first(batch),
-                                                              stems=_draft_stems(batch, first), tasks=tasks,
-                                                              tasks_first=False)))
+            def draw_early(specs):
+                # figures whose data are known go to the queue (costliest first) while the
+                # analysis goes on
+                specs = [specs[i] for i in _costliest_first(specs)]
+                for sp, stem in zip(specs, _draft_stems(specs, len(queue.jobs))):
+                    early[sp[1]] = queue.add(tmp / "figures" / f"{stem}.png", sp[3])
 
-        def patches_known(patches):
-            # the patch drawing goes with the next figures drawn (the patch-plate map's),
-            # after them: it is needed only at the end
-            waiting_tasks.append(_dxf_task(patches, tmp))
+            def patches_known(patches):
+                queue.add_task(_dxf_task(patches, tmp))
 
-        an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early,
-                     on_patches=patches_known)
-        files = write_outputs(an, tmp, progress=prog, early=early)
+            try:
+                an = analyse(new, old, job=job, progress=prog, inputs=inputs, on_figures=draw_early,
+                             on_patches=patches_known)
+                # the analysis's temporaries are gone: their memory (kept for reuse during
+                # the analysis, _reuse_freed_memory) goes back to the system before the
+                # outputs, while the figure helper still draws
+                trim_free_memory()
+                files = write_outputs(an, tmp, progress=prog, queue=queue, early=early)
+            except BaseException:
+                queue.close()  # the helper stops before the unfinished folder is removed
+                raise
     prog.finish()
     reg = an.registration.to_dict() if an.registration is not None else None
     return CompareResult(out_dir=str(out_dir), zones=an.zone_table, zones_repaired=an.zones_repaired,

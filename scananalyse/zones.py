@@ -312,11 +312,11 @@ class ZoneMap:
 
     def count_gathered(self, mask_gathered: np.ndarray) -> np.ndarray:
         """:meth:`count` of a boolean mask gathered by :meth:`gather`. [1]"""
-        out = np.zeros(len(self.names), dtype=np.int64)
-        starts, has = self._starts()
-        if has.any():
-            out[has] = np.add.reduceat(np.asarray(mask_gathered, dtype=bool), starts[has], dtype=np.int64)
-        return out
+        m = np.asarray(mask_gathered, dtype=bool)
+        starts, _ = self._starts()
+        # one count per zone over its slice (add.reduceat with an int64 result would first
+        # make an int64 copy of the whole mask: 8 bytes per zoned cell)
+        return np.array([np.count_nonzero(m[s:s + g.size]) for s, g in zip(starts, self.groups())], dtype=np.int64)
 
     def count(self, mask: np.ndarray) -> np.ndarray:
         """Number of True cells of ``mask`` per zone. [1]"""

@@ -78,6 +78,27 @@ def test_decimate_matches_block_reduce(how, func, cval):
     np.testing.assert_array_equal(out, ref.astype(np.float32))
 
 
+@pytest.mark.parametrize("how,op", [("min", np.fmin), ("max", np.fmax)])
+def test_decimate_with_gaps_equals_numpy_reduceat(how, op):
+    # numpy's own NaN-skipping block reduction (fmin/fmax.reduceat along both axes) is the
+    # reference, on a grid that is not a whole number of blocks, with gaps, float64 input
+    rng = np.random.default_rng(3)
+    a = rng.normal(5, 1, size=(301, 449))
+    a[rng.random(a.shape) < 0.3] = np.nan
+    a[:, 100:140] = np.nan
+    out, f = F.decimate(a, how=how, max_pixels=5000)
+    assert f > 1
+    b = a.astype(np.float32)
+    ref = op.reduceat(op.reduceat(b, np.arange(0, 301, f), axis=0), np.arange(0, 449, f), axis=1)
+    np.testing.assert_array_equal(out, ref)
+    assert out.dtype == np.float32
+    # the "any" reduction of the registration overlay's masks, against scikit-image
+    m = np.isnan(a)
+    (nb, _, _), g, shape = F.reduce_feature_masks(m, m, m, max_pixels=5000)
+    assert shape == m.shape
+    np.testing.assert_array_equal(nb, block_reduce(m, (g, g), func=np.any, cval=False))
+
+
 def test_decimate_nan_handling():
     a = np.full((8, 8), np.nan, dtype=np.float32)
     a[0, 0] = 3.0

@@ -1,38 +1,57 @@
-"""Drawing the report's figures on every core.
+"""Drawing the report's figures on both cores.
 
-A report has a dozen figures; drawing them (block reduction, colour mapping, layout,
-PNG encoding) is most of the time spent on the outputs, and matplotlib draws on one core.
-:class:`FigureRenderer` forks one helper process when that is safe: both processes take
-the next figure from a shared queue (a pipe of figure numbers: each read of four bytes
-takes one) and write it as a PNG, while the main process first writes the data files.
-The helper shares the analysis through the fork (nothing is copied or pickled) and
-reports the captions of its figures through a second pipe.
+A report has a dozen figures; drawing them (colour mapping, layout, PNG encoding) is
+several seconds of work on one core, most of it while the analysis still runs.
+:class:`FigureQueue` forks one helper process at the start of a job, before the scans
+are loaded, while the process holds only the imported libraries.  A helper forked later,
+from the process holding the analysis, would keep alive every page the analysis frees
+or rewrites after the fork (measured: 5 to 20 bytes per cell for each such helper on a
+30 m floor); this one shares nothing of the analysis, so it keeps nothing of it.
 
-It falls back to drawing everything in the main process when forking is not safe or
-not useful: another Python thread is running (e.g. inside a Dask worker), the process
-may use only one core, the platform is not Linux, there is nothing to draw, or
-``SCANANALYSE_SERIAL=1`` is set.  A single figure is worth a helper too: the main process
-goes on with the analysis while it is drawn.  If the helper fails or is killed, the
-figures it did not deliver are drawn by the main process, so a failure there costs time,
-never a figure.  Interrupts: the helper exits on its own interrupt without writing anything
-more; :meth:`FigureRenderer.close` (always called by the main process) kills and reaps
-it.
+Figures are handed to the queue as soon as their data are known (:meth:`FigureQueue.add`).
+The helper gets each one in its small form: a figure object's ``for_helper()`` (a floor
+map's grid already block-reduced for display, :func:`~scananalyse.report.figures.prepare_map`;
+a few megabytes whatever the floor's size), packed (``forked.pack``) through an anonymous
+pipe made before the fork.  Both processes take work from a shared queue, a pipe of job
+numbers (each read of four bytes takes one job), so whichever is free draws the next
+figure and neither is left with a long tail; the main process joins in at
+:meth:`FigureQueue.finish`, after writing the data files.  A figure whose small form is
+missing, too big or not picklable is drawn by the main process.
+
+It falls back to drawing everything in the main process, at :meth:`FigureQueue.finish`,
+when forking is not safe or not useful (``forked.parallel_possible``: another Python
+thread is running, e.g. inside a Dask worker; one usable core; not Linux;
+``SCANANALYSE_SERIAL=1``).  If the helper fails or is killed, every job it did not report
+done is done by the main process, so a failure there costs time, never a figure, and an
+error in a figure reaches the caller as it would without the helper.  Interrupts: the
+helper exits on its own interrupt without writing anything more; :meth:`FigureQueue.close`
+(always called) kills and reaps it.
 """
 
 from __future__ import annotations
 
+import gc
 import json
 import os
+import select
 import struct
+import threading
 from pathlib import Path
 
-from ..forked import close_quietly, fork_quietly, parallel_possible, read_to_end, stop_child
+from .._libc import default_malloc, trim_free_memory
+from ..forked import close_quietly, fork_quietly, pack, parallel_possible, read_to_end, stop_child, unpack
 
-__all__ = ["FigureRenderer", "file_stem", "parallel_possible"]
+__all__ = ["FigureQueue", "file_stem", "parallel_possible"]
 
 _TOKEN = struct.Struct("<I")
-#: Niceness added in a helper process (it yields the CPU to the main process under contention).
+_HEADER = struct.Struct("<IQ")  # job number, length of its packed form
+#: Niceness added in the helper process (it yields the CPU to the main process under contention).
 _HELPER_NICENESS = 10
+#: Largest packed job sent to the helper; a bigger one is drawn by the main process. [bytes]
+MAX_PACKED = 32 << 20
+#: Pipe buffer asked for the data pipe (Linux F_SETPIPE_SZ; the default is 64 KiB), so
+#: that handing a reduced map over costs the main process one write. [bytes]
+_DATA_PIPE = 1 << 20
 
 
 def file_stem(slug: str) -> str:
@@ -40,147 +59,263 @@ def file_stem(slug: str) -> str:
     return "".join(c if c.isalnum() else "_" for c in slug)[:60]
 
 
-class FigureRenderer:
-    """Draw ``specs`` into ``figdir`` as PNG files, in two processes when possible.
+def _read_exact(fd: int, n: int) -> bytes | None:
+    """``n`` bytes from a pipe, or None if it ends first."""
+    parts, got = [], 0
+    while got < n:
+        b = os.read(fd, min(n - got, _DATA_PIPE))
+        if not b:
+            return None
+        parts.append(b)
+        got += len(b)
+    return b"".join(parts)
+
+
+def _write_all(fd: int, data) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+def _small_form(job):
+    """What the helper is sent for a job: ``(kind, path, callable)`` with the callable's
+    ``for_helper()`` form where it has one."""
+    kind, path, fn = job
+    small = getattr(fn, "for_helper", None)
+    return kind, path, (small() if small is not None else fn)
+
+
+def _do(kind: str, path, fn, dpi: int) -> str:
+    """Draw a figure into ``path`` (PNG) and return its caption, or run a task ("")."""
+    if kind == "task":
+        fn()
+        return ""
+    from . import figures as F
+
+    fig = fn()
+    F.save_png(fig, path, dpi=dpi)
+    return getattr(fig, "scananalyse_caption", "")
+
+
+class FigureQueue:
+    """Figures (and other output files) drawn by a helper process and by this one.
 
     Parameters
     ----------
-    specs : list of ``(section, slug, caption, build)``; ``build()`` returns a
-        matplotlib Figure. [-]
-    figdir : existing folder for the PNG files. [-]
     dpi : resolution of the PNG files. [dots per inch]
-    parallel : None (decide with :func:`parallel_possible`), True or False. [-]
-    first : number of the first figure (file names start with the number). [-]
-    order : the order in which the figures are taken (a permutation of their indices;
-        default the specs' order); put the costliest first. [-]
-    stems : file names (without ``.png``) of the figures, one per spec, all different;
-        default ``NN_slug`` numbered from ``first``. [-]
-    tasks : other output files to write the same way: callables without arguments, each
-        writing its own file (atomically: a task killed half-way must leave nothing). [-]
-    tasks_first : queue the tasks before the figures (default) or after them. [-]
+    parallel : None (fork the helper if :func:`parallel_possible`), True or False. [-]
 
-    The helper (if any) starts drawing at construction; :meth:`finish` makes the
-    calling process draw (and write) the rest and returns the figures in ``specs`` order.
+    Create it early (the helper forks at construction), :meth:`add` figures and
+    :meth:`add_task` tasks as they become known, then :meth:`finish`; use as a context
+    manager so that :meth:`close` always runs.
     """
 
-    def __init__(self, specs, figdir, *, dpi: int = 130, parallel: bool | None = None, first: int = 1,
-                 order=None, stems=None, tasks=(), tasks_first: bool = True):
-        self.specs = list(specs)
-        self.tasks = list(tasks)
-        # the queue's order: the costliest figures first, so that neither process is left
-        # drawing a long one alone at the end (the files keep the specs' numbering)
-        self.order = list(range(len(self.specs))) if order is None else [int(i) for i in order]
-        if sorted(self.order) != list(range(len(self.specs))):
-            raise ValueError("order must be a permutation of the figure indices")
-        # tasks have the numbers after the figures'
-        numbered = [len(self.specs) + k for k in range(len(self.tasks))]
-        self._queue = numbered + self.order if tasks_first else self.order + numbered
-        self.figdir = Path(figdir)
+    def __init__(self, *, dpi: int = 130, parallel: bool | None = None):
         self.dpi = dpi
-        if stems is None:
-            self.stems = [f"{i:02d}_" + file_stem(slug) for i, (_, slug, _, _) in enumerate(self.specs, start=first)]
-        else:
-            self.stems = [str(x) for x in stems]
-            if len(self.stems) != len(self.specs) or len(set(self.stems)) != len(self.stems):
-                raise ValueError("stems must give one different file name per figure")
+        self._jobs: list = []  # (kind, path, callable)
+        self._local: list = []  # job numbers only this process can do
+        self._done: dict = {}  # job number -> caption, as reported by the helper
         self._pid = None
-        self._status = None  # the helper's wait status once it has been reaped
-        self._queue_r = self._reply_r = None
+        self._status = None
+        self._tok_r = self._tok_w = self._data_w = self._reply_r = None
+        self._reply_buf = b""
         self.parallel = False
+        self.finished = False
         want = parallel_possible() if parallel is None else bool(parallel)
-        if want and self._queue and hasattr(os, "fork"):
+        if want and hasattr(os, "fork"):
             self._start_helper()
 
     # -- helper process ------------------------------------------------------------
     def _start_helper(self) -> None:
-        queue_r, queue_w = os.pipe()
+        tok_r, tok_w = os.pipe()
+        data_r, data_w = os.pipe()
         reply_r, reply_w = os.pipe()
-        # every figure number goes into the queue before the fork (a few bytes per figure,
-        # far below a pipe's buffer), then the write end is closed: an empty queue is EOF
-        os.write(queue_w, b"".join(_TOKEN.pack(i) for i in self._queue))
-        os.close(queue_w)
-        pid = fork_quietly()  # objects frozen and free memory handed back (forked.py)
+        try:
+            import fcntl
+
+            fcntl.fcntl(data_w, getattr(fcntl, "F_SETPIPE_SZ", 1031), _DATA_PIPE)
+        except (ImportError, OSError):
+            pass  # the default buffer: slower hand-over, same result
+        pid = fork_quietly()
         if pid == 0:  # the helper
             code = 1
             try:
-                os.close(reply_r)
+                for fd in (tok_w, data_w, reply_r):
+                    os.close(fd)
                 try:
                     # below the main process, whose analysis is the critical path: the
                     # helper takes the second core and what the main process leaves idle
                     os.nice(_HELPER_NICENESS)
                 except OSError:
                     pass
-                done = self._work(queue_r)
-                data = json.dumps(done).encode()
-                view = memoryview(data)
-                while view:
-                    view = view[os.write(reply_w, view):]
+                # the helper's temporaries (a figure's) are freed back to the system, not
+                # kept for reuse as the analysis's grids are (pipeline._reuse_freed_memory)
+                default_malloc()
+                self._serve(tok_r, data_r, reply_w)
                 code = 0
-            except BaseException:  # noqa: BLE001 - the main process draws what is missing
+            except BaseException:  # noqa: BLE001 - the main process does what is missing
                 code = 1
             finally:
                 os._exit(code)
+        os.close(data_r)
         os.close(reply_w)
-        self._pid = pid
-        self._queue_r = queue_r
-        self._reply_r = reply_r
+        self._pid, self._tok_r, self._tok_w, self._data_w, self._reply_r = pid, tok_r, tok_w, data_w, reply_r
         self.parallel = True
 
-    def _work(self, queue_r) -> dict:
-        """Take numbers from the queue until it is empty; returns number -> caption ("" for
-        a task)."""
-        from . import figures as F
+    def _serve(self, tok_r: int, data_r: int, reply_w: int) -> None:
+        """The helper's loop: take job numbers from the queue until it is empty and do each
+        job from its packed form (received by a reader thread, so that the main process's
+        writes never wait for a figure to finish), reporting each one done."""
+        got: dict = {}
+        cond = threading.Condition()
+        ended = []
 
-        done = {}
+        def receive():
+            try:
+                while True:
+                    head = _read_exact(data_r, _HEADER.size)
+                    if head is None:
+                        return
+                    n, size = _HEADER.unpack(head)
+                    body = _read_exact(data_r, size)
+                    if body is None:
+                        return
+                    with cond:
+                        got[n] = body
+                        cond.notify_all()
+            finally:
+                with cond:
+                    ended.append(True)
+                    cond.notify_all()
+
+        threading.Thread(target=receive, daemon=True).start()
         while True:
-            raw = os.read(queue_r, _TOKEN.size)
+            raw = os.read(tok_r, _TOKEN.size)
             if len(raw) < _TOKEN.size:
-                return done
-            (i,) = _TOKEN.unpack(raw)
-            if i >= len(self.specs):
-                self.tasks[i - len(self.specs)]()
-                done[i] = ""
-            else:
-                done[i] = self._draw(i, F)
+                return
+            (n,) = _TOKEN.unpack(raw)
+            with cond:
+                while n not in got and not ended:
+                    cond.wait()
+                body = got.pop(n, None)
+            if body is None:  # the data pipe ended first: the main process does this one
+                return
+            kind, path, fn = unpack(body)
+            del body
+            caption = _do(kind, path, fn, self.dpi)
+            del fn
+            # a figure is a web of reference cycles: collect it now (the objects shared with
+            # the main process are frozen, so this visits the helper's own only), then give
+            # its memory back
+            gc.collect()
+            trim_free_memory()
+            _write_all(reply_w, (json.dumps({"job": n, "caption": caption}) + "\n").encode())
 
-    def _draw(self, i: int, F) -> str:
-        _, _, _, build = self.specs[i]
-        fig = build()
-        F.save_png(fig, self.figdir / f"{self.stems[i]}.png", dpi=self.dpi)
-        return getattr(fig, "scananalyse_caption", "")
+    def _collect(self, block: bool) -> None:
+        """Read the helper's reports (``block``: until it has closed its end)."""
+        if self._reply_r is None:
+            return
+        if block:
+            self._reply_buf += read_to_end(self._reply_r)
+        else:
+            while select.select([self._reply_r], [], [], 0)[0]:
+                b = os.read(self._reply_r, 1 << 16)
+                if not b:
+                    break
+                self._reply_buf += b
+        *lines, self._reply_buf = self._reply_buf.split(b"\n")
+        for line in lines:
+            d = json.loads(line)
+            self._done[int(d["job"])] = d["caption"]
+
+    def _lose_helper(self) -> None:
+        """The helper is gone (or its pipes are): everything left is done here."""
+        if self._pid is not None:
+            stop_child(self._pid)
+            self._pid = None
+        self.parallel = False
 
     # -- main process --------------------------------------------------------------
-    def finish(self) -> list:
-        """Draw the remaining figures here; return ``[(section, caption, png_bytes, file)]``
-        in ``specs`` order (``file`` relative to the output folder)."""
-        from . import figures as F
+    @property
+    def jobs(self) -> tuple:
+        """The jobs queued so far, ``(kind, path, callable)`` ("figure" or "task"; the path
+        of a task is None), in the order of their numbers."""
+        return tuple(self._jobs)
 
-        extras: dict = {}
+    def add(self, path, build) -> int:
+        """Queue a figure: ``build()`` returns a matplotlib Figure, saved as the PNG file
+        ``path``; returns the job's number."""
+        return self._add(("figure", Path(path), build))
+
+    def add_task(self, task) -> int:
+        """Queue another output file: ``task()`` writes its own file (atomically: a task
+        killed half-way must leave nothing); returns the job's number."""
+        return self._add(("task", None, task))
+
+    def _add(self, job) -> int:
+        if self.finished:
+            raise RuntimeError("the figure queue is finished")
+        n = len(self._jobs)
+        self._jobs.append(job)
+        body = None
         if self.parallel:
-            extras.update(self._work(self._queue_r))
-            os.close(self._queue_r)
-            self._queue_r = None
-            chunks = read_to_end(self._reply_r)
-            os.close(self._reply_r)
-            self._reply_r = None
+            try:
+                body = pack(_small_form(job))
+            except Exception:  # noqa: BLE001 - not picklable: drawn here
+                body = None
+            if body is not None and len(body) > MAX_PACKED:
+                body = None
+        if body is None:
+            self._local.append(n)
+            return n
+        try:
+            _write_all(self._data_w, _HEADER.pack(n, len(body)))
+            _write_all(self._data_w, body)
+            os.write(self._tok_w, _TOKEN.pack(n))
+        except OSError:  # the helper is gone: this job and what it left are done here
+            self._local.append(n)
+            self._lose_helper()
+        self._collect(block=False)
+        return n
+
+    def finish(self) -> dict:
+        """Do the jobs left (this process first does those only it can do, then takes
+        from the shared queue until it is empty), wait for the helper, redo whatever it
+        did not report done; returns job number -> caption ("" for a task)."""
+        if self.finished:
+            raise RuntimeError("finish() was called already")
+        self.finished = True
+        out = {}
+        tok_r = self._tok_r
+        if self._tok_w is not None:  # no more work: the queue ends when it is empty
+            os.close(self._tok_w)
+            self._tok_w = None
+        if self._data_w is not None:
+            os.close(self._data_w)
+            self._data_w = None
+        for n in self._local:
+            out[n] = _do(*self._jobs[n], self.dpi)
+        if tok_r is not None:
+            while True:
+                raw = os.read(tok_r, _TOKEN.size)
+                if len(raw) < _TOKEN.size:
+                    break
+                (n,) = _TOKEN.unpack(raw)
+                out[n] = _do(*self._jobs[n], self.dpi)
+        if self._pid is not None:
+            self._collect(block=True)
             status = self._status if self._status is not None else os.waitpid(self._pid, 0)[1]
             self._pid = None
-            if os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and chunks:
-                extras.update({int(k): v for k, v in json.loads(chunks).items()})
-        for k, task in enumerate(self.tasks):
-            if len(self.specs) + k not in extras:  # serial mode, or the helper did not do it
-                task()
-        out = []
-        for i, (sec, _, cap, _) in enumerate(self.specs):
-            if i not in extras:  # serial mode, or the helper did not deliver it
-                extras[i] = self._draw(i, F)
-            path = self.figdir / f"{self.stems[i]}.png"
-            out.append((sec, f"{cap} {extras[i]}".strip(), path.read_bytes(), f"figures/{path.name}"))
+            self._status = status
+        for n, cap in self._done.items():
+            out.setdefault(n, cap)
+        for n in range(len(self._jobs)):
+            if n not in out:  # the helper took it and did not report it done
+                out[n] = _do(*self._jobs[n], self.dpi)
         return out
 
     def helper_running(self) -> bool:
-        """True while this renderer's helper process has not finished (it is reaped here
-        when it has; :meth:`finish` still collects what it drew)."""
+        """True while the helper process has not exited (it is reaped here when it has)."""
         if self._pid is None or self._status is not None:
             return False
         pid, status = os.waitpid(self._pid, os.WNOHANG)
@@ -193,8 +328,8 @@ class FigureRenderer:
         """Stop the helper if it still runs (after an error or interrupt) and free the pipes."""
         if self._pid is not None and self._status is None:
             stop_child(self._pid)
-            self._pid = None
-        for name in ("_queue_r", "_reply_r"):
+        self._pid = None
+        for name in ("_tok_r", "_tok_w", "_data_w", "_reply_r"):
             fd = getattr(self, name)
             if fd is not None:
                 close_quietly(fd)
