@@ -290,10 +290,25 @@ def local_life_map(thickness, rate_top, rate_under, mrt) -> np.ndarray:
     Both faces thin the same plate, so at one cell the two losses add; unlike the
     code formula, the rates are those measured at the cell itself (domain notes §5).
     """
-    t = np.asarray(thickness, dtype=np.float32)
-    s = (np.maximum(np.asarray(rate_top, dtype=np.float32), np.float32(0))
-         + np.maximum(np.asarray(rate_under, dtype=np.float32), np.float32(0)))
-    margin = t - np.asarray(mrt, dtype=np.float32)
+    t, rt, ru, m = np.broadcast_arrays(*(np.asarray(a, dtype=np.float32)
+                                         for a in (thickness, rate_top, rate_under, mrt)))
+    if t.ndim == 0:
+        return _local_life(t, rt, ru, m)
+    out = np.empty(t.shape, dtype=np.float32)
+    # a band of rows at a time: the temporaries are a band's, not the grid's
+    for r0 in range(0, t.shape[0], _LIFE_BAND_ROWS):
+        b = slice(r0, r0 + _LIFE_BAND_ROWS)
+        out[b] = _local_life(t[b], rt[b], ru[b], m[b])
+    return out
+
+
+#: Rows of the grid per pass of :func:`local_life_map`.
+_LIFE_BAND_ROWS = 256
+
+
+def _local_life(t, rt, ru, m) -> np.ndarray:
+    s = np.maximum(rt, np.float32(0)) + np.maximum(ru, np.float32(0))
+    margin = t - m
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         life = margin / s
     life = np.where(s > 0, life, np.float32(np.inf))

@@ -119,6 +119,15 @@ class _Cells:
         return pairs[1, order][first]
 
 
+def region_max(labels: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Largest value of ``values`` (NaN skipped) in each region of a label map (regions
+    1..n, as :func:`find_indications` numbers them): its ``rate_max_mm_y`` column when the
+    rates come after the list. [same unit]"""
+    labels = np.asarray(labels)
+    n = int(labels.max()) if labels.size else 0
+    return _Cells(labels, n).reduce(np.fmax, np.asarray(values))
+
+
 def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
                      reporting_depth_mm: float, side=None, plate=None, zone_labels=None,
                      zone_names=None, rate=None, thickness=None, min_cells: int = 1,

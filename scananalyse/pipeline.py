@@ -277,6 +277,8 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, on_pa
         # every per-zone statistic): derived while the registration runs
         plate_seams = _plate_seams(new) if new.plate is not None else None
         zmap.groups()
+        # the newer scan's indication list (its rate column comes with the rates)
+        ind_new = _new_indications(new, layers, side, zmap, ind_labels)
     if on_figures is not None:
         # the newer scan's own maps are drawn while the registration and rates run
         on_figures(_scan_map_specs(new, layers, zmap, rules, options, job, job.units))
@@ -352,8 +354,8 @@ def _analyse(new, old, *, job, progress, registration, inputs, on_figures, on_pa
     # the whole job, the child holding the main process's memory of the moment)
     with prog.stage("indications"):
         ind, gone = _indications(new, old, reg.transform if reg is not None else None, lr, side, zmap, job,
-                                 labels=ind_labels)
-        del ind_labels
+                                 labels=ind_labels, found=ind_new)
+        del ind_labels, ind_new
 
     # --- repairs -----------------------------------------------------------------------
     with prog.stage("repairs"):
@@ -678,15 +680,28 @@ def _reporting_depth(new: FloorScan) -> float:
     return float(thr) if thr else 0.1 * new.meta.nominal
 
 
-def _indications(new, old, transform, lr, side, zmap, job, labels=None):
+def _new_indications(new, layers, side, zmap, labels):
+    """The newer scan's indication list without its rate column (all it needs is known
+    before the rates: it is made while the registration runs); see :func:`_indications`."""
+    from . import indications as ind_mod
+
+    return ind_mod.find_indications(layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
+                                    reporting_depth_mm=_reporting_depth(new), side=side, plate=new.plate,
+                                    zone_labels=zmap.labels, zone_names=zmap.names, rate=None,
+                                    thickness=new.thickness, labels=labels)
+
+
+def _indications(new, old, transform, lr, side, zmap, job, labels=None, found=None):
+    """The indication list: ``found`` (:func:`_new_indications`, made here if None) with the
+    governing rate's maximum per region, matched with the older scan's indications."""
     from . import indications as ind_mod
 
     depth = _reporting_depth(new)
-    rate = np.fmax(lr.rate_top, lr.rate_under)
-    ind, labels = ind_mod.find_indications(lr.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
-                                           reporting_depth_mm=depth, side=side, plate=new.plate,
-                                           zone_labels=zmap.labels, zone_names=zmap.names, rate=rate,
-                                           thickness=new.thickness, labels=labels, return_labels=True)
+    if labels is None:
+        labels = ind_mod.label_indications(lr.loss, reporting_depth_mm=depth)
+    ind = _new_indications(new, lr, side, zmap, labels) if found is None else found.copy()
+    if len(ind):
+        ind["rate_max_mm_y"] = ind_mod.region_max(labels, np.fmax(lr.rate_top, lr.rate_under))
     gone = None
     if old is not None:
         old_ind, old_labels = ind_mod.old_indications(old, new, transform, reporting_depth_mm=depth,
@@ -758,11 +773,12 @@ def _repairs(new, lr, side, zmap, rules, options, mrt, job, have_old, own_patche
         ext_r_rep = ext_rate  # the patches keep the measured rates: the same statistics
     else:
         ext_r_rep = _rate_extremes(rt_rep, ru_rep, zmap, pitch=new.pitch, job=job)
-    life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     ext_l_rep = _life_extremes(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal,
                                censored=cens_rep, threshold=new.meta.threshold, pitch=new.pitch, job=job,
                                methods=ext_d_rep)
     del cens_rep
+    # after the life search, whose grids it would otherwise sit beside at the peak
+    life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=_merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,

@@ -164,6 +164,36 @@ def test_local_life_map_cases():
     assert np.isnan(local_life_map(t, np.full(t.shape, np.nan), ru, 2.54)).all()
 
 
+def test_local_life_map_by_bands_is_the_formula_on_the_whole_grid():
+    # The map is computed a band of rows at a time; on a grid of several bands (and a
+    # partial last one) every cell must equal (t - MRT) / (r_top+ + r_under+) with the
+    # documented special cases, evaluated on the whole grid at once.
+    from scananalyse import assess
+
+    rng = np.random.default_rng(8)
+    shape = (assess._LIFE_BAND_ROWS * 2 + 37, 53)
+    t = rng.uniform(1.0, 7.0, shape).astype(np.float32)
+    t[rng.random(shape) < 0.1] = np.nan
+    rt = rng.normal(0.05, 0.1, shape).astype(np.float32)
+    ru = rng.normal(0.05, 0.1, shape).astype(np.float32)
+    ru[rng.random(shape) < 0.05] = np.nan
+    rt[:40] = 0.0
+    ru[:40] = 0.0
+    mrt = np.where(np.arange(shape[1]) < 20, 2.54, 1.27).astype(np.float32)[None, :].repeat(shape[0], 0)
+    s = np.maximum(rt, 0) + np.maximum(ru, 0)
+    margin = t - mrt
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ref = np.where(s > 0, margin / s, np.inf)
+    ref = np.where(margin < 0, 0.0, ref)
+    ref = np.where(np.isnan(margin) | np.isnan(s), np.nan, ref).astype(np.float32)
+    for m in (mrt, np.float32(2.54)):
+        got = local_life_map(t, rt, ru, m)
+        want = ref if m is mrt else local_life_map(t, rt, ru, np.full(shape, 2.54, np.float32))
+        assert got.dtype == np.float32 and got.shape == shape
+        np.testing.assert_array_equal(got, want)
+    assert np.isinf(ref[:40][np.isfinite(t[:40]) & (margin[:40] >= 0)]).all()
+
+
 def test_eva_life():
     # (t0 - depth_upper - MRT)/rate = (6.35 - 2.81 - 2.54)/0.2 = 5 y
     assert eva_life(t0=6.35, depth_upper=2.81, mrt=2.54, rate=0.2) == pytest.approx(5.0)

@@ -228,3 +228,22 @@ def test_matched_indications_on_synthetic_pairs(seed, diameter):
     print(f"seed {seed}: {good} of {present.sum()} pits present in both matched ({100 * share:.1f} %)"
           f"; statuses {m.status.value_counts().to_dict()}")
     assert share >= 0.95  # issue 4 accuracy target
+
+
+def test_region_max_matches_scipy_ndimage():
+    # the rate column added after the list: scipy.ndimage.maximum over the same labels is the
+    # reference (NaN cells skipped, as fmax does; a region of NaN only gives NaN)
+    from scipy import ndimage
+
+    from scananalyse.indications import region_max
+
+    rng = np.random.default_rng(12)
+    labels, n = ndimage.label(rng.random((120, 90)) < 0.3)
+    v = rng.normal(0.2, 0.1, labels.shape).astype(np.float32)
+    v[rng.random(v.shape) < 0.2] = np.nan
+    got = region_max(labels, v)
+    filled = np.where(np.isnan(v), -np.inf, v)
+    ref = np.asarray(ndimage.maximum(filled, labels, index=np.arange(1, n + 1)), dtype=float)
+    ref[~np.isfinite(ref)] = np.nan
+    assert got.shape == (n,) and n > 20
+    np.testing.assert_array_equal(got, ref)
