@@ -35,7 +35,7 @@ import warnings
 from ._libc import trim_free_memory
 
 __all__ = ["ForkedCall", "close_quietly", "fork_quietly", "pack", "parallel_possible", "read_to_end", "stop_child",
-           "unpack"]
+           "unpack", "write_all"]
 
 
 def _usable_cores() -> int:
@@ -118,6 +118,13 @@ def read_to_end(fd: int, size: int = 1 << 20) -> bytes:
         chunks.append(b)
 
 
+def write_all(fd: int, data) -> None:
+    """Write every byte of ``data`` to a pipe (``os.write`` may take part of it at a time)."""
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
 def close_quietly(fd: int) -> None:
     """Close a file descriptor, ignoring one already closed."""
     try:
@@ -166,9 +173,7 @@ class ForkedCall:
                     value = self._fn(*self._args, **self._kwargs)
                 sent = [(str(m.message), m.category) for m in caught]
                 data = pack((value, sent))
-                view = memoryview(data)
-                while view:
-                    view = view[os.write(w, view):]
+                write_all(w, data)
                 code = 0
             except BaseException:  # noqa: BLE001 - the caller computes it again and sees the error
                 code = 1

@@ -39,7 +39,7 @@ import threading
 from pathlib import Path
 
 from .._libc import default_malloc, trim_free_memory
-from ..forked import close_quietly, fork_quietly, pack, parallel_possible, read_to_end, stop_child, unpack
+from ..forked import close_quietly, fork_quietly, pack, parallel_possible, read_to_end, stop_child, unpack, write_all
 
 __all__ = ["FigureQueue", "file_stem", "parallel_possible"]
 
@@ -69,12 +69,6 @@ def _read_exact(fd: int, n: int) -> bytes | None:
         parts.append(b)
         got += len(b)
     return b"".join(parts)
-
-
-def _write_all(fd: int, data) -> None:
-    view = memoryview(data)
-    while view:
-        view = view[os.write(fd, view):]
 
 
 def _small_form(job):
@@ -209,7 +203,7 @@ class FigureQueue:
             # its memory back
             gc.collect()
             trim_free_memory()
-            _write_all(reply_w, (json.dumps({"job": n, "caption": caption}) + "\n").encode())
+            write_all(reply_w, (json.dumps({"job": n, "caption": caption}) + "\n").encode())
 
     def _collect(self, block: bool) -> None:
         """Read the helper's reports (``block``: until it has closed its end)."""
@@ -269,8 +263,8 @@ class FigureQueue:
             self._local.append(n)
             return n
         try:
-            _write_all(self._data_w, _HEADER.pack(n, len(body)))
-            _write_all(self._data_w, body)
+            write_all(self._data_w, _HEADER.pack(n, len(body)))
+            write_all(self._data_w, body)
             os.write(self._tok_w, _TOKEN.pack(n))
         except OSError:  # the helper is gone: this job and what it left are done here
             self._local.append(n)
