@@ -814,12 +814,13 @@ SUMMARY_COLUMNS = (
 
 
 def _mrt_of(mrt_mm, zone: str, zones) -> float:
+    """MRT of ``zone`` from a number, a ``{zone: MRT}`` mapping or an array by zone label; NaN if absent."""
     if isinstance(mrt_mm, dict):
-        return float(mrt_mm[zone])
+        return float(mrt_mm.get(zone, math.nan))
     arr = np.asarray(mrt_mm, dtype=float)
     if arr.ndim == 0:
         return float(arr)
-    return float(arr[zones.names.index(zone)])
+    return float(arr[zones.names.index(zone)]) if zone in zones.names else math.nan
 
 
 def reading_zone_summary(readings_new, readings_old=None, *, zones, nominal_mm: float, installed,
@@ -853,8 +854,8 @@ def reading_zone_summary(readings_new, readings_old=None, *, zones, nominal_mm: 
     :func:`~scananalyse.assess.code_interval` on the readings; ``life_local_y`` =
     min over spots of (t − MRT)/rate [y]; ``covered_length_mm`` = distinct spots ×
     ``probe_mm`` (the readings are points: the floor between them is unseen);
-    ``flags`` (``points-only`` always; ``below-mrt``, ``no-age``,
-    ``no-short-term-rates``, ``code-exceeds-local``).
+    ``flags`` (``points-only`` always; ``below-mrt``, ``no-age``, ``no-mrt`` (a zone
+    missing from ``mrt_mm``), ``no-short-term-rates``, ``code-exceeds-local``).
 
     Notes
     -----
@@ -882,8 +883,7 @@ def reading_zone_summary(readings_new, readings_old=None, *, zones, nominal_mm: 
         s = spots[spots["zone"] == name]
         flags = ["points-only"]
         notes: list[str] = []
-        mrt = _mrt_of(mrt_mm, name, zones) if name in zones.names or not isinstance(mrt_mm, dict) \
-            else math.nan
+        mrt = _mrt_of(mrt_mm, name, zones)
         t = s["t_mm"].to_numpy(float)
         k = int(np.argmin(t))
         side = s["side"].to_numpy(object)
@@ -896,11 +896,11 @@ def reading_zone_summary(readings_new, readings_old=None, *, zones, nominal_mm: 
             life = np.where(rate > 0, (t - mrt) / rate, np.inf)
         life = np.where(t < mrt, 0.0, life)
         life = np.where(np.isnan(rate), np.nan, life)
-        life_local = float(np.nanmin(life)) if np.any(np.isfinite(life) | np.isinf(life)) else math.nan
+        life_local = math.nan if np.all(np.isnan(life)) else float(np.nanmin(life))
         n_short = int(np.count_nonzero(np.isfinite(s["rate_short_mm_y"].to_numpy(float))))
-        if age is None:
+        if age is None or math.isnan(mrt):
             code = stpr = upr = math.nan
-            flags.append("no-age")
+            flags.append("no-age" if age is None else "no-mrt")
         else:
             cr = code_interval(t0=t0, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=age, method="UT",
                                coated=options.coated or options.reinforced_lining,
@@ -1005,7 +1005,7 @@ def prove_up_candidates(indications: pd.DataFrame, pairs: pd.DataFrame | None = 
             r.append("deepest unproved")
         if "partly unscanned" in status.iloc[i]:
             r.append("partly unscanned")
-        if status.iloc[i] == "new" or status.iloc[i].startswith("new;") or ";new" in status.iloc[i]:
+        if "new" in [w.strip() for w in status.iloc[i].split(";")]:
             r.append("new")
         if r:
             keep.append(i)

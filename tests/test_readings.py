@@ -2,6 +2,7 @@
 prove-up list.  All data here are invented (synthetic truth or hand-written files)."""
 
 import datetime as dt
+import math
 import os
 
 import numpy as np
@@ -477,3 +478,19 @@ def test_prove_up_candidates():
     # proved by label when the pairs carry one
     lab = pd.DataFrame({"x_mm": [9999.0], "y_mm": [0.0], "kind": ["prove-up"], "indication": [2]})
     assert 2 not in prove_up_candidates(ind, lab, n=6)["id"].tolist()
+
+
+def test_zone_summary_without_age_or_mrt():
+    # one reading in the interior: no installed date -> no code interval; a zone missing from the
+    # MRT mapping -> no code interval either, each flagged
+    r = _readings([(0.0, 0.0, "ut", 5.0, np.nan, "unknown")], dt.date(2026, 5, 1))
+    a = reading_zone_summary(r, None, zones=_zones(), nominal_mm=6.35, installed=None,
+                             mrt_mm=2.54).iloc[0]
+    assert a["zone"] == "interior" and math.isnan(a["interval_code_y"]) and "no-age" in a["flags"]
+    assert math.isnan(a["life_local_y"])
+    b = reading_zone_summary(r, None, zones=_zones(), nominal_mm=6.35, installed=dt.date(2001, 5, 1),
+                             mrt_mm={"critical": 3.175}).iloc[0]
+    assert math.isnan(b["interval_code_y"]) and "no-mrt" in b["flags"]
+    # hand computation: long-term rate (6.35 − 5.0)/25.0007 y = 0.054 mm/y
+    assert b["rate_long_max_mm_y"] == pytest.approx(1.35 / ((dt.date(2026, 5, 1) - dt.date(2001, 5, 1)).days
+                                                           / 365.2425))
