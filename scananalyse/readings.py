@@ -23,6 +23,20 @@ cells (:func:`apply_readings`), assesses the zones from the readings alone
 Readings are points: the metal between them is unseen, and every table here says
 how many points (and what length of floor) a result rests on.
 
+Order of use in a job (``compare``/``assess`` with ``--readings``):
+
+1. :func:`read_readings` for each file; files of one outage (told apart by
+   ``inspected``, nearest scan date) joined by :func:`merge_readings`; older
+   readings given in the older scan's frame moved by the registration
+   (:func:`move_readings`).
+2. :func:`pair_readings` with each scan of the same outage.
+3. :func:`sizing_check` on the newer pairs, :func:`apply_readings`, then
+   :func:`correct_undersizing` on the applied thickness with ``proved_mask`` =
+   ``applied.proved``: the corrected map goes into the rest of the job;
+   ``applied.depth_top`` is a measured top-side depth map for attribution.
+4. After the zones: :func:`reading_zone_summary` (zones read by hand: the critical
+   zone first of all); after the indication list: :func:`prove_up_candidates`.
+
 Everything is mm, mm/y and years.
 """
 
