@@ -16,8 +16,8 @@ def test_full_job_reads(tmp_path):
     (tmp_path / "sides.csv").write_text("x")
     p = _write(tmp_path, """
 [floor]
-diameter = 8000
-annular_width = 600
+diameter = 315
+annular_width = 24
 centre = [10, -5]
 [protection]
 leak_detection = true
@@ -37,7 +37,9 @@ interval_cap_y = 15
 units = "in"
 """)
     job = read_job(p)
-    assert job.diameter == 8000.0 and job.annular_width == 600.0 and job.centre == (10.0, -5.0)
+    # report.units states the units of the file's lengths too
+    assert job.diameter == 315.0 and job.annular_width == 24.0 and job.centre == (10.0, -5.0)
+    assert job.length_units == "in"
     assert job.leak_detection is True and job.coating_life_years == 7.0
     assert job.shapes == str((tmp_path / "sides.csv").resolve())
     assert job.default_side == "top" and job.target_interval == 15.0
