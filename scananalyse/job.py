@@ -203,7 +203,11 @@ class Job:
 
 
 def _fmt(v: float) -> str:
-    return f"{v:.4g}" if abs(v) < 1e5 else f"{v:.0f}"
+    """A number for a message: whole numbers as such (below 1e12), else 4 significant digits."""
+    v = float(v)
+    if v.is_integer() and abs(v) < 1e12:
+        return str(int(v))
+    return f"{v:.4g}"
 
 
 def check_value(name: str, value, *, what: str, units: str | None = "mm") -> None:
