@@ -12,7 +12,9 @@ pipeline can call it at the stage where its inputs are known:
   zones' MRT is known;
 - :func:`check_same_tank`: two scans naming different tanks;
 - :func:`patches_line`: the console's line on patch plates, which never says "none
-  needed" while a zone is below MRT.
+  needed" while a zone is below MRT;
+- :func:`check_job_against_scans`: the job's units resolved and the checks above that
+  need only the job and the scans, in one call once the scans are read.
 
 Errors are :class:`~scananalyse.errors.InputError` (one line, exit status 2).
 """
@@ -26,7 +28,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["LENGTH_UNITS", "check_inside_shell", "shell_reach_warning", "check_repair_to", "check_same_tank",
+__all__ = ["LENGTH_UNITS", "check_job_against_scans", "check_inside_shell", "shell_reach_warning", "check_repair_to", "check_same_tank",
            "check_pitch_matches", "patches_line", "likely_unit"]
 
 #: Millimetres per unit, for the units a length may be given in by mistake. [mm]
@@ -340,3 +342,52 @@ def patches_line(n_patches: int, area_m2: float, zones=None, zones_repaired=None
         return (f"proposed patch plates: none proposed, but zones below MRT: {names}; "
                 "repair before return to service (see the notes)")
     return "proposed patch plates: none needed for the target interval"
+
+
+def check_job_against_scans(job, new, old=None):
+    """Resolve the job's length units and check it against the scans, before any analysis.
+
+    In order: each scan's header pitch against its coordinates
+    (:func:`check_pitch_matches`), the job's lengths into the newer scan's units
+    (:func:`~scananalyse.job.resolve_units`), the newer scan inside the stated shell
+    (:func:`check_inside_shell`), then the warnings of :func:`shell_reach_warning` and
+    :func:`check_same_tank`.
+
+    Parameters
+    ----------
+    job : :class:`~scananalyse.job.Job` as built from the command line or a job file.
+    new : the newer (or only) :class:`~scananalyse.scan.FloorScan`.
+    old : the older scan, or None.
+
+    Returns
+    -------
+    (Job, list of str)
+        The job with its lengths in the scans' units (what the pipeline reads), and the
+        warning texts (possibly none).
+
+    Raises
+    ------
+    InputError
+        One line naming the file or the option / job field.
+    """
+    from .job import resolve_units
+
+    for scan in (old, new):
+        if scan is not None:
+            check_pitch_matches(scan)
+    job = resolve_units(job, new.meta.units)
+    warnings_ = []
+    if job.diameter is not None:
+        f = LENGTH_UNITS[new.meta.units]
+        d_mm = job.diameter * f
+        centre = (job.centre[0] * f, job.centre[1] * f)
+        given = job.typed.get("diameter")
+        check_inside_shell(new, diameter_mm=d_mm, centre_mm=centre, given=given, what=job.where("diameter"))
+        w = shell_reach_warning(new, diameter_mm=d_mm, centre_mm=centre, given=given, what=job.where("diameter"))
+        if w:
+            warnings_.append(w)
+    if old is not None:
+        w = check_same_tank(old, new)
+        if w:
+            warnings_.append(w)
+    return job, warnings_

@@ -253,7 +253,11 @@ def check_value(name: str, value, *, what: str, units: str | None = "mm") -> Non
     f = MM_PER_UNIT[units]
     for v in nums:
         if not lo <= v * f <= hi:
-            raise InputError(f"{what}: must be between {_fmt(lo / f)} and {_fmt(hi / f)} {units}, got {_fmt(float(v))}")
+            from .checks import likely_unit
+
+            hint = likely_unit(float(v), units, lambda mm: lo <= mm <= hi) if lo > 0 else None
+            raise InputError(f"{what}: must be between {_fmt(lo / f)} and {_fmt(hi / f)} {units}, got {_fmt(float(v))}"
+                             + (f" ({hint})" if hint else ""))
 
 
 def _provisional(job: Job) -> Job:

@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from scananalyse.checks import (check_inside_shell, check_pitch_matches, check_repair_to, check_same_tank,
+from scananalyse.checks import (check_inside_shell, check_job_against_scans, check_pitch_matches, check_repair_to, check_same_tank,
                                 patches_line, shell_reach_warning)
 from scananalyse.errors import InputError
 from scananalyse.scan import FloorScan, ScanMeta
@@ -129,3 +129,23 @@ def test_patches_line_never_says_none_needed_below_mrt():
     line = patches_line(2, 0.5, _zones(1.4, 2.54), _zones(1.4, 2.54))
     assert line.endswith("zones still below MRT after them: interior")
     assert patches_line(2, 0.5, _zones(1.4, 2.54), _zones(6.0, 2.54)).endswith("(patches.csv, patches.dxf)")
+
+
+def test_check_job_against_scans_resolves_and_checks():
+    from scananalyse.job import Job
+
+    new, old = _disc(), _disc(tank="TK-08", source="old.csv")
+    job, warns = check_job_against_scans(Job(length_units="in").with_lengths(units="in", diameter=315.0), new, old)
+    assert job.diameter == pytest.approx(8001.0)
+    assert len(warns) == 1 and warns[0].startswith("the two scans name different tanks")
+    # 315 mm is not a tank: refused by its range, with the likely unit
+    with pytest.raises(InputError, match=r"^--diameter: must be between 1000 and 200000 mm, got 315 "
+                       r"\(315 looks like inches: 315 in = 8001 mm\)$"):
+        check_job_against_scans(Job().with_lengths(diameter=315.0), new)
+    # 6000 mm on an 8 m floor: refused by the shell
+    with pytest.raises(InputError, match=r"^--diameter: \d+ of \d+ scanned cells of new\.csv lie outside"):
+        check_job_against_scans(Job().with_lengths(diameter=6000.0), new)
+    with pytest.raises(InputError, match=r"^old\.csv: field 'pitch'"):
+        check_job_against_scans(Job(diameter=8000.0), new, _disc(step=2, source="old.csv"))
+    _, warns = check_job_against_scans(Job(diameter=20000.0), new)
+    assert len(warns) == 1 and "lies far beyond every scanned cell" in warns[0]

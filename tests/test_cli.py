@@ -138,7 +138,8 @@ def test_assess_single_inspection(small_pair_files, tmp_path, capsys):
 
 def test_units_in_display(small_pair_files, tmp_path, capsys):
     out = tmp_path / "inch"
-    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+    # --units states the units of the options too: 157.48 in = 4000 mm
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "157.48",
                  "--out", str(out), "--quiet", "--units", "in"]) == 0
     assert "thickness in" in capsys.readouterr().out
     # files keep SI columns whatever the display units
@@ -209,7 +210,7 @@ def dummy_scans(tmp_path):
     (["--diameter", "nan"], r"argument --diameter: not a finite number, got 'nan'"),
     (["--diameter", "1e308"], r"^scananalyse: error: --diameter: must be between 1000 and 200000 mm "
                               r"\(or 39\.37 to 7874 in\), got 1e\+308$"),
-    (["--diameter", "8000", "--units", "in"], r"--diameter: must be between 39\.37 and 7874 in, got 8000$"),
+    (["--diameter", "8000", "--units", "in"], r"--diameter: must be between 39\.37 and 7874 in, got 8000 \(8000 looks like millimetres\)$"),
     (["--diameter", "8000", "--repair-to", "300"], r"--repair-to: must be between 0\.1 and 50 mm"),
     (["--diameter", "8000", "--target-interval", "100"], r"--target-interval: must be between 0\.5 and 30 y"),
     (["--diameter", "8000", "--ruleset", "nope"], r"--ruleset: unknown rule set 'nope'"),

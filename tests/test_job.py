@@ -140,7 +140,7 @@ def test_bad_user_zones(tmp_path, text, match):
     ("[floor]\ndiameter = 1e308\n", r"job\.toml: field 'floor\.diameter': must be between 1000 and 200000 mm "
                                     r"\(or 39\.37 to 7874 in\), got 1e\+308$"),
     ("[report]\nunits = \"mm\"\n[floor]\ndiameter = 315\n", r"field 'floor\.diameter': must be between 1000 and "
-                                                          r"200000 mm, got 315$"),
+                                                          r"200000 mm, got 315 \(315 looks like inches: 315 in = 8001 mm\)$"),
     ("[statistics]\nblock_mm = 1e-6\n", r"field 'statistics\.block_mm': must be between 100 and 10000 mm, got 1e-06$"),
     ("[repair]\ntarget_interval = 100\n", r"field 'repair\.target_interval': must be between 0\.5 and 30 y"),
     ("[repair]\ntarget_interval = 0\n", r"field 'repair\.target_interval': must be positive"),
@@ -220,7 +220,7 @@ def test_resolved_lengths_are_range_checked_naming_the_origin(tmp_path):
     job = read_job(_write(tmp_path, "[floor]\ndiameter = 100\n"))  # fine as inches, not as mm
     assert resolve_units(job, "in").diameter == 100.0
     with pytest.raises(InputError, match=r"job\.toml: field 'floor\.diameter': must be between 1000 and 200000 mm, "
-                       r"got 100$"):
+                       r"got 100 \(100 looks like inches: 100 in = 2540 mm\)$"):
         resolve_units(job, "mm")
     with pytest.raises(InputError, match=r"^--annular-width: an annular ring width of 5000 mm is not less than the "
                        r"tank's radius \(4000 mm\)$"):
@@ -228,7 +228,7 @@ def test_resolved_lengths_are_range_checked_naming_the_origin(tmp_path):
 
 
 def test_with_lengths_checks_ranges():
-    with pytest.raises(InputError, match=r"^--diameter: must be between 39\.37 and 7874 in, got 10000$"):
+    with pytest.raises(InputError, match=r"^--diameter: must be between 39\.37 and 7874 in, got 10000 \(10000 looks like millimetres\)$"):
         Job().with_lengths(units="in", diameter=10000.0)
     with pytest.raises(InputError, match=r"^--repair-to: must be between 0\.1 and 50 mm \(or 0\.003937 to 1\.969 "
                        r"in\), got 1000$"):
