@@ -140,7 +140,7 @@ def check_inside_shell(scan, *, diameter_mm: float, centre_mm=(0.0, 0.0), tolera
 
     hint = likely_unit(value, units, fits)
     if hint is None:
-        need = 2 * (worst - tol)
+        need = 2 * worst
         hint = (f"the scanned cells need a diameter of at least {_fmt(need)} mm about the centre "
                 f"({_fmt(centre_mm[0])}, {_fmt(centre_mm[1])}) mm: check the diameter, its units and the centre")
     src = f" of {scan.source}" if getattr(scan, "source", None) else ""

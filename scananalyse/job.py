@@ -68,13 +68,16 @@ from pathlib import Path
 from .errors import InputError
 
 __all__ = ["Job", "read_job", "resolve_path", "resolve_units", "check_value", "check_input_file", "BOUNDS",
-           "LENGTH_FIELDS", "MAX_JOB_BYTES", "MM_PER_UNIT"]
+           "LENGTH_FIELDS", "MAX_JOB_BYTES", "MM_PER_UNIT", "SCAN_UNITS"]
 
 #: Largest job file read (a job file is a page of settings). [bytes]
 MAX_JOB_BYTES = 1_000_000
 
 #: Millimetres per length unit a job may be given in. [mm]
 MM_PER_UNIT = {"mm": 1.0, "in": 25.4}
+
+#: ``units`` of :meth:`Job.with_lengths` for values in the scans' units whatever the job's.
+SCAN_UNITS = "scan"
 
 #: Job fields holding lengths the user gives in the job's length units.
 LENGTH_FIELDS = ("diameter", "annular_width", "centre", "zone_polygons", "repair_to", "patch_thickness")
@@ -168,14 +171,17 @@ class Job:
 
     def units_of(self, name: str) -> str | None:
         """The units a length field is given in (None: the newer scan's)."""
-        return self.length_units_of.get(name) or self.length_units
+        u = self.length_units_of.get(name) or self.length_units
+        return None if u == SCAN_UNITS else u
 
     def with_lengths(self, *, units: str | None = None, where: dict | None = None, **values) -> "Job":
         """A copy with length fields set, each in ``units`` (None: the job's length units).
 
         Parameters
         ----------
-        units : ``"mm"``, ``"in"`` or None (the job's ``length_units``, else the scans').
+        units : ``"mm"``, ``"in"``, :data:`SCAN_UNITS` (the scans' units whatever the job
+            says: a fleet manifest's diameter) or None (the job's ``length_units``, else the
+            scans').
         where : ``{field: origin}`` for messages (default: the command-line option).
         values : lengths by field name (:data:`LENGTH_FIELDS`); None values are skipped.
 
@@ -192,7 +198,7 @@ class Job:
                 raise TypeError(f"{name} is not a length field")
             origin = (where or {}).get(name) or OPTIONS.get(name, name)
             u = units or self.length_units
-            check_value(name, val, what=origin, units=u)
+            check_value(name, val, what=origin, units=None if u == SCAN_UNITS else u)
             changes[name] = val
             origins[name] = origin
             if units is not None:

@@ -233,3 +233,14 @@ def test_with_lengths_checks_ranges():
     with pytest.raises(InputError, match=r"^--repair-to: must be between 0\.1 and 50 mm \(or 0\.003937 to 1\.969 "
                        r"in\), got 1000$"):
         Job().with_lengths(repair_to=1000.0)
+
+
+def test_a_value_in_the_scans_units_whatever_the_job_says(tmp_path):
+    # a fleet manifest's diameter is in the scans' units even when the job file gives report.units
+    from scananalyse.job import SCAN_UNITS
+
+    job = read_job(_write(tmp_path, "[report]\nunits = \"in\"\n[repair]\nrepair_to = 0.15\n"))
+    job = job.with_lengths(units=SCAN_UNITS, diameter=8000.0, where={"diameter": "fleet.csv:2: field 'diameter'"})
+    r = resolve_units(job, "mm")
+    assert r.diameter == 8000.0 and r.repair_to_mm == pytest.approx(3.81)
+    assert r.where("diameter") == "fleet.csv:2: field 'diameter'"
