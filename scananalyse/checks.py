@@ -11,8 +11,8 @@ pipeline can call it at the stage where its inputs are known:
 - :func:`check_repair_to`: a repair-to thickness below MRT or above nominal, once the
   zones' MRT is known;
 - :func:`check_same_tank`: two scans naming different tanks;
-- :func:`patches_line`: the console's line on patch plates, which never says "none
-  needed" while a zone is below MRT;
+- :func:`patches_line` and :func:`no_patches_text`: the console's and the report's
+  words on patch plates, which never say "none needed" while a zone is below MRT;
 - :func:`check_job_against_scans`: the job's units resolved and the checks above that
   need only the job and the scans, in one call once the scans are read.
 
@@ -29,7 +29,7 @@ import numpy as np
 from .errors import InputError
 
 __all__ = ["LENGTH_UNITS", "check_job_against_scans", "check_inside_shell", "shell_reach_warning", "check_repair_to", "check_same_tank",
-           "check_pitch_matches", "patches_line", "likely_unit"]
+           "check_pitch_matches", "patches_line", "no_patches_text", "zones_below_mrt", "likely_unit"]
 
 #: Millimetres per unit, for the units a length may be given in by mistake. [mm]
 LENGTH_UNITS = {"mm": 1.0, "in": 25.4, "ft": 304.8, "m": 1000.0}
@@ -298,11 +298,58 @@ def check_pitch_matches(scan) -> None:
                      f"{fill:.0f} % filled): correct the header's pitch")
 
 
+def zones_below_mrt(table) -> list[str]:
+    """Names of the zones of a zone table that are below MRT.
+
+    A zone is below MRT when its ``flags`` hold ``below-mrt`` or its ``t_min_mm`` is
+    less than its ``mrt_mm``.
+
+    Parameters
+    ----------
+    table : zone table (``zones.csv`` columns) or None.
+
+    Returns
+    -------
+    list of str
+    """
+    if table is None or len(table) == 0:
+        return []
+    out = []
+    for _, z in table.iterrows():
+        flags = str(z.get("flags", "") or "").split(";")
+        try:
+            thin = float(z.get("t_min_mm", math.nan)) < float(z.get("mrt_mm", math.nan))
+        except (TypeError, ValueError):
+            thin = False
+        if "below-mrt" in flags or thin:
+            out.append(str(z["zone"]))
+    return out
+
+
+def no_patches_text(zones=None, zones_repaired=None) -> str:
+    """What to say when no patch plate is proposed: "no patch plates needed" only when no
+    zone is below MRT (as found or after the repairs), else which zones are.
+
+    Parameters
+    ----------
+    zones, zones_repaired : zone tables as found and after the repairs, or None.
+
+    Returns
+    -------
+    str
+    """
+    names = list(dict.fromkeys(zones_below_mrt(zones) + zones_below_mrt(zones_repaired)))
+    if names:
+        return (f"no patch plates proposed, but zones below MRT: {', '.join(names)}; "
+                "repair before return to service")
+    return "no patch plates needed"
+
+
 def patches_line(n_patches: int, area_m2: float, zones=None, zones_repaired=None) -> str:
     """The console's line on the proposed patch plates.
 
-    It says "none needed" only when no zone is below MRT: with no patches and a zone
-    below MRT (found by a ``below-mrt`` flag or ``t_min_mm < mrt_mm``) it says so.
+    It says "none needed" only when no zone is below MRT (:func:`zones_below_mrt`); with
+    patches proposed and a zone still below MRT after them, it names that zone.
 
     Parameters
     ----------
@@ -315,31 +362,15 @@ def patches_line(n_patches: int, area_m2: float, zones=None, zones_repaired=None
     -------
     str
     """
-    def below(table):
-        if table is None or len(table) == 0:
-            return []
-        out = []
-        for _, z in table.iterrows():
-            flags = str(z.get("flags", "") or "").split(";")
-            t, m = z.get("t_min_mm", math.nan), z.get("mrt_mm", math.nan)
-            try:
-                thin = float(t) < float(m)
-            except (TypeError, ValueError):
-                thin = False
-            if "below-mrt" in flags or thin:
-                out.append(str(z["zone"]))
-        return out
-
-    still = below(zones_repaired if zones_repaired is not None else (zones if n_patches == 0 else None))
     if n_patches:
         line = f"proposed patch plates: {n_patches}, {area_m2:.2f} m2 in all (patches.csv, patches.dxf)"
+        still = zones_below_mrt(zones_repaired)
         if still:
             line += f"; zones still below MRT after them: {', '.join(still)}"
         return line
-    now = below(zones)
-    if now or still:
-        names = ", ".join(dict.fromkeys(now + still))
-        return (f"proposed patch plates: none proposed, but zones below MRT: {names}; "
+    names = list(dict.fromkeys(zones_below_mrt(zones) + zones_below_mrt(zones_repaired)))
+    if names:
+        return (f"proposed patch plates: none, but zones below MRT: {', '.join(names)}; "
                 "repair before return to service (see the notes)")
     return "proposed patch plates: none needed for the target interval"
 

@@ -7,8 +7,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from scananalyse.checks import (check_inside_shell, check_job_against_scans, check_pitch_matches, check_repair_to, check_same_tank,
-                                patches_line, shell_reach_warning)
+from scananalyse.checks import (check_inside_shell, check_job_against_scans, check_pitch_matches, check_repair_to,
+                                check_same_tank, no_patches_text, patches_line, shell_reach_warning)
 from scananalyse.errors import InputError
 from scananalyse.scan import FloorScan, ScanMeta
 
@@ -124,7 +124,8 @@ def _zones(t_min, mrt, flags=""):
 def test_patches_line_never_says_none_needed_below_mrt():
     assert patches_line(0, 0.0, _zones(4.0, 2.54)) == "proposed patch plates: none needed for the target interval"
     line = patches_line(0, 0.0, _zones(1.4, 2.54), _zones(1.4, 2.54))
-    assert "none needed" not in line and "zones below MRT: interior" in line
+    assert line == ("proposed patch plates: none, but zones below MRT: interior; repair before return to "
+                    "service (see the notes)")
     assert "interior" in patches_line(0, 0.0, _zones(3.0, 2.54, "below-mrt"))
     line = patches_line(2, 0.5, _zones(1.4, 2.54), _zones(1.4, 2.54))
     assert line.endswith("zones still below MRT after them: interior")
@@ -149,3 +150,9 @@ def test_check_job_against_scans_resolves_and_checks():
         check_job_against_scans(Job(diameter=8000.0), new, _disc(step=2, source="old.csv"))
     _, warns = check_job_against_scans(Job(diameter=20000.0), new)
     assert len(warns) == 1 and "lies far beyond every scanned cell" in warns[0]
+
+
+def test_no_patches_text_for_the_report():
+    assert no_patches_text(_zones(4.0, 2.54), _zones(4.0, 2.54)) == "no patch plates needed"
+    assert no_patches_text(_zones(1.4, 2.54)) == ("no patch plates proposed, but zones below MRT: interior; "
+                                                  "repair before return to service")
