@@ -28,8 +28,8 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["LENGTH_UNITS", "check_job_against_scans", "check_inside_shell", "shell_reach_warning", "check_repair_to", "check_same_tank",
-           "check_pitch_matches", "patches_line", "no_patches_text", "zones_below_mrt", "likely_unit"]
+__all__ = ["LENGTH_UNITS", "check_job_against_scans", "check_inside_shell", "shell_reach_warning",
+           "check_repair_to", "check_same_tank", "check_pitch_matches", "patches_line", "no_patches_text", "zones_below_mrt", "likely_unit"]
 
 #: Millimetres per unit, for the units a length may be given in by mistake. [mm]
 LENGTH_UNITS = {"mm": 1.0, "in": 25.4, "ft": 304.8, "m": 1000.0}
