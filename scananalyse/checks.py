@@ -196,8 +196,9 @@ def check_repair_to(repair_to_mm: float | None, mrt_mm, *, nominal_mm: float | N
     Parameters
     ----------
     repair_to_mm : the repair-to thickness, or None (plan from rates: nothing to check). [mm]
-    mrt_mm : the MRT, a number or an array of per-zone or per-cell values (NaN ignored);
-        the largest governs. [mm]
+    mrt_mm : the MRT: a number, an array of per-zone or per-cell values, or a mapping
+        ``{zone name: MRT}`` (then the message names the zone); NaN ignored, the largest
+        governs. [mm]
     nominal_mm : nominal plate thickness, if known. [mm]
     given : ``(value, units)`` as typed, for the likely-unit hint.
     what : the option or job field, for the message.
@@ -209,11 +210,19 @@ def check_repair_to(repair_to_mm: float | None, mrt_mm, *, nominal_mm: float | N
     """
     if repair_to_mm is None:
         return
-    mrt = np.asarray(mrt_mm, dtype=float)
-    mrt = mrt[np.isfinite(mrt)]
-    if mrt.size == 0:
-        return
-    mrt_max = float(mrt.max())
+    zone = None
+    if isinstance(mrt_mm, dict):
+        named = {str(k): float(v) for k, v in mrt_mm.items() if v is not None and math.isfinite(float(v))}
+        if not named:
+            return
+        zone = max(named, key=named.get)
+        mrt_max = named[zone]
+    else:
+        mrt = np.asarray(mrt_mm, dtype=float)
+        mrt = mrt[np.isfinite(mrt)]
+        if mrt.size == 0:
+            return
+        mrt_max = float(mrt.max())
     value, units = given if given is not None else (repair_to_mm, "mm")
     shown = f"{_fmt(value)} {units}" + (f" = {repair_to_mm:.3g} mm" if units != "mm" else "")
     hi = nominal_mm if nominal_mm is not None and math.isfinite(nominal_mm) else math.inf
@@ -223,13 +232,14 @@ def check_repair_to(repair_to_mm: float | None, mrt_mm, *, nominal_mm: float | N
 
     if repair_to_mm < mrt_max - 1e-9:
         hint = likely_unit(value, units, fits)
-        raise InputError(f"{what}: a repair-to thickness of {shown} is below the MRT of {mrt_max:.3g} mm: cells "
+        raise InputError(f"{what}: a repair-to thickness of {shown} is below the MRT of {mrt_max:.4g} mm"
+                         + (f" (zone {zone})" if zone else "") + ": cells "
                          "between the two would stay below MRT unrepaired; give at least the MRT"
                          + (f" ({hint})" if hint else ""))
     if repair_to_mm > hi + 1e-9:
         hint = likely_unit(value, units, fits)
         raise InputError(f"{what}: a repair-to thickness of {shown} is above the nominal plate thickness of "
-                         f"{hi:.3g} mm: every cell would be repaired" + (f" ({hint})" if hint else ""))
+                         f"{hi:.4g} mm: every cell would be repaired" + (f" ({hint})" if hint else ""))
 
 
 def _tank_key(name: str) -> str:

@@ -86,6 +86,12 @@ def test_repair_to_outside_mrt_and_nominal_is_refused(rt, given, match):
         check_repair_to(rt, np.array([2.54, 1.27, np.nan]), nominal_mm=6.35, given=given)
 
 
+def test_repair_to_names_the_governing_zone():
+    # the critical zone's minimum (half of 6.35 mm) governs over the interior's 2.54 mm
+    with pytest.raises(InputError, match=r"below the MRT of 3\.175 mm \(zone critical\): cells"):
+        check_repair_to(3.0, {"critical": 3.175, "interior": 2.54, "empty": float("nan")}, nominal_mm=6.35)
+
+
 def test_repair_to_accepted():
     check_repair_to(None, 2.54)
     check_repair_to(3.81, 2.54, nominal_mm=6.35)
