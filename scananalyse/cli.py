@@ -7,6 +7,7 @@ field, no traceback), 1 internal fault, 130 interrupted.
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import sys
 import warnings
@@ -17,94 +18,169 @@ from .errors import InputError, ScanWarning
 __all__ = ["main", "build_parser"]
 
 
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose usage errors are one line (exit status 2), like every bad input."""
+
+    def error(self, message):
+        self.exit(2, f"scananalyse: error: {' '.join(str(message).split())} (see {self.prog} --help)\n")
+
+
+def _number(kind, lo=None, hi=None, *, lo_open=False, what="a number"):
+    """An argparse type: a finite number of ``kind`` in [lo, hi] (lo excluded if ``lo_open``)."""
+    def parse(text):
+        try:
+            v = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected {what}, got {text!r}") from None
+        if kind is float and not math.isfinite(v):
+            raise argparse.ArgumentTypeError(f"not a finite number, got {text!r}")
+        if lo is not None and (v < lo or (lo_open and v == lo)):
+            raise argparse.ArgumentTypeError(f"must be {'>' if lo_open else '>='} {lo:g}, got {text}")
+        if hi is not None and v > hi:
+            raise argparse.ArgumentTypeError(f"must be <= {hi:g}, got {text}")
+        return v
+    parse.__name__ = what  # argparse names the type in its messages
+    return parse
+
+
+def _input_file(text):
+    """An argparse type for an input file: a regular file (a FIFO would block, a device
+    never end), without a NUL character; checked without opening it."""
+    from .job import check_input_file
+
+    try:
+        check_input_file(text, "file", must_exist=False)
+    except InputError as exc:
+        raise argparse.ArgumentTypeError(str(exc).removeprefix("file: ")) from None
+    return text
+
+
+def _path(text):
+    """An argparse type for a path that need not exist: no NUL character."""
+    if "\0" in text:
+        raise argparse.ArgumentTypeError("the path contains a NUL character")
+    return text
+
+
+_LENGTH = _number(float, 0, lo_open=True, what="a positive number")
+_NONNEG = _number(float, 0, what="a number >= 0")
+
+
 def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
-    p.add_argument("--diameter", type=float, help="inside diameter of the tank, in the scans' units (required here or in --job)")
-    p.add_argument("--out", required=True, help="output folder (created; refused if it exists, unless --force)")
-    p.add_argument("--job", help="TOML job file with further settings (see docs/job.md)")
-    p.add_argument("--annular-width", type=float, help="annular ring width, in the scans' units")
-    p.add_argument("--target-interval", type=float, help="target interval for repair planning [years] (default 10)")
+    u = "in --units, else the job file's report.units, else the scans' units"
+    p.add_argument("--diameter", type=_LENGTH,
+                   help=f"inside diameter of the tank ({u}; required here or in --job)")
+    p.add_argument("--out", required=True, type=_path, help="output folder (created; refused if it exists, unless --force)")
+    p.add_argument("--job", type=_input_file, help="TOML job file with further settings (see docs/job.md)")
+    p.add_argument("--annular-width", type=_LENGTH, help=f"annular ring width ({u})")
+    p.add_argument("--target-interval", type=_LENGTH, help="target interval for repair planning [years] (default 10)")
     p.add_argument("--leak-detection", action="store_true", help="release detection and containment present (MRT 1.27 mm case)")
     p.add_argument("--cp", action="store_true", help="cathodic protection effective: UPr = 0")
     p.add_argument("--coated", action="store_true", help="top side coated (StPr = 0 if coating life >= interval)")
-    p.add_argument("--coating-life", type=float, help="remaining coating life [years]")
+    p.add_argument("--coating-life", type=_NONNEG, help="remaining coating life [years]")
     p.add_argument("--rpb", action="store_true", help="release-prevention barrier present (30-year cap)")
-    p.add_argument("--shapes", help="operator attribution shapes file (docs/attribution.md)")
+    p.add_argument("--shapes", type=_input_file, help="operator attribution shapes file (docs/attribution.md)")
     p.add_argument("--default-side", choices=["under", "top"], help="side of unattributed loss (default under)")
     if not single:
-        p.add_argument("--repairs", help="repair records since the older scan (docs/attribution.md)")
-        p.add_argument("--control-points", help="matching points old/new for registration (docs/registration.md)")
-    p.add_argument("--patches", help="re-assess with the engineer's own patch set (patches CSV or DXF)")
-    p.add_argument("--repair-to", type=float, help="repair everything below this thickness [mm] (the code's way)")
+        p.add_argument("--repairs", type=_input_file, help="repair records since the older scan (docs/attribution.md)")
+        p.add_argument("--control-points", type=_input_file,
+                       help="matching points old/new for registration (docs/registration.md)")
+    p.add_argument("--patches", type=_input_file, help="re-assess with the engineer's own patch set (patches CSV or DXF)")
+    p.add_argument("--repair-to", type=_LENGTH,
+                   help=f"repair everything below this thickness, the code's way ({u}); at least the MRT")
+    p.add_argument("--patch-thickness", type=_LENGTH, help=f"patch plate thickness ({u}; default: the rule set's)")
     p.add_argument("--under-cause-removed", action="store_true",
                    help="the cause of underside corrosion under the patches is removed: no underside rate there")
     p.add_argument("--ruleset", help="rule set name (default api653)")
-    p.add_argument("--units", choices=["mm", "in"], help="display units in the report and console (files keep SI)")
+    p.add_argument("--units", choices=["mm", "in"],
+                   help="units of every length given (here and in a job file without report.units) and of the "
+                   "display in the report and console (files keep SI); default: lengths in the scans' units, "
+                   "display in mm")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="scananalyse",
         description="Storage-tank floor scan analysis: registration, top/underside loss, rates, "
         "extreme-value pit statistics, remaining life, repairs and intervals per zone. " + CAUTION,
     )
     parser.add_argument("--version", action="version", version=f"scananalyse {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks of internal faults")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
     p = sub.add_parser("check", help="validate one scan file and print a short summary")
-    p.add_argument("file", help="scan file (.csv floor-scan CSV v1 or .h5 floor-scan HDF5 v1)")
+    p.add_argument("file", type=_input_file, help="scan file (.csv floor-scan CSV v1 or .h5 floor-scan HDF5 v1)")
 
     p = sub.add_parser("convert", help="convert a scan between CSV and HDF5 (lossless)")
-    p.add_argument("input", help="input scan file")
-    p.add_argument("output", help="output scan file (.csv or .h5); refused if it exists, unless --force")
+    p.add_argument("input", type=_input_file, help="input scan file")
+    p.add_argument("output", type=_path, help="output scan file (.csv or .h5); refused if it exists, unless --force")
     p.add_argument("--force", action="store_true", help="replace an existing output file")
 
     p = sub.add_parser("register", help="align the older scan onto the newer one; writes registration.json")
-    p.add_argument("old", help="older inspection's scan")
-    p.add_argument("new", help="newer inspection's scan")
-    p.add_argument("--out", required=True, help="output folder")
-    p.add_argument("--control-points", help="matching points old/new (docs/registration.md)")
+    p.add_argument("old", type=_input_file, help="older inspection's scan")
+    p.add_argument("new", type=_input_file, help="newer inspection's scan")
+    p.add_argument("--out", required=True, type=_path, help="output folder")
+    p.add_argument("--control-points", type=_input_file, help="matching points old/new (docs/registration.md)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
     p = sub.add_parser("compare", help="the whole job on two inspections of one floor")
-    p.add_argument("old", help="older inspection's scan")
-    p.add_argument("new", help="newer inspection's scan")
+    p.add_argument("old", type=_input_file, help="older inspection's scan")
+    p.add_argument("new", type=_input_file, help="newer inspection's scan")
     _add_job_options(p)
 
     p = sub.add_parser("assess", help="the assessment from one inspection (long-term rates only)")
-    p.add_argument("scan", help="the inspection's scan")
+    p.add_argument("scan", type=_input_file, help="the inspection's scan")
     _add_job_options(p, single=True)
 
     p = sub.add_parser("demo", help="the whole job on the shipped sample scans")
-    p.add_argument("--out", default="demo_out", help="output folder (default demo_out)")
+    p.add_argument("--out", default="demo_out", type=_path, help="output folder (default demo_out)")
     p.add_argument("--units", choices=["mm", "in"], default=None, help="display units")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
     p = sub.add_parser("fleet", help="many tanks on a Dask cluster, ranked by urgency")
-    p.add_argument("manifest", help="CSV with columns tank,old,new,diameter (paths relative to it)")
-    p.add_argument("--out", required=True, help="output folder")
-    p.add_argument("--workers", type=int, default=None, help="local cluster worker processes (default: cores)")
+    p.add_argument("manifest", type=_input_file, help="CSV with columns tank,old,new,diameter (paths relative to it)")
+    p.add_argument("--out", required=True, type=_path, help="output folder")
+    p.add_argument("--workers", type=_number(int, 1, 1024, what="a whole number"), default=None, help="local cluster worker processes (default: cores)")
     p.add_argument("--scheduler", default=None, help="address of an existing Dask scheduler")
     p.add_argument("--force", action="store_true", help="recompute tanks whose results exist")
-    p.add_argument("--timeout", type=float, default=None,
+    p.add_argument("--timeout", type=_number(float, 0, lo_open=True, what="a positive number"), default=None,
                    help="give up on tanks without a result after this many seconds of the whole run")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     return parser
 
 
+#: Command-line options that are lengths: option attribute -> job field.
+_LENGTH_OPTIONS = {"diameter": "diameter", "annular_width": "annular_width", "repair_to": "repair_to",
+                   "patch_thickness": "patch_thickness"}
+
+
 def _job_from_args(args):
-    from .job import Job, read_job
+    """The :class:`~scananalyse.job.Job` of ``compare``/``assess``: the job file, then the options.
+
+    Lengths typed on the command line are in ``--units``, else the job file's
+    ``report.units``, else the scans' units; ``--units`` also states the units of a
+    job file that gives none.  Every value is range-checked here, before any scan is
+    read (:data:`scananalyse.job.BOUNDS`); :func:`scananalyse.job.resolve_units`
+    finishes the units once the scans are read.
+    """
+    from .job import OPTIONS, Job, check_value, read_job
 
     job = read_job(args.job) if getattr(args, "job", None) else Job()
+    units = getattr(args, "units", None)
+    if units is not None:
+        if job.length_units is None:
+            job = job.replace(length_units=units)  # a job file without units: in --units
+        job = job.replace(units=units)
+    lengths = {f: getattr(args, a, None) for a, f in _LENGTH_OPTIONS.items()}
+    job = job.with_lengths(units=units, **lengths)
     changes = {}
     simple = {
-        "diameter": "diameter", "annular_width": "annular_width", "target_interval": "target_interval",
-        "coating_life": "coating_life_years", "shapes": "shapes", "default_side": "default_side",
-        "repairs": "repairs", "control_points": "control_points", "patches": "patches",
-        "repair_to": "repair_to_mm", "ruleset": "ruleset", "units": "units",
+        "target_interval": "target_interval", "coating_life": "coating_life_years", "shapes": "shapes",
+        "default_side": "default_side", "repairs": "repairs", "control_points": "control_points",
+        "patches": "patches", "ruleset": "ruleset",
     }
     for a, f in simple.items():
         v = getattr(args, a, None)
@@ -114,13 +190,22 @@ def _job_from_args(args):
                  "rpb": "release_prevention_barrier", "under_cause_removed": "under_cause_removed"}.items():
         if getattr(args, a, False):
             changes[f] = True
-    job = job.replace(**changes)
+    origins = dict(job.origins)
+    for f in changes:
+        origins[f] = OPTIONS.get(f, f)
+    job = job.replace(origins=origins, **changes)
+    for f in ("target_interval", "coating_life_years"):
+        if f in changes:
+            check_value(f, changes[f], what=job.where(f))
+    if "ruleset" in changes:
+        from .rules import get_ruleset
+
+        try:
+            get_ruleset(job.ruleset)
+        except InputError as exc:
+            raise InputError("--ruleset: " + str(exc).split(": ", 2)[-1]) from None
     if job.diameter is None:
         raise InputError("--diameter: the tank's inside diameter is required (or floor.diameter in --job)")
-    if not job.diameter > 0:
-        raise InputError(f"--diameter: must be positive, got {job.diameter}")
-    if not job.target_interval > 0:
-        raise InputError(f"--target-interval: must be positive, got {job.target_interval}")
     return job
 
 

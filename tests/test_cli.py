@@ -138,7 +138,8 @@ def test_assess_single_inspection(small_pair_files, tmp_path, capsys):
 
 def test_units_in_display(small_pair_files, tmp_path, capsys):
     out = tmp_path / "inch"
-    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "4000",
+    # --units states the units of the options too: 157.48 in = 4000 mm
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "157.48",
                  "--out", str(out), "--quiet", "--units", "in"]) == 0
     assert "thickness in" in capsys.readouterr().out
     # files keep SI columns whatever the display units
@@ -187,3 +188,107 @@ def test_engineers_own_patches_are_checked_and_used(small_pair_files, tmp_path, 
     assert "break a patch rule" in out
     html = (second / "report.html").read_text()
     assert "not covered by any patch" in html
+
+
+# --- options checked at the start, one line (issues 22 and 23) ------------------------------------
+def _one_line_error(capsys):
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "Traceback" not in err, err
+    return err
+
+
+@pytest.fixture
+def dummy_scans(tmp_path):
+    """Two placeholder files: the refusals below come before any scan is read."""
+    for n in ("old.csv", "new.csv"):
+        (tmp_path / n).write_text("x\n")
+    return str(tmp_path / "old.csv"), str(tmp_path / "new.csv")
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--diameter", "-8000"], r"argument --diameter: must be > 0, got -8000"),
+    (["--diameter", "nan"], r"argument --diameter: not a finite number, got 'nan'"),
+    (["--diameter", "1e308"], r"^scananalyse: error: --diameter: must be between 1000 and 200000 mm "
+                              r"\(or 39\.37 to 7874 in\), got 1e\+308$"),
+    (["--diameter", "8000", "--units", "in"], r"--diameter: must be between 39\.37 and 7874 in, got 8000 \(8000 looks like millimetres\)$"),
+    (["--diameter", "8000", "--repair-to", "300"], r"--repair-to: must be between 0\.1 and 50 mm"),
+    (["--diameter", "8000", "--target-interval", "100"], r"--target-interval: must be between 0\.5 and 30 y"),
+    (["--diameter", "8000", "--ruleset", "nope"], r"--ruleset: unknown rule set 'nope'"),
+    (["--diameter", "8000", "--job", "/dev/zero"], r"argument --job: '/dev/zero' is a character device, not a regular file"),
+])
+def test_bad_options_are_refused_at_the_start(dummy_scans, tmp_path, capsys, extra, match):
+    out = tmp_path / "out"
+    assert main(["compare", *dummy_scans, "--out", str(out), "--quiet", *extra]) == 2
+    assert re.search(match, _one_line_error(capsys).strip())
+    assert not out.exists()
+
+
+def test_fifo_scan_or_job_is_refused_not_waited_on(dummy_scans, tmp_path, capsys):
+    fifo = tmp_path / "pipe.csv"
+    os.mkfifo(fifo)
+    assert main(["check", str(fifo)]) == 2
+    assert re.search(r"argument file: '.*pipe\.csv' is a FIFO \(named pipe\), not a regular file",
+                     _one_line_error(capsys))
+    assert main(["compare", dummy_scans[0], str(fifo), "--diameter", "8000", "--out", str(tmp_path / "o")]) == 2
+    assert "pipe.csv' is a FIFO" in _one_line_error(capsys)
+    assert main(["compare", *dummy_scans, "--diameter", "8000", "--out", str(tmp_path / "o"), "--job", str(fifo)]) == 2
+    assert "pipe.csv' is a FIFO" in _one_line_error(capsys)
+    assert main(["assess", str(tmp_path), "--diameter", "8000", "--out", str(tmp_path / "o")]) == 2
+    assert "is a folder, not a regular file" in _one_line_error(capsys)
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--workers", "-1"], r"argument --workers: must be >= 1, got -1"),
+    (["--workers", "two"], r"argument --workers: expected a whole number, got 'two'"),
+    (["--timeout", "-1"], r"argument --timeout: must be > 0, got -1"),
+])
+def test_fleet_options_refused_at_the_start(tmp_path, capsys, extra, match):
+    man = tmp_path / "fleet.csv"
+    man.write_text("tank,old,new,diameter\n")
+    assert main(["fleet", str(man), "--out", str(tmp_path / "o"), *extra]) == 2
+    assert re.search(match, _one_line_error(capsys))
+
+
+def test_nul_in_a_path_is_refused(tmp_path, capsys):
+    assert main(["check", "a\0b.csv"]) == 2
+    assert "the path contains a NUL character" in _one_line_error(capsys)
+
+
+def _job(argv):
+    from scananalyse.cli import _job_from_args, build_parser
+    from scananalyse.job import resolve_units
+
+    args = build_parser().parse_args(argv)
+    return _job_from_args(args), resolve_units
+
+
+def test_every_length_option_is_read_in_units(dummy_scans):
+    # issue 23: "--units in --repair-to 0.15" was read as millimetres
+    job, resolve = _job(["compare", *dummy_scans, "--out", "o", "--units", "in", "--diameter", "315",
+                         "--repair-to", "0.15", "--patch-thickness", "0.25", "--annular-width", "24"])
+    assert job.units == "in" and job.repair_to_mm == pytest.approx(3.81)
+    r = resolve(job, "mm")
+    assert r.diameter == pytest.approx(8001.0) and r.annular_width == pytest.approx(609.6)
+    assert r.repair_to_mm == pytest.approx(3.81) and r.patch_thickness_mm == pytest.approx(6.35)
+
+
+def test_lengths_default_to_the_scans_units(dummy_scans):
+    job, resolve = _job(["compare", *dummy_scans, "--out", "o", "--diameter", "315", "--repair-to", "0.15"])
+    assert job.units == "mm"  # display default unchanged
+    r = resolve(job, "in")
+    assert r.diameter == 315.0 and r.repair_to_mm == pytest.approx(3.81)
+
+
+def test_units_option_applies_to_a_job_file_without_units(dummy_scans, tmp_path):
+    jf = tmp_path / "job.toml"
+    jf.write_text("[floor]\ndiameter = 315\n[repair]\nrepair_to = 0.15\n")
+    job, resolve = _job(["compare", *dummy_scans, "--out", "o", "--job", str(jf), "--units", "in"])
+    r = resolve(job, "mm")
+    assert r.diameter == pytest.approx(8001.0) and r.repair_to_mm == pytest.approx(3.81)
+    # a job file stating its units keeps them whatever --units says for display and the options
+    jf.write_text("[report]\nunits = \"in\"\n[floor]\ndiameter = 315\n")
+    job, resolve = _job(["compare", *dummy_scans, "--out", "o", "--job", str(jf), "--units", "mm",
+                         "--repair-to", "3.81"])
+    r = resolve(job, "mm")
+    assert job.units == "mm" and r.diameter == pytest.approx(8001.0) and r.repair_to_mm == pytest.approx(3.81)
+    assert r.where("diameter").endswith("job.toml: field 'floor.diameter'") and r.where("repair_to") == "--repair-to"

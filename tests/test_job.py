@@ -1,9 +1,11 @@
 """Job files: TOML only, every key and type checked, paths kept inside the job's folder."""
 
+import os
+
 import pytest
 
 from scananalyse.errors import InputError
-from scananalyse.job import Job, read_job
+from scananalyse.job import Job, read_job, resolve_units
 
 
 def _write(tmp_path, text, name="job.toml"):
@@ -16,8 +18,8 @@ def test_full_job_reads(tmp_path):
     (tmp_path / "sides.csv").write_text("x")
     p = _write(tmp_path, """
 [floor]
-diameter = 8000
-annular_width = 600
+diameter = 315
+annular_width = 24
 centre = [10, -5]
 [protection]
 leak_detection = true
@@ -37,7 +39,9 @@ interval_cap_y = 15
 units = "in"
 """)
     job = read_job(p)
-    assert job.diameter == 8000.0 and job.annular_width == 600.0 and job.centre == (10.0, -5.0)
+    # report.units states the units of the file's lengths too
+    assert job.diameter == 315.0 and job.annular_width == 24.0 and job.centre == (10.0, -5.0)
+    assert job.length_units == "in"
     assert job.leak_detection is True and job.coating_life_years == 7.0
     assert job.shapes == str((tmp_path / "sides.csv").resolve())
     assert job.default_side == "top" and job.target_interval == 15.0
@@ -127,3 +131,116 @@ polygons = [{name = "draw-off", points = [[-1500, -400], [-800, -400], [-800, 30
 def test_bad_user_zones(tmp_path, text, match):
     with pytest.raises(InputError, match=match):
         read_job(_write(tmp_path, text))
+
+
+# --- values checked when the job is read (issue 22) ------------------------------------------
+@pytest.mark.parametrize("text, match", [
+    ("[statistics]\nseed = -1\n", r"job\.toml: field 'statistics\.seed': must be between 0 and 4294967295, got -1$"),
+    ("[statistics]\nseed = 4294967296\n", r"field 'statistics\.seed': must be between"),
+    ("[floor]\ndiameter = 1e308\n", r"job\.toml: field 'floor\.diameter': must be between 1000 and 200000 mm "
+                                    r"\(or 39\.37 to 7874 in\), got 1e\+308$"),
+    ("[report]\nunits = \"mm\"\n[floor]\ndiameter = 315\n", r"field 'floor\.diameter': must be between 1000 and "
+                                                          r"200000 mm, got 315 \(315 looks like inches: 315 in = 8001 mm\)$"),
+    ("[statistics]\nblock_mm = 1e-6\n", r"field 'statistics\.block_mm': must be between 100 and 10000 mm, got 1e-06$"),
+    ("[repair]\ntarget_interval = 100\n", r"field 'repair\.target_interval': must be between 0\.5 and 30 y"),
+    ("[repair]\ntarget_interval = 0\n", r"field 'repair\.target_interval': must be positive"),
+    ("[repair]\nrepair_to = 900\n", r"field 'repair\.repair_to': must be between"),
+    ("[floor]\ncentre = [1e9, 0]\n", r"field 'floor\.centre': must be between"),
+    ("[zones]\npolygons = [{name = \"a\", points = [[0, 0], [1e12, 0], [0, 1]]}]\n",
+     r"field 'zones\.polygons': must be between"),
+    ("[rules]\nname = \"nope\"\n", r"job\.toml: field 'rules\.name': unknown rule set 'nope'"),
+    ("[rules.overrides]\ninterval_cap_y = -3\n", r"job\.toml: field 'rules\.overrides\.interval_cap_y': must be"),
+    ("[attribution]\nshapes = \"a\\u0000b.csv\"\n", r"field 'attribution\.shapes': contains a NUL character"),
+    ("a = " + "[" * 100_000 + "\n", r"job\.toml: not valid TOML \(arrays or tables nested too deeply\)$"),
+])
+def test_job_values_checked_when_read(tmp_path, text, match):
+    with pytest.raises(InputError, match=match) as info:
+        read_job(_write(tmp_path, text))
+    assert "\n" not in str(info.value)
+
+
+def test_job_file_must_be_a_small_regular_file(tmp_path):
+    big = _write(tmp_path, "# " + "x" * 1_000_001 + "\n", name="big.toml")
+    with pytest.raises(InputError, match=r"big\.toml: job file of 1000004 bytes is larger than the 1000000 allowed"):
+        read_job(big)
+    with pytest.raises(InputError, match=r"/dev/zero: the job file is a character device, not a regular file"):
+        read_job("/dev/zero")
+    with pytest.raises(InputError, match=r": the job file is a folder, not a regular file"):
+        read_job(tmp_path)
+
+
+def test_fifo_job_file_is_refused_not_waited_on(tmp_path):
+    fifo = tmp_path / "job.toml"
+    os.mkfifo(fifo)
+    with pytest.raises(InputError, match=r"job\.toml: the job file is a FIFO \(named pipe\), not a regular file"):
+        read_job(fifo)
+
+
+def test_paths_in_a_job_must_be_regular_files(tmp_path):
+    os.mkfifo(tmp_path / "pipe.csv")
+    (tmp_path / "dir.csv").mkdir()
+    with pytest.raises(InputError, match=r"job\.toml: field 'attribution\.shapes': '.*pipe\.csv' is a FIFO "
+                       r"\(named pipe\), not a regular file$"):
+        read_job(_write(tmp_path, "[attribution]\nshapes = \"pipe.csv\"\n"))
+    with pytest.raises(InputError, match=r"field 'repair\.patches': '.*dir\.csv' is a folder, not a regular file$"):
+        read_job(_write(tmp_path, "[repair]\npatches = \"dir.csv\"\n"))
+
+
+# --- length units --------------------------------------------------------------------------------
+def test_lengths_without_units_follow_the_scans():
+    job = Job(diameter=315.0).with_lengths(repair_to=0.15)
+    assert resolve_units(job, "in").diameter == 315.0
+    r = resolve_units(job, "in")
+    assert r.repair_to_mm == pytest.approx(3.81) and r.typed["repair_to"] == (0.15, "in")
+    m = resolve_units(Job(diameter=8000.0).with_lengths(repair_to=3.0), "mm")
+    assert m.diameter == 8000.0 and m.repair_to_mm == 3.0
+
+
+def test_lengths_in_inches_on_millimetre_scans():
+    job = Job(length_units="in").with_lengths(diameter=315.0, annular_width=24.0, repair_to=0.15,
+                                              patch_thickness=0.25)
+    assert job.repair_to_mm == pytest.approx(3.81)  # provisional value already right when units are stated
+    r = resolve_units(job, "mm")
+    assert r.diameter == pytest.approx(8001.0) and r.annular_width == pytest.approx(609.6)
+    assert r.repair_to_mm == pytest.approx(3.81) and r.patch_thickness_mm == pytest.approx(6.35)
+    assert r.typed["diameter"] == (315.0, "in") and r.length_units == "mm"
+    again = resolve_units(r, "mm")  # idempotent
+    assert again.diameter == r.diameter and again.repair_to_mm == r.repair_to_mm and again.typed == r.typed
+
+
+def test_polygons_and_centre_are_converted(tmp_path):
+    job = read_job(_write(tmp_path, "[report]\nunits = \"in\"\n[floor]\ndiameter = 315\ncentre = [10, 0]\n"
+                                    "[zones]\npolygons = [{name = \"a\", points = [[0, 0], [10, 0], [0, 10]]}]\n"))
+    r = resolve_units(job, "mm")
+    assert r.centre == pytest.approx((254.0, 0.0))
+    assert r.zone_polygons[0][1][1] == pytest.approx((254.0, 0.0))
+
+
+def test_resolved_lengths_are_range_checked_naming_the_origin(tmp_path):
+    job = read_job(_write(tmp_path, "[floor]\ndiameter = 100\n"))  # fine as inches, not as mm
+    assert resolve_units(job, "in").diameter == 100.0
+    with pytest.raises(InputError, match=r"job\.toml: field 'floor\.diameter': must be between 1000 and 200000 mm, "
+                       r"got 100 \(100 looks like inches: 100 in = 2540 mm\)$"):
+        resolve_units(job, "mm")
+    with pytest.raises(InputError, match=r"^--annular-width: an annular ring width of 5000 mm is not less than the "
+                       r"tank's radius \(4000 mm\)$"):
+        resolve_units(Job(diameter=8000.0).with_lengths(annular_width=5000.0), "mm")
+
+
+def test_with_lengths_checks_ranges():
+    with pytest.raises(InputError, match=r"^--diameter: must be between 39\.37 and 7874 in, got 10000 \(10000 looks like millimetres\)$"):
+        Job().with_lengths(units="in", diameter=10000.0)
+    with pytest.raises(InputError, match=r"^--repair-to: must be between 0\.1 and 50 mm \(or 0\.003937 to 1\.969 "
+                       r"in\), got 1000$"):
+        Job().with_lengths(repair_to=1000.0)
+
+
+def test_a_value_in_the_scans_units_whatever_the_job_says(tmp_path):
+    # a fleet manifest's diameter is in the scans' units even when the job file gives report.units
+    from scananalyse.job import SCAN_UNITS
+
+    job = read_job(_write(tmp_path, "[report]\nunits = \"in\"\n[repair]\nrepair_to = 0.15\n"))
+    job = job.with_lengths(units=SCAN_UNITS, diameter=8000.0, where={"diameter": "fleet.csv:2: field 'diameter'"})
+    r = resolve_units(job, "mm")
+    assert r.diameter == 8000.0 and r.repair_to_mm == pytest.approx(3.81)
+    assert r.where("diameter") == "fleet.csv:2: field 'diameter'"
