@@ -13,9 +13,10 @@ from ..errors import InputError, where
 from ..scan import FloorScan
 from .csvscan import read_csv_scan, write_csv_scan
 from .h5scan import read_h5_scan, write_h5_scan
+from .validate import check_regular_file
 
 __all__ = ["read_scan", "write_scan", "read_csv_scan", "write_csv_scan", "read_h5_scan",
-           "write_h5_scan", "CSV_EXTENSIONS", "H5_EXTENSIONS"]
+           "write_h5_scan", "CSV_EXTENSIONS", "H5_EXTENSIONS", "check_regular_file", "output_kind"]
 
 #: File extensions read and written as floor-scan CSV v1.
 CSV_EXTENSIONS = (".csv", ".txt")
@@ -31,6 +32,11 @@ def _kind(path) -> str:
         return "h5"
     raise InputError(f"{where(path)}: unknown file type {ext or '(no extension)'!r} "
                      "(use .csv or .txt for CSV, .h5 or .hdf5 for HDF5)")
+
+
+def output_kind(path) -> str:
+    """``"csv"`` or ``"h5"`` for a scan file name; :class:`InputError` for any other extension."""
+    return _kind(path)
 
 
 def read_scan(path) -> FloorScan:
@@ -50,6 +56,7 @@ def read_scan(path) -> FloorScan:
     InputError
         Unknown extension or an invalid file (one line naming the file and line or field).
     """
+    check_regular_file(path, "scan file")
     return read_csv_scan(path) if _kind(path) == "csv" else read_h5_scan(path)
 
 

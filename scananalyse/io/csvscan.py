@@ -431,8 +431,7 @@ def read_csv_scan(path) -> FloorScan:
         the format (docs/formats.md, "Validation").
     """
     path = os.fspath(path)
-    if not os.path.isfile(path):
-        raise InputError(f"{where(path)}: no such file")
+    v.check_regular_file(path, "scan file")
     hdr = _read_header(path)
     _check_format(hdr, path)
     meta, pitch_mm, factor = v.build_meta(hdr.fields, path)
@@ -470,6 +469,8 @@ def read_csv_scan(path) -> FloorScan:
     n = len(df)
     if n == 0:
         raise InputError(f"{where(path, hdr.table_line)}: the table has no data rows")
+    if grid is not None:  # the grid keys' box must hold enough scanned cells for its size
+        v.check_grid_size(grid[2], grid[3], path, hdr.fields["rows"][1], "rows", scanned=n)
     table = _Table(df)
     del df
     if commas is None or commas == n * (len(cols) - 1):
@@ -526,6 +527,8 @@ def _place_fast_body(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path)
         nrows_f = float(np.rint((y1_u - y0_u) / pitch_u)) + 1.0
         if not nrows_f * ncols_f <= v.MAX_GRID_CELLS:  # also False for NaN and inf
             return None
+        if nrows_f * ncols_f > v.SPARSE_GRID_CELLS and nrows_f * ncols_f > v.MAX_EMPTY_PER_CELL * n:
+            return None  # too sparse: refused by _place_checked
         nrows, ncols = int(nrows_f), int(ncols_f)
     else:
         x0_u, y0_u, nrows, ncols = grid
@@ -678,7 +681,7 @@ def _place_checked(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path, h
     jf, iff = index.pop("x"), index.pop("y")
     if grid is None:
         nrows_f, ncols_f = float(iff.max()) + 1.0, float(jf.max()) + 1.0
-        v.check_grid_size(nrows_f, ncols_f, path, hdr.table_line, "x, y")
+        v.check_grid_size(nrows_f, ncols_f, path, hdr.table_line, "x, y", scanned=n)
         nrows, ncols = int(nrows_f), int(ncols_f)
     elif (float(jf.min()) < 0 or float(jf.max()) >= ncols or float(iff.min()) < 0
           or float(iff.max()) >= nrows):

@@ -185,8 +185,7 @@ def read_h5_scan(path) -> FloorScan:
         One line naming the file and the field, for any violation of the layout.
     """
     path = os.fspath(path)
-    if not os.path.isfile(path):
-        raise InputError(f"{where(path)}: no such file")
+    v.check_regular_file(path, "scan file")
     with open(path, "rb") as fh:
         signature = fh.read(8)
     try:
