@@ -200,3 +200,22 @@ def test_foreign_hidden_folders_left_alone(tmp_path):
     live.mkdir()
     _make(target)
     assert odd.exists() and live.exists()
+
+
+def test_read_only_file_system_names_the_path(tmp_path, monkeypatch):
+    # as any user (root too): the temporary folder cannot be made
+    import errno
+    from pathlib import Path
+
+    real_mkdir = Path.mkdir
+
+    def read_only(self, *a, **k):
+        if ".partial-" in self.name:
+            raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(self))
+        return real_mkdir(self, *a, **k)
+
+    monkeypatch.setattr(Path, "mkdir", read_only)
+    with pytest.raises(InputError, match=r"cannot write the output folder there \(Read-only file system\)"):
+        with output_folder(tmp_path / "out"):
+            pass
+    assert list(tmp_path.iterdir()) == []
