@@ -107,15 +107,10 @@ class Shape:
 # --------------------------------------------------------------------------
 
 def _num(text: str, path, line: int, field: str, *, positive: bool = False) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise InputError(f"{where(path, line, field)}: not a number: {text!r}") from None
-    if not math.isfinite(v):
-        raise InputError(f"{where(path, line, field)}: not a finite number: {text!r}")
-    if positive and v <= 0:
-        raise InputError(f"{where(path, line, field)}: must be positive, got {text!r}")
-    return v
+    # the side files' shared number parsing (io/tables.py): finite, bounded, short
+    from .io.tables import parse_field_number
+
+    return parse_field_number(text, path, line, field, positive=positive)
 
 
 def _points(text: str, path, line: int, scale: float) -> tuple:
@@ -124,7 +119,7 @@ def _points(text: str, path, line: int, scale: float) -> tuple:
         parts = item.split()
         if len(parts) != 2:
             raise InputError(f"{where(path, line, 'points')}: vertex {k + 1} must be 'x y', "
-                             f"got {item.strip()!r}")
+                             f"got {_shown(item.strip())}")
         pts.append((_num(parts[0], path, line, "points") * scale,
                     _num(parts[1], path, line, "points") * scale))
     if len(pts) < 3:
@@ -140,15 +135,13 @@ def _points(text: str, path, line: int, scale: float) -> tuple:
 
 def _read_table(path, fmt: str, required: tuple[str, ...], optional: tuple[str, ...]):
     """Read a ``# key: value`` header plus a CSV table; yield (line, row dict), header."""
+    from .io.tables import read_text_lines, shown
+
     path = os.fspath(path)
-    try:
-        fh = open(path, newline="", encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"{where(path)}: cannot read: {exc.strerror}") from None
+    what = "shapes file" if "shapes" in fmt else "repairs file" if "repairs" in fmt else "side file"
+    lines = read_text_lines(path, what=what)
     header: dict[str, str] = {}
     rows = []
-    with fh:
-        lines = fh.read().splitlines()
     body_start = None
     for n, text in enumerate(lines, start=1):
         s = text.strip()
@@ -163,34 +156,38 @@ def _read_table(path, fmt: str, required: tuple[str, ...], optional: tuple[str, 
         break
     if header.get("format", fmt) != fmt:
         raise InputError(f"{where(path, None, 'format')}: expected {fmt!r}, "
-                         f"got {header['format']!r}")
+                         f"got {shown(header['format'])}")
     units = header.get("units", "mm")
     if units not in ("mm", "in"):
-        raise InputError(f"{where(path, None, 'units')}: must be 'mm' or 'in', got {units!r}")
+        raise InputError(f"{where(path, None, 'units')}: must be 'mm' or 'in', got {shown(units)}")
     if body_start is None:
         raise InputError(f"{where(path)}: no table (a header row is required)")
     reader = csv.reader(lines[body_start - 1:])
-    columns = [c.strip().lower() for c in next(reader)]
-    for c in required:
-        if c not in columns:
-            raise InputError(f"{where(path, body_start, c)}: required column missing")
-    for c in columns:
-        if c not in required and c not in optional:
-            raise InputError(f"{where(path, body_start, c)}: unknown column")
-    for n, values in enumerate(reader, start=body_start + 1):
-        if not values or all(not v.strip() for v in values) or values[0].lstrip().startswith("#"):
-            continue
-        if len(values) > len(columns):
-            raise InputError(f"{where(path, n)}: {len(values)} fields, header has {len(columns)}")
-        row = {c: (values[k].strip() if k < len(values) else "") for k, c in enumerate(columns)}
-        rows.append((n, row))
+    try:
+        columns = [c.strip().lower() for c in next(reader)]
+        for c in required:
+            if c not in columns:
+                raise InputError(f"{where(path, body_start, c)}: required column missing")
+        for c in columns:
+            if c not in required and c not in optional:
+                raise InputError(f"{where(path, body_start, shown(c, quote=False))}: unknown column")
+        for values in reader:
+            n = body_start + reader.line_num - 1
+            if not values or all(not v.strip() for v in values) or values[0].lstrip().startswith("#"):
+                continue
+            if len(values) > len(columns):
+                raise InputError(f"{where(path, n)}: {len(values)} fields, header has {len(columns)}")
+            row = {c: (values[k].strip() if k < len(values) else "") for k, c in enumerate(columns)}
+            rows.append((n, row))
+    except csv.Error as exc:
+        raise InputError(f"{where(path, body_start + reader.line_num - 1)}: cannot read as CSV ({exc})") from None
     return path, header, units, rows
 
 
 def _parse_geometry(row: dict, path, n: int, scale: float) -> dict:
     kind = row["shape"].lower()
     if kind not in _SHAPE_KINDS:
-        raise InputError(f"{where(path, n, 'shape')}: unknown shape {row['shape']!r} "
+        raise InputError(f"{where(path, n, 'shape')}: unknown shape {_shown(row['shape'])} "
                          f"(circle, rect or polygon)")
     geo: dict = {"kind": kind}
 
@@ -238,7 +235,7 @@ def read_shapes(path, *, scan: FloorScan | None = None) -> list[Shape]:
     for n, row in rows:
         side_name = row["side"].lower()
         if side_name not in SIDE_CODES:
-            raise InputError(f"{where(path, n, 'side')}: bad side {row['side']!r} "
+            raise InputError(f"{where(path, n, 'side')}: bad side {_shown(row['side'])} "
                              f"(top, under or unknown)")
         geo = _parse_geometry(row, path, n, scale)
         shape = Shape(side=SIDE_CODES[side_name], source=path, line=n, **geo)
@@ -503,4 +500,10 @@ def _parse_date(text: str, path, n: int, field: str) -> _dt.date:
     try:
         return _dt.date.fromisoformat(text)
     except ValueError:
-        raise InputError(f"{where(path, n, field)}: not an ISO date (YYYY-MM-DD): {text!r}") from None
+        raise InputError(f"{where(path, n, field)}: not an ISO date (YYYY-MM-DD): {_shown(text)}") from None
+
+
+def _shown(text) -> str:
+    from .io.tables import shown
+
+    return shown(text)

@@ -138,11 +138,14 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="the whole job on the shipped sample scans")
     p.add_argument("--out", default="demo_out", type=_path, help="output folder (default demo_out)")
     p.add_argument("--units", choices=["mm", "in"], default=None, help="display units")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing output folder (only a complete earlier output)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
     p = sub.add_parser("fleet", help="many tanks on a Dask cluster, ranked by urgency")
     p.add_argument("manifest", type=_input_file, help="CSV with columns tank,old,new,diameter (paths relative to it)")
-    p.add_argument("--out", required=True, type=_path, help="output folder")
+    p.add_argument("--out", required=True, type=_path,
+                   help="output folder (created; or an earlier fleet output folder, whose complete tanks are kept)")
     p.add_argument("--workers", type=_number(int, 1, 1024, what="a whole number"), default=None, help="local cluster worker processes (default: cores)")
     p.add_argument("--scheduler", default=None, help="address of an existing Dask scheduler")
     p.add_argument("--force", action="store_true", help="recompute tanks whose results exist")
@@ -237,15 +240,30 @@ def _cmd_check(args) -> int:
 
 
 def _cmd_convert(args) -> int:
-    from .io import read_scan, write_scan
+    from .io import check_regular_file, output_kind, read_scan, write_scan
 
-    if os.path.abspath(args.input) == os.path.abspath(args.output):
-        raise InputError(f"{args.output}: output is the input file; inputs are never modified")
-    if os.path.exists(args.output) and not args.force:
-        raise InputError(f"{args.output}: exists; use --force to replace it")
+    out = args.output
+    output_kind(out)  # an unknown extension is refused before anything is read
+    if os.path.isdir(out):
+        raise InputError(f"{out}: is a folder; give a file name (.csv or .h5) for the converted scan")
+    check_regular_file(args.input)
+    if os.path.lexists(out):
+        try:
+            same = os.path.exists(out) and os.path.samefile(args.input, out)
+        except OSError:
+            same = False
+        if same:  # the same file, whatever the path strings (links, symlinked folders)
+            raise InputError(f"{out}: output is the input file; inputs are never modified")
+        if not args.force:
+            raise InputError(f"{out}: exists; use --force to replace it")
+        if os.path.exists(out) and not os.path.isfile(out):
+            raise InputError(f"{out}: exists and is not a regular file; not replaced")
     scan = read_scan(args.input)
-    write_scan(scan, args.output)
-    print(f"wrote {args.output}")
+    try:
+        write_scan(scan, out)
+    except OSError as exc:
+        raise InputError(f"{exc.filename or out}: cannot write ({exc.strerror or type(exc).__name__})") from None
+    print(f"wrote {out}")
     return 0
 
 
@@ -277,9 +295,15 @@ def _cmd_assess(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .pipeline import run_demo
+    from .job import Job
+    from .pipeline import DEMO, compare, sample_dir
 
-    res = run_demo(out_dir=args.out, units=args.units, quiet=args.quiet)
+    # like compare: an existing folder is refused unless --force, and then only a complete
+    # earlier output of scananalyse is replaced (outputs.output_folder)
+    d = sample_dir()
+    job = Job(diameter=DEMO["diameter"], repairs=str(d / DEMO["repairs"]), units=args.units or "mm")
+    res = compare(d / DEMO["old"], d / DEMO["new"], job=job, out_dir=args.out, force=args.force,
+                  quiet=args.quiet)
     print(res.console_summary())
     return 0
 

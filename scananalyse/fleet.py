@@ -8,6 +8,15 @@ processes on loopback is started; with an address, an existing cluster is used
 fleet.  A rerun skips tanks whose complete results already exist unless
 ``force``.
 
+The output folder is the fleet's own: it is created by the run (and marked with
+:data:`FLEET_MARKER`), or it is an earlier fleet output folder carrying that marker.
+Any other existing folder (for example the folder holding the scans) is refused,
+with or without ``force``, so nothing the fleet did not write is ever replaced or
+removed.  Two fleet runs never write into one folder at the same time (a lock on
+the marker).  Each tank's folder is published like any output folder
+(:func:`scananalyse.outputs.output_folder`): ``force`` replaces only a complete
+earlier output of the tool.
+
 Manifest: CSV with columns ``tank,old,new,diameter`` (diameter in the scans'
 units); optional column ``job`` (a TOML job file).  Paths are relative to the
 manifest and may not escape its folder.
@@ -17,6 +26,7 @@ from __future__ import annotations
 
 import csv
 import datetime as _dt
+import errno
 import html
 import math
 import os
@@ -31,13 +41,23 @@ from . import CAUTION, __version__
 from .errors import InputError
 from .job import resolve_path
 
-__all__ = ["read_manifest", "run_tank", "run_fleet", "rank_fleet", "FLEET_COLUMNS"]
+__all__ = ["read_manifest", "run_tank", "run_fleet", "rank_fleet", "FLEET_COLUMNS", "FLEET_MARKER",
+           "claim_fleet_folder", "tank_folders"]
+
+#: Marker file of a fleet output folder (hidden), written when the run creates the folder;
+#: its first line is :data:`FLEET_SIGNATURE`.
+FLEET_MARKER = ".scananalyse-fleet"
+FLEET_SIGNATURE = "scananalyse fleet output folder"
+#: Files the fleet writes at the top of its folder: no tank folder takes these names.
+_FLEET_FILES = ("fleet.csv", "fleet.html", "population.csv", FLEET_MARKER)
 
 FLEET_COLUMNS = [
     "rank", "tank", "status", "interval_recommended_y", "worst_zone", "next_due", "limiting", "flags",
     "below_mrt", "code_exceeds_local", "report", "error", "seconds",
 ]
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
+#: Largest manifest read. [bytes]
+_MAX_MANIFEST_BYTES = 16 << 20
 
 
 def _safe_name(tank: str) -> str:
@@ -45,17 +65,93 @@ def _safe_name(tank: str) -> str:
     return s or "tank"
 
 
+def tank_folders(entries: list[dict]) -> list[str]:
+    """One folder name per tank: the tank name made safe (:func:`_safe_name`), made unique
+    (``-2``, ``-3``, ... compared ignoring case) and never one of the fleet's own files."""
+    used = {n.lower() for n in _FLEET_FILES}
+    out = []
+    for e in entries:
+        base = _safe_name(e["tank"])
+        name, k = base, 1
+        while name.lower() in used:
+            k += 1
+            name = f"{base}-{k}"
+        used.add(name.lower())
+        out.append(name)
+    return out
+
+
+def claim_fleet_folder(out_dir, *, force: bool = False):
+    """Create the fleet's output folder, or accept an earlier fleet output folder; lock it.
+
+    Returns ``(folder, lock)``: the absolute folder and an open file holding an exclusive
+    lock on its marker (close it to release).  Raises :class:`InputError` for a path that
+    is a file or a link, an existing folder without :data:`FLEET_MARKER` (never written by
+    a fleet run: it is refused even with ``force``, so a folder of scans is never written
+    into), a folder another fleet run is writing, or a location that cannot be written.
+    """
+    import fcntl
+
+    shown = os.fspath(out_dir)
+    out = Path(os.path.abspath(shown))
+    if os.path.islink(out):
+        raise InputError(f"{shown}: is a symbolic link; give the output folder itself")
+    created = False
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        os.mkdir(out)  # the claim: fails if anything is there
+        created = True
+    except FileExistsError:
+        pass
+    except OSError as exc:
+        raise InputError(f"{shown}: cannot create the output folder ({exc.strerror or exc})") from None
+    marker = out / FLEET_MARKER
+    if created:
+        try:
+            marker.write_text(f"{FLEET_SIGNATURE}\n", encoding="utf-8")
+        except OSError as exc:
+            raise InputError(f"{marker}: cannot write ({exc.strerror or exc})") from None
+    elif not out.is_dir():
+        raise InputError(f"{shown}: exists and is not a folder")
+    try:
+        ok = (marker.is_file() and not marker.is_symlink()
+              and marker.read_text(encoding="utf-8").splitlines()[:1] == [FLEET_SIGNATURE])
+    except (OSError, UnicodeDecodeError):
+        ok = False
+    if not ok:
+        raise InputError(f"{shown}: exists and is not a fleet output folder of scananalyse (no {FLEET_MARKER} "
+                         "marker); fleet writes only into a new folder or its own earlier output, "
+                         "even with --force; choose a new folder")
+    lock = open(marker, "rb")
+    try:
+        fcntl.flock(lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError as exc:
+        lock.close()
+        if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+            raise InputError(f"{shown}: another fleet run is writing this folder") from None
+        raise
+    return out, lock
+
+
 def read_manifest(path) -> list[dict]:
     """Read and check a fleet manifest; returns one dict per tank with absolute paths."""
+    from .io.validate import check_regular_file
+
     path = Path(path)
     name = os.fspath(path)
+    check_regular_file(name, "fleet manifest (CSV)")
+    if path.stat().st_size > _MAX_MANIFEST_BYTES:
+        raise InputError(f"{name}: manifest larger than {_MAX_MANIFEST_BYTES // (1 << 20)} MiB; not a fleet manifest")
     try:
         text = path.read_bytes().decode("utf-8-sig")
     except OSError as exc:
         raise InputError(f"{name}: cannot read manifest ({exc.strerror or exc})") from None
     except UnicodeDecodeError as exc:
         raise InputError(f"{name}: not UTF-8 text (byte {exc.start})") from None
-    rows = list(csv.reader(text.splitlines()))
+    try:
+        rows = list(csv.reader(text.splitlines()))
+    except csv.Error as exc:
+        raise InputError(f"{name}: cannot read as CSV ({exc})") from None
     if not rows:
         raise InputError(f"{name}:1: empty manifest; expected columns tank,old,new,diameter")
     header = [h.strip().lower() for h in rows[0]]
@@ -112,28 +208,29 @@ def _row_from_zones(tank: str, zones: pd.DataFrame, report: str) -> dict:
 
 
 def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
-    """Run one tank's compare into ``out_root/<tank>``; never raises for bad input.
+    """Run one tank's compare into ``out_root/<folder>``; never raises for bad input.
 
-    Returns a fleet row (dict).  Bad input gives a row with status ``error`` and
-    the one-line message; an internal fault gives status ``fault``.
+    ``entry["folder"]`` names the tank's folder (:func:`tank_folders`; default the safe
+    tank name).  Returns a fleet row (dict).  Bad input gives a row with status ``error``
+    and the one-line message; an internal fault gives status ``fault``.
     """
     from .job import Job, read_job
-    from .outputs import COMPLETE_MARKER
+    from .outputs import is_complete_output
     from .pipeline import compare
 
     t0 = time.perf_counter()
     tank = entry["tank"]
-    folder = Path(out_root) / _safe_name(tank)
+    folder = Path(out_root) / (entry.get("folder") or _safe_name(tank))
     report = os.path.join(folder.name, "report.html")
     try:
-        if (folder / COMPLETE_MARKER).exists() and not force:
+        if is_complete_output(folder) and not force:
             zones = pd.read_csv(folder / "zones.csv")
             row = _row_from_zones(tank, zones, report)
             row["status"] = "ok (kept)"
         else:
             job = read_job(entry["job"]) if entry.get("job") else Job()
             job = job.replace(diameter=entry["diameter"])
-            res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=True, quiet=True)
+            res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
             row = _row_from_zones(tank, res.zones, report)
     except InputError as exc:
         row = {"tank": tank, "status": "error", "error": str(exc), "report": ""}
@@ -199,11 +296,23 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
 
     Returns a dict with ``table`` (the ranked DataFrame), ``summary`` (text) and ``seconds``.
     """
-    from dask.distributed import Client, LocalCluster, as_completed
+    from .io.tables import write_csv
+    from .io.validate import atomic_output
 
     entries = read_manifest(manifest)
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    for e, folder in zip(entries, tank_folders(entries)):
+        e["folder"] = folder
+    out, lock = claim_fleet_folder(out_dir, force=force)
+    try:
+        return _run_fleet(entries, out, workers=workers, scheduler=scheduler, force=force, quiet=quiet,
+                          timeout_s=timeout_s, write_csv=write_csv, atomic_output=atomic_output)
+    finally:
+        lock.close()
+
+
+def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_s, write_csv, atomic_output):
+    from dask.distributed import Client, LocalCluster, as_completed
+
     t0 = time.perf_counter()
     cluster = None
     if scheduler:
@@ -239,12 +348,12 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
         if cluster is not None:
             cluster.close()
     df = rank_fleet(rows)
-    tmp = out / ".fleet.csv.partial"
-    df.to_csv(tmp, index=False)
-    os.replace(tmp, out / "fleet.csv")
-    tmp = out / ".fleet.html.partial"
-    tmp.write_text(_fleet_html(df), encoding="utf-8")
-    os.replace(tmp, out / "fleet.html")
+    try:
+        write_csv(df, out / "fleet.csv")  # text cells neutralised against spreadsheet formulas
+        with atomic_output(out / "fleet.html") as tmp:
+            Path(tmp).write_text(_fleet_html(df), encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"{exc.filename or out}: cannot write ({exc.strerror or exc})") from None
     secs = time.perf_counter() - t0
     ok = int(df["status"].astype(str).str.startswith("ok").sum())
     summary = (f"fleet: {len(df)} tanks, {ok} assessed, {len(df) - ok} failed, in {secs:.1f} s; "

@@ -414,14 +414,7 @@ def write_indications_csv(df: pd.DataFrame, path) -> None:
             out[c] = out[c].astype(float).round(4)
         elif c == "area_m2":
             out[c] = out[c].astype(float).round(6)
-    d = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".indications-", suffix=".csv", dir=d)
-    try:
-        with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
-            out.to_csv(fh, index=False)
-        publish_file(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    from .io.tables import write_csv
+
+    write_csv(out, path)  # atomic; text cells neutralised against spreadsheet formulas
 

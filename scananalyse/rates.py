@@ -137,6 +137,11 @@ class Repair:
     thickness: float | None = None
 
 
+#: Thickest plate a repair record may give (the scan readers' bound on a nominal floor
+#: plate, io.validate.MAX_NOMINAL_MM). [mm]
+_MAX_REPAIR_THICKNESS_MM = 100.0
+
+
 def read_repairs(path, *, scan: FloorScan | None = None) -> list[Repair]:
     """Read an operator repair-record file (format ``scananalyse-repairs 1``).
 
@@ -162,6 +167,10 @@ def read_repairs(path, *, scan: FloorScan | None = None) -> list[Repair]:
         thick = None
         if row.get("thickness"):
             thick = _num(row["thickness"], path, n, "thickness", positive=True) * scale
+            if thick > _MAX_REPAIR_THICKNESS_MM:  # the scans' own bound on a nominal plate
+                raise InputError(f"{where(path, n, 'thickness')}: {thick:g} mm is above the limit of "
+                                 f"{_MAX_REPAIR_THICKNESS_MM:g} mm for a floor plate; wrong units or a "
+                                 "typing error")
         shape = Shape(side=0, source=path, line=n, **geo)
         if scan is not None:
             _check_inside(shape, scan)

@@ -1155,45 +1155,36 @@ def write_patches_csv(patches, path) -> None:
     patches : patch table. [-]
     path : output file. [-]
     """
+    from .io.tables import write_csv
+
     _validate_table(patches)
     cols = [c for c in PATCH_COLUMNS if c in patches.columns]
-
-    def _w(tmp):
-        patches[cols].to_csv(tmp, index=False, float_format="%.6g", lineterminator="\n")
-    _atomic_write(path, _w)
+    # text cells (patch ids, zones, flags) neutralised against spreadsheet formulas
+    write_csv(patches[cols], path, float_format="%.6g")
 
 
-def _num_field(text, path, line, name, *, positive=False, nonneg=False, allow_blank=False):
-    s = text.strip()
-    if s == "":
-        if allow_blank:
-            return math.nan
-        raise InputError(f"{where(path, line, name)}: value missing")
-    try:
-        v = float(s)
-    except ValueError:
-        raise InputError(f"{where(path, line, name)}: not a number: {s!r}") from None
-    if not math.isfinite(v):
-        raise InputError(f"{where(path, line, name)}: must be finite, got {s!r}")
-    if positive and v <= 0:
-        raise InputError(f"{where(path, line, name)}: must be > 0, got {s}")
-    if nonneg and v < 0:
-        raise InputError(f"{where(path, line, name)}: must be >= 0, got {s}")
-    return v
+def _num_field(text, path, line, name, *, positive=False, nonneg=False, allow_blank=False, **bounds):
+    # the side files' shared number parsing (io/tables.py): finite, bounded, short
+    from .io.tables import parse_field_number
+
+    return parse_field_number(text, path, line, name, positive=positive, nonneg=nonneg,
+                              allow_blank=allow_blank, **bounds)
 
 
 def _read_patches_csv(path):
+    from .io.tables import check_patch_thickness, csv_fields, read_text_lines, shown
+
     rows = []
-    with open(path, newline="", encoding="utf-8-sig") as fh:
-        lines = [(k + 1, ln) for k, ln in enumerate(fh.read().splitlines())]
+    lines = list(enumerate(read_text_lines(path, what="patch file"), start=1))
     body = [(n, ln) for n, ln in lines if ln.strip() and not ln.lstrip().startswith("#")]
     if not body:
         raise InputError(f"{where(path, 1)}: no header row")
     hline, header = body[0]
-    cols = [c.strip() for c in next(csv.reader([header]))]
+    cols = [c.strip() for c in csv_fields(header, path, hline)]
     for c in cols:
         if c not in PATCH_COLUMNS:
-            raise InputError(f"{where(path, hline, c)}: unknown column (expected {', '.join(PATCH_COLUMNS)})")
+            raise InputError(f"{where(path, hline, shown(c, quote=False))}: unknown column "
+                             f"(expected {', '.join(PATCH_COLUMNS)})")
     if len(set(cols)) != len(cols):
         dup = next(c for c in cols if cols.count(c) > 1)
         raise InputError(f"{where(path, hline, dup)}: duplicate column")
@@ -1202,13 +1193,15 @@ def _read_patches_csv(path):
             raise InputError(f"{where(path, hline, c)}: required column missing")
     seen = set()
     for n, ln in body[1:]:
-        vals = next(csv.reader([ln]))
+        vals = csv_fields(ln, path, n)
         if len(vals) != len(cols):
             raise InputError(f"{where(path, n)}: expected {len(cols)} fields, got {len(vals)}")
         r = dict(zip(cols, vals))
         pid = r["patch"].strip()
         if not pid:
             raise InputError(f"{where(path, n, 'patch')}: empty patch id")
+        if len(pid) > 200:
+            raise InputError(f"{where(path, n, 'patch')}: patch id of {len(pid)} characters (at most 200)")
         if pid in seen:
             raise InputError(f"{where(path, n, 'patch')}: duplicate patch id {pid!r}")
         seen.add(pid)
@@ -1227,44 +1220,91 @@ def _read_patches_csv(path):
             raise InputError(f"{where(path, n, 'corner_radius_mm')}: exceeds half the smaller side "
                              f"({rad:g} > {min(xb - xa, yb - ya) / 2.0:g})")
         thk = _num_field(r.get("thickness_mm", ""), path, n, "thickness_mm", positive=True, allow_blank=True)
+        check_patch_thickness(thk, path, n)
         for opt in ("area_m2", "mass_kg", "n_cells_covered"):
             if opt in r:
-                _num_field(r[opt], path, n, opt, nonneg=True, allow_blank=True)
-        rows.append({"patch": pid, "zone": r.get("zone", "").strip(), "x_min_mm": xa, "y_min_mm": ya,
+                _num_field(r[opt], path, n, opt, nonneg=True, allow_blank=True, limit=None)
+        rows.append({"patch": pid, "zone": r.get("zone", "").strip()[:200], "x_min_mm": xa, "y_min_mm": ya,
                      "x_max_mm": xb, "y_max_mm": yb, "corner_radius_mm": rad, "thickness_mm": thk,
-                     "flags": r.get("flags", "").strip(), "note": ""})
+                     "flags": r.get("flags", "").strip()[:1000], "note": ""})
     return rows
 
 
-def _dxf_outline_rect(e, kind):
-    """(rect, radius, exact) of one closed outline; exact = it is a rounded rectangle."""
-    from ezdxf import path as _path
+def _bulge_outline(vb):
+    """Bounding box and area of a closed outline of straight and circular pieces, exactly.
 
+    ``vb`` is the (n, 3) array of vertices ``x, y, bulge``; the piece from vertex k to the
+    next is an arc of ``4·atan(bulge)`` radians (positive counter-clockwise), or straight
+    for bulge 0.  Computed from the arcs' centres and radii, never by flattening, so an
+    absurd bulge costs nothing (its extent is then refused by the caller).
+
+    Returns
+    -------
+    (rect, area, radius) : ``(x_min, y_min, x_max, y_max)``, the enclosed area, and the
+    radius of the first arc (0 when there is none). [drawing units]
+    """
+    n = len(vb)
+    xs, ys = list(vb[:, 0]), list(vb[:, 1])
+    twice = 0.0  # twice the signed area of the straight polygon (shoelace)
+    arcs = 0.0   # signed areas of the circular segments
+    first_r = 0.0
+    for k in range(n):
+        x1, y1, b = vb[k]
+        x2, y2 = vb[(k + 1) % n, :2]
+        twice += x1 * y2 - x2 * y1
+        if b == 0 or not math.isfinite(b):
+            if not math.isfinite(b):
+                return None
+            continue
+        c = math.hypot(x2 - x1, y2 - y1)
+        if c == 0:
+            continue
+        theta = 4.0 * math.atan(b)  # signed sweep
+        r = c / (2.0 * abs(math.sin(theta / 2.0)))
+        if not math.isfinite(r):
+            return None
+        if first_r == 0.0:
+            first_r = r
+        # centre: chord midpoint + offset along the left normal (DXF bulge convention)
+        mx, my = (x1 + x2) / 2.0, (y1 + y2) / 2.0
+        off = (c / 2.0) * (1.0 - b * b) / (2.0 * b)
+        nx, ny = -(y2 - y1) / c, (x2 - x1) / c
+        cx, cy = mx + off * nx, my + off * ny
+        arcs += 0.5 * r * r * (theta - math.sin(theta))
+        a1 = math.atan2(y1 - cy, x1 - cx)
+        for phi, (px, py) in ((0.0, (cx + r, cy)), (math.pi / 2, (cx, cy + r)), (math.pi, (cx - r, cy)),
+                              (1.5 * math.pi, (cx, cy - r))):
+            swept = (phi - a1) % (2 * math.pi) if theta > 0 else (a1 - phi) % (2 * math.pi)
+            if swept <= abs(theta):
+                xs.append(px)
+                ys.append(py)
+    area = abs(0.5 * twice + arcs)
+    return (min(xs), min(ys), max(xs), max(ys)), area, first_r
+
+
+def _dxf_outline_rect(e, kind):
+    """(rect, radius, exact) of one closed outline; exact = it is a rounded rectangle;
+    None when a coordinate or a bulge is not finite."""
     if kind == "CIRCLE":
         cx, cy = e.dxf.center.x, e.dxf.center.y
         r = float(e.dxf.radius)
+        if not (math.isfinite(cx) and math.isfinite(cy) and math.isfinite(r) and r > 0):
+            return None
         return (cx - r, cy - r, cx + r, cy + r), r, True
-    p = _path.make_path(e)
-    pts = np.array([(v.x, v.y) for v in p.flattening(distance=0.001)])
-    rect = (float(pts[:, 0].min()), float(pts[:, 1].min()), float(pts[:, 0].max()), float(pts[:, 1].max()))
-    # polygon area of the flattened outline (shoelace)
-    area = 0.5 * abs(float(np.dot(pts[:-1, 0], pts[1:, 1]) - np.dot(pts[1:, 0], pts[:-1, 1])
-                           + pts[-1, 0] * pts[0, 1] - pts[0, 0] * pts[-1, 1]))
     if kind == "LWPOLYLINE":
         vb = np.array([(x, y, b) for x, y, b in e.get_points("xyb")], dtype=np.float64)
     else:
         vb = np.array([(v.dxf.location.x, v.dxf.location.y, v.dxf.bulge) for v in e.vertices],
                       dtype=np.float64)
-    radius = 0.0
-    bul = vb[:, 2]
-    if np.any(bul != 0):
-        k = int(np.flatnonzero(bul != 0)[0])
-        a = vb[k, :2]
-        b = vb[(k + 1) % len(vb), :2]
-        chord = float(np.hypot(*(b - a)))
-        theta = 4.0 * math.atan(abs(float(bul[k])))
-        radius = chord / (2.0 * math.sin(theta / 2.0)) if theta > 0 else 0.0
+    if vb.ndim != 2 or len(vb) < 2 or not np.isfinite(vb).all():
+        return None
+    got = _bulge_outline(vb)
+    if got is None:
+        return None
+    rect, area, radius = got
     w, h = rect[2] - rect[0], rect[3] - rect[1]
+    if not (math.isfinite(w) and math.isfinite(h)):
+        return None
     radius = min(radius, min(w, h) / 2.0)
     expected = float(rounded_rect_area_mm2(w, h, radius))
     exact = abs(area - expected) <= 1e-4 * max(expected, 1.0) + 1e-3 * (w + h)
@@ -1273,14 +1313,49 @@ def _dxf_outline_rect(e, kind):
     return rect, radius, exact
 
 
+class _TextGrid:
+    """The drawing's texts in square buckets, so that each outline looks only at the texts
+    in the buckets its rectangle overlaps (near-linear in the number of outlines and texts
+    instead of their product)."""
+
+    def __init__(self, texts, cell):
+        self.cell = cell
+        self.buckets: dict = {}
+        for k, (x, y, txt) in enumerate(texts):
+            self.buckets.setdefault((math.floor(x / cell), math.floor(y / cell)), []).append(k)
+        self.texts = texts
+
+    def inside(self, rect):
+        c = self.cell
+        i0, i1 = math.floor(rect[0] / c), math.floor(rect[2] / c)
+        j0, j1 = math.floor(rect[1] / c), math.floor(rect[3] / c)
+        if (i1 - i0 + 1) * (j1 - j0 + 1) > len(self.buckets):  # a big outline: look at every bucket
+            keys = [k for k in self.buckets if i0 <= k[0] <= i1 and j0 <= k[1] <= j1]
+        else:
+            keys = [(i, j) for i in range(i0, i1 + 1) for j in range(j0, j1 + 1)]
+        for key in keys:
+            for k in self.buckets.get(key, ()):
+                x, y, txt = self.texts[k]
+                if rect[0] <= x <= rect[2] and rect[1] <= y <= rect[3]:
+                    yield k, x, y, txt
+
+
 def _read_patches_dxf(path):
     import ezdxf
 
+    from .io.tables import MAX_LENGTH_MM, MAX_SIDE_FILE_BYTES, check_patch_thickness
+
+    if os.path.getsize(path) > MAX_SIDE_FILE_BYTES:
+        raise InputError(f"{where(path)}: larger than {MAX_SIDE_FILE_BYTES >> 20} MiB; not a patch drawing")
     try:
         doc = ezdxf.readfile(path)
-    except (OSError, ezdxf.DXFError) as exc:
+    except (OSError, ezdxf.DXFError, UnicodeDecodeError, ValueError, TypeError, KeyError, IndexError,
+            AttributeError, RecursionError) as exc:
         raise InputError(f"{where(path)}: not a readable DXF file ({type(exc).__name__})") from None
-    code = int(doc.header.get("$INSUNITS", 0) or 0)
+    try:
+        code = int(doc.header.get("$INSUNITS", 0) or 0)
+    except (TypeError, ValueError):
+        raise InputError(f"{where(path, field='$INSUNITS')}: not a unit code") from None
     if code == 0:
         scale = 1.0  # unitless drawings are taken as mm
     elif code in _DXF_UNITS_MM:
@@ -1305,33 +1380,46 @@ def _read_patches_dxf(path):
             outlines.append((e, kind))
         elif kind == "CIRCLE":
             outlines.append((e, kind))
-        elif kind == "TEXT":
-            texts.append((e.get_placement()[1], e.dxf.text.strip()))
-        elif kind == "MTEXT":
-            texts.append((e.dxf.insert, e.plain_text().strip()))
+        elif kind in ("TEXT", "MTEXT"):
+            pt = e.get_placement()[1] if kind == "TEXT" else e.dxf.insert
+            txt = (e.dxf.text if kind == "TEXT" else e.plain_text()).strip()[:200]
+            px, py = float(pt[0]) * scale, float(pt[1]) * scale
+            if txt and math.isfinite(px) and math.isfinite(py):
+                texts.append((px, py, txt))
         else:
             skipped[kind] = skipped.get(kind, 0) + 1
     if skipped:
         what = ", ".join(f"{n} {k}" for k, n in sorted(skipped.items()))
         warnings.warn(f"{where(path)}: ignored entities that are not closed outlines: {what}",
                       ScanWarning, stacklevel=3)
-    rows, seen = [], set()
-    approx = 0
+    shapes = []
     for k, (e, kind) in enumerate(outlines):
-        rect, radius, exact = _dxf_outline_rect(e, kind)
+        field = f"{kind} handle {e.dxf.handle}"
+        got = _dxf_outline_rect(e, kind)
+        if got is None:
+            raise InputError(f"{where(path, field=field)}: a coordinate, radius or bulge is not a finite number")
+        rect, radius, exact = got
         rect = tuple(v * scale for v in rect)
         radius *= scale
+        if not all(math.isfinite(v) and abs(v) <= MAX_LENGTH_MM for v in rect):
+            raise InputError(f"{where(path, field=field)}: outline reaches beyond {MAX_LENGTH_MM:g} mm from "
+                             "the origin (a huge bulge, a typing error or wrong units?)")
         if rect[2] - rect[0] <= 0 or rect[3] - rect[1] <= 0:
-            raise InputError(f"{where(path, field=f'{kind} handle {e.dxf.handle}')}: outline has no area")
+            raise InputError(f"{where(path, field=field)}: outline has no area")
+        shapes.append((e, kind, rect, radius, exact, field))
+    # each outline is named by the nearest text inside it that no earlier outline took
+    sizes = [max(r[2] - r[0], r[3] - r[1]) for _, _, r, _, _, _ in shapes]
+    grid = _TextGrid(texts, max(float(np.median(sizes)) if sizes else 1.0, 1e-3))
+    rows, seen = [], set()
+    approx = 0
+    for k, (e, kind, rect, radius, exact, field) in enumerate(shapes):
         cx, cy = (rect[0] + rect[2]) / 2.0, (rect[1] + rect[3]) / 2.0
         pid = ""
-        best = math.inf
-        for pt, txt in texts:
-            px, py = pt[0] * scale, pt[1] * scale
-            if txt and rect[0] <= px <= rect[2] and rect[1] <= py <= rect[3]:
-                d = math.hypot(px - cx, py - cy)
-                if d < best and txt not in seen:
-                    pid, best = txt, d
+        best = (math.inf, -1)
+        for j, px, py, txt in grid.inside(rect):
+            d = (math.hypot(px - cx, py - cy), j)  # ties: the earlier text, as in the drawing
+            if d < best and txt not in seen:
+                pid, best = txt, d
         if not pid:
             pid = f"D{k + 1:03d}"
             while pid in seen:
@@ -1342,9 +1430,16 @@ def _read_patches_dxf(path):
             tags = list(e.get_xdata(_DXF_APPID))
             for a, b in zip(tags, tags[1:]):
                 if a.code == 1000 and a.value == "thickness_mm" and b.code == 1040:
-                    thk = float(b.value) * scale
+                    # stored in mm whatever the drawing's unit (write_patches_dxf): not scaled
+                    try:
+                        thk = float(b.value)
+                    except (TypeError, ValueError):
+                        thk = math.inf
+                    if not math.isfinite(thk):
+                        raise InputError(f"{where(path, field=field)}: thickness_mm is not a finite number")
+                    check_patch_thickness(thk, path, None, f"{field} thickness_mm")
                 if a.code == 1000 and a.value == "zone" and b.code == 1000:
-                    zone = str(b.value)
+                    zone = str(b.value)[:200]
         note = "" if exact else f"bounding rectangle of a {kind} outline"
         approx += 0 if exact else 1
         rows.append({"patch": pid, "zone": zone, "x_min_mm": rect[0], "y_min_mm": rect[1],
@@ -1386,16 +1481,17 @@ def read_patches(path, *, rules=None) -> pd.DataFrame:
         from .rules import get_ruleset
         rules = get_ruleset()
     density_kg_m3 = rules.v("steel_density_kg_m3")
+    from .io.validate import check_regular_file
+
     p = os.fspath(path)
-    if not os.path.isfile(p):
-        raise InputError(f"{where(p)}: no such file")
     ext = os.path.splitext(p)[1].lower()
-    if ext == ".csv":
-        rows = _read_patches_csv(p)
-    elif ext == ".dxf":
-        rows = _read_patches_dxf(p)
-    else:
+    if ext not in (".csv", ".dxf"):
         raise InputError(f"{where(p)}: patch files must be .csv or .dxf")
+    check_regular_file(p, "patch file")
+    rows = _read_patches_csv(p) if ext == ".csv" else _read_patches_dxf(p)
+    if not rows:  # nothing to re-assess with: refuse rather than report an unrepaired floor
+        raise InputError(f"{where(p)}: no usable patch in the file ("
+                         + ("no data rows" if ext == ".csv" else "no closed outline") + ")")
     df = pd.DataFrame(rows, columns=["patch", "zone", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm",
                                      "corner_radius_mm", "thickness_mm", "flags", "note"])
     for c in ("x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm", "corner_radius_mm", "thickness_mm"):

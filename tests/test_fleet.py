@@ -94,3 +94,46 @@ def test_fleet_time_limit_gives_rows_not_a_hang(fleet_dir, tmp_path):
     assert len(df) == 3 and (df["status"] == "timeout").any()
     assert df[df["status"] == "timeout"]["error"].str.contains("no result within").all()
     assert (tmp_path / "f" / "fleet.csv").is_file()
+
+
+# --------------------------------------------------------------------------- issue 22
+def test_fleet_refuses_the_folder_of_the_scans(fleet_dir):
+    # the folder holding the scans is not the fleet's: refused, even with --force, nothing touched
+    from scananalyse.cli import main
+
+    before = sorted(str(p.relative_to(fleet_dir)) for p in fleet_dir.rglob("*"))
+    for extra in ([], ["--force"]):
+        status = main(["fleet", str(fleet_dir / "manifest.csv"), "--out", str(fleet_dir), "--quiet"] + extra)
+        assert status == 2
+    assert sorted(str(p.relative_to(fleet_dir)) for p in fleet_dir.rglob("*")) == before
+
+
+def test_fleet_folder_claim_and_lock(tmp_path):
+    from scananalyse.fleet import FLEET_MARKER, claim_fleet_folder
+
+    out, lock = claim_fleet_folder(tmp_path / "f")
+    assert (out / FLEET_MARKER).is_file()
+    with pytest.raises(InputError, match="another fleet run is writing this folder"):
+        claim_fleet_folder(tmp_path / "f")
+    lock.close()
+    out2, lock2 = claim_fleet_folder(tmp_path / "f", force=True)  # its own earlier output
+    lock2.close()
+    (tmp_path / "user").mkdir()
+    with pytest.raises(InputError, match="user: exists and is not a fleet output folder"):
+        claim_fleet_folder(tmp_path / "user", force=True)
+    assert list((tmp_path / "user").iterdir()) == []
+
+
+def test_tank_folders_unique_and_not_the_fleet_files():
+    from scananalyse.fleet import tank_folders
+
+    names = tank_folders([{"tank": t} for t in ("TK 1", "TK_1", "tk_1", "fleet.csv", "..", "A")])
+    assert names == ["TK_1", "TK_1-2", "tk_1-3", "fleet.csv-2", "tank", "A"]
+
+
+def test_fleet_csv_neutralises_formulas(tmp_path):
+    # a tank name that a spreadsheet would run as a formula reaches fleet.csv inert
+    (tmp_path / "m.csv").write_text('tank,old,new,diameter\n"=HYPERLINK(""x"")",a.h5,b.h5,3000\n')
+    run_fleet(tmp_path / "m.csv", out_dir=tmp_path / "out", workers=1, quiet=True)
+    text = (tmp_path / "out" / "fleet.csv").read_text()
+    assert "'=HYPERLINK" in text and ",=" not in text and "\n=" not in text

@@ -38,8 +38,8 @@ def test_interrupt_leaves_nothing(tmp_path):
 
 def test_existing_folder_needs_force(tmp_path):
     target = tmp_path / "out"
-    target.mkdir()
-    (target / "old.txt").write_text("old")
+    with output_folder(target) as tmp:
+        (tmp / "old.txt").write_text("old")
     with pytest.raises(InputError, match=r"out: output folder exists; use --force"):
         with output_folder(target):
             pass
@@ -52,6 +52,32 @@ def test_existing_folder_needs_force(tmp_path):
         with output_folder(target, force=True):
             raise RuntimeError("boom")
     assert (target / "new.txt").exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
+
+
+def test_force_refuses_a_folder_it_did_not_write(tmp_path):
+    user = tmp_path / "mine"
+    user.mkdir()
+    (user / "scan.csv").write_text("precious")
+    with pytest.raises(InputError, match=r"mine: not replaced: .*no COMPLETE marker"):
+        with output_folder(user, force=True):
+            pass
+    assert (user / "scan.csv").read_text() == "precious"
+    # a complete output with a file added by hand is not replaced either
+    out = tmp_path / "out"
+    with output_folder(out) as tmp:
+        (tmp / "a.txt").write_text("1")
+    (out / "notes.txt").write_text("mine")
+    with pytest.raises(InputError, match=r"holds 'notes.txt', which scananalyse did not write"):
+        with output_folder(out, force=True):
+            pass
+    assert (out / "notes.txt").read_text() == "mine"
+    # a forged or old-style marker is not enough
+    (user / COMPLETE_MARKER).write_text("complete\n")
+    with pytest.raises(InputError, match=r"mine: not replaced"):
+        with output_folder(user, force=True):
+            pass
+    assert (user / "scan.csv").exists()
 
 
 def test_results_h5_and_json(tmp_path):

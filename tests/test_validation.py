@@ -261,7 +261,7 @@ def test_off_grid(tmp_path):
 
 def test_grid_too_large_from_coordinates(tmp_path):
     # 1e10 mm at 10 mm pitch: 1e9 columns x 2 rows > MAX_GRID_CELLS; refused before allocating.
-    assert v.MAX_GRID_CELLS == 400_000_000
+    assert v.MAX_GRID_CELLS == 200_000_000  # issue 22: 0.8 GB of float32 at most
     expect_error(write(tmp_path, changed(l15="1e10,10,6.0,top,1")), r":11: field 'x, y': grid of 2 x 1000000001 cells exceeds")
 
 

@@ -36,6 +36,9 @@ COLUMNS_OPTIONAL = ("side", "plate")
 _MAX_HEADER_LINE = 65536
 #: Most header lines read before the file is taken as not a scan CSV.
 _MAX_HEADER_LINES = 10000
+#: Longest table line read (a row is some 20 to 60 bytes): a longer line is refused
+#: before pandas would hold it whole. [bytes]
+_MAX_TABLE_LINE = 65536
 _NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
 _INF = {"inf", "+inf", "-inf", "infinity", "+infinity", "-infinity"}
 _NUMERIC_COLUMNS = ("x", "y", "thickness", "plate")
@@ -357,12 +360,18 @@ def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
     hits = np.empty(view.shape, dtype=bool) if count_commas else None
     pending = False  # the previous block ended with a CR
     bare = False
+    line_start = hdr.table_offset  # file offset of the current line's first byte
+    base = hdr.table_offset  # file offset of the block's first byte
     with open(path, "rb", buffering=0) as fh:
         fh.seek(hdr.table_offset)
         while True:
             got = fh.readinto(block)
             if not got:
+                if base - line_start > _MAX_TABLE_LINE:
+                    _long_line(path, hdr, line_start)
                 break
+            line_start = _advance_lines(block, got, base, line_start, path, hdr)
+            base += got
             if pending and block[0] != 10:
                 bare = True
                 break
@@ -384,6 +393,41 @@ def _check_table_bytes(path, hdr: _Header, *, count_commas: bool) -> int | None:
                     raise InputError(f"{where(path, lineno)}: {_CR_MESSAGE}")
         raise InputError(f"{where(path)}: {_CR_MESSAGE}")  # not reached: the pass found one
     return commas if count_commas else None
+
+
+def _advance_lines(block, got: int, base: int, line_start: int, path, hdr) -> int:
+    """Check that no line of the table is longer than :data:`_MAX_TABLE_LINE` bytes in this
+    block; returns the file offset of the line that runs on past the block.
+
+    A few ``memrchr`` calls per block: each window of the limit's length after a line's
+    start must hold a line feed, and the search jumps to the last one found.
+    """
+    while True:
+        lo = max(line_start - base, 0)
+        hi = line_start + _MAX_TABLE_LINE + 1 - base  # a line feed must lie before this index
+        if hi > got:
+            at = block.rfind(b"\n", lo, got)
+            return base + at + 1 if at >= 0 else line_start
+        at = block.rfind(b"\n", lo, hi)
+        if at < 0:
+            _long_line(path, hdr, line_start)
+        line_start = base + at + 1
+
+
+def _long_line(path, hdr, line_start: int) -> None:
+    """Refuse the table line starting at file offset ``line_start``. Error path only."""
+    line = hdr.table_line + 1
+    with open(path, "rb") as fh:
+        fh.seek(hdr.table_offset)
+        left = line_start - hdr.table_offset
+        while left > 0:
+            chunk = fh.read(min(left, 1 << 20))
+            if not chunk:
+                break
+            line += chunk.count(b"\n")
+            left -= len(chunk)
+    raise InputError(f"{where(path, line)}: line longer than {_MAX_TABLE_LINE} bytes in the table; "
+                     "not a floor-scan CSV row")
 
 
 def _check_field_count(path, hdr: _Header, n_rows: int, commas: int) -> None:
@@ -431,8 +475,7 @@ def read_csv_scan(path) -> FloorScan:
         the format (docs/formats.md, "Validation").
     """
     path = os.fspath(path)
-    if not os.path.isfile(path):
-        raise InputError(f"{where(path)}: no such file")
+    v.check_regular_file(path, "scan file")
     hdr = _read_header(path)
     _check_format(hdr, path)
     meta, pitch_mm, factor = v.build_meta(hdr.fields, path)
@@ -470,6 +513,8 @@ def read_csv_scan(path) -> FloorScan:
     n = len(df)
     if n == 0:
         raise InputError(f"{where(path, hdr.table_line)}: the table has no data rows")
+    if grid is not None:  # the grid keys' box must hold enough scanned cells for its size
+        v.check_grid_size(grid[2], grid[3], path, hdr.fields["rows"][1], "rows", scanned=n)
     table = _Table(df)
     del df
     if commas is None or commas == n * (len(cols) - 1):
@@ -526,6 +571,8 @@ def _place_fast_body(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path)
         nrows_f = float(np.rint((y1_u - y0_u) / pitch_u)) + 1.0
         if not nrows_f * ncols_f <= v.MAX_GRID_CELLS:  # also False for NaN and inf
             return None
+        if nrows_f * ncols_f > v.SPARSE_GRID_CELLS and nrows_f * ncols_f > v.MAX_EMPTY_PER_CELL * n:
+            return None  # too sparse: refused by _place_checked
         nrows, ncols = int(nrows_f), int(ncols_f)
     else:
         x0_u, y0_u, nrows, ncols = grid
@@ -678,7 +725,7 @@ def _place_checked(table: _Table, grid, pitch_u, pitch_mm, meta, factor, path, h
     jf, iff = index.pop("x"), index.pop("y")
     if grid is None:
         nrows_f, ncols_f = float(iff.max()) + 1.0, float(jf.max()) + 1.0
-        v.check_grid_size(nrows_f, ncols_f, path, hdr.table_line, "x, y")
+        v.check_grid_size(nrows_f, ncols_f, path, hdr.table_line, "x, y", scanned=n)
         nrows, ncols = int(nrows_f), int(ncols_f)
     elif (float(jf.min()) < 0 or float(jf.max()) >= ncols or float(iff.min()) < 0
           or float(iff.max()) >= nrows):

@@ -26,6 +26,22 @@ COMPRESSION = {"compression": "gzip", "compression_opts": 4, "shuffle": True}
 CHUNK = 512
 #: Rows converted per block when the stored thickness is not float32 mm.
 _BLOCK_ROWS = 1024
+#: Largest chunk (uncompressed) of a dataset that is read: HDF5 holds a whole chunk in
+#: memory to read any part of it.  Written chunks are 512 x 512 x 8 bytes = 2 MiB. [bytes]
+MAX_CHUNK_BYTES = 64 << 20
+#: Most chunks in one dataset (each is looked at before reading; written files have a
+#: few thousand at most).
+MAX_CHUNKS = 1_000_000
+#: A stored chunk may be larger than its data by at most this fraction plus
+#: :data:`_CHUNK_SLACK` bytes: no lossless filter expands data more (deflate adds about
+#: 5 bytes per 16 KiB block).  A larger stored chunk would decompress to more than the
+#: chunk holds: a compression bomb.
+_CHUNK_GROWTH = 0.125
+_CHUNK_SLACK = 4096
+#: A dataset may declare at most this many bytes of data per byte of the file: deflate
+#: cannot compress more than about 1032 to 1 (zlib's technical notes), so more is data
+#: that is not stored (a crafted or corrupt file whose reading would only allocate).
+MAX_DECLARED_PER_FILE_BYTE = 1100
 
 
 def _refuse_links(f: h5py.File, path: str) -> None:
@@ -65,6 +81,37 @@ def _dataset(f: h5py.File, name: str, path: str, *, required: bool):
     return obj
 
 
+def _check_storage(ds, path: str, name: str, file_size: int) -> None:
+    """Refuse, before anything is read, a dataset whose reading would allocate far more than
+    the file holds: too much declared data for the file's size, chunks above
+    :data:`MAX_CHUNK_BYTES` or too many of them, or a stored chunk larger than its data
+    can be after any lossless filter (a compression bomb)."""
+    itemsize = ds.dtype.itemsize
+    declared = float(np.prod([float(n) for n in ds.shape])) * itemsize
+    if declared > MAX_DECLARED_PER_FILE_BYTE * float(file_size) + (1 << 20):
+        raise InputError(f"{where(path, None, name)}: declares {declared:.3g} bytes of data in a file of "
+                         f"{file_size} bytes, more than any compression stores; a corrupt or crafted file")
+    chunks = ds.chunks
+    if chunks is None:
+        return
+    chunk_bytes = float(np.prod([float(n) for n in chunks])) * itemsize
+    if chunk_bytes > MAX_CHUNK_BYTES:
+        raise InputError(f"{where(path, None, name)}: chunks of {tuple(chunks)} cells ({chunk_bytes:.3g} bytes) "
+                         f"exceed the limit of {MAX_CHUNK_BYTES >> 20} MiB; rewrite with smaller chunks")
+    dsid = ds.id
+    n = dsid.get_num_chunks()
+    if n > MAX_CHUNKS:
+        raise InputError(f"{where(path, None, name)}: {n} chunks, above the limit of {MAX_CHUNKS}; "
+                         "rewrite with larger chunks")
+    most = chunk_bytes * (1 + _CHUNK_GROWTH) + _CHUNK_SLACK
+    for k in range(n):
+        info = dsid.get_chunk_info(k)
+        if info.size > most:
+            raise InputError(f"{where(path, None, name)}: chunk at {tuple(info.chunk_offset)} stores "
+                             f"{info.size} bytes for {chunk_bytes:.0f} bytes of data; a compression bomb "
+                             "or a corrupt file")
+
+
 def _attr(obj, key, path, field):
     try:
         return obj.attrs[key]
@@ -88,8 +135,9 @@ def _layer(f, name, shape, path, kinds_ok, lo, hi, out_dtype):
         return None
     if ds.shape != shape:
         raise InputError(f"{where(path, None, name)}: shape {ds.shape} differs from thickness {shape}")
-    if ds.dtype.kind not in kinds_ok:
+    if ds.dtype.kind not in kinds_ok or ds.dtype.itemsize > 8:
         raise InputError(f"{where(path, None, name)}: dtype {ds.dtype} is not an integer type")
+    _check_storage(ds, path, name, os.path.getsize(path))
     data = _read(ds, path, name)
     bad = (data < lo) | (data > hi)
     if bad.any():
@@ -138,6 +186,7 @@ def _read_open(f: h5py.File, path: str):
     if rows == 0 or cols == 0:
         raise InputError(f"{where(path, None, 'thickness')}: empty grid {ds.shape}")
     v.check_grid_size(rows, cols, path, None, "thickness")
+    _check_storage(ds, path, "thickness", os.path.getsize(path))
     x0 = v.parse_number(_attr(ds, "x0", path, "thickness.x0"), path, None, "thickness.x0",
                         sign="any")
     y0 = v.parse_number(_attr(ds, "y0", path, "thickness.y0"), path, None, "thickness.y0",
@@ -185,8 +234,7 @@ def read_h5_scan(path) -> FloorScan:
         One line naming the file and the field, for any violation of the layout.
     """
     path = os.fspath(path)
-    if not os.path.isfile(path):
-        raise InputError(f"{where(path)}: no such file")
+    v.check_regular_file(path, "scan file")
     with open(path, "rb") as fh:
         signature = fh.read(8)
     try:

@@ -13,6 +13,7 @@ import math
 import os
 import re
 import secrets
+import stat
 
 import numpy as np
 
@@ -43,6 +44,7 @@ __all__ = [
     "unit_scalar",
     "format_scalar",
     "atomic_output",
+    "check_regular_file",
 ]
 
 #: Name of the formats, written as ``format`` (CSV: ``scananalyse-scan 1``).
@@ -51,9 +53,17 @@ FORMAT_NAME = "scananalyse-scan"
 FORMAT_VERSION = 1
 #: File units and their size in millimetres (1 in = 25.4 mm exactly, 1959 agreement).
 UNIT_FACTORS = {"mm": 1.0, "in": MM_PER_IN}
-#: Largest grid (rows x columns) a reader will allocate: 400 million cells is
-#: 1.6 GB of float32, a 200 m x 200 m floor at 10 mm pitch.  Checked before allocating.
-MAX_GRID_CELLS = 400_000_000
+#: Largest grid (rows x columns) a reader will allocate: 200 million cells is 0.8 GB of
+#: float32, a 140 m x 140 m box at 10 mm pitch (a 150 m tank floor, larger than any
+#: storage tank built, is 177 million cells of its circle).  Checked before allocating.
+MAX_GRID_CELLS = 200_000_000
+#: A grid box larger than this many cells must hold at least one scanned cell (row of a
+#: CSV table) per :data:`MAX_EMPTY_PER_CELL` cells of the box: a few cells far apart (a
+#: typing error in a coordinate) would otherwise make a tiny file allocate gigabytes.  A
+#: round floor fills 79 % of its box; a partial scan of strips a few percent.
+SPARSE_GRID_CELLS = 4_000_000
+#: Most grid cells per scanned cell in a grid box above :data:`SPARSE_GRID_CELLS`.
+MAX_EMPTY_PER_CELL = 1000
 #: A thickness above this multiple of the nominal thickness is refused as absurd
 #: (a unit mix-up or a corrupt value, not a real plate).
 MAX_THICKNESS_OVER_NOMINAL = 3.0
@@ -205,13 +215,37 @@ def build_meta(fields: dict, path) -> tuple[ScanMeta, float, float]:
     return meta, pitch, factor
 
 
-def check_grid_size(rows: float, cols: float, path, line=None, field=None) -> None:
-    """Refuse a grid above :data:`MAX_GRID_CELLS` before anything is allocated."""
+def check_grid_size(rows: float, cols: float, path, line=None, field=None, *, scanned: int | None = None) -> None:
+    """Refuse a grid above :data:`MAX_GRID_CELLS` before anything is allocated; with
+    ``scanned`` (the number of scanned cells given), also a grid box above
+    :data:`SPARSE_GRID_CELLS` cells with fewer than one scanned cell per
+    :data:`MAX_EMPTY_PER_CELL` cells."""
     cells = float(rows) * float(cols)
     if not cells <= MAX_GRID_CELLS:
         raise InputError(
             f"{where(path, line, field)}: grid of {rows:.0f} x {cols:.0f} cells exceeds the limit of "
             f"{MAX_GRID_CELLS} cells (check the pitch and the coordinates)")
+    if scanned is not None and cells > SPARSE_GRID_CELLS and cells > MAX_EMPTY_PER_CELL * float(scanned):
+        raise InputError(
+            f"{where(path, line, field)}: {scanned} scanned cells spread over a grid of {rows:.0f} x "
+            f"{cols:.0f} cells (more than {MAX_EMPTY_PER_CELL} grid cells per scanned cell); "
+            "check the pitch and the coordinates")
+
+
+def check_regular_file(path, what: str = "file") -> None:
+    """Refuse a path that is not an existing regular file, saying what it is instead
+    (missing, a folder, or a FIFO, device or socket, which would block or never end)."""
+    p = os.fspath(path)
+    try:
+        st = os.stat(p)
+    except FileNotFoundError:
+        raise InputError(f"{where(p)}: no such file") from None
+    except OSError as exc:
+        raise InputError(f"{where(p)}: cannot read ({exc.strerror or type(exc).__name__})") from None
+    if stat.S_ISDIR(st.st_mode):
+        raise InputError(f"{where(p)}: is a folder, not a {what}")
+    if not stat.S_ISREG(st.st_mode):
+        raise InputError(f"{where(p)}: is not a regular file (a FIFO, device or socket); give a {what}")
 
 
 def _thickness_limit(nominal_mm: float) -> float:
