@@ -165,7 +165,7 @@ def _cmd_convert(args) -> int:
 
 
 def _cmd_register(args) -> int:
-    from .pipeline import register_files
+    from .runner import register_files
 
     out = register_files(args.old, args.new, out_dir=args.out, control_points=args.control_points,
                          force=args.force, quiet=args.quiet)
@@ -174,7 +174,7 @@ def _cmd_register(args) -> int:
 
 
 def _cmd_compare(args) -> int:
-    from .pipeline import compare
+    from .runner import compare
 
     job = _job_from_args(args)
     res = compare(args.old, args.new, job=job, out_dir=args.out, force=args.force, quiet=args.quiet)
@@ -183,7 +183,7 @@ def _cmd_compare(args) -> int:
 
 
 def _cmd_assess(args) -> int:
-    from .pipeline import assess_single
+    from .runner import assess_single
 
     job = _job_from_args(args)
     res = assess_single(args.scan, job=job, out_dir=args.out, force=args.force, quiet=args.quiet)
@@ -192,7 +192,7 @@ def _cmd_assess(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .pipeline import run_demo
+    from .runner import run_demo
 
     res = run_demo(out_dir=args.out, units=args.units, quiet=args.quiet)
     print(res.console_summary())
@@ -219,7 +219,17 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def main(argv=None) -> int:
-    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault, 130 interrupted)."""
+    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault, 130 interrupted).
+
+    With ``argv`` None (the program reading its own command line) glibc's allocator is set
+    for a run of full-grid arrays first (:func:`scananalyse._libc.tune_malloc_for_cli`:
+    unless the user set ``MALLOC_*`` or ``GLIBC_TUNABLES``); a call with an argument list
+    (from Python) leaves the calling process's allocator alone.
+    """
+    if argv is None:
+        from ._libc import tune_malloc_for_cli
+
+        tune_malloc_for_cli()
     try:
         return _main(argv)
     except KeyboardInterrupt:  # an interrupt that lands outside the command itself (set-up, clean-up)
