@@ -1732,15 +1732,7 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
     """
     v = np.asarray(values)
     zm = np.asarray(zone_mask, dtype=bool)
-    if zm.shape != v.shape:
-        raise InputError("zone_extremes: field 'zone_mask' must have the shape of 'values'")
-    if not pitch_mm > 0 or not block_mm > 0:
-        raise InputError("zone_extremes: fields 'pitch_mm' and 'block_mm' must be > 0")
-    if not zone_area_mm2 > 0:
-        raise InputError(f"zone_extremes: field 'zone_area_mm2' must be > 0, got {zone_area_mm2}")
-    if method not in _FITTERS and method != "auto":
-        raise InputError(f"zone_extremes: field 'method' must be one of {sorted(_FITTERS) + ['auto']}, "
-                         f"got {method!r}")
+    _check_zone_args(v, zm, pitch_mm=pitch_mm, block_mm=block_mm, zone_area_mm2=zone_area_mm2, method=method)
     ok = zm & (np.isfinite(v) if valid is None else np.asarray(valid, dtype=bool))
     b = max(1, int(round(block_mm / pitch_mm)))
     side = b * pitch_mm
@@ -1765,25 +1757,12 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
                             n_censored=int(cens.sum()), warnings=tuple(warn), blocks=bm, **common)
     if method in ("lmoments", "moments") and cens.any():
         warn.append(f"{method} ignores the {int(cens.sum())} censored blocks (biased high)")
-    lr = None
-    lr_done = False
     try:
-        fit = _FITTERS["mle" if method == "auto" else method](x, cens, threshold)
+        fit, lr, lr_done, bound_method = _choose_fit(x, cens, method=method, threshold=threshold,
+                                                     gev_alpha=gev_alpha, bound_method=bound_method, warn=warn)
     except FitError as exc:
         return ZoneExtremes(reason=str(exc), observed_max=obs, n_blocks=bm.n_blocks,
                             n_censored=int(cens.sum()), warnings=tuple(warn), blocks=bm, **common)
-    if method == "auto":
-        # one GEV fit serves both the test and, when the test rejects the Gumbel, the estimate
-        lr_done = True
-        try:
-            lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=threshold if cens.any() else None,
-                                       alpha=gev_alpha)
-        except FitError as exc:
-            warn.append(f"GEV test not available: {exc}")
-        if lr is not None and lr.reject_gumbel:
-            fit = lr.gev
-            if bound_method == "bootstrap":
-                bound_method = "profile"  # the GEV bootstrap refits one by one
     if method in ("lmoments", "moments"):
         x, cens = x[~cens], cens[~cens]
     T = T_raw
@@ -1795,14 +1774,8 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         warn.append(f"only {bm.n_blocks} blocks: wide bounds")
     u = threshold if cens.any() else None
     try:
-        if bound_method == "bootstrap":
-            bounds, (loc_b, sc_b, sh_b) = _bootstrap_bounds(fit, x.size, u, T, level, True,
-                                                            n_boot, seed)
-            pred = _predictive_upper(fit, loc_b, sc_b, sh_b, T, level)
-        else:
-            bounds = return_level_bounds(fit, x, T, level=level, one_sided=True,
-                                         method=bound_method, censored=cens, threshold=u)
-            pred = max_quantile(fit, T, level)
+        bounds, pred = _zone_bounds(fit, x, cens, u, T, level=level, bound_method=bound_method, n_boot=n_boot,
+                                    seed=seed)
     except FitError as exc:
         return ZoneExtremes(reason=str(exc), observed_max=obs, n_blocks=bm.n_blocks,
                             n_censored=int(cens.sum()), fit=fit, warnings=tuple(warn), blocks=bm,
@@ -1825,6 +1798,51 @@ def zone_extremes(values, zone_mask, *, pitch_mm, zone_area_mm2, block_mm=1000.0
         n_censored=int(cens.sum()), fit=fit, bounds=bounds, lr_test=lr,
         plot=probability_plot(x, fit, censored=cens), anderson_darling=anderson_darling(xu, fit),
         ks=ks_statistic(xu, fit), warnings=tuple(warn), blocks=bm, **common)
+
+
+def _check_zone_args(v, zm, *, pitch_mm, block_mm, zone_area_mm2, method) -> None:
+    """The one-line errors of :func:`zone_extremes`'s arguments."""
+    if zm.shape != v.shape:
+        raise InputError("zone_extremes: field 'zone_mask' must have the shape of 'values'")
+    if not pitch_mm > 0 or not block_mm > 0:
+        raise InputError("zone_extremes: fields 'pitch_mm' and 'block_mm' must be > 0")
+    if not zone_area_mm2 > 0:
+        raise InputError(f"zone_extremes: field 'zone_area_mm2' must be > 0, got {zone_area_mm2}")
+    if method not in _FITTERS and method != "auto":
+        raise InputError(f"zone_extremes: field 'method' must be one of {sorted(_FITTERS) + ['auto']}, "
+                         f"got {method!r}")
+
+
+def _choose_fit(x, cens, *, method, threshold, gev_alpha, bound_method, warn):
+    """The fit of :func:`zone_extremes`'s block maxima: ``(fit, lr_test or None, test done,
+    bound method)``; with ``"auto"`` the Gumbel unless the likelihood-ratio test rejects it
+    (Coles 2001 §3.3), one GEV fit serving the test and the estimate.  Raises FitError."""
+    lr = None
+    lr_done = False
+    fit = _FITTERS["mle" if method == "auto" else method](x, cens, threshold)
+    if method == "auto":
+        lr_done = True
+        try:
+            lr = lr_test_gumbel_vs_gev(x, censored=cens, threshold=threshold if cens.any() else None,
+                                       alpha=gev_alpha)
+        except FitError as exc:
+            warn.append(f"GEV test not available: {exc}")
+        if lr is not None and lr.reject_gumbel:
+            fit = lr.gev
+            if bound_method == "bootstrap":
+                bound_method = "profile"  # the GEV bootstrap refits one by one
+    return fit, lr, lr_done, bound_method
+
+
+def _zone_bounds(fit, x, cens, u, T, *, level, bound_method, n_boot, seed):
+    """The return level's one-sided bound and the predictive quantile of the zone's maximum
+    (:func:`zone_extremes`): ``(Bounds, predictive upper)``.  Raises FitError."""
+    if bound_method == "bootstrap":
+        bounds, (loc_b, sc_b, sh_b) = _bootstrap_bounds(fit, x.size, u, T, level, True, n_boot, seed)
+        return bounds, _predictive_upper(fit, loc_b, sc_b, sh_b, T, level)
+    bounds = return_level_bounds(fit, x, T, level=level, one_sided=True, method=bound_method, censored=cens,
+                                 threshold=u)
+    return bounds, max_quantile(fit, T, level)
 
 
 # ---------------------------------------------------------------------------
