@@ -7,7 +7,6 @@ import datetime as dt
 from types import SimpleNamespace
 
 import numpy as np
-import pytest
 
 from scananalyse.evlife import LIFE_HORIZON_Y, masked_nanmin, zone_lives
 from scananalyse.extremes import MIN_BLOCK_MM, depth_map, fit_zone, zone_extremes
