@@ -219,17 +219,7 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def main(argv=None) -> int:
-    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault, 130 interrupted).
-
-    With ``argv`` None (the program reading its own command line) glibc's allocator is set
-    for a run of full-grid arrays first (:func:`scananalyse._libc.tune_malloc_for_cli`:
-    unless the user set ``MALLOC_*`` or ``GLIBC_TUNABLES``); a call with an argument list
-    (from Python) leaves the calling process's allocator alone.
-    """
-    if argv is None:
-        from ._libc import tune_malloc_for_cli
-
-        tune_malloc_for_cli()
+    """Run the CLI; returns the exit status (0 ok, 2 bad input, 1 internal fault, 130 interrupted)."""
     try:
         return _main(argv)
     except KeyboardInterrupt:  # an interrupt that lands outside the command itself (set-up, clean-up)
