@@ -13,8 +13,7 @@ newer scan and 12.5 mm for the older one) the script
    one's shape), ``pandas.read_csv`` on the CSV; and the public-API stages that have
    a direct baseline: ``read_scan`` of both, ``read_csv_scan``, ``register``;
 3. runs the whole ``compare`` (report included) in another fresh process, whose
-   ``ru_maxrss`` is the honest peak memory of the main process (the report's figure
-   helpers, forked processes, report their private memory beside it), and reads the per-stage
+   ``ru_maxrss`` is the honest peak memory of the job (one process), and reads the per-stage
    timings the pipeline stored in ``results.h5`` (group ``timings``); with ``--job-memory``
    a second run samples the summed PSS of the main process and its helpers (the whole
    job's physical memory).
@@ -183,31 +182,11 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
 
     from scananalyse import assess, extremes, indications, rates, register, repair, zones  # noqa: F401
     from scananalyse.job import Job
-    from scananalyse.pipeline import compare
+    from scananalyse.runner import compare
     from scananalyse.report import figures, html  # noqa: F401
 
     rss_imports = _maxrss_bytes()  # the interpreter and libraries, before any grid exists
     p = _paths(workdir, size, seed)
-    # The report's figure helper (a forked process) holds memory of its own: record its
-    # private (unshared) memory from /proc after each job, through a pipe (the largest is kept).
-    from scananalyse.report import render as _render
-
-    parent = os.getpid()
-    priv_r, priv_w = os.pipe()
-    orig_do = _render._do
-
-    def do(*a, **k):
-        out = orig_do(*a, **k)
-        if os.getpid() != parent:
-            kb = 0
-            with open("/proc/self/smaps_rollup") as fh:
-                for line in fh:
-                    if line.startswith(("Private_Clean:", "Private_Dirty:")):
-                        kb += int(line.split()[1])
-            os.write(priv_w, f"{kb * 1024}\n".encode())
-        return out
-
-    _render._do = do
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         t0 = time.perf_counter()
@@ -215,10 +194,6 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
                       quiet=True)
         t_total = time.perf_counter() - t0
     rss = _maxrss_bytes()
-    os.close(priv_w)
-    with os.fdopen(priv_r) as fh:
-        seen = [int(x) for x in fh.read().split()]
-    helper_private = [max(seen)] if seen else []
     with h5py.File(os.path.join(p["out"], "results.h5"), "r") as f:
         stages = {k: float(v) for k, v in f["timings"].attrs.items()} if "timings" in f else {}
     figs = [n for n in res.files if n.startswith("figures/")]
@@ -226,7 +201,7 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
     # rest of the wall time is theirs.
     stages["outputs+report"] = max(0.0, t_total - sum(stages.values()))
     return {"t_compare_s": t_total, "stages_s": stages, "run_maxrss_bytes": rss,
-            "helper_private_bytes": helper_private,
+            "helper_private_bytes": [],
             "import_maxrss_bytes": rss_imports, "n_figures": len(figs),
             "report_bytes": os.path.getsize(res.report_path), "n_patches": int(len(res.patches)),
             "n_indications": int(len(res.indications))}

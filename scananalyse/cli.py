@@ -268,7 +268,7 @@ def _cmd_convert(args) -> int:
 
 
 def _cmd_register(args) -> int:
-    from .pipeline import register_files
+    from .runner import register_files
 
     out = register_files(args.old, args.new, out_dir=args.out, control_points=args.control_points,
                          force=args.force, quiet=args.quiet)
@@ -277,7 +277,7 @@ def _cmd_register(args) -> int:
 
 
 def _cmd_compare(args) -> int:
-    from .pipeline import compare
+    from .runner import compare
 
     job = _job_from_args(args)
     res = compare(args.old, args.new, job=job, out_dir=args.out, force=args.force, quiet=args.quiet)
@@ -286,7 +286,7 @@ def _cmd_compare(args) -> int:
 
 
 def _cmd_assess(args) -> int:
-    from .pipeline import assess_single
+    from .runner import assess_single
 
     job = _job_from_args(args)
     res = assess_single(args.scan, job=job, out_dir=args.out, force=args.force, quiet=args.quiet)
@@ -295,15 +295,11 @@ def _cmd_assess(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .job import Job
-    from .pipeline import DEMO, compare, sample_dir
+    from .runner import run_demo
 
     # like compare: an existing folder is refused unless --force, and then only a complete
     # earlier output of scananalyse is replaced (outputs.output_folder)
-    d = sample_dir()
-    job = Job(diameter=DEMO["diameter"], repairs=str(d / DEMO["repairs"]), units=args.units or "mm")
-    res = compare(d / DEMO["old"], d / DEMO["new"], job=job, out_dir=args.out, force=args.force,
-                  quiet=args.quiet)
+    res = run_demo(out_dir=args.out, units=args.units, quiet=args.quiet, force=args.force)
     print(res.console_summary())
     return 0
 

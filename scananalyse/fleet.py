@@ -1,6 +1,6 @@
 """Fleet runs: every tank of a terminal on a Dask cluster, ranked by urgency.
 
-Each tank's :func:`scananalyse.pipeline.compare` is one Dask task.  With no
+Each tank's :func:`scananalyse.runner.compare` is one Dask task.  With no
 scheduler address a :class:`dask.distributed.LocalCluster` of ``workers``
 processes on loopback is started; with an address, an existing cluster is used
 (every worker must see the manifest's files at the same paths, see
@@ -216,7 +216,7 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
     """
     from .job import Job, read_job
     from .outputs import is_complete_output
-    from .pipeline import compare
+    from .runner import compare
 
     t0 = time.perf_counter()
     tank = entry["tank"]

@@ -418,3 +418,21 @@ def write_indications_csv(df: pd.DataFrame, path) -> None:
 
     write_csv(out, path)  # atomic; text cells neutralised against spreadsheet formulas
 
+
+
+def reporting_depth(scan) -> float:
+    """Smallest loss an indication is made of.
+
+    Parameters
+    ----------
+    scan : FloorScan
+        The scan whose indications are listed.
+
+    Returns
+    -------
+    float
+        The scan's detection threshold, or 10 % of nominal when it has none (common
+        practice; no published source). [mm]
+    """
+    thr = scan.meta.threshold
+    return float(thr) if thr else 0.1 * scan.meta.nominal

@@ -643,3 +643,70 @@ def _top_fraction(loss_top, loss, side) -> np.ndarray:
         has = np.isfinite(loss) & (loss > 0)
         f[has] = loss_top[has] / loss[has]
     return f
+
+
+def fill_uncovered_rates(lr: LossRates, new, old_on_new, labels) -> tuple:
+    """Short-term rates for indication cells the older scan did not cover.
+
+    Parameters
+    ----------
+    lr : LossRates
+        The rates of the pair (:func:`compute_rates`).
+    new : FloorScan
+        The newer scan.
+    old_on_new : FloorScan
+        The older scan resampled onto the newer grid (NaN where it did not reach).
+    labels : (M, N) int ndarray
+        Indication label map of ``lr.loss``
+        (:func:`~scananalyse.indications.label_indications`); 0 outside indications. [-]
+
+    Returns
+    -------
+    (LossRates, int)
+        The updated rates (``counts["short_rate_filled_from_indication"]`` set when any
+        cell is filled) and the number of cells filled.
+
+    Notes
+    -----
+    An indication cell the older scan missed has only a long-term rate, which understates
+    a pit that began late.  It takes its own loss times the largest ratio of short-term
+    rate to loss measured in the same connected indication (a pit deepening in
+    proportion, as its measured part does); the governing rate is then the greater of
+    that and the rate it had.  Only the labelled cells are visited.
+    """
+    import dataclasses
+
+    n = int(labels.max()) if labels.size else 0
+    if n == 0:
+        return lr, 0
+    idx = np.flatnonzero(labels)
+    lab = labels.reshape(-1)[idx]
+    uncovered = (~np.isfinite(old_on_new.thickness.reshape(-1)[idx]) & np.isfinite(new.thickness.reshape(-1)[idx])
+                 & ~lr.repaired.reshape(-1)[idx])
+    if not uncovered.any():
+        return lr, 0
+    changes = {}
+    filled_any = np.zeros(idx.size, dtype=bool)
+    for side in ("top", "under"):
+        short_full = getattr(lr, f"rate_short_{side}")
+        short = short_full.reshape(-1)[idx]
+        loss_s = getattr(lr, f"loss_{side}").reshape(-1)[idx]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(np.isfinite(short) & (loss_s > 0), short / loss_s, -1.0).astype(np.float32)
+        best = np.full(n + 1, -1.0, dtype=np.float32)
+        np.maximum.at(best, lab, ratio)
+        b = best[lab]
+        fill = np.where(uncovered & (b >= 0), b * np.nan_to_num(loss_s), -1.0)
+        take = uncovered & (fill >= 0)
+        filled_any |= take
+        new_short = short_full.copy()
+        new_short.reshape(-1)[idx[take]] = fill[take]
+        changes[f"rate_short_{side}"] = new_short
+        gov = getattr(lr, f"rate_{side}").astype(np.float32, copy=True)
+        g = gov.reshape(-1)
+        g[idx[take]] = np.fmax(g[idx[take]], fill[take])
+        changes[f"rate_{side}"] = gov
+    filled = int(np.count_nonzero(filled_any))
+    counts = dict(lr.counts)
+    counts["short_rate_filled_from_indication"] = filled
+    return dataclasses.replace(lr, counts=counts, **changes), filled

@@ -76,6 +76,7 @@ __all__ = [
     "covered_cells",
     "apply_patches",
     "check_patch_rules",
+    "repair_and_reassess",
     "uncovered_cells",
     "plan_repairs",
     "repair_to_plan",
@@ -1563,3 +1564,126 @@ def write_patches_dxf(patches, path) -> None:
         txt.set_placement(((rect[0] + rect[2]) / 2.0, (rect[1] + rect[3]) / 2.0),
                           align=TextEntityAlignment.MIDDLE_CENTER)
     _atomic_write(path, doc.saveas)
+
+
+def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_old, own_patches=None,
+                        plate_seams=None, ext_rate=None) -> dict:
+    """Patch planning for the target interval (or the engineer's own patches), the rule
+    checks, then the floor re-assessed as repaired.
+
+    Parameters
+    ----------
+    new : FloorScan
+        The newer scan.
+    lr : :class:`~scananalyse.rates.LossRates`
+        Its rates.
+    side : (M, N) int8 ndarray
+        Resolved side per cell. [-]
+    zmap : :class:`~scananalyse.zones.ZoneMap`
+    rules : rule set (:func:`~scananalyse.rules.get_ruleset`).
+    options : :class:`~scananalyse.assess.AssessOptions`
+    mrt : (M, N) ndarray
+        Minimum remaining thickness per cell. [mm]
+    job : :class:`~scananalyse.job.Job`
+        ``target_interval`` [y], ``repair_to_mm`` [mm], ``patch_thickness_mm`` [mm],
+        ``under_cause_removed``, ``block_mm`` [mm], ``seed``.
+    have_old : bool
+        Short-term rates are available (two inspections). [-]
+    own_patches : DataFrame, optional
+        The engineer's patches (:func:`read_patches`) instead of planned ones.
+    plate_seams : optional
+        :func:`seams_from_plate` of the newer scan's plate layer, derived here if None.
+    ext_rate : dict, optional
+        The as-found rate statistics (:func:`~scananalyse.extremes.rate_statistics`),
+        reused when the repaired floor keeps the rate maps as they are.
+
+    Returns
+    -------
+    dict
+        ``needs_repair``, ``patches``, ``patch_note``, ``patch_checks``, ``uncovered_cells``,
+        ``zones_repaired`` (the per-zone table after repair) and ``repaired_maps``.
+
+    Notes
+    -----
+    Patched cells read the patch thickness (no loss so far, so the side attribution no
+    longer matters there) and keep their measured rates (the underside one unless its
+    cause is removed); the repaired floor gets its own extreme-value statistics and life
+    (:mod:`scananalyse.extremes`, :mod:`scananalyse.evlife`) and is assessed as found is
+    (:func:`~scananalyse.assess.assess_zones`).
+    """
+    from . import assess
+    from .evlife import add_eva_columns, merge_extremes, zone_lives
+    from .extremes import depth_statistics, rate_statistics
+
+    critical = zmap.labels == zmap.index("critical") if "critical" in zmap.names else None
+    needs = cells_needing_repair(new.thickness, lr.rate_top, lr.rate_under, mrt_mm=mrt,
+                                 target_years=job.target_interval, repair_to_mm=job.repair_to_mm)
+    if plate_seams is None and new.plate is not None:
+        plate_seams = seams_from_plate(new.plate, x0=new.x0, y0=new.y0, pitch=new.pitch)
+    if own_patches is not None:
+        patches = own_patches
+    else:
+        patches = plan_patches(needs, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules, plate=new.plate,
+                               critical_mask=critical, zone_labels=zmap.labels, zone_names=zmap.names,
+                               patch_thickness_mm=job.patch_thickness_mm, plate_seams=plate_seams)
+    checks = check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
+                               plate=new.plate, critical_mask=critical, needs=needs,
+                               zone_labels=zmap.labels, zone_names=zmap.names, plate_seams=plate_seams)
+    n_uncovered, _ = uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
+    t_rep, rt_rep, ru_rep, covered = apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
+                                                   x0=new.x0, y0=new.y0, pitch=new.pitch,
+                                                   patch_thickness_mm=job.patch_thickness_mm, rules=rules,
+                                                   under_cause_removed=job.under_cause_removed)
+    cens_rep = lr.censored & ~covered
+    fit_kw = dict(pitch=new.pitch, block_mm=job.block_mm, seed=job.seed)
+    ext_d_rep = depth_statistics(t_rep, zmap, nominal=new.meta.nominal, censored=cens_rep,
+                                 threshold=new.meta.threshold, **fit_kw)
+    if ext_rate is not None and rt_rep is lr.rate_top and ru_rep is lr.rate_under:
+        ext_r_rep = ext_rate  # the patches keep the measured rates: the same statistics
+    else:
+        ext_r_rep = rate_statistics(rt_rep, ru_rep, zmap, **fit_kw)
+    ext_l_rep = zone_lives(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal, censored=cens_rep,
+                           threshold=new.meta.threshold, methods=ext_d_rep, **fit_kw)
+    del cens_rep
+    life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
+    zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
+                                    rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
+                                    extremes=merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
+                                    rate_short_available=have_old, life_map=life_rep)
+    zones_rep = add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
+    patches, patch_note = _own_patch_verdict(patches, checks, own_patches is not None)
+    life_text = _patch_life_note(np.where(covered, life_rep, np.nan), covered, job.target_interval)
+    if life_text:
+        patch_note = f"{patch_note} {life_text}" if patch_note else life_text
+    return {"needs_repair": needs, "patches": patches, "patch_note": patch_note, "patch_checks": checks,
+            "uncovered_cells": int(n_uncovered), "zones_repaired": zones_rep,
+            "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep, "life_local_repaired": life_rep,
+                              "rate_under_repaired": ru_rep, "patched": covered}}
+
+
+def _own_patch_verdict(patches, checks, own: bool):
+    """The engineer's patches carry the checker's verdict, not whatever the file said; and
+    a note when some break a rule."""
+    if not own or not len(patches):
+        return patches, None
+    patches = patches.drop(columns=["flags"], errors="ignore").merge(checks[["patch", "flags"]], on="patch",
+                                                                     how="left")
+    bad = checks[~checks["ok"].astype(bool)]
+    if not len(bad):
+        return patches, None
+    return patches, (f"{len(bad)} of the {len(patches)} given patch plates break a patch rule "
+                     f"({', '.join(bad['patch'].astype(str).head(5))}{' …' if len(bad) > 5 else ''}); "
+                     "see the flags column of patches.csv.")
+
+
+def _patch_life_note(life_on_patches, covered, target_interval):
+    """A sentence when the patch plates themselves do not last the target interval."""
+    if not (covered.any() and np.isfinite(life_on_patches).any()):
+        return None
+    life_p = float(np.nanmin(life_on_patches))
+    if life_p >= target_interval:
+        return None
+    return (f"The patch plates themselves last {life_p:.1f} years at the measured rates (the underside "
+            "rate is kept under a patch unless its cause is removed), short of the target of "
+            f"{target_interval:g} years: consider thicker plates, effective cathodic protection "
+            "or removing the cause (--under-cause-removed), or replacing plate.")

@@ -573,33 +573,14 @@ def test_no_pickle_eval_exec_in_package():
     pattern = re.compile(r"\bimport\s+(pickle|cPickle|dill|marshal|shelve)\b|\bfrom\s+(pickle|dill|marshal|shelve)\b"
                          r"|\bpickle\.|\beval\s*\(|\bexec\s*\(|allow_pickle\s*=\s*True|read_pickle\s*\("
                          r"|yaml\.load\s*\(|shell\s*=\s*True|os\.system\s*\(")
-    # The one exception: forked.py's pack/unpack carry objects between the package's own
-    # processes (a forked child's result to its parent, a figure to draw to the figure
-    # helper) through anonymous pipes made just before the fork (never a file, a socket or
-    # anything from outside); exactly these lines, and nothing else there, may use pickle.
-    ipc = {("forked.py", "import pickle"),
-           ("forked.py", "return pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)"),
-           ("forked.py", "return pickle.loads(data)")}
     files = sorted(PACKAGE.rglob("*.py"))
     assert len(files) > 10
-    hits, seen = [], set()
+    hits = []
     for f in files:
         for n, line in enumerate(f.read_text(encoding="utf-8").splitlines(), start=1):
             if pattern.search(line):
-                key = (str(f.relative_to(PACKAGE)), line.strip())
-                if key in ipc:
-                    seen.add(key)
-                else:
-                    hits.append(f"{key[0]}:{n}: {key[1]}")
+                hits.append(f"{f.relative_to(PACKAGE)}:{n}: {line.strip()}")
     assert hits == []
-    assert seen == ipc  # the exception is still what it says (or the list is stale)
-    forked = (PACKAGE / "forked.py").read_text(encoding="utf-8")
-    assert "r, w = os.pipe()" in forked and "read_to_end(self._fd)" in forked
-    # and the package unpacks only bytes read from such pipes: the forked child's result
-    # and the figure helper's queue (render.py reads them from the data pipe of its fork)
-    users = sorted(str(f.relative_to(PACKAGE)) for f in files
-                   if re.search(r"(?<![.\w])unpack\(", f.read_text(encoding="utf-8")) and f.name != "forked.py")
-    assert users == ["report/render.py"]
 
 
 def test_h5_readers_refuse_links_directly(corpus):

@@ -71,7 +71,7 @@ def test_code_formula_flagged_where_it_exceeds_co_located_life():
     # the age-based underside rate is well below the measured one
     assert z["upr_mm_y"] < 0.7 * z["rate_under_max_mm_y"]
     # and the summary says so in words
-    from scananalyse.pipeline import actions
+    from scananalyse.report.content import actions
 
     said = actions(an)
     assert any("zone interior the code formula gives" in a and "overstates" in a for a in said)
@@ -128,85 +128,18 @@ def test_small_zones_get_extreme_values_with_smaller_blocks():
     assert baseline.loc["interior", "eva_block_mm"] == pytest.approx(1000.0)
 
 
-def test_small_pages_only_for_the_run_and_restored():
-    # the run switches off numpy's huge-page advice (a measured stall on Linux, see
-    # pipeline._small_pages) and gives the caller's setting back, also after an error
-    import numpy as np
-
-    from scananalyse import pipeline as P
-
-    core = getattr(np, "_core", None) or np.core
-    setter = core.multiarray._set_madvise_hugepage
-    original = setter(True)
-    try:
-        with P._small_pages():
-            assert setter(False) is False  # off inside the run
-        assert setter(True) is True  # the caller's "on" is back
-        with pytest.raises(RuntimeError):
-            with P._small_pages():
-                raise RuntimeError("boom")
-        assert setter(True) is True
-    finally:
-        setter(original)
-
-
-def _mmapped_blocks(libc):
-    """glibc's count of blocks served by mmap (mallinfo2().hblks)."""
-    import ctypes
-
-    class MallInfo2(ctypes.Structure):
-        _fields_ = [(n, ctypes.c_size_t) for n in ("arena", "ordblks", "smblks", "hblks", "hblkhd", "usmblks",
-                                                     "fsmblks", "uordblks", "fordblks", "keepcost")]
-
-    libc.mallinfo2.restype = MallInfo2
-    return libc.mallinfo2().hblks
-
-
-def test_freed_memory_reused_only_for_the_run(monkeypatch):
-    # Inside the run glibc serves a 48 MB block from the heap (no new mmap, so a freed
-    # grid's pages serve the next one); afterwards large blocks are mmapped again, also
-    # after an error (glibc's mallinfo2, man 3 mallinfo2).
-    import threading
-
-    from scananalyse import pipeline as P
-
-    from scananalyse._libc import glibc
-
-    libc = glibc()
-    if libc is None or not hasattr(libc, "mallinfo2"):
-        pytest.skip("needs glibc 2.33 or later")
-    monkeypatch.setattr(threading, "active_count", lambda: 1)  # other tests may leave threads
-    n = 12_000_000  # float32: 48 MB, above glibc's largest dynamic mmap threshold (32 MB)
-    with P._reuse_freed_memory():
-        before = _mmapped_blocks(libc)
-        a = np.ones(n, dtype=np.float32)
-        assert _mmapped_blocks(libc) == before  # from the heap
-        del a
-    before = _mmapped_blocks(libc)
-    b = np.ones(n, dtype=np.float32)
-    assert _mmapped_blocks(libc) == before + 1  # mmapped again after the run
-    del b
-    with pytest.raises(RuntimeError):
-        with P._reuse_freed_memory():
-            raise RuntimeError("boom")
-    before = _mmapped_blocks(libc)
-    c = np.ones(n, dtype=np.float32)
-    assert _mmapped_blocks(libc) == before + 1
-    del c
-
-
 def test_return_curve_bound_at_zone_T_is_the_tables_and_others_are_searched():
     # The return-level figure's upper bound: at the zone's T it is the table's own bound
     # (depth_eva_upper_mm, not searched a second time), at the other periods a fresh
     # profile-likelihood search (Coles 2001, §3.3.3) at that period; the bound grows with T.
     from scananalyse.extremes import return_level_bounds
-    from scananalyse.pipeline import _return_curve
+    from scananalyse.report.figlist import return_curve
 
     pair = make_pair(diameter_mm=8000.0, pitch_new=20.0, pitch_old=25.0, seed=8)
     an = analyse(pair.new, pair.old, job=Job(diameter=8000.0))
     z = an.extremes_depth["interior"]
     assert z.fit is not None and z.bounds.method == "profile"
-    T_line, lvl, lower, upper, Ts = _return_curve(z)
+    T_line, lvl, lower, upper, Ts = return_curve(z)
     assert lower is None and Ts.size == upper.size >= 4
     at = np.flatnonzero(Ts == z.T)
     assert at.size == 1 and upper[at[0]] == z.depth_eva_upper_mm
@@ -221,38 +154,13 @@ def test_return_curve_bound_at_zone_T_is_the_tables_and_others_are_searched():
         assert up == b.upper
 
 
-def test_draft_figure_names_are_unique_whatever_the_zone_names():
-    # Zone names reach the figure slugs; two names that differ only in characters a file
-    # name cannot keep ("a b", "a_b") must still give two files.
-    from scananalyse.pipeline import _draft_stems
+def test_figure_file_stems_keep_letters_and_digits_only():
+    # Zone names reach the figure slugs; the figures are numbered in the report's order, so
+    # two names that differ only in characters a file name cannot keep still give two files.
+    from scananalyse.report.figlist import file_stem
 
-    specs = [("extremes:a b", "probability_a b", "", None), ("extremes:a_b", "probability_a_b", "", None)]
-    stems = _draft_stems(specs, 7)
-    assert stems == ["d007_probability_a_b", "d008_probability_a_b"] and len(set(stems)) == 2
-
-
-@pytest.fixture
-def forked_starts(monkeypatch):
-    """Forked children forced on, and a list of (function name, pid) of each one started.
-
-    Forced: in the whole test session an idle thread of Dask's (test_fleet) makes
-    parallel_possible() say no; the figure renderer's tests force their helper the same way.
-    """
-    from scananalyse import forked
-
-    if not hasattr(os, "fork"):
-        pytest.skip("no forked children without fork()")
-    monkeypatch.setattr(forked, "parallel_possible", lambda: True)
-    started = []
-    real_start = forked.ForkedCall._start
-
-    def recording_start(self):
-        name = self._fn.__name__
-        real_start(self)
-        started.append((name, self._pid))
-
-    monkeypatch.setattr(forked.ForkedCall, "_start", recording_start)
-    return started
+    assert file_stem("probability_a b/c") == "probability_a_b_c"
+    assert len(file_stem("x" * 100)) == 60
 
 
 def _pair_4m():
@@ -260,47 +168,28 @@ def _pair_4m():
                      shift_mm=(40.0, 20.0))
 
 
-def test_forked_children_give_the_serial_result(forked_starts, monkeypatch):
-    # The registration is computed in a forked child where that is safe, while the stages that
-    # need only the newer scan run: every table must be the serial run's.
-    from scananalyse import forked
-
-    pair = _pair_4m()
-    job = Job(diameter=4000.0, target_interval=10.0)
-    par = analyse(pair.new, pair.old, job=job)
-    assert [name for name, _ in forked_starts] == ["register"]
-    monkeypatch.setattr(forked, "parallel_possible", lambda: False)
-    ser = analyse(pair.new, pair.old, job=job)
-    assert len(forked_starts) == 1  # none in the serial run
-    rp, rs = par.registration.to_dict(), ser.registration.to_dict()
-    assert rp.pop("timings_s").keys() == rs.pop("timings_s").keys()  # the times differ, nothing else
-    assert rp == rs
-    for name in ("zone_table", "zones_repaired", "indications", "patches"):
-        pd.testing.assert_frame_equal(getattr(par, name), getattr(ser, name), obj=name)
-    np.testing.assert_array_equal(par.life_map, ser.life_map)
-    assert par.assumptions == ser.assumptions and par.notes == ser.notes
-
-
 def test_repaired_floor_reuses_the_rate_statistics_only_while_its_rates_are_unchanged(monkeypatch):
     # Patched cells keep their measured rates unless the underside cause is removed; then the
     # repaired floor's rate maps are the as-found arrays themselves and their block-maxima
     # statistics are reused, not computed again.  The reused values must be what computing
     # them again on the repaired maps gives.
-    from scananalyse import pipeline
+    from scananalyse import extremes, pipeline
 
     calls = []
-    real = pipeline._rate_extremes
+    real = extremes.rate_statistics
 
     def counted(*a, **k):
         calls.append(1)
         return real(*a, **k)
 
-    monkeypatch.setattr(pipeline, "_rate_extremes", counted)
+    monkeypatch.setattr(pipeline, "rate_statistics", counted)  # the as-found statistics
+    monkeypatch.setattr(extremes, "rate_statistics", counted)  # the repaired floor's (repair.py)
     pair = _pair_4m()
     an = analyse(pair.new, pair.old, job=Job(diameter=4000.0, target_interval=10.0))
     assert len(an.patches) > 0 and len(calls) == 1  # the as-found statistics only
     rep = an.repaired_maps
-    again = real(rep["rate_top_repaired"], rep["rate_under_repaired"], an.zones, pitch=pair.new.pitch, job=an.job)
+    again = real(rep["rate_top_repaired"], rep["rate_under_repaired"], an.zones, pitch=pair.new.pitch,
+                 block_mm=an.job.block_mm, seed=an.job.seed)
     checked = 0
     for _, row in an.zones_repaired.iterrows():
         if row["zone"] in again and np.isfinite(row["rate_eva_mm_y"]):
@@ -313,54 +202,28 @@ def test_repaired_floor_reuses_the_rate_statistics_only_while_its_rates_are_unch
     assert an2.repaired_maps["rate_under_repaired"] is not an2.rates.rate_under
 
 
-def test_registration_child_is_stopped_when_the_analysis_fails(forked_starts, monkeypatch):
-    # an error in a stage that runs beside the registration's child: the child is killed
-    # and reaped before the error reaches the caller (no process outlives the run)
-    from scananalyse import zones
+def test_stages_run_in_the_documented_order():
+    # pipeline.analyse calls the stages in the order of docs/architecture.md, each timed once
+    from scananalyse.progress import Progress
 
-    def broken_zone_map(*a, **k):
-        raise RuntimeError("zones failed")
-
-    monkeypatch.setattr(zones, "zone_map", broken_zone_map)
     pair = _pair_4m()
-    with pytest.raises(RuntimeError, match="zones failed"):
-        analyse(pair.new, pair.old, job=Job(diameter=4000.0))
-    assert [name for name, _ in forked_starts] == ["register"]
-    with pytest.raises(ChildProcessError):
-        os.waitpid(forked_starts[0][1], os.WNOHANG)  # already reaped
+    prog = Progress(quiet=True)
+    analyse(pair.new, pair.old, job=Job(diameter=4000.0), progress=prog)
+    assert list(prog.timings) == ["registration", "resampling", "attribution", "zones", "extremes", "rates",
+                                  "assessment", "indications", "repairs"]
+    prog1 = Progress(quiet=True)
+    analyse(pair.new, None, job=Job(diameter=4000.0), progress=prog1)
+    assert "registration" not in prog1.timings and list(prog1.timings)[0] == "attribution"
 
 
-def test_cli_run_as_a_user_gets_it_matches_a_serial_run(small_pair_files, tmp_path):
-    # In this test session an idle Dask thread keeps every in-process run serial (see
-    # forked_starts), so the default paths are run here as a user runs them: the CLI in a
-    # process of its own, where the registration's child and the figure helpers are on.  The
-    # tables must be those of a SCANANALYSE_SERIAL=1 run; the progress lines show which ran.
-    import json
-    import subprocess
-    import sys
+def test_no_process_wide_settings_in_the_package():
+    # The package changes no allocator or huge-page setting of the process it runs in
+    # (docs/reliability.md P15): the environment is the user's.
+    from pathlib import Path
 
-    from scananalyse.forked import _usable_cores
+    import scananalyse
 
-    outs, stages = {}, {}
-    for mode in ("default", "serial"):
-        env = dict(os.environ, MPLBACKEND="Agg")
-        env.pop("SCANANALYSE_SERIAL", None)
-        if mode == "serial":
-            env["SCANANALYSE_SERIAL"] = "1"
-        out = tmp_path / mode
-        cmd = [sys.executable, "-m", "scananalyse.cli", "compare", small_pair_files["old_h5"],
-               small_pair_files["new_h5"], "--diameter", "4000", "--out", str(out)]
-        res = subprocess.run(cmd, capture_output=True, text=True, env=env, stdin=subprocess.DEVNULL, timeout=300)
-        assert res.returncode == 0, res.stderr[-2000:]
-        stages[mode] = [line.split(":")[1].strip() for line in res.stderr.splitlines()
-                        if line.startswith("scananalyse: ") and line.rstrip().endswith(" s")]
-        outs[mode] = out
-    for name in ("zones.csv", "zones_repaired.csv", "patches.csv", "indications.csv"):
-        assert (outs["default"] / name).read_bytes() == (outs["serial"] / name).read_bytes(), name
-    reg = [json.loads((outs[m] / "registration.json").read_text()) for m in ("default", "serial")]
-    for r in reg:
-        r.pop("timings_s")
-    assert reg[0] == reg[1]
-    assert stages["serial"].index("registration") < stages["serial"].index("attribution")
-    if sys.platform.startswith("linux") and _usable_cores() >= 2:  # the child ran beside the first stages
-        assert stages["default"].index("attribution") < stages["default"].index("registration")
+    root = Path(scananalyse.__file__).parent
+    hits = [f"{f.relative_to(root)}" for f in root.rglob("*.py")
+            if any(w in f.read_text(encoding="utf-8") for w in ("mallopt", "malloc_trim", "_set_madvise_hugepage"))]
+    assert hits == []

@@ -1,4 +1,5 @@
-"""The report: figures (:mod:`.figures`), the self-contained HTML page (:mod:`.html`)
+"""The report: figures (:mod:`.figures`), which figures an analysis gets and in which order
+(:mod:`.figlist`), its words (:mod:`.content`), the self-contained HTML page (:mod:`.html`)
 and display-unit helpers (:mod:`.units`).
 
 Everything here works on plain data (arrays in mm, mm/y, years; DataFrames with

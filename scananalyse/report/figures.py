@@ -38,9 +38,6 @@ __all__ = [
     "NOT_SCANNED_COLOUR",
     "CMAPS",
     "decimate",
-    "MapImage",
-    "prepare_map",
-    "FloorMapJob",
     "reduce_feature_masks",
     "decimation_caption",
     "floor_map",
@@ -155,67 +152,6 @@ def decimate(values, *, how: str = "min", max_pixels: int = 1_500_000):
     return _block_reduce(a, f, np.fmin if how == "min" else np.fmax), f
 
 
-class MapImage:
-    """A floor map's grid already reduced for display (:func:`prepare_map`): what
-    :func:`floor_map` needs of the full-resolution grids, a few megabytes whatever the
-    floor's size, so that another process can draw the map from it.
-
-    Attributes: ``values`` (the grid reduced by :func:`decimate`, float32), ``factor`` (its block
-    size), ``full_shape`` (the full grid's shape) and ``plate`` (the plate-id layer at
-    every ``factor``-th cell, or None).
-    """
-
-    __slots__ = ("values", "factor", "full_shape", "plate")
-
-    def __init__(self, values, factor, full_shape, plate=None):
-        self.values = values
-        self.factor = int(factor)
-        self.full_shape = tuple(int(n) for n in full_shape)
-        self.plate = plate
-
-    def __getstate__(self):
-        return (self.values, self.factor, self.full_shape, self.plate)
-
-    def __setstate__(self, state):
-        self.values, self.factor, self.full_shape, self.plate = state
-
-
-def prepare_map(values, *, kind="thickness", plate=None, max_pixels=400_000) -> MapImage:
-    """The reduced form of a floor map's grid (see :class:`MapImage`; the arguments are
-    :func:`floor_map`'s): ``floor_map(prepare_map(v, ...), ...)`` draws the same image as
-    ``floor_map(v, plate=plate, ...)``."""
-    if kind not in _REDUCE:
-        raise ValueError(f"kind must be one of {tuple(_REDUCE)}, got {kind!r}")
-    v, f = decimate(values, how=_REDUCE[kind], max_pixels=max_pixels)
-    p = None if plate is None else np.array(np.asarray(plate)[::f, ::f])
-    return MapImage(v, f, np.shape(values), p)
-
-
-class FloorMapJob:
-    """A floor map to draw: ``FloorMapJob(values, **kw)()`` is ``floor_map(values, **kw)``.
-
-    :meth:`for_helper` gives the same drawing in its small form, with the grid reduced here
-    (:func:`prepare_map`): what the report's figure helper process is sent
-    (report/render.py), a few megabytes whatever the floor's size.
-    """
-
-    def __init__(self, values, **kw):
-        self.values = values
-        self.kw = kw
-
-    def __call__(self):
-        return floor_map(self.values, **self.kw)
-
-    def for_helper(self):
-        from functools import partial
-
-        kw = dict(self.kw)
-        plate = kw.pop("plate", None)
-        img = prepare_map(self.values, kind=kw.get("kind", "thickness"), plate=plate,
-                          max_pixels=kw.get("max_pixels", 400_000))
-        return partial(floor_map, img, **kw)
-
-
 def decimation_caption(kind: str, factor: int) -> str:
     """Sentence for a figure caption saying how a map was reduced for display."""
     if factor <= 1:
@@ -296,9 +232,7 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     Parameters
     ----------
     values : 2-D grid on the scan's grid, row 0 at the smallest y; NaN = not scanned.
-        For ``kind="side"`` the side codes (0 unknown, 1 top, 2 under).  Or its
-        :class:`MapImage` (:func:`prepare_map`, with the same ``kind`` and ``max_pixels``;
-        then ``plate`` is None: the image carries it). [mm, mm/y or y, by kind]
+        For ``kind="side"`` the side codes (0 unknown, 1 top, 2 under). [mm, mm/y or y, by kind]
     extent : (x_min, x_max, y_min, y_max) of the cell edges (``FloorScan.extent``). [mm]
     title : figure title (plain text).
     label : colour-bar label without the unit, e.g. ``"remaining thickness"``.
@@ -341,20 +275,38 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
         ax = fig.add_subplot()
     else:
         fig = ax.get_figure()
-    cax = None
-    if isinstance(values, MapImage):
-        if plate is not None:
-            raise ValueError("a MapImage carries its own plate layer: give plate=None")
-        v, f, (nr_full, nc_full), p_sub = values.values, values.factor, values.full_shape, values.plate
-    else:
-        v, f = decimate(values, how=_REDUCE[kind], max_pixels=max_pixels)
-        nr_full, nc_full = np.shape(values)
-        p_sub = None if plate is None else np.asarray(plate)[::f, ::f]
+    v, f = decimate(values, how=_REDUCE[kind], max_pixels=max_pixels)
+    nr_full, nc_full = np.shape(values)
+    p_sub = None if plate is None else np.asarray(plate)[::f, ::f]
     x_min, x_max, y_min, y_max = (float(e) / 1000.0 for e in extent)
     px = (x_max - x_min) / nc_full
     py = (y_max - y_min) / nr_full
     ext_m = (x_min, x_min + v.shape[1] * f * px, y_min, y_min + v.shape[0] * f * py)
 
+    disp, handles, cax = _draw_values(fig, ax, v, kind=kind, units=units, label=label, vmin=vmin, vmax=vmax,
+                                      ext_m=ext_m, own=own)
+    handles.append(Patch(facecolor=NOT_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5,
+                         label="not scanned"))
+
+    _draw_seams(ax, p_sub, handles, origin=(x_min, y_min), step=(f, px, py))
+    if contours and disp is not None:
+        _draw_contours(ax, disp, contours, handles, kind=kind, units=units, ext_m=ext_m, step=(f, px, py))
+    _draw_patches(ax, patches, handles)
+    _draw_indications(ax, indications, handles)
+    xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title)
+    if own:
+        _place_map(fig, ax, cax, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
+    fig.scananalyse_factor = f
+    fig.scananalyse_caption = decimation_caption(kind, f)
+    return fig
+
+
+
+
+def _draw_values(fig, ax, v, *, kind, units, label, vmin, vmax, ext_m, own):
+    """The grid itself: side codes in their colours, or a quantity on its colour scale
+    with a colour bar; returns ``(displayed grid or None, legend handles, colour-bar axes)``."""
+    cax = None
     if kind == "side":
         codes = np.where(np.isfinite(v), v, -1).astype(np.int16)
         data = np.ma.masked_less(codes, 0)
@@ -398,10 +350,14 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
             cb = fig.colorbar(im, ax=ax, shrink=0.82, pad=0.02, extend=extend)
         cb.set_label(f"{label} [{U.unit_label(q, units)}]")
         handles = []
-    handles.append(Patch(facecolor=NOT_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5,
-                         label="not scanned"))
+    return disp, handles, cax
 
-    # plate seams: where the plate id changes between neighbouring (sub-sampled) cells
+
+def _draw_seams(ax, p_sub, handles, *, origin, step):
+    """Plate seams, where the plate id changes between neighbouring (sub-sampled) cells
+    (``origin`` the lower-left corner [m], ``step`` the sub-sampling factor and a cell's size [m])."""
+    x_min, y_min = origin
+    f, px, py = step
     if p_sub is not None:
         p = p_sub
         seam = np.zeros(p.shape, dtype=bool)
@@ -417,36 +373,43 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
             handles.append(Line2D([], [], color=_SEAM_COLOUR, lw=1.2, alpha=0.75,
                                   label="plate seam"))
 
-    # contours (e.g. MRT, repair threshold) on the displayed grid
-    if contours and disp is not None:
-        q = _QUANTITY[kind]
-        yy = ext_m[2] + (np.arange(disp.shape[0]) + 0.5) * f * py
-        xx = ext_m[0] + (np.arange(disp.shape[1]) + 0.5) * f * px
-        finite = np.isfinite(disp)
-        dmin = float(np.min(disp[finite])) if finite.any() else np.nan
-        dmax = float(np.max(disp[finite])) if finite.any() else np.nan
-        defaults = ["#111111", "#c0392b", "#ffffff"]
-        for k, item in enumerate(contours):
-            level, clabel, style = (tuple(item) + (None, None))[:3]
-            lvl = U.convert(level, q, units)
-            kw = {"colors": defaults[k % len(defaults)], "linewidths": 1.4}
-            if isinstance(style, dict):
-                kw.update(style)
-            elif style:
-                kw["linestyles"] = style
-            ls = kw.get("linestyles", "solid")
-            if np.isfinite(lvl) and dmin < lvl < dmax:
-                ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
-            unit = U.unit_label(q, units)
-            nd = U.decimals(q, units)
-            col = kw["colors"] if isinstance(kw["colors"], str) else kw["colors"][0]
-            handles.append(Line2D([], [], color=col, lw=kw["linewidths"],
-                                  linestyle=ls if isinstance(ls, str) else "solid",
-                                  label=f"{clabel or 'contour'} ({lvl:.{nd}f} {unit})"
-                                  + ("" if np.isfinite(lvl) and dmin < lvl < dmax
-                                     else " – not reached")))
 
-    # patch plates: rounded rectangles
+
+def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
+    """Contour lines (e.g. MRT, repair threshold) on the displayed grid, each with a legend entry
+    (``step``: the display reduction factor and a cell's size [m])."""
+    f, px, py = step
+    q = _QUANTITY[kind]
+    yy = ext_m[2] + (np.arange(disp.shape[0]) + 0.5) * f * py
+    xx = ext_m[0] + (np.arange(disp.shape[1]) + 0.5) * f * px
+    finite = np.isfinite(disp)
+    dmin = float(np.min(disp[finite])) if finite.any() else np.nan
+    dmax = float(np.max(disp[finite])) if finite.any() else np.nan
+    defaults = ["#111111", "#c0392b", "#ffffff"]
+    for k, item in enumerate(contours):
+        level, clabel, style = (tuple(item) + (None, None))[:3]
+        lvl = U.convert(level, q, units)
+        kw = {"colors": defaults[k % len(defaults)], "linewidths": 1.4}
+        if isinstance(style, dict):
+            kw.update(style)
+        elif style:
+            kw["linestyles"] = style
+        ls = kw.get("linestyles", "solid")
+        if np.isfinite(lvl) and dmin < lvl < dmax:
+            ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
+        unit = U.unit_label(q, units)
+        nd = U.decimals(q, units)
+        col = kw["colors"] if isinstance(kw["colors"], str) else kw["colors"][0]
+        handles.append(Line2D([], [], color=col, lw=kw["linewidths"],
+                              linestyle=ls if isinstance(ls, str) else "solid",
+                              label=f"{clabel or 'contour'} ({lvl:.{nd}f} {unit})"
+                              + ("" if np.isfinite(lvl) and dmin < lvl < dmax
+                                 else " – not reached")))
+
+
+
+def _draw_patches(ax, patches, handles):
+    """Patch plates as rounded rectangles (one collection)."""
     if patches is not None and len(patches):
         rcol = _find_col(patches, ["corner_radius_mm"])
         x0s = patches["x_min_mm"].to_numpy(float) / 1000.0
@@ -465,7 +428,10 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
         handles.append(Patch(facecolor="none", edgecolor="#00a36c", linewidth=1.4,
                              label="patch plate"))
 
-    # indications: ringed, deepest ten labelled
+
+
+def _draw_indications(ax, indications, handles):
+    """Indications ringed, the ten deepest labelled."""
     if indications is not None and len(indications):
         xc = _find_col(indications, ["x_mm", "x_centroid_mm", "x"])
         yc = _find_col(indications, ["y_mm", "y_centroid_mm", "y"])
@@ -483,7 +449,11 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
             handles.append(Line2D([], [], marker="o", linestyle="none", markerfacecolor="none",
                                   markeredgecolor="#e41a1c", label="indication"))
 
-    # shell circle and limits
+
+
+def _frame_floor(ax, ext_m, handles, *, centre, diameter_mm, title):
+    """The shell circle, limits, labels, scale bar, datum arrow and the legend under the map;
+    returns ``(x limits, y limits, legend, legend columns)``."""
     cx, cy = centre[0] / 1000.0, centre[1] / 1000.0
     xl = [ext_m[0], ext_m[1]]
     yl = [ext_m[2], ext_m[3]]
@@ -510,11 +480,7 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     ncol = min(4, len(handles))
     legend = ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.09), fontsize=7.5,
                        ncol=ncol, frameon=False, handlelength=1.8, columnspacing=1.2)
-    if own:
-        _place_map(fig, ax, cax, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
-    fig.scananalyse_factor = f
-    fig.scananalyse_caption = decimation_caption(kind, f)
-    return fig
+    return xl, yl, legend, ncol
 
 
 #: Fixed margins of a floor map on its own figure [in]: left (y tick labels and label),
@@ -565,9 +531,8 @@ def _composite(new, old):
 
 
 def reduce_feature_masks(new_features, old_features_before, old_features_after, *, max_pixels=300_000):
-    """The three masks of :func:`registration_overlay` block-reduced for display ("any"),
-    as ``(masks, factor, full_shape)``: ``registration_overlay(*masks, reduced=(factor,
-    full_shape), ...)`` draws the same figure as from the full masks."""
+    """The three masks of :func:`registration_overlay` block-reduced for display ("any": a
+    pixel is set if any cell in it is), as ``(masks, factor, full_shape)``."""
     masks = [np.asarray(m, dtype=bool) for m in (new_features, old_features_before, old_features_after)]
     shp = masks[0].shape
     for m in masks[1:]:
@@ -578,7 +543,7 @@ def reduce_feature_masks(new_features, old_features_before, old_features_after, 
 
 
 def registration_overlay(new_features, old_features_before, old_features_after, *, extent,
-                         max_pixels=300_000, ax=None, reduced=None):
+                         max_pixels=300_000, ax=None):
     """Two-colour composite of the scans' feature masks before and after alignment.
 
     Parameters
@@ -591,8 +556,6 @@ def registration_overlay(new_features, old_features_before, old_features_after, 
     extent : (x_min, x_max, y_min, y_max) of the new grid's cell edges. [mm]
     max_pixels : masks are block-reduced with "any" to at most this many pixels.
     ax : None, or a pair of axes (before, after).
-    reduced : None, or ``(factor, full_shape)`` when the masks are already reduced
-        (:func:`reduce_feature_masks`).
 
     Returns
     -------
@@ -607,12 +570,8 @@ def registration_overlay(new_features, old_features_before, old_features_after, 
             raise ValueError("registration_overlay needs ax=None or a pair of axes")
         fig = axes[0].get_figure()
     x_min, x_max, y_min, y_max = (float(e) / 1000.0 for e in extent)
-    if reduced is None:
-        (nb, ob, oa), f, shp = reduce_feature_masks(new_features, old_features_before, old_features_after,
-                                                    max_pixels=max_pixels)
-    else:
-        nb, ob, oa = (np.asarray(m, dtype=bool) for m in (new_features, old_features_before, old_features_after))
-        f, shp = int(reduced[0]), tuple(reduced[1])
+    (nb, ob, oa), f, shp = reduce_feature_masks(new_features, old_features_before, old_features_after,
+                                                max_pixels=max_pixels)
     px, py = (x_max - x_min) / shp[1], (y_max - y_min) / shp[0]
     ext = (x_min, x_min + nb.shape[1] * f * px, y_min, y_min + nb.shape[0] * f * py)
     for a, old, ttl in ((axes[0], ob, "before alignment"), (axes[1], oa, "after alignment")):

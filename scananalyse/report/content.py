@@ -1,0 +1,156 @@
+"""The report's words: what each result asks of the inspector, the flags explained, the
+assumptions, and the :class:`~scananalyse.report.html.ReportData` of an analysis."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import os
+
+import numpy as np
+
+from ..evlife import LIFE_LEVEL
+from ..extremes import GEV_ALPHA, MIN_BLOCK_MM
+from ..indications import reporting_depth
+from .html import ReportData
+
+__all__ = ["FLAGS_EXPLAINED", "actions", "report_data"]
+
+#: One sentence per word of the `flags` column of zones.csv, shown in the report.
+FLAGS_EXPLAINED = {
+    "below-mrt": "The zone's thinnest reported cell is already below its MRT: repair before return to service.",
+    "critical-zone-below-min": "The critical zone (within the rule set's width of the shell) is below its minimum.",
+    "code-exceeds-local": "The code-formula interval is longer than the co-located projection from the measured "
+                          "rates at the same cells: the formula overstates what the metal supports here.",
+    "code-exceeds-eva": "The code-formula interval is longer than the extreme-value life, which allows for the "
+                        "deepest pit expected in the unscanned and below-threshold parts of the zone.",
+    "low-coverage": "Less of the zone was scanned than the rule set's minimum coverage; the extreme-value "
+                    "estimate carries more weight and more uncertainty.",
+    "target-not-reached": "The recommended interval is shorter than the target interval.",
+    "no-short-term-rates": "Only one inspection: rates are long-term (loss ÷ years in service); a pit that began "
+                           "late grows faster than that.",
+    "no-data": "No cell of the zone was scanned: nothing can be said from the scan.",
+    "no-eva": "No extreme-value estimate could be made for the zone (too few blocks).",
+    "eva-rate-assumed": "The extreme-value life uses the zone's fastest measured rates, not a fitted rate extreme.",
+    "initial-interval": "No corrosion rates are known: the initial-interval rules apply.",
+    "no-age": "The scan gives no installation date: age-based rates and the code formula cannot be computed.",
+    "critical-zone-special-repair": "A patch touches the critical zone: only special shapes or plate replacement "
+                                    "are allowed there.",
+}
+
+
+def actions(an) -> list[str]:
+    """Plain sentences on what each zone's result asks of the inspector and the engineer."""
+    out = []
+    found = an.zone_table.set_index("zone")
+    rep = an.zones_repaired.set_index("zone") if an.zones_repaired is not None else None
+    for zone, z in found.iterrows():
+        flags = set(str(z["flags"]).split(";")) if isinstance(z["flags"], str) else set()
+        if "no-data" in flags:
+            out.append(f"Zone {zone} was not scanned: assess it by hand UT before setting its interval.")
+            continue
+        if "below-mrt" in flags:
+            out.append(f"Zone {zone} is below MRT now (thinnest {z['t_min_mm']:.2f} mm against {z['mrt_mm']:.2f} mm): "
+                       "repair before return to service.")
+        if "code-exceeds-local" in flags:
+            out.append(f"In zone {zone} the code formula gives {z['interval_code_y']:.1f} y but the co-located "
+                       f"projection from the measured rates only {z['life_local_y']:.1f} y: the formula overstates what "
+                       "the metal supports; the recommendation follows the metal.")
+        if rep is not None and zone in rep.index:
+            r = rep.loc[zone]
+            if isinstance(r["limiting"], str) and r["limiting"] == "eva" and np.isfinite(r["interval_recommended_y"]):
+                hidden = max(0.0, float(r["area_m2"]) * (1 - float(r["coverage_pct"]) / 100))
+                out.append(f"After repair, zone {zone} is limited by the extreme-value life ({r['life_eva_y']:.1f} y): "
+                           f"the {hidden:.1f} m² nobody scanned may hide deeper pits; proving them up by hand UT (adding the "
+                           "readings to the newer scan file) and re-running can lengthen the interval.")
+    return out
+
+
+def report_data(an, units: str, registration_dict, figs) -> ReportData:
+    """Everything the report page shows of an analysis.
+
+    Parameters
+    ----------
+    an : :class:`~scananalyse.pipeline.Analysis`
+    units : display units, ``"mm"`` or ``"in"``.
+    registration_dict : dict or None
+        ``Registration.to_dict()`` (two inspections).
+    figs : list of ``(section, caption, png bytes)``
+        The drawn figures in the report's order.
+
+    Returns
+    -------
+    ReportData
+        For :func:`~scananalyse.report.html.write_report`.
+    """
+
+    floor_mm2 = math.pi * (an.zones.geometry.diameter_mm / 2) ** 2
+
+    def insp(label, s):
+        return {"label": label, "date": s.meta.inspected.isoformat(), "method": s.meta.method or "-",
+                "file": os.path.basename(s.source or "-"), "pitch_mm": s.pitch,
+                "coverage_pct": min(100.0, 100.0 * s.n_scanned * s.cell_area / floor_mm2),
+                "threshold_mm": s.meta.threshold, "sigma_mm": s.meta.sigma}
+
+    inspections = ([insp("older", an.old)] if an.old is not None else []) + [insp("newer" if an.old else "only", an.new)]
+    fig_dict: dict = {}
+    for sec, cap, png in figs:
+        fig_dict.setdefault(sec, []).append((cap, png))
+    ext = {}
+    for name, z in an.extremes_depth.items():
+        row = z.row()
+        r = an.extremes_rate.get(name)
+        if r:
+            row["rate_eva_mm_y"] = r.depth_eva_mm
+            row["rate_eva_upper_mm_y"] = r.depth_eva_upper_mm
+        ext[name] = row
+    att = an.attribution
+    assumptions = list(an.assumptions)
+    assumptions.append(f"Indications: connected regions (8-connected) of loss at or above "
+                       f"{reporting_depth(an.new):.2f} mm (the detection threshold, or 10 % of nominal without one).")
+    assumptions.append(f"Extreme values: blocks of {an.job.block_mm:g} mm square (halved, down to "
+                       f"{MIN_BLOCK_MM:g} mm, in zones too small or narrow for a fit; eva_block_mm gives the side "
+                       "used), counted when at least half scanned; Gumbel maximum likelihood with left-censoring at the detection threshold "
+                       f"(GEV instead when the likelihood-ratio test rejects Gumbel at {GEV_ALPHA:g}); return "
+                       "period T = whole zone area ÷ block area; 90 % one-sided upper bound by seeded parametric "
+                       "bootstrap (profile likelihood for GEV); depth_pred_upper_mm is the predictive 90 % bound.")
+    assumptions.append(
+        "Extreme-value life: each cell's loss projected forward at its own measured top + underside rates; the "
+        "life is when the deepest projected loss over the zone reaches nominal − MRT, the deepest being the "
+        f"greater of the deepest scanned value and the {LIFE_LEVEL:.0%} quantile of the largest of T block maxima, "
+        "T = unscanned zone area ÷ block area. On 30 synthetic floors whose pits fall where they may, scanned or "
+        "not, this life was at most 1.1 × the true life of all the metal in 23; with deep pits deliberately hidden "
+        "under unscanned ground, in 6. A hidden pit deeper than anything scanned cannot be ruled out by "
+        "statistics: prove up unscanned areas (hand UT) where the zone's life is short.")
+    assumptions.append("Repair planning: cells that would fall below MRT before the target interval at their own "
+                       "rates are grouped into patch plates; patched cells take the patch thickness and keep their "
+                       "measured top-side rate and "
+                       + ("no underside rate (the user says the cause of the underside corrosion was removed)."
+                          if an.job.under_cause_removed else
+                          "their measured underside rate (the cause of the underside corrosion is not assumed removed)."))
+    assumptions.append("Maps are drawn from decimated grids on big floors (minimum thickness / maximum loss and "
+                       "rate per displayed pixel), so the worst value is never hidden; the tables use every cell.")
+    notes = actions(an) + list(an.notes)
+    if att and att.get("cells_with_loss"):
+        notes.append(
+            f"Attribution: of {att['cells_with_loss']} cells with reported loss, {att['cells_top']} were attributed "
+            f"to the top side and {att['cells_under']} to the underside by the operator"
+            + (f", {att['cells_top_depth']} have a measured top-side depth" if att.get("cells_top_depth") else "")
+            + f"; {att['cells_defaulted']} ({att['defaulted_pct']:.0f} %) were not attributed and count as "
+            f"{'underside' if att['default_side'] == 'under' else 'top-side'} loss (the default).")
+    if an.patch_note:
+        notes.append(an.patch_note)
+    if an.uncovered_cells:
+        notes.append(f"{an.uncovered_cells} cells needing repair for the target interval are not covered by any patch.")
+    return ReportData(
+        tank={"name": an.new.meta.tank, "diameter_mm": an.zones.geometry.diameter_mm},
+        inspections=inspections, zones=an.zone_table, zones_repaired=an.zones_repaired,
+        patches=an.patches, indications=an.indications,
+        registration=None if registration_dict is None else {
+            k: registration_dict.get(k) for k in ("method", "rotation_deg", "dx_mm", "dy_mm", "score",
+                                                  "overlap_pct", "residual_rms_mm", "reliable", "warnings",
+                                                  "std_rotation_deg", "std_shift_mm", "control_residuals_mm",
+                                                  "control_rms_mm", "convention")},
+        rules_table=an.rules.table(), assumptions=assumptions, figures=fig_dict, extremes=ext,
+        flags_explained=FLAGS_EXPLAINED, units=units, timings=dict(an.timings),
+        generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)

@@ -1,0 +1,236 @@
+"""The report's figures: what is drawn, with which caption, in which order.
+
+Each figure is a spec ``(section, slug, caption, build)``: ``build()`` draws the matplotlib
+Figure from the analysis's arrays (:mod:`scananalyse.report.figures`).  The runner
+(:func:`scananalyse.runner.write_outputs`) draws them one after the other, in the
+report's order (:func:`figure_specs`), and saves each as ``figures/NN_<file_stem(slug)>.png``.
+"""
+
+from __future__ import annotations
+
+from functools import partial
+
+import numpy as np
+
+from ..indications import reporting_depth
+from . import figures as F
+
+__all__ = ["figure_specs", "map_specs", "scan_map_specs", "rate_map_specs", "as_found_specs", "repair_specs",
+           "patches_spec", "registration_figure", "return_level_figure", "return_curve", "file_stem"]
+
+
+def file_stem(slug: str) -> str:
+    """The file-name form of a figure's slug: letters and digits kept, the rest ``_``."""
+    return "".join(c if c.isalnum() else "_" for c in slug)[:60]
+
+
+def figure_specs(an, units: str) -> list:
+    """Every report figure of an analysis, in the report's order.
+
+    Parameters
+    ----------
+    an : :class:`~scananalyse.pipeline.Analysis`
+    units : display units, ``"mm"`` or ``"in"``.
+
+    Returns
+    -------
+    list of ``(section, slug, caption, build)``
+        ``build()`` draws the Figure.  The groups (:func:`map_specs`,
+        :func:`as_found_specs`, :func:`repair_specs`) are put in the report's order.
+    """
+    specs = (map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single,
+                        life=an.life_map, old=an.old, old_on_new=an.old_on_new)
+             + as_found_specs(an.zone_table, an.extremes_depth, units)
+             + repair_specs(an, units))
+    return _in_report_order(specs)
+
+
+#: The report's order of the figures, by slug (prefix); figures of one rank keep their order.
+_REPORT_RANK = (("life_local", 1), ("patches", 2), ("registration", 3), ("methods_as_found", 4),
+                ("methods_repaired", 5), ("probability_", 6), ("return_level_", 6))
+
+
+def _in_report_order(specs) -> list:
+    def rank(spec):
+        return next((r for prefix, r in _REPORT_RANK if spec[1].startswith(prefix)), 0)
+    return sorted(specs, key=rank)  # stable: the maps, and each zone's pair, keep their order
+
+
+def map_common(new, zmap, units) -> dict:
+    """The :func:`~scananalyse.report.figures.floor_map` arguments every floor map shares."""
+    return dict(extent=new.extent, units=units, diameter_mm=zmap.geometry.diameter_mm,
+                centre=zmap.geometry.centre, plate=new.plate)
+
+
+def map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None) -> list:
+    """The floor maps, the co-located life and (two inspections) the registration overlay
+    (see figure_specs): :func:`scan_map_specs` and :func:`rate_map_specs`."""
+    return (scan_map_specs(new, lr, zmap, rules, options, job, units)
+            + rate_map_specs(new, lr, zmap, job, units, single=single, life=life, old=old, old_on_new=old_on_new))
+
+
+def scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
+    """The maps that need the newer scan only, known once the zones are: thickness with
+    the MRT contour, top-side and underside loss (``layers``: ``rates.LossLayers`` or
+    ``LossRates``)."""
+    from .. import assess
+    
+    out = []
+    mrt_z = assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal)
+    areas = np.asarray(zmap.areas_mm2, dtype=float)
+    k_main = zmap.names.index("interior") if "interior" in zmap.names else int(np.argmax(areas))
+    main_zone = zmap.names[k_main]
+    mrt_c = [(float(mrt_z[k_main]), f"MRT ({main_zone})", "--")]
+    if job.repair_to_mm:
+        mrt_c.append((job.repair_to_mm, "repair-to thickness", ":"))
+    common = map_common(new, zmap, units)
+    out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
+                partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
+                        kind="thickness", contours=mrt_c, **common)))
+    out.append(("maps", "loss_top", "Top-side (product-side) loss.",
+                partial(F.floor_map, layers.loss_top, title="Top-side loss", label="top-side loss", kind="loss",
+                        **common)))
+    out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
+                partial(F.floor_map, layers.loss_under, title="Underside loss", label="underside loss", kind="loss",
+                        **common)))
+    return out
+
+
+def rate_map_specs(new, lr, zmap, job, units, *, single, life, old=None, old_on_new=None) -> list:
+    """The maps known once the rates are: short-term rates (or the long-term one), the
+    co-located life and (two inspections) the registration overlay."""
+    out = []
+    common = map_common(new, zmap, units)
+    if not single:
+        out.append(("maps", "rate_short_top", "Short-term top-side rate (change between the inspections ÷ years between them).",
+                    partial(F.floor_map, lr.rate_short_top, title="Short-term top-side rate", label="top-side rate",
+                            kind="rate", **common)))
+        out.append(("maps", "rate_short_under", "Short-term underside rate.",
+                    partial(F.floor_map, lr.rate_short_under, title="Short-term underside rate", label="underside rate",
+                            kind="rate", **common)))
+    else:
+        out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
+                    partial(F.floor_map, np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
+                            label="rate, both sides", kind="rate", **common)))
+    out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
+                "contour at the target interval.",
+                partial(F.floor_map, life, title="Remaining life per cell", label="remaining life", kind="life",
+                        contours=[(job.target_interval, "target interval", "--")],
+                        **common)))
+    if old is not None and old_on_new is not None:
+        out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
+                    "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
+                    partial(registration_figure, new, old, old_on_new)))
+    return out
+
+
+def as_found_specs(zone_table, extremes_depth, units) -> list:
+    """The figures of the as-found results: the methods per zone, and each zone's
+    extreme-value probability and return-level plots (see figure_specs)."""
+    out = [("methods", "methods_as_found", "As found: per zone, the code-formula interval, the co-located "
+            "projection, the extreme-value life, the cap and the recommendation.",
+            partial(F.method_comparison, zone_table))]
+    for name, z in extremes_depth.items():
+        if not z or z.plot is None:
+            continue
+        out.append((f"extremes:{name}", f"probability_{name}", f"Probability plot of block-maximum loss, zone {name} "
+                    f"({z.row().get('eva_method', '')}).",
+                    partial(F.probability_plot, z.plot, title=f"Block maxima, zone {name}", units=units)))
+        if z.fit is not None and z.blocks is not None:
+            out.append((f"extremes:{name}", f"return_level_{name}", f"Return level with {100 * z.level:.0f} % upper bound "
+                        "(profile likelihood at the dots; between them its margin over the return level is "
+                        f"interpolated); the zone's T = {z.T:.0f} blocks is marked.",
+                        partial(return_level_figure, z, name, units)))
+    return out
+
+
+def repair_specs(an, units: str) -> list:
+    """The figures of the proposed repairs: the patch plates and the methods per zone after
+    them (see figure_specs)."""
+    return [patches_spec(an.new, an.patches, an.zones, units),
+            ("methods", "methods_repaired", "After the proposed repairs: the same per zone.",
+             partial(F.method_comparison, an.zones_repaired))]
+
+
+def patches_spec(new, patches, zmap, units):
+    """The patch-plate map (known as soon as the patches are, before the re-assessment)."""
+    return ("maps", "patches", "The proposed patch plates on the thickness map (cells that would fall below "
+            "MRT before the target interval at their own rates lie inside them).",
+            partial(F.floor_map, new.thickness, title="Repairs: patch plates on the thickness map",
+                    label="remaining thickness", kind="thickness",
+                    patches=patches if len(patches) else None, indications=None,
+                    **map_common(new, zmap, units)))
+
+
+def registration_figure(new, old, old_on_new):
+    """The registration overlay: the scans' features (unscanned cells, loss at or above the
+    reporting depth) of the newer scan against the older one before and after alignment
+    (:func:`~scananalyse.report.figures.registration_overlay`)."""
+    from ..register import RigidTransform, resample_layer
+
+    depth = reporting_depth(new)
+
+    def features(t, nominal):
+        # unscanned, or loss (nominal - t) at or above the reporting depth: boolean
+        # comparisons only (NaN compares False), no float copies of the grid
+        with np.errstate(invalid="ignore"):
+            return ~np.isfinite(t) | (t <= np.float32(nominal - depth))
+
+    feat_new = features(new.thickness, new.meta.nominal)
+    # before alignment: the older scan's features on its own grid, placed by its raw
+    # coordinates (nearest cell; a display aid, so no interpolation is needed)
+    feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new, RigidTransform(), fill=True)
+    feat_after = features(old_on_new.thickness, new.meta.nominal)
+    return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent)
+
+
+def return_level_figure(z, name, units):
+    """The return-level plot of one zone's depth statistics ``z``."""
+    T_line, lvl, lower, upper, T_bound = return_curve(z)
+    return F.return_level_plot(T_line, lvl, lower, upper, bound_T=T_bound, zone_T=z.T, units=units,
+                               bound_label=f"{100 * z.level:.0f} % upper bound", title=f"Return level, zone {name}")
+
+
+def return_curve(z):
+    """The return-level curve of one zone's depth statistics, for the plot.
+
+    Parameters
+    ----------
+    z : :class:`~scananalyse.extremes.ZoneExtremes`
+
+    Returns
+    -------
+    tuple or None
+        ``(T_line, level, None, upper, T_bound)``: the return level
+        (:func:`~scananalyse.extremes.return_level`) on 60 periods [blocks] and its
+        one-sided profile-likelihood upper bound at a few periods and the zone's T
+        (Coles 2001 §3.3); None without a fit. [mm]
+    """
+    from ..errors import FitError
+    from ..extremes import return_level, return_level_bounds
+
+    if z.fit is None or z.blocks is None:
+        return None
+    T_max = max(10.0, 3 * z.T)
+    T_line = np.geomspace(2.0, T_max, 60)  # the return level is a formula: a smooth line
+    lvl = np.array([float(return_level(z.fit, T)) for T in T_line])
+    # the bound is a profile-likelihood search per period: at five periods and the zone's T
+    grid = np.geomspace(2.0, T_max, 5)
+    grid = grid[np.abs(np.log(grid / z.T)) > np.log(1.25)] if z.T > 0 else grid  # none next to the zone's T
+    Ts = np.unique(np.r_[grid.round(2), z.T])
+    ups = []
+    mx = np.asarray(z.blocks.maxima, dtype=float)
+    cen = np.asarray(z.blocks.censored, dtype=bool)
+    b_zone = getattr(z, "bounds", None)
+    for T in Ts:
+        if T == z.T and b_zone is not None and b_zone.method == "profile" and b_zone.one_sided \
+                and b_zone.level == z.level:
+            ups.append(b_zone.upper)  # the table's own bound at the zone's T: not searched twice
+            continue
+        try:
+            b = return_level_bounds(z.fit, mx, T, level=z.level, one_sided=True, method="profile",
+                                    censored=cen if cen.any() else None, threshold=z.threshold if cen.any() else None)
+            ups.append(b.upper)
+        except (FitError, ValueError, ArithmeticError):
+            ups.append(np.nan)  # a display aid only: the table's bound comes from zone_extremes
+    return T_line, lvl, None, np.array(ups), Ts

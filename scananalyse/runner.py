@@ -1,0 +1,272 @@
+"""Files around the analysis: read the scans, run :func:`~scananalyse.pipeline.analyse`,
+write every output into a folder that appears only when complete, and say what was done.
+
+``compare`` (two inspections), ``assess_single`` (one), ``register_files`` and
+``run_demo`` are what the command line calls; :func:`write_outputs` writes an
+:class:`~scananalyse.pipeline.Analysis` into a folder, figures drawn one after the other.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from . import CAUTION, __version__
+from .errors import InputError
+from .indications import write_indications_csv
+from .io import read_scan
+from .job import Job
+from .outputs import output_folder, write_json, write_results_h5
+from .pipeline import Analysis, analyse, read_job_inputs
+from .progress import Progress
+from .register import register
+from .repair import write_patches_csv, write_patches_dxf
+from .report import figures as F
+from .report.content import actions, report_data
+from .report.figlist import figure_specs, file_stem
+from .report.html import write_report
+from .scan import to_display
+
+__all__ = ["CompareResult", "STAGES_PAIR", "STAGES_SINGLE", "write_outputs", "compare", "assess_single",
+           "register_files", "run_demo", "sample_dir", "DEMO"]
+
+#: The stages a two-inspection job reports progress for, in order.
+STAGES_PAIR = ["load", "registration", "resampling", "attribution", "zones", "extremes", "rates", "assessment",
+               "indications", "repairs", "outputs", "report"]
+#: The stages of a one-inspection job.
+STAGES_SINGLE = [s for s in STAGES_PAIR if s not in ("registration", "resampling")]
+
+
+@dataclass
+class CompareResult:
+    """What ``compare``/``assess`` wrote, for the console and for callers."""
+
+    out_dir: str
+    zones: pd.DataFrame
+    zones_repaired: pd.DataFrame
+    patches: pd.DataFrame
+    indications: pd.DataFrame
+    registration: dict | None
+    report_path: str
+    units: str
+    tank: str
+    single: bool
+    files: list
+    notes: list = field(default_factory=list)
+
+    def console_summary(self) -> str:
+        u = self.units
+        lu = "in" if u == "in" else "mm"
+        lines = [f"scananalyse {__version__}: tank {self.tank or '-'}"
+                 + (" (one inspection: long-term rates only)" if self.single else "")]
+        if self.registration:
+            r = self.registration
+            lines.append(f"registration: rotation {r['rotation_deg']:.3f} deg, shift "
+                         f"({r['dx_mm']:.1f}, {r['dy_mm']:.1f}) mm, score {r['score'] or 0:.2f}, "
+                         f"overlap {r['overlap_pct'] or 0:.1f} %" + ("" if r["reliable"] else "  ** UNRELIABLE **"))
+        nd = 3 if u == "in" else 1
+        hdr = f"  {'zone':<12}{'t_min':>8}{'code':>8}{'local':>8}{'eva':>8}{'recomm.':>9}  {'next due':<11}{'limiting':<10}flags"
+        for title, table in (("as found", self.zones), ("after the proposed repairs", self.zones_repaired)):
+            if table is None:
+                continue
+            lines.append(f"per zone, {title} (thickness {lu}; code formula, co-located, extreme-value and "
+                         f"recommended intervals in years):")
+            lines.append(hdr)
+            for _, z in table.iterrows():
+                due = z["next_due"] if isinstance(z["next_due"], str) and z["next_due"] else "-"
+                flags = z["flags"] if isinstance(z["flags"], str) else ""
+                lines.append(
+                    f"  {str(z['zone']):<12}{_fmt(to_display(z['t_min_mm'], u), nd):>8}{_fmt(z['interval_code_y']):>8}"
+                    f"{_fmt(z['life_local_y']):>8}{_fmt(z.get('life_eva_y', float('nan'))):>8}"
+                    f"{_fmt(z['interval_recommended_y']):>9}  {due:<11}{str(z['limiting'] or '-') if isinstance(z['limiting'], str) else '-':<10}"
+                    f"{flags}")
+        if len(self.patches):
+            area = float(self.patches["area_m2"].sum())
+            lines.append(f"proposed patch plates: {len(self.patches)}, {area:.2f} m2 in all (patches.csv, patches.dxf)")
+        else:
+            lines.append("proposed patch plates: none needed for the target interval")
+        st = self.indications["status"].value_counts() if "status" in self.indications else {}
+        parts = [f"{int(st[k])} {k}" for k in ("new", "grown", "stable", "not found") if k in st]
+        lines.append(f"indications: {len(self.indications)} (indications.csv)" + (f": {', '.join(parts)}" if parts else ""))
+        for n in self.notes:
+            lines.append("note: " + n)
+        lines.append(f"report: {self.report_path}")
+        lines.append("CAUTION: " + CAUTION)
+        return "\n".join(lines)
+
+
+def _fmt(v, nd=1) -> str:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return "-"
+    if math.isnan(v):
+        return "-"
+    if math.isinf(v):
+        return "inf"
+    return f"{v:.{nd}f}"
+
+
+def _to_mm(value, scan: FloorScan):
+    if value is None:
+        return None
+    return float(value) * (MM_PER_IN if scan.meta.units == "in" else 1.0)
+
+
+def _fmt(v, nd=1) -> str:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return "-"
+    if math.isnan(v):
+        return "-"
+    if math.isinf(v):
+        return "inf"
+    return f"{v:.{nd}f}"
+
+
+def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi: int = 130) -> list:
+    """Write every output file of an analysis into ``folder`` (which must exist).
+
+    The data files first (zones.csv, zones_repaired.csv, patches.csv, patches.dxf,
+    indications.csv, registration.json, results.h5), then each figure of
+    :func:`~scananalyse.report.figlist.figure_specs` drawn in the report's order as
+    ``figures/NN_<slug>.png``, then report.html.  Returns the files' names relative to
+    ``folder``.
+    """
+    prog = progress or Progress(quiet=True)
+    folder = Path(folder)
+    units = an.job.units
+    files = []
+    with prog.stage("outputs"):
+        an.zone_table.to_csv(folder / "zones.csv", index=False)
+        an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
+        write_patches_csv(an.patches, folder / "patches.csv")
+        write_patches_dxf(an.patches, folder / "patches.dxf")
+        write_indications_csv(an.indications, folder / "indications.csv")
+        files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
+        reg_dict = None
+        if an.registration is not None:
+            reg_dict = an.registration.to_dict()
+            write_json(reg_dict, folder / "registration.json")
+            files.append("registration.json")
+        write_results_h5(folder / "results.h5", _result_maps(an), x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
+                         attrs=_result_attrs(an), timings=an.timings)
+        files.append("results.h5")
+    with prog.stage("report"):
+        figdir = folder / "figures"
+        figdir.mkdir(exist_ok=True)
+        figs = []
+        for n, (sec, slug, cap, build) in enumerate(figure_specs(an, units), start=1):
+            fig = build()
+            path = figdir / f"{n:02d}_{file_stem(slug)}.png"
+            F.save_png(fig, path, dpi=dpi)
+            figs.append((sec, f"{cap} {getattr(fig, 'scananalyse_caption', '')}".strip(), path.read_bytes()))
+            files.append(f"figures/{path.name}")
+            del fig
+        write_report(report_data(an, units, reg_dict, figs), folder / "report.html")
+        files.append("report.html")
+    return files
+
+
+def _result_maps(an: Analysis) -> dict:
+    """Every map results.h5 holds, by dataset name."""
+    maps = dict(an.rates.maps())
+    maps.update({"thickness": an.new.thickness, "side_raw": an.side_raw, "side": an.side,
+                 "zone": an.zones.labels, "life_local": an.life_map, "mrt": an.mrt_map,
+                 "needs_repair": an.needs_repair})
+    if an.old_on_new is not None:
+        maps["thickness_old_on_new"] = an.old_on_new.thickness
+    maps.update(an.repaired_maps)
+    return maps
+
+
+def _result_attrs(an: Analysis) -> dict:
+    return {"tank": an.new.meta.tank, "inspected_new": an.new.meta.inspected.isoformat(),
+            "inspected_old": an.old.meta.inspected.isoformat() if an.old else "",
+            "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__, "caution": CAUTION}
+
+
+def _check_out_dir(out_dir, force):
+    p = Path(out_dir)
+    if p.exists() and not p.is_dir():
+        raise InputError(f"{p}: exists and is not a folder")
+    if p.exists() and not force:
+        raise InputError(f"{p}: output folder exists; use --force to replace it")
+
+
+def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
+    _check_out_dir(out_dir, force)
+    prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
+    with prog.stage("load"):
+        new = read_scan(new_path)
+        old = None if single else read_scan(old_path)
+        inputs = read_job_inputs(job, new)
+    with output_folder(out_dir, force=force) as tmp:
+        an = analyse(new, old, job=job, progress=prog, inputs=inputs)
+        files = write_outputs(an, tmp, progress=prog)
+    prog.finish()
+    reg = an.registration.to_dict() if an.registration is not None else None
+    return CompareResult(out_dir=str(out_dir), zones=an.zone_table, zones_repaired=an.zones_repaired,
+                         patches=an.patches, indications=an.indications, registration=reg,
+                         report_path=str(Path(out_dir) / "report.html"), units=job.units,
+                         tank=an.new.meta.tank, single=single, files=files,
+                         notes=actions(an) + list(an.notes) + ([an.patch_note] if an.patch_note else []))
+
+
+def compare(old_path, new_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:
+    """The whole job on two inspections of one floor; writes the outputs into ``out_dir``."""
+    return _run(old_path, new_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=False)
+
+
+def assess_single(scan_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:
+    """The same assessment from one inspection (long-term rates from ``installed``)."""
+    return _run(None, scan_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=True)
+
+
+def register_files(old_path, new_path, *, out_dir, control_points=None, force=False, quiet=False) -> dict:
+    """Register two scan files and write ``out_dir/registration.json``."""
+    _check_out_dir(out_dir, force)
+    prog = Progress(["load", "registration"], quiet=quiet)
+    with prog.stage("load"):
+        old = read_scan(old_path)
+        new = read_scan(new_path)
+    with output_folder(out_dir, force=force) as tmp:
+        with prog.stage("registration"):
+            reg = register(new, old, control_points=control_points)
+        d = reg.to_dict()
+        write_json(d, Path(tmp) / "registration.json")
+    prog.finish()
+    summary = (f"rotation {d['rotation_deg']:.3f} deg, shift ({d['dx_mm']:.1f}, {d['dy_mm']:.1f}) mm, "
+               f"score {d['score'] or 0:.2f}, overlap {d['overlap_pct'] or 0:.1f} %, "
+               f"residual RMS {d['residual_rms_mm'] or float('nan'):.3f} mm, method {d['method']}"
+               + ("" if d["reliable"] else " -- UNRELIABLE: " + "; ".join(d["warnings"]))
+               + f"\nwrote {Path(out_dir) / 'registration.json'}")
+    return {"registration": d, "summary": summary}
+
+
+def sample_dir() -> Path:
+    """Folder of the shipped sample scans (beside the package in a source checkout)."""
+    here = Path(__file__).resolve().parent
+    for cand in (here.parent / "sample_scans", here / "sample_scans"):
+        if cand.is_dir():
+            return cand
+    raise InputError("sample_scans: the sample scan folder was not found beside the package")
+
+
+DEMO = {"old": "FQ-214_2015-09-21.h5", "new": "FQ-214_2025-10-06.h5", "repairs": "FQ-214_repairs.csv",
+        "diameter": 8000.0}
+
+
+def run_demo(out_dir="demo_out", *, units=None, quiet=False, force: bool = False) -> CompareResult:
+    """The whole job on the shipped sample scans (an invented tank, see sample_scans/README.md).
+
+    Like :func:`compare`, an existing ``out_dir`` is refused unless ``force``, and then only a
+    complete earlier output of scananalyse is replaced (:func:`~scananalyse.outputs.output_folder`).
+    """
+    d = sample_dir()
+    job = Job(diameter=DEMO["diameter"], repairs=str(d / DEMO["repairs"]), units=units or "mm")
+    return compare(d / DEMO["old"], d / DEMO["new"], job=job, out_dir=out_dir, force=force, quiet=quiet)
