@@ -214,7 +214,7 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
     tank name).  Returns a fleet row (dict).  Bad input gives a row with status ``error``
     and the one-line message; an internal fault gives status ``fault``.
     """
-    from .job import Job, read_job
+    from .job import SCAN_UNITS, Job, read_job
     from .outputs import is_complete_output
     from .runner import compare
 
@@ -229,7 +229,9 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
             row["status"] = "ok (kept)"
         else:
             job = read_job(entry["job"]) if entry.get("job") else Job()
-            job = job.replace(diameter=entry["diameter"])
+            # the manifest's diameter is in the scans' units, whatever units the job file states
+            job = job.with_lengths(units=SCAN_UNITS, diameter=entry["diameter"],
+                                   where={"diameter": f"{entry.get('tank')}: field 'diameter'"})
             res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
             row = _row_from_zones(tank, res.zones, report)
     except InputError as exc:

@@ -12,13 +12,15 @@ except :func:`read_job_inputs`.  Files, the output folder and the report are
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from . import assess, attribution, rates, repair, zones
-from .errors import InputError
+from .checks import check_job_against_scans, check_repair_to
+from .errors import InputError, ScanWarning
 from .evlife import add_eva_columns, merge_extremes, zone_lives
 from .extremes import depth_statistics, rate_statistics
 from .indications import (find_indications, gone_indications, label_indications, match_indications,
@@ -110,6 +112,11 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     notes: list[str] = []
     if job.diameter is None:
         raise InputError("--diameter: the tank's inside diameter is required")
+    # units of every length, scanned cells inside the stated shell, the two scans of one tank
+    job, warns = check_job_against_scans(job, new, old)
+    for w in warns:
+        warnings.warn(w, ScanWarning, stacklevel=2)
+        notes.append(w)
     rules = get_ruleset(job.ruleset, job.rule_overrides or None)
     if inputs is None:
         inputs = read_job_inputs(job, new, rules)
@@ -150,6 +157,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
             target_interval_years=job.target_interval)
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
+        check_repair_to(job.repair_to_mm,
+                        dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
+                        nominal_mm=new.meta.nominal, given=job.typed.get("repair_to"), what=job.where("repair_to"))
         ind_new = find_indications(layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
                                    reporting_depth_mm=reporting_depth(new), side=side, plate=new.plate,
                                    zone_labels=zmap.labels, zone_names=zmap.names, rate=None,

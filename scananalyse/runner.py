@@ -17,7 +17,9 @@ import pandas as pd
 from . import CAUTION, __version__
 from .errors import InputError
 from .indications import write_indications_csv
-from .io import read_scan
+from .checks import patches_line
+from .io import check_analysable, read_scan
+from .io.tables import write_csv
 from .job import Job
 from .outputs import output_folder, write_json, write_results_h5
 from .pipeline import Analysis, analyse, read_job_inputs
@@ -83,11 +85,8 @@ class CompareResult:
                     f"{_fmt(z['life_local_y']):>8}{_fmt(z.get('life_eva_y', float('nan'))):>8}"
                     f"{_fmt(z['interval_recommended_y']):>9}  {due:<11}{str(z['limiting'] or '-') if isinstance(z['limiting'], str) else '-':<10}"
                     f"{flags}")
-        if len(self.patches):
-            area = float(self.patches["area_m2"].sum())
-            lines.append(f"proposed patch plates: {len(self.patches)}, {area:.2f} m2 in all (patches.csv, patches.dxf)")
-        else:
-            lines.append("proposed patch plates: none needed for the target interval")
+        area = float(self.patches["area_m2"].sum()) if len(self.patches) else 0.0
+        lines.append(patches_line(len(self.patches), area, self.zones, self.zones_repaired))
         st = self.indications["status"].value_counts() if "status" in self.indications else {}
         parts = [f"{int(st[k])} {k}" for k in ("new", "grown", "stable", "not found") if k in st]
         lines.append(f"indications: {len(self.indications)} (indications.csv)" + (f": {', '.join(parts)}" if parts else ""))
@@ -142,8 +141,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
     units = an.job.units
     files = []
     with prog.stage("outputs"):
-        an.zone_table.to_csv(folder / "zones.csv", index=False)
-        an.zones_repaired.to_csv(folder / "zones_repaired.csv", index=False)
+        write_csv(an.zone_table, folder / "zones.csv")
+        write_csv(an.zones_repaired, folder / "zones_repaired.csv")
         write_patches_csv(an.patches, folder / "patches.csv")
         write_patches_dxf(an.patches, folder / "patches.dxf")
         write_indications_csv(an.indications, folder / "indications.csv")
@@ -202,8 +201,8 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
     _check_out_dir(out_dir, force)
     prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
     with prog.stage("load"):
-        new = read_scan(new_path)
-        old = None if single else read_scan(old_path)
+        new = check_analysable(read_scan(new_path), new_path)
+        old = None if single else check_analysable(read_scan(old_path), old_path)
         inputs = read_job_inputs(job, new)
     with output_folder(out_dir, force=force) as tmp:
         an = analyse(new, old, job=job, progress=prog, inputs=inputs)
@@ -232,8 +231,8 @@ def register_files(old_path, new_path, *, out_dir, control_points=None, force=Fa
     _check_out_dir(out_dir, force)
     prog = Progress(["load", "registration"], quiet=quiet)
     with prog.stage("load"):
-        old = read_scan(old_path)
-        new = read_scan(new_path)
+        old = check_analysable(read_scan(old_path), old_path)
+        new = check_analysable(read_scan(new_path), new_path)
     with output_folder(out_dir, force=force) as tmp:
         with prog.stage("registration"):
             reg = register(new, old, control_points=control_points)

@@ -73,7 +73,11 @@ def read_scan(path) -> FloorScan:
         Unknown extension or an invalid file (one line naming the file and line or field).
     """
     check_regular_file(path, "scan file")
-    return read_csv_scan(path) if _kind(path) == "csv" else read_h5_scan(path)
+    from ..checks import check_pitch_matches
+
+    scan = read_csv_scan(path) if _kind(path) == "csv" else read_h5_scan(path)
+    check_pitch_matches(scan)
+    return scan
 
 
 def write_scan(scan: FloorScan, path) -> None:
