@@ -26,8 +26,13 @@ __all__ = [
     "INDICATION_COLUMNS",
     "label_indications",
     "find_indications",
+    "measure_indications",
     "old_indications",
     "match_indications",
+    "flag_indications",
+    "new_indication_rates",
+    "apply_indication_rates",
+    "assumed_rate_note",
     "gone_indications",
     "write_indications_csv",
 ]
@@ -37,7 +42,8 @@ INDICATION_COLUMNS = (
     "id", "x_mm", "y_mm", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm",
     "x_deep_mm", "y_deep_mm", "depth_max_mm", "t_min_mm", "area_m2", "n_cells",
     "side", "plate", "zone", "rate_max_mm_y", "status", "old_id", "depth_old_mm",
-    "growth_mm", "growth_rate_mm_y",
+    "growth_mm", "growth_rate_mm_y", "repair_date", "regrowth_mm", "regrowth_rate_mm_y",
+    "rate_assumed_mm_y", "rate_basis",
 )
 
 
@@ -131,8 +137,10 @@ def region_max(labels: np.ndarray, values: np.ndarray) -> np.ndarray:
 def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
                      reporting_depth_mm: float, side=None, plate=None, zone_labels=None,
                      zone_names=None, rate=None, thickness=None, min_cells: int = 1,
-                     labels=None, return_labels: bool = False):
+                     return_labels: bool = False):
     """Indication list: connected regions of loss at or above a reporting depth.
+
+    :func:`label_indications` then :func:`measure_indications`.
 
     Parameters
     ----------
@@ -140,6 +148,36 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     pitch_mm : cell size. [mm]
     x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
     reporting_depth_mm : smallest loss depth reported. [mm]
+    side, plate, zone_labels, zone_names, rate, thickness : optional maps measured per
+        region, as in :func:`measure_indications`.
+    min_cells : smallest region kept. [cells]
+    return_labels : also return the label map. [-]
+
+    Returns
+    -------
+    DataFrame (see :func:`measure_indications`), or ``(DataFrame, labels)``.
+    """
+    labels = label_indications(np.asarray(loss), reporting_depth_mm=reporting_depth_mm,
+                               min_cells=min_cells)
+    df = measure_indications(labels, loss, pitch_mm=pitch_mm, x0=x0, y0=y0, side=side,
+                             plate=plate, zone_labels=zone_labels, zone_names=zone_names,
+                             rate=rate, thickness=thickness)
+    return (df, labels) if return_labels else df
+
+
+def measure_indications(labels: np.ndarray, loss: np.ndarray, *, pitch_mm: float, x0: float,
+                        y0: float, side=None, plate=None, zone_labels=None, zone_names=None,
+                        rate=None, thickness=None) -> pd.DataFrame:
+    """Measure the regions of a label map: the indication list of given regions.
+
+    Parameters
+    ----------
+    labels : int label map from :func:`label_indications` (0 = background, regions 1..n):
+        the regions measured; given once where several stages share it (the pipeline's
+        rate fill, rate column, matching and :func:`apply_indication_rates`). [-]
+    loss : loss map on the same grid, NaN = not scanned. [mm]
+    pitch_mm : cell size. [mm]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
     side : optional int8 side map (0 unknown, 1 top, 2 under); a region takes the
         majority side of its cells. [-]
     plate : optional int32 plate map (−1 none); majority plate id. [-]
@@ -148,16 +186,13 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     rate : optional rate map (e.g. the governing rate, max of both sides); the region's
         maximum. [mm/y]
     thickness : optional thickness map; the region's minimum. [mm]
-    min_cells : smallest region kept. [cells]
-    labels : optional label map from :func:`label_indications` (then ``loss`` is only
-        measured, not relabelled). [-]
-    return_labels : also return the label map. [-]
 
     Returns
     -------
     DataFrame with :data:`INDICATION_COLUMNS` (``id`` = label), one row per region in
-    label order; ``status`` is ``""`` and the matching columns NaN until
-    :func:`match_indications`. Optionally ``(DataFrame, labels)``.
+    label order; ``status``, ``repair_date`` and ``rate_basis`` are ``""`` and the matching,
+    regrowth and assumed-rate columns NaN until :func:`match_indications`,
+    :func:`flag_indications` and :func:`new_indication_rates`.
 
     Notes
     -----
@@ -167,14 +202,14 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     from skimage.measure import regionprops_table
 
     loss = np.asarray(loss)
-    if labels is None:
-        labels = label_indications(loss, reporting_depth_mm=reporting_depth_mm,
-                                   min_cells=min_cells)
+    labels = np.asarray(labels)
+    if labels.shape != loss.shape:
+        raise InputError(f"{where(None, None, 'labels')}: label map {labels.shape} and loss map "
+                         f"{loss.shape} on different grids")
     n = int(labels.max()) if labels.size else 0
     p = float(pitch_mm)
     if n == 0:
-        df = pd.DataFrame({c: pd.Series(dtype=_dtype(c)) for c in INDICATION_COLUMNS})
-        return (df, labels) if return_labels else df
+        return pd.DataFrame({c: pd.Series(dtype=_dtype(c)) for c in INDICATION_COLUMNS})
 
     props = regionprops_table(labels, properties=("label", "area", "bbox", "centroid"))
     cells = _Cells(labels, n)
@@ -215,10 +250,12 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     df["rate_max_mm_y"] = cells.reduce(np.fmax, rate) if rate is not None else np.nan
     df["status"] = ""
     df["old_id"] = pd.array([pd.NA] * n, dtype="Int64")
-    for c in ("depth_old_mm", "growth_mm", "growth_rate_mm_y"):
+    for c in ("depth_old_mm", "growth_mm", "growth_rate_mm_y", "regrowth_mm",
+              "regrowth_rate_mm_y", "rate_assumed_mm_y"):
         df[c] = np.nan
-    df = df[list(INDICATION_COLUMNS)]
-    return (df, labels) if return_labels else df
+    df["repair_date"] = ""
+    df["rate_basis"] = ""
+    return df[list(INDICATION_COLUMNS)]
 
 
 def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells: int = 1,
@@ -232,7 +269,7 @@ def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells
     transform : old → new transform (``register.RigidTransform``). [-]
     reporting_depth_mm : the reporting depth used for the newer scan. [mm]
     min_cells : smallest region kept, counted on the older grid. [cells]
-    **kwargs : passed to :func:`find_indications` (side, plate, zone_labels, ...).
+    **kwargs : passed to :func:`measure_indications` (side, plate, zone_labels, ...).
 
     Returns
     -------
@@ -264,9 +301,8 @@ def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells
     remap[present] = np.arange(1, int(present.sum()) + 1, dtype=np.int32)
     lab_new = remap[lab_new]
     loss_on_new = np.where(lab_new > 0, np.float32(0), np.float32(np.nan))
-    df, lab_new = find_indications(loss_on_new, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
-                                   reporting_depth_mm=reporting_depth_mm, labels=lab_new,
-                                   return_labels=True, **kwargs)
+    df = measure_indications(lab_new, loss_on_new, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
+                             **kwargs)
     if n:
         cells = _Cells(lab_old, n)
         depth, first = cells.deepest(old_loss)
@@ -285,7 +321,7 @@ def _dtype(col: str):
         return "int64"
     if col == "old_id":
         return "Int64"
-    if col in ("side", "zone", "status"):
+    if col in ("side", "zone", "status", "repair_date", "rate_basis"):
         return "object"
     return "float64"
 
