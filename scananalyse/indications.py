@@ -698,11 +698,11 @@ def new_indication_rates(ind: pd.DataFrame, *, dt_years: float, quantile: float 
             prefix = f"repaired {rdate[i]}"
         elif s == "repaired":
             terms = [(np.fmax(own[i], regrowth[i]), "own bound (regrowth over the interval)"),
-                     (pop[i], pop_basis[i]), (late[i], f"late start (depth ÷ {late_years:g} y)")]
+                     (pop[i], pop_basis[i]), (late[i], f"late start (depth ÷ {late_years:.3g} y)")]
             prefix = "repaired, date unknown"
         elif s == "new" or (s == "partly unscanned" and not matched[i]):
             terms = [(own[i], "own bound (loss over the interval)"), (pop[i], pop_basis[i]),
-                     (late[i], f"late start (depth ÷ {late_years:g} y)")]
+                     (late[i], f"late start (depth ÷ {late_years:.3g} y)")]
             prefix = s
         elif s == "partly unscanned":
             terms = [(own[i], "measured on the scanned part"), (pop[i], pop_basis[i])]
