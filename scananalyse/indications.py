@@ -1,5 +1,8 @@
-"""Indications: connected regions of loss at or above a reporting depth, and their
-matching across two inspections (status new / grown / stable).
+"""Indications: connected regions of loss at or above a reporting depth, their matching
+across two inspections (status new / grown / stable), the statuses the matching alone
+cannot see (repaired, partly unscanned: :func:`flag_indications`) and the rate each is
+assessed at (:func:`new_indication_rates`, measured or a documented conservative
+assumption; :func:`apply_indication_rates` carries it into the rate maps).
 
 Regions are labelled with :func:`skimage.measure.label` (8-connectivity) and
 measured with :func:`skimage.measure.regionprops_table`; per-region maxima, minima
