@@ -1,5 +1,8 @@
-"""Indications: connected regions of loss at or above a reporting depth, and their
-matching across two inspections (status new / grown / stable).
+"""Indications: connected regions of loss at or above a reporting depth, their matching
+across two inspections (status new / grown / stable), the statuses the matching alone
+cannot see (repaired, partly unscanned: :func:`flag_indications`) and the rate each is
+assessed at (:func:`new_indication_rates`, measured or a documented conservative
+assumption; :func:`apply_indication_rates` carries it into the rate maps).
 
 Regions are labelled with :func:`skimage.measure.label` (8-connectivity) and
 measured with :func:`skimage.measure.regionprops_table`; per-region maxima, minima
@@ -11,6 +14,7 @@ less than a region's size (registration residue) but no longer overlap.
 
 from __future__ import annotations
 
+import datetime as _dt
 import math
 import os
 import tempfile
@@ -20,14 +24,19 @@ import pandas as pd
 
 from .errors import InputError, where
 from .outputs import publish_file
-from .scan import SIDE_NAMES, SIDE_UNKNOWN
+from .scan import SIDE_NAMES, SIDE_UNKNOWN, years_between
 
 __all__ = [
     "INDICATION_COLUMNS",
     "label_indications",
     "find_indications",
+    "measure_indications",
     "old_indications",
     "match_indications",
+    "flag_indications",
+    "new_indication_rates",
+    "apply_indication_rates",
+    "assumed_rate_note",
     "gone_indications",
     "write_indications_csv",
 ]
@@ -37,7 +46,8 @@ INDICATION_COLUMNS = (
     "id", "x_mm", "y_mm", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm",
     "x_deep_mm", "y_deep_mm", "depth_max_mm", "t_min_mm", "area_m2", "n_cells",
     "side", "plate", "zone", "rate_max_mm_y", "status", "old_id", "depth_old_mm",
-    "growth_mm", "growth_rate_mm_y",
+    "growth_mm", "growth_rate_mm_y", "repair_date", "regrowth_mm", "regrowth_rate_mm_y",
+    "rate_assumed_mm_y", "rate_basis",
 )
 
 
@@ -131,8 +141,10 @@ def region_max(labels: np.ndarray, values: np.ndarray) -> np.ndarray:
 def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
                      reporting_depth_mm: float, side=None, plate=None, zone_labels=None,
                      zone_names=None, rate=None, thickness=None, min_cells: int = 1,
-                     labels=None, return_labels: bool = False):
+                     return_labels: bool = False):
     """Indication list: connected regions of loss at or above a reporting depth.
+
+    :func:`label_indications` then :func:`measure_indications`.
 
     Parameters
     ----------
@@ -140,6 +152,36 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     pitch_mm : cell size. [mm]
     x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
     reporting_depth_mm : smallest loss depth reported. [mm]
+    side, plate, zone_labels, zone_names, rate, thickness : optional maps measured per
+        region, as in :func:`measure_indications`.
+    min_cells : smallest region kept. [cells]
+    return_labels : also return the label map. [-]
+
+    Returns
+    -------
+    DataFrame (see :func:`measure_indications`), or ``(DataFrame, labels)``.
+    """
+    labels = label_indications(np.asarray(loss), reporting_depth_mm=reporting_depth_mm,
+                               min_cells=min_cells)
+    df = measure_indications(labels, loss, pitch_mm=pitch_mm, x0=x0, y0=y0, side=side,
+                             plate=plate, zone_labels=zone_labels, zone_names=zone_names,
+                             rate=rate, thickness=thickness)
+    return (df, labels) if return_labels else df
+
+
+def measure_indications(labels: np.ndarray, loss: np.ndarray, *, pitch_mm: float, x0: float,
+                        y0: float, side=None, plate=None, zone_labels=None, zone_names=None,
+                        rate=None, thickness=None) -> pd.DataFrame:
+    """Measure the regions of a label map: the indication list of given regions.
+
+    Parameters
+    ----------
+    labels : int label map from :func:`label_indications` (0 = background, regions 1..n):
+        the regions measured; given once where several stages share it (the pipeline's
+        rate fill, rate column, matching and :func:`apply_indication_rates`). [-]
+    loss : loss map on the same grid, NaN = not scanned. [mm]
+    pitch_mm : cell size. [mm]
+    x0, y0 : floor coordinates of the centre of cell [0, 0]. [mm]
     side : optional int8 side map (0 unknown, 1 top, 2 under); a region takes the
         majority side of its cells. [-]
     plate : optional int32 plate map (−1 none); majority plate id. [-]
@@ -148,16 +190,13 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     rate : optional rate map (e.g. the governing rate, max of both sides); the region's
         maximum. [mm/y]
     thickness : optional thickness map; the region's minimum. [mm]
-    min_cells : smallest region kept. [cells]
-    labels : optional label map from :func:`label_indications` (then ``loss`` is only
-        measured, not relabelled). [-]
-    return_labels : also return the label map. [-]
 
     Returns
     -------
     DataFrame with :data:`INDICATION_COLUMNS` (``id`` = label), one row per region in
-    label order; ``status`` is ``""`` and the matching columns NaN until
-    :func:`match_indications`. Optionally ``(DataFrame, labels)``.
+    label order; ``status``, ``repair_date`` and ``rate_basis`` are ``""`` and the matching,
+    regrowth and assumed-rate columns NaN until :func:`match_indications`,
+    :func:`flag_indications` and :func:`new_indication_rates`.
 
     Notes
     -----
@@ -167,14 +206,14 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     from skimage.measure import regionprops_table
 
     loss = np.asarray(loss)
-    if labels is None:
-        labels = label_indications(loss, reporting_depth_mm=reporting_depth_mm,
-                                   min_cells=min_cells)
+    labels = np.asarray(labels)
+    if labels.shape != loss.shape:
+        raise InputError(f"{where(None, None, 'labels')}: label map {labels.shape} and loss map "
+                         f"{loss.shape} on different grids")
     n = int(labels.max()) if labels.size else 0
     p = float(pitch_mm)
     if n == 0:
-        df = pd.DataFrame({c: pd.Series(dtype=_dtype(c)) for c in INDICATION_COLUMNS})
-        return (df, labels) if return_labels else df
+        return pd.DataFrame({c: pd.Series(dtype=_dtype(c)) for c in INDICATION_COLUMNS})
 
     props = regionprops_table(labels, properties=("label", "area", "bbox", "centroid"))
     cells = _Cells(labels, n)
@@ -215,10 +254,12 @@ def find_indications(loss: np.ndarray, *, pitch_mm: float, x0: float, y0: float,
     df["rate_max_mm_y"] = cells.reduce(np.fmax, rate) if rate is not None else np.nan
     df["status"] = ""
     df["old_id"] = pd.array([pd.NA] * n, dtype="Int64")
-    for c in ("depth_old_mm", "growth_mm", "growth_rate_mm_y"):
+    for c in ("depth_old_mm", "growth_mm", "growth_rate_mm_y", "regrowth_mm",
+              "regrowth_rate_mm_y", "rate_assumed_mm_y"):
         df[c] = np.nan
-    df = df[list(INDICATION_COLUMNS)]
-    return (df, labels) if return_labels else df
+    df["repair_date"] = ""
+    df["rate_basis"] = ""
+    return df[list(INDICATION_COLUMNS)]
 
 
 def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells: int = 1,
@@ -232,7 +273,7 @@ def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells
     transform : old → new transform (``register.RigidTransform``). [-]
     reporting_depth_mm : the reporting depth used for the newer scan. [mm]
     min_cells : smallest region kept, counted on the older grid. [cells]
-    **kwargs : passed to :func:`find_indications` (side, plate, zone_labels, ...).
+    **kwargs : passed to :func:`measure_indications` (side, plate, zone_labels, ...).
 
     Returns
     -------
@@ -264,9 +305,8 @@ def old_indications(old, new, transform, *, reporting_depth_mm: float, min_cells
     remap[present] = np.arange(1, int(present.sum()) + 1, dtype=np.int32)
     lab_new = remap[lab_new]
     loss_on_new = np.where(lab_new > 0, np.float32(0), np.float32(np.nan))
-    df, lab_new = find_indications(loss_on_new, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
-                                   reporting_depth_mm=reporting_depth_mm, labels=lab_new,
-                                   return_labels=True, **kwargs)
+    df = measure_indications(lab_new, loss_on_new, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
+                             **kwargs)
     if n:
         cells = _Cells(lab_old, n)
         depth, first = cells.deepest(old_loss)
@@ -285,7 +325,7 @@ def _dtype(col: str):
         return "int64"
     if col == "old_id":
         return "Int64"
-    if col in ("side", "zone", "status"):
+    if col in ("side", "zone", "status", "repair_date", "rate_basis"):
         return "object"
     return "float64"
 
@@ -378,6 +418,387 @@ def match_indications(new_ind: pd.DataFrame, old_ind: pd.DataFrame, new_labels: 
     out["growth_rate_mm_y"] = rate
     out["status"] = status
     return out
+
+
+def _region_fraction(cells: _Cells, mask: np.ndarray) -> np.ndarray:
+    """Share of each region's cells where ``mask`` is True. [-]"""
+    inside = cells.reduce(np.add, np.asarray(mask, dtype=np.float64))
+    size = np.diff(np.r_[cells.starts, cells.lab.size])
+    return inside / np.maximum(size, 1)
+
+
+def _touches(labels: np.ndarray, cells: _Cells, gap: np.ndarray, floor_edge: np.ndarray
+             ) -> np.ndarray:
+    """Per region: does a cell of it, or one of its 8 neighbours, lie in ``gap``?  Cells
+    beyond the grid count as ``gap`` where the border cell next to them is ``floor_edge``."""
+    rows, cols = labels.shape
+    pad = np.pad(gap, 1, mode="constant", constant_values=False)
+    # beyond the grid: the scan ends there while the floor goes on
+    pad[0, 1:-1] |= floor_edge[0]
+    pad[-1, 1:-1] |= floor_edge[-1]
+    pad[1:-1, 0] |= floor_edge[:, 0]
+    pad[1:-1, -1] |= floor_edge[:, -1]
+    pad[0, 0] |= floor_edge[0, 0]
+    pad[0, -1] |= floor_edge[0, -1]
+    pad[-1, 0] |= floor_edge[-1, 0]
+    pad[-1, -1] |= floor_edge[-1, -1]
+    r, c = np.divmod(cells.idx, cols)
+    hit = np.zeros(cells.idx.size, dtype=bool)
+    for dr in (0, 1, 2):
+        for dc in (0, 1, 2):
+            hit |= pad[r + dr, c + dc]
+    return np.logical_or.reduceat(hit, cells.starts) if cells.n else np.zeros(0, dtype=bool)
+
+
+def _repair_dates(cells: _Cells, shape, repaired, repair_dates):
+    """Per region: the latest repair date among the dated areas it lies in (None if none)
+    and the map of every repaired cell (``repaired`` or a dated area)."""
+    n = cells.n
+    latest = [None] * n
+    if repair_dates is None:
+        return latest, repaired
+    if isinstance(repair_dates, _dt.date):
+        records = [(repaired, repair_dates)]
+    else:
+        records = list(repair_dates)
+    every = repaired.copy()
+    for mask, date in records:
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != shape:
+            raise InputError(f"{where(None, None, 'repair_dates')}: a repair area is on a grid of "
+                             f"{mask.shape}, not {shape}")
+        every |= mask
+        hit = np.flatnonzero(_region_fraction(cells, mask) > 0)
+        for k in hit:
+            if latest[k] is None or date > latest[k]:
+                latest[k] = date
+    return latest, every
+
+
+def flag_indications(matched: pd.DataFrame, labels: np.ndarray, *, covered_new: np.ndarray,
+                     covered_old: np.ndarray, dt_years: float, floor: np.ndarray | None = None,
+                     repaired: np.ndarray | None = None, repair_dates=None,
+                     inspected: _dt.date | None = None, min_repaired_fraction: float = 0.5
+                     ) -> pd.DataFrame:
+    """Statuses the matching alone cannot see: ``repaired`` and ``partly unscanned``.
+
+    Parameters
+    ----------
+    matched : the result of :func:`match_indications` (rows with ``id`` = label). [-]
+    labels : the newer scan's indication label map. [-]
+    covered_new : the newer scan's coverage (``np.isfinite(new.thickness)``). [-]
+    covered_old : the older scan's coverage on the newer grid
+        (``np.isfinite(old_on_new.thickness)``, the older scan resampled onto the newer
+        grid, NaN = not covered). [-]
+    dt_years : years between the inspections. [y]
+    floor : cells inside the floor (``zone_map.labels >= 0``); None = every cell of the
+        grid. [-]
+    repaired : cells repaired since the older scan (``LossRates.repaired``: thicker than
+        before beyond the noise, or inside a repair record dated after the older scan);
+        None = none. [-]
+    repair_dates : None, one date (of every ``repaired`` cell), or a sequence of
+        ``(mask, date)`` pairs, one per repair area of the job's repairs file dated after
+        the older inspection (their masks count as repaired too). [-]
+    inspected : the newer inspection's date; needed with ``repair_dates``. [-]
+    min_repaired_fraction : smallest share of an indication's cells in a repaired area for
+        the indication to be ``repaired``. [-]
+
+    Returns
+    -------
+    a copy of ``matched`` in which
+
+    * ``status = "repaired"`` where at least ``min_repaired_fraction`` of the cells lie in a
+      repaired area: ``repair_date`` (ISO, the latest dated area it lies in; ``""`` when
+      unknown), ``regrowth_mm`` = its loss now (``depth_max_mm``: the repair restored full
+      thickness), ``regrowth_rate_mm_y`` = regrowth ÷ years since the repair, or ÷
+      ``dt_years`` when the date is unknown (then a lower bound: the repair came after the
+      older scan), and ``growth_rate_mm_y`` NaN (the difference between the scans,
+      ``growth_mm``, spans the repair and is no growth);
+    * else ``status = "partly unscanned"`` (to prove up) where a cell of the indication, or
+      one of its 8 neighbours, inside the floor was not covered by either scan, or the
+      indication reaches the edge of the newer grid inside the floor: its depth, its older
+      depth and so its growth may lie in the unscanned part. ``old_id``, ``depth_old_mm``
+      and ``growth_mm`` are kept as matched.
+
+    Rows without a label (``id`` NA) are left as they are.
+
+    Notes
+    -----
+    domain.md §3: a cell thicker than before beyond the noise was repaired, replaced or
+    misaligned, not negatively corroded; misalignment makes thin rims at the edges of
+    pits, which the ``min_repaired_fraction`` rule keeps from marking a pit repaired.
+    """
+    if not (dt_years > 0):
+        raise InputError(f"{where(None, None, 'dt_years')}: must be > 0, got {dt_years!r}")
+    labels = np.asarray(labels)
+    for name, m in (("covered_new", covered_new), ("covered_old", covered_old), ("floor", floor),
+                    ("repaired", repaired)):
+        if m is not None and np.shape(m) != labels.shape:
+            raise InputError(f"{where(None, None, name)}: map of {np.shape(m)} on a grid of "
+                             f"{labels.shape}")
+    if repair_dates is not None and inspected is None:
+        raise InputError(f"{where(None, None, 'inspected')}: the newer inspection's date is "
+                         "needed with repair_dates")
+    out = matched.copy()
+    n = int(labels.max()) if labels.size else 0
+    if n == 0 or not len(out):
+        return out
+    cells = _Cells(labels, n)
+    floor = np.ones(labels.shape, dtype=bool) if floor is None else np.asarray(floor, dtype=bool)
+    gap = floor & ~(np.asarray(covered_new, dtype=bool) & np.asarray(covered_old, dtype=bool))
+    cut = _touches(labels, cells, gap, floor)
+    rep0 = (np.zeros(labels.shape, dtype=bool) if repaired is None
+            else np.asarray(repaired, dtype=bool))
+    dates, rep_all = _repair_dates(cells, labels.shape, rep0, repair_dates)
+    is_rep = _region_fraction(cells, rep_all) >= min_repaired_fraction
+
+    ids = pd.to_numeric(out["id"], errors="coerce").to_numpy(dtype=np.float64)
+    has = np.isfinite(ids) & (ids >= 1) & (ids <= n)
+    k = np.where(has, ids, 1).astype(np.int64) - 1
+    rep_row = has & is_rep[k]
+    cut_row = has & ~rep_row & cut[k]
+    status = out["status"].to_numpy(dtype=object).copy()
+    status[rep_row] = "repaired"
+    status[cut_row] = "partly unscanned"
+    out["status"] = status
+    depth = out["depth_max_mm"].to_numpy(dtype=np.float64)
+    years = np.full(len(out), float(dt_years))
+    rdate = np.array([""] * len(out), dtype=object)
+    for row in np.flatnonzero(rep_row):
+        d = dates[k[row]]
+        if d is not None:
+            rdate[row] = d.isoformat()
+            years[row] = years_between(d, inspected)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rate = np.where(years > 0, depth / years, np.nan)
+    out["repair_date"] = np.where(rep_row, rdate, out["repair_date"].to_numpy(dtype=object))
+    out["regrowth_mm"] = np.where(rep_row, depth, out["regrowth_mm"].to_numpy(dtype=np.float64))
+    out["regrowth_rate_mm_y"] = np.where(rep_row, rate,
+                                         out["regrowth_rate_mm_y"].to_numpy(dtype=np.float64))
+    out.loc[rep_row, "growth_rate_mm_y"] = np.nan
+    return out
+
+
+#: Statuses whose rate is measured between the two scans (:func:`new_indication_rates`).
+MEASURED_STATUSES = ("grown", "stable")
+
+
+def _population_rates(ind: pd.DataFrame, *, quantile: float, min_grown: int):
+    """The population term of :func:`new_indication_rates`, per row: (rate, basis)."""
+    status = ind["status"].to_numpy(dtype=object)
+    rate = ind["rate_max_mm_y"].to_numpy(dtype=np.float64)
+    rate = np.where(np.isfinite(rate), rate, ind["growth_rate_mm_y"].to_numpy(dtype=np.float64))
+    side = ind["side"].astype(str).to_numpy()
+    zone = ind["zone"].astype(str).to_numpy()
+    grown = (status == "grown") & np.isfinite(rate)
+    measured = np.isin(status, MEASURED_STATUSES) & np.isfinite(rate)
+    p = f"p{100 * quantile:g}"
+    cache: dict = {}
+    out_rate = np.full(len(ind), np.nan)
+    out_basis = np.array([""] * len(ind), dtype=object)
+    for i in range(len(ind)):
+        key = (zone[i], side[i])
+        if key not in cache:
+            same_side = side == side[i]
+            g_zone = rate[grown & same_side & (zone == zone[i])]
+            g_floor = rate[grown & same_side]
+            m_side = rate[measured & same_side]
+            if g_zone.size >= min_grown:
+                val = (float(np.quantile(g_zone, quantile)),
+                       f"{p} of grown ({zone[i]}, {side[i]}, n={g_zone.size})")
+            elif g_floor.size >= min_grown:
+                val = (float(np.quantile(g_floor, quantile)),
+                       f"{p} of grown (floor fallback, {side[i]}, n={g_floor.size})")
+            elif m_side.size:
+                val = (float(m_side.max()),
+                       f"greatest measured rate (floor fallback, {side[i]}, n={m_side.size})")
+            else:
+                val = (np.nan, "")
+            cache[key] = val
+        out_rate[i], out_basis[i] = cache[key]
+    return out_rate, out_basis
+
+
+def new_indication_rates(ind: pd.DataFrame, *, dt_years: float, quantile: float = 0.9,
+                         min_grown: int = 5, late_start_fraction: float = 0.25) -> pd.DataFrame:
+    """The rate each indication is assessed at, and where it comes from.
+
+    An indication absent from the older scan has no measured rate: its loss over the whole
+    interval is only a lower bound (the pit may have begun at any time since). Such
+    indications are given a documented conservative rate.
+
+    Parameters
+    ----------
+    ind : the indication list after :func:`match_indications` (and
+        :func:`flag_indications`), with ``rate_max_mm_y`` filled (the region's greatest
+        governing rate). [-]
+    dt_years : years between the inspections. [y]
+    quantile : upper quantile of the grown indications' measured rates. [-]
+    min_grown : fewest grown indications a quantile is taken of. [-]
+    late_start_fraction : the part of the interval a new pit is assumed to have grown in. [-]
+
+    Returns
+    -------
+    DataFrame on ``ind``'s index with ``rate_assumed_mm_y`` [mm/y] and ``rate_basis`` (text).
+
+    Notes
+    -----
+    The rule (a working assumption, no published source; domain.md §3: a pit that began
+    late grows faster than its long-term rate says):
+
+    * ``grown`` / ``stable``: the measured rate, ``rate_max_mm_y`` (basis ``measured``).
+    * ``new`` (no older region): the greatest of
+
+      1. its own bound, ``rate_max_mm_y`` (the loss over the whole interval);
+      2. the population term: the ``quantile`` of the measured rates (``rate_max_mm_y``)
+         of the ``grown`` indications on the same side of the same zone when there are at
+         least ``min_grown`` of them; else of the same side's grown indications on the whole
+         floor (at least ``min_grown``); else the greatest measured rate (grown or stable)
+         on that side; else none;
+      3. the late-start term: ``depth_max_mm / (late_start_fraction · dt_years)``, the pit
+         taken to have begun in the last ``late_start_fraction`` of the interval.
+
+      The basis names the term that governs, e.g. ``new: late start (depth ÷ 2.5 y)`` or
+      ``new: p90 of grown (interior, under, n=7)``.
+    * ``repaired`` with a repair date: the greater of ``rate_max_mm_y`` and
+      ``regrowth_rate_mm_y`` (basis ``repaired <date>: regrowth since the repair``); without
+      a date, as ``new`` with ``regrowth_rate_mm_y`` (÷ the whole interval) as its own bound.
+    * ``partly unscanned``: as ``new`` when unmatched; when matched to an older region (so
+      not late-begun) the greater of its own rate and the population term.
+    * anything else (``""``, ``not found``): NaN, basis ``""``.
+
+    Only the late-start term bounds a pit that began well after the older scan: the grown
+    indications began before it and grew over a longer time, so their rates are lower.
+    """
+    if not (dt_years > 0):
+        raise InputError(f"{where(None, None, 'dt_years')}: must be > 0, got {dt_years!r}")
+    if not (0 < quantile <= 1):
+        raise InputError(f"{where(None, None, 'quantile')}: must be in (0, 1], got {quantile!r}")
+    if not (0 < late_start_fraction <= 1):
+        raise InputError(f"{where(None, None, 'late_start_fraction')}: must be in (0, 1], "
+                         f"got {late_start_fraction!r}")
+    n = len(ind)
+    status = ind["status"].to_numpy(dtype=object)
+    own = ind["rate_max_mm_y"].to_numpy(dtype=np.float64)
+    regrowth = (ind["regrowth_rate_mm_y"].to_numpy(dtype=np.float64)
+                if "regrowth_rate_mm_y" in ind else np.full(n, np.nan))
+    rdate = (ind["repair_date"].fillna("").astype(str).to_numpy()
+             if "repair_date" in ind else np.array([""] * n))
+    old_id = ind["old_id"] if "old_id" in ind else pd.Series([pd.NA] * n)
+    matched = old_id.notna().to_numpy()
+    pop, pop_basis = _population_rates(ind, quantile=quantile, min_grown=min_grown)
+    late_years = late_start_fraction * dt_years
+    late = ind["depth_max_mm"].to_numpy(dtype=np.float64) / late_years
+    rate = np.full(n, np.nan)
+    basis = np.array([""] * n, dtype=object)
+    for i in range(n):
+        s = status[i]
+        if s in MEASURED_STATUSES:
+            rate[i], basis[i] = own[i], "measured"
+            continue
+        if s == "repaired" and rdate[i]:
+            terms = [(own[i], "measured"), (regrowth[i], "regrowth since the repair")]
+            prefix = f"repaired {rdate[i]}"
+        elif s == "repaired":
+            terms = [(np.fmax(own[i], regrowth[i]), "own bound (regrowth over the interval)"),
+                     (pop[i], pop_basis[i]), (late[i], f"late start (depth ÷ {late_years:.3g} y)")]
+            prefix = "repaired, date unknown"
+        elif s == "new" or (s == "partly unscanned" and not matched[i]):
+            terms = [(own[i], "own bound (loss over the interval)"), (pop[i], pop_basis[i]),
+                     (late[i], f"late start (depth ÷ {late_years:.3g} y)")]
+            prefix = s
+        elif s == "partly unscanned":
+            terms = [(own[i], "measured on the scanned part"), (pop[i], pop_basis[i])]
+            prefix = s
+        else:
+            continue
+        vals = np.array([v if np.isfinite(v) else -np.inf for v, _ in terms])
+        j = int(np.argmax(vals))
+        if np.isfinite(vals[j]):
+            rate[i], basis[i] = vals[j], f"{prefix}: {terms[j][1]}"
+    return pd.DataFrame({"rate_assumed_mm_y": rate, "rate_basis": basis}, index=ind.index)
+
+
+def apply_indication_rates(rate_top: np.ndarray, rate_under: np.ndarray, labels: np.ndarray,
+                           ind: pd.DataFrame, *, unknown_side: str = "under"):
+    """Raise the rate maps to the assumed rate on the cells of indications whose rate is not
+    measured, so that the co-located life uses it.
+
+    Parameters
+    ----------
+    rate_top, rate_under : governing rate maps of each side (``LossRates.rate_top``,
+        ``rate_under``), NaN = no rate. [mm/y]
+    labels : the newer scan's indication label map (``ind.id`` = label). [-]
+    ind : the indication list with ``rate_assumed_mm_y`` and ``rate_basis``
+        (:func:`new_indication_rates`). [-]
+    unknown_side : the side whose map takes indications of ``side = "unknown"`` (the
+        job's default side). [-]
+
+    Returns
+    -------
+    (rate_top, rate_under): new arrays, each cell the greater of its rate (NaN counts as
+    none) and the assumed rate of the indication it belongs to on that side; rates are
+    only raised, never lowered. Indications with basis ``measured`` (or ``""``) are left
+    as they are (their cells keep their own measured rates). [mm/y]
+    """
+    if unknown_side not in ("top", "under"):
+        raise InputError(f"{where(None, None, 'unknown_side')}: must be 'top' or 'under', "
+                         f"got {unknown_side!r}")
+    labels = np.asarray(labels)
+    if not (np.shape(rate_top) == np.shape(rate_under) == labels.shape):
+        raise InputError(f"{where(None, None, 'labels')}: rate maps and label map on different "
+                         "grids")
+    top = np.array(rate_top, copy=True)
+    under = np.array(rate_under, copy=True)
+    n = int(labels.max()) if labels.size else 0
+    if n == 0 or not len(ind):
+        return top, under
+    ids = pd.to_numeric(ind["id"], errors="coerce").to_numpy(dtype=np.float64)
+    rate = ind["rate_assumed_mm_y"].to_numpy(dtype=np.float64)
+    basis = ind["rate_basis"].fillna("").astype(str).to_numpy()
+    side = ind["side"].astype(str).to_numpy()
+    side = np.where(side == "unknown", unknown_side, side)
+    use = (np.isfinite(ids) & (ids >= 1) & (ids <= n) & np.isfinite(rate)
+           & (basis != "measured") & (basis != ""))
+    cells = _Cells(labels, n)
+    for name, arr in (("top", top), ("under", under)):
+        by_label = np.full(n + 1, np.nan, dtype=np.float64)
+        pick = use & (side == name)
+        by_label[ids[pick].astype(np.int64)] = rate[pick]
+        want = by_label[cells.lab]
+        ok = np.isfinite(want)
+        flat = arr.reshape(-1)
+        cur = flat[cells.idx[ok]]
+        flat[cells.idx[ok]] = np.fmax(cur, want[ok].astype(arr.dtype))
+    return top, under
+
+
+def assumed_rate_note(ind: pd.DataFrame) -> str | None:
+    """One sentence for the report's assumptions: how many indications are assessed at an
+    assumed, not measured, rate (None when there are none).
+
+    Parameters
+    ----------
+    ind : the indication list with ``rate_basis`` (:func:`new_indication_rates`). [-]
+    """
+    if "rate_basis" not in ind or not len(ind):
+        return None
+    basis = ind["rate_basis"].fillna("").astype(str)
+    # measured: "measured", and a dated repair's "repaired <date>: ..." (its regrowth since
+    # the repair); assumed: the rest ("new: ...", "partly unscanned: ...", "repaired, date
+    # unknown: ...")
+    assumed = (basis != "") & (basis != "measured") & ~basis.str.startswith("repaired ")
+    if not assumed.any():
+        return None
+    counts = ind.loc[assumed, "status"].value_counts()
+    parts = ", ".join(f"{int(v)} {k}" for k, v in counts.items())
+    return (f"{int(assumed.sum())} indications ({parts}) have no measured rate (absent from, or "
+            "cut by the coverage of, the older scan, or repaired at an unknown date): the "
+            "rate of their loss over the interval is only a lower bound, and each is assessed "
+            "at an assumed conservative rate (the greatest of that bound, an upper quantile "
+            "of the grown indications' measured rates on the same side, and for a pit absent "
+            "from the older scan its depth over the last part of the interval), given with its basis in indications.csv "
+            "(rate_assumed_mm_y, rate_basis).")
 
 
 def gone_indications(old_ind: pd.DataFrame, matched: pd.DataFrame) -> pd.DataFrame:

@@ -247,3 +247,201 @@ def test_region_max_matches_scipy_ndimage():
     ref[~np.isfinite(ref)] = np.nan
     assert got.shape == (n,) and n > 20
     np.testing.assert_array_equal(got, ref)
+
+
+# ------------------------------------------- repaired / partly unscanned / assumed rates
+def _flag_case():
+    """Three hand-made indications: A inside a repaired area, B next to an unscanned seam
+    cell, C in fully scanned ground."""
+    new = np.zeros((30, 40), np.float32)
+    new[5:8, 5:8] = 1.5     # A
+    new[15:18, 10:13] = 2.0  # B
+    new[20:23, 30:33] = 1.8  # C
+    old = np.zeros_like(new)
+    old[5:8, 5:8] = 2.5     # A was deeper before the repair
+    old[15:18, 10:13] = 2.0
+    old[20:23, 30:33] = 1.0
+    kw = dict(pitch_mm=PITCH, x0=0.0, y0=0.0, reporting_depth_mm=1.0, return_labels=True)
+    ni, nl = find_indications(new, **kw)
+    oi, ol = find_indications(old, **kw)
+    m = match_indications(ni, oi, nl, ol, growth_sigma_mm=0.28, dt_years=10.0)
+    cov_new = np.ones(new.shape, bool)
+    cov_old = np.ones(new.shape, bool)
+    cov_new[:, 13] = False  # an unscanned seam band beside B (8-connected to its cells)
+    repaired = np.zeros(new.shape, bool)
+    repaired[4:9, 4:9] = True
+    return m, nl, cov_new, cov_old, repaired
+
+
+def test_flag_repaired_and_partly_unscanned():
+    import datetime as dt
+
+    from scananalyse.indications import flag_indications
+
+    m, nl, cov_new, cov_old, repaired = _flag_case()
+    assert list(m.status) == ["stable", "stable", "grown"]  # A looks stable (−1 mm) before
+    f = flag_indications(m, nl, covered_new=cov_new, covered_old=cov_old, dt_years=10.0,
+                         repaired=repaired, repair_dates=[(repaired, dt.date(2021, 5, 1))],
+                         inspected=dt.date(2026, 5, 1))
+    a, b, c = f.itertuples()
+    # by hand: A regrew 1.5 mm in the 5.0 years since the repair of 2021-05-01
+    assert a.status == "repaired" and a.repair_date == "2021-05-01"
+    assert a.regrowth_mm == pytest.approx(1.5) and a.regrowth_rate_mm_y == pytest.approx(0.3, rel=1e-3)
+    assert np.isnan(a.growth_rate_mm_y) and a.growth_mm == pytest.approx(-1.0)
+    assert b.status == "partly unscanned" and b.old_id == 2
+    assert c.status == "grown" and c.repair_date == "" and np.isnan(c.regrowth_mm)
+    # no date: the regrowth over the whole interval, a lower bound
+    f2 = flag_indications(m, nl, covered_new=cov_new, covered_old=cov_old, dt_years=10.0,
+                          repaired=repaired)
+    assert f2.status.iloc[0] == "repaired" and f2.repair_date.iloc[0] == ""
+    assert f2.regrowth_rate_mm_y.iloc[0] == pytest.approx(0.15)
+    # the older scan's coverage counts too; outside the floor a gap does not cut
+    cov_old2 = np.ones_like(cov_old)
+    cov_old2[23, 29] = False  # diagonal neighbour of C's corner cell (22, 30)
+    f3 = flag_indications(m, nl, covered_new=np.ones_like(cov_new), covered_old=cov_old2,
+                          dt_years=10.0)
+    assert list(f3.status) == ["stable", "stable", "partly unscanned"]
+    floor = np.ones_like(cov_new)
+    floor[23, 29] = False
+    f4 = flag_indications(m, nl, covered_new=np.ones_like(cov_new), covered_old=cov_old2,
+                          dt_years=10.0, floor=floor)
+    assert list(f4.status) == ["stable", "stable", "grown"]
+    with pytest.raises(InputError, match="inspected"):
+        flag_indications(m, nl, covered_new=cov_new, covered_old=cov_old, dt_years=10.0,
+                         repaired=repaired, repair_dates=dt.date(2021, 5, 1))
+    with pytest.raises(InputError, match="covered_old"):
+        flag_indications(m, nl, covered_new=cov_new, covered_old=cov_old[:5], dt_years=10.0)
+
+
+def test_flag_grid_edge_inside_the_floor():
+    # an indication reaching the edge of the grid where the floor goes on is cut by the edge
+    # of the scan's coverage (synthetic truth: the region is drawn on the border)
+    from scananalyse.indications import flag_indications
+
+    loss = np.zeros((10, 10), np.float32)
+    loss[0:2, 4:6] = 2.0
+    ind, lab = find_indications(loss, pitch_mm=PITCH, x0=0.0, y0=0.0, reporting_depth_mm=1.0,
+                                return_labels=True)
+    ind["status"] = "new"
+    ones = np.ones(loss.shape, bool)
+    f = flag_indications(ind, lab, covered_new=ones, covered_old=ones, dt_years=5.0)
+    assert f.status.iloc[0] == "partly unscanned"
+    floor = ones.copy()
+    floor[0] = False  # the grid's first row lies outside the floor: nothing beyond it
+    f = flag_indications(ind, lab, covered_new=ones, covered_old=ones, dt_years=5.0, floor=floor)
+    assert f.status.iloc[0] == "new"
+
+
+def _rates_table():
+    """A hand-made matched list: grown indications of two zones and sides, and new ones."""
+    rows = []
+    for k, r in enumerate([0.10, 0.12, 0.14, 0.16, 0.20, 0.30]):   # zone z1, under: 6 grown
+        rows.append(("z1", "under", "grown", r, 2.0, 1))
+    rows.append(("z2", "under", "grown", 0.50, 2.0, 1))               # zone z2, under: 1 grown
+    rows.append(("z1", "top", "stable", 0.05, 2.0, 1))                # top: no grown, 1 measured
+    rows.append(("z1", "under", "new", 0.08, 0.5, None))              # new in z1 under
+    rows.append(("z2", "under", "new", 0.08, 0.5, None))              # new in z2 under
+    rows.append(("z1", "top", "new", 0.01, 0.2, None))                # new, top
+    rows.append(("z3", "unknown", "new", 0.02, 0.4, None))            # nothing on its side
+    rows.append(("z1", "under", "new", 0.05, 3.0, None))              # deep new: late start governs
+    df = pd.DataFrame(rows, columns=["zone", "side", "status", "rate_max_mm_y", "depth_max_mm",
+                                     "old_id"])
+    df["old_id"] = pd.array(df["old_id"], dtype="Int64")
+    df["id"] = np.arange(1, len(df) + 1)
+    df["growth_rate_mm_y"] = np.nan
+    return df
+
+
+def test_new_indication_rates_rule_and_fallbacks():
+    from scananalyse.indications import new_indication_rates
+
+    df = _rates_table()
+    out = new_indication_rates(df, dt_years=10.0, quantile=0.9, min_grown=5, late_start_fraction=0.25)
+    assert list(out.index) == list(df.index)
+    assert (out.rate_basis[df.status != "new"] == "measured").all()
+    assert np.allclose(out.rate_assumed_mm_y[:8], df.rate_max_mm_y[:8])
+    # numpy's default (linear) quantile by hand: p90 of 0.10 .. 0.30 (6 values) = 0.25
+    assert out.rate_assumed_mm_y[8] == pytest.approx(0.25)
+    assert out.rate_basis[8] == "new: p90 of grown (z1, under, n=6)"
+    # z2 has one grown: the floor's 7 grown underside rates; p90 = 0.30 + 0.4·(0.50 − 0.30)
+    assert out.rate_assumed_mm_y[9] == pytest.approx(0.38)
+    assert out.rate_basis[9] == "new: p90 of grown (floor fallback, under, n=7)"
+    # top: no grown on that side, the greatest measured top rate is 0.05 < 0.2 mm ÷ 2.5 y = 0.08
+    assert out.rate_assumed_mm_y[10] == pytest.approx(0.08)
+    assert out.rate_basis[10] == "new: late start (depth ÷ 2.5 y)"
+    out_b = new_indication_rates(df, dt_years=10.0, late_start_fraction=1.0)
+    assert out_b.rate_assumed_mm_y[10] == pytest.approx(0.05)
+    assert out_b.rate_basis[10] == "new: greatest measured rate (floor fallback, top, n=1)"
+    # nothing measured on its side: its own bound or the late start, 0.4 mm ÷ 10 y = 0.04
+    assert out_b.rate_assumed_mm_y[11] == pytest.approx(0.04)
+    assert out_b.rate_basis[11].startswith("new: late start")
+    # 3 mm in the last quarter of 10 years: 1.2 mm/y
+    assert out.rate_assumed_mm_y[12] == pytest.approx(1.2)
+    # never below the indication's own bound
+    assert (out.rate_assumed_mm_y[df.status == "new"] >= df.rate_max_mm_y[df.status == "new"]).all()
+    with pytest.raises(InputError, match="quantile"):
+        new_indication_rates(df, dt_years=10.0, quantile=0.0)
+
+
+def test_partly_unscanned_and_repaired_rates():
+    from scananalyse.indications import new_indication_rates
+
+    df = _rates_table()
+    df.loc[1, "status"] = "partly unscanned"          # matched, cut by a seam
+    df.loc[8, "status"] = "partly unscanned"          # unmatched, cut by the older coverage
+    df["regrowth_rate_mm_y"] = np.nan
+    df["repair_date"] = ""
+    df.loc[2, ["status", "regrowth_rate_mm_y", "repair_date"]] = ["repaired", 0.4, "2020-01-01"]
+    df.loc[3, ["status", "regrowth_rate_mm_y"]] = ["repaired", 0.02]
+    out = new_indication_rates(df, dt_years=10.0)
+    # matched: no late start (it was there before), the greater of its own rate and the
+    # population term; 4 grown underside indications are left (< min_grown = 5): the greatest
+    # measured underside rate, 0.50
+    assert out.rate_assumed_mm_y[1] == pytest.approx(0.5)
+    assert out.rate_basis[1] == ("partly unscanned: greatest measured rate (floor fallback, under, "
+                                 "n=4)")
+    assert out.rate_basis[8].startswith("partly unscanned: ")
+    assert out.rate_assumed_mm_y[2] == pytest.approx(0.4)
+    assert out.rate_basis[2] == "repaired 2020-01-01: regrowth since the repair"
+    assert out.rate_basis[3].startswith("repaired, date unknown: ")
+    assert out.rate_assumed_mm_y[3] >= 2.0 / 2.5
+
+
+def test_apply_indication_rates_only_raises():
+    from scananalyse.indications import apply_indication_rates, assumed_rate_note
+
+    labels = np.zeros((6, 8), np.int32)
+    labels[1:3, 1:3] = 1   # new, under
+    labels[4, 4:7] = 2     # measured, top
+    labels[1, 6] = 3       # new, unknown side -> unknown_side
+    ind = pd.DataFrame({"id": [1, 2, 3], "side": ["under", "top", "unknown"],
+                        "status": ["new", "grown", "new"],
+                        "rate_assumed_mm_y": [0.3, 0.9, 0.2],
+                        "rate_basis": ["new: late start (depth ÷ 2.5 y)", "measured", "new: x"]})
+    top = np.full(labels.shape, 0.05, np.float32)
+    under = np.full(labels.shape, 0.05, np.float32)
+    under[1, 1] = 0.5      # faster than the assumed rate: kept
+    under[2, 2] = np.nan   # no rate (excluded): takes the assumed rate
+    t2, u2 = apply_indication_rates(top, under, labels, ind, unknown_side="top")
+    assert u2[1, 1] == pytest.approx(0.5) and u2[2, 2] == pytest.approx(0.3)
+    assert u2[1, 2] == pytest.approx(0.3) and t2[1, 1] == pytest.approx(0.05)
+    assert np.all(t2[4, 4:7] == np.float32(0.05))  # measured: left as measured
+    assert t2[1, 6] == pytest.approx(0.2) and u2[1, 6] == pytest.approx(0.05)
+    assert under[2, 2] != under[2, 2] and top[1, 6] == np.float32(0.05)  # inputs untouched
+    assert t2.dtype == np.float32
+    note = assumed_rate_note(ind)
+    assert note.startswith("2 indications (2 new) have no measured rate")
+    assert assumed_rate_note(ind.iloc[[1]]) is None
+
+
+def test_measure_indications_equals_find_indications():
+    # the same regions measured from a given label map (label_indications' own)
+    loss = random_loss(3)
+    df, lab = find_indications(loss, pitch_mm=PITCH, x0=X0, y0=Y0, reporting_depth_mm=1.0,
+                               return_labels=True)
+    from scananalyse.indications import measure_indications
+
+    again = measure_indications(lab, loss, pitch_mm=PITCH, x0=X0, y0=Y0)
+    pd.testing.assert_frame_equal(df, again)
+    with pytest.raises(InputError, match="labels"):
+        measure_indications(lab[:5], loss, pitch_mm=PITCH, x0=X0, y0=Y0)
