@@ -2,7 +2,8 @@
 
 The order is the documented flow (docs/architecture.md): registration and resampling (two
 inspections), side attribution and loss layers, zones, extreme values of depth, rates,
-assessment (rate extremes, extreme-value life, per-zone intervals), indications, repairs.
+indications (with the rate assumed where none was measured), assessment (rate extremes, extreme-value
+life, per-zone intervals), repairs.
 Each stage is a public function of its own module; nothing here reads or writes a file
 except :func:`read_job_inputs`.  Files, the output folder and the report are
 :mod:`scananalyse.runner`'s.  A notebook user calls :func:`analyse` and looks at the
@@ -23,7 +24,8 @@ from .checks import check_job_against_scans, check_repair_to
 from .errors import InputError, ScanWarning
 from .evlife import add_eva_columns, merge_extremes, zone_lives
 from .extremes import depth_statistics, rate_statistics
-from .indications import (find_indications, gone_indications, label_indications, match_indications,
+from .indications import (apply_indication_rates, assumed_rate_note, flag_indications, gone_indications,
+                          label_indications, match_indications, measure_indications, new_indication_rates,
                           old_indications, region_max, reporting_depth)
 from .job import Job
 from .progress import Progress
@@ -160,10 +162,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         check_repair_to(job.repair_to_mm,
                         dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
                         nominal_mm=new.meta.nominal, given=job.typed.get("repair_to"), what=job.where("repair_to"))
-        ind_new = find_indications(layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
-                                   reporting_depth_mm=reporting_depth(new), side=side, plate=new.plate,
-                                   zone_labels=zmap.labels, zone_names=zmap.names, rate=None,
-                                   thickness=new.thickness, labels=ind_labels)
+        ind_new = measure_indications(ind_labels, layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
+                                      side=side, plate=new.plate, zone_labels=zmap.labels, zone_names=zmap.names,
+                                      rate=None, thickness=new.thickness)
 
     with prog.stage("extremes"):
         ext_depth = depth_statistics(new.thickness, zmap, nominal=new.meta.nominal, censored=layers.censored,
@@ -176,11 +177,26 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         n_filled = 0
         if old_on_new is not None:
             lr, n_filled = rates.fill_uncovered_rates(lr, new, old_on_new, ind_labels)
-        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
+
+    with prog.stage("indications"):
+        # before the life map: new, repaired and partly unscanned indications have no measured
+        # rate of their own, and raise the rate maps to the rate assumed for them
+        ind, gone = _indications(ind_new, new, old, reg, lr, zmap, ind_labels, old_on_new=old_on_new,
+                                 repairs=repairs)
+        if old is not None and len(ind):
+            top, under = apply_indication_rates(lr.rate_top, lr.rate_under, ind_labels, ind,
+                                                unknown_side=job.default_side)
+            lr = dataclasses.replace(lr, rate_top=top, rate_under=under)
+            note = assumed_rate_note(ind)
+            if note:
+                assumptions.append(note)
+        del ind_labels, ind_new
+
     att = attribution.attribution_summary(side_raw, lr.loss, top_depth=top_depth, default=job.default_side)
     assumptions += _assumptions(job, new, lr, ropt, single=old is None, n_filled=n_filled)
 
     with prog.stage("assessment"):
+        life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
         ext_rate = rate_statistics(lr.rate_top, lr.rate_under, zmap, **fit_kw)
         ext_life = zone_lives(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
                               censored=lr.censored, threshold=new.meta.threshold, methods=ext_depth, **fit_kw)
@@ -189,10 +205,6 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                     options=options, extremes=merge_extremes(ext_depth, ext_rate, ext_life),
                                     pitch_mm=new.pitch, rate_short_available=old is not None, life_map=life)
         table = add_eva_columns(table, ext_depth, ext_life)
-
-    with prog.stage("indications"):
-        ind, gone = _indications(ind_new, new, old, reg, lr, zmap, ind_labels)
-        del ind_labels, ind_new
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
@@ -235,10 +247,6 @@ def _assumptions(job, new, lr, ropt, *, single, n_filled) -> list:
     out.append("One inspection: long-term rates only (loss ÷ years in service)." if single else
                "Governing rate per cell and side: the greater of the short-term and long-term rates "
                "(from memory: API 570 practice).")
-    if not single:
-        out.append("Rates are linear: a pit that appeared since the older inspection is taken to have grown over "
-                   "the whole interval; if it began later it grows faster than measured (such indications have "
-                   "status 'new').")
     if new.meta.threshold:
         out.append(f"Loss shallower than the detection threshold ({new.meta.threshold:.2f} mm) reads as nominal: "
                    "it is treated as unknown (censored), not zero; the extreme-value fits take such blocks as "
@@ -246,7 +254,7 @@ def _assumptions(job, new, lr, ropt, *, single, n_filled) -> list:
     return out
 
 
-def _indications(found, new, old, reg, lr, zmap, labels):
+def _indications(found, new, old, reg, lr, zmap, labels, *, old_on_new=None, repairs=None):
     """The indication list: the newer scan's regions (``found``) with the governing rate's
     maximum per region, matched with the older scan's indications; and the older regions
     no newer one matches (``gone``, also listed, so the inspector sees what went away)."""
@@ -258,6 +266,14 @@ def _indications(found, new, old, reg, lr, zmap, labels):
     old_ind, old_labels = old_indications(old, new, reg.transform, reporting_depth_mm=reporting_depth(new),
                                           zone_labels=zmap.labels, zone_names=zmap.names)
     ind = match_indications(ind, old_ind, labels, old_labels, growth_sigma_mm=lr.growth_sigma, dt_years=lr.dt_years)
+    # repaired since the older scan (with the date of a dated repair record) and partly
+    # unscanned (to prove up); then the rate assumed where none was measured
+    dated = [(attribution.shape_mask(r.shape, new), r.date) for r in (repairs or []) if r.date > old.meta.inspected]
+    ind = flag_indications(ind, labels, covered_new=np.isfinite(new.thickness),
+                           covered_old=np.isfinite(old_on_new.thickness), dt_years=lr.dt_years,
+                           floor=zmap.labels >= 0, repaired=lr.repaired, repair_dates=dated or None,
+                           inspected=new.meta.inspected)
+    ind[["rate_assumed_mm_y", "rate_basis"]] = new_indication_rates(ind, dt_years=lr.dt_years)
     gone = gone_indications(old_ind, ind)
     if len(gone):
         g = gone.copy()

@@ -36,8 +36,8 @@ __all__ = ["CompareResult", "STAGES_PAIR", "STAGES_SINGLE", "write_outputs", "co
            "register_files", "run_demo", "sample_dir", "DEMO"]
 
 #: The stages a two-inspection job reports progress for, in order.
-STAGES_PAIR = ["load", "registration", "resampling", "attribution", "zones", "extremes", "rates", "assessment",
-               "indications", "repairs", "outputs", "report"]
+STAGES_PAIR = ["load", "registration", "resampling", "attribution", "zones", "extremes", "rates", "indications",
+               "assessment", "repairs", "outputs", "report"]
 #: The stages of a one-inspection job.
 STAGES_SINGLE = [s for s in STAGES_PAIR if s not in ("registration", "resampling")]
 
@@ -88,7 +88,7 @@ class CompareResult:
         area = float(self.patches["area_m2"].sum()) if len(self.patches) else 0.0
         lines.append(patches_line(len(self.patches), area, self.zones, self.zones_repaired))
         st = self.indications["status"].value_counts() if "status" in self.indications else {}
-        parts = [f"{int(st[k])} {k}" for k in ("new", "grown", "stable", "not found") if k in st]
+        parts = [f"{int(st[k])} {k}" for k in ("new", "grown", "stable", "repaired", "partly unscanned", "not found") if k in st]
         lines.append(f"indications: {len(self.indications)} (indications.csv)" + (f": {', '.join(parts)}" if parts else ""))
         for n in self.notes:
             lines.append("note: " + n)

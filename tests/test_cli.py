@@ -69,7 +69,7 @@ def test_compare_writes_every_output(small_pair_files, tmp_path, capsys):
     assert list(pd.read_csv(out / "patches.csv").columns[: len(PATCH_COLUMNS)]) == PATCH_COLUMNS
     ind = pd.read_csv(out / "indications.csv")
     # status against the older scan (design contract §3.5), plus older regions not found now
-    assert set(ind["status"]) <= {"new", "grown", "stable", "not found"} and (ind["status"] == "new").any()
+    assert set(ind["status"]) <= {"new", "grown", "stable", "not found", "repaired", "partly unscanned"} and (ind["status"] == "new").any()
     gone = ind[ind["status"] == "not found"]
     assert gone["old_id"].notna().all() and gone["depth_max_mm"].isna().all()
     reg = json.loads((out / "registration.json").read_text())
