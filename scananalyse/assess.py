@@ -491,7 +491,8 @@ def recommend_interval(*, code: float, local: float, eva: float, initial: float,
 def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
                  options: AssessOptions | None = None, extremes: dict | None = None,
                  pitch_mm: float | None = None, rate_short_available: bool = True,
-                 rate_top_hi=None, rate_under_hi=None, rate_sigma=None) -> pd.DataFrame:
+                 rate_top_lo=None, rate_top_hi=None, rate_under_lo=None, rate_under_hi=None,
+                 rate_sigma=None) -> pd.DataFrame:
     """Assess every zone: code formula, co-located and extreme-value lives, recommendation.
 
     Parameters
@@ -511,9 +512,9 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     pitch_mm : grid pitch, checked against the zone map if given. [mm]
     rate_short_available : False for a single inspection (long-term rates only):
         every zone gets ``no-short-term-rates``.
-    rate_top_hi, rate_under_hi : upper ends of each cell's rate interval
-        (``LossRates.rate_top_hi`` / ``rate_under_hi``); with ``rate_sigma`` they give
-        the zone maxima with their 90 % interval. [mm/y]
+    rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : the ends of each cell's
+        rate interval (``LossRates.rate_top_lo`` …); with ``rate_sigma`` they give the
+        zone maxima with their 90 % interval. [mm/y]
     rate_sigma : one-σ noise of each cell's rate (``LossRates.rate_sigma_map()``, or a
         scalar). [mm/y]
 
@@ -569,7 +570,8 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
         raise InputError(f"scan metadata: field 'installed': {meta.installed} is not before "
                          f"the inspection date {meta.inspected}")
     z = _zone_reductions(t, side, rt, ru, zones, rules, options, t0=t0,
-                         hi_maps=(rate_top_hi, rate_under_hi), rate_sigma=rate_sigma)
+                         bounds=((rate_top_lo, rate_top_hi), (rate_under_lo, rate_under_hi)),
+                         rate_sigma=rate_sigma)
     has_rates = rt is not None
     ctx = _Context(
         t0=t0, age=age, meta=meta, rules=rules, options=options, extremes=extremes or {},
@@ -610,7 +612,7 @@ def _checked_maps(thickness, side, rate_top, rate_under, zones, pitch_mm):
     return t, side, rt, ru
 
 
-def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, hi_maps, rate_sigma) -> dict:
+def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, bounds, rate_sigma) -> dict:
     """Per-zone arrays: coverage, thinnest cells per side, co-located lives, rate maxima."""
     from .rates import zone_max_rate_bounds
 
@@ -641,22 +643,23 @@ def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, hi_maps, rat
         return out
     mrt = mrt_map(zones, rules, options, t0=t0)
     out["life"] = zones.reduce_gathered(zones.gather(local_life_map(t, rt, ru, mrt)), np.min)
-    have_hi = all(h is not None for h in hi_maps) and rate_sigma is not None
-    for s, point_map, hi_map in (("top", rt, hi_maps[0]), ("under", ru, hi_maps[1])):
+    have_hi = all(m is not None for pair in bounds for m in pair) and rate_sigma is not None
+    for s, point_map, (lo_map, hi_map) in (("top", rt, bounds[0]), ("under", ru, bounds[1])):
         out[f"{s}_raw"] = zones.reduce_gathered(np.where(scanned_g, zones.gather(point_map), nanf),
                                                 np.max)
         if have_hi:
-            hi_arr = np.asarray(hi_map, np.float32)
-            if hi_arr.shape != t.shape:
-                raise ValueError(f"rate_{s}_hi shape {hi_arr.shape} differs from the thickness {t.shape}")
-            b = zone_max_rate_bounds(np.where(np.isnan(t), nanf, point_map), hi_arr, zones,
+            lo_arr, hi_arr = np.asarray(lo_map, np.float32), np.asarray(hi_map, np.float32)
+            for nm, a in (("lo", lo_arr), ("hi", hi_arr)):
+                if a.shape != t.shape:
+                    raise ValueError(f"rate_{s}_{nm} shape {a.shape} differs from the thickness {t.shape}")
+            b = zone_max_rate_bounds(np.where(np.isnan(t), nanf, point_map), lo_arr, hi_arr, zones,
                                      sigma_rate=rate_sigma)
             out[s] = {"point": b["point"], "lo": b["lo"], "hi": b["hi"]}
         else:
             out[s]["point"] = out[f"{s}_raw"]
     if have_hi:
-        life_short = local_life_map(t, np.asarray(hi_maps[0], np.float32),
-                                    np.asarray(hi_maps[1], np.float32), mrt)
+        life_short = local_life_map(t, np.asarray(bounds[0][1], np.float32),
+                                    np.asarray(bounds[1][1], np.float32), mrt)
         out["life_short"] = zones.reduce_gathered(zones.gather(life_short), np.min)
     return out
 

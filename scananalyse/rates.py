@@ -790,7 +790,7 @@ def expected_max_normal(m) -> np.ndarray:
     return ndtri((m - 0.375) / (m + 0.25))
 
 
-def zone_max_rate_bounds(rate, rate_hi, zones, *, sigma_rate, k: float = Z90,
+def zone_max_rate_bounds(rate, rate_lo, rate_hi, zones, *, sigma_rate, k: float = Z90,
                          iterations: int = 8) -> dict:
     """Per zone: a point estimate of the zone's true maximum rate that the selection of
     the largest of many noisy cells does not bias, and a 90 % interval for it.
@@ -799,7 +799,8 @@ def zone_max_rate_bounds(rate, rate_hi, zones, *, sigma_rate, k: float = Z90,
     ----------
     rate : per-cell point rate of one side (``LossRates.rate_top`` or ``rate_under``),
         NaN = none. [mm/y]
-    rate_hi : the upper end of each cell's interval (``rate_top_hi`` …). [mm/y]
+    rate_lo, rate_hi : the ends of each cell's interval (``rate_top_lo``,
+        ``rate_top_hi`` …). [mm/y]
     zones : :class:`~scananalyse.zones.ZoneMap` on the same grid. [-]
     sigma_rate : one-σ noise of a cell's rate, a scalar or a map
         (:meth:`LossRates.rate_sigma_map`). [mm/y]
@@ -818,7 +819,9 @@ def zone_max_rate_bounds(rate, rate_hi, zones, *, sigma_rate, k: float = Z90,
     estimate solves μ = max − σ·E[max of m(μ)], m(μ) the cells whose rate is at least
     μ − σ (the cells that can compete for the maximum), by fixed-point iteration from
     μ = max; σ is the noise of the cell that holds the maximum (our rule, the winner's
-    curse taken off). ``lo`` = point − k·σ, at least 0. ``hi`` = the largest per-cell
+    curse taken off). ``lo`` = the lesser of point − k·σ and the largest per-cell lower
+    end less σ·E[max of m] (the lower ends take a crossed cell's older loss at its
+    largest), at least 0. ``hi`` = the largest per-cell
     upper end: the cell whose true rate is the zone's maximum has its true rate below
     its own upper end but in 5 % of cases, so the largest upper end is above the true
     maximum at least as often. Censoring enters through the cells' point rates and
@@ -850,7 +853,9 @@ def zone_max_rate_bounds(rate, rate_hi, zones, *, sigma_rate, k: float = Z90,
             m = np.maximum(zones.count_gathered(g >= floor), 1)
         point = np.maximum(mx - sigma * expected_max_normal(m), 0.0)
     point = np.where(np.isnan(mx), np.nan, point)
-    lo = np.maximum(point - k * sigma, 0.0)
+    lo_max = zones.reduce_gathered(zones.gather(np.asarray(rate_lo, dtype=np.float32)), np.max)
+    lo = np.fmin(point - k * sigma, lo_max - sigma * expected_max_normal(m))
+    lo = np.maximum(lo, 0.0)
     hi = np.fmax(hi, point)
     return {"point": point, "lo": np.where(np.isnan(mx), np.nan, lo), "hi": hi, "n_candidates": m}
 
@@ -884,12 +889,16 @@ def _crossed_old_loss(loss, old_loss, crossed, thr_old: float, how: str,
     fresh = np.r_[True, d_old <= 0]
     lab = labels[crossed]
     if how == "linear":
-        # a share of its largest value under censoring and linear growth since
-        # installation: the share of this floor's indications the older scan did not
-        # report (docs/assessment.md)
+        # where the threshold binds (a pit growing linearly since installation would have
+        # been reported) the threshold, else the middle of [0, loss_new·age_old/age_new];
+        # times the share of this floor's indications the older scan did not report
+        # (docs/assessment.md)
         n_fresh = int(np.count_nonzero(fresh[1:]))
         share = n_fresh / n if n else 1.0
-        fresh_est = _older_loss_cap(loss[crossed], thr_old, age_ratio) * np.float32(share)
+        cap = _older_loss_cap(loss[crossed], thr_old, age_ratio)
+        binds = cap >= np.float32(thr_old) * np.float32(0.999)
+        fresh_est = np.where(binds, cap, cap * np.float32(0.5)) * np.float32(share)
+        del cap, binds
     else:
         fresh_est = np.float32(0.5 * thr_old)  # error at most thr/2 either way
     est = np.where(fresh[lab], fresh_est, loss[crossed] * ratio[lab])

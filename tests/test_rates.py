@@ -183,29 +183,36 @@ def test_crossed_profile_scales_with_the_pit():
 
 
 def test_crossed_linear_bound_and_floor_share():
-    # young tank: 7 y in service at the older scan, 14 y at the newer one.  A pit 1.6 mm deep
-    # now and not reported then (threshold 1 mm) had at most min(1, 1.6 × 7/14) = 0.8 mm of
-    # loss then if it grew linearly from a start at or after installation (hand arithmetic)
+    # young tank: 7 y in service at the older scan, 14 y at the newer one, threshold 1 mm.
+    # With linear growth from a start at or after installation, a pit L mm deep now had at
+    # most min(1, L × 7/14) mm then (hand arithmetic).  L = 2.5: the threshold binds (a pit
+    # growing since installation would have been reported), the older loss is taken at
+    # 1 mm; L = 1.6: the threshold does not bind, the older loss is taken in the middle of
+    # [0, 0.8] mm
     young_o = OLD_META.replace(threshold=1.0, method="MFL", installed=dt.date(2012, 5, 1),
                                inspected=dt.date(2019, 5, 1))
     young_n = young_o.replace(inspected=dt.date(2026, 5, 1))
     dt_y = years_between(young_o.inspected, young_n.inspected)
-    old, new = pair([[NOM, NOM, NOM]], [[NOM, NOM - 1.6, NOM]], old_meta=young_o, new_meta=young_n)
+    old, new = pair([[NOM, NOM, NOM, NOM, NOM]], [[NOM, NOM - 1.6, NOM, NOM, NOM - 2.5]],
+                    old_meta=young_o, new_meta=young_n)
     r = compute_rates(new, old, None)
     cap = 1.6 * years_between(young_o.installed, young_o.inspected) / r.age_years  # 0.8 mm
-    assert r.rate_short_under[0, 1] == pytest.approx((1.6 - cap) / dt_y, rel=1e-4)
+    assert r.rate_short_under[0, 1] == pytest.approx((1.6 - cap / 2) / dt_y, rel=1e-4)
+    assert r.rate_short_under[0, 4] == pytest.approx((2.5 - 1.0) / dt_y, rel=1e-4)
     # the cell's interval: older loss in [0, 0.8] mm, noise ±1.645·√(0.1² + 0.1²) mm
     noise = 1.6448536 * math.hypot(0.1, 0.1)
     assert r.rate_under_hi[0, 1] == pytest.approx((1.6 + noise) / dt_y, rel=1e-4)
     assert r.rate_under_lo[0, 1] == pytest.approx(
         max((1.6 - cap - noise) / dt_y, (1.6 - 1.6448536 * 0.1) / r.age_years), rel=1e-4)
-    # a second indication that the older scan did report (2 mm then, 3 mm now): half of the
-    # floor's indications were unreported, so the unreported one takes half its bound
-    old2, new2 = pair([[NOM, NOM, NOM, NOM, NOM - 2.0]], [[NOM, NOM - 1.6, NOM, NOM, NOM - 3.0]],
+    # a third indication that the older scan did report (2 mm then, 3 mm now): a third of
+    # the floor's indications were reported, so the unreported ones take 2/3 of the estimate
+    old2, new2 = pair([[NOM, NOM, NOM, NOM, NOM, NOM, NOM - 2.0]],
+                      [[NOM, NOM - 1.6, NOM, NOM, NOM - 2.5, NOM, NOM - 3.0]],
                       old_meta=young_o, new_meta=young_n)
     r2 = compute_rates(new2, old2, None)
-    assert r2.rate_short_under[0, 1] == pytest.approx((1.6 - cap / 2) / dt_y, rel=1e-4)
-    assert r2.rate_short_under[0, 4] == pytest.approx(1.0 / dt_y, rel=1e-4)
+    assert r2.rate_short_under[0, 1] == pytest.approx((1.6 - cap / 2 * 2 / 3) / dt_y, rel=1e-4)
+    assert r2.rate_short_under[0, 4] == pytest.approx((2.5 - 2 / 3) / dt_y, rel=1e-4)
+    assert r2.rate_short_under[0, 6] == pytest.approx(1.0 / dt_y, rel=1e-4)
 
 
 def test_rate_interval_formula_and_point_inside():
@@ -270,7 +277,7 @@ def test_zone_max_point_takes_the_winners_curse_off():
     rng = np.random.default_rng(3)
     rate = (0.1 + 0.02 * rng.standard_normal((200, 200))).astype(np.float32)
     hi = rate + np.float32(1.645 * 0.02)
-    b = zone_max_rate_bounds(rate, hi, zm, sigma_rate=0.02)
+    b = zone_max_rate_bounds(rate, rate - np.float32(1.645 * 0.02), hi, zm, sigma_rate=0.02)
     k = zm.names.index("interior")
     assert np.nanmax(rate) > 0.17
     assert b["point"][k] == pytest.approx(0.1, abs=0.02)
