@@ -26,12 +26,20 @@ Censored cells and rates (our rule, documented in docs/attribution.md):
   newer threshold by more than the noise;
 * a cell censored in the older scan but reported now (the loss crossed the threshold
   between the inspections, or the resampled older value mixes censored and reported
-  cells) has an older loss unknown in [0, threshold); by default its older loss is
-  estimated from the connected region of reported loss it belongs to, scaling the
-  newer loss by the region's older/newer deepest-loss ratio (a pit deepening in
-  proportion); in a region with no reported older loss (a pit below detection or
-  absent then) the older loss is taken as half the threshold (error at most
-  ±threshold/2; ``RateOptions.crossed="upper"`` takes 0, the conservative bound). Such cells are marked in ``LossRates.crossed``.
+  cells) has an older loss unknown in [0, c], c = min(threshold, loss_new·age_old/age_new)
+  (linear growth from a start at or after installation); by default
+  (``RateOptions.crossed="linear"``) in a connected region of reported loss that the
+  older scan reported too, it is estimated by scaling the newer loss by the region's
+  older/newer deepest-loss ratio (a pit deepening in proportion); in a region with no
+  reported older loss it is taken at c where the threshold binds, else at c/2, times the
+  floor's share of indications the older scan did not report (docs/assessment.md §4a).
+  ``"profile"`` takes half the threshold there, ``"upper"`` 0 (the conservative bound).
+  Such cells are marked in ``LossRates.crossed``.
+
+Intervals: every governing rate comes with a per-cell 90 % interval
+(``rate_top_lo``/``rate_top_hi``, ``rate_under_lo``/``rate_under_hi``,
+:func:`rate_bounds`); :func:`zone_max_rate_bounds` gives a zone's maximum rate per side
+with the winner's curse of the largest of many noisy cells taken off, and its interval.
 """
 
 from __future__ import annotations
@@ -832,8 +840,8 @@ def zone_max_rate_bounds(rate, rate_lo, rate_hi, zones, *, sigma_rate, k: float 
     sg = zones.gather(np.asarray(sigma_rate, dtype=np.float32)) if sig_map else None
     mx = zones.reduce_gathered(g, np.max)
     hi = zones.reduce_gathered(zones.gather(np.asarray(rate_hi, dtype=np.float32)), np.max)
-    starts, _has = zones._starts()
     sizes = zones.n_cells()
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
     n = len(zones.names)
     sigma = np.zeros(n)
     for z in range(n):
