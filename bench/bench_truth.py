@@ -64,7 +64,9 @@ def _filled(lr, new, oon):
     return dataclasses.replace(lr, rate_top_hi=np.fmax(lr.rate_top_hi, lr.rate_top),
                                rate_under_hi=np.fmax(lr.rate_under_hi, lr.rate_under),
                                rate_top_lo=np.fmin(lr.rate_top_lo, lr.rate_top),
-                               rate_under_lo=np.fmin(lr.rate_under_lo, lr.rate_under))
+                               rate_under_lo=np.fmin(lr.rate_under_lo, lr.rate_under),
+                               rate_top_fit=np.fmax(lr.rate_top_fit, lr.rate_top),
+                               rate_under_fit=np.fmax(lr.rate_under_fit, lr.rate_under))
 
 
 def evaluate(seed: int, floor: str = "young", *, fill: bool = True, truth: str = "rate") -> list[dict]:
@@ -82,9 +84,7 @@ def evaluate(seed: int, floor: str = "young", *, fill: bool = True, truth: str =
     zm = zone_map(p.new, FloorGeometry(tr.diameter_mm, centre=tr.centre), rules)
     table = assess.assess_zones(thickness=p.new.thickness, side=p.new.side, rate_top=lr.rate_top,
                                 rate_under=lr.rate_under, zones=zm, meta=p.new.meta, rules=rules,
-                                rate_top_lo=lr.rate_top_lo, rate_top_hi=lr.rate_top_hi,
-                                rate_under_lo=lr.rate_under_lo, rate_under_hi=lr.rate_under_hi,
-                                rate_sigma=lr.rate_sigma_map())
+                                zone_rates=lr.zone_inputs())
     scanned = np.isfinite(p.new.thickness) & ~lr.repair_record
     rate_true = tr.rate_top_true.astype(np.float64) + tr.rate_under_true.astype(np.float64)
     out = []
@@ -108,6 +108,7 @@ def evaluate(seed: int, floor: str = "young", *, fill: bool = True, truth: str =
                         "hi": getattr(row, f"rate_{s}_max_hi_mm_y"),
                         "raw": getattr(row, f"rate_{s}_max_raw_mm_y"),
                         "life": row.life_local_y, "life_short": row.life_local_short_y,
+                        "life_fit": row.life_local_fit_y,
                         "recommended": row.interval_recommended_y, "limiting": row.limiting,
                         "true_life": true_life})
     return out
@@ -128,6 +129,9 @@ def summary(rows: list[dict], *, min_rate: float = 0.05) -> dict:
         short = {(r["seed"], r["zone"]): r["life_short"] / r["true_life"] for r in sel
                  if r["true_life"] > 0 and math.isfinite(r["true_life"])}
         sv = np.array([v for v in short.values() if math.isfinite(v)])
+        fit = {(r["seed"], r["zone"]): r["life_fit"] / r["true_life"] for r in sel
+               if r["true_life"] > 0 and math.isfinite(r["true_life"])}
+        fv = np.array([v for v in fit.values() if math.isfinite(v)])
         out[zone] = {
             "n_sides": len(meas), "point_within_30pct": float(np.mean(within)) if within else math.nan,
             "point_ratio_median": float(np.median([r["point"] / r["true_max"] for r in meas])) if meas else math.nan,
@@ -138,6 +142,9 @@ def summary(rows: list[dict], *, min_rate: float = 0.05) -> dict:
             "life_over_1.1": float(np.mean(lv > 1.10)) if lv.size else math.nan,
             "life_ratio_median": float(np.median(lv)) if lv.size else math.nan,
             "life_short_ratio_median": float(np.median(sv)) if sv.size else math.nan,
+            "life_fit_in_0.75_1.1": float(np.mean((fv >= 0.75) & (fv <= 1.10))) if fv.size else math.nan,
+            "life_fit_over_1.1": float(np.mean(fv > 1.10)) if fv.size else math.nan,
+            "life_fit_ratio_median": float(np.median(fv)) if fv.size else math.nan,
             "life_short_over_1": float(np.mean(sv > 1.0)) if sv.size else math.nan,
             "recommended_over_true_life": float(np.mean([r["recommended"] > r["true_life"] + 1e-9
                                                          for r in sel if r["side"] == "top"])),

@@ -491,8 +491,7 @@ def recommend_interval(*, code: float, local: float, eva: float, initial: float,
 def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
                  options: AssessOptions | None = None, extremes: dict | None = None,
                  pitch_mm: float | None = None, rate_short_available: bool = True,
-                 rate_top_lo=None, rate_top_hi=None, rate_under_lo=None, rate_under_hi=None,
-                 rate_sigma=None) -> pd.DataFrame:
+                 zone_rates=None) -> pd.DataFrame:
     """Assess every zone: code formula, co-located and extreme-value lives, recommendation.
 
     Parameters
@@ -512,11 +511,9 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     pitch_mm : grid pitch, checked against the zone map if given. [mm]
     rate_short_available : False for a single inspection (long-term rates only):
         every zone gets ``no-short-term-rates``.
-    rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : the ends of each cell's
-        rate interval (``LossRates.rate_top_lo`` …); with ``rate_sigma`` they give the
-        zone maxima with their 90 % interval. [mm/y]
-    rate_sigma : one-σ noise of each cell's rate (``LossRates.rate_sigma_map()``, or a
-        scalar). [mm/y]
+    zone_rates : :class:`~scananalyse.rates.ZoneRateInputs` (``LossRates.zone_inputs()``):
+        the per-cell selection-aware estimates, interval ends and noise that give the zone
+        maxima with their 90 % interval; None = the plain largest point rate, no interval.
 
     Returns
     -------
@@ -524,7 +521,8 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     ``n_scanned``, ``rtbc_mm``, ``rtip_mm``, ``t_used_upr_mm``, ``stpr_mm_y``,
     ``upr_mm_y``, ``rate_top_max_lo_mm_y``, ``rate_top_max_hi_mm_y``,
     ``rate_under_max_lo_mm_y``, ``rate_under_max_hi_mm_y``, ``rate_top_max_raw_mm_y``,
-    ``rate_under_max_raw_mm_y``, ``life_local_short_y``, ``rate_eva_mm_y``,
+    ``rate_under_max_raw_mm_y``, ``life_local_short_y``, ``life_local_fit_y``,
+    ``rate_eva_mm_y``,
     ``rate_eva_source``, ``life_eva_y``, ``initial_interval_y``, ``cap_y``, ``notes``.
 
     Notes
@@ -535,14 +533,16 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
       thicknesses with age-based rates, uncapped; NaN with flag ``no-age`` if the scan
       has no ``installed`` date.
     - ``rate_top_max_mm_y`` / ``rate_under_max_mm_y`` are the point estimates of the
-      zone's true maximum rate per side (:func:`~scananalyse.rates.zone_max_rate_bounds`,
-      the winner's curse of the largest of many noisy cells taken off), with the 90 %
-      interval in ``rate_*_max_lo_mm_y`` / ``rate_*_max_hi_mm_y``; the plain largest
-      cell is ``rate_*_max_raw_mm_y``.  Without the upper-end maps the point is the
-      plain largest cell and the interval NaN.
+      zone's true maximum rate per side (:func:`~scananalyse.rates.zone_max_rate_bounds`
+      on ``zone_rates``' selection-aware maps, the winner's curse of the largest of many
+      noisy cells taken off), with the 90 % interval in ``rate_*_max_lo_mm_y`` /
+      ``rate_*_max_hi_mm_y``; the plain largest point rate is ``rate_*_max_raw_mm_y``.
+      Without ``zone_rates`` the point is the plain largest and the interval NaN.
     - ``life_local_y`` is the least of :func:`local_life_map` over the zone from the
       point rates; ``life_local_short_y`` the same from each cell's upper rate (the
-      short end of the co-located life; reported, not used by the recommendation).
+      short end of the co-located life) and ``life_local_fit_y`` from the
+      selection-aware estimates (``zone_rates``' ``*_fit``); both reported, not used
+      by the recommendation (docs/assessment.md §4a).
     - ``life_eva_y`` = (t0 − d − MRT)/rate_eva (:func:`eva_life`), d the extremes'
       ``depth_pred_upper_mm`` (predictive bound) when given, else ``depth_eva_upper_mm``
       (the value used is the column ``depth_eva_life_mm``);
@@ -570,8 +570,7 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
         raise InputError(f"scan metadata: field 'installed': {meta.installed} is not before "
                          f"the inspection date {meta.inspected}")
     z = _zone_reductions(t, side, rt, ru, zones, rules, options, t0=t0,
-                         bounds=((rate_top_lo, rate_top_hi), (rate_under_lo, rate_under_hi)),
-                         rate_sigma=rate_sigma)
+                         zone_rates=zone_rates)
     has_rates = rt is not None
     ctx = _Context(
         t0=t0, age=age, meta=meta, rules=rules, options=options, extremes=extremes or {},
@@ -612,7 +611,7 @@ def _checked_maps(thickness, side, rate_top, rate_under, zones, pitch_mm):
     return t, side, rt, ru
 
 
-def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, bounds, rate_sigma) -> dict:
+def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates) -> dict:
     """Per-zone arrays: coverage, thinnest cells per side, co-located lives, rate maxima."""
     from .rates import zone_max_rate_bounds
 
@@ -635,7 +634,7 @@ def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, bounds, rate
            "area_m2": np.asarray(zones.areas_mm2, dtype=np.float64) / 1e6}
     del t_g, under_g, top_g
     nan_z = np.full(n, np.nan)
-    for key in ("life", "life_short", "top_raw", "under_raw"):
+    for key in ("life", "life_short", "life_fit", "top_raw", "under_raw"):
         out[key] = nan_z.copy()
     for s in ("top", "under"):
         out[s] = {"point": nan_z.copy(), "lo": nan_z.copy(), "hi": nan_z.copy()}
@@ -643,24 +642,24 @@ def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, bounds, rate
         return out
     mrt = mrt_map(zones, rules, options, t0=t0)
     out["life"] = zones.reduce_gathered(zones.gather(local_life_map(t, rt, ru, mrt)), np.min)
-    have_hi = all(m is not None for pair in bounds for m in pair) and rate_sigma is not None
-    for s, point_map, (lo_map, hi_map) in (("top", rt, bounds[0]), ("under", ru, bounds[1])):
+    for s, point_map in (("top", rt), ("under", ru)):
         out[f"{s}_raw"] = zones.reduce_gathered(np.where(scanned_g, zones.gather(point_map), nanf),
                                                 np.max)
-        if have_hi:
-            lo_arr, hi_arr = np.asarray(lo_map, np.float32), np.asarray(hi_map, np.float32)
-            for nm, a in (("lo", lo_arr), ("hi", hi_arr)):
-                if a.shape != t.shape:
-                    raise ValueError(f"rate_{s}_{nm} shape {a.shape} differs from the thickness {t.shape}")
-            b = zone_max_rate_bounds(np.where(np.isnan(t), nanf, point_map), lo_arr, hi_arr, zones,
-                                     sigma_rate=rate_sigma)
-            out[s] = {"point": b["point"], "lo": b["lo"], "hi": b["hi"]}
-        else:
+        if zone_rates is None:
             out[s]["point"] = out[f"{s}_raw"]
-    if have_hi:
-        life_short = local_life_map(t, np.asarray(bounds[0][1], np.float32),
-                                    np.asarray(bounds[1][1], np.float32), mrt)
-        out["life_short"] = zones.reduce_gathered(zones.gather(life_short), np.min)
+            continue
+        fit, lo, hi = (np.asarray(getattr(zone_rates, f"{s}_{e}"), np.float32) for e in ("fit", "lo", "hi"))
+        for nm, a in (("fit", fit), ("lo", lo), ("hi", hi)):
+            if a.shape != t.shape:
+                raise ValueError(f"zone_rates.{s}_{nm} shape {a.shape} differs from the thickness {t.shape}")
+        b = zone_max_rate_bounds(np.where(np.isnan(t), nanf, fit), lo, hi, zones,
+                                 sigma_rate=zone_rates.sigma)
+        out[s] = {"point": b["point"], "lo": b["lo"], "hi": b["hi"]}
+    if zone_rates is not None:
+        for key, a, b in (("life_short", zone_rates.top_hi, zone_rates.under_hi),
+                          ("life_fit", zone_rates.top_fit, zone_rates.under_fit)):
+            life = local_life_map(t, np.asarray(a, np.float32), np.asarray(b, np.float32), mrt)
+            out[key] = zones.reduce_gathered(zones.gather(life), np.min)
     return out
 
 
@@ -688,6 +687,7 @@ _NAN_COLS = ("t_min_mm", "depth_max_mm", "depth_eva_mm", "depth_eva_upper_mm",
              "t_used_upr_mm", "stpr_mm_y", "upr_mm_y", "rate_top_max_lo_mm_y",
              "rate_top_max_hi_mm_y", "rate_under_max_lo_mm_y", "rate_under_max_hi_mm_y",
              "rate_top_max_raw_mm_y", "rate_under_max_raw_mm_y", "life_local_short_y",
+             "life_local_fit_y",
              "rate_eva_mm_y", "life_eva_y")
 
 
@@ -711,7 +711,8 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
     rtip = float(z["rtip"][k]) if not math.isnan(z["rtip"][k]) else t0
     row.update({"t_min_mm": tmin, "depth_max_mm": max(t0 - tmin, 0.0), "rtbc_mm": rtbc,
                 "rtip_mm": rtip, "life_local_y": float(z["life"][k]),
-                "life_local_short_y": float(z["life_short"][k])})
+                "life_local_short_y": float(z["life_short"][k]),
+                "life_local_fit_y": float(z["life_fit"][k])})
     for s in ("top", "under"):
         row.update({f"rate_{s}_max_mm_y": float(z[s]["point"][k]),
                     f"rate_{s}_max_lo_mm_y": float(z[s]["lo"][k]),

@@ -62,6 +62,7 @@ __all__ = [
     "Repair",
     "LossRates",
     "LossLayers",
+    "ZoneRateInputs",
     "loss_layers",
     "read_repairs",
     "loss_map",
@@ -104,14 +105,18 @@ class RateOptions:
     default_sigma_mm : σ used when a scan's metadata has none. [mm]
     crossed : how a cell below the older scan's threshold but reported now enters the
         short-term rate. Its older loss is unknown in [0, threshold); it is estimated as
-        the larger of the reported (resampled) older loss and: ``"linear"`` (default)
+        the larger of the reported (resampled) older loss and: ``"linear"``
         the newer loss scaled by the ratio older/newer deepest loss of the connected
         region it belongs to (a pit deepening in proportion), or, if the region had no
         reported older loss, the largest older loss consistent with the censoring and
         with linear growth since installation, min(threshold, loss_new·age_old/age_new)
         (see docs/assessment.md: a zone's maximum is picked among such cells, whose
-        older loss sat near that bound); ``"profile"`` the same with half the threshold
-        in regions with no reported older loss (error at most ±threshold/2);
+        older loss sat near that bound; this estimate always gives
+        ``LossRates.rate_*_fit``, the zone-maximum input); ``"profile"`` (default) the same
+        with half the threshold in regions with no reported older loss (error at most
+        ±threshold/2; it does not put the older loss of a pit that is new since the older
+        scan near the threshold, so the point rates that the co-located life uses stay on
+        the conservative side);
         ``"upper"`` 0 (the measured change, the conservative bound), ``"mid"`` half the
         threshold, ``"lower"`` the threshold. [-]
     interval_k : multiple of the rate's noise σ on each side of a cell's rate interval
@@ -122,7 +127,7 @@ class RateOptions:
     governing: str = "max"
     unknown_side: str = DEFAULT_SIDE
     default_sigma_mm: float = DEFAULT_SIGMA_MM
-    crossed: str = "linear"
+    crossed: str = "profile"
     interval_k: float = Z90
 
     def __post_init__(self):
@@ -268,6 +273,21 @@ def rate_sigma(sigma_old: float, sigma_new: float, dt_years: float) -> float:
     return float(math.hypot(sigma_old, sigma_new) / dt_years)
 
 
+@dataclass(eq=False, frozen=True)
+class ZoneRateInputs:
+    """Per-cell maps for the zone maximum rates (:meth:`LossRates.zone_inputs`): the
+    selection-aware estimate ``*_fit``, the interval ends ``*_lo``/``*_hi`` per side
+    [mm/y], and the rate noise ``sigma`` (map or scalar) [mm/y]."""
+
+    top_fit: np.ndarray
+    top_lo: np.ndarray
+    top_hi: np.ndarray
+    under_fit: np.ndarray
+    under_lo: np.ndarray
+    under_hi: np.ndarray
+    sigma: object
+
+
 @dataclass(eq=False)
 class LossRates:
     """Loss and rate maps on the newer scan's grid (float32 / bool), and scalars.
@@ -280,7 +300,10 @@ class LossRates:
     ``rate_long_under``, ``rate_long_bound``, ``rate_top``, ``rate_under`` [mm/y], and
     the interval of each governing rate, ``rate_top_lo`` ≤ ``rate_top`` ≤
     ``rate_top_hi``, ``rate_under_lo`` ≤ ``rate_under`` ≤ ``rate_under_hi`` [mm/y]
-    (:func:`rate_bounds`; NaN where the point is NaN).
+    (:func:`rate_bounds`; NaN where the point is NaN), and ``rate_top_fit``,
+    ``rate_under_fit`` [mm/y]: the governing rates with the older loss of crossed cells
+    estimated for a zone maximum (``RateOptions.crossed="linear"``; the same arrays as
+    the point maps when the options already say so), inside the intervals too.
     Rates are ≥ 0 or NaN (NaN = not scanned, excluded as repaired/misaligned, or not
     available: short-term without an older scan, long-term without ``installed``).
     """
@@ -301,6 +324,8 @@ class LossRates:
     rate_long_bound: np.ndarray
     rate_top: np.ndarray
     rate_under: np.ndarray
+    rate_top_fit: np.ndarray
+    rate_under_fit: np.ndarray
     rate_top_lo: np.ndarray
     rate_top_hi: np.ndarray
     rate_under_lo: np.ndarray
@@ -323,11 +348,19 @@ class LossRates:
     MAP_NAMES = ("loss", "censored", "loss_top", "loss_under", "growth", "significant",
                  "repaired", "repair_record", "crossed", "rate_short_top", "rate_short_under",
                  "rate_long_top", "rate_long_under", "rate_long_bound", "rate_top", "rate_under",
-                 "rate_top_lo", "rate_top_hi", "rate_under_lo", "rate_under_hi")
+                 "rate_top_fit", "rate_under_fit", "rate_top_lo", "rate_top_hi", "rate_under_lo",
+                 "rate_under_hi")
 
     def maps(self) -> dict:
         """All maps by name (for results.h5)."""
         return {name: getattr(self, name) for name in self.MAP_NAMES}
+
+    def zone_inputs(self) -> "ZoneRateInputs":
+        """The maps :func:`zone_max_rate_bounds` (and ``assess.assess_zones``) need."""
+        return ZoneRateInputs(top_fit=self.rate_top_fit, top_lo=self.rate_top_lo,
+                              top_hi=self.rate_top_hi, under_fit=self.rate_under_fit,
+                              under_lo=self.rate_under_lo, under_hi=self.rate_under_hi,
+                              sigma=self.rate_sigma_map())
 
     def rate_sigma_map(self) -> np.ndarray:
         """One-σ noise of each cell's governing rate, float32 [mm/y]: √(σ_old² + σ_new²)/Δt
@@ -473,14 +506,19 @@ def compute_rates(new: FloorScan, old_on_new: FloorScan | None, side: np.ndarray
         governing = options.governing
     rate_top, rate_under = _governing(governing, short.rate_top, short.rate_under,
                                       long.rate_top, long.rate_under)
+    if short.fit_top is short.rate_top:
+        fit_top, fit_under = rate_top, rate_under
+    else:
+        fit_top, fit_under = _governing(governing, short.fit_top, short.fit_under,
+                                        long.rate_top, long.rate_under)
     if old_on_new is not None:
         # excluded cells (repaired/misaligned, not reset by a record) carry no rate at all
         excluded = short.repaired & ~short.after
-        rate_top[excluded] = np.nan
-        rate_under[excluded] = np.nan
+        for m in {id(a): a for a in (rate_top, rate_under, fit_top, fit_under)}.values():
+            m[excluded] = np.nan
     bounds = rate_bounds(new, old_on_new, layers, side, short=short, rate_top=rate_top,
                          rate_under=rate_under, governing=governing, sigma_new=sigma_new,
-                         k=options.interval_k)
+                         k=options.interval_k, fit_top=fit_top, fit_under=fit_under)
     counts = {
         "cells": int(new.thickness.size),
         "scanned": int(np.count_nonzero(np.isfinite(new.thickness))),
@@ -499,7 +537,7 @@ def compute_rates(new: FloorScan, old_on_new: FloorScan | None, side: np.ndarray
         rate_short_top=short.rate_top, rate_short_under=short.rate_under,
         rate_long_top=long.rate_top, rate_long_under=long.rate_under,
         rate_long_bound=long.bound, rate_top=rate_top, rate_under=rate_under,
-        rate_top_lo=bounds[0], rate_top_hi=bounds[1], rate_under_lo=bounds[2],
+        rate_top_fit=fit_top, rate_under_fit=fit_under, rate_top_lo=bounds[0], rate_top_hi=bounds[1], rate_under_lo=bounds[2],
         rate_under_hi=bounds[3],
         growth_sigma=short.g_sig, rate_sigma=short.r_sig, sigma_old=short.sigma_old,
         sigma_new=sigma_new, k_sigma=float(options.k_sigma), dt_years=short.dt,
@@ -573,6 +611,8 @@ class _ShortTerm:
     after: np.ndarray
     rate_top: np.ndarray
     rate_under: np.ndarray
+    fit_top: np.ndarray  # the same with the "linear" crossed estimate
+    fit_under: np.ndarray
     old_lo: np.ndarray | None  # older loss interval on the compared cells [mm]
     old_hi: np.ndarray | None
     dt: float
@@ -586,9 +626,10 @@ class _ShortTerm:
     def none(cls, shape, record):
         """No older scan: no short-term rates."""
         nothing = np.zeros(shape, dtype=bool)
+        rt, ru = _nan_map(shape), _nan_map(shape)
         return cls(growth=_nan_map(shape), significant=nothing, crossed=nothing.copy(),
-                   repaired=record.copy(), after=nothing.copy(), rate_top=_nan_map(shape),
-                   rate_under=_nan_map(shape), old_lo=None, old_hi=None, dt=math.nan,
+                   repaired=record.copy(), after=nothing.copy(), rate_top=rt,
+                   rate_under=ru, fit_top=rt, fit_under=ru, old_lo=None, old_hi=None, dt=math.nan,
                    sigma_old=math.nan, g_sig=math.nan, r_sig=math.nan, n_rep_mis=0, n_compared=0)
 
 
@@ -625,6 +666,10 @@ def _short_term(new: FloorScan, old_on_new: FloorScan, layers: LossLayers, side,
             old_est = _crossed_old_loss(loss, old_loss, crossed, float(thr_old),
                                         options.crossed, age_ratio)
             growth[crossed] = loss[crossed] - old_est
+            if options.crossed != "linear":
+                old_est = _crossed_old_loss(loss, old_loss, crossed, float(thr_old), "linear",
+                                            age_ratio)
+            fit_change = loss[crossed] - old_est
             old_lo[crossed] = 0
             old_hi[crossed] = _older_loss_cap(loss[crossed], float(thr_old), age_ratio)
             del old_est
@@ -658,10 +703,19 @@ def _short_term(new: FloorScan, old_on_new: FloorScan, layers: LossLayers, side,
         growth[m] = g
         significant[m] = (g > np.float32(k * sigma_new)) & ~censored[m]
         rate[m] = np.where(significant[m], g, zero) / np.float32(r_dt) if r_dt > 0 else 0
+    fit = rate
+    if crossed.any():
+        fit = rate.copy()
+        keep = ~(after | repaired)[crossed]
+        vals = np.where(fit_change > g32, fit_change, zero) * np.float32(1.0 / dt)
+        idx = np.flatnonzero(crossed)[keep]
+        fit.reshape(-1)[idx] = vals[keep]
+        del fit_change, vals, idx, keep
     repaired |= after
     frac_top = _top_fraction(layers.loss_top, loss, side)
     return _ShortTerm(growth=growth, significant=significant, crossed=crossed, repaired=repaired,
                       after=after, rate_top=rate * frac_top, rate_under=rate * (1 - frac_top),
+                      fit_top=fit * frac_top, fit_under=fit * (1 - frac_top),
                       old_lo=old_lo, old_hi=old_hi, dt=dt, sigma_old=sigma_old, g_sig=g_sig,
                       r_sig=r_sig, n_rep_mis=n_rep_mis,
                       n_compared=int(np.count_nonzero(np.isfinite(growth))))
@@ -695,7 +749,8 @@ def _older_loss_cap(loss_new, thr_old: float, age_ratio: float | None) -> np.nda
 
 
 def rate_bounds(new: FloorScan, old_on_new: FloorScan | None, layers: LossLayers, side, *,
-                short, rate_top, rate_under, governing: str, sigma_new: float, k: float):
+                short, rate_top, rate_under, governing: str, sigma_new: float, k: float,
+                fit_top=None, fit_under=None):
     """Per-cell interval of the governing rate of each side.
 
     Parameters
@@ -705,6 +760,7 @@ def rate_bounds(new: FloorScan, old_on_new: FloorScan | None, layers: LossLayers
     side : resolved int8 side map. [-]
     short : the short-term part computed by :func:`compute_rates` (older-loss bounds). [-]
     rate_top, rate_under : governing point rates (NaN cells stay NaN). [mm/y]
+    fit_top, fit_under : other estimates that must lie inside the interval too. [mm/y]
     governing : ``"max"``, ``"short"`` or ``"long"``. [-]
     sigma_new : thickness σ of the newer scan. [mm]
     k : coverage factor of the noise term (1.645: each side of a 90 % interval). [-]
@@ -761,14 +817,16 @@ def rate_bounds(new: FloorScan, old_on_new: FloorScan | None, layers: LossLayers
         return tuple(_nan_map(shape) for _ in range(4))
     frac_top = _top_fraction(layers.loss_top, loss, side)
     out = []
-    for point, frac in ((rate_top, frac_top), (rate_under, 1 - frac_top)):
+    for point, fit, frac in ((rate_top, fit_top, frac_top), (rate_under, fit_under, 1 - frac_top)):
         side_lo = lo * frac
         # loss below the threshold may be on either face: a censored cell's upper end
         # is the whole cell's on both sides
         side_hi = np.where(cens, hi, hi * frac)
         # the point always lies inside its interval (records, the crossed-cell estimate)
-        np.fmin(side_lo, point, out=side_lo)
-        np.fmax(side_hi, point, out=side_hi)
+        for est in (point, fit):
+            if est is not None:
+                np.fmin(side_lo, est, out=side_lo)
+                np.fmax(side_hi, est, out=side_hi)
         nan = np.isnan(point)
         side_lo[nan] = np.nan
         side_hi[nan] = np.nan

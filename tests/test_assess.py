@@ -573,6 +573,8 @@ def test_recommend_interval_least_bound_rounded_down():
 
 
 def test_zone_rate_interval_columns_and_eva_fallback_uses_upper_ends():
+    from scananalyse.rates import ZoneRateInputs
+
     # one underside pit at 0.5 mm/y whose cells carry the interval [0.4, 0.7] mm/y, noise
     # σ 0.01 mm/y; the rest 0.008 mm/y with [0.0, 0.02]
     zm, t, side, rt, ru = base_floor()
@@ -583,8 +585,9 @@ def test_zone_rate_interval_columns_and_eva_fallback_uses_upper_ends():
     hi = np.where(pit, 0.7, 0.02).astype(np.float32)
     zeros = np.zeros_like(rt)
     df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
-                      meta=make_meta(), rules=RULES, rate_top_lo=zeros, rate_top_hi=zeros,
-                      rate_under_lo=lo, rate_under_hi=hi, rate_sigma=0.01,
+                      meta=make_meta(), rules=RULES,
+                      zone_rates=ZoneRateInputs(top_fit=rt, top_lo=zeros, top_hi=zeros, under_fit=ru,
+                                                under_lo=lo, under_hi=hi, sigma=0.01),
                       extremes={z: {"depth_eva_mm": 0.3, "depth_eva_upper_mm": 0.4} for z in zm.names})
     r = row(df, "interior")
     n_pit = int(np.count_nonzero(pit & (zm.labels == zm.names.index("interior"))))
