@@ -60,13 +60,17 @@ def _filled(lr, new, oon):
         from scananalyse import pipeline
 
         fill_fn = pipeline._fill_uncovered_rates
+    before = lr
     lr, _n = fill_fn(lr, new, oon)
-    return dataclasses.replace(lr, rate_top_hi=np.fmax(lr.rate_top_hi, lr.rate_top),
-                               rate_under_hi=np.fmax(lr.rate_under_hi, lr.rate_under),
-                               rate_top_lo=np.fmin(lr.rate_top_lo, lr.rate_top),
-                               rate_under_lo=np.fmin(lr.rate_under_lo, lr.rate_under),
-                               rate_top_fit=np.fmax(lr.rate_top_fit, lr.rate_top),
-                               rate_under_fit=np.fmax(lr.rate_under_fit, lr.rate_under))
+    changes = {}
+    for side in ("top", "under"):
+        point = getattr(lr, f"rate_{side}")
+        filled = ~(point == getattr(before, f"rate_{side}")) & np.isfinite(point)
+        for end, op in (("hi", np.fmax), ("lo", np.fmin), ("fit", np.fmax)):
+            m = getattr(lr, f"rate_{side}_{end}").copy()
+            m[filled] = op(m[filled], point[filled])
+            changes[f"rate_{side}_{end}"] = m
+    return dataclasses.replace(lr, **changes)
 
 
 def evaluate(seed: int, floor: str = "young", *, fill: bool = True, truth: str = "rate") -> list[dict]:

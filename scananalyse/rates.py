@@ -114,9 +114,8 @@ class RateOptions:
         older loss sat near that bound; this estimate always gives
         ``LossRates.rate_*_fit``, the zone-maximum input); ``"profile"`` (default) the same
         with half the threshold in regions with no reported older loss (error at most
-        ±threshold/2; it does not put the older loss of a pit that is new since the older
-        scan near the threshold, so the point rates that the co-located life uses stay on
-        the conservative side);
+        ±threshold/2), the point rate then being the faster of this and the ``"linear"``
+        one, so the rates the co-located life uses are the conservative side of the two;
         ``"upper"`` 0 (the measured change, the conservative bound), ``"mid"`` half the
         threshold, ``"lower"`` the threshold. [-]
     interval_k : multiple of the rate's noise σ on each side of a cell's rate interval
@@ -710,6 +709,9 @@ def _short_term(new: FloorScan, old_on_new: FloorScan, layers: LossLayers, side,
         vals = np.where(fit_change > g32, fit_change, zero) * np.float32(1.0 / dt)
         idx = np.flatnonzero(crossed)[keep]
         fit.reshape(-1)[idx] = vals[keep]
+        if options.crossed == "profile":
+            # the point takes the faster of the two estimates (the shorter life)
+            rate.reshape(-1)[idx] = np.fmax(rate.reshape(-1)[idx], vals[keep])
         del fit_change, vals, idx, keep
     repaired |= after
     frac_top = _top_fraction(layers.loss_top, loss, side)

@@ -201,7 +201,9 @@ def test_crossed_linear_bound_and_floor_share():
     assert r.rate_short_under[0, 1] == pytest.approx((1.6 - cap / 2) / dt_y, rel=1e-4)
     assert r.rate_short_under[0, 4] == pytest.approx((2.5 - 1.0) / dt_y, rel=1e-4)
     np.testing.assert_allclose(fit.rate_under_fit, r.rate_under, rtol=1e-6)
-    assert fit.rate_short_under[0, 1] == pytest.approx((1.6 - 0.5) / dt_y, rel=1e-4)  # half thr
+    # the default point takes the faster of half the threshold (1.1 mm) and this (1.2 mm)
+    assert fit.rate_short_under[0, 1] == pytest.approx((1.6 - cap / 2) / dt_y, rel=1e-4)
+    assert fit.rate_short_under[0, 4] == pytest.approx((2.5 - 0.5) / dt_y, rel=1e-4)
     # the cell's interval: older loss in [0, 0.8] mm, noise ±1.645·√(0.1² + 0.1²) mm
     noise = 1.6448536 * math.hypot(0.1, 0.1)
     assert r.rate_under_hi[0, 1] == pytest.approx((1.6 + noise) / dt_y, rel=1e-4)
