@@ -41,6 +41,7 @@ __all__ = [
     "mrt_map",
     "add_years",
     "assess_zones",
+    "recommend_interval",
     "ZONE_COLUMNS",
     "BOUND_NAMES",
 ]
@@ -462,18 +463,43 @@ def _attr(obj, name):
     return None if math.isnan(v) else v
 
 
+def recommend_interval(*, code: float, local: float, eva: float, initial: float, cap: float,
+                       rules) -> tuple[float, str]:
+    """The recommended interval: the least of the bounds, never below 0, rounded down.
+
+    Parameters
+    ----------
+    code : code-formula interval (:func:`code_interval`), NaN = not known. [y]
+    local : co-located life of the zone, NaN = not known. [y]
+    eva : extreme-value life of the zone, NaN = not known. [y]
+    initial : initial interval when no rates are known, else NaN. [y]
+    cap : the interval cap (20 or 30 y). [y]
+    rules : :class:`~scananalyse.rules.RuleSet` (``round_interval``). [-]
+
+    Returns
+    -------
+    (interval, limiting) : the interval [y], rounded DOWN to the rule set's step, and the
+    name of the bound that governs (first of :data:`BOUND_NAMES` on a tie).
+    """
+    bounds = {"code": code, "local": local, "eva": eva, "initial": initial, "cap": cap}
+    valid = {b: float(v) for b, v in bounds.items() if not math.isnan(v)}
+    best = min(valid.values())
+    limiting = next(b for b in BOUND_NAMES if b in valid and valid[b] == best)
+    return rules.round_interval(max(best, 0.0)), limiting
+
+
 def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
                  options: AssessOptions | None = None, extremes: dict | None = None,
                  pitch_mm: float | None = None, rate_short_available: bool = True,
-                 life_map=None) -> pd.DataFrame:
+                 zone_rates=None) -> pd.DataFrame:
     """Assess every zone: code formula, co-located and extreme-value lives, recommendation.
 
     Parameters
     ----------
     thickness : remaining thickness on the new scan's grid, NaN = not scanned. [mm]
     side : int8 side layer (0 unknown, 1 top, 2 under) on the grid, or None (all unknown).
-    rate_top : governing top-side rate map, or None when no rates are known. [mm/y]
-    rate_under : governing underside rate map, or None when no rates are known. [mm/y]
+    rate_top : governing top-side point rate map, or None when no rates are known. [mm/y]
+    rate_under : governing underside point rate map, or None when no rates are known. [mm/y]
     zones : :class:`~scananalyse.zones.ZoneMap` on the same grid.
     meta : :class:`~scananalyse.scan.ScanMeta` of the new scan (nominal, method,
         threshold, installed, inspected).
@@ -485,15 +511,19 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     pitch_mm : grid pitch, checked against the zone map if given. [mm]
     rate_short_available : False for a single inspection (long-term rates only):
         every zone gets ``no-short-term-rates``.
-    life_map : the :func:`local_life_map` of these maps with the zones' MRT, when the
-        caller already has it (computed here if None). [y]
+    zone_rates : :class:`~scananalyse.rates.ZoneRateInputs` (``LossRates.zone_inputs()``):
+        the per-cell selection-aware estimates, interval ends and noise that give the zone
+        maxima with their 90 % interval; None = the plain largest point rate, no interval.
 
     Returns
     -------
     DataFrame, one row per zone: the :data:`ZONE_COLUMNS` first, then ``kind``,
     ``n_scanned``, ``rtbc_mm``, ``rtip_mm``, ``t_used_upr_mm``, ``stpr_mm_y``,
-    ``upr_mm_y``, ``rate_eva_mm_y``, ``rate_eva_source``, ``life_eva_y``,
-    ``initial_interval_y``, ``cap_y``, ``notes``.
+    ``upr_mm_y``, ``rate_top_max_lo_mm_y``, ``rate_top_max_hi_mm_y``,
+    ``rate_under_max_lo_mm_y``, ``rate_under_max_hi_mm_y``, ``rate_top_max_raw_mm_y``,
+    ``rate_under_max_raw_mm_y``, ``life_local_short_y``, ``life_local_fit_y``,
+    ``rate_eva_mm_y``,
+    ``rate_eva_source``, ``life_eva_y``, ``initial_interval_y``, ``cap_y``, ``notes``.
 
     Notes
     -----
@@ -502,20 +532,29 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
       zone has none.  The code formula (:func:`code_interval`) runs on these reported
       thicknesses with age-based rates, uncapped; NaN with flag ``no-age`` if the scan
       has no ``installed`` date.
-    - ``life_local_y`` is the least of :func:`local_life_map` over the zone.
+    - ``rate_top_max_mm_y`` / ``rate_under_max_mm_y`` are the point estimates of the
+      zone's true maximum rate per side (:func:`~scananalyse.rates.zone_max_rate_bounds`
+      on ``zone_rates``' selection-aware maps, the winner's curse of the largest of many
+      noisy cells taken off), with the 90 % interval in ``rate_*_max_lo_mm_y`` /
+      ``rate_*_max_hi_mm_y``; the plain largest point rate is ``rate_*_max_raw_mm_y``.
+      Without ``zone_rates`` the point is the plain largest and the interval NaN.
+    - ``life_local_y`` is the least of :func:`local_life_map` over the zone from the
+      point rates; ``life_local_short_y`` the same from each cell's upper rate (the
+      short end of the co-located life) and ``life_local_fit_y`` from the
+      selection-aware estimates (``zone_rates``' ``*_fit``); both reported, not used
+      by the recommendation (docs/assessment.md §4a).
     - ``life_eva_y`` = (t0 − d − MRT)/rate_eva (:func:`eva_life`), d the extremes'
       ``depth_pred_upper_mm`` (predictive bound) when given, else ``depth_eva_upper_mm``
       (the value used is the column ``depth_eva_life_mm``);
-      rate_eva is the extremes' ``rate_eva_mm_y`` or, when that is missing, the
-      zone's ``rate_top_max_mm_y + rate_under_max_mm_y`` (``rate_eva_source`` says
-      which; flag ``eva-rate-assumed``).
+      rate_eva is the extremes' ``rate_eva_mm_y`` or, when that is missing, the sum of
+      the zone's upper ends ``rate_top_max_hi_mm_y + rate_under_max_hi_mm_y`` (the point
+      estimates when there are no upper ends; ``rate_eva_source`` says which; flag
+      ``eva-rate-assumed``).
     - With no rate maps at all, the initial-interval rules apply
       (:meth:`RuleSet.initial_interval_years`, flag ``initial-interval``).
-    - ``interval_recommended_y`` = the least of the code interval, life_local,
-      life_eva, the initial interval (when it applies) and the cap (20/30 y), NaN
-      bounds skipped, never below 0, rounded DOWN to ``interval_step_y``;
-      ``limiting`` names the bound that governs (first of :data:`BOUND_NAMES` on a
-      tie).  ``next_due`` = inspected + recommended (ISO date; empty when NaN).
+    - ``interval_recommended_y`` = :func:`recommend_interval` of the code interval,
+      life_local, life_eva, the initial interval (when it applies) and the cap.
+      ``next_due`` = inspected + recommended (ISO date; empty when NaN).
     - ``inf`` means no measurable loss rate (written ``inf`` in CSV).
     - Flags (``;``-joined): ``no-data``, ``below-mrt``, ``critical-zone-below-min``,
       ``code-exceeds-local``, ``code-exceeds-eva``, ``low-coverage``,
@@ -524,37 +563,62 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
       ``no-mfl-threshold``.
     """
     options = options if options is not None else AssessOptions()
+    t, side, rt, ru = _checked_maps(thickness, side, rate_top, rate_under, zones, pitch_mm)
+    t0 = _num(meta.nominal, "nominal", positive=True)
+    age = meta.age_years
+    if age is not None and not age > 0:
+        raise InputError(f"scan metadata: field 'installed': {meta.installed} is not before "
+                         f"the inspection date {meta.inspected}")
+    z = _zone_reductions(t, side, rt, ru, zones, rules, options, t0=t0,
+                         zone_rates=zone_rates)
+    has_rates = rt is not None
+    ctx = _Context(
+        t0=t0, age=age, meta=meta, rules=rules, options=options, extremes=extremes or {},
+        has_rates=has_rates, rate_short_available=rate_short_available,
+        cap=rules.interval_cap_years(options.release_prevention_barrier),
+        initial=rules.initial_interval_years(
+            frp_lining=options.reinforced_lining,
+            thin_film_coating=options.coated and not options.reinforced_lining,
+            cp_effective=options.cp_effective,
+            release_prevention_barrier=options.release_prevention_barrier,
+            corrosion_allowance_mm=options.corrosion_allowance_mm),
+        cz_min=rules.critical_zone_min_mm(t0, options.shell_tmin_mm),
+        min_cov=rules.v("min_coverage_pct"))
+    rows = [_zone_row(k, name, zones.kinds[k], z, ctx) for k, name in enumerate(zones.names)]
+    df = pd.DataFrame(rows)
+    extra = [c for c in df.columns if c not in ZONE_COLUMNS]
+    return df[ZONE_COLUMNS + extra]
+
+
+def _checked_maps(thickness, side, rate_top, rate_under, zones, pitch_mm):
+    """The input maps as arrays of the zone grid's shape (rates None when none given)."""
     t = np.asarray(thickness, dtype=np.float32)
     if t.shape != zones.shape:
         raise ValueError(f"thickness shape {t.shape} differs from the zone grid {zones.shape}")
     if pitch_mm is not None and abs(float(pitch_mm) - zones.pitch) > 1e-6 * zones.pitch:
         raise InputError(f"assessment: field 'pitch_mm': {pitch_mm!r} differs from the zone "
                          f"grid pitch {zones.pitch:g} mm")
-    t0 = _num(meta.nominal, "nominal", positive=True)
-    if side is None:
-        side = np.zeros(t.shape, dtype=np.int8)
-    side = np.asarray(side)
+    side = np.zeros(t.shape, dtype=np.int8) if side is None else np.asarray(side)
     if side.shape != t.shape:
         raise ValueError(f"side shape {side.shape} differs from the thickness {t.shape}")
-    has_rates = not (rate_top is None and rate_under is None)
-    if has_rates:
-        rt = np.zeros(t.shape, np.float32) if rate_top is None else np.asarray(rate_top, np.float32)
-        ru = np.zeros(t.shape, np.float32) if rate_under is None else np.asarray(rate_under, np.float32)
-        for nm, a in (("rate_top", rt), ("rate_under", ru)):
-            if a.shape != t.shape:
-                raise ValueError(f"{nm} shape {a.shape} differs from the thickness {t.shape}")
+    if rate_top is None and rate_under is None:
+        return t, side, None, None
+    rt = np.zeros(t.shape, np.float32) if rate_top is None else np.asarray(rate_top, np.float32)
+    ru = np.zeros(t.shape, np.float32) if rate_under is None else np.asarray(rate_under, np.float32)
+    for nm, a in (("rate_top", rt), ("rate_under", ru)):
+        if a.shape != t.shape:
+            raise ValueError(f"{nm} shape {a.shape} differs from the thickness {t.shape}")
+    return t, side, rt, ru
 
-    age = meta.age_years
-    if age is not None and not age > 0:
-        raise InputError(f"scan metadata: field 'installed': {meta.installed} is not before "
-                         f"the inspection date {meta.inspected}")
-    method = meta.method or ""
-    is_mfl = method.strip().upper() == "MFL"
 
-    # --- per-zone reductions on the grid -------------------------------
+def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates) -> dict:
+    """Per-zone arrays: coverage, thinnest cells per side, co-located lives, rate maxima."""
+    from .rates import zone_max_rate_bounds
+
     # each map's zoned cells are gathered once (zone after zone) and reduced per zone there
     unk_under = options.unknown_side == "under"
     nanf = np.float32(np.nan)
+    n = len(zones.names)
     t_g = zones.gather(t)
     side_g = zones.gather(side)
     under_g = (side_g == SIDE_UNDER) | ((side_g == SIDE_UNKNOWN) & unk_under)
@@ -562,150 +626,203 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     del side_g
     scanned_g = ~np.isnan(t_g)
     n_scanned = zones.count_gathered(scanned_g)
-    coverage = zones.coverage_from_counts(n_scanned)
-    t_min = zones.reduce_gathered(t_g, np.min)
-    rtbc_z = zones.reduce_gathered(np.where(under_g, t_g, nanf), np.min)
-    rtip_z = zones.reduce_gathered(np.where(top_g, t_g, nanf), np.min)
+    out = {"n_scanned": n_scanned, "coverage": zones.coverage_from_counts(n_scanned),
+           "t_min": zones.reduce_gathered(t_g, np.min),
+           "rtbc": zones.reduce_gathered(np.where(under_g, t_g, nanf), np.min),
+           "rtip": zones.reduce_gathered(np.where(top_g, t_g, nanf), np.min),
+           "mrt": zone_mrt(zones, rules, options, t0=t0),
+           "area_m2": np.asarray(zones.areas_mm2, dtype=np.float64) / 1e6}
     del t_g, under_g, top_g
-    mrt_z = zone_mrt(zones, rules, options, t0=t0)
-    if has_rates:
-        if life_map is None or np.shape(life_map) != t.shape:
-            life_map = local_life_map(t, rt, ru, mrt_map(zones, rules, options, t0=t0))
-        life_z = zones.reduce_gathered(zones.gather(life_map), np.min)
-        rtop_z = zones.reduce_gathered(np.where(scanned_g, zones.gather(rt), nanf), np.max)
-        rund_z = zones.reduce_gathered(np.where(scanned_g, zones.gather(ru), nanf), np.max)
-    else:
-        life_z = rtop_z = rund_z = np.full(len(zones.names), np.nan)
-    cap = rules.interval_cap_years(options.release_prevention_barrier)
-    initial = rules.initial_interval_years(
-        frp_lining=options.reinforced_lining,
-        thin_film_coating=options.coated and not options.reinforced_lining,
-        cp_effective=options.cp_effective,
-        release_prevention_barrier=options.release_prevention_barrier,
-        corrosion_allowance_mm=options.corrosion_allowance_mm)
-    extremes = extremes or {}
-    cz_min = rules.critical_zone_min_mm(t0, options.shell_tmin_mm)
-    min_cov = rules.v("min_coverage_pct")
-    target = options.target_interval_years
-
-    rows = []
-    for k, name in enumerate(zones.names):
-        flags: list[str] = []
-        notes: list[str] = []
-        mrt = float(mrt_z[k])
-        row = {"zone": name, "kind": zones.kinds[k], "area_m2": zones.areas_mm2[k] / 1e6,
-               "coverage_pct": float(coverage[k]) if n_scanned[k] else 0.0,
-               "n_scanned": int(n_scanned[k]), "mrt_mm": mrt, "cap_y": cap,
-               "initial_interval_y": initial if not has_rates else math.nan}
-        nan_cols = ["t_min_mm", "depth_max_mm", "depth_eva_mm", "depth_eva_upper_mm",
-                    "rate_top_max_mm_y", "rate_under_max_mm_y", "interval_code_y",
-                    "life_local_y", "interval_recommended_y", "rtbc_mm", "rtip_mm",
-                    "t_used_upr_mm", "stpr_mm_y", "upr_mm_y", "rate_eva_mm_y", "life_eva_y"]
-        if n_scanned[k] == 0:
-            row.update({c: math.nan for c in nan_cols})
-            row.update({"next_due": "", "limiting": "", "rate_eva_source": "",
-                        "flags": "no-data", "notes": "zone not scanned"})
-            rows.append(row)
+    nan_z = np.full(n, np.nan)
+    for key in ("life", "life_short", "life_fit", "top_raw", "under_raw"):
+        out[key] = nan_z.copy()
+    for s in ("top", "under"):
+        out[s] = {"point": nan_z.copy(), "lo": nan_z.copy(), "hi": nan_z.copy()}
+    if rt is None:
+        return out
+    mrt = mrt_map(zones, rules, options, t0=t0)
+    out["life"] = zones.reduce_gathered(zones.gather(local_life_map(t, rt, ru, mrt)), np.min)
+    for s, point_map in (("top", rt), ("under", ru)):
+        out[f"{s}_raw"] = zones.reduce_gathered(np.where(scanned_g, zones.gather(point_map), nanf),
+                                                np.max)
+        if zone_rates is None:
+            out[s]["point"] = out[f"{s}_raw"]
             continue
+        fit, lo, hi = (np.asarray(getattr(zone_rates, f"{s}_{e}"), np.float32) for e in ("fit", "lo", "hi"))
+        for nm, a in (("fit", fit), ("lo", lo), ("hi", hi)):
+            if a.shape != t.shape:
+                raise ValueError(f"zone_rates.{s}_{nm} shape {a.shape} differs from the thickness {t.shape}")
+        b = zone_max_rate_bounds(np.where(np.isnan(t), nanf, fit), lo, hi, zones,
+                                 sigma_rate=zone_rates.sigma)
+        out[s] = {"point": b["point"], "lo": b["lo"], "hi": b["hi"]}
+    if zone_rates is not None:
+        for key, a, b in (("life_short", zone_rates.top_hi, zone_rates.under_hi),
+                          ("life_fit", zone_rates.top_fit, zone_rates.under_fit)):
+            life = local_life_map(t, np.asarray(a, np.float32), np.asarray(b, np.float32), mrt)
+            out[key] = zones.reduce_gathered(zones.gather(life), np.min)
+    return out
 
-        tmin = float(t_min[k])
-        rtbc = float(rtbc_z[k]) if not math.isnan(rtbc_z[k]) else t0
-        rtip = float(rtip_z[k]) if not math.isnan(rtip_z[k]) else t0
-        row.update({"t_min_mm": tmin, "depth_max_mm": max(t0 - tmin, 0.0),
-                    "rtbc_mm": rtbc, "rtip_mm": rtip,
-                    "rate_top_max_mm_y": float(rtop_z[k]), "rate_under_max_mm_y": float(rund_z[k]),
-                    "life_local_y": float(life_z[k])})
 
-        # code formula
-        if age is None:
-            code = math.nan
-            row.update({"t_used_upr_mm": math.nan, "stpr_mm_y": math.nan, "upr_mm_y": math.nan})
-            flags.append("no-age")
-        else:
-            cr = code_interval(t0=t0, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=age,
-                               method=method, threshold=meta.threshold,
-                               coated=options.coated or options.reinforced_lining,
-                               coating_life_years=options.coating_life_years,
-                               cp_effective=options.cp_effective)
-            code = cr.interval_y
-            row.update({"t_used_upr_mm": cr.t_used_upr, "stpr_mm_y": cr.stpr, "upr_mm_y": cr.upr})
-            notes.extend(cr.notes)
-            if is_mfl and meta.threshold is None:
-                flags.append("no-mfl-threshold")
-        row["interval_code_y"] = code
+@dataclass(frozen=True)
+class _Context:
+    """What every zone row needs besides its own reductions."""
 
-        # extreme-value life
-        ex = extremes.get(name)
-        d_eva = _attr(ex, "depth_eva_mm")
-        d_up = _attr(ex, "depth_eva_upper_mm")
-        if d_up is None:
-            d_up = d_eva
-        r_eva = _attr(ex, "rate_eva_mm_y")
-        # The life uses the predictive upper bound of the deepest loss over the zone when the
-        # extremes give one (parameter uncertainty and the spread of the maximum itself), else
-        # the upper bound of the return level.  The return level's own bound lies below the
-        # true deepest pit in about a third of synthetic seeds (docs/extremes.md).
-        d_pred = _attr(ex, "depth_pred_upper_mm")
-        d_life = d_pred if (d_pred is not None and not math.isnan(d_pred)) else d_up
-        if ex is None or d_up is None:
-            life_eva = math.nan
-            r_src = ""
-            flags.append("no-eva")
-        else:
-            r_src = "extremes"
-            if r_eva is None:
-                r_eva = float(np.nansum([rtop_z[k], rund_z[k]])) if has_rates else math.nan
-                r_src = "zone-max-sum"
-                flags.append("eva-rate-assumed")
-            life_eva = eva_life(t0=t0, depth_upper=d_life, mrt=mrt, rate=r_eva)
-            life_dr = life_eva
-            direct = _attr(ex, "life_eva_y")
-            if direct is not None and not math.isnan(direct):
-                # The caller gives the extreme-value life itself (block minima of the
-                # co-located life); the deepest-pit-with-fastest-rate figure stays for
-                # reference in ``life_eva_depth_rate_y``.
-                life_eva = max(float(direct), 0.0)
-                r_src = "life-blocks"
-            row["life_eva_depth_rate_y"] = life_dr
-            if t0 - d_life < mrt:
-                flags.append("eva-below-mrt")
-        row.update({"depth_eva_mm": d_eva if d_eva is not None else math.nan,
-                    "depth_eva_upper_mm": d_up if d_up is not None else math.nan,
-                    "rate_eva_mm_y": r_eva if r_eva is not None else math.nan,
-                    "depth_eva_life_mm": d_life if d_life is not None else math.nan,
-                    "rate_eva_source": r_src, "life_eva_y": life_eva})
+    t0: float
+    age: float | None
+    meta: object
+    rules: object
+    options: AssessOptions
+    extremes: dict
+    has_rates: bool
+    rate_short_available: bool
+    cap: float
+    initial: float
+    cz_min: float
+    min_cov: float
 
-        # recommendation
-        bounds = {"code": code, "local": row["life_local_y"], "eva": life_eva,
-                  "initial": initial if not has_rates else math.nan, "cap": cap}
-        valid = {b: v for b, v in bounds.items() if not math.isnan(v)}
-        best = min(valid.values())
-        limiting = next(b for b in BOUND_NAMES if b in valid and valid[b] == best)
-        rec = rules.round_interval(max(best, 0.0))
-        row.update({"interval_recommended_y": rec, "limiting": limiting,
-                    "next_due": add_years(meta.inspected, rec).isoformat()})
 
-        # flags
-        if tmin < mrt:
-            flags.append("below-mrt")
-        if zones.kinds[k] == "critical" and tmin < cz_min:
-            flags.append("critical-zone-below-min")
-        if not math.isnan(code) and not math.isnan(row["life_local_y"]) and code > row["life_local_y"]:
-            flags.append("code-exceeds-local")
-        if not math.isnan(code) and not math.isnan(life_eva) and code > life_eva:
-            flags.append("code-exceeds-eva")
-        if row["coverage_pct"] < min_cov:
-            flags.append("low-coverage")
-        if target is not None and rec < target:
-            flags.append("target-not-reached")
-        if not rate_short_available:
-            flags.append("no-short-term-rates")
-        if not has_rates:
-            flags.append("initial-interval")
-        row["flags"] = ";".join(flags)
-        row["notes"] = "; ".join(notes)
-        rows.append(row)
+_NAN_COLS = ("t_min_mm", "depth_max_mm", "depth_eva_mm", "depth_eva_upper_mm",
+             "rate_top_max_mm_y", "rate_under_max_mm_y", "interval_code_y",
+             "life_local_y", "interval_recommended_y", "rtbc_mm", "rtip_mm",
+             "t_used_upr_mm", "stpr_mm_y", "upr_mm_y", "rate_top_max_lo_mm_y",
+             "rate_top_max_hi_mm_y", "rate_under_max_lo_mm_y", "rate_under_max_hi_mm_y",
+             "rate_top_max_raw_mm_y", "rate_under_max_raw_mm_y", "life_local_short_y",
+             "life_local_fit_y",
+             "rate_eva_mm_y", "life_eva_y")
 
-    df = pd.DataFrame(rows)
-    extra = [c for c in df.columns if c not in ZONE_COLUMNS]
-    return df[ZONE_COLUMNS + extra]
+
+def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
+    """One zones.csv row: code formula, lives, recommendation and flags of zone ``k``."""
+    mrt = float(z["mrt"][k])
+    row = {"zone": name, "kind": kind, "area_m2": float(z["area_m2"][k]),
+           "coverage_pct": float(z["coverage"][k]) if z["n_scanned"][k] else 0.0,
+           "n_scanned": int(z["n_scanned"][k]), "mrt_mm": mrt, "cap_y": c.cap,
+           "initial_interval_y": c.initial if not c.has_rates else math.nan}
+    if z["n_scanned"][k] == 0:
+        row.update({col: math.nan for col in _NAN_COLS})
+        row.update({"next_due": "", "limiting": "", "rate_eva_source": "",
+                    "flags": "no-data", "notes": "zone not scanned"})
+        return row
+    flags: list[str] = []
+    notes: list[str] = []
+    t0 = c.t0
+    tmin = float(z["t_min"][k])
+    rtbc = float(z["rtbc"][k]) if not math.isnan(z["rtbc"][k]) else t0
+    rtip = float(z["rtip"][k]) if not math.isnan(z["rtip"][k]) else t0
+    row.update({"t_min_mm": tmin, "depth_max_mm": max(t0 - tmin, 0.0), "rtbc_mm": rtbc,
+                "rtip_mm": rtip, "life_local_y": float(z["life"][k]),
+                "life_local_short_y": float(z["life_short"][k]),
+                "life_local_fit_y": float(z["life_fit"][k])})
+    for s in ("top", "under"):
+        row.update({f"rate_{s}_max_mm_y": float(z[s]["point"][k]),
+                    f"rate_{s}_max_lo_mm_y": float(z[s]["lo"][k]),
+                    f"rate_{s}_max_hi_mm_y": float(z[s]["hi"][k]),
+                    f"rate_{s}_max_raw_mm_y": float(z[f"{s}_raw"][k])})
+    code = _code_part(row, rtbc, rtip, mrt, c, flags, notes)
+    life_eva = _eva_part(row, name, mrt, c, flags)
+    rec, limiting = recommend_interval(code=code, local=row["life_local_y"], eva=life_eva,
+                                       initial=c.initial if not c.has_rates else math.nan,
+                                       cap=c.cap, rules=c.rules)
+    row.update({"interval_recommended_y": rec, "limiting": limiting,
+                "next_due": add_years(c.meta.inspected, rec).isoformat()})
+    _flags(flags, row, kind, tmin, mrt, code, life_eva, rec, c)
+    row["flags"] = ";".join(flags)
+    row["notes"] = "; ".join(notes)
+    return row
+
+
+def _code_part(row, rtbc, rtip, mrt, c: _Context, flags, notes) -> float:
+    """The code-formula interval of a zone (exactly as the standard reads)."""
+    meta = c.meta
+    if c.age is None:
+        row.update({"t_used_upr_mm": math.nan, "stpr_mm_y": math.nan, "upr_mm_y": math.nan,
+                    "interval_code_y": math.nan})
+        flags.append("no-age")
+        return math.nan
+    method = meta.method or ""
+    cr = code_interval(t0=c.t0, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=c.age,
+                       method=method, threshold=meta.threshold,
+                       coated=c.options.coated or c.options.reinforced_lining,
+                       coating_life_years=c.options.coating_life_years,
+                       cp_effective=c.options.cp_effective)
+    row.update({"t_used_upr_mm": cr.t_used_upr, "stpr_mm_y": cr.stpr, "upr_mm_y": cr.upr,
+                "interval_code_y": cr.interval_y})
+    notes.extend(cr.notes)
+    if method.strip().upper() == "MFL" and meta.threshold is None:
+        flags.append("no-mfl-threshold")
+    return cr.interval_y
+
+
+def _eva_part(row, name, mrt, c: _Context, flags) -> float:
+    """The extreme-value life of a zone and its columns."""
+    ex = c.extremes.get(name)
+    d_eva = _attr(ex, "depth_eva_mm")
+    d_up = _attr(ex, "depth_eva_upper_mm")
+    if d_up is None:
+        d_up = d_eva
+    r_eva = _attr(ex, "rate_eva_mm_y")
+    # The life uses the predictive upper bound of the deepest loss over the zone when the
+    # extremes give one (parameter uncertainty and the spread of the maximum itself), else
+    # the upper bound of the return level.  The return level's own bound lies below the
+    # true deepest pit in about a third of synthetic seeds (docs/extremes.md).
+    d_pred = _attr(ex, "depth_pred_upper_mm")
+    d_life = d_pred if (d_pred is not None and not math.isnan(d_pred)) else d_up
+    if ex is None or d_up is None:
+        life_eva = math.nan
+        r_src = ""
+        flags.append("no-eva")
+    else:
+        r_src = "extremes"
+        if r_eva is None:
+            r_eva, r_src = _assumed_eva_rate(row, c.has_rates)
+            flags.append("eva-rate-assumed")
+        life_eva = eva_life(t0=c.t0, depth_upper=d_life, mrt=mrt, rate=r_eva)
+        life_dr = life_eva
+        direct = _attr(ex, "life_eva_y")
+        if direct is not None and not math.isnan(direct):
+            # The caller gives the extreme-value life itself (block minima of the
+            # co-located life); the deepest-pit-with-fastest-rate figure stays for
+            # reference in ``life_eva_depth_rate_y``.
+            life_eva = max(float(direct), 0.0)
+            r_src = "life-blocks"
+        row["life_eva_depth_rate_y"] = life_dr
+        if c.t0 - d_life < mrt:
+            flags.append("eva-below-mrt")
+    row.update({"depth_eva_mm": d_eva if d_eva is not None else math.nan,
+                "depth_eva_upper_mm": d_up if d_up is not None else math.nan,
+                "rate_eva_mm_y": r_eva if r_eva is not None else math.nan,
+                "depth_eva_life_mm": d_life if d_life is not None else math.nan,
+                "rate_eva_source": r_src, "life_eva_y": life_eva})
+    return life_eva
+
+
+def _assumed_eva_rate(row, has_rates: bool) -> tuple[float, str]:
+    """Rate for the extreme-value life when the extremes give none: the sum of the zone's
+    upper ends of the maximum rates (conservative), else of the point estimates."""
+    if not has_rates:
+        return math.nan, "zone-max-sum"
+    hi = [row["rate_top_max_hi_mm_y"], row["rate_under_max_hi_mm_y"]]
+    if not all(math.isnan(v) for v in hi):
+        return float(np.nansum(hi)), "zone-max-hi-sum"
+    return float(np.nansum([row["rate_top_max_mm_y"], row["rate_under_max_mm_y"]])), "zone-max-sum"
+
+
+def _flags(flags, row, kind, tmin, mrt, code, life_eva, rec, c: _Context) -> None:
+    if tmin < mrt:
+        flags.append("below-mrt")
+    if kind == "critical" and tmin < c.cz_min:
+        flags.append("critical-zone-below-min")
+    local = row["life_local_y"]
+    if not math.isnan(code) and not math.isnan(local) and code > local:
+        flags.append("code-exceeds-local")
+    if not math.isnan(code) and not math.isnan(life_eva) and code > life_eva:
+        flags.append("code-exceeds-eva")
+    if row["coverage_pct"] < c.min_cov:
+        flags.append("low-coverage")
+    target = c.options.target_interval_years
+    if target is not None and rec < target:
+        flags.append("target-not-reached")
+    if not c.rate_short_available:
+        flags.append("no-short-term-rates")
+    if not c.has_rates:
+        flags.append("initial-interval")

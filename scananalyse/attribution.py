@@ -44,6 +44,11 @@ __all__ = [
     "top_depth_map",
     "split_loss",
     "attribution_summary",
+    "parse_number",
+    "parse_date",
+    "parse_geometry",
+    "read_table",
+    "check_inside",
 ]
 
 #: Side given to loss no one attributed: the underside, because top-side pits are
@@ -106,8 +111,8 @@ class Shape:
 # shapes file
 # --------------------------------------------------------------------------
 
-def _num(text: str, path, line: int, field: str, *, positive: bool = False) -> float:
-    # the side files' shared number parsing (io/tables.py): finite, bounded, short
+def parse_number(text: str, path, line: int, field: str, *, positive: bool = False) -> float:
+    """A side file's number: finite, bounded and short (the shared parsing of io/tables.py)."""
     from .io.tables import parse_field_number
 
     return parse_field_number(text, path, line, field, positive=positive)
@@ -133,7 +138,7 @@ def _points(text: str, path, line: int, scale: float) -> tuple:
     return tuple(pts)
 
 
-def _read_table(path, fmt: str, required: tuple[str, ...], optional: tuple[str, ...]):
+def read_table(path, fmt: str, required: tuple[str, ...], optional: tuple[str, ...]):
     """Read a ``# key: value`` header plus a CSV table; yield (line, row dict), header."""
     from .io.tables import read_text_lines, shown
 
@@ -184,7 +189,7 @@ def _read_table(path, fmt: str, required: tuple[str, ...], optional: tuple[str, 
     return path, header, units, rows
 
 
-def _parse_geometry(row: dict, path, n: int, scale: float) -> dict:
+def parse_geometry(row: dict, path, n: int, scale: float) -> dict:
     kind = row["shape"].lower()
     if kind not in _SHAPE_KINDS:
         raise InputError(f"{where(path, n, 'shape')}: unknown shape {_shown(row['shape'])} "
@@ -245,7 +250,7 @@ def read_shapes(path, *, scan: FloorScan | None = None) -> list[Shape]:
     return shapes
 
 
-def _check_inside(shape: Shape, scan: FloorScan) -> None:
+def check_inside(shape: Shape, scan: FloorScan) -> None:
     gx0, gx1, gy0, gy1 = scan.extent
     sx0, sx1, sy0, sy1 = shape.bounds
     if sx1 < gx0 or sx0 > gx1 or sy1 < gy0 or sy0 > gy1:
@@ -496,7 +501,7 @@ def attribution_summary(raw_side: np.ndarray, loss: np.ndarray, *, reporting_dep
 # shared with rates.read_repairs
 # --------------------------------------------------------------------------
 
-def _parse_date(text: str, path, n: int, field: str) -> _dt.date:
+def parse_date(text: str, path, n: int, field: str) -> _dt.date:
     try:
         return _dt.date.fromisoformat(text)
     except ValueError:
@@ -507,3 +512,11 @@ def _shown(text) -> str:
     from .io.tables import shown
 
     return shown(text)
+
+
+# the shapes reader's own names for the shared helpers above
+_num = parse_number
+_read_table = read_table
+_parse_geometry = parse_geometry
+_check_inside = check_inside
+_parse_date = parse_date

@@ -171,8 +171,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                      threshold=new.meta.threshold, **fit_kw)
 
     with prog.stage("rates"):
-        lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt,
-                                 layers=layers)
+        lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
         del layers
         n_filled = 0
         if old_on_new is not None:
@@ -186,7 +185,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         if old is not None and len(ind):
             top, under = apply_indication_rates(lr.rate_top, lr.rate_under, ind_labels, ind,
                                                 unknown_side=job.default_side)
-            lr = dataclasses.replace(lr, rate_top=top, rate_under=under)
+            # an assumed rate is no measurement: it widens the cell's interval upwards
+            lr = dataclasses.replace(lr, rate_top=top, rate_under=under, rate_top_hi=np.fmax(lr.rate_top_hi, top),
+                                     rate_under_hi=np.fmax(lr.rate_under_hi, under))
             note = assumed_rate_note(ind)
             if note:
                 assumptions.append(note)
@@ -203,7 +204,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
                                     rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
                                     options=options, extremes=merge_extremes(ext_depth, ext_rate, ext_life),
-                                    pitch_mm=new.pitch, rate_short_available=old is not None, life_map=life)
+                                    pitch_mm=new.pitch, rate_short_available=old is not None,
+                                    zone_rates=lr.zone_inputs())
         table = add_eva_columns(table, ext_depth, ext_life)
 
     with prog.stage("repairs"):

@@ -1649,7 +1649,7 @@ def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_o
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
                                     extremes=merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
-                                    rate_short_available=have_old, life_map=life_rep)
+                                    rate_short_available=have_old)
     zones_rep = add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
     patches, patch_note = _own_patch_verdict(patches, checks, own_patches is not None)
     life_text = _patch_life_note(np.where(covered, life_rep, np.nan), covered, job.target_interval)

@@ -551,3 +551,64 @@ def test_recommended_never_exceeds_any_bound(seed, age, nan_frac, use_rates, coa
         gov = max(bounds[r["limiting"]], 0.0)
         assert gov - rec < step + 1e-9
         assert rec <= r["cap_y"] and r["cap_y"] == (30.0 if rpb else 20.0)
+
+
+# ---------------------------------------------------------------------------
+# (d) zone maximum rates with their interval; recommend_interval
+# ---------------------------------------------------------------------------
+def test_recommend_interval_least_bound_rounded_down():
+    # hand-worked: least of 7.3 (local), 9 (code), NaN (eva skipped), cap 20 → 7.3, rounded
+    # DOWN to the rule set's 0.5 y step → 7.0; a negative bound gives 0
+    from scananalyse.assess import recommend_interval
+
+    rec, lim = recommend_interval(code=9.0, local=7.3, eva=math.nan, initial=math.nan, cap=20.0,
+                                  rules=RULES)
+    assert (rec, lim) == (7.0, "local")
+    rec, lim = recommend_interval(code=-2.0, local=7.3, eva=5.0, initial=math.nan, cap=20.0,
+                                  rules=RULES)
+    assert (rec, lim) == (0.0, "code")
+    rec, lim = recommend_interval(code=20.0, local=25.0, eva=math.inf, initial=math.nan, cap=20.0,
+                                  rules=RULES)
+    assert (rec, lim) == (20.0, "code")  # a tie goes to the first of BOUND_NAMES
+
+
+def test_zone_rate_interval_columns_and_eva_fallback_uses_upper_ends():
+    from scananalyse.rates import ZoneRateInputs
+
+    # one underside pit at 0.5 mm/y whose cells carry the interval [0.4, 0.7] mm/y, noise
+    # σ 0.01 mm/y; the rest 0.008 mm/y with [0.0, 0.02]
+    zm, t, side, rt, ru = base_floor()
+    X, Y = coords()
+    pit = np.hypot(X - 300, Y + 200) < 80
+    ru[pit] = 0.5
+    lo = np.where(pit, 0.4, 0.0).astype(np.float32)
+    hi = np.where(pit, 0.7, 0.02).astype(np.float32)
+    zeros = np.zeros_like(rt)
+    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                      meta=make_meta(), rules=RULES,
+                      zone_rates=ZoneRateInputs(top_fit=rt, top_lo=zeros, top_hi=zeros, under_fit=ru,
+                                                under_lo=lo, under_hi=hi, sigma=0.01),
+                      extremes={z: {"depth_eva_mm": 0.3, "depth_eva_upper_mm": 0.4} for z in zm.names})
+    r = row(df, "interior")
+    n_pit = int(np.count_nonzero(pit & (zm.labels == zm.names.index("interior"))))
+    assert n_pit > 1
+    # all pit cells share 0.5 exactly (no noise in this input): the point takes off
+    # σ·E[max of n_pit normals] (Blom), the interval holds the point
+    from scananalyse.rates import expected_max_normal
+
+    assert r["rate_under_max_mm_y"] == pytest.approx(0.5 - 0.01 * expected_max_normal(n_pit), rel=1e-4)
+    assert r["rate_under_max_raw_mm_y"] == pytest.approx(0.5)
+    assert r["rate_under_max_lo_mm_y"] <= r["rate_under_max_mm_y"] <= r["rate_under_max_hi_mm_y"]
+    assert r["rate_under_max_hi_mm_y"] == pytest.approx(0.7)
+    assert r["rate_top_max_mm_y"] == 0 and r["rate_top_max_hi_mm_y"] == 0
+    # no rate from the extremes: the extreme-value life takes the upper ends (conservative)
+    assert r["rate_eva_source"] == "zone-max-hi-sum"
+    assert r["rate_eva_mm_y"] == pytest.approx(0.7)
+    # the co-located life from the upper ends is the shorter one
+    assert r["life_local_short_y"] <= r["life_local_y"]
+    # without the interval maps: the plain maximum and NaN bounds
+    df2 = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                       meta=make_meta(), rules=RULES)
+    r2 = row(df2, "interior")
+    assert r2["rate_under_max_mm_y"] == pytest.approx(0.5)
+    assert math.isnan(r2["rate_under_max_lo_mm_y"]) and math.isnan(r2["rate_under_max_hi_mm_y"])
