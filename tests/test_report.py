@@ -136,7 +136,7 @@ def build_data(*, units="mm", tank="TK-Test 1", single=False, dpi=80, seed=5):
         "interval_cap_y": [20.0, 20.0, 20.0], "interval_recommended_y": [20.0, 0.0, np.nan],
         "next_due": ["2046-05-01", "2026-05-01", ""],
         "limiting": ["cap", "code", "none"],
-        "flags": ["", "below MRT;code interval exceeds local life", f"low coverage;{HOSTILE}"]})
+        "flags": ["", "below-mrt;code-exceeds-local", f"no-data;{HOSTILE}"]})
     zr = zones.copy()
     zr.loc[1, ["t_min_mm", "interval_code_y", "life_local_y", "interval_recommended_y",
                "flags"]] = [4.2, 12.0, 11.0, 11.0, ""]
@@ -180,9 +180,9 @@ def build_data(*, units="mm", tank="TK-Test 1", single=False, dpi=80, seed=5):
                      "A change smaller than 2 σ of the two readings is not growth.",
                      "Blocks whose deepest loss is below the threshold are left-censored."],
         figures=figs, extremes={"interior": ex_sum},
-        flags_explained={"below MRT": "The thinnest cell is already below the minimum "
+        flags_explained={"below-mrt": "The thinnest cell is already below the minimum "
                                       "remaining thickness.",
-                         "code interval exceeds local life": "The code formula allows longer "
+                         "code-exceeds-local": "The code formula allows longer "
                          "than the metal at some spot supports."},
         units=units, timings={"load": 0.21, "register": 1.4, "report": 2.0},
         generated=dt.datetime(2026, 5, 2, 9, 30), single_inspection=single,
@@ -266,7 +266,7 @@ def test_sections_present_in_order(page):
     _, text = page
     ids = _parse(text).ids
     want = [sid for sid, _ in SECTIONS]
-    assert want == ["summary", "registration", "maps", "zones", "extremes", "methods",
+    assert want == ["verdict", "summary", "registration", "maps", "zones", "extremes", "methods",
                     "indications", "assumptions"]
     pos = [ids.index(s) for s in want]
     assert pos == sorted(pos)
@@ -336,11 +336,11 @@ def _zv(t, zone, qty):
 def test_nan_inf_and_units_mm(page):
     _, text = page
     t = _by_zone(_parse(text))
-    assert _zv(t, "critical", "life_local")[0] == "∞"        # no corrosion: infinite life
-    assert _zv(t, HOSTILE, "t_min")[0] == "–"                # all-unscanned zone: NaN
-    assert _zv(t, "interior", "interval_code")[0] == "−0.4"  # below MRT: negative code interval
-    assert _zv(t, "interior", "t_min")[0] == "3.30"
-    assert "mm/y" in _zv(t, "interior", "rate_top")[1]
+    assert _zv(t, "critical", "Life from each spot")[0] == "∞"  # no corrosion: infinite life
+    assert _zv(t, HOSTILE, "Thinnest reading")[0] == "–"          # all-unscanned zone: NaN
+    assert _zv(t, "interior", "Interval by the code formula")[0] == "−0.4"  # below MRT
+    assert _zv(t, "interior", "Thinnest reading")[0] == "3.30"
+    assert "mm/y" in _zv(t, "interior", "Fastest top-side rate")[1]
 
 
 def test_units_in():
@@ -348,11 +348,11 @@ def test_units_in():
     text = render_report(data)
     t = _by_zone(_parse(text))
     # 1 mpy = 0.0254 mm/y; 1 in = 25.4 mm; 1 mil = 0.0254 mm (domain.md §3, seen)
-    v, h = _zv(t, "interior", "rate_top")
+    v, h = _zv(t, "interior", "Fastest top-side rate")
     assert h.endswith("mpy") and v == "10.0"
-    v, h = _zv(t, "interior", "mrt")
+    v, h = _zv(t, "interior", "Minimum remaining thickness")
     assert h.endswith("in") and v == "0.100"
-    v, h = _zv(t, "interior", "depth_max")
+    v, h = _zv(t, "interior", "Deepest loss measured")
     assert h.endswith("mils") and v == "120"
     assert "in, mils, mpy" in text
 
@@ -367,8 +367,8 @@ def test_memory_rules_marked(page):
 def test_caution_summary_footer_and_print_css(page):
     _, text = page
     esc_caution = CAUTION.replace("'", "&#x27;")
-    summary = text[text.index('id="summary"'):text.index('id="registration"')]
-    assert esc_caution in summary
+    verdict = text[text.index('id="verdict"'):text.index('id="summary"')]
+    assert esc_caution in verdict  # the caution follows the verdicts on the first page
     footer = re.search(r'<footer class="caution-footer">(.*?)</footer>', text, re.S).group(1)
     assert esc_caution in footer
     css = re.search(r"<style>(.*?)</style>", text, re.S).group(1)
@@ -386,7 +386,7 @@ def test_flags_explained_and_indications(page):
     ind = text[text.index('id="indications"'):text.index('id="assumptions"')]
     t = [tb for tb in _parse(ind).tables][0]
     head = t[0]
-    k = next(i for i, h in enumerate(head) if h.startswith("depth_max"))
+    k = next(i for i, h in enumerate(head) if h.startswith("Deepest loss measured"))
     depths = [float(r[k].replace("−", "-")) for r in t[1:]]
     assert len(depths) == N_INDICATIONS == 25
     assert depths == sorted(depths, reverse=True)
