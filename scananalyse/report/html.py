@@ -232,7 +232,7 @@ def _cell(value, name: str, units: str) -> dict:
 
 def _head(name: str, units: str) -> dict:
     lab, unit = label_with_unit(name, units)
-    return {"label": lab, "unit": unit, "name": str(name)}
+    return {"label": lab, "unit": unit, "name": str(name), "cls": ""}
 
 
 def _table(df: pd.DataFrame | None, units: str, *, columns=None, cls="data",
@@ -243,7 +243,10 @@ def _table(df: pd.DataFrame | None, units: str, *, columns=None, cls="data",
     cols = [c for c in (columns or df.columns) if c in df.columns]
     rows = [[_cell(v, str(c), units) for c, v in zip(cols, row)]
             for row in df[cols].itertuples(index=False, name=None)]
-    return {"cls": cls, "heads": [_head(str(c), units) for c in cols], "rows": rows}
+    heads = [_head(str(c), units) for c in cols]
+    for j, h in enumerate(heads):  # a column of numbers is right-aligned, its head too
+        h["cls"] = "num" if any(r[j]["cls"] == "num" for r in rows) else ""
+    return {"cls": cls, "heads": heads, "rows": rows}
 
 
 def _kv(d: dict, units: str) -> dict:
