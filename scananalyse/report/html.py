@@ -545,7 +545,7 @@ def _zones(d: ReportData) -> dict:
                 for z in df["zone"]]
         cols = list(ZONE_SHORT_COLUMNS)
         if "interval_after_repair_y" in df:
-            cols.insert(cols.index("next_due"), "interval_after_repair_y")
+            cols.insert(cols.index("flags"), "interval_after_repair_y")
         short = _table(df, d.units, columns=cols, cls="data zonesum")
     return {
         "units_text": "mm and mm/y" if d.units == "mm" else "in, mils and mpy",

@@ -41,6 +41,7 @@ LABELS = {
     "life_eva_y": "Extreme-value life",
     "life_eva_depth_rate_y": "Extreme-value life from deepest pit and fastest rate",
     "interval_recommended_y": "Recommended interval",
+    "interval_after_repair_y": "Interval after the proposed repairs",
     "interval_cap_y": "Longest interval allowed (cap)",
     "cap_y": "Longest interval allowed (cap)",
     "initial_interval_y": "Initial interval (no rates known)",
