@@ -682,3 +682,15 @@ def test_print_css_rules(page):
     assert re.search(r"section\.major \+ section\.major \{ break-before: page", pr)
     # the verdict is the first section, so it fills the first printed page
     assert SECTIONS[0][0] == "verdict"
+
+
+def test_glossary_lists_every_page_label():
+    """docs/glossary.md maps every column name to the label the page shows, and every
+    flag to its explanation."""
+    path = os.path.join(os.path.dirname(__file__), os.pardir, "docs", "glossary.md")
+    with open(path, encoding="utf-8") as fh:
+        text = fh.read()
+    missing = [k for k, v in LABELS.items() if f"| `{k}` | {v} |" not in text]
+    assert missing == []
+    missing = [k for k, v in FLAGS_EXPLAINED.items() if f"| `{k}` | {v} |" not in text]
+    assert missing == []

@@ -161,12 +161,13 @@ FLAGS_EXPLAINED = {
                                     "plate replacement are allowed there.",
     "critical-zone-thickness": "A patch in the critical zone is thicker than the rule set "
                                "allows there.",
-    "weld-clearance": "The patch's weld is closer to another weld (seam or shell) than the "
-                      "rule set's clearance.",
+    "weld-clearance": "The patch's edge runs closer to a plate seam than the rule set's weld "
+                      "clearance.",
     "too-small": "The patch is smaller than the rule set's minimum patch size.",
-    "too-close": "The patch's edge runs closer to another patch than the weld clearance.",
-    "overlaps-without-min-size": "The patch overlaps another patch but is smaller than the "
-                                 "minimum size for overlapping patches.",
+    "too-close": "An edge of the patch runs parallel to, and closer than the weld clearance "
+                 "to, an edge of another patch.",
+    "overlaps-without-min-size": "The patch overlaps another patch or a plate seam but is "
+                                 "smaller than the rule set's minimum size for that.",
     "not-beyond-corrosion": "The patch does not extend far enough beyond the corroded area.",
 }
 
