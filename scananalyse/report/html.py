@@ -356,15 +356,6 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
         else:
             p_text = "No patch plate proposed here."
 
-        def due(row, v):
-            d = row.get("next_due") if row is not None else None
-            return f", next inspection by {d}" if isinstance(d, str) and d else ""
-
-        def limit_words(row):
-            w = row.get("limiting") if row is not None else ""
-            w = w if isinstance(w, str) else ""
-            return LIMITING_WORDS.get(w, w)
-
         below = "below-mrt" in flags
         if "no-data" in flags or math.isnan(rec):
             kind, verdict = "proveup", VERDICTS[2]
@@ -375,13 +366,13 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
             a = _qty(area, "area", units) if not math.isnan(area) else "all of it"
             hand = f"Hand UT the whole zone ({a}) and re-run the assessment with the readings."
         elif below or rec <= 0:
-            kind, verdict = "repair", VERDICTS[0 + 1]
+            kind, verdict = "repair", VERDICTS[1]
             rr = _f(r, "interval_recommended_y") if r is not None else math.nan
             still = r is not None and "below-mrt" in _flag_set(r.get("flags"))
             if r is not None and not math.isnan(rr) and rr > 0 and not still:
                 interval = (f"After the proposed repairs: inspect again within {_years(rr)}"
-                            f"{due(r, rr)}.")
-                after = f" After repair the interval is limited by {limit_words(r)}."
+                            f"{_due(r)}.")
+                after = f" After repair the interval is limited by {_limit_words(r)}."
             else:
                 interval = ("Do not return to service before repair; no interval can be "
                             "given until the zone is repaired and re-assessed.")
@@ -391,20 +382,20 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
                 limit = (f"The thinnest reading, {_qty(tmin, 'thickness', units)}, is below the "
                          f"MRT of {_qty(mrt, 'thickness', units)}.{after}")
             else:
-                limit = f"As found, the interval is 0 y, set by {limit_words(z)}.{after}"
+                limit = f"As found, the interval is 0 y, set by {_limit_words(z)}.{after}"
             hand = _hand_ut_sentence(flags, r, unscanned, units)
         elif "eva-below-mrt" in flags:
             kind, verdict = "proveup", VERDICTS[2]
             interval = (f"If the hand UT finds nothing thinner: inspect again within "
-                        f"{_years(rec)}{due(z, rec)}.")
+                        f"{_years(rec)}{_due(z)}.")
             limit = (f"Every scanned reading is above MRT, but the extreme-value estimate says "
                      f"metal nobody measured may already be below it; the interval is limited by "
-                     f"{limit_words(z)}.")
+                     f"{_limit_words(z)}.")
             hand = _hand_ut_sentence(flags, z, unscanned, units, force=True)
         else:
             kind, verdict = "ok", VERDICTS[0]
-            interval = f"Inspect again within {_years(rec)}{due(z, rec)}."
-            limit = f"The interval is limited by {limit_words(z)}."
+            interval = f"Inspect again within {_years(rec)}{_due(z)}."
+            limit = f"The interval is limited by {_limit_words(z)}."
             rr = _f(r, "interval_recommended_y") if r is not None else math.nan
             if n_p and not math.isnan(rr) and rr > rec:
                 p_text = p_text[:-1] + f"; they would lengthen the interval to {_years(rr)}."
@@ -412,6 +403,17 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
         out.append({"zone": name, "verdict": verdict, "kind": kind, "interval": interval,
                     "limit": limit, "hand_ut": hand, "patches": p_text})
     return out
+
+
+def _due(row) -> str:
+    d = row.get("next_due") if row is not None else None
+    return f", next inspection by {d}" if isinstance(d, str) and d else ""
+
+
+def _limit_words(row) -> str:
+    w = row.get("limiting") if row is not None else ""
+    w = w if isinstance(w, str) else ""
+    return LIMITING_WORDS.get(w, w)
 
 
 def _hand_ut_sentence(flags, row, unscanned, units, *, force=False) -> str:
