@@ -486,6 +486,8 @@ def test_verdict_fine_zone():
     assert v["limit"] == ("The interval is limited by the projection from each spot's own "
                           "measured rates.")
     assert v["hand_ut"] == "None beyond the usual prove-up of the indications listed."
+    assert v["patches"] == "No repair plan was made in this assessment."
+    (v,) = zone_verdicts(_one_zone(), patches=pd.DataFrame({"zone": ["other"], "area_m2": [1.0]}))
     assert v["patches"] == "No patch plate proposed here."
 
 

@@ -353,6 +353,8 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
         if n_p:
             p_text = (f"{n_p} patch plate{'s' if n_p != 1 else ''} proposed here, "
                       f"{_qty(a_p, 'area', units)} in all.")
+        elif patches is None:
+            p_text = "No repair plan was made in this assessment."
         else:
             p_text = "No patch plate proposed here."
 
