@@ -164,15 +164,22 @@ def _finalize(value):
     return Markup(esc(value))
 
 
-_ENV: Environment | None = None
+def _make_env() -> Environment:
+    return Environment(loader=PackageLoader("scananalyse.report", "templates"),
+                       autoescape=True, finalize=_finalize, undefined=StrictUndefined,
+                       trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True)
+
+
+# The environment and the compiled page template are made once, when this module is
+# imported (before a run allocates its grids), not at the first report: objects that
+# live for the whole process, made late in a run, would sit at the top of a grown heap
+# and keep glibc from returning the freed grids (pipeline._reuse_freed_memory).
+_ENV = _make_env()
+_TEMPLATE = _ENV.get_template("report.html.j2")
 
 
 def _env() -> Environment:
-    global _ENV
-    if _ENV is None:
-        _ENV = Environment(loader=PackageLoader("scananalyse.report", "templates"),
-                           autoescape=True, finalize=_finalize, undefined=StrictUndefined,
-                           trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True)
+    """The page's Jinja2 environment (autoescape on; see :func:`_finalize`)."""
     return _ENV
 
 
@@ -669,7 +676,7 @@ def render_report(data: ReportData) -> str:
         f"generated {generated.isoformat(sep=' ', timespec='minutes')}",
     ) if s)
     ctx = {sid: _BUILDERS[sid](data) for sid, _ in SECTIONS}
-    return _env().get_template("report.html.j2").render(
+    return _TEMPLATE.render(
         title=title, sub=sub, tank=tank or "tank", caution=data.caution, version=data.version,
         sections=[{"id": sid, "heading": head} for sid, head in SECTIONS],
         memory_mark=MEMORY_MARK, **ctx)
