@@ -26,7 +26,9 @@ from scipy import stats
 
 from scananalyse import CAUTION
 from scananalyse.report import ReportData, figures as F, render_report, write_report
-from scananalyse.report.html import MEMORY_MARK, N_INDICATIONS, SECTIONS
+from scananalyse.report.html import (MEMORY_MARK, N_INDICATIONS, SECTIONS, _env, esc,
+                                     zone_verdicts)
+from scananalyse.report.labels import FLAGS_EXPLAINED, LABELS, label, label_with_unit
 from scananalyse.rules import get_ruleset
 from scananalyse.synth import make_pair
 
@@ -136,10 +138,10 @@ def build_data(*, units="mm", tank="TK-Test 1", single=False, dpi=80, seed=5):
         "interval_cap_y": [20.0, 20.0, 20.0], "interval_recommended_y": [20.0, 0.0, np.nan],
         "next_due": ["2046-05-01", "2026-05-01", ""],
         "limiting": ["cap", "code", "none"],
-        "flags": ["", "below MRT;code interval exceeds local life", f"low coverage;{HOSTILE}"]})
+        "flags": ["", "below-mrt;code-exceeds-local", f"no-data;{HOSTILE}"]})
     zr = zones.copy()
     zr.loc[1, ["t_min_mm", "interval_code_y", "life_local_y", "interval_recommended_y",
-               "flags"]] = [4.2, 12.0, 11.0, 11.0, ""]
+               "next_due", "limiting", "flags"]] = [4.2, 12.0, 11.0, 11.0, "2037-05-01", "local", ""]
     ind = pd.DataFrame({"id": np.arange(1, 41), "x_mm": np.linspace(-1500, 1500, 40),
                         "y_mm": np.linspace(1200, -1200, 40),
                         "depth_max_mm": np.round(np.linspace(0.5, 4.4, 40)[::-1][
@@ -180,9 +182,9 @@ def build_data(*, units="mm", tank="TK-Test 1", single=False, dpi=80, seed=5):
                      "A change smaller than 2 σ of the two readings is not growth.",
                      "Blocks whose deepest loss is below the threshold are left-censored."],
         figures=figs, extremes={"interior": ex_sum},
-        flags_explained={"below MRT": "The thinnest cell is already below the minimum "
+        flags_explained={"below-mrt": "The thinnest cell is already below the minimum "
                                       "remaining thickness.",
-                         "code interval exceeds local life": "The code formula allows longer "
+                         "code-exceeds-local": "The code formula allows longer "
                          "than the metal at some spot supports."},
         units=units, timings={"load": 0.21, "register": 1.4, "report": 2.0},
         generated=dt.datetime(2026, 5, 2, 9, 30), single_inspection=single,
@@ -266,7 +268,7 @@ def test_sections_present_in_order(page):
     _, text = page
     ids = _parse(text).ids
     want = [sid for sid, _ in SECTIONS]
-    assert want == ["summary", "registration", "maps", "zones", "extremes", "methods",
+    assert want == ["verdict", "summary", "registration", "maps", "zones", "extremes", "methods",
                     "indications", "assumptions"]
     pos = [ids.index(s) for s in want]
     assert pos == sorted(pos)
@@ -336,11 +338,11 @@ def _zv(t, zone, qty):
 def test_nan_inf_and_units_mm(page):
     _, text = page
     t = _by_zone(_parse(text))
-    assert _zv(t, "critical", "life_local")[0] == "∞"        # no corrosion: infinite life
-    assert _zv(t, HOSTILE, "t_min")[0] == "–"                # all-unscanned zone: NaN
-    assert _zv(t, "interior", "interval_code")[0] == "−0.4"  # below MRT: negative code interval
-    assert _zv(t, "interior", "t_min")[0] == "3.30"
-    assert "mm/y" in _zv(t, "interior", "rate_top")[1]
+    assert _zv(t, "critical", "Life from each spot")[0] == "∞"  # no corrosion: infinite life
+    assert _zv(t, HOSTILE, "Thinnest reading")[0] == "–"          # all-unscanned zone: NaN
+    assert _zv(t, "interior", "Interval by the code formula")[0] == "−0.4"  # below MRT
+    assert _zv(t, "interior", "Thinnest reading")[0] == "3.30"
+    assert "mm/y" in _zv(t, "interior", "Fastest top-side rate")[1]
 
 
 def test_units_in():
@@ -348,11 +350,11 @@ def test_units_in():
     text = render_report(data)
     t = _by_zone(_parse(text))
     # 1 mpy = 0.0254 mm/y; 1 in = 25.4 mm; 1 mil = 0.0254 mm (domain.md §3, seen)
-    v, h = _zv(t, "interior", "rate_top")
+    v, h = _zv(t, "interior", "Fastest top-side rate")
     assert h.endswith("mpy") and v == "10.0"
-    v, h = _zv(t, "interior", "mrt")
+    v, h = _zv(t, "interior", "Minimum remaining thickness")
     assert h.endswith("in") and v == "0.100"
-    v, h = _zv(t, "interior", "depth_max")
+    v, h = _zv(t, "interior", "Deepest loss measured")
     assert h.endswith("mils") and v == "120"
     assert "in, mils, mpy" in text
 
@@ -367,8 +369,8 @@ def test_memory_rules_marked(page):
 def test_caution_summary_footer_and_print_css(page):
     _, text = page
     esc_caution = CAUTION.replace("'", "&#x27;")
-    summary = text[text.index('id="summary"'):text.index('id="registration"')]
-    assert esc_caution in summary
+    verdict = text[text.index('id="verdict"'):text.index('id="summary"')]
+    assert esc_caution in verdict  # the caution follows the verdicts on the first page
     footer = re.search(r'<footer class="caution-footer">(.*?)</footer>', text, re.S).group(1)
     assert esc_caution in footer
     css = re.search(r"<style>(.*?)</style>", text, re.S).group(1)
@@ -386,7 +388,7 @@ def test_flags_explained_and_indications(page):
     ind = text[text.index('id="indications"'):text.index('id="assumptions"')]
     t = [tb for tb in _parse(ind).tables][0]
     head = t[0]
-    k = next(i for i, h in enumerate(head) if h.startswith("depth_max"))
+    k = next(i for i, h in enumerate(head) if h.startswith("Deepest loss measured"))
     depths = [float(r[k].replace("−", "-")) for r in t[1:]]
     assert len(depths) == N_INDICATIONS == 25
     assert depths == sorted(depths, reverse=True)
@@ -421,14 +423,33 @@ def test_bad_figure_bytes_refused():
         render_report(data)
 
 
-def test_headless_browser_render(tmp_path, page):
-    _, text = page
+def _browser_or_skip():
+    """Path of a headless Chromium; skip when there is none, fail instead when
+    SCANANALYSE_REQUIRE_BROWSER=1 (set by .ci/run after installing Chromium)."""
     exe = shutil.which("chromium") or shutil.which("chromium-browser")
     if exe is None:
-        if os.environ.get("SCANANALYSE_NO_BROWSER") == "1":
-            pytest.skip("SCANANALYSE_NO_BROWSER=1: headless browser check skipped on request")
-        pytest.fail("chromium not found on PATH: install it (apt-get install chromium) or set "
-                    "SCANANALYSE_NO_BROWSER=1 to skip this check explicitly")
+        why = "no headless browser: chromium (or chromium-browser) not found on PATH"
+        if os.environ.get("SCANANALYSE_REQUIRE_BROWSER") == "1":
+            # CI installs Chromium and sets the variable, so the check cannot vanish there
+            pytest.fail(f"{why}, and SCANANALYSE_REQUIRE_BROWSER=1 requires it "
+                        "(apt-get install chromium)")
+        pytest.skip(f"{why} (set SCANANALYSE_REQUIRE_BROWSER=1 to make this a failure)")
+    return exe
+
+
+def test_browser_missing_skips_or_fails(monkeypatch):
+    monkeypatch.setattr(shutil, "which", lambda name: None)
+    monkeypatch.delenv("SCANANALYSE_REQUIRE_BROWSER", raising=False)
+    with pytest.raises(pytest.skip.Exception, match="chromium"):
+        _browser_or_skip()
+    monkeypatch.setenv("SCANANALYSE_REQUIRE_BROWSER", "1")
+    with pytest.raises(pytest.fail.Exception, match="SCANANALYSE_REQUIRE_BROWSER=1"):
+        _browser_or_skip()
+
+
+def test_headless_browser_render(tmp_path, page):
+    _, text = page
+    exe = _browser_or_skip()
     html_path = tmp_path / "report.html"
     html_path.write_text(text, encoding="utf-8")
     shot = tmp_path / "shot.png"
@@ -445,3 +466,233 @@ def test_headless_browser_render(tmp_path, page):
     # not blank: many distinct grey levels and real variance (text, tables, figures)
     assert arr.std() > 20
     assert len(np.unique(arr.reshape(-1, 3), axis=0)) > 200
+
+
+# ---------------------------------------------------------------------------
+# verdict first, plain labels, flag words
+# ---------------------------------------------------------------------------
+def _one_zone(**kw):
+    row = {"zone": "Z", "area_m2": 10.0, "coverage_pct": 80.0, "t_min_mm": 4.0,
+           "depth_max_mm": 2.35, "mrt_mm": 2.54, "interval_recommended_y": 8.0,
+           "next_due": "2034-05-01", "limiting": "local", "flags": ""}
+    row.update(kw)
+    return pd.DataFrame([row])
+
+
+def test_verdict_fine_zone():
+    (v,) = zone_verdicts(_one_zone())
+    assert v["verdict"] == "return to service as is" and v["kind"] == "ok"
+    assert v["interval"] == "Inspect again within 8.0 y, next inspection by 2034-05-01."
+    assert v["limit"] == ("The interval is limited by the projection from each spot's own "
+                          "measured rates.")
+    assert v["hand_ut"] == "None beyond the usual prove-up of the indications listed."
+    assert v["patches"] == "No repair plan was made in this assessment."
+    (v,) = zone_verdicts(_one_zone(), patches=pd.DataFrame({"zone": ["other"], "area_m2": [1.0]}))
+    assert v["patches"] == "No patch plate proposed here."
+
+
+def test_verdict_zone_below_mrt_with_repairs():
+    found = _one_zone(t_min_mm=1.4, interval_recommended_y=0.0, next_due="2024-05-01",
+                      limiting="code", flags="below-mrt;target-not-reached")
+    rep = _one_zone(t_min_mm=6.35, interval_recommended_y=3.5, next_due="2027-11-01",
+                    limiting="eva", flags="target-not-reached")
+    patches = pd.DataFrame({"patch": ["P1", "P2", "P3"], "zone": ["Z", "Z", "other"],
+                            "area_m2": [0.5, 0.25, 9.0]})
+    (v,) = zone_verdicts(found, rep, patches)
+    assert v["verdict"] == "repair first" and v["kind"] == "repair"
+    assert v["interval"] == ("After the proposed repairs: inspect again within 3.5 y, "
+                             "next inspection by 2027-11-01.")
+    assert v["limit"].startswith("The thinnest reading, 1.40 mm, is below the MRT of 2.54 mm.")
+    assert "After repair the interval is limited by the extreme-value life" in v["limit"]
+    # after repair the extreme-value estimate of the unscanned 20 % limits: hand UT helps
+    assert v["hand_ut"].startswith("Optional: hand UT of the 2.00 m² not scanned")
+    assert v["patches"] == "2 patch plates proposed here, 0.75 m² in all."
+    # in inches: the thickness in in, the area in ft²
+    (vi,) = zone_verdicts(found, rep, patches, units="in")
+    assert "1.40 mm" not in vi["limit"] and "0.055 in" in vi["limit"] and "0.100 in" in vi["limit"]
+    assert "8.1 ft²" in vi["patches"]  # 0.75 m² = 8.07 ft²
+    # no repaired table: no interval until repaired
+    (v2,) = zone_verdicts(found)
+    assert v2["verdict"] == "repair first"
+    assert v2["interval"].startswith("Do not return to service before repair")
+
+
+def test_verdict_zone_without_data():
+    z = _one_zone(coverage_pct=0.0, t_min_mm=np.nan, interval_recommended_y=np.nan,
+                  next_due="", limiting="", flags="no-data")
+    (v,) = zone_verdicts(z)
+    assert v["verdict"] == "prove up first (hand UT)" and v["kind"] == "proveup"
+    assert v["interval"] == "No interval can be set: the zone was not scanned."
+    assert v["hand_ut"] == ("Hand UT the whole zone (10.00 m²) and re-run the assessment "
+                            "with the readings.")
+
+
+def test_verdict_extreme_value_below_mrt():
+    z = _one_zone(interval_recommended_y=1.0, next_due="2027-05-01", limiting="eva",
+                  flags="eva-below-mrt")
+    (v,) = zone_verdicts(z)
+    assert v["verdict"] == "prove up first (hand UT)"
+    assert "may already be below" in v["limit"]
+    assert v["hand_ut"].startswith("Hand UT the 2.00 m² not scanned")
+
+
+def test_verdict_block_first_on_page(page):
+    data, text = page
+    ids = _parse(text).ids
+    assert ids.index("verdict") < ids.index("summary")
+    verdict = text[text.index('id="verdict"'):text.index('id="summary"')]
+    # one block per zone, with its verdict word, then the caution
+    assert verdict.count('class="verdictzone') == len(data.zones)
+    words = re.findall(r'<span class="verdictword">(.*?)</span>', verdict)
+    assert words == ["return to service as is", "repair first", "prove up first (hand UT)"]
+    assert "inspect again within 11.0 y, next inspection by 2037-05-01" in verdict
+    assert "Patch plates proposed for the whole floor: 2, 0.24 m² in all." in verdict
+    assert verdict.index("verdictzone") < verdict.index('class="caution"')
+    # the hostile zone name is shown escaped in the verdict heading
+    assert f"Zone {HOSTILE_ESCAPED}" in verdict
+
+
+def test_labels_mapping():
+    from scananalyse.assess import ZONE_COLUMNS
+
+    # the names the issue names, each with a plain label and its unit
+    want = {"interval_recommended_y": ("Recommended interval", "y"),
+            "rtbc_mm": ("Thinnest underside reading (RTbc)", "mm"),
+            "eva_T": ("Return period T (zone area ÷ block area)", ""),
+            "life_eva_depth_rate_y": ("Extreme-value life from deepest pit and fastest rate", "y"),
+            "std_shift_mm": ("Uncertainty of the shift (1 σ)", "mm"),
+            "rate_top_max_mm_y": ("Fastest top-side rate", "mm/y"),
+            "depth_max_mm": ("Deepest loss measured", "mm"),
+            "area_m2": ("Area", "m²")}
+    for name, (lab, unit) in want.items():
+        assert label_with_unit(name, "mm") == (lab, unit)
+    assert label_with_unit("rate_top_max_mm_y", "in") == ("Fastest top-side rate", "mpy")
+    assert label_with_unit("depth_max_mm", "in") == ("Deepest loss measured", "mils")
+    assert label_with_unit("t_min_mm", "in") == ("Thinnest reading", "in")
+    # every mapping is what label() returns, plain words (no underscore shown to people)
+    for name, lab in LABELS.items():
+        assert label(name) == lab and "_" not in lab and lab
+    # every zones.csv column the assessment writes has a label
+    extra = ["kind", "n_scanned", "cap_y", "initial_interval_y", "rtbc_mm", "rtip_mm",
+             "t_used_upr_mm", "stpr_mm_y", "upr_mm_y", "rate_eva_mm_y", "life_eva_y",
+             "rate_eva_source", "notes", "life_eva_depth_rate_y", "depth_eva_life_mm",
+             "depth_pred_upper_mm", "eva_method", "eva_T", "eva_block_mm", "eva_n_blocks",
+             "eva_n_censored", "eva_gev_p", "eva_reason", "life_eva_method", "life_eva_reason"]
+    missing = [c for c in ZONE_COLUMNS + extra if c not in LABELS]
+    assert missing == []
+    # unknown names lose their unit suffix and underscores
+    assert label("some_new_quantity_mm") == "some new quantity"
+    assert label("register_s") == "register"
+
+
+def test_page_shows_labels_not_internal_names(page):
+    _, text = page
+    rest = _strip_data_uris(text)
+    p = _parse(rest)
+    # column heads, and row heads (the zone detail table and the key-value tables)
+    heads = [c for t in p.tables if t for c in t[0]] + [r[0] for t in p.tables for r in t if r]
+    for internal in ("interval_recommended", "t_min", "rtbc", "eva_T", "depth_max",
+                     "life_eva_depth_rate", "std_shift"):
+        assert not any(internal in h for h in heads), internal
+    assert any(h.startswith("Recommended interval") for h in heads)
+    # the long zone table sits behind a <details>, after a short table
+    zones = rest[rest.index('id="zones"'):rest.index('id="extremes"')]
+    assert zones.index('class="data zonesum"') < zones.index("<details")
+    short = _parse(zones).tables[0]
+    assert len(short[0]) <= 12 and len(short) == 4
+
+
+def test_interval_table_groups_as_found_and_after_repair(page):
+    _, text = page
+    summary = text[text.index('id="summary"'):text.index('id="registration"')]
+    # one table, both states under their own group heading (no caption mix-up)
+    assert summary.count("<table class=\"data intervals\"") == 1
+    g = re.findall(r'<th scope="colgroup" colspan="3" class="group">(.*?)</th>', summary)
+    assert g == ["As found", "After the proposed repairs"]
+    t = _parse(summary).tables[-1]
+    interior = next(r for r in t if r[0] == "interior")
+    assert interior[1:] == ["0.0", "2026-05-01", "code formula", "11.0", "2037-05-01",
+                            "local rates"]
+
+
+def test_every_flag_the_tool_writes_is_explained():
+    import inspect
+
+    from scananalyse import assess, repair
+
+    src = inspect.getsource(assess)
+    written = set(re.findall(r'flags\.append\("([a-z-]+)"\)', src)) | {"no-data"}
+    written |= {v for k, v in vars(repair).items() if k.startswith("FLAG_")}
+    assert "eva-below-mrt" in written and "too-small" in written
+    assert sorted(written - set(FLAGS_EXPLAINED)) == []
+    assert "below MRT" in FLAGS_EXPLAINED["eva-below-mrt"]
+    assert "unscanned" in FLAGS_EXPLAINED["eva-below-mrt"]
+
+
+def test_flag_explanations_on_page_complete():
+    data = build_data()
+    data.flags_explained = {}
+    data.zones.loc[0, "flags"] = "eva-below-mrt"
+    text = render_report(data)
+    meth = text[text.index('id="methods"'):text.index('id="indications"')]
+    for flag in ("eva-below-mrt", "below-mrt", "code-exceeds-local", "no-data"):
+        assert f"<dt>{flag}</dt>" in meth
+        assert esc(FLAGS_EXPLAINED[flag]) in meth
+
+
+def test_template_escapes_by_default():
+    env = _env()
+    assert env.autoescape is True
+    assert env.loader is not None and "report.html.j2" in env.list_templates()
+    # hostile text in places only the template puts on the page: column names, a kv key,
+    # an extremes zone, a figure caption, a patch flag, the caution
+    png = F.png_bytes(F.method_comparison(build_data().zones), dpi=40)
+    data = ReportData(
+        tank={"name": HOSTILE, HOSTILE: HOSTILE}, caution=HOSTILE,
+        zones=pd.DataFrame({"zone": [HOSTILE], HOSTILE: [1.0], "flags": [HOSTILE]}),
+        patches=pd.DataFrame({"patch": ["P1"], "zone": [HOSTILE], "area_m2": [0.1],
+                              "flags": [HOSTILE]}),
+        extremes={HOSTILE: {"eva_reason": HOSTILE}},
+        figures={"maps": [(HOSTILE, png)]}, assumptions=[HOSTILE], notes=[HOSTILE],
+        rules_table=[{"name": HOSTILE, "value": 1.0, "unit": HOSTILE, "tag": HOSTILE,
+                      "source": HOSTILE, "note": HOSTILE}])
+    text = render_report(data)
+    assert "<script" not in text and HOSTILE not in text
+    assert text.count(HOSTILE_ESCAPED) >= 15
+    assert f'alt="{HOSTILE_ESCAPED}"' in text
+
+
+def test_page_is_self_contained(page):
+    _, text = page
+    rest = _strip_data_uris(text)
+    srcs = re.findall(r'\bsrc\s*=\s*"([^"]*)"', rest)
+    hrefs = re.findall(r'\bhref\s*=\s*"([^"]*)"', rest)
+    assert srcs and all(s == "DATA" for s in srcs)
+    assert hrefs and all(h.startswith("#") for h in hrefs)
+    ids = set(_parse(text).ids)
+    assert all(h[1:] in ids for h in hrefs)  # every link is to the page itself
+    assert not re.search(r"\b(src|href|action|poster|data)\s*=\s*['\"]?\s*(h|/)", rest, re.I)
+
+
+def test_print_css_rules(page):
+    _, text = page
+    css = re.search(r"<style>(.*?)</style>", text, re.S).group(1)
+    pr = css[css.index("@media print"):]
+    assert re.search(r"table\.data tr, table\.kv tr \{ break-inside: avoid", pr)
+    assert "thead { display: table-header-group; }" in pr
+    assert re.search(r"figure\.map img \{ width: 100%", pr)
+    assert re.search(r"section\.major \+ section\.major \{ break-before: page", pr)
+    # the verdict is the first section, so it fills the first printed page
+    assert SECTIONS[0][0] == "verdict"
+
+
+def test_glossary_lists_every_page_label():
+    """docs/glossary.md maps every column name to the label the page shows, and every
+    flag to its explanation."""
+    path = os.path.join(os.path.dirname(__file__), os.pardir, "docs", "glossary.md")
+    with open(path, encoding="utf-8") as fh:
+        text = fh.read()
+    missing = [k for k, v in LABELS.items() if f"| `{k}` | {v} |" not in text]
+    assert missing == []
+    missing = [k for k, v in FLAGS_EXPLAINED.items() if f"| `{k}` | {v} |" not in text]
+    assert missing == []

@@ -7,15 +7,19 @@ scripts and no reference to anything outside the page, so the file can be
 attached to an inspection record, mailed and printed as it is.
 :func:`write_report` writes it atomically.
 
-Every string that came from an input (tank names, file names, flags, table
-cells, rule sources) is HTML-escaped, and the letters ``http`` are written with
-a character reference so the page never carries anything a browser or mail
-filter could take for a web address.
+The page structure lives in the Jinja2 template ``templates/report.html.j2`` (with
+its style sheet ``templates/report.css``); this module only shapes the data: it
+picks the columns, gives them plain labels (:mod:`.labels`), formats numbers with
+their display units and words the verdict per zone (:func:`zone_verdicts`).
 
-Sections, in order, with these ids: ``summary``, ``registration``, ``maps``,
-``zones``, ``extremes``, ``methods``, ``indications``, ``assumptions``.  The
-caution (:data:`scananalyse.CAUTION`) is shown in the summary and in a footer
-repeated on every printed page.
+Every value the template prints is HTML-escaped (``autoescape=True``; quotes too),
+and the letters ``http`` are written with a character reference, so the page never
+carries anything a browser or mail filter could take for a web address.
+
+Sections, in order, with these ids: ``verdict``, ``summary``, ``registration``,
+``maps``, ``zones``, ``extremes``, ``methods``, ``indications``, ``assumptions``.
+The caution (:data:`scananalyse.CAUTION`) follows the verdicts and is repeated in a
+footer on every printed page.
 """
 
 from __future__ import annotations
@@ -23,6 +27,7 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html as _html
+import math
 import os
 import re
 import tempfile
@@ -30,15 +35,20 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+from jinja2 import Environment, PackageLoader, StrictUndefined
+from markupsafe import Markup
 
 from .. import CAUTION, __version__
 from ..outputs import publish_file
 from . import units as U
+from .labels import FLAGS_EXPLAINED, LIMITING_SHORT, LIMITING_WORDS, label, label_with_unit
 
-__all__ = ["ReportData", "SECTIONS", "esc", "render_report", "write_report"]
+__all__ = ["ReportData", "SECTIONS", "esc", "render_report", "write_report", "zone_verdicts",
+           "VERDICTS"]
 
 #: Section ids and headings, in page order.
 SECTIONS = (
+    ("verdict", "Verdict per zone"),
     ("summary", "Summary"),
     ("registration", "Registration of the two inspections"),
     ("maps", "Floor maps"),
@@ -49,13 +59,20 @@ SECTIONS = (
     ("assumptions", "Rules and assumptions"),
 )
 
-#: Columns of the per-zone recommendation in the summary.
-SUMMARY_COLUMNS = ("zone", "interval_recommended_y", "next_due", "limiting", "t_min_mm",
-                   "mrt_mm", "coverage_pct", "flags")
+#: The three verdicts, in order of urgency (last most urgent for the work order).
+VERDICTS = ("return to service as is", "repair first", "prove up first (hand UT)")
+
+#: Columns of the short per-zone table in the zones section.
+ZONE_SHORT_COLUMNS = ("zone", "area_m2", "coverage_pct", "t_min_mm", "depth_max_mm", "mrt_mm",
+                      "interval_recommended_y", "next_due", "limiting", "flags")
 
 #: Columns of the method comparison table.
 METHOD_COLUMNS = ("zone", "interval_code_y", "life_local_y", "life_eva_y", "interval_cap_y",
                   "interval_recommended_y", "limiting", "flags")
+
+#: Columns of the indication list (the full list is indications.csv).
+INDICATION_COLUMNS = ("id", "zone", "plate", "side", "x_mm", "y_mm", "depth_max_mm", "t_min_mm",
+                      "area_m2", "rate_max_mm_y", "status", "growth_mm")
 
 #: Number of indications listed.
 N_INDICATIONS = 25
@@ -87,7 +104,8 @@ class ReportData:
         ``"extremes:<zone>"`` places figures under that zone of the extremes section.
     extremes : zone → mapping of summary numbers (keys with SI suffixes are
         converted for display, e.g. ``depth_eva_mm``).
-    flags_explained : flag → one sentence in words.
+    flags_explained : flag → one sentence in words (added to, and taking precedence
+        over, :data:`scananalyse.report.labels.FLAGS_EXPLAINED`).
     units : display units, ``"mm"`` or ``"in"``.
     timings : stage → seconds.
     version : scananalyse version.
@@ -120,7 +138,7 @@ class ReportData:
 
 
 # ---------------------------------------------------------------------------
-# escaping and formatting
+# escaping
 # ---------------------------------------------------------------------------
 _HTTP = re.compile(r"(h)(ttp)", re.IGNORECASE)
 
@@ -136,87 +154,131 @@ def esc(value) -> str:
                      m.group(2)[1:], s)
 
 
-def _cell(value, name: str, units: str) -> tuple[str, bool]:
-    """(escaped text, numeric?) of one table cell of SI column ``name``."""
+def _finalize(value):
+    """Every ``{{ … }}`` of the template: None prints nothing, Markup (data URIs) as is,
+    anything else through :func:`esc` (escaped, ``http`` defused)."""
+    if value is None:
+        return ""
+    if isinstance(value, Markup):
+        return value
+    return Markup(esc(value))
+
+
+def _make_env() -> Environment:
+    return Environment(loader=PackageLoader("scananalyse.report", "templates"),
+                       autoescape=True, finalize=_finalize, undefined=StrictUndefined,
+                       trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True)
+
+
+# The environment and the compiled page template are made once, when this module is
+# imported (before a run allocates its grids), not at the first report: objects that
+# live for the whole process, made late in a run, would sit at the top of a grown heap
+# and keep glibc from returning the freed grids (pipeline._reuse_freed_memory).
+_ENV = _make_env()
+_TEMPLATE = _ENV.get_template("report.html.j2")
+
+
+def _env() -> Environment:
+    """The page's Jinja2 environment (autoescape on; see :func:`_finalize`)."""
+    return _ENV
+
+
+# ---------------------------------------------------------------------------
+# formatting (plain text; the template escapes)
+# ---------------------------------------------------------------------------
+def _is_num(v) -> bool:
+    if isinstance(v, np.generic):
+        v = v.item()
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _fmt(value, name: str, units: str) -> tuple[str, bool]:
+    """(text, numeric?) of one value of SI column ``name`` in display units."""
     if isinstance(value, (list, tuple)) and not isinstance(value, str):
-        return esc(", ".join(U.fmt_number(v) for v in value)), False
+        return ", ".join(U.fmt_number(v) for v in value), False
     if isinstance(value, (_dt.date, _dt.datetime, pd.Timestamp)):
-        return esc(value.isoformat()[:10] if not isinstance(value, _dt.datetime)
-                   else value.isoformat(sep=" ", timespec="minutes")), False
-    if isinstance(value, (np.generic,)):
+        if isinstance(value, _dt.datetime):
+            return value.isoformat(sep=" ", timespec="minutes"), False
+        return value.isoformat()[:10], False
+    if isinstance(value, np.generic):
         value = value.item()
-    if isinstance(value, (int, float)) and not isinstance(value, bool):
+    if _is_num(value):
         base, unit, q, nd = U.display_column(name, units)
         if isinstance(value, int) and q in ("plain", "pct"):
-            return esc(U.fmt_number(value)), True
-        return esc(U.fmt_number(U.convert(float(value), q, units), nd)), True
+            return U.fmt_number(value), True
+        return U.fmt_number(U.convert(float(value), q, units), nd), True
     if isinstance(value, str) and name == "flags":
-        return esc(value.replace(";", "; ")), False
-    return esc(U.fmt_number(value)), False
+        return value.replace(";", "; "), False
+    if isinstance(value, str) and name == "limiting":
+        return LIMITING_SHORT.get(value, value), False
+    return U.fmt_number(value), False
 
 
-def _header(name: str, units: str) -> str:
-    base, unit, q, nd = U.display_column(name, units)
-    u = f'<span class="unit">{esc(unit)}</span>' if unit else ""
-    # allow long SI column names to wrap after their underscores
-    name = esc(base).replace("_", "_<wbr>")
-    return f'<th scope="col"><span class="col">{name}</span>{u}</th>'
+def _qty(value_si: float, quantity: str, units: str) -> str:
+    """A number in display units with its unit, for sentences ("2.54 mm", "0.100 in")."""
+    v = U.convert(float(value_si), quantity, units)
+    unit = U.unit_label(quantity, units)
+    return f"{U.fmt_number(v, U.decimals(quantity, units))} {unit}".strip()
+
+
+_CLS_DATE = ("next_due", "date", "inspected", "installed")
+
+
+def _cell(value, name: str, units: str) -> dict:
+    text, num = _fmt(value, name, units)
+    if num:
+        cls = "num"
+    elif name == "flags" and text not in ("", "–"):
+        cls = "flags"
+    elif name in _CLS_DATE:
+        cls = "date"
+    else:
+        cls = ""
+    return {"text": text, "cls": cls}
+
+
+def _head(name: str, units: str) -> dict:
+    lab, unit = label_with_unit(name, units)
+    return {"label": lab, "unit": unit, "name": str(name), "cls": ""}
 
 
 def _table(df: pd.DataFrame | None, units: str, *, columns=None, cls="data",
-           empty="none") -> str:
+           empty="none") -> dict:
+    """A table model for the template: heads (label, unit) and rows of cells."""
     if df is None or len(df) == 0:
-        return f'<p class="empty">{esc(empty)}</p>'
+        return {"empty": empty}
     cols = [c for c in (columns or df.columns) if c in df.columns]
-    out = [f'<div class="tablewrap"><table class="{cls}"><thead><tr>']
-    out += [_header(c, units) for c in cols]
-    out.append("</tr></thead><tbody>")
-    for row in df[cols].itertuples(index=False, name=None):
-        out.append("<tr>")
-        for c, value in zip(cols, row):
-            text, num = _cell(value, str(c), units)
-            klass = ' class="num"' if num else ""
-            if c == "flags" and text not in ("", "–"):
-                klass = ' class="flags"'
-            elif str(c) in ("next_due", "date", "inspected", "installed"):
-                klass = ' class="date"'
-            out.append(f"<td{klass}>{text}</td>")
-        out.append("</tr>")
-    out.append("</tbody></table></div>")
-    return "".join(out)
+    rows = [[_cell(v, str(c), units) for c, v in zip(cols, row)]
+            for row in df[cols].itertuples(index=False, name=None)]
+    heads = [_head(str(c), units) for c in cols]
+    for j, h in enumerate(heads):  # a column of numbers is right-aligned, its head too
+        h["cls"] = "num" if any(r[j]["cls"] == "num" for r in rows) else ""
+    return {"cls": cls, "heads": heads, "rows": rows}
 
 
-def _kv_table(d: dict, units: str, *, cls="kv") -> str:
-    if not d:
-        return '<p class="empty">none</p>'
-    out = [f'<table class="{cls}"><tbody>']
-    for k, v in d.items():
-        base, unit, q, nd = U.display_column(str(k), units)
+def _kv(d: dict, units: str) -> dict:
+    """A two-column (label, value) table model."""
+    rows = []
+    for k, v in (d or {}).items():
+        lab, unit = label_with_unit(str(k), units)
         if isinstance(v, dict):
-            text = esc("; ".join(f"{a}: {U.fmt_number(b)}" for a, b in v.items()))
-            num = False
+            text, num = "; ".join(f"{a}: {U.fmt_number(b)}" for a, b in v.items()), False
         else:
-            text, num = _cell(v, str(k), units)
-        u = f' <span class="unit">{esc(unit)}</span>' if unit and num else ""
-        out.append(f'<tr><th scope="row">{esc(base)}{u}</th>'
-                   f'<td{" class=num" if num else ""}>{text}</td></tr>')
-    out.append("</tbody></table>")
-    return "".join(out)
+            text, num = _fmt(v, str(k), units)
+        rows.append({"label": lab, "unit": unit if num else "", "text": text,
+                     "cls": "num" if num else ""})
+    return {"rows": rows}
 
 
-def _png_uri(png: bytes) -> str:
+def _png_uri(png: bytes) -> Markup:
     if not isinstance(png, (bytes, bytearray)) or not bytes(png[:8]) == b"\x89PNG\r\n\x1a\n":
         raise ValueError("report figures must be PNG bytes")
-    return "data:image/png;base64," + base64.b64encode(bytes(png)).decode("ascii")
+    # base64 text only: safe in an attribute as it is
+    return Markup("data:image/png;base64," + base64.b64encode(bytes(png)).decode("ascii"))
 
 
-def _figures(items) -> str:
-    out = []
-    for item in items or ():
-        caption, png = item[0], item[1]
-        out.append(f'<figure><img alt="{esc(caption)}" src="{_png_uri(png)}">'
-                   f"<figcaption>{esc(caption)}</figcaption></figure>")
-    return "".join(out)
+def _figures(items) -> list:
+    return [{"caption": item[0], "src": _png_uri(item[1])} for item in (items or ())]
 
 
 def _tank_name(tank) -> str:
@@ -225,56 +287,224 @@ def _tank_name(tank) -> str:
     return str(tank or "")
 
 
-# ---------------------------------------------------------------------------
-# sections
-# ---------------------------------------------------------------------------
-def _section(sid: str, heading: str, body: str) -> str:
-    return (f'<section id="{sid}" class="major"><h2>{esc(heading)}</h2>\n{body}\n</section>\n')
+def _flag_set(v) -> list:
+    if not isinstance(v, str):
+        return []
+    return [f.strip() for f in v.split(";") if f.strip()]
 
 
-def _summary(d: ReportData) -> str:
-    u = d.units
-    parts = [f'<p class="caution" role="note"><strong>Caution.</strong> {esc(d.caution)}</p>']
+def _f(row, name) -> float:
+    """A float from a table row (NaN when missing or not a number)."""
+    try:
+        v = row.get(name) if hasattr(row, "get") else None
+        return float(v) if v is not None and v != "" else math.nan
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _years(v: float) -> str:
+    return f"{U.fmt_number(v, 1)} y"
+
+
+# ---------------------------------------------------------------------------
+# verdicts
+# ---------------------------------------------------------------------------
+def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | None = None,
+                  patches: pd.DataFrame | None = None, units: str = "mm") -> list[dict]:
+    """One verdict per zone, in plain words, from the zone tables and the patch list.
+
+    Parameters
+    ----------
+    zones : the zones.csv table as found (``zone``, ``interval_recommended_y``,
+        ``next_due``, ``limiting``, ``flags``, ``t_min_mm``, ``mrt_mm``, ``area_m2``,
+        ``coverage_pct``).
+    zones_repaired : the same after the proposed repairs, or None.
+    patches : patches.csv (``zone``, ``area_m2``), or None.
+    units : display units of the numbers in the sentences.
+
+    Returns
+    -------
+    list of dict : per zone ``zone``, ``verdict`` (one of :data:`VERDICTS`), ``kind``
+        (``"ok"``, ``"repair"``, ``"proveup"``) and the sentences ``interval``,
+        ``limit``, ``hand_ut``, ``patches``.
+
+    Notes
+    -----
+    - ``no-data`` (or no interval at all) → prove up first (hand UT).
+    - ``below-mrt``, or a recommended interval of 0 y → repair first; the interval
+      given is the one after the proposed repairs.
+    - ``eva-below-mrt`` → prove up first: the extreme-value estimate says metal
+      nobody measured may already be below MRT.
+    - otherwise → return to service as is, with the as-found interval.
+    """
+    if zones is None or len(zones) == 0:
+        return []
+    rep = None
+    if zones_repaired is not None and len(zones_repaired) and "zone" in zones_repaired:
+        rep = {str(r["zone"]): r for r in zones_repaired.to_dict("records")}
+    out = []
+    for z in zones.to_dict("records"):
+        name = str(z.get("zone", ""))
+        flags = set(_flag_set(z.get("flags")))
+        rec = _f(z, "interval_recommended_y")
+        area = _f(z, "area_m2")
+        cov = _f(z, "coverage_pct")
+        unscanned = area * (1 - cov / 100) if not (math.isnan(area) or math.isnan(cov)) else math.nan
+        r = rep.get(name) if rep else None
+        # patches in the zone
+        n_p, a_p = 0, 0.0
+        if patches is not None and len(patches) and "zone" in patches:
+            mine = patches[patches["zone"].astype(str) == name]
+            n_p = len(mine)
+            a_p = float(mine["area_m2"].sum()) if "area_m2" in mine and n_p else 0.0
+        if n_p:
+            p_text = (f"{n_p} patch plate{'s' if n_p != 1 else ''} proposed here, "
+                      f"{_qty(a_p, 'area', units)} in all.")
+        elif patches is None:
+            p_text = "No repair plan was made in this assessment."
+        else:
+            p_text = "No patch plate proposed here."
+
+        below = "below-mrt" in flags
+        if "no-data" in flags or math.isnan(rec):
+            kind, verdict = "proveup", VERDICTS[2]
+            interval = "No interval can be set: " + (
+                "the zone was not scanned." if "no-data" in flags else
+                "the scan does not support one.")
+            limit = "Nothing is known of the metal here from the scan."
+            a = _qty(area, "area", units) if not math.isnan(area) else "all of it"
+            hand = f"Hand UT the whole zone ({a}) and re-run the assessment with the readings."
+        elif below or rec <= 0:
+            kind, verdict = "repair", VERDICTS[1]
+            rr = _f(r, "interval_recommended_y") if r is not None else math.nan
+            still = r is not None and "below-mrt" in _flag_set(r.get("flags"))
+            if r is not None and not math.isnan(rr) and rr > 0 and not still:
+                interval = (f"After the proposed repairs: inspect again within {_years(rr)}"
+                            f"{_due(r)}.")
+                after = f" After repair the interval is limited by {_limit_words(r)}."
+            else:
+                interval = ("Do not return to service before repair; no interval can be "
+                            "given until the zone is repaired and re-assessed.")
+                after = ""
+            tmin, mrt = _f(z, "t_min_mm"), _f(z, "mrt_mm")
+            if below and not (math.isnan(tmin) or math.isnan(mrt)):
+                limit = (f"The thinnest reading, {_qty(tmin, 'thickness', units)}, is below the "
+                         f"MRT of {_qty(mrt, 'thickness', units)}.{after}")
+            else:
+                limit = f"As found, the interval is 0 y, set by {_limit_words(z)}.{after}"
+            hand = _hand_ut_sentence(flags, r, unscanned, units)
+        elif "eva-below-mrt" in flags:
+            kind, verdict = "proveup", VERDICTS[2]
+            interval = (f"If the hand UT finds nothing thinner: inspect again within "
+                        f"{_years(rec)}{_due(z)}.")
+            limit = (f"Every scanned reading is above MRT, but the extreme-value estimate says "
+                     f"metal nobody measured may already be below it; the interval is limited by "
+                     f"{_limit_words(z)}.")
+            hand = _hand_ut_sentence(flags, z, unscanned, units, force=True)
+        else:
+            kind, verdict = "ok", VERDICTS[0]
+            interval = f"Inspect again within {_years(rec)}{_due(z)}."
+            limit = f"The interval is limited by {_limit_words(z)}."
+            rr = _f(r, "interval_recommended_y") if r is not None else math.nan
+            if n_p and not math.isnan(rr) and rr > rec:
+                p_text = p_text[:-1] + f"; they would lengthen the interval to {_years(rr)}."
+            hand = _hand_ut_sentence(flags, z, unscanned, units)
+        out.append({"zone": name, "verdict": verdict, "kind": kind, "interval": interval,
+                    "limit": limit, "hand_ut": hand, "patches": p_text})
+    return out
+
+
+def _due(row) -> str:
+    d = row.get("next_due") if row is not None else None
+    return f", next inspection by {d}" if isinstance(d, str) and d else ""
+
+
+def _limit_words(row) -> str:
+    w = row.get("limiting") if row is not None else ""
+    w = w if isinstance(w, str) else ""
+    return LIMITING_WORDS.get(w, w)
+
+
+def _hand_ut_sentence(flags, row, unscanned, units, *, force=False) -> str:
+    a = _qty(unscanned, "area", units) if not math.isnan(unscanned) else "the area"
+    lim = row.get("limiting") if row is not None else ""
+    if force or "eva-below-mrt" in flags:
+        return (f"Hand UT the {a} not scanned: the extreme-value estimate says metal there may "
+                "already be below MRT.")
+    if "low-coverage" in flags:
+        return (f"Less was scanned than the rules ask: hand UT the {a} not scanned.")
+    if lim == "eva":
+        return (f"Optional: hand UT of the {a} not scanned can lengthen the interval, "
+                "which the extreme-value estimate of that area limits.")
+    return "None beyond the usual prove-up of the indications listed."
+
+
+# ---------------------------------------------------------------------------
+# sections (data shaping only)
+# ---------------------------------------------------------------------------
+def _interval_table(d: ReportData) -> dict:
+    """Zone | as found (interval, due, limited by) | after repair (…): one table."""
+    z = d.zones
+    if z is None or len(z) == 0:
+        return {"empty": "no zones assessed"}
+    cols = ("interval_recommended_y", "next_due", "limiting")
+    rep = None if d.zones_repaired is None else d.zones_repaired.set_index("zone")
+    heads = [_head(c, d.units) for c in cols]
+    groups = [{"label": "As found", "span": len(cols)}]
+    if rep is not None:
+        groups.append({"label": "After the proposed repairs", "span": len(cols)})
+        heads = heads + [_head(c, d.units) for c in cols]
+    rows = []
+    for r in z.to_dict("records"):
+        row = [{"text": str(r.get("zone", "")), "cls": "", "th": True}]
+        row += [_cell(r.get(c), c, d.units) for c in cols]
+        if rep is not None:
+            zr = rep.loc[r["zone"]] if r["zone"] in rep.index else {}
+            row += [_cell(zr.get(c) if len(zr) else None, c, d.units) for c in cols]
+        rows.append(row)
+    return {"cls": "data intervals", "groups": groups, "heads": heads, "rows": rows,
+            "first": _head("zone", d.units)}
+
+
+def _summary(d: ReportData) -> dict:
     tank = d.tank if isinstance(d.tank, dict) else {"tank": d.tank}
-    parts.append('<div class="facts">')
-    parts.append("<h3>Tank</h3>" + _kv_table(tank, u))
-    parts.append("</div>")
-    parts.append("<h3>Inspections</h3>")
-    if d.inspections:
-        parts.append(_table(pd.DataFrame(d.inspections), u, cls="data inspections"))
-    else:
-        parts.append('<p class="empty">no inspection details given</p>')
-    if d.single_inspection:
-        parts.append('<p class="note">Single inspection: rates are long-term (loss over the '
-                     "years since the plates went into service); there is no registration and "
-                     "no short-term rate.</p>")
-    parts.append("<h3>Recommended interval per zone, as found</h3>")
-    parts.append(_table(d.zones, u, columns=SUMMARY_COLUMNS, empty="no zones assessed"))
-    if d.zones_repaired is not None:
-        parts.append("<h3>After the proposed repairs</h3>")
-        parts.append(_table(d.zones_repaired, u, columns=SUMMARY_COLUMNS, empty="no zones"))
-        n_p = 0 if d.patches is None else len(d.patches)
-        if d.patches is not None:
-            area = float(d.patches["area_m2"].sum()) if "area_m2" in d.patches and n_p else 0.0
-            a = U.convert(area, "area", u)
-            parts.append(f'<p>{n_p} patch plate(s) proposed, total '
-                         f'{esc(U.fmt_number(a, U.decimals("area", u)))} '
-                         f'{esc(U.unit_label("area", u))}.</p>')
-    if d.notes:
-        parts.append("<h3>Notes</h3><ul>" + "".join(f"<li>{esc(n)}</li>" for n in d.notes)
-                     + "</ul>")
-    parts.append(_figures(d.figures.get("summary")))
-    return "\n".join(parts)
+    n_p = 0 if d.patches is None else len(d.patches)
+    patches = None
+    if d.zones_repaired is not None and d.patches is not None:
+        area = float(d.patches["area_m2"].sum()) if "area_m2" in d.patches and n_p else 0.0
+        patches = f"{n_p} patch plate(s) proposed, {_qty(area, 'area', d.units)} in all."
+    return {
+        "tank": _kv(tank, d.units),
+        "inspections": _table(pd.DataFrame(d.inspections), d.units, cls="data inspections")
+        if d.inspections else {"empty": "no inspection details given"},
+        "single": d.single_inspection,
+        "intervals": _interval_table(d),
+        "repaired": d.zones_repaired is not None,
+        "patches": patches,
+        "notes": list(d.notes),
+        "figures": _figures(d.figures.get("summary")),
+    }
+
+
+def _verdict(d: ReportData) -> dict:
+    v = zone_verdicts(d.zones, d.zones_repaired, d.patches, d.units)
+    total = None
+    if d.patches is not None:
+        n = len(d.patches)
+        a = float(d.patches["area_m2"].sum()) if n and "area_m2" in d.patches else 0.0
+        total = (f"Patch plates proposed for the whole floor: {n}, {_qty(a, 'area', d.units)} "
+                 "in all." if n else "No patch plate proposed.")
+    return {"zones": v, "patch_total": total}
 
 
 _REG_ORDER = ("method", "dx_mm", "dy_mm", "rotation_deg", "score", "overlap_pct",
               "residual_rms_mm", "reliable", "n_control_points", "warnings")
 
 
-def _registration(d: ReportData) -> str:
+def _registration(d: ReportData) -> dict:
+    figs = _figures(d.figures.get("registration"))
     if d.registration is None:
-        return ('<p class="note">Not applicable: this assessment uses a single inspection, '
-                "so there is nothing to register.</p>" + _figures(d.figures.get("registration")))
+        return {"applicable": False, "figures": figs}
     reg = dict(d.registration)
     ordered = {k: reg[k] for k in _REG_ORDER if k in reg}
     for k, v in reg.items():
@@ -282,94 +512,81 @@ def _registration(d: ReportData) -> str:
             ordered[k] = v
     if isinstance(ordered.get("warnings"), (list, tuple)):
         ordered["warnings"] = "; ".join(str(w) for w in ordered["warnings"]) or "none"
-    parts = ['<p>The older scan is mapped onto the newer one by '
-             "[x′, y′] = R(θ)·[x, y] + [dx, dy], θ counter-clockwise, about the origin.</p>",
-             _kv_table(ordered, d.units)]
     cr = reg.get("control_residuals_mm")
+    res = None
     if cr is not None and len(cr):
-        res = pd.DataFrame({"point": np.arange(1, len(cr) + 1),
-                            "residual_mm": np.asarray(cr, dtype=float)})
-        parts.append("<h3>Control-point residuals</h3>" + _table(res, d.units))
-    parts.append(_figures(d.figures.get("registration")))
-    return "\n".join(parts)
+        res = _table(pd.DataFrame({"point": np.arange(1, len(cr) + 1),
+                                   "residual_mm": np.asarray(cr, dtype=float)}), d.units)
+    return {"applicable": True, "kv": _kv(ordered, d.units), "residuals": res, "figures": figs}
 
 
-def _maps(d: ReportData) -> str:
-    figs = d.figures.get("maps")
-    if not figs:
-        return '<p class="empty">no maps</p>'
-    return '<div class="maps">' + _figures(figs) + "</div>"
-
-
-def _table_by_zone(found: pd.DataFrame | None, repaired: pd.DataFrame | None, units: str) -> str:
+def _table_by_zone(found: pd.DataFrame | None, repaired: pd.DataFrame | None, units: str) -> dict:
     """Every zones.csv column as a row, one column per zone (as found, and after repair)."""
     if found is None or len(found) == 0:
-        return '<p class="empty">no zones assessed</p>'
+        return {"empty": "no zones assessed"}
     zones = [str(z) for z in found["zone"]]
     heads = []
     for z in zones:
-        heads.append(f'<th scope="col">{esc(z)}<span class="unit">as found</span></th>')
+        heads.append({"label": z, "unit": "as found"})
         if repaired is not None:
-            heads.append(f'<th scope="col">{esc(z)}<span class="unit">after repair</span></th>')
-    rep = None if repaired is None else repaired.set_index("zone")
-    fnd = found.set_index("zone")
-    out = ['<div class="tablewrap"><table class="data byzone"><thead><tr><th scope="col">quantity</th>']
-    out += heads
-    out.append("</tr></thead><tbody>")
+            heads.append({"label": z, "unit": "after repair"})
+    rep = None if repaired is None else repaired.set_index(repaired["zone"].astype(str))
+    fnd = found.set_index(found["zone"].astype(str))
+    rows = []
     for c in [c for c in found.columns if c != "zone"]:
-        base, unit, q, nd = U.display_column(str(c), units)
-        u = f' <span class="unit">{esc(unit)}</span>' if unit else ""
-        out.append(f'<tr><th scope="row">{esc(base)}{u}</th>')
+        lab, unit = label_with_unit(str(c), units)
+        cells = []
         for z in zones:
             for frame in ([fnd] if rep is None else [fnd, rep]):
                 v = frame.loc[z, c] if (z in frame.index and c in frame.columns) else None
-                text, num = _cell(v, str(c), units)
-                klass = ' class="num"' if num else (' class="flags"' if c == "flags" and text not in ("", "–") else "")
-                out.append(f"<td{klass}>{text}</td>")
-        out.append("</tr>")
-    out.append("</tbody></table></div>")
-    return "".join(out)
+                cells.append(_cell(v, str(c), units))
+        rows.append({"label": lab, "unit": unit, "name": str(c), "cells": cells})
+    return {"heads": heads, "rows": rows}
 
 
-def _zones(d: ReportData) -> str:
-    parts = ["<p>Every column of <code>zones.csv</code> (and <code>zones_repaired.csv</code>), one row "
-             "per quantity; the files keep SI units, the page "
-             f"shows {esc('mm and mm/y' if d.units == 'mm' else 'in, mils and mpy')}.</p>",
-             _table_by_zone(d.zones, d.zones_repaired, d.units)]
-    if d.patches is not None:
-        parts += ["<h3>Proposed patch plates</h3>",
-                  _table(d.patches, d.units, cls="data wide", empty="no patch plates needed")]
-    parts.append(_figures(d.figures.get("zones")))
-    return "\n".join(parts)
+def _zones(d: ReportData) -> dict:
+    short = None
+    if d.zones is not None and len(d.zones):
+        df = d.zones
+        if d.zones_repaired is not None and "interval_recommended_y" in d.zones_repaired:
+            rep = d.zones_repaired.set_index(d.zones_repaired["zone"].astype(str))
+            df = df.copy()
+            df["interval_after_repair_y"] = [
+                rep.loc[str(z), "interval_recommended_y"] if str(z) in rep.index else np.nan
+                for z in df["zone"]]
+        cols = list(ZONE_SHORT_COLUMNS)
+        if "interval_after_repair_y" in df:
+            cols.insert(cols.index("flags"), "interval_after_repair_y")
+        short = _table(df, d.units, columns=cols, cls="data zonesum")
+    return {
+        "units_text": "mm and mm/y" if d.units == "mm" else "in, mils and mpy",
+        "short": short or {"empty": "no zones assessed"},
+        "detail": _table_by_zone(d.zones, d.zones_repaired, d.units),
+        "n_quantities": 0 if d.zones is None else max(len(d.zones.columns) - 1, 0),
+        "repaired": d.zones_repaired is not None,
+        "patches": None if d.patches is None else _table(
+            d.patches, d.units, cls="data patches", empty="no patch plates needed"),
+        "figures": _figures(d.figures.get("zones")),
+    }
 
 
-def _extremes(d: ReportData) -> str:
-    parts = ["<p>Deepest loss per block, fitted with a Gumbel (or GEV) distribution; the "
-             "return level for T = zone area ÷ block area is the deepest loss to expect over "
-             "the whole zone, unscanned and below-threshold parts included.</p>"]
+def _extremes(d: ReportData) -> dict:
     zones = list(d.extremes)
     for key in d.figures:
         if key.startswith("extremes:") and key[9:] not in zones:
             zones.append(key[9:])
-    if not zones and not d.figures.get("extremes"):
-        return parts[0] + '<p class="empty">no extreme-value results</p>'
-    for z in zones:
-        parts.append(f'<div class="zoneblock"><h3>Zone {esc(z)}</h3>')
-        if z in d.extremes:
-            parts.append(_kv_table(dict(d.extremes[z]), d.units))
-        parts.append('<div class="pair">' + _figures(d.figures.get(f"extremes:{z}")) + "</div>")
-        parts.append("</div>")
-    parts.append(_figures(d.figures.get("extremes")))
-    return "\n".join(parts)
+    blocks = [{"zone": z, "kv": _kv(dict(d.extremes[z]), d.units) if z in d.extremes else None,
+               "figures": _figures(d.figures.get(f"extremes:{z}"))} for z in zones]
+    return {"blocks": blocks, "figures": _figures(d.figures.get("extremes")),
+            "any": bool(zones or d.figures.get("extremes"))}
 
 
-def _methods(d: ReportData) -> str:
-    parts = ["<p>The code-formula interval is computed exactly as the standard reads (on "
-             "the worst top-side and worst underside rate anywhere in the zone, age-based); "
-             "the co-located projection uses each cell's own measured rates; the "
-             "extreme-value life uses the deepest loss expected over the whole zone. The "
-             "recommendation is the least of these and the cap.</p>"]
-    parts.append(_figures(d.figures.get("methods")))
+def _explained(d: ReportData) -> dict:
+    return {**FLAGS_EXPLAINED, **(d.flags_explained or {})}
+
+
+def _methods(d: ReportData) -> dict:
+    table = None
     if d.zones is not None and len(d.zones):
         cols = list(METHOD_COLUMNS)
         if "life_eva_y" not in d.zones.columns:
@@ -377,26 +594,21 @@ def _methods(d: ReportData) -> str:
                 (k for k in d.zones.columns if "eva" in k and k.endswith("_y")), c) for c in cols]
         if "interval_cap_y" not in d.zones.columns and "cap_y" in d.zones.columns:
             cols = [("cap_y" if c == "interval_cap_y" else c) for c in cols]
-        parts.append(_table(d.zones, d.units, columns=cols))
+        table = _table(d.zones, d.units, columns=cols)
     flags = []
     for df in (d.zones, d.zones_repaired, d.patches):
         if df is not None and "flags" in df.columns:
             for v in df["flags"]:
-                if isinstance(v, str):
-                    for f in v.split(";"):
-                        f = f.strip()
-                        if f and f not in flags:
-                            flags.append(f)
-    parts.append("<h3>Flags in words</h3>")
-    if flags:
-        items = []
-        for f in flags:
-            text = d.flags_explained.get(f, "no explanation recorded for this flag")
-            items.append(f"<dt>{esc(f)}</dt><dd>{esc(text)}</dd>")
-        parts.append('<dl class="flags">' + "".join(items) + "</dl>")
-    else:
-        parts.append("<p>No zone carries a flag.</p>")
-    return "\n".join(parts)
+                for f in _flag_set(v):
+                    if f not in flags:
+                        flags.append(f)
+    words = _explained(d)
+    items = [{"flag": f, "text": words.get(f, "no explanation recorded for this flag")}
+             for f in flags]
+    limits = [{"word": LIMITING_SHORT.get(w, w), "text": t}
+              for w, t in LIMITING_WORDS.items() if w not in ("", "none")]
+    return {"figures": _figures(d.figures.get("methods")), "table": table, "flags": items,
+            "limits": limits}
 
 
 def _depth_column(df: pd.DataFrame):
@@ -406,150 +618,38 @@ def _depth_column(df: pd.DataFrame):
     return None
 
 
-def _indications(d: ReportData) -> str:
+def _indications(d: ReportData) -> dict:
     df = d.indications
+    figs = _figures(d.figures.get("indications"))
     if df is None or len(df) == 0:
-        return '<p class="empty">No indications above the reporting depth.</p>' + \
-            _figures(d.figures.get("indications"))
+        return {"note": None, "table": None, "figures": figs}
     dc = _depth_column(df)
     top = df.sort_values(dc, ascending=False, kind="mergesort").head(N_INDICATIONS) \
         if dc else df.head(N_INDICATIONS)
     note = (f"The {min(N_INDICATIONS, len(df))} deepest of {len(df)} indications"
-            + (f", by {dc}" if dc else "") + "; the full list is in indications.csv.")
-    return (f"<p>{esc(note)}</p>" + _table(top, d.units, cls="data wide")
-            + _figures(d.figures.get("indications")))
+            + (f", by {label(dc).lower()}" if dc else "") + "; the full list is in indications.csv.")
+    cols = [c for c in INDICATION_COLUMNS if c in df.columns] or list(df.columns)
+    return {"note": note, "table": _table(top, d.units, columns=cols, cls="data indications"),
+            "figures": figs}
 
 
-def _assumptions(d: ReportData) -> str:
-    parts = []
-    if d.rules_table:
-        out = ['<div class="tablewrap"><table class="data rules"><thead><tr>'
-               '<th scope="col">rule value</th><th scope="col">value</th>'
-               '<th scope="col">unit</th><th scope="col">tag</th>'
-               '<th scope="col">source</th></tr></thead><tbody>']
-        for row in d.rules_table:
-            tag = str(row.get("tag", ""))
-            mem = tag == "memory"
-            tag_html = esc(tag) + (f'<br><span class="memory">{esc(MEMORY_MARK)}</span>'
-                                   if mem else "")
-            src = esc(row.get("source", ""))
-            if row.get("note"):
-                src += f'<br><span class="muted">{esc(row["note"])}</span>'
-            val = row.get("value")
-            nd = 3 if isinstance(val, float) and not float(val).is_integer() else 0
-            out.append(f'<tr{" class=mem" if mem else ""}><td><code>{esc(row.get("name", ""))}'
-                       f'</code></td><td class="num">{esc(U.fmt_number(val, nd))}</td>'
-                       f'<td>{esc(row.get("unit", ""))}</td><td>{tag_html}</td>'
-                       f"<td>{src}</td></tr>")
-        out.append("</tbody></table></div>")
-        parts.append("<p>Rule values used, with how sure we are of each (tag) and where it "
-                     "comes from. Rule values are in SI whatever the display units.</p>")
-        parts.append("".join(out))
-    else:
-        parts.append('<p class="empty">no rule table given</p>')
-    parts.append("<h3>Assumptions</h3>")
-    if d.assumptions:
-        parts.append("<ul>" + "".join(f"<li>{esc(a)}</li>" for a in d.assumptions) + "</ul>")
-    else:
-        parts.append('<p class="empty">none recorded</p>')
-    if d.timings:
-        parts.append("<h3>Run</h3>")
-        t = {f"{k}_s": v for k, v in d.timings.items()}
-        parts.append(_kv_table(t, d.units))
-    return "\n".join(parts)
+def _assumptions(d: ReportData) -> dict:
+    rules = []
+    for row in d.rules_table or ():
+        val = row.get("value")
+        nd = 3 if isinstance(val, float) and not float(val).is_integer() else 0
+        rules.append({"name": row.get("name", ""), "value": U.fmt_number(val, nd),
+                      "unit": row.get("unit", ""), "tag": str(row.get("tag", "")),
+                      "memory": str(row.get("tag", "")) == "memory",
+                      "source": row.get("source", ""), "note": row.get("note") or None})
+    timings = _kv({f"{k}_s": v for k, v in d.timings.items()}, d.units) if d.timings else None
+    return {"rules": rules, "assumptions": list(d.assumptions), "timings": timings}
 
 
-# ---------------------------------------------------------------------------
-# page
-# ---------------------------------------------------------------------------
-_CSS = """
-:root { --ink:#1d232a; --muted:#5d6670; --rule:#c9ced4; --band:#f3f5f7; --warn:#8a1c1c;
-        --accent:#2b5d7d; }
-* { box-sizing: border-box; }
-html { font-size: 15px; }
-body { margin: 0; color: var(--ink); background: #fff;
-       font-family: "DejaVu Sans", "Liberation Sans", Arial, sans-serif; line-height: 1.45; }
-header.top { padding: 1.2rem 2rem 0.8rem; border-bottom: 3px solid var(--accent); }
-header.top h1 { margin: 0 0 0.2rem; font-size: 1.55rem; font-weight: 600; }
-header.top .sub { color: var(--muted); font-size: 0.9rem; }
-nav.toc { padding: 0.5rem 2rem; font-size: 0.85rem; background: var(--band);
-          border-bottom: 1px solid var(--rule); }
-nav.toc a { color: var(--accent); text-decoration: none; margin-right: 1.1rem; }
-main { padding: 0 2rem 1rem; max-width: 1180px; }
-h2 { font-size: 1.25rem; margin: 1.6rem 0 0.6rem; padding-bottom: 0.2rem;
-     border-bottom: 1px solid var(--rule); color: var(--accent); }
-h3 { font-size: 1.02rem; margin: 1.1rem 0 0.4rem; }
-p { margin: 0.4rem 0 0.6rem; }
-code { font-family: "DejaVu Sans Mono", monospace; font-size: 0.86em; }
-.caution { border-left: 5px solid var(--warn); background: #fbf1f1; padding: 0.6rem 0.9rem;
-           margin: 0.9rem 0; }
-.note { border-left: 4px solid var(--accent); background: var(--band); padding: 0.45rem 0.8rem; }
-.empty, .muted { color: var(--muted); }
-.tablewrap { overflow-x: auto; margin: 0.3rem 0 0.8rem; }
-table { border-collapse: collapse; font-size: 0.84rem; }
-table.data th, table.data td { border-bottom: 1px solid var(--rule); padding: 0.25rem 0.55rem;
-                               text-align: left; vertical-align: top; }
-table.data thead th { background: var(--band); border-bottom: 2px solid #9aa3ad;
-                      font-weight: 600; vertical-align: bottom; }
-table.data tbody tr:nth-child(even) td { background: #fafbfc; }
-table.wide { font-size: 0.76rem; }
-table.byzone th[scope="row"] { text-align: left; font-weight: 500; white-space: nowrap; }
-table.byzone td { max-width: 22rem; overflow-wrap: anywhere; }
-table.wide td { overflow-wrap: anywhere; }
-table.wide td.num { overflow-wrap: normal; }
-table.data th, table.data td { padding: 0.25rem 0.45rem; }
-th .col { display: block; }
-th .unit, .kv .unit { display: block; font-weight: 400; color: var(--muted); font-size: 0.9em; }
-.kv .unit { display: inline; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-td.flags { color: var(--warn); }
-td.date { white-space: nowrap; overflow-wrap: normal !important; }
-table.kv th { text-align: left; font-weight: 500; padding: 0.15rem 1.2rem 0.15rem 0;
-              color: var(--muted); }
-table.kv td { padding: 0.15rem 0; }
-table.kv td.num { text-align: left; }
-.memory { display: inline-block; margin-top: 0.15rem; padding: 0 0.35rem; font-size: 0.78rem;
-          background: #fff3cd; border: 1px solid #d9a400; color: #5c4400; border-radius: 3px; }
-tr.mem td { background: #fffbea !important; }
-figure { margin: 0.6rem 0 1rem; break-inside: avoid; page-break-inside: avoid; }
-figure img { max-width: 100%; height: auto; border: 1px solid var(--rule); display: block; }
-figcaption { font-size: 0.82rem; color: var(--muted); margin-top: 0.25rem; max-width: 60rem; }
-.maps { display: grid; grid-template-columns: repeat(auto-fill, minmax(520px, 1fr));
-        gap: 0 1.2rem; }
-.pair { display: grid; grid-template-columns: repeat(auto-fill, minmax(420px, 1fr));
-        gap: 0 1rem; }
-.zoneblock { break-inside: avoid; }
-dl.flags dt { font-weight: 600; color: var(--warn); margin-top: 0.4rem; }
-dl.flags dd { margin: 0.1rem 0 0.3rem 1.2rem; }
-footer.caution-footer { margin: 1.5rem 0 0; padding: 0.6rem 2rem; font-size: 0.78rem;
-                        color: var(--muted); border-top: 1px solid var(--rule); }
-footer.caution-footer strong { color: var(--warn); }
-table.pagewrap { border-collapse: collapse; width: 100%; font-size: inherit; }
-table.pagewrap > tbody > tr > td, table.pagewrap > tfoot > tr > td { padding: 0; }
-.footer-space { height: 0; }
-@page { size: A4; margin: 14mm 12mm 10mm 12mm; }
-@media print {
-  html { font-size: 10.5pt; }
-  nav.toc { display: none; }
-  main { padding: 0; max-width: none; }
-  header.top { padding: 0 0 0.4rem; }
-  section.major + section.major { break-before: page; page-break-before: always; }
-  table.data tr, table.kv tr { break-inside: avoid; page-break-inside: avoid; }
-  table.data thead { display: table-header-group; }
-  .tablewrap { overflow: visible; }
-  table.wide { font-size: 6.8pt; }
-  table.data th, table.data td { padding: 0.15rem 0.3rem; }
-  figure img { max-height: 118mm; width: auto; max-width: 100%; border: none; }
-  .maps, .pair { display: block; }
-  /* the footer repeats on every printed page; the empty table footer of the page
-     wrapper repeats too and keeps the same height free, so no text runs under it */
-  footer.caution-footer { position: fixed; bottom: 0; left: 0; right: 0; height: 13mm;
-                          margin: 0; padding: 1.5mm 0 0; background: #fff; font-size: 7.5pt;
-                          line-height: 1.3; overflow: hidden; }
-  .footer-space { height: 16mm; }
-  a { color: inherit; text-decoration: none; }
-}
-"""
+_BUILDERS = {"verdict": _verdict, "summary": _summary, "registration": _registration,
+             "maps": lambda d: {"figures": _figures(d.figures.get("maps"))}, "zones": _zones,
+             "extremes": _extremes, "methods": _methods, "indications": _indications,
+             "assumptions": _assumptions}
 
 
 def render_report(data: ReportData) -> str:
@@ -575,22 +675,11 @@ def render_report(data: ReportData) -> str:
         f"scananalyse {data.version}",
         f"generated {generated.isoformat(sep=' ', timespec='minutes')}",
     ) if s)
-    builders = {"summary": _summary, "registration": _registration, "maps": _maps,
-                "zones": _zones, "extremes": _extremes, "methods": _methods,
-                "indications": _indications, "assumptions": _assumptions}
-    body = [_section(sid, head, builders[sid](data)) for sid, head in SECTIONS]
-    toc = "".join(f'<a href="#{sid}">{esc(head)}</a>' for sid, head in SECTIONS)
-    footer = (f'<footer class="caution-footer"><strong>Caution:</strong> {esc(data.caution)} '
-              f"<span class=\"muted\">— {esc(tank or 'tank')}, scananalyse "
-              f"{esc(data.version)}</span></footer>")
-    return ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
-            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n"
-            f"<title>{esc(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
-            '<table class="pagewrap" role="presentation"><tbody><tr><td>\n'
-            f'<header class="top"><h1>{esc(title)}</h1><div class="sub">{esc(sub)}</div>'
-            f"</header>\n<nav class=\"toc\">{toc}</nav>\n<main>\n{''.join(body)}</main>\n"
-            '</td></tr></tbody><tfoot><tr><td><div class="footer-space"></div></td></tr>'
-            f"</tfoot></table>\n{footer}\n</body>\n</html>\n")
+    ctx = {sid: _BUILDERS[sid](data) for sid, _ in SECTIONS}
+    return _TEMPLATE.render(
+        title=title, sub=sub, tank=tank or "tank", caution=data.caution, version=data.version,
+        sections=[{"id": sid, "heading": head} for sid, head in SECTIONS],
+        memory_mark=MEMORY_MARK, **ctx)
 
 
 def write_report(data: ReportData, path) -> str:
