@@ -12,31 +12,13 @@ import numpy as np
 from ..evlife import LIFE_LEVEL
 from ..extremes import GEV_ALPHA, MIN_BLOCK_MM
 from ..indications import reporting_depth
+from . import labels
 from .html import ReportData
 
 __all__ = ["FLAGS_EXPLAINED", "actions", "report_data"]
 
-#: One sentence per word of the `flags` column of zones.csv, shown in the report.
-FLAGS_EXPLAINED = {
-    "below-mrt": "The zone's thinnest reported cell is already below its MRT: repair before return to service.",
-    "critical-zone-below-min": "The critical zone (within the rule set's width of the shell) is below its minimum.",
-    "code-exceeds-local": "The code-formula interval is longer than the co-located projection from the measured "
-                          "rates at the same cells: the formula overstates what the metal supports here.",
-    "code-exceeds-eva": "The code-formula interval is longer than the extreme-value life, which allows for the "
-                        "deepest pit expected in the unscanned and below-threshold parts of the zone.",
-    "low-coverage": "Less of the zone was scanned than the rule set's minimum coverage; the extreme-value "
-                    "estimate carries more weight and more uncertainty.",
-    "target-not-reached": "The recommended interval is shorter than the target interval.",
-    "no-short-term-rates": "Only one inspection: rates are long-term (loss ÷ years in service); a pit that began "
-                           "late grows faster than that.",
-    "no-data": "No cell of the zone was scanned: nothing can be said from the scan.",
-    "no-eva": "No extreme-value estimate could be made for the zone (too few blocks).",
-    "eva-rate-assumed": "The extreme-value life uses the zone's fastest measured rates, not a fitted rate extreme.",
-    "initial-interval": "No corrosion rates are known: the initial-interval rules apply.",
-    "no-age": "The scan gives no installation date: age-based rates and the code formula cannot be computed.",
-    "critical-zone-special-repair": "A patch touches the critical zone: only special shapes or plate replacement "
-                                    "are allowed there.",
-}
+#: One sentence per word of the `flags` column of zones.csv (one list, in report/labels.py).
+FLAGS_EXPLAINED = labels.FLAGS_EXPLAINED
 
 
 def actions(an) -> list[str]:

@@ -41,6 +41,7 @@ from markupsafe import Markup
 from .. import CAUTION, __version__
 from ..outputs import publish_file
 from . import units as U
+from ..checks import no_patches_text
 from .labels import FLAGS_EXPLAINED, LIMITING_SHORT, LIMITING_WORDS, label, label_with_unit
 
 __all__ = ["ReportData", "SECTIONS", "esc", "render_report", "write_report", "zone_verdicts",
@@ -565,7 +566,7 @@ def _zones(d: ReportData) -> dict:
         "n_quantities": 0 if d.zones is None else max(len(d.zones.columns) - 1, 0),
         "repaired": d.zones_repaired is not None,
         "patches": None if d.patches is None else _table(
-            d.patches, d.units, cls="data patches", empty="no patch plates needed"),
+            d.patches, d.units, cls="data patches", empty=no_patches_text(d.zones, d.zones_repaired)),
         "figures": _figures(d.figures.get("zones")),
     }
 
