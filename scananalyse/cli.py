@@ -346,6 +346,17 @@ def _main(argv=None) -> int:
     from .outputs import interrupt_count, interrupts_as_keyboard
 
     seen = interrupt_count()
+    old_hook = sys.unraisablehook
+
+    def _quiet_interrupts(unraisable):
+        # an interrupt that lands in a finaliser or weak-reference callback (matplotlib, h5py)
+        # is "ignored" by Python with a traceback on stderr; it is counted (interrupt_count)
+        # and reported below as an interrupt, so it is not printed a second time here
+        if isinstance(unraisable.exc_value, KeyboardInterrupt):
+            return
+        old_hook(unraisable)
+
+    sys.unraisablehook = _quiet_interrupts
     try:
         with warnings.catch_warnings(), interrupts_as_keyboard():
             warnings.simplefilter("always", ScanWarning)
@@ -373,6 +384,7 @@ def _main(argv=None) -> int:
         return 1
     finally:
         warnings.showwarning = old_show
+        sys.unraisablehook = old_hook
 
 
 if __name__ == "__main__":  # pragma: no cover
