@@ -543,13 +543,18 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
       short end of the co-located life) and ``life_local_fit_y`` from the
       selection-aware estimates (``zone_rates``' ``*_fit``); both reported, not used
       by the recommendation (docs/assessment.md §4a).
-    - ``life_eva_y`` = (t0 − d − MRT)/rate_eva (:func:`eva_life`), d the extremes'
-      ``depth_pred_upper_mm`` (predictive bound) when given, else ``depth_eva_upper_mm``
-      (the value used is the column ``depth_eva_life_mm``);
-      rate_eva is the extremes' ``rate_eva_mm_y`` or, when that is missing, the sum of
-      the zone's upper ends ``rate_top_max_hi_mm_y + rate_under_max_hi_mm_y`` (the point
-      estimates when there are no upper ends; ``rate_eva_source`` says which; flag
-      ``eva-rate-assumed``).
+    - ``depth_eva_mm`` / ``depth_eva_upper_mm``: the zone's deepest loss, never below the
+      observed ``depth_max_mm``: the greater of it and the median / predictive upper bound
+      of the deepest loss in the part nobody scanned (``depth_hidden_p50_mm``,
+      ``depth_hidden_p95_mm``, over ``hidden_area_m2``; :mod:`scananalyse.evlife`).
+    - ``life_eva_y`` is the extremes' ``life_eva_y`` when given (the shorter of the seen
+      and the hidden part's life, :func:`scananalyse.evlife.zone_lives`); else
+      (t0 − d − MRT)/rate_eva (:func:`eva_life`) with d the given depth bound and
+      rate_eva the extremes' ``rate_eva_mm_y`` or, when that is missing, the sum of the
+      zone's upper ends ``rate_top_max_hi_mm_y + rate_under_max_hi_mm_y`` (flag
+      ``eva-rate-assumed``; ``rate_eva_source`` says which).  ``eva_source`` says whose fit
+      the hidden part used (``zone``, ``floor``: borrowed, flag ``eva-borrowed``;
+      ``worst-seen``: no fit anywhere, flag ``eva-worst-seen``).
     - With no rate maps at all, the initial-interval rules apply
       (:meth:`RuleSet.initial_interval_years`, flag ``initial-interval``).
     - ``interval_recommended_y`` = :func:`recommend_interval` of the code interval,
@@ -559,8 +564,9 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
     - Flags (``;``-joined): ``no-data``, ``below-mrt``, ``critical-zone-below-min``,
       ``code-exceeds-local``, ``code-exceeds-eva``, ``low-coverage``,
       ``target-not-reached``, ``no-short-term-rates``, ``no-age``, ``no-eva``,
-      ``eva-rate-assumed``, ``eva-below-mrt``, ``initial-interval``,
-      ``no-mfl-threshold``.
+      ``eva-rate-assumed``, ``eva-below-mrt`` (the upper bound of the deepest loss in the
+      unscanned part is already past MRT), ``eva-borrowed``, ``eva-worst-seen``,
+      ``initial-interval``, ``no-mfl-threshold``.
     """
     options = options if options is not None else AssessOptions()
     t, side, rt, ru = _checked_maps(thickness, side, rate_top, rate_under, zones, pitch_mm)
@@ -687,7 +693,7 @@ _NAN_COLS = ("t_min_mm", "depth_max_mm", "depth_eva_mm", "depth_eva_upper_mm",
              "t_used_upr_mm", "stpr_mm_y", "upr_mm_y", "rate_top_max_lo_mm_y",
              "rate_top_max_hi_mm_y", "rate_under_max_lo_mm_y", "rate_under_max_hi_mm_y",
              "rate_top_max_raw_mm_y", "rate_under_max_raw_mm_y", "life_local_short_y",
-             "life_local_fit_y",
+             "life_local_fit_y", "depth_hidden_p50_mm", "depth_hidden_p95_mm", "hidden_area_m2",
              "rate_eva_mm_y", "life_eva_y")
 
 
@@ -700,7 +706,7 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
            "initial_interval_y": c.initial if not c.has_rates else math.nan}
     if z["n_scanned"][k] == 0:
         row.update({col: math.nan for col in _NAN_COLS})
-        row.update({"next_due": "", "limiting": "", "rate_eva_source": "",
+        row.update({"next_due": "", "limiting": "", "rate_eva_source": "", "eva_source": "",
                     "flags": "no-data", "notes": "zone not scanned"})
         return row
     flags: list[str] = []
@@ -754,45 +760,51 @@ def _code_part(row, rtbc, rtip, mrt, c: _Context, flags, notes) -> float:
 
 
 def _eva_part(row, name, mrt, c: _Context, flags) -> float:
-    """The extreme-value life of a zone and its columns."""
+    """The extreme-value life of a zone and its depth columns.
+
+    The zone's deepest loss is never below the deepest observed: ``depth_eva_mm`` is the
+    greater of the observed deepest and the median predicted deepest in the part nobody
+    scanned, ``depth_eva_upper_mm`` the greater of the observed and its predictive upper
+    bound (:data:`scananalyse.evlife.HIDDEN_LEVELS`).  The life is the extremes' own when
+    they give it (:func:`scananalyse.evlife.zone_lives`: the shorter of the seen and the
+    hidden part's); else, from a given depth bound, :func:`eva_life` at the extremes' rate
+    or the zone's upper-end rates.
+    """
     ex = c.extremes.get(name)
-    d_eva = _attr(ex, "depth_eva_mm")
-    d_up = _attr(ex, "depth_eva_upper_mm")
-    if d_up is None:
-        d_up = d_eva
+    obs = row["depth_max_mm"]
+    h50 = _attr(ex, "depth_hidden_p50_mm")
+    h95 = _attr(ex, "depth_hidden_p95_mm")
+    mid = h50 if h50 is not None else _attr(ex, "depth_eva_mm")
+    bound = next((v for v in (h95, _attr(ex, "depth_pred_upper_mm"), _attr(ex, "depth_eva_upper_mm"))
+                  if v is not None), None)
+    d_eva = max(obs, mid) if mid is not None else obs
+    d_up = max(obs, bound) if bound is not None else obs
+    direct = _attr(ex, "life_eva_y")
     r_eva = _attr(ex, "rate_eva_mm_y")
-    # The life uses the predictive upper bound of the deepest loss over the zone when the
-    # extremes give one (parameter uncertainty and the spread of the maximum itself), else
-    # the upper bound of the return level.  The return level's own bound lies below the
-    # true deepest pit in about a third of synthetic seeds (docs/extremes.md).
-    d_pred = _attr(ex, "depth_pred_upper_mm")
-    d_life = d_pred if (d_pred is not None and not math.isnan(d_pred)) else d_up
-    if ex is None or d_up is None:
-        life_eva = math.nan
-        r_src = ""
-        flags.append("no-eva")
-    else:
-        r_src = "extremes"
+    r_src = "extremes" if r_eva is not None else ""
+    if ex is not None and direct is not None:
+        life_eva = max(float(direct), 0.0)
+        r_src = "life-blocks"
+    elif ex is not None and bound is not None:
         if r_eva is None:
             r_eva, r_src = _assumed_eva_rate(row, c.has_rates)
             flags.append("eva-rate-assumed")
-        life_eva = eva_life(t0=c.t0, depth_upper=d_life, mrt=mrt, rate=r_eva)
-        life_dr = life_eva
-        direct = _attr(ex, "life_eva_y")
-        if direct is not None and not math.isnan(direct):
-            # The caller gives the extreme-value life itself (block minima of the
-            # co-located life); the deepest-pit-with-fastest-rate figure stays for
-            # reference in ``life_eva_depth_rate_y``.
-            life_eva = max(float(direct), 0.0)
-            r_src = "life-blocks"
-        row["life_eva_depth_rate_y"] = life_dr
-        if c.t0 - d_life < mrt:
-            flags.append("eva-below-mrt")
-    row.update({"depth_eva_mm": d_eva if d_eva is not None else math.nan,
-                "depth_eva_upper_mm": d_up if d_up is not None else math.nan,
+        life_eva = eva_life(t0=c.t0, depth_upper=d_up, mrt=mrt, rate=r_eva)
+    else:
+        life_eva = math.nan
+        flags.append("no-eva")
+    if bound is not None and c.t0 - bound < mrt:
+        flags.append("eva-below-mrt")
+    source = str((ex.get("eva_source") if isinstance(ex, dict) else getattr(ex, "eva_source", "")) or "")
+    if source in ("floor", "worst-seen"):
+        flags.append("eva-borrowed" if source == "floor" else "eva-worst-seen")
+    hidden_m2 = _attr(ex, "hidden_area_m2")
+    row.update({"depth_eva_mm": d_eva, "depth_eva_upper_mm": d_up,
+                "depth_hidden_p50_mm": h50 if h50 is not None else math.nan,
+                "depth_hidden_p95_mm": h95 if h95 is not None else math.nan,
+                "hidden_area_m2": hidden_m2 if hidden_m2 is not None else math.nan,
                 "rate_eva_mm_y": r_eva if r_eva is not None else math.nan,
-                "depth_eva_life_mm": d_life if d_life is not None else math.nan,
-                "rate_eva_source": r_src, "life_eva_y": life_eva})
+                "rate_eva_source": r_src, "eva_source": source, "life_eva_y": life_eva})
     return life_eva
 
 

@@ -1,37 +1,53 @@
-r"""Extreme-value life of a floor zone: when the deepest loss expected over the whole zone,
-scanned or not, reaches the zone's corrosion allowance.
+r"""Extreme-value life of a floor zone: when the deepest loss of the zone, scanned or not,
+reaches the zone's corrosion allowance (nominal − MRT).
 
-Each cell's loss grows at its own measured rates (top + underside); the deepest projected
-loss over the zone is the greater of the deepest among the scanned cells and a high
-quantile of the largest of T block maxima of the distribution fitted to the projected
-block maxima (the part nobody scanned).  The fits are those of :mod:`scananalyse.extremes`
-(Gumbel or GEV by the likelihood-ratio test, left-censored at the detection threshold).
+A zone has two parts, assessed separately and combined by taking the shorter life:
+
+- the **seen** part: every scanned cell, its loss growing at its own measured rates
+  (:func:`seen_lives`); cells the newer scan missed but the older scan saw (an obstruction
+  or a sump moved between the outages) are projected forward from the older reading;
+- the **hidden** part: the zone area nobody scanned, whose deepest loss is predicted from
+  the extreme-value law of the scanned block maxima (:func:`hidden_parts`).
+
+The hidden part is a property of the floor **as found**: repairs change only the cells they
+cover, so a repaired floor is assessed with the as-found hidden part and its own seen part
+(:func:`zone_lives`).  A zone too small for a fit of its own borrows the whole floor's fit,
+extrapolated to its own unscanned area, and says so; a floor with no fit at all takes the
+hidden metal to be as deep as the deepest seen and to grow at the fastest measured rate.
 
 Everything here is a pure function of arrays and the zone map; the pipeline
-(:func:`scananalyse.pipeline.analyse`) calls :func:`zone_lives` once for the floor as
-found and once as repaired.
+(:func:`scananalyse.pipeline.analyse`) calls :func:`hidden_parts` once, and
+:func:`seen_lives` once for the floor as found and once as repaired.
 """
 
 from __future__ import annotations
 
+import math
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
 from .errors import FitError, ScanWarning
-from .extremes import (depth_map, fit_gev_mle, fit_gumbel_mle, fit_zone, max_quantile,
+from .extremes import (depth_map, fit_gev_mle, fit_gumbel_mle, fit_zone, predictive_max_quantile,
                        projected_block_maxima)
 
-__all__ = ["LIFE_LEVEL", "LIFE_HORIZON_Y", "EVA_COLUMNS", "masked_nanmin", "zone_lives", "merge_extremes",
-           "add_eva_columns"]
+__all__ = ["LIFE_LEVEL", "LIFE_HORIZON_Y", "HIDDEN_LEVELS", "EVA_COLUMNS", "HiddenPart", "masked_nanmin",
+           "seen_lives", "hidden_parts", "zone_lives", "merge_extremes", "add_eva_columns"]
 
-#: Probability that the deepest projected loss in the unscanned part stays below the value
-#: used for the extreme-value life. [-]
+#: Probability that the deepest projected loss in the hidden part stays below the value
+#: used for the extreme-value life (predictive, parameter uncertainty included). [-]
 LIFE_LEVEL = 0.95
+#: Levels of the predicted deepest loss in the hidden part reported per zone: the median
+#: and the upper bound (``depth_hidden_p50_mm``, ``depth_hidden_p95_mm``). [-]
+HIDDEN_LEVELS = (0.5, 0.95)
 #: Longest horizon searched for the extreme-value life; beyond it the life is reported
 #: as this value (every interval cap is shorter). [y]
 LIFE_HORIZON_Y = 60.0
+#: Bootstrap resamples of each predictive quantile (Gumbel fits are refitted in one batch;
+#: GEV fits one by one, hence fewer). [-]
+N_BOOT = {"gumbel": 200, "gev": 60}
 
 
 def masked_nanmin(values, mask, rows: int = 256):
@@ -63,61 +79,161 @@ def masked_nanmin(values, mask, rows: int = 256):
     return v.dtype.type(np.nan) if best is None else best
 
 
-def zone_lives(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored, threshold, pitch,
-               block_mm, seed, methods: dict | None = None) -> dict:
-    r"""Extreme-value life per zone: when the deepest loss expected over the whole zone
-    reaches the zone's allowance (nominal − MRT), each cell's loss growing at its own rates.
+def _summed_rate(rate_top, rate_under) -> np.ndarray:
+    """top + underside rate per cell, negative and NaN counted as 0 (float32)."""
+    rate = np.fmax(np.asarray(rate_top, dtype=np.float32), np.float32(0))  # fmax: NaN -> 0 as well
+    rate += np.fmax(np.asarray(rate_under, dtype=np.float32), np.float32(0))
+    return rate
+
+
+def _allowance(mrt, mask, nominal) -> float:
+    return float(nominal - masked_nanmin(np.asarray(mrt, dtype=np.float32), mask))
+
+
+def _older_cells(thickness, older, mask):
+    """Cells of the zone the newer scan missed and the older scan saw (bool map), or None."""
+    if older is None:
+        return None
+    t_old = np.asarray(older[0])
+    extra = mask & ~np.isfinite(thickness) & np.isfinite(t_old)
+    return extra if extra.any() else None
+
+
+def seen_lives(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored=None, older=None) -> dict:
+    r"""Life of the seen part of each zone: the first time the deepest projected loss among
+    its scanned cells reaches the zone's allowance.
 
     Parameters
     ----------
     thickness : (M, N) ndarray
         Remaining thickness, NaN where not scanned. [mm]
     rate_top, rate_under : (M, N) ndarray
-        Governing top-side and underside rates (negative and NaN count as 0). [mm/y]
+        Governing rates (negative and NaN count as 0). [mm/y]
     mrt : (M, N) ndarray
         Minimum remaining thickness per cell. [mm]
     zmap : :class:`~scananalyse.zones.ZoneMap`
-        Zone labels, names and whole-zone areas.
     nominal : float
         Nominal plate thickness. [mm]
-    censored : (M, N) bool ndarray or None
-        Cells reported as nominal whose true loss is below the threshold. [-]
+    censored : (M, N) bool ndarray, optional
+        Cells reported as nominal (loss below the threshold): loss 0 here, their part is
+        the hidden part's statistics. [-]
+    older : (t_old_on_new, dt_years), optional
+        The older scan's thickness on the newer grid [mm] and the years between the
+        inspections [y]: cells the newer scan missed and the older one saw are projected
+        forward at the 95th percentile of the zone's measured summed rates.
+
+    Returns
+    -------
+    dict
+        Zone name -> life [y] (0 when already past the allowance, :data:`LIFE_HORIZON_Y`
+        at most); zones with no scanned cell are left out.
+
+    Notes
+    -----
+    With :math:`d_i` the loss of cell *i* and :math:`r_i` its summed rate, the deepest
+    projected loss :math:`\max_i (d_i + r_i H)` reaches the allowance *A* first at
+    :math:`H = \min_i (A - d_i)/r_i` (the co-located reading of the two faces' rates,
+    domain notes §5 in docs/assessment.md).
+    """
+    scanned = np.isfinite(thickness)
+    depth0 = depth_map(thickness, nominal, censored)
+    rate = _summed_rate(rate_top, rate_under)
+    out = {}
+    for k, name in enumerate(zmap.names):
+        mask = zmap.labels == k
+        cells = scanned & mask
+        if not cells.any():
+            continue
+        allowance = _allowance(mrt, mask, nominal)
+        d, r = depth0[cells].astype(np.float64), rate[cells].astype(np.float64)
+        extra = _older_cells(thickness, older, mask)
+        if extra is not None:
+            t_old, dt = older
+            r_z = float(np.quantile(r, 0.95)) if r.size else 0.0
+            d_old = np.maximum(nominal - np.asarray(t_old)[extra].astype(np.float64), 0.0) + r_z * float(dt)
+            d, r = np.r_[d, d_old], np.r_[r, np.full(d_old.size, r_z)]
+        out[name] = _first_crossing(d, r, allowance)
+    return out
+
+
+def _first_crossing(d, r, allowance) -> float:
+    """min over cells of (allowance − d)/r, 0 if any d ≥ allowance, capped at the horizon."""
+    if d.size == 0:
+        return LIFE_HORIZON_Y
+    if np.nanmax(d) >= allowance:
+        return 0.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.where(r > 0, (allowance - d) / r, np.inf)
+    return float(min(np.nanmin(t), LIFE_HORIZON_Y))
+
+
+@dataclass(frozen=True)
+class HiddenPart:
+    """The part of a zone nobody scanned, as found.
+
+    Attributes
+    ----------
+    area_mm2 : the zone area neither scan saw. [mm²]
+    T : that area in blocks of the fit. [blocks]
+    life_y : when the :data:`LIFE_LEVEL` predictive quantile of its deepest projected loss
+        reaches the allowance; NaN when nothing could be said. [y]
+    depth_p50_mm, depth_p95_mm : predicted deepest loss in it now: median and the
+        :data:`HIDDEN_LEVELS` upper bound (predictive). [mm]
+    source : ``"zone"`` (the zone's own fit), ``"floor"`` (the whole floor's fit, borrowed),
+        ``"worst-seen"`` (no fit anywhere: as deep as the deepest seen, at the fastest
+        rate), ``"none"`` (nothing hidden). [-]
+    method : the fit (e.g. ``gumbel-censored-mle``). [-]
+    reason : why the zone's own fit was not used, if it was not. [-]
+    """
+
+    area_mm2: float
+    T: float = float("nan")
+    life_y: float = float("nan")
+    depth_p50_mm: float = float("nan")
+    depth_p95_mm: float = float("nan")
+    source: str = "none"
+    method: str = ""
+    reason: str = ""
+
+
+def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored, threshold, pitch, block_mm,
+                 seed, methods: dict | None = None, older=None) -> dict:
+    r"""The hidden part of each zone (:class:`HiddenPart`), from the floor as found.
+
+    Parameters
+    ----------
+    thickness, rate_top, rate_under, mrt, zmap, nominal, censored :
+        As :func:`seen_lives`, of the floor **as found** (never as repaired).
     threshold : float or None
         Detection threshold (left-censoring of the block maxima). [mm]
     pitch : float
         Cell size. [mm]
     block_mm : float
-        Configured block side (see :func:`~scananalyse.extremes.fit_zone`). [mm]
+        Configured block side (:func:`~scananalyse.extremes.fit_zone`). [mm]
     seed : int
-        Seed of the bootstrap bounds. [-]
+        Seed of the bootstraps. [-]
     methods : dict, optional
         Zone name -> the zone's depth statistics at H = 0
         (:func:`~scananalyse.extremes.depth_statistics`), reused when given.
+    older : (t_old_on_new, dt_years), optional
+        As :func:`seen_lives`: cells the older scan saw are not hidden.
 
     Returns
     -------
     dict
-        Zone name -> ``{"life_eva_y": float or None, "method": str, "reason": str}``;
-        zones with no scanned cell are left out.
+        Zone name -> :class:`HiddenPart`, for the zones with a scanned cell.
 
     Notes
     -----
-    For a horizon H the projected loss of a cell is
-
-    .. math:: d(H) = d_0 + (r_\mathrm{top} + r_\mathrm{under})\,H
-
-    (rates stay co-located, unlike combining the deepest pit with the fastest rate found
-    anywhere).  The deepest projected loss over the zone is
-    :math:`D(H) = \max(\max_\mathrm{scanned} d(H),\; x_p(H))`, where :math:`x_p` is the
-    :data:`LIFE_LEVEL` quantile *p* of the largest of T block maxima, :math:`F_H(x_p)^T = p`, with F_H fitted to the projected block maxima (censored at the
-    threshold) and T = unscanned zone area / block area (at least 1), the return-period
-    reading of block maxima of Shibata [1]_.  The quantile is from the fitted parameters;
-    their own uncertainty is in ``depth_eva_upper_mm`` and ``depth_pred_upper_mm``.
-    The life is the root of :math:`D(H) = t_\mathrm{nom} - \mathrm{MRT}` (Brent's method,
-    within 0.05 y on the short side), 0 if the allowance is already used up at H = 0, and
-    :data:`LIFE_HORIZON_Y` if it is not reached within it.  The distribution (Gumbel or
-    GEV, chosen by the likelihood-ratio test of Coles [2]_ §3.3) is chosen once at H = 0;
-    a fit that fails counts the allowance as used up (conservative).
+    The deepest loss over an area of T blocks has the law :math:`F^T` of the block maxima'
+    law F (Shibata [1]_; the survivor-function form of HSE RR016); F is the Gumbel or GEV
+    fitted to the block maxima, left-censored at the detection threshold, chosen by the
+    likelihood-ratio test (Coles [2]_ §3.3).  Its quantiles are predictive: mixed over a
+    parametric bootstrap of the fit (Coles [2]_ §9.1), so a fit from few blocks gives a wider
+    law, not a plug-in point.  For a horizon H each scanned cell's loss is projected,
+    :math:`d_i + r_i H`, the block maxima of the projection refitted, and the life is the H
+    at which the :data:`LIFE_LEVEL` quantile reaches the allowance (Brent's method, 0.05 y
+    on the short side).  T counts only the area neither scan saw.
 
     References
     ----------
@@ -128,70 +244,96 @@ def zone_lives(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored,
     """
     scanned = np.isfinite(thickness)
     depth0 = depth_map(thickness, nominal, censored)
-    rate = np.fmax(np.asarray(rate_top, dtype=np.float32), np.float32(0))  # fmax: NaN -> 0 as well
-    rate += np.fmax(np.asarray(rate_under, dtype=np.float32), np.float32(0))
+    rate = _summed_rate(rate_top, rate_under)
+    thr = threshold or None
+    kw = dict(pitch=pitch, block_mm=block_mm, seed=seed, threshold=thr)
+    floor = []  # the whole floor's fit, made once if a zone needs to borrow it
     out = {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
-        if not (scanned & mask).any() or not float(zmap.areas_mm2[k]) > 0:
+        cells = scanned & mask
+        if not cells.any():
             continue
-        allowance = float(nominal - masked_nanmin(np.asarray(mrt, dtype=np.float32), mask))
+        extra = _older_cells(thickness, older, mask)
+        n_seen = np.count_nonzero(cells) + (0 if extra is None else np.count_nonzero(extra))
+        hidden_mm2 = max(0.0, float(zmap.areas_mm2[k]) - n_seen * pitch * pitch)
+        if hidden_mm2 <= 0:
+            out[name] = HiddenPart(area_mm2=0.0, T=0.0, life_y=LIFE_HORIZON_Y, source="none")
+            continue
+        allowance = _allowance(mrt, mask, nominal)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
-            out[name] = _zone_life(depth0, rate, scanned, mask, float(zmap.areas_mm2[k]), allowance,
-                                   z0=(methods or {}).get(name), threshold=threshold, pitch=pitch,
-                                   block_mm=block_mm, seed=seed)
-    del depth0, rate
+            z0 = (methods or {}).get(name)
+            if z0 is None:
+                z0 = fit_zone(depth0, mask, pitch_mm=pitch, zone_area_mm2=float(zmap.areas_mm2[k]),
+                              block_mm=block_mm, threshold=thr, seed=seed, valid=scanned)
+            source, reason, fit_mask = "zone", "", cells
+            if not z0:
+                reason = f"zone fit: {z0.reason}"
+                if not floor:
+                    fm = zmap.labels >= 0
+                    floor.append((fit_zone(depth0, fm, pitch_mm=pitch, zone_area_mm2=float(np.sum(zmap.areas_mm2)),
+                                           block_mm=block_mm, threshold=thr, seed=seed, valid=scanned),
+                                  scanned & fm))
+                z0, fit_mask = floor[0]
+                source = "floor"
+            if z0:
+                out[name] = _hidden_from_fit(depth0, rate, fit_mask, z0, hidden_mm2, allowance, source=source,
+                                             reason=reason, **kw)
+            else:
+                out[name] = _hidden_worst_seen(depth0, rate, cells, hidden_mm2, allowance, thr,
+                                               reason=f"{reason}; floor fit: {z0.reason}")
     return out
 
 
-def _zone_life(depth0, rate, scanned, mask, area_mm2, allowance, *, z0, threshold, pitch, block_mm,
-               seed) -> dict:
-    """One zone of :func:`zone_lives`."""
-    in_zone = scanned & mask
-    hidden_mm2 = max(0.0, area_mm2 - np.count_nonzero(in_zone) * pitch * pitch)
-    if z0 is None:  # the depth fit at H = 0 is the zone's depth statistics
-        z0 = fit_zone(depth0, mask, pitch_mm=pitch, zone_area_mm2=max(hidden_mm2, 1.0), block_mm=block_mm,
-                      threshold=threshold or None, seed=seed, valid=scanned)
-    if not z0:
-        return {"life_eva_y": None, "method": "", "reason": z0.reason}
-    method = "gev" if z0.fit is not None and getattr(z0.fit, "distribution", "") == "gev" else "mle"
-    b_cells = max(1, int(round((z0.block_mm if np.isfinite(z0.block_mm) else block_mm) / pitch)))
-    T_hidden = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
-    thr = threshold or None
-    # the previous horizon's GEV (first: the depth fit at H = 0): a warm start for the next
-    last = [(z0.fit.loc, z0.fit.scale, z0.fit.shape) if method == "gev" else None]
+def _hidden_worst_seen(depth0, rate, cells, hidden_mm2, allowance, thr, *, reason) -> HiddenPart:
+    """No fit anywhere: the hidden metal taken as deep as the deepest seen (at least the
+    detection threshold) and growing at the zone's fastest measured summed rate."""
+    d = float(np.nanmax(depth0[cells])) if cells.any() else 0.0
+    d = max(d, float(thr or 0.0))
+    r = float(np.nanmax(rate[cells])) if cells.any() else 0.0
+    life = _first_crossing(np.array([d]), np.array([r]), allowance)
+    return HiddenPart(area_mm2=hidden_mm2, life_y=life, depth_p50_mm=d, depth_p95_mm=d, source="worst-seen",
+                      reason=reason)
 
-    def fitter(x, censored, threshold):
-        if method != "gev":
-            return fit_gumbel_mle(x, censored=censored, threshold=threshold)
-        f = fit_gev_mle(x, censored=censored, threshold=threshold, start=last[0])
+
+def _hidden_from_fit(depth0, rate, fit_mask, z0, hidden_mm2, allowance, *, source, reason, pitch, block_mm,
+                     seed, threshold) -> HiddenPart:
+    """:class:`HiddenPart` from the fit ``z0`` of the block maxima of ``fit_mask``."""
+    gev = getattr(z0.fit, "distribution", "") == "gev"
+    n_boot = N_BOOT["gev" if gev else "gumbel"]
+    b_cells = max(1, int(round((z0.block_mm if np.isfinite(z0.block_mm) else block_mm) / pitch)))
+    T = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
+    cens_thr = threshold if z0.n_censored else None
+    p50, p95 = (predictive_max_quantile(z0.fit, z0.n_blocks, T, p, threshold=cens_thr, n_boot=n_boot, seed=seed)
+                for p in HIDDEN_LEVELS)
+    last = [(z0.fit.loc, z0.fit.scale, z0.fit.shape) if gev else None]  # warm start of the next GEV
+
+    def fitter(x, cens):
+        if not gev:
+            return fit_gumbel_mle(x, censored=cens, threshold=threshold if cens is not None else None)
+        f = fit_gev_mle(x, censored=cens, threshold=threshold if cens is not None else None, start=last[0])
         last[0] = (f.loc, f.scale, f.shape)
         return f
 
-    projector = []  # built on the first call: the zone's cells, tile by tile
+    projector = projected_block_maxima(depth0, rate, valid=fit_mask, block_cells=b_cells, min_coverage=0.5,
+                                       threshold=threshold)
 
     def excess(h):
-        if not projector:
-            projector.append(projected_block_maxima(depth0, rate, valid=in_zone, block_cells=b_cells,
-                                                    min_coverage=0.5, threshold=thr))
-        seen = projector[0].deepest(h)  # the deepest projected loss among the scanned cells
-        if hidden_mm2 <= 0:
-            return seen - allowance
         if h == 0:
-            fit = z0.fit  # the zone's depth fit is the fit of these very block maxima
+            fit, n, thr_h = z0.fit, z0.n_blocks, cens_thr
         else:
-            bm = projector[0](h)
+            bm = projector(h)
             x, cens = bm.maxima, bm.censored
-            if thr is None:
+            if threshold is None or not cens.any():
                 x, cens = x[~cens], None
             try:
-                fit = fitter(x, censored=cens, threshold=thr)
+                fit = fitter(x, cens)
             except FitError:
-                fit = None
-        # no estimate: take the allowance as used up (conservative)
-        hidden = np.inf if fit is None else float(max_quantile(fit, T_hidden, LIFE_LEVEL))
-        return max(seen, hidden) - allowance
+                return math.inf  # no estimate: the allowance taken as used up (conservative)
+            n, thr_h = x.size, (threshold if cens is not None else None)
+        q = predictive_max_quantile(fit, n, T, LIFE_LEVEL, threshold=thr_h, n_boot=n_boot, seed=seed)
+        return q - allowance
 
     if excess(0.0) >= 0:
         life = 0.0
@@ -200,16 +342,40 @@ def _zone_life(depth0, rate, scanned, mask, area_mm2, allowance, *, z0, threshol
     else:
         from scipy.optimize import brentq
 
-        # the excess grows with H (every projected loss does); the root is taken 0.05 y
-        # on the short side
         life = max(0.0, brentq(excess, 0.0, LIFE_HORIZON_Y, xtol=0.02) - 0.05)
-    # the closures above are kept alive by reference cycles until a garbage collection:
-    # let go of the zone's grids now
-    projector.clear()
-    return {"life_eva_y": life, "method": z0.row().get("eva_method", ""), "reason": ""}
+    return HiddenPart(area_mm2=hidden_mm2, T=T, life_y=life, depth_p50_mm=p50, depth_p95_mm=p95, source=source,
+                      method=z0.row().get("eva_method", ""), reason=reason)
 
 
-def merge_extremes(ext_depth: dict, ext_rate: dict, ext_life: dict | None = None) -> dict:
+def zone_lives(seen: dict, hidden: dict) -> dict:
+    """Extreme-value life per zone: the shorter of the seen part's and the hidden part's.
+
+    Parameters
+    ----------
+    seen : dict
+        :func:`seen_lives` (of the floor as found, or as repaired).
+    hidden : dict
+        :func:`hidden_parts` (always of the floor as found).
+
+    Returns
+    -------
+    dict
+        Zone name -> ``{"life_eva_y", "method", "reason", "source"}``; a zone with no
+        scanned cell is left out.  The life is NaN only when the hidden part's is.
+    """
+    out = {}
+    for name, life_seen in seen.items():
+        h = hidden.get(name)
+        if h is None:
+            out[name] = {"life_eva_y": life_seen, "method": "", "reason": "", "source": "none"}
+            continue
+        life = min(life_seen, h.life_y) if not math.isnan(h.life_y) else math.nan
+        out[name] = {"life_eva_y": life, "method": h.method, "reason": h.reason, "source": h.source}
+    return out
+
+
+def merge_extremes(ext_depth: dict, ext_rate: dict, ext_life: dict | None = None,
+                   hidden: dict | None = None) -> dict:
     """The per-zone extreme-value figures :func:`~scananalyse.assess.assess_zones` takes.
 
     Parameters
@@ -220,21 +386,32 @@ def merge_extremes(ext_depth: dict, ext_rate: dict, ext_life: dict | None = None
         :func:`~scananalyse.extremes.rate_statistics`).
     ext_life : dict, optional
         :func:`zone_lives`.
+    hidden : dict, optional
+        :func:`hidden_parts`.
 
     Returns
     -------
     dict
-        Zone name -> ``depth_eva_mm``, ``depth_eva_upper_mm``, ``depth_pred_upper_mm`` [mm],
-        ``rate_eva_mm_y`` [mm/y] and ``life_eva_y`` [y], for the zones with a depth fit.
+        Zone name -> ``depth_pred_upper_mm`` [mm], ``depth_hidden_p50_mm``,
+        ``depth_hidden_p95_mm`` [mm], ``hidden_area_m2`` [m²], ``eva_source``,
+        ``rate_eva_mm_y`` [mm/y] and ``life_eva_y`` [y], for every zone with a depth fit or
+        a life.  The zone's deepest loss (``depth_eva_mm``) is made from these and the
+        observed deepest by the assessment, never below the observed.
     """
     out = {}
-    for name, d in ext_depth.items():
-        if not d:
+    names = set(ext_depth) | set(ext_life or {})
+    for name in names:
+        d = ext_depth.get(name)
+        lz = (ext_life or {}).get(name)
+        if not d and lz is None:
             continue
         r = ext_rate.get(name)
-        lz = (ext_life or {}).get(name)
-        out[name] = {"depth_eva_mm": d.depth_eva_mm, "depth_eva_upper_mm": d.depth_eva_upper_mm,
-                     "depth_pred_upper_mm": d.depth_pred_upper_mm,
+        h = (hidden or {}).get(name)
+        out[name] = {"depth_pred_upper_mm": d.depth_pred_upper_mm if d else None,
+                     "depth_hidden_p50_mm": h.depth_p50_mm if h is not None else None,
+                     "depth_hidden_p95_mm": h.depth_p95_mm if h is not None else None,
+                     "hidden_area_m2": h.area_mm2 / 1e6 if h is not None else None,
+                     "eva_source": (lz or {}).get("source", ""),
                      "rate_eva_mm_y": (r.depth_eva_mm if r else None),
                      "life_eva_y": (lz["life_eva_y"] if lz else None)}
     return out

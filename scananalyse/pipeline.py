@@ -22,7 +22,7 @@ import pandas as pd
 from . import assess, attribution, rates, repair, zones
 from .checks import check_job_against_scans, check_repair_to
 from .errors import InputError, ScanWarning
-from .evlife import add_eva_columns, merge_extremes, zone_lives
+from .evlife import add_eva_columns, hidden_parts, merge_extremes, seen_lives, zone_lives
 from .extremes import depth_statistics, rate_statistics
 from .indications import (apply_indication_rates, assumed_rate_note, flag_indications, gone_indications,
                           label_indications, match_indications, measure_indications, new_indication_rates,
@@ -53,6 +53,7 @@ class Analysis:
     options: object
     extremes_depth: dict
     extremes_rate: dict
+    hidden: dict
     zone_table: pd.DataFrame
     life_map: np.ndarray
     mrt_map: np.ndarray
@@ -199,22 +200,29 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     with prog.stage("assessment"):
         life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
         ext_rate = rate_statistics(lr.rate_top, lr.rate_under, zmap, **fit_kw)
-        ext_life = zone_lives(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
-                              censored=lr.censored, threshold=new.meta.threshold, methods=ext_depth, **fit_kw)
+        # the part of each zone nobody scanned, as found: kept as it is after any repair
+        older = (old_on_new.thickness, lr.dt_years) if old_on_new is not None else None
+        hidden = hidden_parts(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
+                              censored=lr.censored, threshold=new.meta.threshold, methods=ext_depth, older=older,
+                              **fit_kw)
+        seen = seen_lives(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
+                          censored=lr.censored, older=older)
+        ext_life = zone_lives(seen, hidden)
         table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
                                     rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
-                                    options=options, extremes=merge_extremes(ext_depth, ext_rate, ext_life),
+                                    options=options, extremes=merge_extremes(ext_depth, ext_rate, ext_life, hidden),
                                     pitch_mm=new.pitch, rate_short_available=old is not None,
                                     zone_rates=lr.zone_inputs())
         table = add_eva_columns(table, ext_depth, ext_life)
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
-                                         own_patches=inputs["patches"], ext_rate=ext_rate)
+                                         own_patches=inputs["patches"], ext_rate=ext_rate,
+                                         ext_depth=ext_depth, hidden=hidden, older=older)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
-                    extremes_rate=ext_rate, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
+                    extremes_rate=ext_rate, hidden=hidden, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     **rep)
 

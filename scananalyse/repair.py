@@ -1567,7 +1567,7 @@ def write_patches_dxf(patches, path) -> None:
 
 
 def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_old, own_patches=None,
-                        plate_seams=None, ext_rate=None) -> dict:
+                        plate_seams=None, ext_rate=None, ext_depth=None, hidden=None, older=None) -> dict:
     """Patch planning for the target interval (or the engineer's own patches), the rule
     checks, then the floor re-assessed as repaired.
 
@@ -1596,6 +1596,16 @@ def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_o
     ext_rate : dict, optional
         The as-found rate statistics (:func:`~scananalyse.extremes.rate_statistics`),
         reused when the repaired floor keeps the rate maps as they are.
+    ext_depth : dict, optional
+        The as-found depth statistics (:func:`~scananalyse.extremes.depth_statistics`): the
+        fits behind the hidden part, reported with the repaired table as they are; refitted
+        on the repaired map only if None.
+    hidden : dict, optional
+        The hidden part of each zone **as found** (:func:`~scananalyse.evlife.hidden_parts`);
+        computed here from the as-found maps if None.  Repairs never change it.
+    older : (t_old_on_new, dt_years), optional
+        The older scan on the newer grid and the years between the scans
+        (:func:`~scananalyse.evlife.seen_lives`).
 
     Returns
     -------
@@ -1607,12 +1617,14 @@ def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_o
     -----
     Patched cells read the patch thickness (no loss so far, so the side attribution no
     longer matters there) and keep their measured rates (the underside one unless its
-    cause is removed); the repaired floor gets its own extreme-value statistics and life
-    (:mod:`scananalyse.extremes`, :mod:`scananalyse.evlife`) and is assessed as found is
-    (:func:`~scananalyse.assess.assess_zones`).
+    cause is removed).  The repaired floor is assessed as the floor as found is
+    (:func:`~scananalyse.assess.assess_zones`), with one difference only where the patches
+    are: the seen part of each zone is the repaired map's, while the part nobody scanned
+    keeps the as-found statistics and rates (``hidden``): patching scanned metal says
+    nothing about metal nobody saw (:mod:`scananalyse.evlife`).
     """
     from . import assess
-    from .evlife import add_eva_columns, merge_extremes, zone_lives
+    from .evlife import add_eva_columns, hidden_parts, merge_extremes, seen_lives, zone_lives
     from .extremes import depth_statistics, rate_statistics
 
     critical = zmap.labels == zmap.index("critical") if "critical" in zmap.names else None
@@ -1636,19 +1648,23 @@ def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_o
                                                    under_cause_removed=job.under_cause_removed)
     cens_rep = lr.censored & ~covered
     fit_kw = dict(pitch=new.pitch, block_mm=job.block_mm, seed=job.seed)
-    ext_d_rep = depth_statistics(t_rep, zmap, nominal=new.meta.nominal, censored=cens_rep,
-                                 threshold=new.meta.threshold, **fit_kw)
+    ext_d_rep = ext_depth if ext_depth is not None else depth_statistics(
+        t_rep, zmap, nominal=new.meta.nominal, censored=cens_rep, threshold=new.meta.threshold, **fit_kw)
     if ext_rate is not None and rt_rep is lr.rate_top and ru_rep is lr.rate_under:
         ext_r_rep = ext_rate  # the patches keep the measured rates: the same statistics
     else:
         ext_r_rep = rate_statistics(rt_rep, ru_rep, zmap, **fit_kw)
-    ext_l_rep = zone_lives(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal, censored=cens_rep,
-                           threshold=new.meta.threshold, methods=ext_d_rep, **fit_kw)
+    if hidden is None:
+        hidden = hidden_parts(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
+                              censored=lr.censored, threshold=new.meta.threshold, older=older, **fit_kw)
+    seen_rep = seen_lives(t_rep, rt_rep, ru_rep, mrt, zmap, nominal=new.meta.nominal, censored=cens_rep,
+                          older=older)
+    ext_l_rep = zone_lives(seen_rep, hidden)
     del cens_rep
     life_rep = assess.local_life_map(t_rep, rt_rep, ru_rep, mrt)
     zones_rep = assess.assess_zones(thickness=t_rep, side=side, rate_top=rt_rep,
                                     rate_under=ru_rep, zones=zmap, meta=new.meta, rules=rules, options=options,
-                                    extremes=merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep), pitch_mm=new.pitch,
+                                    extremes=merge_extremes(ext_d_rep, ext_r_rep, ext_l_rep, hidden), pitch_mm=new.pitch,
                                     rate_short_available=have_old)
     zones_rep = add_eva_columns(zones_rep, ext_d_rep, ext_l_rep)
     patches, patch_note = _own_patch_verdict(patches, checks, own_patches is not None)

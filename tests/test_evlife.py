@@ -7,8 +7,9 @@ import datetime as dt
 from types import SimpleNamespace
 
 import numpy as np
+import pytest
 
-from scananalyse.evlife import LIFE_HORIZON_Y, masked_nanmin, zone_lives
+from scananalyse.evlife import LIFE_HORIZON_Y, hidden_parts, masked_nanmin, seen_lives, zone_lives
 from scananalyse.extremes import MIN_BLOCK_MM, depth_map, fit_zone, zone_extremes
 from scananalyse.rates import RateOptions, compute_rates, fill_uncovered_rates
 from scananalyse.scan import FloorScan, ScanMeta
@@ -28,11 +29,19 @@ def _floor(seed=3, shape=(60, 60)):
     return thickness, zmap
 
 
-def _life(thickness, zmap, rate, mrt):
+def _parts(thickness, zmap, rate, mrt, **kw):
     r = np.full(thickness.shape, rate, np.float32)
-    out = zone_lives(thickness, r, np.zeros_like(r), np.full(thickness.shape, mrt, np.float32), zmap,
-                     nominal=NOM, censored=None, threshold=None, pitch=PITCH, block_mm=100.0, seed=0)
-    return out["interior"]["life_eva_y"]
+    m = np.full(thickness.shape, mrt, np.float32)
+    common = dict(nominal=NOM, censored=None)
+    hidden = hidden_parts(thickness, r, np.zeros_like(r), m, zmap, threshold=None, pitch=PITCH, block_mm=100.0,
+                          seed=0, **common, **kw)
+    seen = seen_lives(thickness, r, np.zeros_like(r), m, zmap, **common)
+    return seen, hidden
+
+
+def _life(thickness, zmap, rate, mrt):
+    seen, hidden = _parts(thickness, zmap, rate, mrt)
+    return zone_lives(seen, hidden)["interior"]["life_eva_y"]
 
 
 def test_life_is_zero_once_the_allowance_is_used_up():
@@ -50,7 +59,8 @@ def test_life_falls_as_the_rate_rises_and_scales_as_its_inverse():
     # With one rate everywhere the projected block maxima are the H = 0 maxima shifted by
     # r·H, so the fitted quantile shifts by r·H too and life·r (the margin the deepest
     # expected loss has left, in mm) is the same for every r, within the root search's
-    # 0.02 y tolerance and 0.05 y safety step.
+    # 0.02 y tolerance and 0.05 y safety step (the bootstrap of the predictive quantile is
+    # seeded alike at every horizon).
     thickness, zmap = _floor()
     rates = [0.1, 0.2, 0.4]
     lives = [_life(thickness, zmap, r, 2.0) for r in rates]
@@ -122,3 +132,69 @@ def test_fill_uncovered_rates_scales_the_indications_measured_ratio():
     # no indication: nothing changes
     same, n0 = fill_uncovered_rates(lr, new, old_on_new, np.zeros_like(labels))
     assert n0 == 0 and same is lr
+
+
+def test_hidden_prediction_is_the_law_of_the_maximum_over_the_unscanned_blocks():
+    # Block maxima of Gumbel(1.0, 0.2) cells; the deepest of T hidden blocks has the law F^T
+    # (Shibata 1994; Coles 2001 §3.1): its median is F^-1(0.5^(1/T)).  The predictive
+    # median mixes the bootstrap fits, so it lies within a few scale units of that value,
+    # and the predictive upper bound lies above the median.  Checked against scipy.stats.
+    from scipy import stats
+
+    thickness, zmap = _floor(seed=11, shape=(100, 100))
+    seen, hidden = _parts(thickness, zmap, 0.01, 2.0)
+    h = hidden["interior"]
+    assert h.source == "zone" and h.area_mm2 == pytest.approx(100 * 100 * PITCH ** 2)
+    # block maxima of 100 cells of Gumbel(1.0, 0.2): Gumbel(1.0 + 0.2 ln 100, 0.2)
+    truth = stats.gumbel_r(loc=1.0 + 0.2 * np.log(100.0), scale=0.2)
+    expected_p50 = truth.ppf(0.5 ** (1.0 / h.T))
+    assert abs(h.depth_p50_mm - expected_p50) < 0.15
+    assert h.depth_p95_mm > h.depth_p50_mm
+
+
+def test_repairs_never_lengthen_the_life_of_metal_nobody_saw():
+    # The hidden part is the floor's as found; a repaired seen part (every scanned cell
+    # patched: no loss, no rate) leaves the zone's extreme-value life at the hidden part's.
+    thickness, zmap = _floor(seed=5)
+    seen, hidden = _parts(thickness, zmap, 0.05, 6.0)
+    as_found = zone_lives(seen, hidden)["interior"]["life_eva_y"]
+    patched = np.full(thickness.shape, NOM, np.float32)
+    zero = np.zeros_like(patched)
+    seen_rep = seen_lives(patched, zero, zero, np.full(patched.shape, 6.0, np.float32), zmap, nominal=NOM)
+    repaired = zone_lives(seen_rep, hidden)["interior"]["life_eva_y"]
+    assert seen_rep["interior"] == LIFE_HORIZON_Y
+    assert repaired == pytest.approx(hidden["interior"].life_y) and as_found <= repaired
+    assert repaired < LIFE_HORIZON_Y
+
+
+def test_a_zone_too_small_for_a_fit_borrows_the_floors():
+    # A 3 x 3-cell zone inside a floor: no fit of its own; its hidden part uses the floor's
+    # fit, extrapolated to its own unscanned area, and says so.
+    thickness, _ = _floor(seed=2, shape=(80, 80))
+    labels = np.zeros(thickness.shape, np.int16)
+    labels[10:13, 10:13] = 1
+    zmap = SimpleNamespace(names=["interior", "sump"], labels=labels,
+                           areas_mm2=np.array([2.0 * (80 * 80 - 9) * PITCH ** 2, 9 * PITCH ** 2 + 0.5e6]))
+    seen, hidden = _parts(thickness, zmap, 0.02, 6.0)
+    h = hidden["sump"]
+    assert h.source == "floor" and "zone fit" in h.reason
+    assert h.area_mm2 == pytest.approx(0.5e6)
+    assert np.isfinite(h.life_y) and h.life_y < LIFE_HORIZON_Y
+
+
+def test_cells_the_older_scan_saw_are_projected_not_hidden():
+    thickness, zmap = _floor(seed=4)
+    t_new = thickness.copy()
+    t_new[:10, :] = np.nan  # the newer scan missed 10 rows; the older one saw them
+    t_old = thickness + np.float32(0.5)  # half a millimetre thicker ten years before
+    t_old[20, 20] = NOM - 5.0  # one deep pit only the older scan saw
+    seen0 = seen_lives(t_new, np.full(t_new.shape, 0.01, np.float32), np.zeros_like(t_new),
+                       np.full(t_new.shape, 2.0, np.float32), zmap, nominal=NOM)
+    older = (np.where(np.isnan(t_new), t_old, np.nan).astype(np.float32), 10.0)
+    t_old_only = older[0].copy()
+    t_old_only[20, 20] = np.nan
+    t_old_only[5, 5] = NOM - 7.5  # 7.5 mm deep then; at 0.01 mm/y it passes the 8 mm allowance in 50 y
+    seen1 = seen_lives(t_new, np.full(t_new.shape, 0.01, np.float32), np.zeros_like(t_new),
+                       np.full(t_new.shape, 2.0, np.float32), zmap, nominal=NOM, older=(t_old_only, 10.0))
+    # (8 − 7.5 − 0.01·10) / 0.01 = 40 y, shorter than anything the newer scan saw
+    assert seen1["interior"] == pytest.approx(40.0, abs=0.01) and seen1["interior"] < seen0["interior"]
