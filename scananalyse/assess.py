@@ -759,6 +759,11 @@ def _code_part(row, rtbc, rtip, mrt, c: _Context, flags, notes) -> float:
     return cr.interval_y
 
 
+#: Standard normal quantile added, times the scan's sigma, to the deepest observed loss
+#: in ``depth_eva_upper_mm`` (a one-sided 95 % bound on the reading). [-]
+OBSERVED_UPPER_Z = 1.645
+
+
 def _eva_part(row, name, mrt, c: _Context, flags) -> float:
     """The extreme-value life of a zone and its depth columns.
 
@@ -777,8 +782,10 @@ def _eva_part(row, name, mrt, c: _Context, flags) -> float:
     mid = h50 if h50 is not None else _attr(ex, "depth_eva_mm")
     bound = next((v for v in (h95, _attr(ex, "depth_pred_upper_mm"), _attr(ex, "depth_eva_upper_mm"))
                   if v is not None), None)
+    # the observed deepest as an upper bound carries the reading's own noise (one-sided 95 %)
+    obs_up = obs + OBSERVED_UPPER_Z * float(c.meta.sigma or 0.0)
     d_eva = max(obs, mid) if mid is not None else obs
-    d_up = max(obs, bound) if bound is not None else obs
+    d_up = max(obs_up, bound) if bound is not None else obs_up
     direct = _attr(ex, "life_eva_y")
     r_eva = _attr(ex, "rate_eva_mm_y")
     r_src = "extremes" if r_eva is not None else ""

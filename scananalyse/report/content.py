@@ -41,10 +41,20 @@ def actions(an) -> list[str]:
         if rep is not None and zone in rep.index:
             r = rep.loc[zone]
             if isinstance(r["limiting"], str) and r["limiting"] == "eva" and np.isfinite(r["interval_recommended_y"]):
-                hidden = max(0.0, float(r["area_m2"]) * (1 - float(r["coverage_pct"]) / 100))
-                out.append(f"After repair, zone {zone} is limited by the extreme-value life ({r['life_eva_y']:.1f} y): "
-                           f"the {hidden:.1f} m² nobody scanned may hide deeper pits; proving them up by hand UT (adding the "
-                           "readings to the newer scan file) and re-running can lengthen the interval.")
+                hidden = r.get("hidden_area_m2", np.nan)
+                if not np.isfinite(hidden):
+                    hidden = max(0.0, float(r["area_m2"]) * (1 - float(r["coverage_pct"]) / 100))
+                rflags = set(str(r["flags"]).split(";")) if isinstance(r["flags"], str) else set()
+                if "eva-below-mrt" in rflags or float(r["interval_recommended_y"]) == 0.0:
+                    out.append(f"Zone {zone}: the {hidden:.1f} m² nobody scanned may already hold metal below MRT "
+                               f"(deepest loss expected there up to {r['depth_hidden_p95_mm']:.2f} mm, 95 % bound): "
+                               "prove up the unscanned area by hand UT before return to service; repairs of scanned "
+                               "metal do not change this. Hand UT readings (--readings) and a re-run replace the "
+                               "prediction with measurements.")
+                else:
+                    out.append(f"After repair, zone {zone} is limited by the extreme-value life ({r['life_eva_y']:.1f} y): "
+                               f"the {hidden:.1f} m² nobody scanned may hide deeper pits; hand UT readings there "
+                               "(--readings) and a re-run can lengthen the interval.")
     return out
 
 

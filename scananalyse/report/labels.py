@@ -29,8 +29,12 @@ LABELS = {
     "n_scanned": "Cells scanned",
     "t_min_mm": "Thinnest reading",
     "depth_max_mm": "Deepest loss measured",
-    "depth_eva_mm": "Deepest loss expected over the zone (extreme-value estimate)",
-    "depth_eva_upper_mm": "Upper bound of that estimate",
+    "depth_eva_mm": "Deepest loss of the zone (the greater of the deepest observed and the median predicted where nobody scanned)",
+    "depth_eva_upper_mm": "Upper bound of the zone's deepest loss (the greater of the observed and the 95 % predictive bound)",
+    "depth_hidden_p50_mm": "Deepest loss predicted where nobody scanned: median",
+    "depth_hidden_p95_mm": "Deepest loss predicted where nobody scanned: 95 % upper bound",
+    "hidden_area_m2": "Area of the zone neither scan saw",
+    "eva_source": "Whose extreme-value fit the unscanned part uses",
     "depth_pred_upper_mm": "Predictive upper bound of the deepest loss",
     "depth_eva_life_mm": "Deepest loss used for the extreme-value life",
     "rate_top_max_mm_y": "Fastest top-side rate",
@@ -148,6 +152,10 @@ FLAGS_EXPLAINED = {
     "no-age": "The scan gives no installation date: age-based rates and the code formula "
               "cannot be computed.",
     "no-eva": "No extreme-value estimate could be made for the zone (too few blocks).",
+    "eva-borrowed": "The zone is too small for an extreme-value fit of its own: its unscanned part is "
+                    "judged with the whole floor's fit, extrapolated to the zone's own unscanned area.",
+    "eva-worst-seen": "No extreme-value fit could be made anywhere on the floor: the unscanned metal is taken "
+                      "to be as deep as the deepest loss seen and to grow at the fastest measured rate.",
     "eva-rate-assumed": "The extreme-value life uses the zone's fastest measured rates, not a "
                         "fitted rate extreme.",
     "eva-below-mrt": "The extreme-value estimate says the unscanned or below-threshold part of "
