@@ -99,6 +99,9 @@ COARSE_MAX_PITCH_MM = 160.0
 #: The rotation contrast must also exceed this many times the NCC noise level of two unrelated
 #: floors of the same interior size (a featureless floor's sweep is the maximum of noise).
 ROT_CONTRAST_NOISE = 5.0
+#: ... this many times on the whole-range stage's coarser level: its noise level is higher (a
+#: quarter of the cells), and its sweep's median is taken over the whole circle.
+ROT_CONTRAST_NOISE_CIRCLE = 3.0
 #: An entirely unscanned block of this size marks a large unscanned area (weld seams are narrower). [mm]
 LARGE_AREA_MM = 80.0
 #: Feature value of narrow unscanned cells (weld seams, plate edges); loss counts up to 1.
@@ -137,6 +140,11 @@ CANDIDATE_FRACTION = 0.6
 DISTINCT_DEG = 2.0
 #: Two candidates whose loss-pattern correlations differ by less than this are ambiguous.
 AMBIGUITY_MARGIN = 0.1
+#: A loss pattern is seen when at least LOSS_PATTERN_CELLS compared cells show a smoothed loss
+#: feature above LOSS_PATTERN_MIN (0.1 = 2.5 % of nominal over a blob of a few cells; reading
+#: noise of 0.1 mm smoothed by one cell stays near 0.02).
+LOSS_PATTERN_MIN = 0.1
+LOSS_PATTERN_CELLS = 10
 #: Smallest loss-pattern correlation of a reliable registration (floors with loss).
 MIN_LOSS_MATCH = 0.2
 #: Control points disagree when their RMS residual exceeds this many pitches of the newer scan ...
@@ -1389,20 +1397,28 @@ class _LossLevel:
     pitch: float
 
 
-def _loss_pyramid(scan: FloorScan, min_cells: int = 16) -> list[_LossLevel]:
+def _loss_pyramid(scan: FloorScan, feature0: np.ndarray | None = None, min_cells: int = 16) -> list[_LossLevel]:
     """Pyramid of the scan's *loss pattern*: ``clip((level - t) / (0.25 nominal), 0, 1)`` with
     ``level`` the median scanned thickness (the general floor), so general thinning (a UT scan's
-    loss everywhere) is left out and only pits, patches and local loss remain."""
+    loss everywhere) is left out and only pits, patches and local loss remain.
+
+    ``feature0``, the scan's feature image (:func:`feature_image`), saves a pass: the loss
+    pattern is then ``clip(feature - (nominal - level) / (0.25 nominal), 0, 1)`` (saturating at
+    that offset below 1 where the feature saturates)."""
     t = scan.thickness
     sample = t.ravel()[::max(1, t.size // 200000)]
     sample = sample[np.isfinite(sample)]
     level = float(np.median(sample)) if sample.size else float(scan.meta.nominal)
-    img = np.float32(level) - t
-    img *= np.float32(1.0 / (LOSS_SCALE_FRACTION * scan.meta.nominal))
+    scale = np.float32(1.0 / (LOSS_SCALE_FRACTION * scan.meta.nominal))
+    if feature0 is not None:
+        img = feature0 - np.float32((scan.meta.nominal - level) * scale)
+    else:
+        img = np.float32(level) - t
+        img *= scale
     np.clip(img, 0.0, 1.0, out=img)
     cov = np.isfinite(t)
-    img[~cov] = 0.0
-    levels = [_LossLevel(img, cov.astype(np.float32), scan.x0, scan.y0, scan.pitch)]
+    np.copyto(img, np.float32(0.0), where=~cov)
+    levels = [_LossLevel(img, cov, scan.x0, scan.y0, scan.pitch)]
     while min(levels[-1].img.shape) // 2 >= min_cells:
         lv = levels[-1]
         levels.append(_LossLevel(_half(lv.img), _half(lv.cov), lv.x0 + lv.pitch / 2,
@@ -1419,14 +1435,15 @@ def loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pit
     new, old : the two scans.
     transform : old-to-new transform.
     pitch_mm : cell size the patterns are compared at (block means of 2^k cells, smoothed by
-        one cell); default the coarsest level of at most 4 x :data:`QUALITY_CELLS`
+        one cell); default the finest level of at most 2 x :data:`QUALITY_CELLS`
         cells. [mm]
     pyramids : ``(new, old)`` loss pyramids from an earlier call (internal reuse), or None.
 
     Returns
     -------
-    Pearson correlation (-1 to 1) of the loss over the cells scanned in both, NaN when fewer
-    than 100 such cells or no loss varies. [-]
+    Pearson correlation (-1 to 1) of the loss over the cells scanned in both; NaN when fewer
+    than 100 such cells, or fewer than :data:`LOSS_PATTERN_CELLS` of them show loss above
+    :data:`LOSS_PATTERN_MIN` in either scan (no pattern, only reading noise). [-]
 
     Notes
     -----
@@ -1439,13 +1456,14 @@ def loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pit
     """
     ln, lo = pyramids if pyramids is not None else (_loss_pyramid(new), _loss_pyramid(old))
     if pitch_mm is None:
-        a = next((lv for lv in ln if lv.img.size <= 4 * QUALITY_CELLS), ln[-1])
+        a = next((lv for lv in ln if lv.img.size <= 2 * QUALITY_CELLS), ln[-1])
     else:
         a = min(ln, key=lambda lv: abs(math.log(lv.pitch / pitch_mm)))
     b = min(lo, key=lambda lv: abs(math.log(lv.pitch / a.pitch)))
     sm = dict(sigma=1.0, mode="constant", truncate=2.0)
-    ai, ac = _ndi.gaussian_filter(a.img, **sm), _ndi.gaussian_filter(a.cov, **sm)
-    bi, bc = _ndi.gaussian_filter(b.img, **sm), _ndi.gaussian_filter(b.cov, **sm)
+    f32 = np.float32
+    ai, ac = _ndi.gaussian_filter(a.img, **sm), _ndi.gaussian_filter(a.cov.astype(f32, copy=False), **sm)
+    bi, bc = _ndi.gaussian_filter(b.img, **sm), _ndi.gaussian_filter(b.cov.astype(f32, copy=False), **sm)
     stride = max(1, int(math.ceil(math.sqrt(ai.size / QUALITY_CELLS))))
     rows = np.arange(0, ai.shape[0], stride)
     cols = np.arange(0, ai.shape[1], stride)
@@ -1461,6 +1479,9 @@ def loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pit
         return float("nan")
     x = fv[m].astype(np.float64) / fc[m]
     y = gv[m].astype(np.float64) / gc[m]
+    # reading noise alone is no pattern: some loss must stand out in both
+    if min(np.count_nonzero(x > LOSS_PATTERN_MIN), np.count_nonzero(y > LOSS_PATTERN_MIN)) < LOSS_PATTERN_CELLS:
+        return float("nan")
     x -= x.mean()
     y -= y.mean()
     den = math.sqrt(float(x @ x) * float(y @ y))
@@ -1633,6 +1654,7 @@ def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | No
         res_ws = _masked_ncc_sweep(new_w, old_w, angles_w, shift, max_shift_mm + new_w.pitch, only_seams=True)
         peaks_w = np.maximum(np.array([r[0] for r in res_ws]), 0.0)
         contrast, noise = _contrast(peaks_w, peaks_w, new_w, circular)
+        details["rotation_contrast_factor"] = ROT_CONTRAST_NOISE_CIRCLE
         above = peaks_w - np.median(peaks_w)
         picks = _local_maxima(above, circular, CANDIDATE_FRACTION, n_candidates)
         # a parabolic vertex per pick, then a window of +-0.75 steps around it at the fine step
@@ -2038,7 +2060,7 @@ def _auto(new: FloorScan, old: FloorScan, *, cp_tr, seed, half_rot, shift_r, n_s
     details.update(search.details)
     timings["coarse_search"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    loss_pyr = (_loss_pyramid(new), _loss_pyramid(old))
+    loss_pyr = (_loss_pyramid(new, pyr[0][0].img), _loss_pyramid(old, pyr[1][0].img))
     ib, cands, ambiguity = _resolve_candidates(new, old, search, loss_pyr)
     timings["candidates"] = time.perf_counter() - t0
     start = search.candidates[ib]
@@ -2056,14 +2078,17 @@ def _auto(new: FloorScan, old: FloorScan, *, cp_tr, seed, half_rot, shift_r, n_s
                              pyramids=pyr, loss_pyramids=loss_pyr)
     timings["score"] = time.perf_counter() - t0
     reasons = []
-    if ambiguity:
-        reasons.append(ambiguity)
     noise = search.contrast_noise
-    need = max(th["min_rotation_contrast"], ROT_CONTRAST_NOISE * noise)
+    factor = search.details.get("rotation_contrast_factor", ROT_CONTRAST_NOISE)
+    need = max(th["min_rotation_contrast"], factor * noise)
     if search.rotation_contrast is not None and search.rotation_contrast < need:
         reasons.append(f"flat rotation sweep (contrast {search.rotation_contrast:.3f} < {need:.3g}, the larger of "
-                       f"{th['min_rotation_contrast']:g} and {ROT_CONTRAST_NOISE:g} x the noise level {noise:.3f}): "
+                       f"{th['min_rotation_contrast']:g} and {factor:g} x the noise level {noise:.3f}): "
                        "the floor shows too few features (seams, plate edges, pits) to fix the rotation")
+    if reasons or q.overlap_pct < 1.0:
+        ambiguity = None            # candidates of a flat sweep (or of no overlap) are noise
+    if ambiguity:
+        reasons.insert(0, ambiguity)
     if not rinfo["converged"]:
         reasons.append("the refinement did not converge")
     else:
@@ -2093,7 +2118,7 @@ def _choose(auto_run, cp_tr, cp_reasons, auto, details, notes) -> tuple[RigidTra
             ddx, ddy = np.subtract(auto_run["transform"].apply(0.0, 0.0), cp_tr.apply(0.0, 0.0))
             details["auto_minus_control_at_origin_mm"] = [float(ddx), float(ddy)]
         return auto_run["transform"], ("auto+control-points" if cp_tr is not None else "auto"), not cp_reasons
-    if auto_run["ambiguous"]:
+    if auto_run["ambiguous"] and len(auto_run["reasons"]) == 1:
         notes.append("the best-matching candidate is returned (method auto-ambiguous); do not use it for rates")
         return auto_run["transform"], "auto-ambiguous", False
     if auto_run["coarse_only"] and len(auto_run["reasons"]) == 1:
