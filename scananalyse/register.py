@@ -974,25 +974,22 @@ def _ncc_peak(st: _SweepSetup, ic: int, g: np.ndarray, m2: np.ndarray, pitch: fl
               min_overlap_frac: float) -> tuple[float, float, float]:
     """Best (ncc, tau_x [mm], tau_y [mm]) of channel ``ic`` against the older image ``g``
     (already resampled onto the padded newer grid) with mask ``m2``; Padfield (2012) eq. (5)-(8)."""
-    kw = dict(s=st.shape, workers=-1)
+    # one batched forward (3 images) and one batched inverse (6 products) transform: small
+    # levels are dominated by the per-call overhead, large ones use both workers on the batch
+    kw = dict(s=st.shape, axes=(-2, -1), workers=-1 if st.shape[0] * st.shape[1] >= 1 << 16 else 1)
     fa, fa2, fm1, n1 = st.pre[ic]
     g = g.astype(np.float32) * m2
-    fm2 = _fft.rfft2(m2, **kw)
-    fb = _fft.rfft2(g, **kw)
-    fb2 = _fft.rfft2(g * g, **kw)
-
-    def corr(p, q):
-        full = _fft.irfft2(p * np.conj(q), **kw)
-        return full[np.ix_(st.win_r, st.win_c)].astype(np.float64)
-
-    c_mm = corr(fm1, fm2)
+    fm2, fb, fb2 = _fft.rfft2(np.stack([m2, g, g * g]), **kw)
+    prods = np.stack([fm1 * np.conj(fm2), fa * np.conj(fb), fa * np.conj(fm2), fm1 * np.conj(fb),
+                      fa2 * np.conj(fm2), fm1 * np.conj(fb2)])
+    full = _fft.irfft2(prods, **kw)
+    del prods
+    c_mm, c_ab, c_am, c_mb, c_a2m, c_mb2 = full[:, st.win_r][:, :, st.win_c].astype(np.float64)
     cm = np.maximum(c_mm, 1e-9)
-    c_am = corr(fa, fm2)
-    c_mb = corr(fm1, fb)
     with np.errstate(divide="ignore", invalid="ignore"):
-        num = corr(fa, fb) - c_am * c_mb / cm
-        va = corr(fa2, fm2) - c_am ** 2 / cm
-        vb = corr(fm1, fb2) - c_mb ** 2 / cm
+        num = c_ab - c_am * c_mb / cm
+        va = c_a2m - c_am ** 2 / cm
+        vb = c_mb2 - c_mb ** 2 / cm
         ncc = num / np.sqrt(np.maximum(va, 0) * np.maximum(vb, 0))
     # variances below 1e-4 per cell (feature std 0.01) are no features, and also the
     # level of the single-precision round-off of these sums
@@ -1397,28 +1394,28 @@ class _LossLevel:
     pitch: float
 
 
-def _loss_pyramid(scan: FloorScan, feature0: np.ndarray | None = None, min_cells: int = 16) -> list[_LossLevel]:
+def _loss_pyramid(scan: FloorScan, min_cells: int = 16) -> list[_LossLevel]:
     """Pyramid of the scan's *loss pattern*: ``clip((level - t) / (0.25 nominal), 0, 1)`` with
     ``level`` the median scanned thickness (the general floor), so general thinning (a UT scan's
     loss everywhere) is left out and only pits, patches and local loss remain.
 
-    ``feature0``, the scan's feature image (:func:`feature_image`), saves a pass: the loss
-    pattern is then ``clip(feature - (nominal - level) / (0.25 nominal), 0, 1)`` (saturating at
-    that offset below 1 where the feature saturates)."""
+    The finest level is the scan itself on grids of up to 4 x :data:`QUALITY_CELLS` cells; on
+    larger grids every 2nd (4th, ...) cell, keeping at least that many (pits span 4-12 cells,
+    and the comparison runs at most at 2 x :data:`QUALITY_CELLS` cells)."""
     t = scan.thickness
     sample = t.ravel()[::max(1, t.size // 200000)]
     sample = sample[np.isfinite(sample)]
     level = float(np.median(sample)) if sample.size else float(scan.meta.nominal)
-    scale = np.float32(1.0 / (LOSS_SCALE_FRACTION * scan.meta.nominal))
-    if feature0 is not None:
-        img = feature0 - np.float32((scan.meta.nominal - level) * scale)
-    else:
-        img = np.float32(level) - t
-        img *= scale
+    k = 1
+    while t.size / (4 * k * k) >= 4 * QUALITY_CELLS:
+        k *= 2
+    tk = t[::k, ::k]
+    img = np.float32(level) - tk
+    img *= np.float32(1.0 / (LOSS_SCALE_FRACTION * scan.meta.nominal))
     np.clip(img, 0.0, 1.0, out=img)
-    cov = np.isfinite(t)
+    cov = np.isfinite(tk)
     np.copyto(img, np.float32(0.0), where=~cov)
-    levels = [_LossLevel(img, cov, scan.x0, scan.y0, scan.pitch)]
+    levels = [_LossLevel(img, cov, scan.x0, scan.y0, scan.pitch * k)]
     while min(levels[-1].img.shape) // 2 >= min_cells:
         lv = levels[-1]
         levels.append(_LossLevel(_half(lv.img), _half(lv.cov), lv.x0 + lv.pitch / 2,
@@ -1587,6 +1584,21 @@ def _angle_diff(a: float, b: float) -> float:
     return abs(_wrap_deg(a - b))
 
 
+def _climb(new_c: _Level, old_c: _Level, angles: np.ndarray, res: list, step: float, shift, max_shift_mm: float,
+           max_ext: int = 4) -> tuple[np.ndarray, list]:
+    """Extend a candidate's window by whole windows while its best angle lies on an edge."""
+    for _ in range(max_ext):
+        ib = int(np.argmax([r[0] for r in res]))
+        if 0 < ib < len(res) - 1:
+            break
+        n = len(angles)
+        more = angles[0] - step * np.arange(n, 0, -1) if ib == 0 else angles[-1] + step * np.arange(1, n + 1)
+        got = _masked_ncc_sweep(new_c, old_c, more, shift, max_shift_mm)
+        angles, res = (np.concatenate([more, angles]), got + res) if ib == 0 else \
+            (np.concatenate([angles, more]), res + got)
+    return angles, res
+
+
 def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | None = None,
                   half_range_deg: float = 180.0, max_shift_mm: float = 400.0,
                   n_candidates: int = N_CANDIDATES, pyramids=None) -> CoarseSearch:
@@ -1616,7 +1628,7 @@ def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | No
     :data:`WIDE_SWEEP_DEG` the sweep runs in two stages: the whole range on a level of about
     :data:`CIRCLE_CELLS` cells across at a step of :data:`CIRCLE_STEP_CELLS` of its cells at the
     rim, keeping the local maxima within :data:`CANDIDATE_FRACTION` of the best; then each of
-    them again, ±1.5 steps, on the finer coarse level (:data:`COARSE_CELLS`) at a step of one
+    them again, ±0.5 steps around the vertex of its peak, on the finer coarse level (:data:`COARSE_CELLS`) at a step of one
     of its cells at the rim.
 
     References
@@ -1651,14 +1663,16 @@ def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | No
             nw = int(math.ceil(half_range_deg / wstep))
             angles_w = centre.rotation_deg + wstep * np.arange(-nw, nw + 1)
         # seams, plate edges and pits only: the round coverage outline fits at every angle
+        t0 = time.perf_counter()
         res_ws = _masked_ncc_sweep(new_w, old_w, angles_w, shift, max_shift_mm + new_w.pitch, only_seams=True)
+        details["circle_time_s"] = time.perf_counter() - t0
         peaks_w = np.maximum(np.array([r[0] for r in res_ws]), 0.0)
         contrast, noise = _contrast(peaks_w, peaks_w, new_w, circular)
         details["rotation_contrast_factor"] = ROT_CONTRAST_NOISE_CIRCLE
         above = peaks_w - np.median(peaks_w)
         picks = _local_maxima(above, circular, CANDIDATE_FRACTION, n_candidates)
-        # a parabolic vertex per pick, then a window of +-0.75 steps around it at the fine step
-        m = max(1, int(math.ceil(0.75 * wstep / fstep)))
+        # a parabolic vertex per pick, then a window of +-0.5 steps around it at the fine step
+        m = max(1, int(math.ceil(0.5 * wstep / fstep)))
         windows, strength = [], []
         for j in picks:
             n = len(peaks_w)
@@ -1678,6 +1692,8 @@ def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | No
         narrow = len(windows) == 1 and half_range_deg <= WIDE_SWEEP_DEG
         out = _masked_ncc_sweep(new_c, old_c, angles, shift, max_shift_mm + new_c.pitch, seams=narrow)
         res = out[0] if narrow else out
+        if not narrow:
+            angles, res = _climb(new_c, old_c, angles, res, fstep, shift, max_shift_mm + new_c.pitch)
         cands.append(_window_best(res, angles, fstep, centre) + (stren,))
         if narrow:
             peaks = np.array([r[0] for r in res])
@@ -2060,7 +2076,7 @@ def _auto(new: FloorScan, old: FloorScan, *, cp_tr, seed, half_rot, shift_r, n_s
     details.update(search.details)
     timings["coarse_search"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    loss_pyr = (_loss_pyramid(new, pyr[0][0].img), _loss_pyramid(old, pyr[1][0].img))
+    loss_pyr = (_loss_pyramid(new), _loss_pyramid(old))
     ib, cands, ambiguity = _resolve_candidates(new, old, search, loss_pyr)
     timings["candidates"] = time.perf_counter() - t0
     start = search.candidates[ib]
