@@ -16,29 +16,22 @@ Method (documented in ``docs/registration.md``):
    the floor, margin, obstructions: their outline changes between outages),
    ``clip(loss / (0.25 nominal), 0, 1)`` where scanned (pits and patches).
    A pyramid of 2x2 block means of it.
-2. *Coarse search* on a pyramid level of about 128+ cells across, at most 160 mm
-   (coverage outline added back at weight 0.5): for each
-   rotation of a sweep over the allowed range, the older level is resampled
-   (bilinear) onto the newer level's grid, padded by the largest allowed shift,
-   and a masked normalised cross-correlation over all shifts is computed with
-   FFTs (Padfield 2012); the best (angle, shift) wins, with parabolic sub-step
-   interpolation.  The same sweep over the floor interior without the outline gives
-   the rotation contrast.
-3. *Refinement*, coarse to fine down to the newer scan's pitch: Gauss-Newton
+2. :func:`coarse_search`: a masked NCC over all shifts, computed with FFTs (Padfield 2012),
+   for each rotation of a sweep.  Over the whole circle (the default) in two stages: every
+   angle on a level of about 48+ cells across, floor interior only (seams, plate edges,
+   pits), keeping the few best local maxima; then each of them on the finer coarse level
+   (128+ cells, at most 160 mm, coverage outline added back at weight 0.5).
+3. Candidates of other rotations (plate seams repeat under 180 and 90 degrees) are told
+   apart by :func:`loss_match`, the correlation of the corrosion patterns; when it cannot
+   decide the result says so (``ambiguous``, not reliable).
+4. :func:`refine`, coarse to fine down to the newer scan's pitch: Gauss-Newton
    (Lucas-Kanade, forward additive) over (theta, dx, dy) plus a gain and offset,
-   on the cells of the newer feature image with the strongest gradients,
-   Huber-weighted, with the older image sampled bilinearly; Levenberg-Marquardt
-   damping with a parabolic line search along each step.  A level that does not
-   converge is restarted (heavier damping, then the next-best coarse candidates);
-   failing that the finest converged level, or the coarse estimate, is kept.
-4. *Sub-cell stage*: the seam bands fix the shift only to within a cell, so the
-   translation is corrected by the mean displacement of the loss-weighted centroids
-   of the pits matched between the two scans, when enough pits match.
-5. *Quality*: the masked NCC of the aligned feature images (score, 0-1), the
-   overlap of the scanned areas, the thickness RMS difference in the overlap,
-   the rotation contrast of the sweep and the Gauss-Newton standard errors;
-   a featureless floor is flagged with :class:`~scananalyse.errors.RegistrationWarning`
-   and the result falls back to the control points or the identity.
+   Huber-weighted, Levenberg-Marquardt damped with a parabolic line search; then the
+   sub-cell translation from the matched pit centroids.
+5. :func:`registration_quality`: score, overlap, thickness residual, loss-pattern match,
+   with the reasons the estimate is not reliable; with control points
+   (:func:`fit_control_points`) also their residuals and the overlap they leave.
+   An unreliable result is flagged with :class:`~scananalyse.errors.RegistrationWarning`.
 
 References
 ----------
@@ -259,8 +252,8 @@ class Registration:
     control_names : names of the control points, if given.
     auto_transform : the automatic estimate, also when it was not used (None if not run).
     rotation_contrast : NCC of the seams, plate edges and pits (floor interior, no coverage outline)
-        at the chosen angle of the rotation sweep minus its median over the sweep (low = rotation
-        unobservable).
+        at the chosen angle of the rotation sweep minus its median over the sweep (the whole
+        circle by default; low = rotation unobservable).
     std_rotation_deg, std_shift_mm : approximate one-sigma errors from the Gauss-Newton fit. [deg], [mm]
     timings_s : wall time per stage. [s]
     details : other figures (levels, pitches, iterations) for the record.
@@ -322,7 +315,9 @@ class Registration:
             "std_shift_mm": num(self.std_shift_mm),
             "matrix": self.transform.matrix.tolist(),
             "ambiguous": bool(self.ambiguous),
-            "candidates": self.candidates,
+            "candidates": (None if self.candidates is None else
+                           [{k: (num(v) if isinstance(v, float) else v) for k, v in c.items()}
+                            for c in self.candidates]),
             "loss_match": num(self.loss_match),
             "timings_s": {k: float(v) for k, v in self.timings_s.items()},
             "details": self.details,
@@ -2073,6 +2068,8 @@ def _auto(new: FloorScan, old: FloorScan, *, cp_tr, seed, half_rot, shift_r, n_s
     t0 = time.perf_counter()
     centre = cp_tr if cp_tr is not None else (seed or RigidTransform())
     search = coarse_search(new, old, centre=centre, half_range_deg=half_rot, max_shift_mm=shift_r, pyramids=pyr)
+    if "circle_time_s" in search.details:          # a timing: kept out of the (reproducible) details
+        timings["circle_search"] = search.details.pop("circle_time_s")
     details.update(search.details)
     timings["coarse_search"] = time.perf_counter() - t0
     t0 = time.perf_counter()

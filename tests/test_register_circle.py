@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import datetime as dt
 import functools
+import json
 import math
 from pathlib import Path
 
@@ -158,7 +159,8 @@ def test_symmetric_floor_without_loss_is_ambiguous():
     assert not reg.reliable and reg.ambiguous and reg.method == "auto-ambiguous"
     angles = sorted(abs(c["rotation_deg"]) for c in reg.candidates)
     assert angles[0] <= 1.0 and angles[-1] >= 179.0
-    assert reg.to_dict()["ambiguous"] is True
+    d = json.loads(json.dumps(reg.to_dict(), allow_nan=False))     # no NaN in registration.json
+    assert d["ambiguous"] is True and d["method"] == "auto-ambiguous" and len(d["candidates"]) >= 2
 
 
 # --------------------------------------------------------------------------------------
