@@ -188,13 +188,15 @@ def test_old_scan_100_m_away_not_reliable():
     assert any("do not overlap" in w for w in reg.warnings)
 
 
-def test_control_points_moving_floor_away_not_reliable():
-    # Control points whose fit moves the floor 100 m away: 0 % overlap must not be reliable.
+@pytest.mark.parametrize("auto", [False, True])
+def test_control_points_moving_floor_away_not_reliable(auto):
+    # Control points whose fit moves the floor 100 m away: 0 % overlap must not be reliable
+    # (with auto=True the search around the fit finds nothing and falls back to it).
     p = pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=1)
     pts = np.array([[-1500.0, 0.0], [1500.0, 300.0], [0.0, -1500.0]])
     nx, ny = p.truth.transform.apply(pts[:, 0], pts[:, 1])
     with pytest.warns(RegistrationWarning, match="small overlap"):
-        reg = register(p.new, p.old, control_points=(pts, np.column_stack([nx + 100_000.0, ny])), auto=False)
+        reg = register(p.new, p.old, control_points=(pts, np.column_stack([nx + 100_000.0, ny])), auto=auto)
     assert reg.method == "control-points" and not reg.reliable
     assert reg.overlap_pct < 1.0
 
