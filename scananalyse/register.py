@@ -1623,7 +1623,8 @@ def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | No
     :data:`WIDE_SWEEP_DEG` the sweep runs in two stages: the whole range on a level of about
     :data:`CIRCLE_CELLS` cells across at a step of :data:`CIRCLE_STEP_CELLS` of its cells at the
     rim, keeping the local maxima within :data:`CANDIDATE_FRACTION` of the best; then each of
-    them again, ±0.5 steps around the vertex of its peak, on the finer coarse level (:data:`COARSE_CELLS`) at a step of one
+    them again, ±0.5 steps around the vertex of its peak (extended while the best angle is
+    on the window's edge), on the finer coarse level (:data:`COARSE_CELLS`) at a step of one
     of its cells at the rim.
 
     References

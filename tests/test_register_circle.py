@@ -123,7 +123,8 @@ def _symmetric_floor(transform: RigidTransform, seed: int, pits: int) -> FloorSc
         prng = np.random.default_rng(99)                  # the same pits in both outages
         for px, py in prng.uniform(-1800.0, 1800.0, size=(pits, 2)):
             t -= (1.5 * np.exp(-((PX - px) ** 2 + (PY - py) ** 2) / (2 * 60.0 ** 2))).astype(np.float32)
-    seam = (np.abs(((PY + 900.0) % 1800.0) - 900.0) >= 880.0) | (np.abs(PX) < 20.0) | (np.abs(np.abs(PX) - 2400.0) < 20.0)
+    seam = ((np.abs(((PY + 900.0) % 1800.0) - 900.0) >= 880.0) | (np.abs(PX) < 20.0)
+            | (np.abs(np.abs(PX) - 2400.0) < 20.0))
     t[seam] = np.nan
     t[np.hypot(PX, PY) > r - 60.0] = np.nan
     return FloorScan(t, xs[0], xs[0], pitch, ScanMeta(inspected=dt.date(2020, 1, 1), nominal=6.35))
