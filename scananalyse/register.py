@@ -138,6 +138,11 @@ AMBIGUITY_MARGIN = 0.1
 #: noise of 0.1 mm smoothed by one cell stays near 0.02).
 LOSS_PATTERN_MIN = 0.1
 LOSS_PATTERN_CELLS = 10
+#: The loss-match rule of the reliability check applies only when both scans show at least this
+#: many compared cells with loss: a sparse pattern (a few pits, the deepest ones repaired between
+#: the outages) can fail to correlate on one floor (3 m synthetic floors: 42-175 such cells,
+#: one at 0.04; unrelated 5 m floors: 439-547 cells, -0.01 to 0.01).
+LOSS_RULE_CELLS = 200
 #: Smallest loss-pattern correlation of a reliable registration (floors with loss).
 MIN_LOSS_MATCH = 0.2
 #: Control points disagree when their RMS residual exceeds this many pitches of the newer scan ...
@@ -1446,6 +1451,12 @@ def loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pit
     floor's two outages is well above that of two floors (measured on synthetic pairs,
     ``tests/test_register_circle.py``).
     """
+    return _loss_match(new, old, transform, pitch_mm=pitch_mm, pyramids=pyramids)[0]
+
+
+def _loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pitch_mm: float | None = None,
+                pyramids=None) -> tuple[float, int]:
+    """:func:`loss_match` and the smaller of the two scans' counts of compared cells with loss."""
     ln, lo = pyramids if pyramids is not None else (_loss_pyramid(new), _loss_pyramid(old))
     if pitch_mm is None:
         a = next((lv for lv in ln if lv.img.size <= 2 * QUALITY_CELLS), ln[-1])
@@ -1468,16 +1479,17 @@ def loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pit
     fc = ac[np.ix_(rows, cols)].ravel()
     m = (fc > 0.75) & (gc > 0.75)
     if np.count_nonzero(m) < 100:
-        return float("nan")
+        return float("nan"), 0
     x = fv[m].astype(np.float64) / fc[m]
     y = gv[m].astype(np.float64) / gc[m]
     # reading noise alone is no pattern: some loss must stand out in both
-    if min(np.count_nonzero(x > LOSS_PATTERN_MIN), np.count_nonzero(y > LOSS_PATTERN_MIN)) < LOSS_PATTERN_CELLS:
-        return float("nan")
+    n_loss = min(np.count_nonzero(x > LOSS_PATTERN_MIN), np.count_nonzero(y > LOSS_PATTERN_MIN))
+    if n_loss < LOSS_PATTERN_CELLS:
+        return float("nan"), int(n_loss)
     x -= x.mean()
     y -= y.mean()
     den = math.sqrt(float(x @ x) * float(y @ y))
-    return float(x @ y / den) if den > 1e-12 * m.sum() else float("nan")
+    return (float(x @ y / den) if den > 1e-12 * m.sum() else float("nan")), int(n_loss)
 
 
 # --------------------------------------------------------------------------------------
@@ -1902,8 +1914,9 @@ def registration_quality(new: FloorScan, old: FloorScan, transform: RigidTransfo
     transform : old-to-new transform to judge.
     min_score : smallest feature-image NCC of a reliable alignment. [-]
     min_overlap_pct : smallest overlap of a reliable alignment. [%]
-    min_loss_match : smallest loss-pattern correlation of a reliable alignment (a floor
-        without loss, NaN, is not judged by it). [-]
+    min_loss_match : smallest loss-pattern correlation of a reliable alignment; judged only
+        where both scans show at least :data:`LOSS_RULE_CELLS` compared cells with loss (a
+        floor without loss, or with a sparse pattern, is not judged by it). [-]
     check_score : judge by ``min_score`` (False for a control-point fit, whose points
         the engineer chose). [-]
     pyramids, loss_pyramids : feature and loss pyramids from an earlier call (internal reuse).
@@ -1922,7 +1935,7 @@ def registration_quality(new: FloorScan, old: FloorScan, transform: RigidTransfo
     score_lv = pn[min(1, len(pn) - 1)] if pn[0].img.size > 4 * QUALITY_CELLS else pn[0]
     score = _ncc_aligned(score_lv, _closest_level(po, score_lv.pitch), transform)
     overlap, rms = _thickness_quality(new, old, transform)
-    lm = loss_match(new, old, transform, pyramids=loss_pyramids) if overlap > 0 else float("nan")
+    lm, n_loss = _loss_match(new, old, transform, pyramids=loss_pyramids) if overlap > 0 else (float("nan"), 0)
     reasons = []
     if overlap < min_overlap_pct:
         hint = (": the scans do not overlap (are both in the tank-centred floor frame?)"
@@ -1930,7 +1943,7 @@ def registration_quality(new: FloorScan, old: FloorScan, transform: RigidTransfo
         reasons.append(f"small overlap {overlap:.1f} % (< {min_overlap_pct:g} %){hint}")
     if check_score and not (score >= min_score):
         reasons.append(f"low match score {score:.2f} (< {min_score:g})")
-    if overlap >= min_overlap_pct and math.isfinite(lm) and lm < min_loss_match:
+    if overlap >= min_overlap_pct and math.isfinite(lm) and lm < min_loss_match and n_loss >= LOSS_RULE_CELLS:
         reasons.append(f"the loss patterns do not match (correlation {lm:.2f} < {min_loss_match:g}): "
                        "another floor, or another part of it")
     return Quality(float(np.clip(score, 0.0, 1.0)) if math.isfinite(score) else 0.0, float(overlap),
@@ -2099,8 +2112,8 @@ def _auto(new: FloorScan, old: FloorScan, *, cp_tr, seed, half_rot, shift_r, n_s
         reasons.append(f"flat rotation sweep (contrast {search.rotation_contrast:.3f} < {need:.3g}, the larger of "
                        f"{th['min_rotation_contrast']:g} and {factor:g} x the noise level {noise:.3f}): "
                        "the floor shows too few features (seams, plate edges, pits) to fix the rotation")
-    if reasons or q.overlap_pct < 1.0:
-        ambiguity = None            # candidates of a flat sweep (or of no overlap) are noise
+    if reasons or q.overlap_pct < 1.0 or any(r.startswith("the loss patterns do not match") for r in q.reasons):
+        ambiguity = None            # candidates of a flat sweep, no overlap or another floor are noise
     if ambiguity:
         reasons.insert(0, ambiguity)
     if not rinfo["converged"]:
