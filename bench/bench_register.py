@@ -17,6 +17,11 @@ the ratio is given against both; ``--no-tracemalloc`` times ``register`` without
 5 m floor at 20/25 mm pitch (2.0 deg, 120/-80 mm; every seed must meet rotation error
 <= 0.05 deg and shift error <= 0.3 new pitch), and pure fractional-cell shifts with both
 grids axis-aligned on 3, 5 and 8 m floors at 10 mm (the seam-quantisation case).
+
+``--circle [--seeds N]`` runs the whole-circle table: rotations 0, ±3, 15, 90, 150, 180, -120 deg
+with shifts of a few hundred mm on 5 m (20/25 mm, MFL and UT) and 8 m (10/12.5 mm, MFL) floors,
+N seeds each (default 5): per angle the largest rotation error [deg] and shift error [mm], the
+number reliable, ambiguous and wrong (beyond 0.1 deg or one pitch), and the mean time.
 """
 
 from __future__ import annotations
@@ -43,9 +48,13 @@ def main(argv=None) -> int:
     ap.add_argument("--old", default=None, help="read the old scan from this file instead")
     ap.add_argument("--no-tracemalloc", action="store_true", help="time register without tracemalloc")
     ap.add_argument("--sweep", action="store_true", help="run the accuracy sweeps instead")
+    ap.add_argument("--circle", action="store_true", help="run the whole-circle accuracy table instead")
+    ap.add_argument("--seeds", type=int, default=5, help="seeds per case of --circle")
     args = ap.parse_args(argv)
     if args.sweep:
         return sweep()
+    if args.circle:
+        return circle(args.seeds)
 
     from skimage.registration import phase_cross_correlation
 
@@ -172,6 +181,50 @@ def sweep() -> int:
         print(f"sweep 2, {diam / 1000:g} m floor, rotation 0, fractional shifts at 10 mm (old 10 and 12.5 mm), "
               f"{es_d.size} cases: shift error max {es_d.max():.2f} mm mean {es_d.mean():.2f} mm, "
               f"{int((es_d <= 3.0).sum())}/{es_d.size} within 3 mm; pit stage used in {n_pit}")
+    return 1 if bad else 0
+
+
+CIRCLE_ANGLES = [(0.0, (150.0, -90.0)), (3.0, (-220.0, 140.0)), (-3.0, (260.0, 60.0)), (15.0, (200.0, -100.0)),
+                 (90.0, (100.0, 250.0)), (150.0, (-150.0, 250.0)), (180.0, (50.0, -300.0)), (-120.0, (300.0, 0.0))]
+CIRCLE_FLOORS = [("5 m 20/25 MFL", dict(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0)),
+                 ("5 m 20/25 UT", dict(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, method="UT",
+                                       threshold=None)),
+                 ("8 m 10/12.5 MFL", dict(diameter_mm=8000.0, pitch_new=10.0, pitch_old=12.5))]
+
+
+def circle(n_seeds: int) -> int:
+    """Whole-circle accuracy table (see the module docstring); returns 1 if any case is wrong
+    and marked reliable."""
+    from scananalyse.register import register
+    from scananalyse.synth import make_pair
+
+    bad = 0
+    print("| floor | rotation [deg] | max rotation error [deg] | max shift error [mm] | reliable | ambiguous "
+          "| wrong | wrong and reliable | mean time [s] |")
+    print("|---|---|---|---|---|---|---|---|---|")
+    for name, kw in CIRCLE_FLOORS:
+        for rot, shift in CIRCLE_ANGLES:
+            ers, ess, rel, amb, wrong, wrong_rel, times = [], [], 0, 0, 0, 0, []
+            for seed in range(n_seeds):
+                p = make_pair(rotation_deg=rot, shift_mm=shift, seed=100 + seed, **kw)
+                t0 = time.perf_counter()
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    reg = register(p.new, p.old)
+                times.append(time.perf_counter() - t0)
+                t = reg.transform
+                er = abs((t.rotation_deg - rot + 180.0) % 360.0 - 180.0)
+                es = float(np.hypot(t.dx_mm - p.truth.dx_mm, t.dy_mm - p.truth.dy_mm))
+                ers.append(er)
+                ess.append(es)
+                rel += reg.reliable
+                amb += reg.ambiguous
+                w = er > 0.1 or es > kw["pitch_new"]
+                wrong += w
+                wrong_rel += w and reg.reliable
+            bad += wrong_rel
+            print(f"| {name} | {rot:g} | {max(ers):.3f} | {max(ess):.1f} | {rel}/{n_seeds} | {amb} | {wrong} "
+                  f"| {wrong_rel} | {np.mean(times):.2f} |")
     return 1 if bad else 0
 
 

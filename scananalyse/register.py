@@ -16,29 +16,22 @@ Method (documented in ``docs/registration.md``):
    the floor, margin, obstructions: their outline changes between outages),
    ``clip(loss / (0.25 nominal), 0, 1)`` where scanned (pits and patches).
    A pyramid of 2x2 block means of it.
-2. *Coarse search* on a pyramid level of about 128+ cells across, at most 160 mm
-   (coverage outline added back at weight 0.5): for each
-   rotation of a sweep over the allowed range, the older level is resampled
-   (bilinear) onto the newer level's grid, padded by the largest allowed shift,
-   and a masked normalised cross-correlation over all shifts is computed with
-   FFTs (Padfield 2012); the best (angle, shift) wins, with parabolic sub-step
-   interpolation.  The same sweep over the floor interior without the outline gives
-   the rotation contrast.
-3. *Refinement*, coarse to fine down to the newer scan's pitch: Gauss-Newton
+2. :func:`coarse_search`: a masked NCC over all shifts, computed with FFTs (Padfield 2012),
+   for each rotation of a sweep.  Over the whole circle (the default) in two stages: every
+   angle on a level of about 48+ cells across, floor interior only (seams, plate edges,
+   pits), keeping the few best local maxima; then each of them on the finer coarse level
+   (128+ cells, at most 160 mm, coverage outline added back at weight 0.5).
+3. Candidates of other rotations (plate seams repeat under 180 and 90 degrees) are told
+   apart by :func:`loss_match`, the correlation of the corrosion patterns; when it cannot
+   decide the result says so (``ambiguous``, not reliable).
+4. :func:`refine`, coarse to fine down to the newer scan's pitch: Gauss-Newton
    (Lucas-Kanade, forward additive) over (theta, dx, dy) plus a gain and offset,
-   on the cells of the newer feature image with the strongest gradients,
-   Huber-weighted, with the older image sampled bilinearly; Levenberg-Marquardt
-   damping with a parabolic line search along each step.  A level that does not
-   converge is restarted (heavier damping, then the next-best coarse candidates);
-   failing that the finest converged level, or the coarse estimate, is kept.
-4. *Sub-cell stage*: the seam bands fix the shift only to within a cell, so the
-   translation is corrected by the mean displacement of the loss-weighted centroids
-   of the pits matched between the two scans, when enough pits match.
-5. *Quality*: the masked NCC of the aligned feature images (score, 0-1), the
-   overlap of the scanned areas, the thickness RMS difference in the overlap,
-   the rotation contrast of the sweep and the Gauss-Newton standard errors;
-   a featureless floor is flagged with :class:`~scananalyse.errors.RegistrationWarning`
-   and the result falls back to the control points or the identity.
+   Huber-weighted, Levenberg-Marquardt damped with a parabolic line search; then the
+   sub-cell translation from the matched pit centroids.
+5. :func:`registration_quality`: score, overlap, thickness residual, loss-pattern match,
+   with the reasons the estimate is not reliable; with control points
+   (:func:`fit_control_points`) also their residuals and the overlap they leave.
+   An unreliable result is flagged with :class:`~scananalyse.errors.RegistrationWarning`.
 
 References
 ----------
@@ -80,6 +73,12 @@ __all__ = [
     "feature_image",
     "write_registration",
     "read_control_points_named",
+    "coarse_search",
+    "CoarseSearch",
+    "refine",
+    "registration_quality",
+    "Quality",
+    "loss_match",
 ]
 
 #: Unscanned cells count 1 in the feature image; loss counts up to 1 at this fraction of nominal.
@@ -93,6 +92,9 @@ COARSE_MAX_PITCH_MM = 160.0
 #: The rotation contrast must also exceed this many times the NCC noise level of two unrelated
 #: floors of the same interior size (a featureless floor's sweep is the maximum of noise).
 ROT_CONTRAST_NOISE = 5.0
+#: ... this many times on the whole-range stage's coarser level: its noise level is higher (a
+#: quarter of the cells), and its sweep's median is taken over the whole circle.
+ROT_CONTRAST_NOISE_CIRCLE = 3.0
 #: An entirely unscanned block of this size marks a large unscanned area (weld seams are narrower). [mm]
 LARGE_AREA_MM = 80.0
 #: Feature value of narrow unscanned cells (weld seams, plate edges); loss counts up to 1.
@@ -115,6 +117,38 @@ PIT_MIN_CELLS = 3
 PIT_MIN_MATCHES = 4
 #: Largest standard error of the pit translation accepted, in cells of the newer scan.
 PIT_MAX_SE_CELLS = 0.1
+#: A rotation range wider than this is searched in two stages (whole range coarse, then candidates). [deg]
+WIDE_SWEEP_DEG = 10.0
+#: The whole-range stage runs on the coarsest level with at least this many cells on its long side ...
+CIRCLE_CELLS = 48
+#: ... at an angle step moving the grid's corner by this many of its cells ...
+CIRCLE_STEP_CELLS = 2.0
+#: ... but no larger than this. [deg]
+CIRCLE_MAX_STEP_DEG = 3.0
+#: Most candidates kept from the whole-range stage (local maxima of its seam-only sweep) ...
+N_CANDIDATES = 4
+#: ... whose height above the sweep's median is at least this fraction of the best one's.
+CANDIDATE_FRACTION = 0.6
+#: Candidates closer in rotation than this are one candidate. [deg]
+DISTINCT_DEG = 2.0
+#: Two candidates whose loss-pattern correlations differ by less than this are ambiguous.
+AMBIGUITY_MARGIN = 0.1
+#: A loss pattern is seen when at least LOSS_PATTERN_CELLS compared cells show a smoothed loss
+#: feature above LOSS_PATTERN_MIN (0.1 = 2.5 % of nominal over a blob of a few cells; reading
+#: noise of 0.1 mm smoothed by one cell stays near 0.02).
+LOSS_PATTERN_MIN = 0.1
+LOSS_PATTERN_CELLS = 10
+#: The loss-match rule of the reliability check applies only when both scans show at least this
+#: many compared cells with loss: a sparse pattern (a few pits, the deepest ones repaired between
+#: the outages) can fail to correlate on one floor (3 m synthetic floors: 42-175 such cells,
+#: one at 0.04; unrelated 5 m floors: 439-547 cells, -0.01 to 0.01).
+LOSS_RULE_CELLS = 200
+#: Smallest loss-pattern correlation of a reliable registration (floors with loss).
+MIN_LOSS_MATCH = 0.2
+#: Control points disagree when their RMS residual exceeds this many pitches of the newer scan ...
+CP_MAX_RMS_CELLS = 2.0
+#: ... or one residual exceeds this many.
+CP_MAX_RESIDUAL_CELLS = 3.0
 #: Factor applied to Gauss-Newton standard errors for the correlation of neighbouring samples
 #: (Gaussian smoothing of one cell plus bilinear interpolation; common practice, no source).
 STD_INFLATION = 3.0
@@ -213,7 +247,8 @@ class Registration:
     overlap_pct : share of the newer scan's scanned cells that the older scan covers after alignment. [%]
     residual_rms_mm : RMS thickness difference (new minus resampled old) in the overlap. [mm]
     method : ``"auto"``, ``"control-points"``, ``"auto+control-points"``, ``"auto-coarse"``
-        (the refinement failed; the coarse estimate, not reliable) or ``"identity"``.
+        (the refinement failed; the coarse estimate, not reliable), ``"auto-ambiguous"`` (symmetric
+        candidates the loss pattern cannot tell apart; not reliable) or ``"identity"``.
     reliable : False when the estimate should not be trusted (featureless floor, low score,
         small overlap, control points that disagree).
     warnings : plain-language reasons behind ``reliable`` and any fallback.
@@ -222,11 +257,16 @@ class Registration:
     control_names : names of the control points, if given.
     auto_transform : the automatic estimate, also when it was not used (None if not run).
     rotation_contrast : NCC of the seams, plate edges and pits (floor interior, no coverage outline)
-        at the chosen angle of the rotation sweep minus its median over the sweep (low = rotation
-        unobservable).
+        at the chosen angle of the rotation sweep minus its median over the sweep (the whole
+        circle by default; low = rotation unobservable).
     std_rotation_deg, std_shift_mm : approximate one-sigma errors from the Gauss-Newton fit. [deg], [mm]
     timings_s : wall time per stage. [s]
     details : other figures (levels, pitches, iterations) for the record.
+    candidates : the rotations that fitted the seams and plate edges almost alike (one record
+        each: rotation, shift, coarse NCC, loss-pattern match, ``chosen``), or None.
+    ambiguous : True when the loss pattern could not decide between such candidates
+        (method ``auto-ambiguous``, not reliable).
+    loss_match : correlation of the two loss patterns under ``transform`` (see :func:`loss_match`). [-]
     """
 
     transform: RigidTransform
@@ -244,6 +284,9 @@ class Registration:
     std_shift_mm: float | None = None
     timings_s: dict = field(default_factory=dict)
     details: dict = field(default_factory=dict)
+    candidates: list[dict] | None = None
+    ambiguous: bool = False
+    loss_match: float | None = None
 
     def to_dict(self) -> dict:
         """Plain JSON-ready content of ``registration.json``."""
@@ -276,6 +319,11 @@ class Registration:
             "std_rotation_deg": num(self.std_rotation_deg),
             "std_shift_mm": num(self.std_shift_mm),
             "matrix": self.transform.matrix.tolist(),
+            "ambiguous": bool(self.ambiguous),
+            "candidates": (None if self.candidates is None else
+                           [{k: (num(v) if isinstance(v, float) else v) for k, v in c.items()}
+                            for c in self.candidates]),
+            "loss_match": num(self.loss_match),
             "timings_s": {k: float(v) for k, v in self.timings_s.items()},
             "details": self.details,
         }
@@ -872,33 +920,28 @@ def _sample_level(lv: _Level, arr: np.ndarray, qx, qy):
 # --------------------------------------------------------------------------------------
 # coarse search: masked NCC over all shifts (Padfield 2012) for a sweep of angles
 # --------------------------------------------------------------------------------------
-def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
-                      centre: tuple[float, float], max_shift_mm: float,
-                      min_overlap_frac: float = 0.25, boundary_weight: float = BOUNDARY_WEIGHT,
-                      seams: bool = False):
-    """Best (ncc, tau_x, tau_y) per angle; tau in mm, the shift to add to ``centre``.
+@dataclass
+class _SweepSetup:
+    """The newer level's transforms and the grids shared by every angle of a sweep."""
 
-    With ``seams`` a second list is returned, of the same sweep over the floor interior
-    only (:attr:`_Level.interior` of both levels as the masks, the large unscanned areas
-    and a margin of 3 cells along them left out): seams, plate edges and pits without the
-    coverage outline.  It shares the resampling of the older level with the first.
+    shape: tuple[int, int]
+    s: int
+    pre: list
+    X: np.ndarray
+    Y: np.ndarray
+    win_r: np.ndarray
+    win_c: np.ndarray
+    in_window: np.ndarray
 
-    Notes
-    -----
-    Padfield (2012), eq. (5)-(8): with masks m1, m2 and images f1, f2 and the
-    cross-correlation C(a, b)(t) = sum_p a(p) b(p - t),
-    NCC(t) = [C(f1, f2) - C(f1, m2) C(m1, f2) / C(m1, m2)] /
-             sqrt([C(f1^2, m2) - C(f1, m2)^2 / C(m1, m2)] [C(m1, f2^2) - C(m1, f2)^2 / C(m1, m2)]),
-    f1 and f2 already multiplied by their masks.
-    """
-    # Single-precision transforms: half the time of double on large floors; against double the
-    # NCC differs by < 1e-6 and the peak shift by < 0.2 mm on 30-100 m floors (measured).
+
+def _sweep_setup(new_lv: _Level, max_shift_mm: float, boundary_weight: float, seams: bool) -> _SweepSetup:
+    """Pad the newer level's channels (with outline; interior only if ``seams``) and
+    transform them once for :func:`_ncc_at_angle`."""
     h, w = new_lv.img.shape
     pc = new_lv.pitch
     s = int(math.ceil(max_shift_mm / pc)) + 1
     eh, ew = h + 2 * s, w + 2 * s
     shape = (_fft.next_fast_len(eh + s + 1, real=True), _fft.next_fast_len(ew + s + 1, real=True))
-    kw = dict(s=shape, workers=-1)
 
     def padded(img):
         out = np.zeros((eh, ew), dtype=np.float32)
@@ -912,66 +955,95 @@ def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
     if seams:
         m_new = new_lv.interior.astype(np.float32)
         chans.append((new_lv.smooth * m_new, m_new))
-    old_img, old_big = old_lv.smooth, old_lv.smooth_big
-    bw32 = np.float32(boundary_weight)
     pre = []
     for f_new, m_new in chans:
         a = padded(f_new)
         m1 = padded(m_new)
-        pre.append((_fft.rfft2(a, **kw), _fft.rfft2(a * a, **kw), _fft.rfft2(m1, **kw), float(m1.sum())))
-    del a, m1
+        pre.append((_fft.rfft2(a, s=shape, workers=-1), _fft.rfft2(a * a, s=shape, workers=-1),
+                    _fft.rfft2(m1, s=shape, workers=-1), float(m1.sum())))
     ex = new_lv.x0 - s * pc + pc * np.arange(ew)
     ey = new_lv.y0 - s * pc + pc * np.arange(eh)
-    X, Y = np.meshgrid(ex - centre[0], ey - centre[1])
-    win_r = np.arange(-s, s + 1) % shape[0]
-    win_c = np.arange(-s, s + 1) % shape[1]
+    X, Y = np.meshgrid(ex, ey)
     tau = np.arange(-s, s + 1) * pc
     TX, TY = np.meshgrid(tau, tau)
-    in_window = np.hypot(TX, TY) <= max_shift_mm + 1e-9
-    best = [[] for _ in chans]
+    return _SweepSetup(shape, s, pre, X, Y, np.arange(-s, s + 1) % shape[0], np.arange(-s, s + 1) % shape[1],
+                       np.hypot(TX, TY) <= max_shift_mm + 1e-9)
 
-    def corr(p, q):
-        full = _fft.irfft2(p * np.conj(q), s=shape, workers=-1)
-        return full[np.ix_(win_r, win_c)].astype(np.float64)
 
+def _ncc_peak(st: _SweepSetup, ic: int, g: np.ndarray, m2: np.ndarray, pitch: float,
+              min_overlap_frac: float) -> tuple[float, float, float]:
+    """Best (ncc, tau_x [mm], tau_y [mm]) of channel ``ic`` against the older image ``g``
+    (already resampled onto the padded newer grid) with mask ``m2``; Padfield (2012) eq. (5)-(8)."""
+    # one batched forward (3 images) and one batched inverse (6 products) transform: small
+    # levels are dominated by the per-call overhead, large ones use both workers on the batch
+    kw = dict(s=st.shape, axes=(-2, -1), workers=-1 if st.shape[0] * st.shape[1] >= 1 << 16 else 1)
+    fa, fa2, fm1, n1 = st.pre[ic]
+    g = g.astype(np.float32) * m2
+    fm2, fb, fb2 = _fft.rfft2(np.stack([m2, g, g * g]), **kw)
+    prods = np.stack([fm1 * np.conj(fm2), fa * np.conj(fb), fa * np.conj(fm2), fm1 * np.conj(fb),
+                      fa2 * np.conj(fm2), fm1 * np.conj(fb2)])
+    full = _fft.irfft2(prods, **kw)
+    del prods
+    c_mm, c_ab, c_am, c_mb, c_a2m, c_mb2 = full[:, st.win_r][:, :, st.win_c].astype(np.float64)
+    cm = np.maximum(c_mm, 1e-9)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        num = c_ab - c_am * c_mb / cm
+        va = c_a2m - c_am ** 2 / cm
+        vb = c_mb2 - c_mb ** 2 / cm
+        ncc = num / np.sqrt(np.maximum(va, 0) * np.maximum(vb, 0))
+    # variances below 1e-4 per cell (feature std 0.01) are no features, and also the
+    # level of the single-precision round-off of these sums
+    ok = st.in_window & (c_mm >= min_overlap_frac * n1) & (va > 1e-4 * cm) & (vb > 1e-4 * cm)
+    ncc = np.where(ok & np.isfinite(ncc), ncc, -1.0)
+    k = int(np.argmax(ncc))
+    i, j = divmod(k, ncc.shape[1])
+    di = _parabolic(ncc[i - 1, j], ncc[i, j], ncc[i + 1, j]) if 0 < i < ncc.shape[0] - 1 else 0.0
+    dj = _parabolic(ncc[i, j - 1], ncc[i, j], ncc[i, j + 1]) if 0 < j < ncc.shape[1] - 1 else 0.0
+    return float(ncc[i, j]), (j - st.s + dj) * pitch, (i - st.s + di) * pitch
+
+
+def _masked_ncc_sweep(new_lv: _Level, old_lv: _Level, angles_deg: np.ndarray,
+                      centre: tuple[float, float], max_shift_mm: float,
+                      min_overlap_frac: float = 0.25, boundary_weight: float = BOUNDARY_WEIGHT,
+                      seams: bool = False, only_seams: bool = False):
+    """Best (ncc, tau_x, tau_y) per angle; tau in mm, the shift to add to ``centre``.
+
+    ``only_seams`` computes the second list alone (half the work) and returns it.
+
+    With ``seams`` a second list is returned, of the same sweep over the floor interior
+    only (:attr:`_Level.interior` of both levels as the masks, the large unscanned areas
+    and a margin of 3 cells along them left out): seams, plate edges and pits without the
+    coverage outline.  It shares the resampling of the older level with the first.
+
+    Notes
+    -----
+    Padfield (2012), eq. (5)-(8): with masks m1, m2 and images f1, f2 and the
+    cross-correlation C(a, b)(t) = sum_p a(p) b(p - t),
+    NCC(t) = [C(f1, f2) - C(f1, m2) C(m1, f2) / C(m1, m2)] /
+             sqrt([C(f1^2, m2) - C(f1, m2)^2 / C(m1, m2)] [C(m1, f2^2) - C(m1, f2)^2 / C(m1, m2)]),
+    f1 and f2 already multiplied by their masks.  Single-precision transforms: half the time
+    of double on large floors; against double the NCC differs by < 1e-6 and the peak shift
+    by < 0.2 mm on 30-100 m floors (measured).
+    """
+    st = _sweep_setup(new_lv, max_shift_mm, boundary_weight, seams or only_seams)
+    X, Y = st.X - centre[0], st.Y - centre[1]
+    bw32 = np.float32(boundary_weight)
+    best = [[] for _ in st.pre]
     for ang in angles_deg:
         th = math.radians(ang)
         c, sn = math.cos(th), math.sin(th)
         qx = c * X + sn * Y
         qy = -sn * X + c * Y
-        g_img, inside = _sample_level(old_lv, old_img, qx, qy)
-        g_big = _sample_level(old_lv, old_big, qx, qy)[0]
-        for ic in range(len(chans)):
-            fa, fa2, fm1, n1 = pre[ic]
-            if ic == 0:
-                g, m2 = g_img + bw32 * g_big, inside.astype(np.float32)
-            else:
-                g, m2 = g_img, (inside & (g_big <= 0)).astype(np.float32)
-            g = g.astype(np.float32) * m2
-            fm2 = _fft.rfft2(m2, **kw)
-            fb = _fft.rfft2(g, **kw)
-            fb2 = _fft.rfft2(g * g, **kw)
-            c_mm = corr(fm1, fm2)
-            cm = np.maximum(c_mm, 1e-9)
-            c_ab = corr(fa, fb)
-            c_am = corr(fa, fm2)
-            c_mb = corr(fm1, fb)
-            c_a2m = corr(fa2, fm2)
-            c_mb2 = corr(fm1, fb2)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                num = c_ab - c_am * c_mb / cm
-                va = c_a2m - c_am ** 2 / cm
-                vb = c_mb2 - c_mb ** 2 / cm
-                ncc = num / np.sqrt(np.maximum(va, 0) * np.maximum(vb, 0))
-            # variances below 1e-4 per cell (feature std 0.01) are no features, and also the
-            # level of the single-precision round-off of these sums
-            ok = in_window & (c_mm >= min_overlap_frac * n1) & (va > 1e-4 * cm) & (vb > 1e-4 * cm)
-            ncc = np.where(ok & np.isfinite(ncc), ncc, -1.0)
-            k = int(np.argmax(ncc))
-            i, j = divmod(k, ncc.shape[1])
-            di = _parabolic(ncc[i - 1, j], ncc[i, j], ncc[i + 1, j]) if 0 < i < ncc.shape[0] - 1 else 0.0
-            dj = _parabolic(ncc[i, j - 1], ncc[i, j], ncc[i, j + 1]) if 0 < j < ncc.shape[1] - 1 else 0.0
-            best[ic].append((float(ncc[i, j]), (j - s + dj) * pc, (i - s + di) * pc))
+        g_img, inside = _sample_level(old_lv, old_lv.smooth, qx, qy)
+        g_big = _sample_level(old_lv, old_lv.smooth_big, qx, qy)[0]
+        if not only_seams:
+            best[0].append(_ncc_peak(st, 0, g_img + bw32 * g_big, inside.astype(np.float32),
+                                     new_lv.pitch, min_overlap_frac))
+        if seams or only_seams:
+            best[1].append(_ncc_peak(st, 1, g_img, (inside & (g_big <= 0)).astype(np.float32),
+                                     new_lv.pitch, min_overlap_frac))
+    if only_seams:
+        return best[1]
     return (best[0], best[1]) if seams else best[0]
 
 
@@ -988,14 +1060,11 @@ def _parabolic(ym, y0, yp) -> float:
 # --------------------------------------------------------------------------------------
 # refinement: Gauss-Newton (Lucas-Kanade) on the strongest-gradient cells
 # --------------------------------------------------------------------------------------
-def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_samples: int,
-                  max_iter: int = 20, tol_cells: float = 0.005, lam0: float = 1e-3):
-    """Gauss-Newton / Levenberg-Marquardt fit of (theta, dx, dy, gain, offset) on one level.
-
-    ``lam0`` is the starting damping (large for a restart after a failed run).
-    """
-    fn = new_lv.smooth
-    h, w = fn.shape
+def _gradient_samples(new_lv: _Level, n_samples: int) -> np.ndarray:
+    """Flat indices of the refinement's sample cells of ``new_lv``: cells with a clear
+    gradient (above 5 % of the 99.9th percentile, two cells from the grid edge), a seeded
+    random subset of ``n_samples`` of them if more: spreads the samples over all features
+    instead of the few strongest edges."""
     gxn, gyn = new_lv.grad
     mag = gxn * gxn + gyn * gyn
     b = 2
@@ -1003,14 +1072,23 @@ def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_sampl
     mag[-b:] = 0
     mag[:, :b] = 0
     mag[:, -b:] = 0
-    # Cells with a clear gradient (above 5 % of the 99.9th percentile), a random subset of
-    # them if too many: spreads the samples over all features instead of the few strongest edges.
     flat = mag.ravel()
     hi = float(np.quantile(flat[:: max(1, flat.size // 200000)], 0.999))
     idx = np.flatnonzero(flat > 0.05 * hi) if hi > 0 else np.empty(0, dtype=np.intp)
-    del mag, flat
     if idx.size > n_samples:
         idx = np.sort(np.random.default_rng(12345).choice(idx, n_samples, replace=False))
+    return idx
+
+
+def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_samples: int,
+                  max_iter: int = 20, tol_cells: float = 0.005, lam0: float = 1e-3):
+    """Gauss-Newton / Levenberg-Marquardt fit of (theta, dx, dy, gain, offset) on one level.
+
+    ``lam0`` is the starting damping (large for a restart after a failed run).
+    """
+    fn = new_lv.smooth
+    w = fn.shape[1]
+    idx = _gradient_samples(new_lv, n_samples)
     n = int(idx.size)
     if n < 50:
         return tr, {"converged": False, "n": n, "iterations": 0, "cov": None}
@@ -1305,12 +1383,594 @@ def _as_control_points(cp):
 
 
 # --------------------------------------------------------------------------------------
+# loss pattern
+# --------------------------------------------------------------------------------------
+@dataclass
+class _LossLevel:
+    img: np.ndarray      # loss feature, 0 where unscanned (block mean) [-]
+    cov: np.ndarray      # scanned fraction of the block [-]
+    x0: float
+    y0: float
+    pitch: float
+
+
+def _loss_pyramid(scan: FloorScan, min_cells: int = 16) -> list[_LossLevel]:
+    """Pyramid of the scan's *loss pattern*: ``clip((level - t) / (0.25 nominal), 0, 1)`` with
+    ``level`` the median scanned thickness (the general floor), so general thinning (a UT scan's
+    loss everywhere) is left out and only pits, patches and local loss remain.
+
+    The finest level is the scan itself on grids of up to 4 x :data:`QUALITY_CELLS` cells; on
+    larger grids every 2nd (4th, ...) cell, keeping at least that many (pits span 4-12 cells,
+    and the comparison runs at most at 2 x :data:`QUALITY_CELLS` cells)."""
+    t = scan.thickness
+    sample = t.ravel()[::max(1, t.size // 200000)]
+    sample = sample[np.isfinite(sample)]
+    level = float(np.median(sample)) if sample.size else float(scan.meta.nominal)
+    k = 1
+    while t.size / (4 * k * k) >= 4 * QUALITY_CELLS:
+        k *= 2
+    tk = t[::k, ::k]
+    img = np.float32(level) - tk
+    img *= np.float32(1.0 / (LOSS_SCALE_FRACTION * scan.meta.nominal))
+    np.clip(img, 0.0, 1.0, out=img)
+    cov = np.isfinite(tk)
+    np.copyto(img, np.float32(0.0), where=~cov)
+    levels = [_LossLevel(img, cov, scan.x0, scan.y0, scan.pitch * k)]
+    while min(levels[-1].img.shape) // 2 >= min_cells:
+        lv = levels[-1]
+        levels.append(_LossLevel(_half(lv.img), _half(lv.cov), lv.x0 + lv.pitch / 2,
+                                 lv.y0 + lv.pitch / 2, lv.pitch * 2))
+    return levels
+
+
+def loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pitch_mm: float | None = None,
+               pyramids=None) -> float:
+    """Correlation of the two scans' loss patterns (pits, patches) after ``transform``.
+
+    Parameters
+    ----------
+    new, old : the two scans.
+    transform : old-to-new transform.
+    pitch_mm : cell size the patterns are compared at (block means of 2^k cells, smoothed by
+        one cell); default the finest level of at most 2 x :data:`QUALITY_CELLS`
+        cells. [mm]
+    pyramids : ``(new, old)`` loss pyramids from an earlier call (internal reuse), or None.
+
+    Returns
+    -------
+    Pearson correlation (-1 to 1) of the loss over the cells scanned in both; NaN when fewer
+    than 100 such cells, or fewer than :data:`LOSS_PATTERN_CELLS` of them show loss above
+    :data:`LOSS_PATTERN_MIN` in either scan (no pattern, only reading noise). [-]
+
+    Notes
+    -----
+    Seams, plate edges and the coverage outline repeat with the plate layout (a rotation of
+    90° or 180° can match them again); the corrosion pattern does not.  The pattern is the
+    loss above the floor's median thickness, so the general thinning of an uncensored (UT)
+    scan and MFL's censoring both leave it unchanged; pits grow, so the correlation of one
+    floor's two outages is well above that of two floors (measured on synthetic pairs,
+    ``tests/test_register_circle.py``).
+    """
+    return _loss_match(new, old, transform, pitch_mm=pitch_mm, pyramids=pyramids)[0]
+
+
+def _loss_match(new: FloorScan, old: FloorScan, transform: RigidTransform, *, pitch_mm: float | None = None,
+                pyramids=None) -> tuple[float, int]:
+    """:func:`loss_match` and the smaller of the two scans' counts of compared cells with loss."""
+    ln, lo = pyramids if pyramids is not None else (_loss_pyramid(new), _loss_pyramid(old))
+    if pitch_mm is None:
+        a = next((lv for lv in ln if lv.img.size <= 2 * QUALITY_CELLS), ln[-1])
+    else:
+        a = min(ln, key=lambda lv: abs(math.log(lv.pitch / pitch_mm)))
+    b = min(lo, key=lambda lv: abs(math.log(lv.pitch / a.pitch)))
+    sm = dict(sigma=1.0, mode="constant", truncate=2.0)
+    f32 = np.float32
+    ai, ac = _ndi.gaussian_filter(a.img, **sm), _ndi.gaussian_filter(a.cov.astype(f32, copy=False), **sm)
+    bi, bc = _ndi.gaussian_filter(b.img, **sm), _ndi.gaussian_filter(b.cov.astype(f32, copy=False), **sm)
+    stride = max(1, int(math.ceil(math.sqrt(ai.size / QUALITY_CELLS))))
+    rows = np.arange(0, ai.shape[0], stride)
+    cols = np.arange(0, ai.shape[1], stride)
+    X, Y = np.meshgrid(a.x0 + a.pitch * cols, a.y0 + a.pitch * rows)
+    qx, qy = transform.inverse().apply(X, Y)
+    coords = [((qy - b.y0) / b.pitch).ravel(), ((qx - b.x0) / b.pitch).ravel()]
+    gv = _ndi.map_coordinates(bi, coords, order=1, mode="constant", cval=0.0, prefilter=False)
+    gc = _ndi.map_coordinates(bc, coords, order=1, mode="constant", cval=0.0, prefilter=False)
+    fv = ai[np.ix_(rows, cols)].ravel()
+    fc = ac[np.ix_(rows, cols)].ravel()
+    m = (fc > 0.75) & (gc > 0.75)
+    if np.count_nonzero(m) < 100:
+        return float("nan"), 0
+    x = fv[m].astype(np.float64) / fc[m]
+    y = gv[m].astype(np.float64) / gc[m]
+    # reading noise alone is no pattern: some loss must stand out in both
+    n_loss = min(np.count_nonzero(x > LOSS_PATTERN_MIN), np.count_nonzero(y > LOSS_PATTERN_MIN))
+    if n_loss < LOSS_PATTERN_CELLS:
+        return float("nan"), int(n_loss)
+    x -= x.mean()
+    y -= y.mean()
+    den = math.sqrt(float(x @ x) * float(y @ y))
+    return (float(x @ y / den) if den > 1e-12 * m.sum() else float("nan")), int(n_loss)
+
+
+# --------------------------------------------------------------------------------------
+# search over the circle
+# --------------------------------------------------------------------------------------
+@dataclass
+class CoarseSearch:
+    """The result of :func:`coarse_search`.
+
+    Parameters
+    ----------
+    candidates : old-to-new transforms at the coarse level's precision, best NCC first.
+    ncc : the masked NCC (with the coverage outline) of each candidate at the coarse level. [-]
+    strength : height of each candidate's peak above the median of the whole-range seam-only
+        sweep (1 for the peak of a narrow sweep; None for a next-best peak of a narrow sweep,
+        kept only to restart the refinement from). [-]
+    rotation_contrast : seam-only NCC at the best angle minus its median over the sweep (None
+        for a narrow window of less than 2°). [-]
+    contrast_noise : NCC noise level of two unrelated floors of the interior's size. [-]
+    coarse_pitch_mm : cell size of the level the candidates were placed on. [mm]
+    details : sweep figures for the record.
+    """
+
+    candidates: list[RigidTransform]
+    ncc: list[float]
+    strength: list[float | None]
+    rotation_contrast: float | None
+    contrast_noise: float
+    coarse_pitch_mm: float
+    details: dict = field(default_factory=dict)
+
+
+def _coarse_level_index(pn: list[_Level]) -> int:
+    """Coarsest level with at least COARSE_CELLS on the long side and a pitch of at most
+    COARSE_MAX_PITCH_MM (on large floors the seam bands would vanish)."""
+    kc = 0
+    for k, lv in enumerate(pn):
+        if max(lv.img.shape) >= COARSE_CELLS and lv.pitch <= COARSE_MAX_PITCH_MM * (1 + 1e-9):
+            kc = k
+    return kc
+
+
+def _rim_radius(scan: FloorScan) -> float:
+    """Distance of the grid's farthest corner from the origin. [mm]"""
+    return max(1.0, max(math.hypot(x, y) for x in (scan.x[0], scan.x[-1]) for y in (scan.y[0], scan.y[-1])))
+
+
+def _contrast(peaks: np.ndarray, peaks_seam: np.ndarray, lv: _Level, circular: bool) -> tuple[float, float]:
+    """(rotation contrast, NCC noise level) of a sweep; see :class:`CoarseSearch`."""
+    ib = int(np.argmax(peaks))
+    n = len(peaks)
+    # an angle without features in the overlap (NCC undefined, -1) counts as no correlation
+    pk = np.maximum(peaks_seam, 0.0)
+    near = [(ib + d) % n for d in (-1, 0, 1)] if circular else list(range(max(0, ib - 1), min(n, ib + 2)))
+    contrast = float(np.max(pk[near]) - np.median(pk))
+    # NCC noise of unrelated floors: 1/sqrt(N_eff), N_eff = interior cells / (4 pi sigma^2)
+    # for white noise smoothed by a Gaussian of sigma = 1 cell (from memory)
+    n_eff = float(np.count_nonzero(lv.interior)) / (4.0 * math.pi)
+    return contrast, 1.0 / math.sqrt(max(n_eff, 1.0))
+
+
+def _local_maxima(peaks: np.ndarray, circular: bool, fraction: float, n_max: int) -> list[int]:
+    """Indices of the local maxima of a sweep within ``fraction`` of the best, best first."""
+    n = len(peaks)
+    out = []
+    for j in np.argsort(-peaks):
+        j = int(j)
+        if peaks[j] < fraction * peaks[int(np.argmax(peaks))] or len(out) >= n_max:
+            break
+        lo = peaks[(j - 1) % n] if (circular or j > 0) else -np.inf
+        hi = peaks[(j + 1) % n] if (circular or j < n - 1) else -np.inf
+        if peaks[j] >= lo and peaks[j] >= hi:
+            out.append(j)
+    return out
+
+
+def _window_best(res: list, angles: np.ndarray, step: float, centre: RigidTransform) -> tuple[RigidTransform, float]:
+    """The best (angle, shift) of a sweep window, parabolic sub-step in angle."""
+    peaks = np.array([r[0] for r in res])
+    ib = int(np.argmax(peaks))
+    da = _parabolic(peaks[ib - 1], peaks[ib], peaks[ib + 1]) if 0 < ib < len(peaks) - 1 else 0.0
+    tr = RigidTransform(_wrap_deg(float(angles[ib] + da * step)), centre.dx_mm + res[ib][1],
+                        centre.dy_mm + res[ib][2])
+    return tr, float(peaks[ib])
+
+
+def _wrap_deg(a: float) -> float:
+    """Angle in (-180, 180]. [deg]"""
+    a = math.fmod(a, 360.0)
+    if a > 180.0:
+        a -= 360.0
+    elif a <= -180.0:
+        a += 360.0
+    return a
+
+
+def _angle_diff(a: float, b: float) -> float:
+    """Absolute difference of two angles on the circle. [deg]"""
+    return abs(_wrap_deg(a - b))
+
+
+def _climb(new_c: _Level, old_c: _Level, angles: np.ndarray, res: list, step: float, shift, max_shift_mm: float,
+           max_ext: int = 4) -> tuple[np.ndarray, list]:
+    """Extend a candidate's window by whole windows while its best angle lies on an edge."""
+    for _ in range(max_ext):
+        ib = int(np.argmax([r[0] for r in res]))
+        if 0 < ib < len(res) - 1:
+            break
+        n = len(angles)
+        more = angles[0] - step * np.arange(n, 0, -1) if ib == 0 else angles[-1] + step * np.arange(1, n + 1)
+        got = _masked_ncc_sweep(new_c, old_c, more, shift, max_shift_mm)
+        angles, res = (np.concatenate([more, angles]), got + res) if ib == 0 else \
+            (np.concatenate([angles, more]), res + got)
+    return angles, res
+
+
+def coarse_search(new: FloorScan, old: FloorScan, *, centre: RigidTransform | None = None,
+                  half_range_deg: float = 180.0, max_shift_mm: float = 400.0,
+                  n_candidates: int = N_CANDIDATES, pyramids=None) -> CoarseSearch:
+    """Rotation sweep with a masked NCC over all shifts: the best few (angle, shift) candidates.
+
+    Parameters
+    ----------
+    new, old : the two scans.
+    centre : the transform the search is centred on (default the identity). [-]
+    half_range_deg : half-range of the rotation sweep around ``centre``; 180 searches the
+        whole circle. [deg]
+    max_shift_mm : search radius of the translation around ``centre``'s (for every angle,
+        the rotation is about the origin). [mm]
+    n_candidates : most candidates returned (local maxima of the sweep). [-]
+    pyramids : ``(new, old)`` feature pyramids from an earlier call (internal reuse), or None.
+
+    Returns
+    -------
+    CoarseSearch
+
+    Notes
+    -----
+    Feature images (seams and plate edges 1, loss up to 1, large unscanned areas 0, coverage
+    outline added at :data:`BOUNDARY_WEIGHT`), smoothed by one cell.  For each angle the older
+    level is resampled onto the newer level's grid and the masked NCC over all shifts within
+    ``max_shift_mm`` is computed with FFTs (Padfield 2012).  Over more than
+    :data:`WIDE_SWEEP_DEG` the sweep runs in two stages: the whole range on a level of about
+    :data:`CIRCLE_CELLS` cells across at a step of :data:`CIRCLE_STEP_CELLS` of its cells at the
+    rim, keeping the local maxima within :data:`CANDIDATE_FRACTION` of the best; then each of
+    them again, ±0.5 steps around the vertex of its peak (extended while the best angle is
+    on the window's edge), on the finer coarse level (:data:`COARSE_CELLS`) at a step of one
+    of its cells at the rim.
+
+    References
+    ----------
+    Padfield, D. (2012). IEEE Transactions on Image Processing 21(5), 2706-2718.
+    """
+    pn, po = pyramids if pyramids is not None else (_pyramid(new), _pyramid(old))
+    centre = centre or RigidTransform()
+    kc = _coarse_level_index(pn)
+    new_c = pn[kc]
+    old_c = _closest_level(po, new_c.pitch)
+    rmax = _rim_radius(new)
+    fstep = min(0.5, max(0.02, math.degrees(new_c.pitch / rmax)))
+    shift = (centre.dx_mm, centre.dy_mm)
+    details: dict = {"coarse_pitch_mm": new_c.pitch, "angle_step_deg": fstep}
+    contrast = None
+    noise = 0.0
+    if half_range_deg > WIDE_SWEEP_DEG:
+        kw = kc
+        for k in range(kc, len(pn)):
+            if max(pn[k].img.shape) >= CIRCLE_CELLS:
+                kw = k
+        new_w = pn[kw]
+        old_w = _closest_level(po, new_w.pitch)
+        wstep = min(CIRCLE_MAX_STEP_DEG, max(fstep, math.degrees(CIRCLE_STEP_CELLS * new_w.pitch / rmax)))
+        circular = half_range_deg >= 180.0
+        if circular:
+            nw = int(math.ceil(360.0 / wstep))
+            wstep = 360.0 / nw
+            angles_w = centre.rotation_deg + wstep * np.arange(nw)
+        else:
+            nw = int(math.ceil(half_range_deg / wstep))
+            angles_w = centre.rotation_deg + wstep * np.arange(-nw, nw + 1)
+        # seams, plate edges and pits only: the round coverage outline fits at every angle
+        t0 = time.perf_counter()
+        res_ws = _masked_ncc_sweep(new_w, old_w, angles_w, shift, max_shift_mm + new_w.pitch, only_seams=True)
+        details["circle_time_s"] = time.perf_counter() - t0
+        peaks_w = np.maximum(np.array([r[0] for r in res_ws]), 0.0)
+        contrast, noise = _contrast(peaks_w, peaks_w, new_w, circular)
+        details["rotation_contrast_factor"] = ROT_CONTRAST_NOISE_CIRCLE
+        above = peaks_w - np.median(peaks_w)
+        picks = _local_maxima(above, circular, CANDIDATE_FRACTION, n_candidates)
+        # a parabolic vertex per pick, then a window of +-0.5 steps around it at the fine step
+        m = max(1, int(math.ceil(0.5 * wstep / fstep)))
+        windows, strength = [], []
+        for j in picks:
+            n = len(peaks_w)
+            nb = [peaks_w[(j - 1) % n], peaks_w[j], peaks_w[(j + 1) % n]] if circular or 0 < j < n - 1 else None
+            a0 = float(angles_w[j]) + (wstep * _parabolic(*nb) if nb else 0.0)
+            windows.append(a0 + fstep * np.arange(-m, m + 1))
+            strength.append(float(above[j]))
+        details.update(circle_pitch_mm=new_w.pitch, circle_step_deg=wstep, n_angles_circle=int(nw),
+                       circle_peaks=[{"rotation_deg": _wrap_deg(float(angles_w[j])), "ncc_seams": float(peaks_w[j])}
+                                     for j in picks])
+    else:
+        n = max(1, int(math.ceil(half_range_deg / fstep)))
+        windows = [centre.rotation_deg + fstep * np.arange(-n, n + 1)]
+        strength = [1.0]
+    cands: list[tuple[RigidTransform, float, float | None]] = []
+    for angles, stren in zip(windows, strength):
+        narrow = len(windows) == 1 and half_range_deg <= WIDE_SWEEP_DEG
+        out = _masked_ncc_sweep(new_c, old_c, angles, shift, max_shift_mm + new_c.pitch, seams=narrow)
+        res = out[0] if narrow else out
+        if not narrow:
+            angles, res = _climb(new_c, old_c, angles, res, fstep, shift, max_shift_mm + new_c.pitch)
+        cands.append(_window_best(res, angles, fstep, centre) + (stren,))
+        if narrow:
+            peaks = np.array([r[0] for r in res])
+            if half_range_deg >= 2.0 and len(peaks) >= 5:
+                contrast, noise = _contrast(peaks, np.array([r[0] for r in out[1]]), new_c, False)
+                details["rotation_contrast_with_outline"] = float(peaks.max() - np.median(peaks))
+            # next-best local maxima of the narrow sweep (refinement restarts)
+            for j in _local_maxima(peaks, False, 0.8, 3)[1:]:
+                cands.append((RigidTransform(float(angles[j]), centre.dx_mm + res[j][1],
+                                             centre.dy_mm + res[j][2]), float(peaks[j]), None))
+    cands.sort(key=lambda c: -c[1])
+    details.update(n_angles=int(sum(len(w) for w in windows)), coarse_peak_ncc=cands[0][1],
+                   coarse_estimate=cands[0][0].to_dict())
+    if contrast is not None:
+        details["rotation_contrast_noise"] = noise
+    return CoarseSearch([c[0] for c in cands], [c[1] for c in cands], [c[2] for c in cands], contrast, noise,
+                        new_c.pitch, details)
+
+
+def _resolve_candidates(new: FloorScan, old: FloorScan, search: CoarseSearch, loss_pyr) -> tuple[int, list, str | None]:
+    """Choose among the search's candidates of other rotations by the loss pattern.
+
+    Returns (index of the chosen candidate, one record per contender, ambiguity message or None).
+    The contenders are the candidates within :data:`CANDIDATE_FRACTION` of the strongest whose
+    rotation differs by more than :data:`DISTINCT_DEG`; the one whose loss pattern matches best
+    wins, unless another comes within :data:`AMBIGUITY_MARGIN` of it (or no loss is seen and
+    their NCCs are within :data:`AMBIGUITY_MARGIN`).
+    """
+    best = search.ncc[0]
+    idx = [0]
+    top_strength = max((v for v in search.strength if v is not None), default=0.0)
+    for i in range(1, len(search.candidates)):
+        si = search.strength[i]
+        if si is not None and si >= CANDIDATE_FRACTION * top_strength and all(
+                _angle_diff(search.candidates[i].rotation_deg, search.candidates[j].rotation_deg) > DISTINCT_DEG
+                for j in idx):
+            idx.append(i)
+    recs = [{"rotation_deg": search.candidates[i].rotation_deg, "dx_mm": search.candidates[i].dx_mm,
+             "dy_mm": search.candidates[i].dy_mm, "ncc": search.ncc[i]} for i in idx]
+    if len(idx) == 1:
+        return 0, recs, None
+    for r, i in zip(recs, idx):
+        r["loss_match"] = loss_match(new, old, search.candidates[i], pitch_mm=search.coarse_pitch_mm,
+                                     pyramids=loss_pyr)
+    lm = np.array([r["loss_match"] for r in recs], dtype=np.float64)
+    if np.isfinite(lm).any():
+        order = np.argsort(-np.nan_to_num(lm, nan=-2.0))
+        top, second = int(order[0]), int(order[1])
+        close = np.isfinite(lm[second]) and lm[second] >= lm[top] - AMBIGUITY_MARGIN
+        what = f"loss-pattern match {lm[top]:.2f} and {lm[second]:.2f}"
+    else:
+        top, second = 0, 1
+        close = search.ncc[idx[1]] >= best - AMBIGUITY_MARGIN
+        what = f"no loss pattern to decide; NCC {best:.2f} and {search.ncc[idx[1]]:.2f}"
+    msg = None
+    if close:
+        msg = (f"ambiguous rotation: {recs[top]['rotation_deg']:.1f}° and {recs[second]['rotation_deg']:.1f}° "
+               f"fit the seams and plate edges alike ({what}); give control points to decide")
+    return idx[top], recs, msg
+
+
+# --------------------------------------------------------------------------------------
+# refinement over the pyramid
+# --------------------------------------------------------------------------------------
+def refine(new: FloorScan, old: FloorScan, start: RigidTransform, *, start_pitch_mm: float,
+           alternatives=(), n_samples: int = N_SAMPLES, pyramids=None) -> tuple[RigidTransform, dict]:
+    """Sub-cell, sub-degree refinement of a coarse estimate, coarse to fine.
+
+    Parameters
+    ----------
+    new, old : the two scans.
+    start : the coarse estimate (old to new).
+    start_pitch_mm : pitch of the level it was found on; refinement starts one level finer. [mm]
+    alternatives : other coarse candidates to restart from if the first level does not converge.
+    n_samples : cells of the newer feature image per level. [-]
+    pyramids : ``(new, old)`` feature pyramids from an earlier call (internal reuse), or None.
+
+    Returns
+    -------
+    (transform, info) : the refined transform; ``info`` holds ``converged`` (the finest level
+        run converged), ``levels`` (per-level record), ``std_rotation_deg`` [deg] and
+        ``std_shift_mm`` [mm] (Gauss-Newton, inflated by :data:`STD_INFLATION`; None if
+        unknown) and ``pit_stage``.  Without convergence the transform is the finest
+        converged level's, or ``start``.
+
+    Notes
+    -----
+    Per level Gauss-Newton (Lucas and Kanade 1981, forward additive) over (theta, dx, dy) and
+    a gain and offset on the strongest-gradient cells, Huber-weighted, Levenberg-Marquardt
+    damped with a parabolic line search; the finer levels are skipped once a level with the
+    full sample count moved the estimate by at most :data:`SKIP_MOVE_CELLS`.  Then the
+    translation is corrected by the matched pit centroids (seams fix it only to within a cell).
+    """
+    pn, po = pyramids if pyramids is not None else (_pyramid(new), _pyramid(old))
+    rmax = _rim_radius(new)
+    kc = max([k for k, lv in enumerate(pn) if lv.pitch < start_pitch_mm * (1 - 1e-9)] or [0])
+    tr = start
+    info = None
+    levels_done: list[dict] = []
+    last_good = None
+    out: dict = {}
+    for k in range(kc, -1, -1):
+        lv_n = pn[k]
+        lv_o = _closest_level(po, lv_n.pitch)
+        lvl_start = tr
+        tr, info = _refine_level(lv_n, lv_o, lvl_start, n_samples=n_samples)
+        entry = {"pitch_mm": lv_n.pitch, "old_pitch_mm": lv_o.pitch, "iterations": info["iterations"],
+                 "converged": info["converged"], "samples": info["n"]}
+        if not info["converged"] and info["n"] >= 50:
+            # restarts: from the same start with heavy damping, then (first level only) from the
+            # other coarse candidates
+            for st_tr in [lvl_start] + (list(alternatives) if not levels_done else []):
+                tr2, info2 = _refine_level(lv_n, lv_o, st_tr, n_samples=n_samples, max_iter=40, lam0=1.0)
+                entry.setdefault("restarts", []).append(
+                    {"start": st_tr.to_dict(), "iterations": info2["iterations"], "converged": info2["converged"]})
+                if info2["converged"]:
+                    tr, info = tr2, info2
+                    entry["converged"] = True
+                    break
+        levels_done.append(entry)
+        if not info["converged"]:
+            if last_good is not None:
+                tr, info = last_good                 # the finest level that converged
+                out["refine_stopped_at_pitch_mm"] = lv_n.pitch
+            else:
+                tr = start                           # not the wandering iterate
+            break
+        last_good = (tr, info)
+        # (almost) no move with many samples: a finer level would not move either
+        move = (math.hypot(tr.dx_mm - lvl_start.dx_mm, tr.dy_mm - lvl_start.dy_mm)
+                + abs(tr.theta - lvl_start.theta) * rmax)
+        entry["move_mm"] = float(move)
+        if (k > 0 and info["n"] >= n_samples and info.get("cov") is not None
+                and (info["iterations"] == 1 or move <= SKIP_MOVE_CELLS * new.pitch)):
+            out["refine_skipped_below_pitch_mm"] = lv_n.pitch
+            break
+    converged = info is not None and info["converged"]
+    std_rot = std_shift = None
+    if info is not None and info.get("cov") is not None:
+        cov = info["cov"]
+        std_rot = math.degrees(math.sqrt(max(cov[0, 0], 0.0))) * STD_INFLATION
+        std_shift = math.sqrt(max(cov[1, 1] + cov[2, 2], 0.0)) * STD_INFLATION
+    if converged:
+        tr, std_shift, out["pit_stage"] = _apply_pit_stage(new, old, tr, std_shift)
+    out.update(converged=converged, levels=levels_done, std_rotation_deg=std_rot, std_shift_mm=std_shift)
+    return RigidTransform(_wrap_deg(tr.rotation_deg), tr.dx_mm, tr.dy_mm), out
+
+
+def _apply_pit_stage(new: FloorScan, old: FloorScan, tr: RigidTransform, std_shift):
+    """Sub-cell translation from the matched pit centroids, inverse-variance weighted against
+    the seam estimate's quantisation error; returns (transform, std_shift_mm, record)."""
+    pit, pinfo = _pit_shift(new, old, tr)
+    pinfo["applied"] = False
+    if pit is None:
+        return tr, std_shift, pinfo
+    corr, se, n_used = pit
+    pinfo.update(correction_mm=[float(corr[0]), float(corr[1])], standard_error_mm=float(math.hypot(se[0], se[1])))
+    bound = 1.5 * max(new.pitch, old.pitch)
+    if not (n_used >= PIT_MIN_MATCHES and math.hypot(se[0], se[1]) <= PIT_MAX_SE_CELLS * new.pitch
+            and math.hypot(corr[0], corr[1]) <= bound):
+        return tr, std_shift, pinfo
+    # The seam estimate's error is a quantisation error, uniform over a cell of the newer grid,
+    # and of the older one too when its grid is not rotated enough for its phase to vary along
+    # the seams.
+    var_seam = new.pitch ** 2 / 12.0
+    if abs(math.radians(_wrap_deg(tr.rotation_deg))) * _rim_radius(new) < old.pitch:
+        var_seam += old.pitch ** 2 / 12.0
+    wgt = var_seam / (var_seam + se * se)            # per axis, weight of the pits
+    pinfo.update(applied=True, pit_weight=[float(wgt[0]), float(wgt[1])], seam_estimate=tr.to_dict())
+    tr = RigidTransform(tr.rotation_deg, tr.dx_mm + float(wgt[0] * corr[0]), tr.dy_mm + float(wgt[1] * corr[1]))
+    return tr, float(math.sqrt(np.sum(var_seam * se * se / (var_seam + se * se)))), pinfo
+
+
+# --------------------------------------------------------------------------------------
+# quality
+# --------------------------------------------------------------------------------------
+@dataclass
+class Quality:
+    """The result of :func:`registration_quality`.
+
+    Parameters
+    ----------
+    score : masked NCC of the aligned feature images, clipped to 0-1 (0 if undefined). [-]
+    overlap_pct : share of the newer scan's scanned cells the older scan covers. [%]
+    residual_rms_mm : RMS thickness difference in the overlap. [mm]
+    loss_match : correlation of the loss patterns (:func:`loss_match`). [-]
+    reasons : why the transform is not reliable (empty when it is).
+    """
+
+    score: float
+    overlap_pct: float
+    residual_rms_mm: float
+    loss_match: float
+    reasons: list[str] = field(default_factory=list)
+
+    @property
+    def reliable(self) -> bool:
+        return not self.reasons
+
+
+def registration_quality(new: FloorScan, old: FloorScan, transform: RigidTransform, *,
+                         min_score: float = 0.3, min_overlap_pct: float = 50.0,
+                         min_loss_match: float = MIN_LOSS_MATCH, check_score: bool = True,
+                         pyramids=None, loss_pyramids=None) -> Quality:
+    """How well ``transform`` aligns the two scans, and whether to trust it.
+
+    Parameters
+    ----------
+    new, old : the two scans.
+    transform : old-to-new transform to judge.
+    min_score : smallest feature-image NCC of a reliable alignment. [-]
+    min_overlap_pct : smallest overlap of a reliable alignment. [%]
+    min_loss_match : smallest loss-pattern correlation of a reliable alignment; judged only
+        where both scans show at least :data:`LOSS_RULE_CELLS` compared cells with loss (a
+        floor without loss, or with a sparse pattern, is not judged by it). [-]
+    check_score : judge by ``min_score`` (False for a control-point fit, whose points
+        the engineer chose). [-]
+    pyramids, loss_pyramids : feature and loss pyramids from an earlier call (internal reuse).
+
+    Returns
+    -------
+    Quality
+
+    Notes
+    -----
+    Unrelated floors (another tank, another seed) share the plate layout and the round
+    outline, so their feature NCC can be fair; their loss patterns do not correlate.  A
+    transform that moves the floor away from the other scan leaves no overlap.
+    """
+    pn, po = pyramids if pyramids is not None else (_pyramid(new), _pyramid(old))
+    score_lv = pn[min(1, len(pn) - 1)] if pn[0].img.size > 4 * QUALITY_CELLS else pn[0]
+    score = _ncc_aligned(score_lv, _closest_level(po, score_lv.pitch), transform)
+    overlap, rms = _thickness_quality(new, old, transform)
+    lm, n_loss = _loss_match(new, old, transform, pyramids=loss_pyramids) if overlap > 0 else (float("nan"), 0)
+    reasons = []
+    if overlap < min_overlap_pct:
+        hint = (": the scans do not overlap (are both in the tank-centred floor frame?)"
+                if overlap < 1.0 else "")
+        reasons.append(f"small overlap {overlap:.1f} % (< {min_overlap_pct:g} %){hint}")
+    if check_score and not (score >= min_score):
+        reasons.append(f"low match score {score:.2f} (< {min_score:g})")
+    if overlap >= min_overlap_pct and math.isfinite(lm) and lm < min_loss_match and n_loss >= LOSS_RULE_CELLS:
+        reasons.append(f"the loss patterns do not match (correlation {lm:.2f} < {min_loss_match:g}): "
+                       "another floor, or another part of it")
+    return Quality(float(np.clip(score, 0.0, 1.0)) if math.isfinite(score) else 0.0, float(overlap),
+                   float(rms), lm, reasons)
+
+
+def _control_point_reasons(res: np.ndarray, pitch: float) -> list[str]:
+    """Residual checks of a control-point fit (three or more points: two fit exactly)."""
+    out = []
+    if res.size >= 3:
+        rms = float(np.sqrt(np.mean(res ** 2)))
+        if rms > CP_MAX_RMS_CELLS * pitch:
+            out.append(f"control points disagree: RMS residual {rms:.1f} mm exceeds {CP_MAX_RMS_CELLS:g} x the "
+                       f"pitch ({CP_MAX_RMS_CELLS * pitch:g} mm); check the point pairs")
+        if float(res.max()) > CP_MAX_RESIDUAL_CELLS * pitch:
+            out.append(f"control point residual {float(res.max()):.1f} mm exceeds {CP_MAX_RESIDUAL_CELLS:g} x the "
+                       f"pitch ({CP_MAX_RESIDUAL_CELLS * pitch:g} mm); check the point pairs")
+    return out
+
+
+# --------------------------------------------------------------------------------------
 # register
 # --------------------------------------------------------------------------------------
 def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool = True,
-             seed: RigidTransform | None = None, max_rotation_deg: float = 6.0,
+             seed: RigidTransform | None = None, max_rotation_deg: float = 180.0,
              max_shift_mm: float = 400.0, cp_window_deg: float = 1.0, cp_window_mm: float = 100.0,
-             min_score: float = 0.3, min_overlap_pct: float = 10.0,
+             min_score: float = 0.3, min_overlap_pct: float = 50.0,
              min_rotation_contrast: float = 0.02, max_std_rotation_deg: float = 0.25,
              max_std_shift_cells: float = 2.0, n_samples: int = N_SAMPLES) -> Registration:
     """Estimate the rigid transform mapping the older scan onto the newer one.
@@ -1325,287 +1985,173 @@ def register(new: FloorScan, old: FloorScan, *, control_points=None, auto: bool 
         their fit (method ``auto+control-points``); ``False`` uses the fit alone
         (``control-points``).  Without control points the automatic estimate always runs.
     seed : optional initial transform; the search is centred on it (default identity).
-    max_rotation_deg : search half-range of the rotation around the seed. [deg]
+    max_rotation_deg : search half-range of the rotation around the seed; 180 (default)
+        searches the whole circle (a datum re-marked between outages). [deg]
     max_shift_mm : search radius of the translation around the seed. [mm]
     cp_window_deg, cp_window_mm : search half-range around a control-point fit. [deg], [mm]
-    min_score : smallest score for a reliable automatic estimate.
-    min_overlap_pct : smallest overlap for a reliable estimate. [%]
+    min_score : smallest score for a reliable automatic estimate. [-]
+    min_overlap_pct : smallest overlap for a reliable estimate, automatic or from control
+        points. [%]
     min_rotation_contrast : smallest rotation contrast (seam-only NCC at the chosen angle minus
         its median over the sweep); below it, or below :data:`ROT_CONTRAST_NOISE` times the NCC
-        noise level of the floor's size, the rotation is unobservable (a featureless or
-        rotationally symmetric floor).
-    n_samples : cells of the newer feature image per refinement level.
+        noise level of the floor's size, the rotation is unobservable (a featureless floor).
+    max_std_rotation_deg, max_std_shift_cells : largest Gauss-Newton standard errors of a
+        reliable estimate. [deg], [cells of the newer scan]
+    n_samples : cells of the newer feature image per refinement level. [-]
 
     Returns
     -------
-    Registration
+    Registration : ``reliable`` False (with the reasons in ``warnings``) when the transform must
+        not be used for rates: ambiguous or unobservable rotation, low score, overlap below
+        ``min_overlap_pct``, loss patterns that do not match, control points that disagree.
 
     Warns
     -----
-    RegistrationWarning : the automatic estimate is unreliable (the result then falls back to
-        the control points; without them to the coarse estimate when only the refinement
-        failed, else the identity), or the control points disagree.
+    RegistrationWarning : the result is not reliable, or it is the control-point fit alone.
+
+    Notes
+    -----
+    :func:`coarse_search` (whole circle), candidates of other rotations resolved by
+    :func:`loss_match`, :func:`refine`, :func:`registration_quality`; with control points
+    :func:`fit_control_points` and a search in a small window around it.
     """
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
     notes: list[str] = []
     details: dict = {"new_pitch_mm": new.pitch, "old_pitch_mm": old.pitch}
-
-    cp_tr = None
-    cp_names = None
-    old_xy = new_xy = None
+    cp_tr = cp_names = old_xy = new_xy = None
+    cp_reasons: list[str] = []
     if control_points is not None:
         old_xy, new_xy, cp_names = _as_control_points(control_points)
         cp_tr, cp_res = fit_control_points(old_xy, new_xy)
         details["control_point_fit"] = cp_tr.to_dict()
-        cp_rms = float(np.sqrt(np.mean(cp_res ** 2)))
-        if old_xy.shape[0] >= 3 and cp_rms > 2.0 * new.pitch:
-            notes.append(f"control points disagree: RMS residual {cp_rms:.1f} mm exceeds twice the pitch "
-                         f"({2 * new.pitch:g} mm); check the point pairs")
+        cp_reasons = _control_point_reasons(cp_res, new.pitch)
+        notes.extend(cp_reasons)
         timings["control_points"] = time.perf_counter() - t_start
 
-    auto_tr = None
-    contrast = None
-    std_rot = std_shift = None
-    auto_ok = coarse_ok = False
-    score_auto = float("nan")
+    auto_run = None
     if cp_tr is None or auto:
-        t0 = time.perf_counter()
-        pn = _pyramid(new)
-        po = _pyramid(old)
-        timings["features"] = time.perf_counter() - t0
-
-        # coarse level: coarsest new level with at least COARSE_CELLS on the long side, but not
-        # coarser than COARSE_MAX_PITCH_MM (on large floors the seam bands would vanish)
-        kc = 0
-        for k, lv in enumerate(pn):
-            if max(lv.img.shape) >= COARSE_CELLS and lv.pitch <= COARSE_MAX_PITCH_MM * (1 + 1e-9):
-                kc = k
-        new_c = pn[kc]
-        old_c = _closest_level(po, new_c.pitch)
-        centre_tr = cp_tr if cp_tr is not None else (seed or RigidTransform())
-        if cp_tr is not None:
-            half_rot, shift_r = cp_window_deg, cp_window_mm
-        else:
-            half_rot, shift_r = max_rotation_deg, max_shift_mm
-        xs, ys = new.x, new.y
-        rmax = max(math.hypot(x, y) for x in (xs[0], xs[-1]) for y in (ys[0], ys[-1]))
-        step = min(0.5, max(0.02, math.degrees(new_c.pitch / max(rmax, 1.0))))
-        nstep = max(1, int(math.ceil(half_rot / step)))
-        angles = centre_tr.rotation_deg + step * np.arange(-nstep, nstep + 1)
-        t0 = time.perf_counter()
-        # shift centre for each angle: rotate about the origin, then translate by the seed's shift
-        # The sweep runs twice in one pass: with the coverage outline (to place the floor) and
-        # without it (seams, plate edges and pits only: for the rotation contrast).
-        res, res_seam = _masked_ncc_sweep(new_c, old_c, angles, (centre_tr.dx_mm, centre_tr.dy_mm),
-                                          shift_r + new_c.pitch, seams=True)
-        timings["coarse_search"] = time.perf_counter() - t0
-        peaks = np.array([r[0] for r in res])
-        ib = int(np.argmax(peaks))
-        da = _parabolic(peaks[ib - 1], peaks[ib], peaks[ib + 1]) if 0 < ib < len(peaks) - 1 else 0.0
-        ang = float(angles[ib] + da * step)
-        tr = RigidTransform(ang, centre_tr.dx_mm + res[ib][1], centre_tr.dy_mm + res[ib][2])
-        # Rotation contrast, meaningful only over a wide sweep (not the small control-point window):
-        # the seam-only NCC at the chosen angle (best of it and its two neighbours) minus the median
-        # over the sweep.  Not the NCC with the outline: a round outline fits at every angle, and on
-        # large floors, where the coarse cell is several seam widths, it dominates that NCC, so its
-        # peak stood only 0.002-0.02 above its median although the rotation was well determined.
-        peaks_seam = np.array([r[0] for r in res_seam])
-        contrast = None
-        contrast_noise = 0.0
-        if half_rot >= 2.0 and len(peaks) >= 5:
-            # an angle without features in the overlap (NCC undefined, -1) counts as no correlation
-            pk = np.maximum(peaks_seam, 0.0)
-            contrast = float(np.max(pk[max(0, ib - 1):ib + 2]) - np.median(pk))
-            # NCC noise of unrelated floors: 1/sqrt(N_eff), N_eff = interior cells / (4 pi sigma^2)
-            # for white noise smoothed by a Gaussian of sigma = 1 cell (from memory)
-            n_eff = float(np.count_nonzero(new_c.interior)) / (4.0 * math.pi)
-            contrast_noise = 1.0 / math.sqrt(max(n_eff, 1.0))
-            details["rotation_contrast_noise"] = contrast_noise
-            details["rotation_contrast_with_outline"] = float(peaks[ib] - np.median(peaks))
-        details.update(coarse_pitch_mm=new_c.pitch, angle_step_deg=step, n_angles=int(len(angles)),
-                       coarse_peak_ncc=float(peaks[ib]), coarse_peak_ncc_seams=float(peaks_seam[ib]),
-                       coarse_estimate=tr.to_dict())
-
-        # next-best coarse candidates: other local maxima of the sweep within 80 % of the best peak
-        cands = []
-        for j in np.argsort(-peaks):
-            j = int(j)
-            if j == ib or peaks[j] < 0.8 * peaks[ib] or len(cands) >= 2:
-                continue
-            if (j == 0 or peaks[j] >= peaks[j - 1]) and (j == len(peaks) - 1 or peaks[j] >= peaks[j + 1]):
-                cands.append(RigidTransform(float(angles[j]), centre_tr.dx_mm + res[j][1],
-                                            centre_tr.dy_mm + res[j][2]))
-        coarse_tr = tr
-
-        t0 = time.perf_counter()
-        info = None
-        levels_done = []
-        last_good = None
-        for k in range(kc - 1 if kc > 0 else 0, -1, -1):
-            lv_n = pn[k]
-            lv_o = _closest_level(po, lv_n.pitch)
-            start = tr
-            tr, info = _refine_level(lv_n, lv_o, start, n_samples=n_samples)
-            entry = {"pitch_mm": lv_n.pitch, "old_pitch_mm": lv_o.pitch,
-                     "iterations": info["iterations"], "converged": info["converged"],
-                     "samples": info["n"]}
-            if not info["converged"] and info["n"] >= 50:
-                # Restarts: from the same start with heavy damping, then from the next-best
-                # coarse candidates (only at the first level refined, which starts from them).
-                starts = [start] + (cands if not levels_done else [])
-                for st_tr in starts:
-                    tr2, info2 = _refine_level(lv_n, lv_o, st_tr, n_samples=n_samples,
-                                               max_iter=40, lam0=1.0)
-                    entry.setdefault("restarts", []).append(
-                        {"start": st_tr.to_dict(), "iterations": info2["iterations"],
-                         "converged": info2["converged"]})
-                    if info2["converged"]:
-                        tr, info = tr2, info2
-                        entry["converged"] = True
-                        break
-            levels_done.append(entry)
-            if not info["converged"]:
-                if last_good is not None:
-                    # keep the finest level that converged
-                    tr, info = last_good
-                    details["refine_stopped_at_pitch_mm"] = lv_n.pitch
-                else:
-                    tr = coarse_tr          # not the wandering iterate
-                break
-            last_good = (tr, info)
-            # Many samples and (almost) no move at this level: a finer level would not move either
-            # (saves the full-resolution passes on large floors).  The move is bounded over the
-            # floor by |change of shift| + |change of angle| x rim radius.
-            move = (math.hypot(tr.dx_mm - start.dx_mm, tr.dy_mm - start.dy_mm)
-                    + abs(tr.theta - start.theta) * rmax)
-            entry["move_mm"] = float(move)
-            if (k > 0 and info["converged"] and info["n"] >= n_samples and info.get("cov") is not None
-                    and (info["iterations"] == 1 or move <= SKIP_MOVE_CELLS * new.pitch)):
-                details["refine_skipped_below_pitch_mm"] = lv_n.pitch
-                break
-        timings["refine"] = time.perf_counter() - t0
-        details["refine_levels"] = levels_done
-        if info is not None and info.get("cov") is not None:
-            cov = info["cov"]
-            std_rot = math.degrees(math.sqrt(max(cov[0, 0], 0.0))) * STD_INFLATION
-            std_shift = math.sqrt(max(cov[1, 1] + cov[2, 2], 0.0)) * STD_INFLATION
-
-        # Sub-cell stage: the seam bands only fix the shift to within a cell (docs, "Limits");
-        # the centroids of the pits seen in both scans carry the fraction.
-        if info is not None and info["converged"]:
-            t0 = time.perf_counter()
-            pit, pinfo = _pit_shift(new, old, tr)
-            pinfo["applied"] = False
-            if pit is not None:
-                corr, se, n_used = pit
-                pinfo.update(correction_mm=[float(corr[0]), float(corr[1])],
-                             standard_error_mm=float(math.hypot(se[0], se[1])))
-                bound = 1.5 * max(new.pitch, old.pitch)
-                if (n_used >= PIT_MIN_MATCHES and math.hypot(se[0], se[1]) <= PIT_MAX_SE_CELLS * new.pitch
-                        and math.hypot(corr[0], corr[1]) <= bound):
-                    # Inverse-variance mean of the two: the seam estimate's error is a quantisation
-                    # error, uniform over a cell of the newer grid, and of the older one too when
-                    # its grid is not rotated enough for its phase to vary along the seams.
-                    rim = max(math.hypot(x, y) for x in (new.x[0], new.x[-1]) for y in (new.y[0], new.y[-1]))
-                    var_seam = new.pitch ** 2 / 12.0
-                    if abs(math.radians(tr.rotation_deg)) * rim < old.pitch:
-                        var_seam += old.pitch ** 2 / 12.0
-                    wgt = var_seam / (var_seam + se * se)            # per axis, weight of the pits
-                    details["seam_estimate"] = tr.to_dict()
-                    tr = RigidTransform(tr.rotation_deg, tr.dx_mm + float(wgt[0] * corr[0]),
-                                        tr.dy_mm + float(wgt[1] * corr[1]))
-                    std_shift = float(math.sqrt(np.sum(var_seam * se * se / (var_seam + se * se))))
-                    pinfo.update(applied=True, pit_weight=[float(wgt[0]), float(wgt[1])])
-            details["pit_stage"] = pinfo
-            timings["pits"] = time.perf_counter() - t0
-        auto_tr = tr
-        t0 = time.perf_counter()
-        score_lv = pn[min(1, len(pn) - 1)] if pn[0].img.size > 4 * QUALITY_CELLS else pn[0]
-        score_auto = _ncc_aligned(score_lv, _closest_level(po, score_lv.pitch), auto_tr)
-        ov_auto, _ = _thickness_quality(new, old, auto_tr)
-        timings["score"] = time.perf_counter() - t0
-
-        reasons = []
-        if not (score_auto >= min_score):
-            reasons.append(f"low match score {score_auto:.2f} (< {min_score:g})")
-        need = max(min_rotation_contrast, ROT_CONTRAST_NOISE * contrast_noise)
-        if contrast is not None and contrast < need:
-            reasons.append(f"flat rotation sweep (contrast {contrast:.3f} < {need:.3g}, the larger of "
-                           f"{min_rotation_contrast:g} and {ROT_CONTRAST_NOISE:g} x the noise level "
-                           f"{contrast_noise:.3f}): the floor shows too few features (seams, plate edges, "
-                           "pits) to fix the rotation")
-        coarse_only = info is None or not info["converged"]
-        if coarse_only:
-            reasons.append("the refinement did not converge")
-        else:
-            if std_rot is not None and std_rot > max_std_rotation_deg:
-                reasons.append(f"rotation poorly determined (about ±{std_rot:.3f}°)")
-            if std_shift is not None and std_shift > max_std_shift_cells * new.pitch:
-                reasons.append(f"shift poorly determined (about ±{std_shift:.1f} mm)")
-        if ov_auto < min_overlap_pct:
-            reasons.append(f"small overlap {ov_auto:.1f} % (< {min_overlap_pct:g} %)")
-        auto_ok = not reasons
-        # a good coarse peak whose refinement failed is still far better than the identity
-        coarse_ok = coarse_only and len(reasons) == 1
-        if not auto_ok:
-            notes.append("automatic registration unreliable: " + "; ".join(reasons))
-
-    # choose the answer
-    if cp_tr is not None and (not auto or not auto_ok):
-        final, method = cp_tr, "control-points"
-        if auto and not auto_ok:
-            notes.append("fell back to the control-point fit")
-        reliable = not any(n.startswith("control points disagree") for n in notes)
-    elif auto_ok:
-        final, method = auto_tr, ("auto+control-points" if cp_tr is not None else "auto")
-        reliable = True
-        if cp_tr is not None:
-            # the automatic answer must stay near the control points (it was searched there)
-            ddx, ddy = (np.subtract(auto_tr.apply(0.0, 0.0), cp_tr.apply(0.0, 0.0)))
-            details["auto_minus_control_at_origin_mm"] = [float(ddx), float(ddy)]
-    elif coarse_ok:
-        final, method = auto_tr, "auto-coarse"
-        reliable = False
-        notes.append(f"the coarse estimate is used (good to about a coarse cell, "
-                     f"{details['coarse_pitch_mm']:g} mm); give control points to confirm it")
-    else:
-        final, method = RigidTransform(), "identity"
-        reliable = False
-        notes.append("fell back to the identity transform; give control points to register this floor")
-
-    if notes and (not reliable or method == "control-points"):
-        warnings.warn("registration: " + "; ".join(notes), RegistrationWarning, stacklevel=2)
+        auto_run = _auto(new, old, cp_tr=cp_tr, seed=seed, half_rot=cp_window_deg if cp_tr else max_rotation_deg,
+                         shift_r=cp_window_mm if cp_tr else max_shift_mm, n_samples=n_samples,
+                         thresholds=dict(min_score=min_score, min_overlap_pct=min_overlap_pct,
+                                         min_rotation_contrast=min_rotation_contrast,
+                                         max_std_rotation_deg=max_std_rotation_deg,
+                                         max_std_shift_mm=max_std_shift_cells * new.pitch),
+                         timings=timings, details=details)
+        if auto_run["reasons"]:
+            notes.append("automatic registration unreliable: " + "; ".join(auto_run["reasons"]))
+    final, method, reliable = _choose(auto_run, cp_tr, cp_reasons, auto, details, notes)
 
     t0 = time.perf_counter()
-    if final is auto_tr and auto_tr is not None:
-        score = score_auto
+    if auto_run is not None and final is auto_run["transform"]:
+        q = auto_run["quality"]
     else:
-        pn_ = _pyramid(new)
-        po_ = _pyramid(old)
-        score_lv = pn_[min(1, len(pn_) - 1)] if pn_[0].img.size > 4 * QUALITY_CELLS else pn_[0]
-        score = _ncc_aligned(score_lv, _closest_level(po_, score_lv.pitch), final)
-    overlap, rms = _thickness_quality(new, old, final)
+        q = registration_quality(new, old, final, min_overlap_pct=min_overlap_pct, check_score=False,
+                                 pyramids=auto_run["pyramids"] if auto_run else None,
+                                 loss_pyramids=auto_run["loss_pyramids"] if auto_run else None)
+        if method != "identity" and q.reasons:
+            reliable = False
+            notes.append(f"{method} transform unreliable: " + "; ".join(q.reasons))
     timings["quality"] = time.perf_counter() - t0
+    if notes and (not reliable or method == "control-points"):
+        warnings.warn("registration: " + "; ".join(notes), RegistrationWarning, stacklevel=2)
     cres = None
     if old_xy is not None:
         xn, yn = final.apply(old_xy[:, 0], old_xy[:, 1])
         cres = np.hypot(xn - new_xy[:, 0], yn - new_xy[:, 1]).tolist()
     timings["total"] = time.perf_counter() - t_start
     return Registration(
-        transform=final,
-        score=float(np.clip(score, 0.0, 1.0)) if math.isfinite(score) else 0.0,
-        overlap_pct=float(overlap),
-        residual_rms_mm=float(rms),
-        method=method,
-        reliable=bool(reliable),
-        warnings=notes,
-        control_residuals_mm=cres,
-        control_names=cp_names,
-        auto_transform=auto_tr,
-        rotation_contrast=contrast,
-        std_rotation_deg=std_rot,
-        std_shift_mm=std_shift,
-        timings_s=timings,
-        details=details,
-    )
+        transform=final, score=q.score, overlap_pct=q.overlap_pct, residual_rms_mm=q.residual_rms_mm,
+        method=method, reliable=bool(reliable), warnings=notes,
+        control_residuals_mm=cres, control_names=cp_names,
+        auto_transform=None if auto_run is None else auto_run["transform"],
+        rotation_contrast=None if auto_run is None else auto_run["contrast"],
+        std_rotation_deg=None if auto_run is None else auto_run["std_rotation_deg"],
+        std_shift_mm=None if auto_run is None else auto_run["std_shift_mm"],
+        timings_s=timings, details=details,
+        candidates=None if auto_run is None else auto_run["candidates"],
+        ambiguous=bool(auto_run is not None and auto_run["ambiguous"]), loss_match=q.loss_match)
+
+
+def _auto(new: FloorScan, old: FloorScan, *, cp_tr, seed, half_rot, shift_r, n_samples, thresholds,
+          timings, details) -> dict:
+    """The automatic estimate: search, resolve, refine, judge (see :func:`register`)."""
+    t0 = time.perf_counter()
+    pyr = (_pyramid(new), _pyramid(old))
+    timings["features"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    centre = cp_tr if cp_tr is not None else (seed or RigidTransform())
+    search = coarse_search(new, old, centre=centre, half_range_deg=half_rot, max_shift_mm=shift_r, pyramids=pyr)
+    if "circle_time_s" in search.details:          # a timing: kept out of the (reproducible) details
+        timings["circle_search"] = search.details.pop("circle_time_s")
+    details.update(search.details)
+    timings["coarse_search"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    loss_pyr = (_loss_pyramid(new), _loss_pyramid(old))
+    ib, cands, ambiguity = _resolve_candidates(new, old, search, loss_pyr)
+    timings["candidates"] = time.perf_counter() - t0
+    start = search.candidates[ib]
+    t0 = time.perf_counter()
+    tr, rinfo = refine(new, old, start, start_pitch_mm=search.coarse_pitch_mm, n_samples=n_samples,
+                       alternatives=[c for i, c in enumerate(search.candidates) if i != ib], pyramids=pyr)
+    timings["refine"] = time.perf_counter() - t0
+    details["refine_levels"] = rinfo["levels"]
+    for k in ("refine_stopped_at_pitch_mm", "refine_skipped_below_pitch_mm", "pit_stage"):
+        if k in rinfo:
+            details[k] = rinfo[k]
+    t0 = time.perf_counter()
+    th = thresholds
+    q = registration_quality(new, old, tr, min_score=th["min_score"], min_overlap_pct=th["min_overlap_pct"],
+                             pyramids=pyr, loss_pyramids=loss_pyr)
+    timings["score"] = time.perf_counter() - t0
+    reasons = []
+    noise = search.contrast_noise
+    factor = search.details.get("rotation_contrast_factor", ROT_CONTRAST_NOISE)
+    need = max(th["min_rotation_contrast"], factor * noise)
+    if search.rotation_contrast is not None and search.rotation_contrast < need:
+        reasons.append(f"flat rotation sweep (contrast {search.rotation_contrast:.3f} < {need:.3g}, the larger of "
+                       f"{th['min_rotation_contrast']:g} and {factor:g} x the noise level {noise:.3f}): "
+                       "the floor shows too few features (seams, plate edges, pits) to fix the rotation")
+    if reasons or q.overlap_pct < 1.0 or any(r.startswith("the loss patterns do not match") for r in q.reasons):
+        ambiguity = None            # candidates of a flat sweep, no overlap or another floor are noise
+    if ambiguity:
+        reasons.insert(0, ambiguity)
+    if not rinfo["converged"]:
+        reasons.append("the refinement did not converge")
+    else:
+        if rinfo["std_rotation_deg"] is not None and rinfo["std_rotation_deg"] > th["max_std_rotation_deg"]:
+            reasons.append(f"rotation poorly determined (about ±{rinfo['std_rotation_deg']:.3f}°)")
+        if rinfo["std_shift_mm"] is not None and rinfo["std_shift_mm"] > th["max_std_shift_mm"]:
+            reasons.append(f"shift poorly determined (about ±{rinfo['std_shift_mm']:.1f} mm)")
+    reasons.extend(q.reasons)
+    if len(cands) > 1:
+        cands[[c["rotation_deg"] for c in cands].index(start.rotation_deg)]["chosen"] = True
+    return {"transform": tr, "reasons": reasons, "quality": q, "contrast": search.rotation_contrast,
+            "std_rotation_deg": rinfo["std_rotation_deg"], "std_shift_mm": rinfo["std_shift_mm"],
+            "coarse_only": not rinfo["converged"], "candidates": cands, "ambiguous": ambiguity is not None,
+            "coarse_pitch_mm": search.coarse_pitch_mm, "pyramids": pyr, "loss_pyramids": loss_pyr}
+
+
+def _choose(auto_run, cp_tr, cp_reasons, auto, details, notes) -> tuple[RigidTransform, str, bool]:
+    """(transform, method, reliable) from the automatic run and the control-point fit."""
+    auto_ok = auto_run is not None and not auto_run["reasons"]
+    if cp_tr is not None and (not auto or not auto_ok):
+        if auto and not auto_ok:
+            notes.append("fell back to the control-point fit")
+        return cp_tr, "control-points", not cp_reasons
+    if auto_ok:
+        if cp_tr is not None:
+            # the automatic answer must stay near the control points (it was searched there)
+            ddx, ddy = np.subtract(auto_run["transform"].apply(0.0, 0.0), cp_tr.apply(0.0, 0.0))
+            details["auto_minus_control_at_origin_mm"] = [float(ddx), float(ddy)]
+        return auto_run["transform"], ("auto+control-points" if cp_tr is not None else "auto"), not cp_reasons
+    if auto_run["ambiguous"] and len(auto_run["reasons"]) == 1:
+        notes.append("the best-matching candidate is returned (method auto-ambiguous); do not use it for rates")
+        return auto_run["transform"], "auto-ambiguous", False
+    if auto_run["coarse_only"] and len(auto_run["reasons"]) == 1:
+        # a good coarse peak whose refinement failed is still far better than the identity
+        notes.append(f"the coarse estimate is used (good to about a coarse cell, "
+                     f"{auto_run['coarse_pitch_mm']:g} mm); give control points to confirm it")
+        return auto_run["transform"], "auto-coarse", False
+    notes.append("fell back to the identity transform; give control points to register this floor")
+    return RigidTransform(), "identity", False
