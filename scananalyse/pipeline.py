@@ -136,11 +136,14 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         if reg is None:
             with prog.stage("registration"):
                 reg = register(new, old, control_points=job.control_points)
+        if not reg.reliable:
+            # never short-term rates from a failed alignment
+            why = "; ".join(reg.warnings) or f"method {reg.method}"
+            raise InputError(f"{old.source or 'old scan'}: the two inspections could not be aligned reliably "
+                             f"({why}); give control points (--control-points), or run 'assess' on the newer scan")
         with prog.stage("resampling"):
             # only the thickness is used on the newer grid (the layers are not carried)
             old_on_new = resample_onto(dataclasses.replace(old, side=None, plate=None), new, reg.transform)
-        if not reg.reliable:
-            notes.append("registration is UNRELIABLE: " + "; ".join(reg.warnings))
 
     with prog.stage("attribution"):
         shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
