@@ -659,8 +659,8 @@ def test_check_patch_rules_flags_shell_clearance():
     geom = _Geom((100.0, -50.0), 5000.0)
     ck = repair.check_patch_rules(df, x0=0.0, y0=0.0, pitch=10.0, rules=RULES, geometry=geom).set_index("patch")
     assert ck.attrs["shell_clearance_checked"]
-    expect = {p: 5000.0 - (math.hypot(max(abs(r[1] + 50 - 100), abs(r[3] - 50 - 100)),
-                                      max(abs(r[2] + 50 + 50), abs(r[4] - 50 + 50))) + 50.0)
+    expect = {p: 5000.0 - (math.hypot(max(abs(r[0] + 50 - 100), abs(r[2] - 50 - 100)),
+                                      max(abs(r[1] + 50 + 50), abs(r[3] - 50 + 50))) + 50.0)
               for p, *r in df[["patch", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"]].itertuples(index=False)}
     for p, d in expect.items():
         assert ck.loc[p, "shell_distance_mm"] == pytest.approx(d)
