@@ -202,17 +202,21 @@ class RuleSet:
         """Names of the values listed but not applied, in table order."""
         return tuple(n for n in self.value_names() if not getattr(self, n).applied)
 
-    def for_inputs(self, *, shell_tmin_mm: float | None = None) -> "RuleSet":
-        """The rule set marked for one tank's inputs.
+    def for_inputs(self, *, shell_tmin_mm: float | None = None,
+                   shell_clearance_checked: bool = True) -> "RuleSet":
+        """The rule set marked for one tank's inputs, for its report's rule table.
 
         Without the lower shell course's tmin, ``critical_zone_min_shell_fraction`` is
         marked not applied (the critical-zone minimum is then the larger of half the
         original plate thickness and ``critical_zone_min_floor_mm``); with it, the
-        value is applied.
+        value is applied.  ``shell_lap_joint_clearance_mm`` is marked not applied when
+        the patch check ran without the floor geometry.  No value changes.
 
         Parameters
         ----------
         shell_tmin_mm : tmin of the lower shell course, None if not given. [mm]
+        shell_clearance_checked : the patch check had the shell circle
+            (``check_patch_rules(...).attrs["shell_clearance_checked"]``).
 
         Returns
         -------
@@ -229,7 +233,13 @@ class RuleSet:
             rv = dataclasses.replace(rv, applied=True, use=(
                 f"critical-zone minimum, with the lower shell course tmin {float(shell_tmin_mm):.3g} mm "
                 "given (assess.zone_mrt)"))
-        return dataclasses.replace(self, critical_zone_min_shell_fraction=rv)
+        changes = {"critical_zone_min_shell_fraction": rv}
+        if not shell_clearance_checked:
+            changes["shell_lap_joint_clearance_mm"] = dataclasses.replace(
+                self.shell_lap_joint_clearance_mm, applied=False,
+                use="the patch check was not given the floor geometry (shell circle): patches near the "
+                    "shell were not checked against it")
+        return dataclasses.replace(self, **changes)
 
     # --- rules as functions --------------------------------------------
     def mrt_mm(self, *, leak_detection: bool = False, reinforced_lining: bool = False) -> float:
