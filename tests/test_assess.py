@@ -659,3 +659,28 @@ def test_critical_zone_minimum_with_shell_tmin_applies_it():
     df3 = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
                        meta=make_meta(), rules=rs, options=AssessOptions(shell_tmin_mm=6.0))
     assert row(df3, "critical")["mrt_mm"] == pytest.approx(2.7)
+
+
+def test_shell_tmin_input_from_job_file_and_command_line(tmp_path):
+    from scananalyse.cli import _job_from_args, build_parser
+    from scananalyse.job import read_job, resolve_units
+
+    jf = tmp_path / "job.toml"
+    jf.write_text('[floor]\ndiameter = 3000\nshell_course_tmin = 0.25\n[report]\nunits = "in"\n', encoding="utf-8")
+    job = resolve_units(read_job(jf), "mm")
+    assert job.shell_tmin_mm == pytest.approx(6.35)
+    assert resolve_units(job, "mm").shell_tmin_mm == job.shell_tmin_mm  # idempotent
+    # the option, in the scans' units when no units are given
+    args = build_parser().parse_args(["assess", "scan.csv", "--out", str(tmp_path / "o"), "--diameter", "3000",
+                                      "--shell-tmin", "6.0"])
+    assert resolve_units(_job_from_args(args), "mm").shell_tmin_mm == pytest.approx(6.0)
+    # not given: None, and the critical-zone minimum leaves the shell term out
+    args = build_parser().parse_args(["assess", "scan.csv", "--out", str(tmp_path / "o"), "--diameter", "3000"])
+    assert resolve_units(_job_from_args(args), "mm").shell_tmin_mm is None
+    # refused: zero, or out of range
+    jf.write_text("[floor]\nshell_course_tmin = 0\n", encoding="utf-8")
+    with pytest.raises(InputError, match="floor.shell_course_tmin"):
+        read_job(jf)
+    jf.write_text("[floor]\nshell_course_tmin = 5000\n", encoding="utf-8")
+    with pytest.raises(InputError, match="floor.shell_course_tmin"):
+        read_job(jf)
