@@ -739,7 +739,8 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
     if z["n_scanned"][k] == 0:
         row.update({col: math.nan for col in _NAN_COLS})
         row.update({"next_due": "", "limiting": "", "rate_eva_source": "",
-                    "flags": "no-data", "notes": "zone not scanned"})
+                    "flags": "no-data", "notes": "zone not scanned"
+                    + (f"; {c.cz[1]}" if kind == "critical" else "")})
         return row
     flags: list[str] = []
     notes: list[str] = []

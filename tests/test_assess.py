@@ -636,6 +636,11 @@ def test_critical_zone_minimum_without_shell_tmin_states_the_default():
     assert "not applied" not in row(df, "interior")["notes"]
     cz, note = critical_zone_minimum(RULES, 6.35)
     assert cz == pytest.approx(3.175) and note in r["notes"]
+    # an unscanned critical zone keeps its minimum, and the note
+    t[crit] = np.nan
+    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                      meta=make_meta(), rules=RULES, options=AssessOptions())
+    assert row(df, "critical")["flags"] == "no-data" and note in row(df, "critical")["notes"]
 
 
 def test_critical_zone_minimum_with_shell_tmin_applies_it():
