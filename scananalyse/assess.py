@@ -38,6 +38,7 @@ __all__ = [
     "local_life_map",
     "eva_life",
     "zone_mrt",
+    "critical_zone_minimum",
     "mrt_map",
     "add_years",
     "assess_zones",
@@ -422,6 +423,39 @@ def zone_mrt(zones, rules, options: AssessOptions, *, t0: float) -> np.ndarray:
     return out
 
 
+def critical_zone_minimum(rules, t0: float, shell_tmin_mm: float | None = None) -> tuple[float, str]:
+    """The critical-zone minimum and a sentence saying how it was set.
+
+    min(``critical_zone_min_t0_fraction`` × t0, ``critical_zone_min_shell_fraction`` ×
+    the lower shell course tmin), but not below ``critical_zone_min_floor_mm``
+    (API 653 §4.4.7 [memory]; :meth:`RuleSet.critical_zone_min_mm`).
+
+    Parameters
+    ----------
+    rules : :class:`~scananalyse.rules.RuleSet`.
+    t0 : original plate thickness, without corrosion allowance. [mm]
+    shell_tmin_mm : tmin of the lower shell course; None = not given (the default). [mm]
+
+    Returns
+    -------
+    (minimum, note) : the minimum [mm] and the sentence for the critical zone's notes.
+        Without ``shell_tmin_mm`` only the half-plate and floor terms apply and the note
+        says the shell term was not applied: the minimum is then never below the code's
+        (min() over fewer terms), and above it wherever 50 % of the shell tmin would have
+        been the smaller term.
+    """
+    cz = rules.critical_zone_min_mm(t0, shell_tmin_mm)
+    f0 = rules.v("critical_zone_min_t0_fraction")
+    fs = rules.v("critical_zone_min_shell_fraction")
+    floor = rules.v("critical_zone_min_floor_mm")
+    head = f"critical-zone minimum {cz:.2f} mm = max(min({f0:g} × t0 {t0:.2f} mm"
+    if shell_tmin_mm is None:
+        return cz, (f"{head}), {floor:.2f} mm); no tmin of the lower shell course given (--shell-tmin): "
+                    f"its {fs * 100:g} % term was not applied, which can only raise the minimum")
+    return cz, (f"{head}, {fs * 100:g} % × lower shell course tmin {float(shell_tmin_mm):.2f} mm), "
+                f"{floor:.2f} mm)")
+
+
 def mrt_map(zones, rules, options: AssessOptions, *, t0: float) -> np.ndarray:
     """Per-cell MRT on the zone grid (float32, NaN outside the floor). [mm]"""
     lut = np.append(zone_mrt(zones, rules, options, t0=t0), np.nan).astype(np.float32)
@@ -588,7 +622,7 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
             cp_effective=options.cp_effective,
             release_prevention_barrier=options.release_prevention_barrier,
             corrosion_allowance_mm=options.corrosion_allowance_mm),
-        cz_min=rules.critical_zone_min_mm(t0, options.shell_tmin_mm),
+        cz=critical_zone_minimum(rules, t0, options.shell_tmin_mm),
         min_cov=rules.v("min_coverage_pct"))
     rows = [_zone_row(k, name, zones.kinds[k], z, ctx) for k, name in enumerate(zones.names)]
     df = pd.DataFrame(rows)
@@ -683,8 +717,12 @@ class _Context:
     rate_short_available: bool
     cap: float
     initial: float
-    cz_min: float
+    cz: tuple[float, str]  # critical-zone minimum [mm] and how it was set
     min_cov: float
+
+    @property
+    def cz_min(self) -> float:
+        return self.cz[0]
 
 
 _NAN_COLS = ("t_min_mm", "depth_max_mm", "depth_eva_mm", "depth_eva_upper_mm",
@@ -707,7 +745,8 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
     if z["n_scanned"][k] == 0:
         row.update({col: math.nan for col in _NAN_COLS})
         row.update({"next_due": "", "limiting": "", "rate_eva_source": "", "eva_source": "",
-                    "flags": "no-data", "notes": "zone not scanned"})
+                    "flags": "no-data", "notes": "zone not scanned"
+                    + (f"; {c.cz[1]}" if kind == "critical" else "")})
         return row
     flags: list[str] = []
     notes: list[str] = []
@@ -724,6 +763,8 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
                     f"rate_{s}_max_lo_mm_y": float(z[s]["lo"][k]),
                     f"rate_{s}_max_hi_mm_y": float(z[s]["hi"][k]),
                     f"rate_{s}_max_raw_mm_y": float(z[f"{s}_raw"][k])})
+    if kind == "critical":
+        notes.append(c.cz[1])
     code = _code_part(row, rtbc, rtip, mrt, c, flags, notes)
     life_eva = _eva_part(row, name, mrt, c, flags)
     rec, limiting = recommend_interval(code=code, local=row["life_local_y"], eva=life_eva,

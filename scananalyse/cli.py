@@ -89,6 +89,9 @@ def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
     p.add_argument("--repair-to", type=_LENGTH,
                    help=f"repair everything below this thickness, the code's way ({u}); at least the MRT")
     p.add_argument("--patch-thickness", type=_LENGTH, help=f"patch plate thickness ({u}; default: the rule set's)")
+    p.add_argument("--shell-tmin", type=_LENGTH,
+                   help=f"minimum thickness (tmin) of the lower shell course ({u}): the critical-zone minimum "
+                   "takes 50 %% of it into account; default none: that term is not applied (the report says so)")
     p.add_argument("--under-cause-removed", action="store_true",
                    help="the cause of underside corrosion under the patches is removed: no underside rate there")
     p.add_argument("--ruleset", help="rule set name (default api653)")
@@ -157,7 +160,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 #: Command-line options that are lengths: option attribute -> job field.
 _LENGTH_OPTIONS = {"diameter": "diameter", "annular_width": "annular_width", "repair_to": "repair_to",
-                   "patch_thickness": "patch_thickness"}
+                   "patch_thickness": "patch_thickness", "shell_tmin": "shell_tmin"}
 
 
 def _job_from_args(args):

@@ -9,7 +9,7 @@ file are resolved relative to the job file's folder and must stay inside it unle
 FIFO or a device, is refused.
 
 Length units: every length of a job (diameter, annular width, centre, zone polygons,
-repair-to and patch thickness) is in the job's *length units*: ``report.units`` (or
+repair-to, patch thickness and the lower shell course's tmin) is in the job's *length units*: ``report.units`` (or
 the command line's ``--units``) when given, else the units of the newer scan.
 :func:`resolve_units` converts them once the scan's units are known.
 
@@ -19,6 +19,7 @@ Example::
     diameter = 8000          # inside diameter, in the job's length units (see below)
     annular_width = 600      # optional annular ring width
     centre = [0.0, 0.0]
+    shell_course_tmin = 6.0  # optional tmin of the lower shell course (critical-zone minimum)
 
     [protection]
     leak_detection = false   # release detection and containment (MRT case of Table 4.4)
@@ -80,7 +81,8 @@ MM_PER_UNIT = {"mm": 1.0, "in": 25.4}
 SCAN_UNITS = "scan"
 
 #: Job fields holding lengths the user gives in the job's length units.
-LENGTH_FIELDS = ("diameter", "annular_width", "centre", "zone_polygons", "repair_to", "patch_thickness")
+LENGTH_FIELDS = ("diameter", "annular_width", "centre", "zone_polygons", "repair_to", "patch_thickness",
+                 "shell_tmin")
 
 #: Accepted range of every numeric job value: ``field -> (low, high, unit)``.  Lengths
 #: (unit ``"mm"`` and in :data:`LENGTH_FIELDS`) are checked in mm once their units are
@@ -94,6 +96,7 @@ BOUNDS = {
     "zone_polygons": (-200_000.0, 200_000.0, "mm"),
     "repair_to": (0.1, 50.0, "mm"),                  # 0 in a job file means "plan from rates"
     "patch_thickness": (1.0, 50.0, "mm"),
+    "shell_tmin": (1.0, 100.0, "mm"),
     "target_interval": (0.5, 30.0, "y"),
     "coating_life_years": (0.0, 100.0, "y"),
     "block_mm": (100.0, 10_000.0, "mm"),             # always mm
@@ -106,6 +109,7 @@ BOUNDS = {
 OPTIONS = {
     "diameter": "--diameter", "annular_width": "--annular-width", "centre": "floor.centre",
     "zone_polygons": "zones.polygons", "repair_to": "--repair-to", "patch_thickness": "--patch-thickness",
+    "shell_tmin": "--shell-tmin",
     "target_interval": "--target-interval", "coating_life_years": "--coating-life", "block_mm": "--block-mm",
     "seed": "--seed", "shapes": "--shapes", "repairs": "--repairs", "control_points": "--control-points",
     "patches": "--patches", "top_depth": "--top-depth",
@@ -119,8 +123,8 @@ class Job:
     Lengths (:data:`LENGTH_FIELDS`) are as the user gave them: each in
     ``length_units_of[field]`` if set, else in ``length_units``, else (None) in the
     newer scan's units.  :func:`resolve_units` turns them into the scans' units (what
-    the pipeline reads) and fills ``repair_to_mm`` and ``patch_thickness_mm``.  Before
-    that, those two hold provisional values (the given number read in the stated units,
+    the pipeline reads) and fills ``repair_to_mm``, ``patch_thickness_mm`` and
+    ``shell_tmin_mm``.  Before that, those three hold provisional values (the given number read in the stated units,
     mm if none).  Fields named ``*_mm`` otherwise are millimetres; ``units`` is the
     display unit of the report and console.
     """
@@ -156,6 +160,8 @@ class Job:
     source: str | None = None
     repair_to: float | None = None  # job's length units (None: plan from rates)
     patch_thickness: float | None = None  # job's length units (None: the rule set's)
+    shell_tmin: float | None = None  # job's length units (None: not given; the shell term is not applied)
+    shell_tmin_mm: float | None = None  # tmin of the lower shell course [mm], from shell_tmin
     length_units: str | None = None  # units of the lengths; None = the newer scan's units
     length_units_of: dict = field(default_factory=dict)  # field -> units, where one field differs
     origins: dict = field(default_factory=dict)  # field -> "file: field 'x.y'" or "--option"
@@ -266,11 +272,16 @@ def check_value(name: str, value, *, what: str, units: str | None = "mm") -> Non
                              + (f" ({hint})" if hint else ""))
 
 
+#: Lengths the pipeline reads in mm: (job field, its mm field).
+_MM_FIELDS = (("repair_to", "repair_to_mm"), ("patch_thickness", "patch_thickness_mm"),
+              ("shell_tmin", "shell_tmin_mm"))
+
+
 def _provisional(job: Job) -> Job:
-    """Fill ``repair_to_mm`` and ``patch_thickness_mm`` from the given values, read in
+    """Fill ``repair_to_mm``, ``patch_thickness_mm`` and ``shell_tmin_mm`` from the given values, read in
     their stated units (mm when the scans' units are still unknown)."""
     changes = {}
-    for raw, mm in (("repair_to", "repair_to_mm"), ("patch_thickness", "patch_thickness_mm")):
+    for raw, mm in _MM_FIELDS:
         v = getattr(job, raw)
         if v is not None:
             changes[mm] = v * MM_PER_UNIT[job.units_of(raw) or "mm"]
@@ -282,7 +293,7 @@ def resolve_units(job: Job, scan_units: str) -> Job:
 
     Every length (:data:`LENGTH_FIELDS`) given in other units is converted into
     ``scan_units`` (what the pipeline reads: it converts the scans' units to mm);
-    ``repair_to_mm`` and ``patch_thickness_mm`` are set in mm.  The values as typed
+    ``repair_to_mm``, ``patch_thickness_mm`` and ``shell_tmin_mm`` are set in mm.  The values as typed
     are kept in ``typed`` (for messages that suggest the likely unit), every length is
     range-checked in mm, and the annular width must be less than the radius.
     Idempotent: resolving twice with the same units changes nothing.
@@ -321,7 +332,7 @@ def resolve_units(job: Job, scan_units: str) -> Job:
             changes[name] = [(label, [(x * r, y * r) for x, y in pts]) for label, pts in val]
         else:
             changes[name] = val * r
-    for raw, mm in (("repair_to", "repair_to_mm"), ("patch_thickness", "patch_thickness_mm")):
+    for raw, mm in _MM_FIELDS:
         if raw in changes:
             changes[mm] = changes[raw] * s
     out = job.replace(length_units=scan_units, length_units_of={}, typed=typed, **changes)
@@ -338,6 +349,7 @@ _SCHEMA = {
     ("floor", "diameter"): ("diameter", _NUM),
     ("floor", "annular_width"): ("annular_width", _NUM),
     ("floor", "centre"): ("centre", (list,)),
+    ("floor", "shell_course_tmin"): ("shell_tmin", _NUM),
     ("protection", "leak_detection"): ("leak_detection", (bool,)),
     ("protection", "reinforced_lining"): ("reinforced_lining", (bool,)),
     ("protection", "coated"): ("coated", (bool,)),
@@ -542,7 +554,7 @@ def read_job(path) -> Job:
                 val = float(val)
                 if not math.isfinite(val):
                     raise InputError(f"{at}: not a finite number")
-                if val < 0 or (val == 0 and fname in ("diameter", "annular_width", "patch_thickness",
+                if val < 0 or (val == 0 and fname in ("diameter", "annular_width", "patch_thickness", "shell_tmin",
                                                       "target_interval", "block_mm")):
                     raise InputError(f"{at}: must be positive, got {val:g}")
             if isinstance(val, str) and "\0" in val:

@@ -161,7 +161,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
             coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
             release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
-            target_interval_years=job.target_interval)
+            target_interval_years=job.target_interval, shell_tmin_mm=job.shell_tmin_mm)
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
         check_repair_to(job.repair_to_mm,
                         dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
@@ -224,8 +224,12 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                          ext_depth=ext_depth, hidden=hidden, older=older)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
-                    side=side, rates=lr, zones=zmap, rules=rules, options=options, extremes_depth=ext_depth,
-                    extremes_rate=ext_rate, hidden=hidden, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
+                    side=side, rates=lr, zones=zmap, options=options, extremes_depth=ext_depth,
+                    rules=rules.for_inputs(shell_tmin_mm=job.shell_tmin_mm,  # rule table: which rules applied
+                                           shell_clearance_checked=getattr(rep.get("patch_checks"), "attrs",
+                                                                           {}).get("shell_clearance_checked", False)),
+                    extremes_rate=ext_rate, hidden=hidden, zone_table=table, life_map=life, mrt_map=mrt,
+                    indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     **rep)
 

@@ -67,6 +67,7 @@ __all__ = [
     "FLAG_TOO_CLOSE",
     "FLAG_OVERLAP_SIZE",
     "FLAG_NOT_BEYOND",
+    "FLAG_SHELL_CLEARANCE",
     "RepairPlan",
     "cells_needing_repair",
     "seams_from_plate",
@@ -76,6 +77,7 @@ __all__ = [
     "covered_cells",
     "apply_patches",
     "check_patch_rules",
+    "shell_distance_mm",
     "repair_and_reassess",
     "uncovered_cells",
     "plan_repairs",
@@ -97,6 +99,7 @@ FLAG_TOO_SMALL = "too-small"
 FLAG_TOO_CLOSE = "too-close"
 FLAG_OVERLAP_SIZE = "overlaps-without-min-size"
 FLAG_NOT_BEYOND = "not-beyond-corrosion"
+FLAG_SHELL_CLEARANCE = "shell-clearance"
 
 # Geometric tolerance for comparisons of positions. [mm]
 _TOL = 1e-6
@@ -988,8 +991,50 @@ def uncovered_cells(needs, patches, *, x0, y0, pitch):
     return int(np.count_nonzero(out)), out
 
 
+def shell_distance_mm(R, rad, *, centre, radius_mm) -> np.ndarray:
+    """Least distance from each patch outline (its fillet weld) to the inside of the shell.
+
+    Parameters
+    ----------
+    R : (n, 4) rectangles ``x_min, y_min, x_max, y_max``. [mm]
+    rad : (n,) corner radii. [mm]
+    centre : (x, y) of the shell circle. [mm]
+    radius_mm : inside radius of the shell. [mm]
+
+    Returns
+    -------
+    (n,) ndarray : radius − the farthest point of the rounded outline from the centre [mm];
+    negative when the patch reaches beyond the shell.
+
+    Notes
+    -----
+    A rounded rectangle is its core rectangle (inset by the radius) grown by a disc of
+    that radius, so its farthest point from the centre is the farthest core corner plus
+    the radius: the distance is exact, not the sharp rectangle's.
+    """
+    R = np.asarray(R, dtype=float).reshape(-1, 4)
+    r = np.asarray(rad, dtype=float).reshape(-1)
+    cx, cy = float(centre[0]), float(centre[1])
+    dx = np.maximum(np.abs(R[:, 0] + r - cx), np.abs(R[:, 2] - r - cx))
+    dy = np.maximum(np.abs(R[:, 1] + r - cy), np.abs(R[:, 3] - r - cy))
+    return float(radius_mm) - (np.hypot(dx, dy) + r)
+
+
+def _shell_geometry(geometry):
+    """(centre, radius) of the shell from a FloorGeometry-like object, or None."""
+    if geometry is None:
+        return None
+    radius = float(geometry.radius_mm)
+    centre = tuple(float(v) for v in geometry.centre)
+    if not (math.isfinite(radius) and radius > 0 and all(math.isfinite(v) for v in centre)):
+        raise InputError(f"patch check: field 'geometry': shell radius {radius!r} and centre {centre!r} "
+                         "must be finite, the radius positive")
+    return centre, radius
+
+
 def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, critical_mask=None,
-                      needs=None, zone_labels=None, zone_names=None, plate_seams=None) -> pd.DataFrame:
+                      needs=None, zone_labels=None, zone_names=None, plate_seams=None,
+                      geometry=None) -> pd.DataFrame:
     """Check every patch of a (user's) patch set against the patch rules.
 
     Parameters
@@ -1004,11 +1049,18 @@ def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, 
     critical_mask : critical-zone cells (default: zone ``critical`` of the zone layer). [-]
     needs : cells needing repair, for ``not-beyond-corrosion``. [-]
     zone_labels, zone_names : zone layer, for the critical-zone default. [-]
+    geometry : the floor's :class:`~scananalyse.zones.FloorGeometry` (``ZoneMap.geometry``):
+        its centre and inside radius are the shell circle for ``shell-clearance``; None
+        (the default, as before) leaves that rule unchecked, and the result's
+        ``attrs["shell_clearance_checked"]`` is False. [-]
 
     Returns
     -------
-    DataFrame with columns ``patch``, ``flags`` (``;``-separated violations) and
-    ``ok`` (no violation).  Flags: ``too-small`` (smaller side below
+    DataFrame with columns ``patch``, ``flags`` (``;``-separated violations),
+    ``ok`` (no violation) and ``shell_distance_mm`` (least distance from the outline
+    to the inside of the shell, :func:`shell_distance_mm`; NaN without ``geometry``).
+
+    Flags: ``too-small`` (smaller side below
     ``patch_min_size_mm``), ``overlaps-without-min-size`` (overlaps a seam or
     another patch but below ``patch_min_size_overlap_mm``), ``too-close`` (a
     parallel edge of another patch within ``patch_weld_clearance_mm``),
@@ -1016,9 +1068,13 @@ def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, 
     ``critical-zone-special-repair`` (touches the critical zone; plus
     ``critical-zone-thickness`` when thicker than
     ``patch_critical_max_thickness_mm``), ``not-beyond-corrosion`` (a cell
-    needing repair closer than ``patch_extend_beyond_mm`` to the outline).
+    needing repair closer than ``patch_extend_beyond_mm`` to the outline),
+    ``shell-clearance`` (the outline closer than ``shell_lap_joint_clearance_mm`` to
+    the inside of the shell: a patch's fillet weld is a lap joint in the bottom, API 650
+    §5.5.2).
     """
     _validate_table(patches)
+    shell = _shell_geometry(geometry)
     x0, y0, pitch = float(x0), float(y0), float(pitch)
     R, rad, thk, ids = _rects_of(patches)
     segs, use = _seam_set(seams, plate, x0, y0, pitch, rules.v("patch_weld_clearance_mm"), plate_seams)
@@ -1026,8 +1082,17 @@ def check_patch_rules(patches, *, x0, y0, pitch, rules, plate=None, seams=None, 
     nd = None if needs is None else np.asarray(needs, dtype=bool)
     flags = _rule_flags(R, rad, thk, rules=rules, segs=segs, use=use, critical=crit, needs=nd,
                         x0=x0, y0=y0, pitch=pitch)
-    return pd.DataFrame({"patch": ids, "flags": [";".join(f) for f in flags],
-                         "ok": [not f for f in flags]}, columns=["patch", "flags", "ok"])
+    dist = np.full(len(R), np.nan)
+    if shell is not None and len(R):
+        dist = shell_distance_mm(R, rad, centre=shell[0], radius_mm=shell[1])
+        near = dist < rules.v("shell_lap_joint_clearance_mm") - _TOL
+        for k in np.flatnonzero(near):
+            flags[k].append(FLAG_SHELL_CLEARANCE)
+    out = pd.DataFrame({"patch": ids, "flags": [";".join(f) for f in flags],
+                        "ok": [not f for f in flags], "shell_distance_mm": dist},
+                       columns=["patch", "flags", "ok", "shell_distance_mm"])
+    out.attrs["shell_clearance_checked"] = shell is not None
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -1640,7 +1705,10 @@ def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_o
                                patch_thickness_mm=job.patch_thickness_mm, plate_seams=plate_seams)
     checks = check_patch_rules(patches, x0=new.x0, y0=new.y0, pitch=new.pitch, rules=rules,
                                plate=new.plate, critical_mask=critical, needs=needs,
-                               zone_labels=zmap.labels, zone_names=zmap.names, plate_seams=plate_seams)
+                               zone_labels=zmap.labels, zone_names=zmap.names, plate_seams=plate_seams,
+                               geometry=zmap.geometry)
+    if own_patches is None:
+        patches = _with_shell_clearance(patches, checks)
     n_uncovered, _ = uncovered_cells(needs, patches, x0=new.x0, y0=new.y0, pitch=new.pitch)
     t_rep, rt_rep, ru_rep, covered = apply_patches(new.thickness, lr.rate_top, lr.rate_under, patches,
                                                    x0=new.x0, y0=new.y0, pitch=new.pitch,
@@ -1675,6 +1743,19 @@ def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_o
             "uncovered_cells": int(n_uncovered), "zones_repaired": zones_rep,
             "repaired_maps": {"thickness_repaired": t_rep, "rate_top_repaired": rt_rep, "life_local_repaired": life_rep,
                               "rate_under_repaired": ru_rep, "patched": covered}}
+
+
+def _with_shell_clearance(patches, checks):
+    """Planned patches keep their planner's flags, plus ``shell-clearance`` where the check
+    found the weld too near the shell (the planner does not know the shell circle)."""
+    if not len(patches) or "shell_distance_mm" not in checks:
+        return patches
+    near = dict(zip(checks["patch"], checks["flags"].str.split(";").apply(lambda f: FLAG_SHELL_CLEARANCE in f)))
+    out = patches.copy()
+    old = out["flags"].fillna("").astype(str) if "flags" in out else pd.Series("", index=out.index)
+    out["flags"] = [";".join([f for f in (o, FLAG_SHELL_CLEARANCE if near.get(p) else "") if f])
+                    for o, p in zip(old, out["patch"])]
+    return out
 
 
 def _own_patch_verdict(patches, checks, own: bool):

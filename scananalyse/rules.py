@@ -19,6 +19,12 @@ Tags
     replaced by the user (job file ``[rules.overrides]``); ``source`` keeps the
     value it replaced.
 
+Applied or listed
+-----------------
+Each value says whether the assessment applies it (:attr:`RuleValue.applied`) and where,
+or why it is only listed (:attr:`RuleValue.use`); :meth:`RuleSet.table` carries both and
+:meth:`RuleSet.for_inputs` marks the values that depend on a tank's inputs.
+
 All lengths are mm, rates mm/y, intervals years, whatever the scan's units.
 The standard in force, the owner's authorised inspector and local regulations
 decide; these values are defaults to be checked.
@@ -49,6 +55,10 @@ class RuleValue:
     tag : one of :data:`TAGS`.
     source : where the value comes from (publication, clause), or what it replaced.
     note : optional remark (conversion, caveat).
+    applied : True when the tool applies the value in an assessment from a scan;
+        False when it is only listed (no input feeds it, or it is used only where a
+        scan assessment never goes).
+    use : where the value is applied (and on what condition), or why it is not.
     """
 
     value: float
@@ -56,14 +66,16 @@ class RuleValue:
     tag: str
     source: str
     note: str = ""
+    applied: bool = True
+    use: str = ""
 
     def __post_init__(self):
         if self.tag not in TAGS:
             raise ValueError(f"rule tag must be one of {TAGS}, got {self.tag!r}")
 
 
-def _rv(value, unit, tag, source, note=""):
-    return RuleValue(float(value), unit, tag, source, note)
+def _rv(value, unit, tag, source, note="", *, use, applied=True):
+    return RuleValue(float(value), unit, tag, source, note, applied, use)
 
 
 # Fields that must be strictly positive (used as divisors or widths).
@@ -170,13 +182,64 @@ class RuleSet:
         return getattr(self, name).value
 
     def table(self) -> list[dict]:
-        """Rows ``{name, value, unit, tag, source, note}`` for the report, in field order."""
+        """Rows ``{name, value, unit, tag, source, note, applied, use}`` for the report, in
+        field order.
+
+        ``applied`` is True for a value the assessment applies, False for one that is only
+        listed; ``use`` says where it is applied or why not.  The ``note`` of a value not
+        applied starts with "not applied: " and the reason, so a table showing only the
+        note still says it.
+        """
         rows = []
         for n in self.value_names():
             rv = getattr(self, n)
+            note = rv.note if rv.applied else "; ".join(x for x in (f"not applied: {rv.use}", rv.note) if x)
             rows.append({"name": n, "value": rv.value, "unit": rv.unit, "tag": rv.tag,
-                         "source": rv.source, "note": rv.note})
+                         "source": rv.source, "note": note, "applied": rv.applied, "use": rv.use})
         return rows
+
+    def not_applied(self) -> tuple[str, ...]:
+        """Names of the values listed but not applied, in table order."""
+        return tuple(n for n in self.value_names() if not getattr(self, n).applied)
+
+    def for_inputs(self, *, shell_tmin_mm: float | None = None,
+                   shell_clearance_checked: bool = True) -> "RuleSet":
+        """The rule set marked for one tank's inputs, for its report's rule table.
+
+        Without the lower shell course's tmin, ``critical_zone_min_shell_fraction`` is
+        marked not applied (the critical-zone minimum is then the larger of half the
+        original plate thickness and ``critical_zone_min_floor_mm``); with it, the
+        value is applied.  ``shell_lap_joint_clearance_mm`` is marked not applied when
+        the patch check ran without the floor geometry.  No value changes.
+
+        Parameters
+        ----------
+        shell_tmin_mm : tmin of the lower shell course, None if not given. [mm]
+        shell_clearance_checked : the patch check had the shell circle
+            (``check_patch_rules(...).attrs["shell_clearance_checked"]``).
+
+        Returns
+        -------
+        RuleSet
+        """
+        rv = self.critical_zone_min_shell_fraction
+        if shell_tmin_mm is None:
+            rv = dataclasses.replace(rv, applied=False, use=(
+                "no tmin of the lower shell course was given (--shell-tmin, job file "
+                "[floor] shell_course_tmin); the critical-zone minimum is the larger of half "
+                "the original plate thickness and critical_zone_min_floor_mm, which is higher "
+                "than the code's minimum whenever 50 % of the shell tmin is the smaller term"))
+        else:
+            rv = dataclasses.replace(rv, applied=True, use=(
+                f"critical-zone minimum, with the lower shell course tmin {float(shell_tmin_mm):.3g} mm "
+                "given (assess.zone_mrt)"))
+        changes = {"critical_zone_min_shell_fraction": rv}
+        if not shell_clearance_checked:
+            changes["shell_lap_joint_clearance_mm"] = dataclasses.replace(
+                self.shell_lap_joint_clearance_mm, applied=False,
+                use="the patch check was not given the floor geometry (shell circle): patches near the "
+                    "shell were not checked against it")
+        return dataclasses.replace(self, **changes)
 
     # --- rules as functions --------------------------------------------
     def mrt_mm(self, *, leak_detection: bool = False, reinforced_lining: bool = False) -> float:
@@ -272,78 +335,114 @@ class RuleSet:
 
 _IN = 25.4  # mm per inch, exact
 
+_ASSESS = "assess.assess_zones"
+_PLAN = "repair.plan_patches and repair.check_patch_rules"
+_NO_RATES = ("used only when no corrosion rates are known (RuleSet.initial_interval_years); an "
+             "assessment from a scan always has rates (long-term ones at least)")
 _API653 = RuleSet(
     name="api653",
     mrt_no_leak_detection_mm=_rv(
         2.54, "mm", "seen", "API 653 Table 4.4 (quoted in 14 CCR §1773.4(e) and by Carucci)",
-        "0.10 in; no means of leak detection and containment"),
+        "0.10 in; no means of leak detection and containment",
+        use="MRT of every zone (assess.zone_mrt), no leak detection given"),
     mrt_leak_detection_mm=_rv(
         1.27, "mm", "seen", "API 653 Table 4.4 (quoted in 14 CCR §1773.4(e) and by Carucci)",
-        "0.05 in; with leak detection and containment"),
+        "0.05 in; with leak detection and containment",
+        use="MRT of every zone (assess.zone_mrt) with --leak-detection"),
     mrt_reinforced_lining_mm=_rv(
         1.27, "mm", "seen", "API 653 Table 4.4 (quoted in 14 CCR §1773.4(e) and by Carucci)",
-        "0.05 in; reinforced lining > 0.05 in thick per API RP 652 [memory]"),
+        "0.05 in; reinforced lining > 0.05 in thick per API RP 652 [memory]",
+        use="MRT of every zone (assess.zone_mrt) with --reinforced-lining"),
     lining_min_thickness_mm=_rv(
-        1.27, "mm", "seen", "API 653 Table 4.4", "0.05 in"),
+        1.27, "mm", "seen", "API 653 Table 4.4", "0.05 in", applied=False,
+        use="the lining's thickness is not an input: the job states only whether the bottom has a "
+            "reinforced lining thicker than this (--reinforced-lining)"),
     critical_zone_width_mm=_rv(
-        75.0, "mm", "seen", "API 653 definition of the critical zone (quoted in a Q&A set)",
-        "3 in, radially inward from the inside edge of the shell"),
+        75.0, "mm", "seen", "API 653 definition of the critical zone (Section 3 [memory]; quoted in a Q&A set)",
+        "3 in, radially inward from the inside edge of the shell",
+        use="the critical zone of the zone map (zones.zone_map)"),
     critical_zone_min_t0_fraction=_rv(
-        0.5, "1", "memory", "API 653 §4.4 critical-zone rule",
-        "half the original plate thickness (without corrosion allowance)"),
+        0.5, "1", "memory", "API 653 §4.4.7 critical-zone rule [memory: clause recalled]",
+        "half the original plate thickness (without corrosion allowance)",
+        use="critical-zone minimum (assess.zone_mrt)"),
     critical_zone_min_shell_fraction=_rv(
-        0.5, "1", "memory", "API 653 §4.4 critical-zone rule", "50 % of the lower shell course tmin"),
+        0.5, "1", "memory", "API 653 §4.4.7 critical-zone rule [memory: clause recalled]",
+        "50 % of the lower shell course tmin",
+        use="critical-zone minimum (assess.zone_mrt), only when the lower shell course tmin is given "
+            "(--shell-tmin, job file [floor] shell_course_tmin)"),
     critical_zone_min_floor_mm=_rv(
-        2.54, "mm", "memory", "API 653 §4.4 critical-zone rule", "never below 0.1 in"),
+        2.54, "mm", "memory", "API 653 §4.4.7 critical-zone rule [memory: clause recalled]",
+        "never below 0.1 in", use="critical-zone minimum (assess.zone_mrt)"),
     interval_cap_y=_rv(
-        20.0, "y", "seen", "API 653 §6.4.2 (training slides)", "without a release-prevention barrier"),
+        20.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+        "without a release-prevention barrier", use=f"interval cap ({_ASSESS})"),
     interval_cap_rpb_y=_rv(
-        30.0, "y", "seen", "API 653 §6.4.2 (training slides)", "with a release-prevention barrier"),
+        30.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+        "with a release-prevention barrier",
+        use=f"interval cap with --release-prevention-barrier ({_ASSESS})"),
     initial_interval_y=_rv(
-        10.0, "y", "seen", "API 653 §6.4.2 (training slides)", "base when corrosion rates are unknown"),
-    credit_frp_lining_y=_rv(5.0, "y", "seen", "API 653 §6.4.2 (training slides)",
-                            "fibreglass-reinforced lining"),
-    credit_thin_film_y=_rv(2.0, "y", "seen", "API 653 §6.4.2 (training slides)", "thin-film coating"),
-    credit_cp_y=_rv(5.0, "y", "seen", "API 653 §6.4.2 (training slides)", "cathodic protection"),
-    credit_rpb_y=_rv(10.0, "y", "seen", "API 653 §6.4.2 (training slides)",
-                     "release-prevention barrier"),
-    ca_credit_above_mm=_rv(0.150 * _IN, "mm", "seen", "API 653 §6.4.2 (training slides)",
-                           "0.150 in"),
-    ca_credit_rate_mm_y=_rv(15 * 0.0254, "mm/y", "seen", "API 653 §6.4.2 (training slides)",
-                            "15 mpy"),
+        10.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+        "base when corrosion rates are unknown", applied=False, use=_NO_RATES),
+    credit_frp_lining_y=_rv(5.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+                            "fibreglass-reinforced lining", applied=False, use=_NO_RATES),
+    credit_thin_film_y=_rv(2.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+                           "thin-film coating", applied=False, use=_NO_RATES),
+    credit_cp_y=_rv(5.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+                    "cathodic protection", applied=False, use=_NO_RATES),
+    credit_rpb_y=_rv(10.0, "y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+                     "release-prevention barrier", applied=False, use=_NO_RATES),
+    ca_credit_above_mm=_rv(0.150 * _IN, "mm", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+                           "0.150 in", applied=False,
+                           use="the corrosion allowance is not an input, and " + _NO_RATES),
+    ca_credit_rate_mm_y=_rv(15 * 0.0254, "mm/y", "seen", "API 653 §6.4.2 (as quoted in a secondary source)",
+                            "15 mpy", applied=False,
+                            use="the corrosion allowance is not an input, and " + _NO_RATES),
     patch_min_size_overlap_mm=_rv(
         300.0, "mm", "seen", "API 653 §9.10.1.1 (quoted in repair procedures)",
-        "12 in, as the metric 300 mm quoted; overlapping a seam or another patch"),
+        "12 in, as the metric 300 mm quoted; overlapping a seam or another patch",
+        use=f"patch size ({_PLAN}, flag overlaps-without-min-size)"),
     patch_min_size_mm=_rv(
         150.0, "mm", "seen", "API 653 §9.10.1.1 (quoted in repair procedures)",
-        "6 in; only if overlapping neither a seam nor a patch"),
+        "6 in; only if overlapping neither a seam nor a patch", use=f"patch size ({_PLAN}, flag too-small)"),
     patch_extend_beyond_mm=_rv(
         50.0, "mm", "seen", "API 653 §9.10.1.1 (quoted in repair procedures)",
-        "2 in beyond the corrosion, for patches smaller than 300 mm"),
+        "2 in beyond the corrosion, for patches smaller than 300 mm",
+        use=f"patch extent ({_PLAN}, flag not-beyond-corrosion)"),
     patch_weld_clearance_mm=_rv(
-        50.0, "mm", "seen", "API 653 Fig. 9.13 (cited by study flashcards)",
-        "2 in from existing bottom welds"),
+        50.0, "mm", "seen", "API 653 §9.10.1.1 and Fig. 9.13 (as quoted in a secondary source)",
+        "2 in from existing bottom welds", use=f"weld spacing ({_PLAN}, flags weld-clearance, too-close)"),
     patch_critical_max_thickness_mm=_rv(
-        6.35, "mm", "memory", "API 653 §9.10.1 critical-zone patches",
-        "1/4 in; special shapes (tombstone) only in the critical zone"),
+        6.35, "mm", "memory", "API 653 §9.10.1 critical-zone patches [memory: clause recalled]",
+        "1/4 in; special shapes (tombstone) only in the critical zone",
+        use=f"patches touching the critical zone ({_PLAN}, flag critical-zone-thickness)"),
     patch_corner_radius_mm=_rv(
         50.0, "mm", "practice", "common practice, no source",
-        "rounded corners are required [seen: §9.10.1.1]; this radius is a common choice"),
+        "rounded corners are required [seen: API 653 §9.10.1.1]; this radius is a common choice",
+        use="corner radius of planned patches (repair.plan_patches)"),
     patch_thickness_mm=_rv(6.35, "mm", "practice", "common practice, no source",
-                           "1/4 in, the API 650 minimum bottom plate [seen: Carucci]"),
+                           "1/4 in, the API 650 minimum bottom plate [seen: Carucci]",
+                           use="thickness of planned patches unless --patch-thickness (repair.plan_patches)"),
     shell_lap_joint_clearance_mm=_rv(
-        600.0, "mm", "seen", "API 650 §5.5.2 (quoted in training notes)",
-        "24 in from the inside of the shell to any lap joint"),
-    steel_density_kg_m3=_rv(7850.0, "kg/m3", "practice", "engineering handbooks, carbon steel"),
+        600.0, "mm", "seen", "API 650 §5.5.2 (as quoted in a secondary source)",
+        "24 in from the inside of the shell to any lap joint; a patch's fillet weld is a lap joint",
+        use="patch welds near the shell (repair.check_patch_rules with the floor geometry, "
+            "flag shell-clearance)"),
+    steel_density_kg_m3=_rv(7850.0, "kg/m3", "practice", "engineering handbooks, carbon steel",
+                            use="patch masses (repair.patch_mass_kg)"),
     interval_step_y=_rv(0.5, "y", "practice", "common practice, no source",
-                        "recommended intervals are rounded down to this"),
+                        "recommended intervals are rounded down to this",
+                        use="recommended interval (assess.recommend_interval)"),
     repair_to_step_mm=_rv(0.005 * _IN, "mm", "seen",
                           "MFL threshold table from API 653 3rd ed. §4.4.7.1 (tank consultancy)",
-                          "0.005 in; repair-to thicknesses rounded up"),
+                          "0.005 in; repair-to thicknesses rounded up", applied=False,
+                          use="the repair-to thickness is the user's (--repair-to) or planned from "
+                              "rates; RuleSet.round_repair_to is not called by the assessment"),
     noise_k=_rv(2.0, "1", "practice", "common practice, no source",
-                "a change below about 2 sigma is not evidence of growth"),
+                "a change below about 2 sigma is not evidence of growth",
+                use="noise rule of the short-term rates (rates.RateOptions)"),
     min_coverage_pct=_rv(90.0, "%", "practice", "common practice, no source",
-                         "typically at least 95 % of a floor is scanned [seen: NDT service page]"),
+                         "typically at least 95 % of a floor is scanned [seen: NDT service page]",
+                         use=f"flag low-coverage ({_ASSESS})"),
 )
 
 #: Registry of named rule sets.
@@ -394,8 +493,8 @@ def get_ruleset(name: str = "api653", overrides: dict | None = None, *,
         if isinstance(val, RuleValue):
             new = val
         elif _is_number(val):
-            new = RuleValue(float(val), old.unit, "user",
-                            f"override (was {old.value:g} {old.unit}, {old.tag})", old.note)
+            new = dataclasses.replace(old, value=float(val), tag="user",
+                                      source=f"override (was {old.value:g} {old.unit}, {old.tag}: {old.source})")
         else:
             raise InputError(f"{where(src, field=key)}: expected a number [{old.unit}], "
                              f"got {type(val).__name__}")

@@ -612,3 +612,80 @@ def test_zone_rate_interval_columns_and_eva_fallback_uses_upper_ends():
     r2 = row(df2, "interior")
     assert r2["rate_under_max_mm_y"] == pytest.approx(0.5)
     assert math.isnan(r2["rate_under_max_lo_mm_y"]) and math.isnan(r2["rate_under_max_hi_mm_y"])
+
+
+# ---------------------------------------------------------------------------
+# critical-zone minimum: half t0, 50 % of the lower shell course tmin, >= 2.54 mm
+# (domain.md §1, memory)
+# ---------------------------------------------------------------------------
+def test_critical_zone_minimum_without_shell_tmin_states_the_default():
+    from scananalyse.assess import critical_zone_minimum
+
+    zm, t, side, rt, ru = base_floor()
+    # a critical-zone cell at 3.1 mm: above 50 % of a 6.0 mm shell tmin (3.0 mm), below t0/2
+    crit = zm.mask("critical")
+    ci, cj = np.argwhere(crit)[0]
+    t[ci, cj] = 3.1
+    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                      meta=make_meta(), rules=RULES, options=AssessOptions())
+    r = row(df, "critical")
+    # no shell tmin: max(min(6.35/2), 2.54) = 3.175 mm; the note says the shell term was not applied
+    assert r["mrt_mm"] == pytest.approx(3.175)
+    assert "critical-zone-below-min" in flags_of(df, "critical")
+    assert "no tmin of the lower shell course given" in r["notes"] and "not applied" in r["notes"]
+    assert "not applied" not in row(df, "interior")["notes"]
+    cz, note = critical_zone_minimum(RULES, 6.35)
+    assert cz == pytest.approx(3.175) and note in r["notes"]
+    # an unscanned critical zone keeps its minimum, and the note
+    t[crit] = np.nan
+    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                      meta=make_meta(), rules=RULES, options=AssessOptions())
+    assert row(df, "critical")["flags"] == "no-data" and note in row(df, "critical")["notes"]
+
+
+def test_critical_zone_minimum_with_shell_tmin_applies_it():
+    zm, t, side, rt, ru = base_floor()
+    crit = zm.mask("critical")
+    ci, cj = np.argwhere(crit)[0]
+    t[ci, cj] = 3.1
+    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                      meta=make_meta(), rules=RULES, options=AssessOptions(shell_tmin_mm=6.0))
+    r = row(df, "critical")
+    # min(3.175, 0.5 * 6.0 = 3.0) = 3.0 mm, not below 2.54 mm: the 3.1 mm cell is now acceptable
+    assert r["mrt_mm"] == pytest.approx(3.0)
+    assert "critical-zone-below-min" not in flags_of(df, "critical")
+    assert "lower shell course tmin 6.00 mm" in r["notes"] and "not applied" not in r["notes"]
+    # a thin shell: 50 % of 4.0 mm = 2.0 mm, raised to the 2.54 mm floor
+    df2 = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                       meta=make_meta(), rules=RULES, options=AssessOptions(shell_tmin_mm=4.0))
+    assert row(df2, "critical")["mrt_mm"] == pytest.approx(2.54)
+    # the rule set's fraction is the one applied
+    rs = get_ruleset(overrides={"critical_zone_min_shell_fraction": 0.45})
+    df3 = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                       meta=make_meta(), rules=rs, options=AssessOptions(shell_tmin_mm=6.0))
+    assert row(df3, "critical")["mrt_mm"] == pytest.approx(2.7)
+
+
+def test_shell_tmin_input_from_job_file_and_command_line(tmp_path):
+    from scananalyse.cli import _job_from_args, build_parser
+    from scananalyse.job import read_job, resolve_units
+
+    jf = tmp_path / "job.toml"
+    jf.write_text('[floor]\ndiameter = 3000\nshell_course_tmin = 0.25\n[report]\nunits = "in"\n', encoding="utf-8")
+    job = resolve_units(read_job(jf), "mm")
+    assert job.shell_tmin_mm == pytest.approx(6.35)
+    assert resolve_units(job, "mm").shell_tmin_mm == job.shell_tmin_mm  # idempotent
+    # the option, in the scans' units when no units are given
+    args = build_parser().parse_args(["assess", "scan.csv", "--out", str(tmp_path / "o"), "--diameter", "3000",
+                                      "--shell-tmin", "6.0"])
+    assert resolve_units(_job_from_args(args), "mm").shell_tmin_mm == pytest.approx(6.0)
+    # not given: None, and the critical-zone minimum leaves the shell term out
+    args = build_parser().parse_args(["assess", "scan.csv", "--out", str(tmp_path / "o"), "--diameter", "3000"])
+    assert resolve_units(_job_from_args(args), "mm").shell_tmin_mm is None
+    # refused: zero, or out of range
+    jf.write_text("[floor]\nshell_course_tmin = 0\n", encoding="utf-8")
+    with pytest.raises(InputError, match="floor.shell_course_tmin"):
+        read_job(jf)
+    jf.write_text("[floor]\nshell_course_tmin = 5000\n", encoding="utf-8")
+    with pytest.raises(InputError, match="floor.shell_course_tmin"):
+        read_job(jf)

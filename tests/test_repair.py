@@ -616,3 +616,76 @@ def test_near_pairs_equal_all_pairs_with_a_few_large_rectangles():
             if np.hypot(dx, dy) < c:
                 want.add((a, b))
     assert got == want and len(want) > 20
+
+
+# ---------------------------------------------------------------------------
+# shell clearance (API 650 §5.5.2: lap joints at least 600 mm from the shell)
+# ---------------------------------------------------------------------------
+class _Geom:
+    """A floor geometry stand-in: centre and inside radius."""
+
+    def __init__(self, centre, radius_mm):
+        self.centre, self.radius_mm = centre, radius_mm
+
+
+def _shell_patches():
+    # shell radius 5000 mm about (100, -50); patches on the +x axis
+    rows = [
+        ("IN", 3000.0, -200.0, 3300.0, 100.0),   # farthest corner ~3.2 m: 1.8 m clear
+        ("NEAR", 4200.0, -200.0, 4500.0, 100.0),  # reaches 4.40 m from the centre: 0.59 m clear
+        ("EDGE", -4280.0, -200.0, -3980.0, 100.0),  # opposite side, reaches 4.38 m: 0.61 m clear with the rounding
+    ]
+    df = pd.DataFrame(rows, columns=["patch", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"])
+    df["corner_radius_mm"] = 50.0
+    df["thickness_mm"] = 6.35
+    return df
+
+
+def test_shell_distance_is_exact_for_rounded_corners():
+    R = np.array([[3900.0, -150.0, 4300.0, 150.0]])
+    # centre (0, 0), radius 5000: core corner (4250, 100), + 50 mm radius
+    d = repair.shell_distance_mm(R, np.array([50.0]), centre=(0.0, 0.0), radius_mm=5000.0)
+    assert d[0] == pytest.approx(5000.0 - (math.hypot(4250.0, 100.0) + 50.0))
+    # the sharp rectangle reaches farther: rounding only moves the weld away from the shell
+    d0 = repair.shell_distance_mm(R, np.array([0.0]), centre=(0.0, 0.0), radius_mm=5000.0)
+    assert d0[0] < d[0]
+    # a patch beyond the shell has a negative distance
+    assert repair.shell_distance_mm(np.array([[4900.0, 0.0, 5200.0, 300.0]]), np.zeros(1),
+                                    centre=(0.0, 0.0), radius_mm=5000.0)[0] < 0
+
+
+def test_check_patch_rules_flags_shell_clearance():
+    df = _shell_patches()
+    geom = _Geom((100.0, -50.0), 5000.0)
+    ck = repair.check_patch_rules(df, x0=0.0, y0=0.0, pitch=10.0, rules=RULES, geometry=geom).set_index("patch")
+    assert ck.attrs["shell_clearance_checked"]
+    expect = {p: 5000.0 - (math.hypot(max(abs(r[0] + 50 - 100), abs(r[2] - 50 - 100)),
+                                      max(abs(r[1] + 50 + 50), abs(r[3] - 50 + 50))) + 50.0)
+              for p, *r in df[["patch", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"]].itertuples(index=False)}
+    for p, d in expect.items():
+        assert ck.loc[p, "shell_distance_mm"] == pytest.approx(d)
+    assert expect["NEAR"] < 600.0 < expect["EDGE"]
+    assert ck.loc["NEAR", "flags"] == repair.FLAG_SHELL_CLEARANCE and not ck.loc["NEAR", "ok"]
+    assert ck.loc["IN", "flags"] == "" and ck.loc["EDGE", "flags"] == ""
+    # the rule set's value is the one applied: a 1.9 m clearance catches IN as well
+    wide = get_ruleset(overrides={"shell_lap_joint_clearance_mm": 1900.0})
+    ck2 = repair.check_patch_rules(df, x0=0.0, y0=0.0, pitch=10.0, rules=wide, geometry=geom)
+    assert all(repair.FLAG_SHELL_CLEARANCE in f for f in ck2["flags"])
+    # old callers (no geometry): unchecked, said so, nothing flagged for it
+    ck3 = repair.check_patch_rules(df, x0=0.0, y0=0.0, pitch=10.0, rules=RULES)
+    assert not ck3.attrs["shell_clearance_checked"] and ck3["shell_distance_mm"].isna().all()
+    assert ck3.ok.all()
+
+
+def test_check_patch_rules_shell_clearance_with_floor_geometry():
+    from scananalyse.zones import FloorGeometry
+
+    geom = FloorGeometry(diameter_mm=10000.0, centre=(100.0, -50.0), annular_width_mm=None)
+    ck = repair.check_patch_rules(_shell_patches(), x0=0.0, y0=0.0, pitch=10.0, rules=RULES, geometry=geom)
+    assert list(ck["flags"]) == ["", repair.FLAG_SHELL_CLEARANCE, ""]
+
+
+def test_shell_clearance_flag_is_explained():
+    from scananalyse.report.labels import FLAGS_EXPLAINED
+
+    assert repair.FLAG_SHELL_CLEARANCE in FLAGS_EXPLAINED

@@ -47,7 +47,7 @@ def test_critical_zone_width_and_minimum(rs):
 
 
 def test_caps_and_initial_interval(rs):
-    # API 653 §6.4.2 (training slides, seen): base 10 y; +5 FRP lining, +2 thin film,
+    # API 653 §6.4.2 (seen, as quoted): base 10 y; +5 FRP lining, +2 thin film,
     # +5 CP, +10 RPB; cap 20 y without RPB, 30 y with.
     assert rs.interval_cap_years(False) == 20.0
     assert rs.interval_cap_years(True) == 30.0
@@ -155,3 +155,166 @@ def test_override_error_names_source_file():
 def test_unknown_ruleset():
     with pytest.raises(InputError, match=r"field 'name': unknown rule set 'api999' \(known: api653\)"):
         get_ruleset("api999")
+
+
+# ---------------------------------------------------------------------------
+# every rule in the table is applied (and a test exercises it) or marked not applied
+# ---------------------------------------------------------------------------
+def _zone_mrt(rs, *, t0=6.35, **opts):
+    from scananalyse.assess import AssessOptions, zone_mrt
+    from scananalyse.zones import FloorGeometry, GridSpec, zone_map
+
+    grid = GridSpec((62, 62), -1525.0, -1525.0, 50.0)
+    zm = zone_map(grid, FloorGeometry(3000.0), rs)
+    return tuple(zone_mrt(zm, rs, AssessOptions(**opts), t0=t0))
+
+
+def _critical_cells(rs):
+    from scananalyse.zones import FloorGeometry, GridSpec, zone_map
+
+    return int(zone_map(GridSpec((62, 62), -1525.0, -1525.0, 50.0), FloorGeometry(3000.0), rs)
+               .mask("critical").sum())
+
+
+def _assessed(rs, *, scanned_fraction=1.0, **opts):
+    """(recommended interval, flags) of a healthy floor's zones, slow rates: the cap governs."""
+    import datetime as dt
+
+    import numpy as np
+
+    from scananalyse.assess import AssessOptions, assess_zones
+    from scananalyse.scan import ScanMeta
+    from scananalyse.zones import FloorGeometry, GridSpec, zone_map
+
+    grid = GridSpec((62, 62), -1525.0, -1525.0, 50.0)
+    zm = zone_map(grid, FloorGeometry(3000.0), rs)
+    t = np.where(zm.labels >= 0, np.float32(6.3), np.float32(np.nan)).astype(np.float32)
+    if scanned_fraction < 1:
+        t[: int(62 * (1 - scanned_fraction))] = np.nan
+    rate = np.full(grid.shape, 0.001, np.float32)
+    meta = ScanMeta(inspected=dt.date(2026, 5, 1), nominal=6.35, method="UT", threshold=None,
+                    installed=dt.date(2006, 5, 1))
+    df = assess_zones(thickness=t, side=None, rate_top=rate, rate_under=rate, zones=zm, meta=meta, rules=rs,
+                      options=AssessOptions(target_interval_years=None, **opts))
+    return tuple(df["interval_recommended_y"]), tuple(df["flags"])
+
+
+def _patch_flags(rs):
+    """check_patch_rules on one patch set that sits at the edge of every patch rule."""
+    import numpy as np
+    import pandas as pd
+
+    from scananalyse import repair
+
+    class Geom:
+        centre, radius_mm = (0.0, 0.0), 2000.0
+
+    nd = np.zeros((100, 100), dtype=bool)
+    nd[20, 20] = True                 # corrosion at (200, 200), 40 mm inside A's edge
+    crit = np.zeros((100, 100), dtype=bool)
+    crit[:, 95:] = True               # x >= 950 mm
+    rows = [("A", 160.0, 160.0, 260.0, 260.0, 6.35),    # 100 mm square
+            ("D", 100.0, 600.0, 300.0, 800.0, 6.35),    # 200 mm across the seam y = 700
+            ("E", 400.0, 430.0, 700.0, 670.0, 6.35),    # top edge 30 mm from the seam
+            ("F", 880.0, 400.0, 1100.0, 620.0, 8.0),    # in the critical strip, 8 mm thick
+            ("S", 1000.0, -150.0, 1300.0, 150.0, 6.35)]  # 0.69 m from the shell (r = 2 m)
+    df = pd.DataFrame(rows, columns=["patch", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm", "thickness_mm"])
+    df["corner_radius_mm"] = 0.0
+    ck = repair.check_patch_rules(df, x0=0.0, y0=0.0, pitch=10.0, rules=rs, seams=[(0.0, 700.0, 1000.0, 700.0)],
+                                  critical_mask=crit, needs=nd, geometry=Geom())
+    return tuple(ck["flags"])
+
+
+def _planned(rs):
+    import numpy as np
+
+    from scananalyse import repair
+
+    nd = np.zeros((60, 60), dtype=bool)
+    nd[25:30, 25:32] = True
+    p = repair.plan_patches(nd, x0=0.0, y0=0.0, pitch=10.0, rules=rs)
+    return tuple(p[["corner_radius_mm", "thickness_mm", "mass_kg"]].round(6).itertuples(index=False))
+
+
+def _noise(rs):
+    from scananalyse.rates import growth_threshold
+
+    # the pipeline builds rates.RateOptions(k_sigma=rules.noise_k.value)
+    return growth_threshold(0.1, 0.1, k=rs.noise_k.value)
+
+
+#: name -> (function of a rule set whose output the value changes, the override to try)
+EXERCISED = {
+    "mrt_no_leak_detection_mm": (lambda rs: _zone_mrt(rs), 2.0),
+    "mrt_leak_detection_mm": (lambda rs: _zone_mrt(rs, leak_detection=True), 1.5),
+    "mrt_reinforced_lining_mm": (lambda rs: _zone_mrt(rs, reinforced_lining=True), 1.5),
+    "critical_zone_width_mm": (_critical_cells, 150.0),
+    "critical_zone_min_t0_fraction": (lambda rs: _zone_mrt(rs), 0.45),
+    "critical_zone_min_shell_fraction": (lambda rs: _zone_mrt(rs, shell_tmin_mm=6.0), 0.45),
+    "critical_zone_min_floor_mm": (lambda rs: _zone_mrt(rs, t0=4.0), 3.0),
+    "interval_cap_y": (lambda rs: _assessed(rs), 15.0),
+    "interval_cap_rpb_y": (lambda rs: _assessed(rs, release_prevention_barrier=True), 25.0),
+    "interval_step_y": (lambda rs: _assessed(rs), 3.0),
+    "min_coverage_pct": (lambda rs: _assessed(rs, scanned_fraction=0.5), 10.0),
+    "patch_min_size_overlap_mm": (_patch_flags, 150.0),
+    "patch_min_size_mm": (_patch_flags, 90.0),
+    "patch_extend_beyond_mm": (_patch_flags, 30.0),
+    "patch_weld_clearance_mm": (_patch_flags, 20.0),
+    "patch_critical_max_thickness_mm": (_patch_flags, 10.0),
+    "shell_lap_joint_clearance_mm": (_patch_flags, 700.0),
+    "patch_corner_radius_mm": (_planned, 30.0),
+    "patch_thickness_mm": (_planned, 8.0),
+    "steel_density_kg_m3": (_planned, 7800.0),
+    "noise_k": (_noise, 3.0),
+}
+
+
+@pytest.mark.parametrize("name", RuleSet.value_names())
+def test_every_rule_is_applied_or_marked_not_applied(rs, name):
+    rv = getattr(rs, name)
+    row = next(r for r in rs.table() if r["name"] == name)
+    assert row["applied"] is rv.applied and row["use"] == rv.use and rv.use
+    if not rv.applied:
+        assert name not in EXERCISED
+        assert row["note"].startswith("not applied: ")
+        return
+    # applied: changing the value changes what the tool computes
+    f, other = EXERCISED[name]
+    assert other != rv.value
+    assert f(get_ruleset(overrides={name: other})) != f(rs)
+
+
+def test_not_applied_rules_are_the_ones_no_input_reaches(rs):
+    assert set(rs.not_applied()) == {
+        "lining_min_thickness_mm", "initial_interval_y", "credit_frp_lining_y", "credit_thin_film_y",
+        "credit_cp_y", "credit_rpb_y", "ca_credit_above_mm", "ca_credit_rate_mm_y", "repair_to_step_mm"}
+
+
+def test_for_inputs_marks_the_shell_term_and_the_shell_clearance(rs):
+    run = rs.for_inputs()
+    assert not run.critical_zone_min_shell_fraction.applied
+    assert "no tmin of the lower shell course" in run.critical_zone_min_shell_fraction.use
+    assert run.shell_lap_joint_clearance_mm.applied
+    given = rs.for_inputs(shell_tmin_mm=6.0, shell_clearance_checked=False)
+    assert given.critical_zone_min_shell_fraction.applied
+    assert not given.shell_lap_joint_clearance_mm.applied
+    assert "shell_lap_joint_clearance_mm" in given.not_applied()
+    # marking changes no value
+    assert [r["value"] for r in given.table()] == [r["value"] for r in rs.table()]
+
+
+def test_sources_cite_clauses_not_secondary_nicknames(rs):
+    for row in rs.table():
+        text = (row["source"] + " " + row["note"]).lower()
+        assert "slides" not in text and "flashcard" not in text, row["name"]
+        if row["tag"] in ("seen", "memory") and "api" in text:
+            assert "§" in row["source"] or "table" in row["source"].lower() \
+                or "definition" in row["source"], row["name"]
+        if row["tag"] == "memory":
+            assert "[memory" in row["source"], row["name"]
+
+
+def test_override_keeps_applied_and_use(rs):
+    o = get_ruleset(overrides={"repair_to_step_mm": 0.2, "noise_k": 3.0})
+    assert not o.repair_to_step_mm.applied and o.repair_to_step_mm.use == rs.repair_to_step_mm.use
+    assert o.noise_k.applied and o.noise_k.tag == "user" and rs.noise_k.source in o.noise_k.source

@@ -177,6 +177,8 @@ FLAGS_EXPLAINED = {
     "overlaps-without-min-size": "The patch overlaps another patch or a plate seam but is "
                                  "smaller than the rule set's minimum size for that.",
     "not-beyond-corrosion": "The patch does not extend far enough beyond the corroded area.",
+    "shell-clearance": "The patch's weld lies closer to the inside of the shell than the rule set's "
+                       "lap-joint clearance (600 mm, API 650 §5.5.2): replace or insert plate there instead.",
 }
 
 #: The ``limiting`` column's words → the bound they name, in plain words.
