@@ -159,6 +159,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
             files.append("registration.json")
         write_results_h5(folder / "results.h5", _result_maps(an), x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
                          attrs=_result_attrs(an), timings=an.timings)
+        if an.readings:
+            _write_readings_h5(folder / "results.h5", an.readings)
         files.append("results.h5")
     with prog.stage("report"):
         figdir = folder / "figures"
@@ -196,6 +198,28 @@ def _result_attrs(an: Analysis) -> dict:
             "inspected_old": an.old.meta.inspected.isoformat() if an.old else "",
             "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__, "caution": CAUTION,
             **_readings_attrs(an)}
+
+
+def _write_readings_h5(path, rdg: dict) -> None:
+    """Add the spot readings to results.h5: group ``readings/new`` (and ``readings/old``),
+    one dataset per column (``x_mm``, ``y_mm``, ``kind``, ``thickness_mm``, ``depth_mm``,
+    ``side``, ``id``; the older readings in the older scan's frame), ``inspected`` as an
+    attribute."""
+    import h5py
+    import numpy as np
+
+    with h5py.File(path, "a") as f:
+        g = f.create_group("readings")
+        for tag in ("new", "old"):
+            r = rdg.get(tag)
+            if r is None:
+                continue
+            h = g.create_group(tag)
+            h.attrs["inspected"] = r.inspected.isoformat()
+            for c in ("x_mm", "y_mm", "thickness_mm", "depth_mm"):
+                h.create_dataset(c, data=r.table[c].to_numpy(np.float64))
+            for c in ("kind", "side", "id"):
+                h.create_dataset(c, data=[str(v) for v in r.table[c]], dtype=h5py.string_dtype())
 
 
 def _readings_attrs(an: Analysis) -> dict:
