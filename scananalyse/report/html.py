@@ -57,9 +57,11 @@ SECTIONS = (
     ("extremes", "Extreme values per zone"),
     ("methods", "Interval by method"),
     ("indications", "Indications"),
-    ("readings", "Field readings"),
     ("assumptions", "Rules and assumptions"),
 )
+
+#: The section of spot readings, after the indications, on pages whose job had readings only.
+READINGS_SECTION = ("readings", "Field readings")
 
 #: The three verdicts, in order of urgency (last most urgent for the work order).
 VERDICTS = ("return to service as is", "repair first", "prove up first (hand UT)")
@@ -698,8 +700,10 @@ def render_report(data: ReportData) -> str:
         f"scananalyse {data.version}",
         f"generated {generated.isoformat(sep=' ', timespec='minutes')}",
     ) if s)
-    secs = [(sid, head) for sid, head in SECTIONS if sid != "readings" or data.readings]
-    ctx = {sid: _BUILDERS[sid](data) for sid, _ in SECTIONS}
+    secs = list(SECTIONS)
+    if data.readings:
+        secs.insert(secs.index(("indications", "Indications")) + 1, READINGS_SECTION)
+    ctx = {sid: _BUILDERS[sid](data) for sid, _ in secs}
     return _TEMPLATE.render(
         title=title, sub=sub, tank=tank or "tank", caution=data.caution, version=data.version,
         sections=[{"id": sid, "heading": head} for sid, head in secs],
