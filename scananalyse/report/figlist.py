@@ -42,7 +42,7 @@ def figure_specs(an, units: str) -> list:
                         life=an.life_map, old=an.old, old_on_new=an.old_on_new)
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
-    if getattr(an, "readings", None):  # spot readings: the sizing check against the prove-ups
+    if getattr(an, "readings", None) and an.readings["check"].n_pairs:  # the sizing check against the prove-ups
         rdg = an.readings
         specs.append(("readings", "sizing_check", "Loss sized by the scan against the loss the prove-up UT found "
                       "at the same cells, with the 1:1 line (points above it: the scan under-sizes).",
