@@ -192,3 +192,22 @@ def test_readings_matching_neither_scan(tmp_path, capsys):
     assert err.count("\n") == 1
     assert "stray.csv" in err and "inspected" in err and "no inspection" in err
     assert not out_dir.exists()
+
+
+def test_sizing_figure_ax_none_and_given():
+    # the figure function takes ax=None (a new figure) or an axes, and returns the figure
+    from matplotlib.figure import Figure
+
+    from scananalyse.readings import SizingCheck
+    from scananalyse.report.figlist import sizing_figure
+
+    pairs = pd.DataFrame({"kind": ["prove-up", "prove-up", "ut"], "scanned": [True, True, True],
+                          "t_scan_mm": [4.0, 3.0, 5.0], "thickness_mm": [3.5, 2.4, 5.0]})
+    check = SizingCheck(2, -0.55, 0.07, 1.2, 0.05, False)
+    fig = sizing_figure(pairs, T0, check)
+    assert isinstance(fig, Figure)
+    ax = fig.axes[0]
+    assert len(ax.collections[0].get_offsets()) == 2  # the two prove-ups, not the UT check
+    other = Figure()
+    ax2 = other.add_subplot()
+    assert sizing_figure(pairs, T0, None, ax=ax2) is other

@@ -42,6 +42,11 @@ def figure_specs(an, units: str) -> list:
                         life=an.life_map, old=an.old, old_on_new=an.old_on_new)
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
+    if getattr(an, "readings", None):  # the spot readings as markers on the thickness map
+        table = an.readings["new"].table
+        specs = [(sec, slug, cap + " Spot readings marked by kind (circle UT, square prove-up, triangle pit gauge).",
+                  partial(readings_markers, build, table)) if slug == "thickness" else (sec, slug, cap, build)
+                 for sec, slug, cap, build in specs]
     if getattr(an, "readings", None) and an.readings["check"].n_pairs:  # the sizing check against the prove-ups
         rdg = an.readings
         specs.append(("readings", "sizing_check", "Loss sized by the scan against the loss the prove-up UT found "
@@ -187,6 +192,25 @@ def registration_figure(new, old, old_on_new):
     feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new, RigidTransform(), fill=True)
     feat_after = features(old_on_new.thickness, new.meta.nominal)
     return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent)
+
+
+#: Marker of each reading kind on the maps.
+READING_MARKERS = {"ut": ("o", "UT"), "prove-up": ("s", "prove-up"), "pit-gauge": ("^", "pit gauge")}
+
+
+def readings_markers(build, table):
+    """A floor map (``build()``) with the spot readings of ``table`` (readings table,
+    x_mm, y_mm, kind) drawn on its first axes as markers, one shape per kind."""
+    fig = build()
+    ax = fig.axes[0]
+    for kind, (marker, name) in READING_MARKERS.items():
+        sel = (table["kind"] == kind).to_numpy()
+        if sel.any():
+            ax.scatter(table["x_mm"].to_numpy(float)[sel] / 1000.0, table["y_mm"].to_numpy(float)[sel] / 1000.0,
+                       marker=marker, s=26, facecolors="white", edgecolors="black", linewidths=0.9, zorder=6,
+                       label=f"{name} ({int(sel.sum())})")
+    ax.legend(loc="upper left", fontsize=7, framealpha=0.85, title="readings", title_fontsize=7)
+    return fig
 
 
 def sizing_figure(pairs, nominal_mm: float, check=None, *, ax=None, units: str = "mm"):
