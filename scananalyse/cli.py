@@ -85,6 +85,11 @@ def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
         p.add_argument("--repairs", type=_input_file, help="repair records since the older scan (docs/attribution.md)")
         p.add_argument("--control-points", type=_input_file,
                        help="matching points old/new for registration (docs/registration.md)")
+    p.add_argument("--readings", type=_input_file, action="append", metavar="FILE",
+                   help="spot readings (readings CSV v1: hand UT, prove-up, pit gauge); repeatable: each file goes "
+                   "to the inspection whose date is nearest its 'inspected' date")
+    p.add_argument("--no-sizing-correction", action="store_true",
+                   help="do not scale unproved MFL loss when the prove-ups show the scan under-sizes")
     p.add_argument("--patches", type=_input_file, help="re-assess with the engineer's own patch set (patches CSV or DXF)")
     p.add_argument("--repair-to", type=_LENGTH,
                    help=f"repair everything below this thickness, the code's way ({u}); at least the MRT")
@@ -192,6 +197,10 @@ def _job_from_args(args):
         v = getattr(args, a, None)
         if v is not None:
             changes[f] = os.path.abspath(v) if f in ("shapes", "repairs", "control_points", "patches") else v
+    if getattr(args, "readings", None):  # added to the job file's readings
+        changes["readings"] = list(job.readings) + [os.path.abspath(r) for r in args.readings]
+    if getattr(args, "no_sizing_correction", False):
+        changes["sizing_correction"] = False
     for a, f in {"leak_detection": "leak_detection", "cp": "cp_effective", "coated": "coated",
                  "rpb": "release_prevention_barrier", "under_cause_removed": "under_cause_removed"}.items():
         if getattr(args, a, False):

@@ -37,6 +37,10 @@ Example::
     [registration]
     control_points = "points.csv"
 
+    [inputs]
+    readings = ["ut_2025.csv", "ut_2015.csv"]  # spot readings (readings CSV v1), either outage
+    sizing_correction = true  # scale unproved MFL loss when the prove-ups show under-sizing
+
     [repair]
     target_interval = 10
     patch_thickness = 6.35   # in the job's length units
@@ -112,7 +116,8 @@ OPTIONS = {
     "shell_tmin": "--shell-tmin",
     "target_interval": "--target-interval", "coating_life_years": "--coating-life", "block_mm": "--block-mm",
     "seed": "--seed", "shapes": "--shapes", "repairs": "--repairs", "control_points": "--control-points",
-    "patches": "--patches", "top_depth": "--top-depth",
+    "patches": "--patches", "top_depth": "--top-depth", "readings": "--readings",
+    "sizing_correction": "--no-sizing-correction",
 }
 
 
@@ -148,6 +153,8 @@ class Job:
     repair_to_mm: float | None = None
     patches: str | None = None
     under_cause_removed: bool = False
+    readings: list = field(default_factory=list)  # readings CSV files (either outage, told apart by date)
+    sizing_correction: bool = True  # correct MFL under-sizing found by the prove-ups
     ruleset: str = "api653"
     rule_overrides: dict = field(default_factory=dict)
     units: str = "mm"
@@ -375,6 +382,8 @@ _SCHEMA = {
     ("zones", "polygons"): ("zone_polygons", (list,)),
     ("statistics", "seed"): ("seed", (int,)),
     ("paths", "allow_absolute"): ("allow_absolute_paths", (bool,)),
+    ("inputs", "readings"): ("readings", (list,)),
+    ("inputs", "sizing_correction"): ("sizing_correction", (bool,)),
 }
 _PATH_FIELDS = ("shapes", "top_depth", "repairs", "control_points", "patches")
 
@@ -546,6 +555,8 @@ def read_job(path) -> Job:
                 raise InputError(f"{at}: expected {want}, got {type(val).__name__}")
             if fname == "zone_polygons":
                 val = _polygons(val, name)
+            if fname == "readings" and not all(isinstance(r, str) for r in val):
+                raise InputError(f"{at}: expected a list of file names")
             if fname == "centre":
                 if len(val) != 2 or not all(isinstance(v, _NUM) and not isinstance(v, bool) for v in val):
                     raise InputError(f"{name}: field 'floor.centre': expected two numbers")
@@ -595,5 +606,14 @@ def read_job(path) -> Job:
         if f in values:
             values[f] = resolve_path(values[f], base, allow_absolute=allow, what=origins[f])
             check_input_file(values[f], origins[f], must_exist=False)
+    if "readings" in values:
+        paths = []
+        for i, r in enumerate(values["readings"], start=1):
+            at = f"{name}: field 'inputs.readings[{i}]'"
+            if "\0" in r:
+                raise InputError(f"{at}: contains a NUL character")
+            paths.append(resolve_path(r, base, allow_absolute=allow, what=at))
+            check_input_file(paths[-1], at, must_exist=False)
+        values["readings"] = paths
     job = Job(source=name, length_units=units, origins=origins, **values)
     return _provisional(job)

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from . import assess, attribution, rates, repair, zones
+from . import assess, attribution, rates, readings as rd, repair, zones
 from .checks import check_job_against_scans, check_repair_to
 from .errors import InputError, ScanWarning
 from .evlife import add_eva_columns, hidden_parts, merge_extremes, seen_lives, zone_lives
@@ -70,6 +70,8 @@ class Analysis:
     assumptions: list
     notes: list = field(default_factory=list)
     timings: dict = field(default_factory=dict)
+    # spot readings (readings CSV v1), when the job gives any
+    readings: dict = field(default_factory=dict)
 
     @property
     def single(self) -> bool:
@@ -80,9 +82,11 @@ def _to_mm(value, scan: FloorScan):
     return None if value is None else float(value) * (MM_PER_IN if scan.meta.units == "in" else 1.0)
 
 
-def read_job_inputs(job: Job, new: FloorScan, rules=None) -> dict:
+def read_job_inputs(job: Job, new: FloorScan, rules=None, *, old: FloorScan | None = None) -> dict:
     """Read every file the job names besides the scans (shapes, top-side depth, repair
-    records, the engineer's patches), so bad files are refused before any work is done."""
+    records, the engineer's patches, spot readings), so bad files are refused before any
+    work is done.  With ``old`` given, the readings are also told apart by outage
+    (:func:`split_readings`)."""
     rules = rules or get_ruleset(job.ruleset, job.rule_overrides or None)
     top_depth = None
     if job.top_depth:
@@ -94,7 +98,50 @@ def read_job_inputs(job: Job, new: FloorScan, rules=None) -> dict:
         "top_depth": top_depth,
         "repairs": rates.read_repairs(job.repairs, scan=new) if job.repairs else None,
         "patches": repair.read_patches(job.patches, rules=rules) if job.patches else None,
+        "readings": _split_or_list([rd.read_readings(p) for p in job.readings], new, old),
     }
+
+
+#: A readings file further than this from the nearest scan's date is refused. [days]
+READINGS_MAX_DAYS = 365
+
+
+def split_readings(readings, new: FloorScan, old: FloorScan | None = None):
+    """Tell spot readings apart by outage: each file goes to the inspection whose date is
+    nearest its ``inspected`` date; the files of one outage are merged.
+
+    Parameters
+    ----------
+    readings : list of :class:`~scananalyse.readings.Readings`.
+    new, old : the newer (or only) and older scans.
+
+    Returns
+    -------
+    (Readings or None, Readings or None) : the newer outage's and the older outage's.
+
+    Raises
+    ------
+    InputError
+        A file dated more than :data:`READINGS_MAX_DAYS` from every scan (it matches
+        neither inspection), naming the file and its ``inspected`` field.
+    """
+    groups: dict = {"new": [], "old": []}
+    for r in readings:
+        cands = [("new", new)] + ([("old", old)] if old is not None else [])
+        which, scan = min(cands, key=lambda c: abs((r.inspected - c[1].meta.inspected).days))
+        gap = abs((r.inspected - scan.meta.inspected).days)
+        if gap > READINGS_MAX_DAYS:
+            dates = " and ".join(str(c[1].meta.inspected) for c in reversed(cands))
+            raise InputError(f"{r.source or 'readings'}: field 'inspected': readings dated {r.inspected} are more "
+                             f"than {READINGS_MAX_DAYS} days from the scan{'s' if old is not None else ''} "
+                             f"({dates}): they belong to no inspection of this job")
+        groups[which].append(r)
+    return tuple(rd.merge_readings(g) if g else None for g in (groups["new"], groups["old"]))
+
+
+def _split_or_list(readings, new, old):
+    return {"files": readings, "split": split_readings(readings, new, old) if readings else (None, None),
+            "old_known": old is not None}
 
 
 def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
@@ -124,6 +171,11 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     if inputs is None:
         inputs = read_job_inputs(job, new, rules)
     fit_kw = dict(pitch=new.pitch, block_mm=job.block_mm, seed=job.seed)
+    rdg = inputs.get("readings") or {"files": []}
+    if rdg["files"] and not rdg.get("old_known") and old is not None:
+        rdg = _split_or_list(rdg["files"], new, old)  # read without the older scan: tell them apart now
+    readings_new, readings_old = rdg["split"] if rdg["files"] else (None, None)
+    scan_new = new  # as scanned, before the readings
 
     reg, old_on_new = registration, None
     if old is not None:
@@ -141,13 +193,30 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             why = "; ".join(reg.warnings) or f"method {reg.method}"
             raise InputError(f"{old.source or 'old scan'}: the two inspections could not be aligned reliably "
                              f"({why}); give control points (--control-points), or run 'assess' on the newer scan")
+        if readings_old is not None:
+            with prog.stage("readings"):
+                old, rinfo_old = _apply_old_readings(old, readings_old, new, job, readings_new)
+                assumptions.extend(rinfo_old["assumptions"])
         with prog.stage("resampling"):
             # only the thickness is used on the newer grid (the layers are not carried)
             old_on_new = resample_onto(dataclasses.replace(old, side=None, plate=None), new, reg.transform)
 
+    rinfo = None
+    if readings_new is not None:
+        # the readings govern at their cells; unproved loss corrected for under-sizing; the
+        # corrected floor goes into every later stage
+        with prog.stage("readings"):
+            new, rinfo = _apply_new_readings(new, readings_new, job)
+            assumptions.extend(rinfo["assumptions"])
     with prog.stage("attribution"):
         shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
+        if rinfo is not None and np.isfinite(rinfo["applied"].depth_top).any():
+            pg = rinfo["applied"].depth_top  # pit-gauge depths: measured top-side depth
+            top_depth = pg if top_depth is None else np.fmax(top_depth, pg)
         side_raw = attribution.raw_side_map(new, shapes=shapes)
+        if rinfo is not None:
+            stated = rinfo["applied"].side >= 0  # the side a reading states governs at its cell
+            side_raw = np.where(stated, rinfo["applied"].side, side_raw).astype(side_raw.dtype)
         side = attribution.resolve_side(side_raw, job.default_side)
         ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
         # the newer scan's loss by side, and its indication regions (labelled once: the
@@ -166,6 +235,17 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         check_repair_to(job.repair_to_mm,
                         dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
                         nominal_mm=new.meta.nominal, given=job.typed.get("repair_to"), what=job.where("repair_to"))
+        reading_zone_table = None
+        if readings_new is not None:
+            moved_old = None
+            if readings_old is not None and reg is not None:
+                tr = reg.transform
+                moved_old = rd.move_readings(readings_old, dx_mm=tr.dx_mm, dy_mm=tr.dy_mm,
+                                             rotation_deg=tr.rotation_deg)
+            reading_zone_table = rd.reading_zone_summary(
+                readings_new, moved_old, zones=zmap, nominal_mm=new.meta.nominal, installed=new.meta.installed,
+                mrt_mm=dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
+                options=options, critical_width_mm=float(rules.critical_zone_width_mm.value))
         ind_new = measure_indications(ind_labels, layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
                                       side=side, plate=new.plate, zone_labels=zmap.labels, zone_names=zmap.names,
                                       rate=None, thickness=new.thickness)
@@ -195,6 +275,10 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             note = assumed_rate_note(ind)
             if note:
                 assumptions.append(note)
+        if rinfo is not None:
+            pairs_lab = rd.pair_readings(readings_new, new, indication_labels=ind_labels)
+            listed = ind[np.isfinite(pd.to_numeric(ind["depth_max_mm"], errors="coerce"))] if len(ind) else ind
+            rinfo["prove_up"] = rd.prove_up_candidates(listed, pairs_lab)
         del ind_labels, ind_new
 
     att = attribution.attribution_summary(side_raw, lr.loss, top_depth=top_depth, default=job.default_side)
@@ -217,11 +301,16 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                     pitch_mm=new.pitch, rate_short_available=old is not None,
                                     zone_rates=lr.zone_inputs())
         table = add_eva_columns(table, ext_depth, ext_life)
+        if reading_zone_table is not None:
+            table = add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected)
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
                                          own_patches=inputs["patches"], ext_rate=ext_rate,
                                          ext_depth=ext_depth, hidden=hidden, older=older)
+        if reading_zone_table is not None and rep.get("zones_repaired") is not None:
+            rep["zones_repaired"] = add_reading_zones(rep["zones_repaired"], reading_zone_table, rules=rules,
+                                                      inspected=new.meta.inspected)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, options=options, extremes_depth=ext_depth,
@@ -231,6 +320,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     extremes_rate=ext_rate, hidden=hidden, zone_table=table, life_map=life, mrt_map=mrt,
                     indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
+                    readings=_readings_result(rinfo, reading_zone_table, scan_new, readings_new, readings_old),
                     **rep)
 
 
@@ -302,3 +392,132 @@ def _indications(found, new, old, reg, lr, zmap, labels, *, old_on_new=None, rep
         g = g[[c for c in ind.columns if c in g.columns]]
         ind = pd.concat([ind, g], ignore_index=True)
     return ind, gone
+
+
+# --------------------------------------------------------------------------- spot readings
+def _thickness_pairs(pairs):
+    """The pairs whose thickness may go into the grid: UT and prove-up readings on scanned
+    cells (a point is not an area: a reading where the scan has no value stays a point,
+    assessed by :func:`~scananalyse.readings.reading_zone_summary`), and every pit gauge."""
+    keep = pairs["scanned"].to_numpy(bool) | (pairs["kind"] == "pit-gauge").to_numpy()
+    return pairs[keep]
+
+
+def _apply_new_readings(new: FloorScan, readings, job: Job):
+    """The newer scan with its outage's readings applied and its unproved loss corrected."""
+    pairs = rd.pair_readings(readings, new)
+    check = rd.sizing_check(pairs, nominal_mm=new.meta.nominal)
+    applied = rd.apply_readings(new.thickness, _thickness_pairs(pairs))
+    t = applied.thickness
+    corrected = False
+    if job.sizing_correction and check.undersized:
+        t = rd.correct_undersizing(t, new.meta.nominal, check, proved_mask=applied.proved)
+        corrected = True
+    n_t = int(np.count_nonzero(applied.proved))
+    out = [f"Spot readings of {readings.inspected} ({len(readings)} readings): UT and prove-up thicknesses govern "
+           f"at their {n_t} scanned cells; readings where the scan has no value are points, not area: they assess "
+           "zones the scan did not cover (readings-only) and do not count as coverage."]
+    if corrected:
+        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; the loss of every unproved scanned "
+                   f"cell of the newer scan is multiplied by k = {check.k:.3f} (loss only ever increased).")
+    elif check.undersized:
+        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; NOT corrected "
+                   "(--no-sizing-correction): the scan's loss depths may be too shallow.")
+    else:
+        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; no correction applied.")
+    info = {"pairs": pairs, "check": check, "applied": applied, "corrected": corrected,
+            "assumptions": out, "prove_up": None}
+    return dataclasses.replace(new, thickness=t), info
+
+
+def _apply_old_readings(old: FloorScan, readings, new: FloorScan, job: Job, readings_new=None):
+    """The older scan with its outage's readings (in its own frame) applied.
+
+    The sizing correction found on the newer scan is applied to the older one only when
+    both were scanned by the same method: the same under-sizing then hides part of the
+    growth too.  With another method the older scan's sizing error is unknown, and
+    leaving it uncorrected keeps the short-term rates on the high side."""
+    pairs = rd.pair_readings(readings, old)
+    applied = rd.apply_readings(old.thickness, _thickness_pairs(pairs))
+    t = applied.thickness
+    m_old, m_new = (str(s.meta.method or "").strip().upper() for s in (old, new))
+    same = bool(m_old) and m_old == m_new
+    note = (f"Older spot readings of {readings.inspected} ({len(readings)} readings) govern at their scanned cells "
+            "of the older scan. ")
+    if job.sizing_correction and same:
+        check = rd.sizing_check(rd.pair_readings(readings_new, new), nominal_mm=new.meta.nominal) \
+            if readings_new is not None else None
+        if check is not None and check.undersized:
+            t = rd.correct_undersizing(t, old.meta.nominal, check, proved_mask=applied.proved)
+        note += ("Both scans are " + m_new + ": if the newer prove-ups show under-sizing, the older scan's "
+                 "unproved loss is corrected by the same ratio, since the same method under-sizes the growth too.")
+    else:
+        note += ("The older scan is not corrected for sizing: " + ("the correction is off." if not job.sizing_correction
+                 else f"it was scanned by another method ({m_old or 'unknown'} against {m_new or 'unknown'}), whose "
+                 "sizing error is unknown; left as scanned, its loss is if anything too shallow, which keeps the "
+                 "short-term rates on the high side."))
+    return dataclasses.replace(old, thickness=t), {"pairs": pairs, "applied": applied, "assumptions": [note],
+                                                   "same_method": same}
+
+
+def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, inspected) -> pd.DataFrame:
+    """The zone table with the spot readings' zone summary added.
+
+    Parameters
+    ----------
+    table : zones.csv table (:func:`~scananalyse.assess.assess_zones`).
+    summary : :func:`~scananalyse.readings.reading_zone_summary` output.
+    rules : :class:`~scananalyse.rules.RuleSet` (interval rounding).
+    inspected : date of the newer inspection (``next_due``).
+
+    Returns
+    -------
+    DataFrame : ``n_readings`` on every row; a zone with no scanned cell but with
+    readings takes the readings' thinnest value, code interval and co-located life in
+    place of the ``no-data`` NaNs, flagged ``readings-only;points-only`` (``no-data``
+    stays only where nothing at all was read).
+
+    Notes
+    -----
+    The recommended interval of such a zone is min(readings' code interval, co-located
+    life of the readings, cap), never below 0 and rounded down; with neither a code
+    interval nor a life it stays NaN.  The floor between the readings is unseen
+    (``points-only``): the extreme-value life has no data there and is not used.
+    """
+    out = table.copy()
+    s = summary.set_index("zone") if len(summary) else None
+    out["n_readings"] = [int(s.at[z, "n_readings"]) if s is not None and z in s.index else 0 for z in out["zone"]]
+    if s is None:
+        return out
+    for i in out.index:
+        z = out.at[i, "zone"]
+        flags = str(out.at[i, "flags"]).split(";") if isinstance(out.at[i, "flags"], str) else []
+        if z not in s.index or "no-data" not in flags:
+            continue
+        r = s.loc[z]
+        for col in ("t_min_mm", "interval_code_y", "life_local_y", "rtbc_mm", "rtip_mm", "stpr_mm_y", "upr_mm_y"):
+            if col in out.columns:
+                out.at[i, col] = float(r[col])
+        cap = float(out.at[i, "cap_y"]) if "cap_y" in out.columns else float("nan")
+        bounds = {"code": float(r["interval_code_y"]), "local": float(r["life_local_y"]), "cap": cap}
+        valid = {b: v for b, v in bounds.items() if not np.isnan(v)}
+        if "code" in valid or "local" in valid:
+            best = min(valid.values())
+            rec = rules.round_interval(max(best, 0.0))
+            out.at[i, "interval_recommended_y"] = rec
+            out.at[i, "limiting"] = next(b for b in ("code", "local", "cap") if b in valid and valid[b] == best)
+            out.at[i, "next_due"] = assess.add_years(inspected, rec).isoformat()
+        rflags = [f for f in str(r["flags"]).split(";") if f and f != "points-only"]
+        out.at[i, "flags"] = ";".join(["readings-only", "points-only"] + rflags)
+        out.at[i, "notes"] = f"no scanned cell; from {int(r['n_readings'])} spot readings: " + str(r["notes"])
+    return out
+
+
+def _readings_result(rinfo, zone_summary, scan_new, readings_new, readings_old) -> dict:
+    """What :class:`Analysis` keeps of the readings (empty without readings)."""
+    if rinfo is None:
+        return {}
+    return {"new": readings_new, "old": readings_old, "pairs": rinfo["pairs"], "check": rinfo["check"],
+            "corrected": rinfo["corrected"], "zones": zone_summary, "prove_up": rinfo["prove_up"],
+            "proved": rinfo["applied"].proved, "depth_top": rinfo["applied"].depth_top,
+            "thickness_scanned": scan_new.thickness}

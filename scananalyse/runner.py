@@ -147,6 +147,11 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
         write_patches_dxf(an.patches, folder / "patches.dxf")
         write_indications_csv(an.indications, folder / "indications.csv")
         files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
+        if an.readings:
+            # spot readings: the zones assessed from them, and the indications to prove up next
+            write_csv(an.readings["zones"], folder / "readings_zones.csv")
+            write_csv(an.readings["prove_up"], folder / "prove_up.csv")
+            files += ["readings_zones.csv", "prove_up.csv"]
         reg_dict = None
         if an.registration is not None:
             reg_dict = an.registration.to_dict()
@@ -154,6 +159,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
             files.append("registration.json")
         write_results_h5(folder / "results.h5", _result_maps(an), x0=an.new.x0, y0=an.new.y0, pitch=an.new.pitch,
                          attrs=_result_attrs(an), timings=an.timings)
+        if an.readings:
+            _write_readings_h5(folder / "results.h5", an.readings)
         files.append("results.h5")
     with prog.stage("report"):
         figdir = folder / "figures"
@@ -180,13 +187,50 @@ def _result_maps(an: Analysis) -> dict:
     if an.old_on_new is not None:
         maps["thickness_old_on_new"] = an.old_on_new.thickness
     maps.update(an.repaired_maps)
+    if an.readings:  # the scan as scanned, the cells the readings govern, the pit-gauge depths
+        maps.update({"thickness_scanned": an.readings["thickness_scanned"],
+                     "readings_proved": an.readings["proved"], "readings_depth_top": an.readings["depth_top"]})
     return maps
 
 
 def _result_attrs(an: Analysis) -> dict:
     return {"tank": an.new.meta.tank, "inspected_new": an.new.meta.inspected.isoformat(),
             "inspected_old": an.old.meta.inspected.isoformat() if an.old else "",
-            "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__, "caution": CAUTION}
+            "zone_names": ";".join(an.zones.names), "scananalyse_version": __version__, "caution": CAUTION,
+            **_readings_attrs(an)}
+
+
+def _write_readings_h5(path, rdg: dict) -> None:
+    """Add the spot readings to results.h5: group ``readings/new`` (and ``readings/old``),
+    one dataset per column (``x_mm``, ``y_mm``, ``kind``, ``thickness_mm``, ``depth_mm``,
+    ``side``, ``id``; the older readings in the older scan's frame), ``inspected`` as an
+    attribute."""
+    import h5py
+    import numpy as np
+
+    with h5py.File(path, "a") as f:
+        g = f.create_group("readings")
+        for tag in ("new", "old"):
+            r = rdg.get(tag)
+            if r is None:
+                continue
+            h = g.create_group(tag)
+            h.attrs["inspected"] = r.inspected.isoformat()
+            for c in ("x_mm", "y_mm", "thickness_mm", "depth_mm"):
+                h.create_dataset(c, data=r.table[c].to_numpy(np.float64))
+            for c in ("kind", "side", "id"):
+                h.create_dataset(c, data=[str(v) for v in r.table[c]], dtype=h5py.string_dtype())
+
+
+def _readings_attrs(an: Analysis) -> dict:
+    """The readings' sizing check as results.h5 root attributes (none without readings)."""
+    if not an.readings:
+        return {}
+    c = an.readings["check"]
+    return {"readings_n": len(an.readings["new"]), "readings_inspected": an.readings["new"].inspected.isoformat(),
+            "sizing_n_pairs": c.n_pairs, "sizing_bias_mm": c.bias_mm, "sizing_scatter_mm": c.scatter_mm,
+            "sizing_k": c.k, "sizing_k_se": c.k_se, "sizing_undersized": int(c.undersized),
+            "sizing_corrected": int(an.readings["corrected"]), "sizing_note": c.note}
 
 
 def _check_out_dir(out_dir, force):
@@ -203,7 +247,7 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
     with prog.stage("load"):
         new = check_analysable(read_scan(new_path), new_path)
         old = None if single else check_analysable(read_scan(old_path), old_path)
-        inputs = read_job_inputs(job, new)
+        inputs = read_job_inputs(job, new, old=old)
     with output_folder(out_dir, force=force) as tmp:
         an = analyse(new, old, job=job, progress=prog, inputs=inputs)
         files = write_outputs(an, tmp, progress=prog)

@@ -31,6 +31,9 @@ def actions(an) -> list[str]:
         if "no-data" in flags:
             out.append(f"Zone {zone} was not scanned: assess it by hand UT before setting its interval.")
             continue
+        if "readings-only" in flags:
+            out.append(f"Zone {zone} was not scanned; its interval rests on {int(z.get('n_readings', 0))} spot readings "
+                       "alone: the floor between them is unseen, so read more of it (hand UT) where the interval is short.")
         if "below-mrt" in flags:
             out.append(f"Zone {zone} is below MRT now (thinnest {z['t_min_mm']:.2f} mm against {z['mrt_mm']:.2f} mm): "
                        "repair before return to service.")
@@ -134,7 +137,11 @@ def report_data(an, units: str, registration_dict, figs) -> ReportData:
         notes.append(an.patch_note)
     if an.uncovered_cells:
         notes.append(f"{an.uncovered_cells} cells needing repair for the target interval are not covered by any patch.")
+    rdg = _readings_data(an, units)
+    if rdg:
+        assumptions.extend(rdg.pop("assumptions"))
     return ReportData(
+        readings=rdg or None,
         tank={"name": an.new.meta.tank, "diameter_mm": an.zones.geometry.diameter_mm},
         inspections=inspections, zones=an.zone_table, zones_repaired=an.zones_repaired,
         patches=an.patches, indications=an.indications,
@@ -144,5 +151,39 @@ def report_data(an, units: str, registration_dict, figs) -> ReportData:
                                                   "std_rotation_deg", "std_shift_mm", "control_residuals_mm",
                                                   "control_rms_mm", "convention")},
         rules_table=an.rules.table(), assumptions=assumptions, figures=fig_dict, extremes=ext,
-        flags_explained=FLAGS_EXPLAINED, units=units, timings=dict(an.timings),
+        flags_explained={**FLAGS_EXPLAINED, **READINGS_FLAGS}, units=units, timings=dict(an.timings),
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
+
+
+#: The flags the spot readings add to zones.csv.
+READINGS_FLAGS = {
+    "readings-only": "No cell of the zone was scanned; its thinnest value, code interval and co-located life come "
+                     "from spot readings (hand UT, pit gauge) alone.",
+    "points-only": "The readings are points: the floor between them is unseen; the recommended interval is the least "
+                   "of the readings' code interval, their co-located life and the cap, without an extreme-value life.",
+}
+
+
+def _readings_data(an, units: str) -> dict:
+    """The "Field readings" section's data, empty without readings."""
+    r = getattr(an, "readings", None)
+    if not r:
+        return {}
+    c = r["check"]
+    if r["corrected"]:
+        text = (f"The scan under-sizes loss (k = {c.k:.3f} ± {c.k_se:.3f} from {c.n_pairs} prove-ups): the loss of "
+                "every unproved scanned cell was multiplied by k before the assessment.")
+    elif c.undersized:
+        text = (f"The scan under-sizes loss (k = {c.k:.3f} ± {c.k_se:.3f} from {c.n_pairs} prove-ups), but the "
+                "sizing correction is off (--no-sizing-correction): NOT corrected; the scan's loss depths may be too "
+                "shallow.")
+    else:
+        text = f"{c.note[:1].upper() + c.note[1:]}: the scan's loss depths are used as sized."
+    sizing = {"n_pairs": c.n_pairs, "bias_mm": c.bias_mm, "scatter_mm": c.scatter_mm, "k": c.k, "k_se": c.k_se,
+              "undersized": "yes" if c.undersized else "no", "corrected": "yes" if r["corrected"] else "no"}
+    old = r.get("old")
+    return {"sizing": sizing, "sizing_text": text, "zones": r["zones"], "prove_up": r["prove_up"],
+            "assumptions": [f"Spot readings: {len(r['new'])} of {r['new'].inspected}"
+                            + (f" and {len(old)} of {old.inspected}" if old is not None else "")
+                            + "; each file goes to the inspection whose date is nearest its 'inspected' date "
+                            "(more than a year from every scan is refused)."]}

@@ -42,6 +42,16 @@ def figure_specs(an, units: str) -> list:
                         life=an.life_map, old=an.old, old_on_new=an.old_on_new)
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
+    if getattr(an, "readings", None):  # the spot readings as markers on the thickness map
+        table = an.readings["new"].table
+        specs = [(sec, slug, cap + " Spot readings marked by kind (circle UT, square prove-up, triangle pit gauge).",
+                  partial(readings_markers, build, table)) if slug == "thickness" else (sec, slug, cap, build)
+                 for sec, slug, cap, build in specs]
+    if getattr(an, "readings", None) and an.readings["check"].n_pairs:  # the sizing check against the prove-ups
+        rdg = an.readings
+        specs.append(("readings", "sizing_check", "Loss sized by the scan against the loss the prove-up UT found "
+                      "at the same cells, with the 1:1 line (points above it: the scan under-sizes).",
+                      partial(sizing_figure, rdg["pairs"], an.new.meta.nominal, rdg["check"], units=units)))
     return _in_report_order(specs)
 
 
@@ -182,6 +192,64 @@ def registration_figure(new, old, old_on_new):
     feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new, RigidTransform(), fill=True)
     feat_after = features(old_on_new.thickness, new.meta.nominal)
     return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent)
+
+
+#: Marker of each reading kind on the maps.
+READING_MARKERS = {"ut": ("o", "UT"), "prove-up": ("s", "prove-up"), "pit-gauge": ("^", "pit gauge")}
+
+
+def readings_markers(build, table):
+    """A floor map (``build()``) with the spot readings of ``table`` (readings table,
+    x_mm, y_mm, kind) drawn on its first axes as markers, one shape per kind."""
+    fig = build()
+    ax = fig.axes[0]
+    for kind, (marker, name) in READING_MARKERS.items():
+        sel = (table["kind"] == kind).to_numpy()
+        if sel.any():
+            ax.scatter(table["x_mm"].to_numpy(float)[sel] / 1000.0, table["y_mm"].to_numpy(float)[sel] / 1000.0,
+                       marker=marker, s=26, facecolors="white", edgecolors="black", linewidths=0.9, zorder=6,
+                       label=f"{name} ({int(sel.sum())})")
+    ax.legend(loc="upper left", fontsize=7, framealpha=0.85, title="readings", title_fontsize=7)
+    return fig
+
+
+def sizing_figure(pairs, nominal_mm: float, check=None, *, ax=None, units: str = "mm"):
+    """Scan loss against prove-up UT loss at the same cells, with the 1:1 line.
+
+    Parameters
+    ----------
+    pairs : :func:`~scananalyse.readings.pair_readings` output (its prove-ups on scanned
+        cells are drawn).
+    nominal_mm : nominal plate thickness t0. [mm]
+    check : :class:`~scananalyse.readings.SizingCheck`, or None; its ratio k is drawn
+        as a line through the origin.
+    ax : matplotlib Axes to draw on, or None for a new figure.
+    units : display units, ``"mm"`` or ``"in"``.
+
+    Returns
+    -------
+    matplotlib Figure
+    """
+    from ..scan import to_display
+
+    fig, ax = F._new_axes(ax, (5.2, 5.0))
+    sel = (pairs["kind"] == "prove-up") & pairs["scanned"].astype(bool)
+    m = to_display(float(nominal_mm) - pairs.loc[sel, "t_scan_mm"].to_numpy(float), units)
+    u = to_display(float(nominal_mm) - pairs.loc[sel, "thickness_mm"].to_numpy(float), units)
+    top = max(float(np.nanmax(np.r_[m, u, 0.0])) * 1.1, to_display(1.0, units))
+    ax.plot([0, top], [0, top], "k--", lw=1, label="1:1 (sized right)")
+    if check is not None and np.isfinite(check.k):
+        ax.plot([0, top], [0, check.k * top], color="#b03a2e", lw=1.2, label=f"fitted ratio k = {check.k:.2f}")
+    ax.scatter(m, u, s=28, color="#2f6f9f", zorder=3, label=f"prove-ups ({int(sel.sum())})")
+    unit = "in" if units == "in" else "mm"
+    ax.set_xlabel(f"loss sized by the scan [{unit}]")
+    ax.set_ylabel(f"loss found by prove-up UT [{unit}]")
+    ax.set_xlim(0, top)
+    ax.set_ylim(0, top)
+    ax.set_aspect("equal")
+    ax.set_title("Sizing check")
+    ax.legend(loc="upper left", fontsize=8)
+    return fig
 
 
 def return_level_figure(z, name, units):

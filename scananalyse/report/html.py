@@ -60,6 +60,9 @@ SECTIONS = (
     ("assumptions", "Rules and assumptions"),
 )
 
+#: The section of spot readings, after the indications, on pages whose job had readings only.
+READINGS_SECTION = ("readings", "Field readings")
+
 #: The three verdicts, in order of urgency (last most urgent for the work order).
 VERDICTS = ("return to service as is", "repair first", "prove up first (hand UT)")
 
@@ -136,6 +139,10 @@ class ReportData:
     single_inspection: bool = False
     notes: list = field(default_factory=list)
     title: str = "Tank floor assessment"
+    #: spot readings (section "Field readings", shown only when given): ``sizing``
+    #: (the sizing check as a mapping), ``sizing_text`` (what was done with it),
+    #: ``zones`` (readings_zones.csv table), ``prove_up`` (prove_up.csv table).
+    readings: dict | None = None
 
 
 # ---------------------------------------------------------------------------
@@ -647,10 +654,27 @@ def _assumptions(d: ReportData) -> dict:
     return {"rules": rules, "assumptions": list(d.assumptions), "timings": timings}
 
 
+def _readings(d: ReportData) -> dict:
+    """The "Field readings" section: sizing check, zones read by hand, the prove-up list."""
+    r = d.readings or {}
+    return {"sizing": _kv(r.get("sizing") or {}, d.units), "sizing_text": r.get("sizing_text", ""),
+            "zones": _table(r.get("zones"), d.units, columns=READING_ZONE_COLUMNS, cls="data",
+                            empty="no reading lies on the floor"),
+            "prove_up": _table(r.get("prove_up"), d.units, columns=PROVE_UP_COLUMNS, cls="data",
+                               empty="every indication listed is proved up"),
+            "figures": _figures(d.figures.get("readings"))}
+
+
+#: Columns of the readings' zone table and of the prove-up list in the report.
+READING_ZONE_COLUMNS = ("zone", "n_readings", "n_ut", "n_prove_up", "n_pit_gauge", "t_min_mm", "rate_max_mm_y",
+                        "mrt_mm", "interval_code_y", "life_local_y", "covered_length_mm", "flags")
+PROVE_UP_COLUMNS = ("rank", "id", "x_mm", "y_mm", "depth_max_mm", "t_min_mm", "zone", "status", "reason")
+
+
 _BUILDERS = {"verdict": _verdict, "summary": _summary, "registration": _registration,
              "maps": lambda d: {"figures": _figures(d.figures.get("maps"))}, "zones": _zones,
              "extremes": _extremes, "methods": _methods, "indications": _indications,
-             "assumptions": _assumptions}
+             "assumptions": _assumptions, "readings": _readings}
 
 
 def render_report(data: ReportData) -> str:
@@ -676,10 +700,13 @@ def render_report(data: ReportData) -> str:
         f"scananalyse {data.version}",
         f"generated {generated.isoformat(sep=' ', timespec='minutes')}",
     ) if s)
-    ctx = {sid: _BUILDERS[sid](data) for sid, _ in SECTIONS}
+    secs = list(SECTIONS)
+    if data.readings:
+        secs.insert(secs.index(("indications", "Indications")) + 1, READINGS_SECTION)
+    ctx = {sid: _BUILDERS[sid](data) for sid, _ in secs}
     return _TEMPLATE.render(
         title=title, sub=sub, tank=tank or "tank", caution=data.caution, version=data.version,
-        sections=[{"id": sid, "heading": head} for sid, head in SECTIONS],
+        sections=[{"id": sid, "heading": head} for sid, head in secs],
         memory_mark=MEMORY_MARK, **ctx)
 
 
