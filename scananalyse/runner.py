@@ -36,10 +36,11 @@ __all__ = ["CompareResult", "STAGES_PAIR", "STAGES_SINGLE", "write_outputs", "co
            "register_files", "run_demo", "sample_dir", "DEMO"]
 
 #: The stages a two-inspection job reports progress for, in order.
-STAGES_PAIR = ["load", "registration", "resampling", "attribution", "zones", "extremes", "rates", "indications",
+STAGES_PAIR = ["load", "registration", "readings", "resampling", "attribution", "zones", "extremes", "rates", "indications",
                "assessment", "repairs", "outputs", "report"]
 #: The stages of a one-inspection job.
 STAGES_SINGLE = [s for s in STAGES_PAIR if s not in ("registration", "resampling")]
+# ("readings" runs only for a job with spot readings: the list of a job without them drops it)
 
 
 @dataclass
@@ -243,7 +244,8 @@ def _check_out_dir(out_dir, force):
 
 def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareResult:
     _check_out_dir(out_dir, force)
-    prog = Progress(STAGES_SINGLE if single else STAGES_PAIR, quiet=quiet)
+    stages = [s for s in (STAGES_SINGLE if single else STAGES_PAIR) if s != "readings" or job.readings]
+    prog = Progress(stages, quiet=quiet)
     with prog.stage("load"):
         new = check_analysable(read_scan(new_path), new_path)
         old = None if single else check_analysable(read_scan(old_path), old_path)
