@@ -30,6 +30,7 @@ from matplotlib.lines import Line2D
 from matplotlib.collections import PatchCollection
 from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
 import matplotlib as mpl
+from matplotlib import patheffects
 
 from ..outputs import publish_file
 from . import units as U
@@ -385,7 +386,9 @@ def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
     finite = np.isfinite(disp)
     dmin = float(np.min(disp[finite])) if finite.any() else np.nan
     dmax = float(np.max(disp[finite])) if finite.any() else np.nan
-    defaults = ["#111111", "#c0392b", "#ffffff"]
+    # light lines with a dark halo: visible over the dark and the light end of every map
+    defaults = ["#ffffff", "#34e0ff", "#ff9f1c"]
+    halo = [patheffects.withStroke(linewidth=3.2, foreground="#111111")]
     for k, item in enumerate(contours):
         level, clabel, style = (tuple(item) + (None, None))[:3]
         lvl = U.convert(level, q, units)
@@ -396,11 +399,12 @@ def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
             kw["linestyles"] = style
         ls = kw.get("linestyles", "solid")
         if np.isfinite(lvl) and dmin < lvl < dmax:
-            ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
+            cs = ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
+            cs.set_path_effects(halo)
         unit = U.unit_label(q, units)
         nd = U.decimals(q, units)
         col = kw["colors"] if isinstance(kw["colors"], str) else kw["colors"][0]
-        handles.append(Line2D([], [], color=col, lw=kw["linewidths"],
+        handles.append(Line2D([], [], color=col, lw=kw["linewidths"], path_effects=halo,
                               linestyle=ls if isinstance(ls, str) else "solid",
                               label=f"{clabel or 'contour'} ({lvl:.{nd}f} {unit})"
                               + ("" if np.isfinite(lvl) and dmin < lvl < dmax
@@ -670,7 +674,7 @@ def probability_plot(plot_data, *, title, units="mm", ax=None):
     if thr is not None and np.isfinite(thr):
         ax.axhline(U.convert(thr, "depth", units), color="#888888", lw=0.8, ls=":",
                    label="detection threshold")
-    method = _get(plot_data, "method", default="fit")
+    method = _get(plot_data, "method", default=None)
     line_r = _get(plot_data, "line_reduced", default=None)
     line_x = _get(plot_data, "line_x", default=None)
     loc = _get(plot_data, "loc", "mu")
@@ -678,18 +682,19 @@ def probability_plot(plot_data, *, title, units="mm", ax=None):
     shape = float(_get(plot_data, "shape", "xi", default=0.0))
     if line_r is not None and line_x is not None:
         ax.plot(np.asarray(line_r, float), U.convert(np.asarray(line_x, float), "depth", units),
-                "-", color="#c0392b", lw=1.3, label=f"fitted {method}")
+                "-", color="#c0392b", lw=1.3,
+                label=f"fitted line ({method})" if method else "fitted line")
     elif loc is not None and scale is not None and y.size:
         yy = np.linspace(min(y.min(), -1.5) - 0.2, max(y.max(), 3.0) + 0.5, 200)
         if abs(shape) < 1e-9:
             q = loc + scale * yy
-            lab = (f"Gumbel {method}: μ = {U.convert(loc, 'depth', units):.2f}, "
+            lab = (f"Gumbel{' ' + method if method else ''}: μ = {U.convert(loc, 'depth', units):.2f}, "
                    f"σ = {U.convert(scale, 'depth', units):.2f} {unit}")
         else:
             # GEV quantile, ξ convention of Coles (2001): x = μ + σ/ξ ((−ln p)^(−ξ) − 1)
             pp = np.exp(-np.exp(-yy))
             q = loc + scale / shape * ((-np.log(pp)) ** (-shape) - 1.0)
-            lab = f"GEV {method}: ξ = {shape:.3f}"
+            lab = f"GEV{' ' + method if method else ''}: ξ = {shape:.3f}"
         ax.plot(yy, U.convert(q, "depth", units), "-", color="#c0392b", lw=1.3, label=lab)
     # secondary axis: non-exceedance probability
     ax.set_xlabel("Gumbel reduced variate  −ln(−ln p)")
@@ -807,7 +812,9 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     the recommended interval (bar), with the zone's flags written beside it.
 
     Infinite values (no measurable corrosion) are drawn as an arrow at the right
-    edge; negative code intervals (zone already below MRT) left of the zero line.
+    edge; negative values (a code interval of a zone already below MRT) at 0, labelled
+    "below MRT".  The methods sit on separate lines within a zone's row, so equal values
+    do not hide one another.
 
     Parameters
     ----------
@@ -834,26 +841,36 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     allv = np.concatenate(allv) if allv else np.array([])
     fin = allv[np.isfinite(allv)]
     hi = x_max if x_max is not None else (max(float(fin.max()), 1.0) * 1.12 if fin.size else 10)
-    lo = min(0.0, float(fin.min()) * 1.1) if fin.size else 0.0
+    # a negative interval (a code result for a zone already below MRT) is shown at 0 and
+    # labelled, not as a negative number of years
+    lo = 0.0
     ax.barh(ypos, np.where(np.isfinite(rec), np.clip(rec, 0, hi), 0), height=0.5,
             color="#cfe3d4", edgecolor="#2e7d4f", lw=0.8, label="recommended", zorder=1)
     for yk, r in zip(ypos, rec):
-        ax.text(max(r, 0) if np.isfinite(r) else 0, yk - 0.33, f" {U.fmt_number(r, 1)} y",
+        txt = "below MRT" if np.isfinite(r) and r < 0 else f"{U.fmt_number(r, 1)} y"
+        ax.text(max(r, 0) if np.isfinite(r) else 0, yk - 0.33, " " + txt,
                 fontsize=7.5, va="center", color="#1e5635")
+    # each method on its own line within the zone's row, so equal values do not hide
+    # each other (the cap, a vertical bar, on the row's centre)
+    offsets = {"code formula": 0.2, "co-located projection": 0.02, "extreme-value life": -0.16, "cap": 0.02}
     for c, lab, mk, colr in cols:
         if c is None:
             continue
+        dy = offsets.get(lab, 0.0)
         vals = zones_df[c].to_numpy(dtype=float)
         shown = np.clip(vals, lo, hi)
         ok = np.isfinite(vals)
-        ax.scatter(shown[ok], ypos[ok] + 0.08, marker=mk, s=46 if mk != "|" else 220,
+        ax.scatter(shown[ok], ypos[ok] + dy, marker=mk, s=46 if mk != "|" else 220,
                    color=colr, zorder=3, label=lab, linewidths=1.5 if mk == "|" else 0.5,
-                   edgecolors="white" if mk != "|" else None)
+                   edgecolors="white" if mk != "|" else None, clip_on=False)
+        for yk in ypos[ok & (vals < 0)]:
+            ax.text(0, yk + dy, "  below MRT", color=colr, fontsize=7, va="center", ha="left",
+                    zorder=3)
         inf = np.isposinf(vals)
         for yk in ypos[inf]:
-            ax.annotate("", xy=(hi, yk + 0.08), xytext=(hi * 0.93, yk + 0.08),
+            ax.annotate("", xy=(hi, yk + dy), xytext=(hi * 0.93, yk + dy),
                         arrowprops=dict(arrowstyle="->", color=colr, lw=1.2), zorder=3)
-            ax.text(hi * 0.93, yk + 0.24, "∞", color=colr, fontsize=8, ha="center")
+            ax.text(hi * 0.93, yk + dy + 0.1, "∞", color=colr, fontsize=8, ha="center")
     if "flags" in zones_df:
         for yk, fl in zip(ypos, zones_df["flags"]):
             if isinstance(fl, str) and fl.strip():
@@ -863,7 +880,7 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     ax.set_yticks(ypos)
     ax.set_yticklabels(zones)
     ax.set_ylim(-0.7, n - 0.3)
-    ax.set_xlim(lo - 0.5 if lo < 0 else 0, hi)
+    ax.set_xlim(-0.01 * hi, hi)
     ax.set_xlabel("years")
     ax.set_title("Interval and remaining life by method", fontsize=10.5, loc="left")
     ax.grid(True, axis="x", color="#e3e3e3", lw=0.6)
