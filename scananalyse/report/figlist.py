@@ -39,7 +39,8 @@ def figure_specs(an, units: str) -> list:
         :func:`as_found_specs`, :func:`repair_specs`) are put in the report's order.
     """
     specs = (map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single,
-                        life=an.life_map, old=an.old, old_on_new=an.old_on_new)
+                        life=an.life_map, old=an.old, old_on_new=an.old_on_new,
+                        indications=getattr(an, "indications", None))
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
     return _in_report_order(specs)
@@ -59,7 +60,7 @@ def _in_report_order(specs) -> list:
 def map_common(new, zmap, units) -> dict:
     """The :func:`~scananalyse.report.figures.floor_map` arguments every floor map shares."""
     return dict(extent=new.extent, units=units, diameter_mm=zmap.geometry.diameter_mm,
-                centre=zmap.geometry.centre, plate=new.plate)
+                centre=zmap.geometry.centre, plate=new.plate, zones=zmap)
 
 
 def shared_range(*grids):
@@ -88,16 +89,18 @@ def summed_rate(rate_top, rate_under, thickness):
     return s
 
 
-def map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None) -> list:
+def map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None,
+              indications=None) -> list:
     """The floor maps, the co-located life and (two inspections) the registration overlay
     (see figure_specs): :func:`scan_map_specs` and :func:`rate_map_specs`."""
-    return (scan_map_specs(new, lr, zmap, rules, options, job, units)
+    return (scan_map_specs(new, lr, zmap, rules, options, job, units, indications=indications)
             + rate_map_specs(new, lr, zmap, job, units, single=single, life=life, old=old, old_on_new=old_on_new))
 
 
-def scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
+def scan_map_specs(new, layers, zmap, rules, options, job, units, *, indications=None) -> list:
     """The maps that need the newer scan only, known once the zones are: thickness with
-    the MRT contour, top-side and underside loss (``layers``: ``rates.LossLayers`` or
+    the MRT contour (and, given the indication table, the deepest indications ringed and
+    numbered), top-side and underside loss (``layers``: ``rates.LossLayers`` or
     ``LossRates``)."""
     from .. import assess
     
@@ -113,7 +116,9 @@ def scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
     loss_lo, loss_hi = shared_range(layers.loss_top, layers.loss_under)
     out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
                 partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
-                        kind="thickness", contours=mrt_c, **common)))
+                        kind="thickness", contours=mrt_c,
+                        indications=indications if indications is not None and len(indications) else None,
+                        **common)))
     out.append(("maps", "loss_top", "Top-side (product-side) loss, on the same colour scale as the underside "
                 "loss so the two can be compared.",
                 partial(F.floor_map, layers.loss_top, title="Top-side loss", label="top-side loss", kind="loss",

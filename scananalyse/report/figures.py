@@ -227,7 +227,7 @@ def _find_col(df, names):
 # ---------------------------------------------------------------------------
 def floor_map(values, *, extent, title, label, units="mm", kind="thickness", diameter_mm=None,
               centre=(0.0, 0.0), plate=None, contours=None, patches=None, indications=None,
-              max_pixels=400_000, vmin=None, vmax=None, ax=None):
+              zones=None, plate_numbers=True, max_pixels=400_000, vmin=None, vmax=None, ax=None):
     """Map of one quantity over the floor.
 
     Parameters
@@ -251,6 +251,10 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
         optionally ``corner_radius_mm``: patch outlines (rounded rectangles). [mm]
     indications : DataFrame with ``x_mm, y_mm`` (and optionally ``id`` and a depth
         column): the positions are ringed, the ten deepest labelled. [mm]
+    zones : optional :class:`~scananalyse.zones.ZoneMap` (``labels`` on the same grid,
+        ``names``, ``kinds``): each zone outlined and named; the critical zone's inner
+        edge is drawn as the critical-zone ring.
+    plate_numbers : write each plate's number (from ``plate``) at its middle.
     max_pixels : the grid is block-reduced (:func:`decimate`) to at most this many
         pixels: min for thickness and life, max for loss and rate.  The default keeps
         the image no wider than the floor is drawn at 130 dpi (about 640 px), so the
@@ -290,6 +294,10 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
                          label="not scanned"))
 
     _draw_seams(ax, p_sub, handles, origin=(x_min, y_min), step=(f, px, py))
+    if plate_numbers and p_sub is not None:
+        _draw_plate_numbers(ax, p_sub, origin=(x_min, y_min), step=(f, px, py))
+    if zones is not None:
+        _draw_zones(ax, zones, handles, f=f, origin=(x_min, y_min), step=(px, py))
     if contours and disp is not None:
         _draw_contours(ax, disp, contours, handles, kind=kind, units=units, ext_m=ext_m, step=(f, px, py))
     _draw_patches(ax, patches, handles)
@@ -376,6 +384,101 @@ def _draw_seams(ax, p_sub, handles, *, origin, step):
 
 
 
+def _inner_point(mask):
+    """(row, col) of the cell of ``mask`` farthest from its edge (a label stays inside
+    a ring-shaped zone, unlike its centroid)."""
+    from scipy import ndimage
+
+    d = ndimage.distance_transform_edt(np.pad(mask, 1))[1:-1, 1:-1]
+    k = int(np.argmax(d))
+    return divmod(k, mask.shape[1])
+
+
+def _sub_for_labels(a, f, limit=250_000):
+    """``a`` sub-sampled (every g-th cell) to at most ``limit`` cells, and the total step."""
+    g = max(1, _factor(a.shape, limit))
+    return a[::g, ::g], f * g
+
+
+def _draw_plate_numbers(ax, p_sub, *, origin, step):
+    """Each plate's number at the cell farthest from its seams."""
+    from scipy import ndimage
+
+    f, px, py = step
+    p, g = _sub_for_labels(np.asarray(p_sub), 1)
+    ids = np.unique(p[p >= 0])
+    if ids.size == 0 or ids.size > 400:
+        return
+    lab = np.where(p >= 0, p, -1)
+    for sl_, pid in zip(ndimage.find_objects(lab + 1), range(int(lab.max()) + 1)):
+        if sl_ is None or pid not in ids:
+            continue
+        r, c = _inner_point(lab[sl_] == pid)
+        r += sl_[0].start
+        c += sl_[1].start
+        ax.text(origin[0] + (c + 0.5) * g * f * px, origin[1] + (r + 0.5) * g * f * py, f"plate {pid}",
+                fontsize=6, color="#3b3b3b", ha="center", va="center", zorder=4, alpha=0.9, style="italic",
+                bbox=dict(boxstyle="round,pad=0.12", facecolor="white", edgecolor="none", alpha=0.55))
+
+
+_ZONE_COLOUR = "#1a1a1a"
+_CRITICAL_COLOUR = "#ff4fa3"
+
+
+def _draw_zones(ax, zmap, handles, *, f, origin, step):
+    """Zone boundaries (where the zone changes between neighbouring cells, the critical
+    zone excepted) and names; the critical zone's inner edge drawn as a circle, the
+    critical-zone ring, with its name on the ring."""
+    px, py = step
+    lab, g = _sub_for_labels(np.asarray(zmap.labels)[::f, ::f], f)
+    kinds = list(getattr(zmap, "kinds", [""] * len(zmap.names)))
+    crit = [k for k, kd in enumerate(kinds) if kd == "critical"]
+    geo = getattr(zmap, "geometry", None)
+    cx, cy = (geo.centre if geo is not None else (0.0, 0.0))
+    cx, cy = cx / 1000.0, cy / 1000.0
+    xx = origin[0] + (np.arange(lab.shape[1]) + 0.5) * g * px
+    yy = origin[1] + (np.arange(lab.shape[0]) + 0.5) * g * py
+    # boundaries between zones other than the critical ring
+    ok = (lab >= 0) & ~np.isin(lab, crit)
+    edge = np.zeros(lab.shape, dtype=bool)
+    dr = (lab[1:, :] != lab[:-1, :]) & ok[1:, :] & ok[:-1, :]
+    dc = (lab[:, 1:] != lab[:, :-1]) & ok[:, 1:] & ok[:, :-1]
+    edge[1:, :] |= dr
+    edge[:, 1:] |= dc
+    if edge.any():
+        ext = (origin[0], origin[0] + lab.shape[1] * g * px, origin[1], origin[1] + lab.shape[0] * g * py)
+        ax.imshow(np.ma.masked_where(~edge, edge.astype(np.float32)), origin="lower", extent=ext,
+                  cmap=ListedColormap([_ZONE_COLOUR]), vmin=0, vmax=1, interpolation="nearest", zorder=4)
+        handles.append(Line2D([], [], color=_ZONE_COLOUR, lw=1.2, label="zone boundary"))
+    ring_r = None
+    for k in crit:
+        m = lab == k
+        if m.any():
+            rr, cc = np.nonzero(m)
+            r_in = float(np.min(np.hypot(xx[cc] - cx, yy[rr] - cy))) - 0.5 * g * max(px, py)
+            r_out = float(np.max(np.hypot(xx[cc] - cx, yy[rr] - cy)))
+            if r_in > 0:
+                ring_r = r_in
+                ax.add_patch(Circle((cx, cy), r_in, facecolor="none", edgecolor=_CRITICAL_COLOUR, lw=1.3,
+                                    ls="--", zorder=5,
+                                    path_effects=[patheffects.withStroke(linewidth=2.8, foreground="#111111")]))
+                a = math.radians(135.0)
+                rm = r_in - 0.04 * r_out  # just inside the ring, so the name stays legible
+                ax.text(cx + rm * math.cos(a), cy + rm * math.sin(a), zmap.names[k], fontsize=7.5, ha="center",
+                        va="center", rotation=45.0, zorder=6, color=_CRITICAL_COLOUR, fontweight="bold",
+                        path_effects=[patheffects.withStroke(linewidth=2.2, foreground="#111111")])
+    if ring_r is not None:
+        handles.append(Line2D([], [], color=_CRITICAL_COLOUR, lw=1.3, ls="--", label="critical-zone ring",
+                              path_effects=[patheffects.withStroke(linewidth=2.8, foreground="#111111")]))
+    for k, name in enumerate(zmap.names):
+        m = lab == k
+        if k in crit or not m.any():
+            continue
+        r, c = _inner_point(m)
+        ax.text(xx[c], yy[r], name, fontsize=7.5, ha="center", va="center", zorder=6, color=_ZONE_COLOUR,
+                fontweight="bold", path_effects=[patheffects.withStroke(linewidth=2.2, foreground="white")])
+
+
 def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
     """Contour lines (e.g. MRT, repair threshold) on the displayed grid, each with a legend entry
     (``step``: the display reduction factor and a cell's size [m])."""
@@ -429,6 +532,12 @@ def _draw_patches(ax, patches, handles):
                     for x0, y0, w, h, r in zip(x0s, y0s, ws, hs, rs)]
         ax.add_collection(PatchCollection(outlines, facecolor="none", edgecolor="#00a36c",
                                           linewidth=1.4, zorder=5), autolim=False)
+        idc = _find_col(patches, ["patch", "id"])
+        if idc is not None and len(patches) <= 300:
+            for pid, x1, y1 in zip(patches[idc], x0s + ws, y0s + hs):
+                ax.annotate(str(pid), (x1, y1), xytext=(1, 1), textcoords="offset points", fontsize=6.5,
+                            color="#00683f", zorder=6, fontweight="bold",
+                            path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
         handles.append(Patch(facecolor="none", edgecolor="#00a36c", linewidth=1.4,
                              label="patch plate"))
 
@@ -449,7 +558,8 @@ def _draw_indications(ax, indications, handles):
                 for _, row in top.iterrows():
                     ax.annotate(str(row[idc]), (row[xc] / 1000.0, row[yc] / 1000.0),
                                 xytext=(3, 3), textcoords="offset points", fontsize=6.5,
-                                color="#7a0000", zorder=6)
+                                color="#7a0000", zorder=6,
+                                path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
             handles.append(Line2D([], [], marker="o", linestyle="none", markerfacecolor="none",
                                   markeredgecolor="#e41a1c", label="indication"))
 
