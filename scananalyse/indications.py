@@ -819,22 +819,43 @@ def gone_indications(old_ind: pd.DataFrame, matched: pd.DataFrame) -> pd.DataFra
     return out
 
 
-def write_indications_csv(df: pd.DataFrame, path) -> None:
+def write_indications_csv(df: pd.DataFrame, path, *, radius_mm=None, centre=(0.0, 0.0), pitch_mm=None) -> None:
     """Write ``indications.csv`` (design.md §3.5), atomically (temporary file + rename).
+
+    Coordinates are rounded to :func:`~scananalyse.locate.coordinate_step` of the pitch
+    (1 mm without one), depths and thicknesses to 0.01 mm, rates to 0.001 mm/y, areas
+    to 0.0001 m²; no plate is an empty cell.  Given the shell radius, ``clock`` (clock
+    position from the datum) and ``from_shell_mm`` follow ``y_mm``
+    (:func:`~scananalyse.locate.add_location_columns`).
 
     Parameters
     ----------
     df : table from :func:`find_indications` / :func:`match_indications`. [-]
     path : output file. [-]
+    radius_mm : inside radius of the shell; None leaves out the location columns. [mm]
+    centre : tank centre in the floor frame. [mm]
+    pitch_mm : scan pitch, for the rounding step of coordinates. [mm]
     """
+    from .locate import add_location_columns, coordinate_step
+
     path = os.fspath(path)
     cols = [c for c in INDICATION_COLUMNS if c in df.columns]
     out = df[cols].copy()
+    step = coordinate_step(pitch_mm)
     for c in cols:
-        if c.endswith("_mm") or c.endswith("_mm_y"):
-            out[c] = out[c].astype(float).round(4)
+        if c.startswith(("x_", "y_")) and c.endswith("_mm"):
+            out[c] = np.round(out[c].astype(float) / step) * step
+        elif c.endswith("_mm_y"):
+            out[c] = out[c].astype(float).round(3)
+        elif c.endswith("_mm"):
+            out[c] = out[c].astype(float).round(2)
         elif c == "area_m2":
-            out[c] = out[c].astype(float).round(6)
+            out[c] = out[c].astype(float).round(4)
+    if "plate" in out.columns:
+        pl = pd.to_numeric(out["plate"], errors="coerce")
+        out["plate"] = [str(int(v)) if np.isfinite(v) and v >= 0 else "" for v in pl]
+    if radius_mm is not None and "x_mm" in out.columns and "y_mm" in out.columns:
+        out = add_location_columns(out, radius_mm=radius_mm, centre=centre, pitch_mm=pitch_mm)
     from .io.tables import write_csv
 
     write_csv(out, path)  # atomic; text cells neutralised against spreadsheet formulas

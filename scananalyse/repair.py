@@ -1590,47 +1590,6 @@ def _outline_points(rect, radius):
     return out
 
 
-def write_patches_dxf(patches, path) -> None:
-    """Write patch outlines for CAD (DXF R2010, units mm).
-
-    One closed LWPOLYLINE per patch on layer ``SCANANALYSE_PATCH``, corners rounded
-    with bulges, thickness and zone in XDATA (application ``SCANANALYSE``); the
-    patch id as a TEXT at the centre on layer ``SCANANALYSE_PATCH_ID``.
-    :func:`read_patches` reads the file back to the same rectangles.
-
-    Parameters
-    ----------
-    patches : patch table. [-]
-    path : output ``.dxf`` file. [-]
-    """
-    import ezdxf
-    from ezdxf.enums import TextEntityAlignment
-
-    _validate_table(patches)
-    R, rad, thk, ids = _rects_of(patches)
-    zones = [str(z) for z in patches["zone"]] if "zone" in patches else [""] * len(R)
-    doc = ezdxf.new("R2010", setup=False)
-    doc.units = ezdxf.units.MM
-    doc.header["$MEASUREMENT"] = 1
-    doc.layers.add(_DXF_LAYER, color=1)
-    doc.layers.add(_DXF_TEXT_LAYER, color=7)
-    doc.appids.add(_DXF_APPID)
-    msp = doc.modelspace()
-    for k in range(len(R)):
-        rect = tuple(float(v) for v in R[k])
-        pl = msp.add_lwpolyline(_outline_points(rect, rad[k]), format="xyb", close=True,
-                                dxfattribs={"layer": _DXF_LAYER})
-        xd = [(1000, "zone"), (1000, zones[k] if zones[k] != "nan" else "")]
-        if np.isfinite(thk[k]):
-            xd = [(1000, "thickness_mm"), (1040, float(thk[k]))] + xd
-        pl.set_xdata(_DXF_APPID, xd)
-        height = max(10.0, min(rect[2] - rect[0], rect[3] - rect[1]) / 6.0)
-        txt = msp.add_text(ids[k], height=height, dxfattribs={"layer": _DXF_TEXT_LAYER})
-        txt.set_placement(((rect[0] + rect[2]) / 2.0, (rect[1] + rect[3]) / 2.0),
-                          align=TextEntityAlignment.MIDDLE_CENTER)
-    _atomic_write(path, doc.saveas)
-
-
 def repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, *, have_old, own_patches=None,
                         plate_seams=None, ext_rate=None, ext_depth=None, hidden=None, older=None) -> dict:
     """Patch planning for the target interval (or the engineer's own patches), the rule
@@ -1784,3 +1743,6 @@ def _patch_life_note(life_on_patches, covered, target_interval):
             "rate is kept under a patch unless its cause is removed), short of the target of "
             f"{target_interval:g} years: consider thicker plates, effective cathodic protection "
             "or removing the cause (--under-cause-removed), or replacing plate.")
+
+
+from .report.dxf import write_patches_dxf  # noqa: E402,F401  (moved to report/dxf.py; re-exported)

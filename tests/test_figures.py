@@ -392,7 +392,9 @@ def test_method_comparison_markers_and_flags():
     texts = [t.get_text() for t in ax.texts]
     assert "∞" in texts  # infinite co-located life drawn as an arrow
     assert any("below MRT; code interval exceeds local life" in t for t in texts)
-    assert ax.get_xlim()[0] < -1.0  # negative code interval visible
+    # a negative code interval is shown at 0 and labelled, not as negative years
+    assert ax.get_xlim()[0] > -1.0
+    assert any(t.strip() == "below MRT" for t in texts)
 
 
 # --------------------------------------------------------------------------- output
@@ -441,3 +443,60 @@ def test_constrained_layout_run_once_gives_matplotlibs_own_pixels():
     b = np.asarray(Image.open(io.BytesIO(data)).convert("RGBA"))
     assert a.shape == b.shape and np.array_equal(a, b)
     assert len(ref_draws) == 2 and len(our_draws) == 1
+
+
+# --------------------------------------------------------------------------- locating, defects of issue 19
+def test_contours_light_with_dark_halo():
+    t, _ = _radial()
+    fig = F.floor_map(t, extent=EXT, title="t", label="t", contours=[(4.0, "MRT", "--")])
+    from matplotlib.colors import to_rgb
+
+    lines = [a for a in fig.axes[0].collections if type(a).__name__ == "QuadContourSet"] \
+        or [a for a in fig.axes[0].collections if hasattr(a, "levels")]
+    assert lines
+    rgb = to_rgb(lines[0].get_edgecolor()[0])
+    assert sum(rgb) / 3 > 0.8  # light: visible on the dark end of viridis
+    assert lines[0].get_path_effects()  # with a dark halo for the light end
+
+
+def test_floor_map_zones_ring_plates_patch_ids():
+    from types import SimpleNamespace
+
+    t, r = _radial()
+    labels = np.where(r <= 1400.0, np.where(r > 1100.0, 0, 1), -1).astype(np.int16)
+    zmap = SimpleNamespace(labels=labels, names=["critical", "interior"], kinds=["critical", "interior"],
+                           geometry=SimpleNamespace(centre=(0.0, 0.0)))
+    plate = np.zeros(t.shape, dtype=np.int32)
+    plate[:, 200:] = 1
+    patches = pd.DataFrame({"patch": ["P007"], "x_min_mm": [-100.0], "y_min_mm": [-100.0],
+                            "x_max_mm": [100.0], "y_max_mm": [100.0]})
+    fig = F.floor_map(t, extent=EXT, title="t", label="t", zones=zmap, plate=plate, patches=patches,
+                      diameter_mm=2800.0)
+    ax = fig.axes[0]
+    texts = [x.get_text() for x in ax.texts]
+    assert {"critical", "interior", "plate 0", "plate 1", "P007"} <= set(texts)
+    rings = [p for p in ax.patches if isinstance(p, Circle) and p.get_edgecolor()[:3] != (0.2, 0.2, 0.2)]
+    radii = sorted(round(p.get_radius(), 2) for p in ax.patches if isinstance(p, Circle))
+    assert any(abs(rad - 1.1) < 0.02 for rad in radii), radii  # the ring's inner edge, in m
+    assert rings
+    legend = [h.get_text() for h in ax.get_legend().get_texts()]
+    assert "critical-zone ring" in legend
+
+
+def test_summed_rate_and_shared_range():
+    from scananalyse.report.figlist import shared_range, summed_rate
+
+    top = np.array([[0.1, np.nan, np.nan, -0.2]], dtype=np.float32)
+    under = np.array([[0.2, 0.3, np.nan, 0.1]], dtype=np.float32)
+    thk = np.array([[5.0, 5.0, 5.0, np.nan]], dtype=np.float32)
+    s = summed_rate(top, under, thk)
+    assert np.allclose(s[0, :2], [0.3, 0.3]) and np.isnan(s[0, 2]) and np.isnan(s[0, 3])
+    assert shared_range(np.array([1.0, np.nan]), np.array([[2.5]])) == (0.0, 2.5)
+    assert shared_range(np.array([np.nan])) == (0.0, None)
+
+
+def test_probability_plot_legend_says_fitted_line():
+    fig = F.probability_plot({"maxima": [1.0, 1.5, 2.0, 2.2], "loc": 1.4, "scale": 0.4,
+                              "line_reduced": [-1.0, 2.0], "line_x": [1.0, 2.2]}, title="p")
+    legend = [h.get_text() for h in fig.axes[0].get_legend().get_texts()]
+    assert "fitted line" in legend and not any("fitted fit" in x for x in legend)

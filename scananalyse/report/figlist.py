@@ -15,7 +15,7 @@ import numpy as np
 from ..indications import reporting_depth
 from . import figures as F
 
-__all__ = ["figure_specs", "map_specs", "scan_map_specs", "rate_map_specs", "as_found_specs", "repair_specs",
+__all__ = ["figure_specs", "shared_range", "summed_rate", "map_specs", "scan_map_specs", "rate_map_specs", "as_found_specs", "repair_specs",
            "patches_spec", "registration_figure", "return_level_figure", "return_curve", "file_stem"]
 
 
@@ -39,7 +39,8 @@ def figure_specs(an, units: str) -> list:
         :func:`as_found_specs`, :func:`repair_specs`) are put in the report's order.
     """
     specs = (map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single,
-                        life=an.life_map, old=an.old, old_on_new=an.old_on_new)
+                        life=an.life_map, old=an.old, old_on_new=an.old_on_new,
+                        indications=getattr(an, "indications", None))
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
     if getattr(an, "readings", None):  # the spot readings as markers on the thickness map
@@ -69,19 +70,47 @@ def _in_report_order(specs) -> list:
 def map_common(new, zmap, units) -> dict:
     """The :func:`~scananalyse.report.figures.floor_map` arguments every floor map shares."""
     return dict(extent=new.extent, units=units, diameter_mm=zmap.geometry.diameter_mm,
-                centre=zmap.geometry.centre, plate=new.plate)
+                centre=zmap.geometry.centre, plate=new.plate, zones=zmap)
 
 
-def map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None) -> list:
+def shared_range(*grids):
+    """One colour range ``(0, largest finite value)`` for maps that are to be compared
+    (top-side and underside loss): (0, None) when no grid has a finite value. [mm]"""
+    hi = None
+    for g in grids:
+        a = np.asarray(g)
+        fin = np.isfinite(a)
+        if fin.any():
+            m = float(a[fin].max())
+            hi = m if hi is None else max(hi, m)
+    return 0.0, (hi if hi is not None and hi > 0 else None)
+
+
+def summed_rate(rate_top, rate_under, thickness):
+    """Top-side plus underside rate per cell (negative rates as 0) for the one-inspection
+    rate map: NaN where the cell was not scanned (thickness NaN, outside the tank
+    included) or neither side has a rate, so those cells show as not scanned. [mm/y]"""
+    top = np.asarray(rate_top, dtype=np.float32)
+    under = np.asarray(rate_under, dtype=np.float32)
+    with np.errstate(invalid="ignore"):
+        s = np.fmax(top, 0) + np.fmax(under, 0)
+    s[np.isnan(top) & np.isnan(under)] = np.nan
+    s[~np.isfinite(np.asarray(thickness))] = np.nan
+    return s
+
+
+def map_specs(new, lr, zmap, rules, options, job, units, *, single, life, old=None, old_on_new=None,
+              indications=None) -> list:
     """The floor maps, the co-located life and (two inspections) the registration overlay
     (see figure_specs): :func:`scan_map_specs` and :func:`rate_map_specs`."""
-    return (scan_map_specs(new, lr, zmap, rules, options, job, units)
+    return (scan_map_specs(new, lr, zmap, rules, options, job, units, indications=indications)
             + rate_map_specs(new, lr, zmap, job, units, single=single, life=life, old=old, old_on_new=old_on_new))
 
 
-def scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
+def scan_map_specs(new, layers, zmap, rules, options, job, units, *, indications=None) -> list:
     """The maps that need the newer scan only, known once the zones are: thickness with
-    the MRT contour, top-side and underside loss (``layers``: ``rates.LossLayers`` or
+    the MRT contour (and, given the indication table, the deepest indications ringed and
+    numbered), top-side and underside loss (``layers``: ``rates.LossLayers`` or
     ``LossRates``)."""
     from .. import assess
     
@@ -94,15 +123,20 @@ def scan_map_specs(new, layers, zmap, rules, options, job, units) -> list:
     if job.repair_to_mm:
         mrt_c.append((job.repair_to_mm, "repair-to thickness", ":"))
     common = map_common(new, zmap, units)
+    loss_lo, loss_hi = shared_range(layers.loss_top, layers.loss_under)
     out.append(("maps", "thickness", "Remaining thickness at the newer inspection, with the MRT contour.",
                 partial(F.floor_map, new.thickness, title="Remaining thickness now", label="remaining thickness",
-                        kind="thickness", contours=mrt_c, **common)))
-    out.append(("maps", "loss_top", "Top-side (product-side) loss.",
+                        kind="thickness", contours=mrt_c,
+                        indications=indications if indications is not None and len(indications) else None,
+                        **common)))
+    out.append(("maps", "loss_top", "Top-side (product-side) loss, on the same colour scale as the underside "
+                "loss so the two can be compared.",
                 partial(F.floor_map, layers.loss_top, title="Top-side loss", label="top-side loss", kind="loss",
-                        **common)))
-    out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default.",
+                        vmin=loss_lo, vmax=loss_hi, **common)))
+    out.append(("maps", "loss_under", "Underside (soil-side) loss, unattributed loss included by default; same "
+                "colour scale as the top-side loss.",
                 partial(F.floor_map, layers.loss_under, title="Underside loss", label="underside loss", kind="loss",
-                        **common)))
+                        vmin=loss_lo, vmax=loss_hi, **common)))
     return out
 
 
@@ -120,7 +154,7 @@ def rate_map_specs(new, lr, zmap, job, units, *, single, life, old=None, old_on_
                             kind="rate", **common)))
     else:
         out.append(("maps", "rate_long", "Long-term governing rate (both sides summed), one inspection only.",
-                    partial(F.floor_map, np.fmax(lr.rate_top, 0) + np.fmax(lr.rate_under, 0), title="Long-term rate",
+                    partial(F.floor_map, summed_rate(lr.rate_top, lr.rate_under, new.thickness), title="Long-term rate",
                             label="rate, both sides", kind="rate", **common)))
     out.append(("maps", "life_local", "Co-located remaining life: (t − MRT) ÷ (top rate + underside rate) per cell; "
                 "contour at the target interval.",

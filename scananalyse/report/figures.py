@@ -30,6 +30,7 @@ from matplotlib.lines import Line2D
 from matplotlib.collections import PatchCollection
 from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
 import matplotlib as mpl
+from matplotlib import patheffects
 
 from ..outputs import publish_file
 from . import units as U
@@ -226,7 +227,7 @@ def _find_col(df, names):
 # ---------------------------------------------------------------------------
 def floor_map(values, *, extent, title, label, units="mm", kind="thickness", diameter_mm=None,
               centre=(0.0, 0.0), plate=None, contours=None, patches=None, indications=None,
-              max_pixels=400_000, vmin=None, vmax=None, ax=None):
+              zones=None, plate_numbers=True, max_pixels=400_000, vmin=None, vmax=None, ax=None):
     """Map of one quantity over the floor.
 
     Parameters
@@ -250,6 +251,10 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
         optionally ``corner_radius_mm``: patch outlines (rounded rectangles). [mm]
     indications : DataFrame with ``x_mm, y_mm`` (and optionally ``id`` and a depth
         column): the positions are ringed, the ten deepest labelled. [mm]
+    zones : optional :class:`~scananalyse.zones.ZoneMap` (``labels`` on the same grid,
+        ``names``, ``kinds``): each zone outlined and named; the critical zone's inner
+        edge is drawn as the critical-zone ring.
+    plate_numbers : write each plate's number (from ``plate``) at its middle.
     max_pixels : the grid is block-reduced (:func:`decimate`) to at most this many
         pixels: min for thickness and life, max for loss and rate.  The default keeps
         the image no wider than the floor is drawn at 130 dpi (about 640 px), so the
@@ -289,6 +294,10 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
                          label="not scanned"))
 
     _draw_seams(ax, p_sub, handles, origin=(x_min, y_min), step=(f, px, py))
+    if plate_numbers and p_sub is not None:
+        _draw_plate_numbers(ax, p_sub, origin=(x_min, y_min), step=(f, px, py))
+    if zones is not None:
+        _draw_zones(ax, zones, handles, f=f, origin=(x_min, y_min), step=(px, py))
     if contours and disp is not None:
         _draw_contours(ax, disp, contours, handles, kind=kind, units=units, ext_m=ext_m, step=(f, px, py))
     _draw_patches(ax, patches, handles)
@@ -375,6 +384,101 @@ def _draw_seams(ax, p_sub, handles, *, origin, step):
 
 
 
+def _inner_point(mask):
+    """(row, col) of the cell of ``mask`` farthest from its edge (a label stays inside
+    a ring-shaped zone, unlike its centroid)."""
+    from scipy import ndimage
+
+    d = ndimage.distance_transform_edt(np.pad(mask, 1))[1:-1, 1:-1]
+    k = int(np.argmax(d))
+    return divmod(k, mask.shape[1])
+
+
+def _sub_for_labels(a, f, limit=250_000):
+    """``a`` sub-sampled (every g-th cell) to at most ``limit`` cells, and the total step."""
+    g = max(1, _factor(a.shape, limit))
+    return a[::g, ::g], f * g
+
+
+def _draw_plate_numbers(ax, p_sub, *, origin, step):
+    """Each plate's number at the cell farthest from its seams."""
+    from scipy import ndimage
+
+    f, px, py = step
+    p, g = _sub_for_labels(np.asarray(p_sub), 1)
+    ids = np.unique(p[p >= 0])
+    if ids.size == 0 or ids.size > 400:
+        return
+    lab = np.where(p >= 0, p, -1)
+    for sl_, pid in zip(ndimage.find_objects(lab + 1), range(int(lab.max()) + 1)):
+        if sl_ is None or pid not in ids:
+            continue
+        r, c = _inner_point(lab[sl_] == pid)
+        r += sl_[0].start
+        c += sl_[1].start
+        ax.text(origin[0] + (c + 0.5) * g * f * px, origin[1] + (r + 0.5) * g * f * py, f"plate {pid}",
+                fontsize=6, color="#3b3b3b", ha="center", va="center", zorder=4, alpha=0.9, style="italic",
+                bbox=dict(boxstyle="round,pad=0.12", facecolor="white", edgecolor="none", alpha=0.55))
+
+
+_ZONE_COLOUR = "#1a1a1a"
+_CRITICAL_COLOUR = "#ff4fa3"
+
+
+def _draw_zones(ax, zmap, handles, *, f, origin, step):
+    """Zone boundaries (where the zone changes between neighbouring cells, the critical
+    zone excepted) and names; the critical zone's inner edge drawn as a circle, the
+    critical-zone ring, with its name on the ring."""
+    px, py = step
+    lab, g = _sub_for_labels(np.asarray(zmap.labels)[::f, ::f], f)
+    kinds = list(getattr(zmap, "kinds", [""] * len(zmap.names)))
+    crit = [k for k, kd in enumerate(kinds) if kd == "critical"]
+    geo = getattr(zmap, "geometry", None)
+    cx, cy = (geo.centre if geo is not None else (0.0, 0.0))
+    cx, cy = cx / 1000.0, cy / 1000.0
+    xx = origin[0] + (np.arange(lab.shape[1]) + 0.5) * g * px
+    yy = origin[1] + (np.arange(lab.shape[0]) + 0.5) * g * py
+    # boundaries between zones other than the critical ring
+    ok = (lab >= 0) & ~np.isin(lab, crit)
+    edge = np.zeros(lab.shape, dtype=bool)
+    dr = (lab[1:, :] != lab[:-1, :]) & ok[1:, :] & ok[:-1, :]
+    dc = (lab[:, 1:] != lab[:, :-1]) & ok[:, 1:] & ok[:, :-1]
+    edge[1:, :] |= dr
+    edge[:, 1:] |= dc
+    if edge.any():
+        ext = (origin[0], origin[0] + lab.shape[1] * g * px, origin[1], origin[1] + lab.shape[0] * g * py)
+        ax.imshow(np.ma.masked_where(~edge, edge.astype(np.float32)), origin="lower", extent=ext,
+                  cmap=ListedColormap([_ZONE_COLOUR]), vmin=0, vmax=1, interpolation="nearest", zorder=4)
+        handles.append(Line2D([], [], color=_ZONE_COLOUR, lw=1.2, label="zone boundary"))
+    ring_r = None
+    for k in crit:
+        m = lab == k
+        if m.any():
+            rr, cc = np.nonzero(m)
+            r_in = float(np.min(np.hypot(xx[cc] - cx, yy[rr] - cy))) - 0.5 * g * max(px, py)
+            r_out = float(np.max(np.hypot(xx[cc] - cx, yy[rr] - cy)))
+            if r_in > 0:
+                ring_r = r_in
+                ax.add_patch(Circle((cx, cy), r_in, facecolor="none", edgecolor=_CRITICAL_COLOUR, lw=1.3,
+                                    ls="--", zorder=5,
+                                    path_effects=[patheffects.withStroke(linewidth=2.8, foreground="#111111")]))
+                a = math.radians(135.0)
+                rm = r_in - 0.04 * r_out  # just inside the ring, so the name stays legible
+                ax.text(cx + rm * math.cos(a), cy + rm * math.sin(a), zmap.names[k], fontsize=7.5, ha="center",
+                        va="center", rotation=45.0, zorder=6, color=_CRITICAL_COLOUR, fontweight="bold",
+                        path_effects=[patheffects.withStroke(linewidth=2.2, foreground="#111111")])
+    if ring_r is not None:
+        handles.append(Line2D([], [], color=_CRITICAL_COLOUR, lw=1.3, ls="--", label="critical-zone ring",
+                              path_effects=[patheffects.withStroke(linewidth=2.8, foreground="#111111")]))
+    for k, name in enumerate(zmap.names):
+        m = lab == k
+        if k in crit or not m.any():
+            continue
+        r, c = _inner_point(m)
+        ax.text(xx[c], yy[r], name, fontsize=7.5, ha="center", va="center", zorder=6, color=_ZONE_COLOUR,
+                fontweight="bold", path_effects=[patheffects.withStroke(linewidth=2.2, foreground="white")])
+
+
 def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
     """Contour lines (e.g. MRT, repair threshold) on the displayed grid, each with a legend entry
     (``step``: the display reduction factor and a cell's size [m])."""
@@ -385,7 +489,9 @@ def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
     finite = np.isfinite(disp)
     dmin = float(np.min(disp[finite])) if finite.any() else np.nan
     dmax = float(np.max(disp[finite])) if finite.any() else np.nan
-    defaults = ["#111111", "#c0392b", "#ffffff"]
+    # light lines with a dark halo: visible over the dark and the light end of every map
+    defaults = ["#ffffff", "#34e0ff", "#ff9f1c"]
+    halo = [patheffects.withStroke(linewidth=3.2, foreground="#111111")]
     for k, item in enumerate(contours):
         level, clabel, style = (tuple(item) + (None, None))[:3]
         lvl = U.convert(level, q, units)
@@ -396,11 +502,12 @@ def _draw_contours(ax, disp, contours, handles, *, kind, units, ext_m, step):
             kw["linestyles"] = style
         ls = kw.get("linestyles", "solid")
         if np.isfinite(lvl) and dmin < lvl < dmax:
-            ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
+            cs = ax.contour(xx, yy, np.ma.masked_invalid(disp), levels=[lvl], zorder=4, **kw)
+            cs.set_path_effects(halo)
         unit = U.unit_label(q, units)
         nd = U.decimals(q, units)
         col = kw["colors"] if isinstance(kw["colors"], str) else kw["colors"][0]
-        handles.append(Line2D([], [], color=col, lw=kw["linewidths"],
+        handles.append(Line2D([], [], color=col, lw=kw["linewidths"], path_effects=halo,
                               linestyle=ls if isinstance(ls, str) else "solid",
                               label=f"{clabel or 'contour'} ({lvl:.{nd}f} {unit})"
                               + ("" if np.isfinite(lvl) and dmin < lvl < dmax
@@ -425,6 +532,12 @@ def _draw_patches(ax, patches, handles):
                     for x0, y0, w, h, r in zip(x0s, y0s, ws, hs, rs)]
         ax.add_collection(PatchCollection(outlines, facecolor="none", edgecolor="#00a36c",
                                           linewidth=1.4, zorder=5), autolim=False)
+        idc = _find_col(patches, ["patch", "id"])
+        if idc is not None and len(patches) <= 300:
+            for pid, x1, y1 in zip(patches[idc], x0s + ws, y0s + hs):
+                ax.annotate(str(pid), (x1, y1), xytext=(1, 1), textcoords="offset points", fontsize=6.5,
+                            color="#00683f", zorder=6, fontweight="bold",
+                            path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
         handles.append(Patch(facecolor="none", edgecolor="#00a36c", linewidth=1.4,
                              label="patch plate"))
 
@@ -445,7 +558,8 @@ def _draw_indications(ax, indications, handles):
                 for _, row in top.iterrows():
                     ax.annotate(str(row[idc]), (row[xc] / 1000.0, row[yc] / 1000.0),
                                 xytext=(3, 3), textcoords="offset points", fontsize=6.5,
-                                color="#7a0000", zorder=6)
+                                color="#7a0000", zorder=6,
+                                path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
             handles.append(Line2D([], [], marker="o", linestyle="none", markerfacecolor="none",
                                   markeredgecolor="#e41a1c", label="indication"))
 
@@ -670,7 +784,7 @@ def probability_plot(plot_data, *, title, units="mm", ax=None):
     if thr is not None and np.isfinite(thr):
         ax.axhline(U.convert(thr, "depth", units), color="#888888", lw=0.8, ls=":",
                    label="detection threshold")
-    method = _get(plot_data, "method", default="fit")
+    method = _get(plot_data, "method", default=None)
     line_r = _get(plot_data, "line_reduced", default=None)
     line_x = _get(plot_data, "line_x", default=None)
     loc = _get(plot_data, "loc", "mu")
@@ -678,18 +792,19 @@ def probability_plot(plot_data, *, title, units="mm", ax=None):
     shape = float(_get(plot_data, "shape", "xi", default=0.0))
     if line_r is not None and line_x is not None:
         ax.plot(np.asarray(line_r, float), U.convert(np.asarray(line_x, float), "depth", units),
-                "-", color="#c0392b", lw=1.3, label=f"fitted {method}")
+                "-", color="#c0392b", lw=1.3,
+                label=f"fitted line ({method})" if method else "fitted line")
     elif loc is not None and scale is not None and y.size:
         yy = np.linspace(min(y.min(), -1.5) - 0.2, max(y.max(), 3.0) + 0.5, 200)
         if abs(shape) < 1e-9:
             q = loc + scale * yy
-            lab = (f"Gumbel {method}: μ = {U.convert(loc, 'depth', units):.2f}, "
+            lab = (f"Gumbel{' ' + method if method else ''}: μ = {U.convert(loc, 'depth', units):.2f}, "
                    f"σ = {U.convert(scale, 'depth', units):.2f} {unit}")
         else:
             # GEV quantile, ξ convention of Coles (2001): x = μ + σ/ξ ((−ln p)^(−ξ) − 1)
             pp = np.exp(-np.exp(-yy))
             q = loc + scale / shape * ((-np.log(pp)) ** (-shape) - 1.0)
-            lab = f"GEV {method}: ξ = {shape:.3f}"
+            lab = f"GEV{' ' + method if method else ''}: ξ = {shape:.3f}"
         ax.plot(yy, U.convert(q, "depth", units), "-", color="#c0392b", lw=1.3, label=lab)
     # secondary axis: non-exceedance probability
     ax.set_xlabel("Gumbel reduced variate  −ln(−ln p)")
@@ -807,7 +922,9 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     the recommended interval (bar), with the zone's flags written beside it.
 
     Infinite values (no measurable corrosion) are drawn as an arrow at the right
-    edge; negative code intervals (zone already below MRT) left of the zero line.
+    edge; negative values (a code interval of a zone already below MRT) at 0, labelled
+    "below MRT".  The methods sit on separate lines within a zone's row, so equal values
+    do not hide one another.
 
     Parameters
     ----------
@@ -834,26 +951,36 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     allv = np.concatenate(allv) if allv else np.array([])
     fin = allv[np.isfinite(allv)]
     hi = x_max if x_max is not None else (max(float(fin.max()), 1.0) * 1.12 if fin.size else 10)
-    lo = min(0.0, float(fin.min()) * 1.1) if fin.size else 0.0
+    # a negative interval (a code result for a zone already below MRT) is shown at 0 and
+    # labelled, not as a negative number of years
+    lo = 0.0
     ax.barh(ypos, np.where(np.isfinite(rec), np.clip(rec, 0, hi), 0), height=0.5,
             color="#cfe3d4", edgecolor="#2e7d4f", lw=0.8, label="recommended", zorder=1)
     for yk, r in zip(ypos, rec):
-        ax.text(max(r, 0) if np.isfinite(r) else 0, yk - 0.33, f" {U.fmt_number(r, 1)} y",
+        txt = "below MRT" if np.isfinite(r) and r < 0 else f"{U.fmt_number(r, 1)} y"
+        ax.text(max(r, 0) if np.isfinite(r) else 0, yk - 0.33, " " + txt,
                 fontsize=7.5, va="center", color="#1e5635")
+    # each method on its own line within the zone's row, so equal values do not hide
+    # each other (the cap, a vertical bar, on the row's centre)
+    offsets = {"code formula": 0.2, "co-located projection": 0.02, "extreme-value life": -0.16, "cap": 0.02}
     for c, lab, mk, colr in cols:
         if c is None:
             continue
+        dy = offsets.get(lab, 0.0)
         vals = zones_df[c].to_numpy(dtype=float)
         shown = np.clip(vals, lo, hi)
         ok = np.isfinite(vals)
-        ax.scatter(shown[ok], ypos[ok] + 0.08, marker=mk, s=46 if mk != "|" else 220,
+        ax.scatter(shown[ok], ypos[ok] + dy, marker=mk, s=46 if mk != "|" else 220,
                    color=colr, zorder=3, label=lab, linewidths=1.5 if mk == "|" else 0.5,
-                   edgecolors="white" if mk != "|" else None)
+                   edgecolors="white" if mk != "|" else None, clip_on=False)
+        for yk in ypos[ok & (vals < 0)]:
+            ax.text(0, yk + dy, "  below MRT", color=colr, fontsize=7, va="center", ha="left",
+                    zorder=3)
         inf = np.isposinf(vals)
         for yk in ypos[inf]:
-            ax.annotate("", xy=(hi, yk + 0.08), xytext=(hi * 0.93, yk + 0.08),
+            ax.annotate("", xy=(hi, yk + dy), xytext=(hi * 0.93, yk + dy),
                         arrowprops=dict(arrowstyle="->", color=colr, lw=1.2), zorder=3)
-            ax.text(hi * 0.93, yk + 0.24, "∞", color=colr, fontsize=8, ha="center")
+            ax.text(hi * 0.93, yk + dy + 0.1, "∞", color=colr, fontsize=8, ha="center")
     if "flags" in zones_df:
         for yk, fl in zip(ypos, zones_df["flags"]):
             if isinstance(fl, str) and fl.strip():
@@ -863,7 +990,7 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     ax.set_yticks(ypos)
     ax.set_yticklabels(zones)
     ax.set_ylim(-0.7, n - 0.3)
-    ax.set_xlim(lo - 0.5 if lo < 0 else 0, hi)
+    ax.set_xlim(-0.01 * hi, hi)
     ax.set_xlabel("years")
     ax.set_title("Interval and remaining life by method", fontsize=10.5, loc="left")
     ax.grid(True, axis="x", color="#e3e3e3", lw=0.6)
