@@ -92,6 +92,10 @@ PATCH_COLUMNS = ["patch", "zone", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"
                  "corner_radius_mm", "thickness_mm", "area_m2", "mass_kg", "flags",
                  "n_cells_covered"]
 
+#: Where a patch is on the floor (``patches.csv`` after ``y_max_mm``; read back and ignored):
+#: clock position of its centre from the datum and distance from the shell.
+LOCATION_COLUMNS = ["clock", "from_shell_mm"]
+
 FLAG_CRITICAL = "critical-zone-special-repair"
 FLAG_CRITICAL_THICKNESS = "critical-zone-thickness"
 FLAG_WELD_CLEARANCE = "weld-clearance"
@@ -1224,7 +1228,8 @@ def write_patches_csv(patches, path) -> None:
     from .io.tables import write_csv
 
     _validate_table(patches)
-    cols = [c for c in PATCH_COLUMNS if c in patches.columns]
+    order = PATCH_COLUMNS[:6] + LOCATION_COLUMNS + PATCH_COLUMNS[6:]
+    cols = [c for c in order if c in patches.columns]
     # text cells (patch ids, zones, flags) neutralised against spreadsheet formulas
     write_csv(patches[cols], path, float_format="%.6g")
 
@@ -1248,7 +1253,7 @@ def _read_patches_csv(path):
     hline, header = body[0]
     cols = [c.strip() for c in csv_fields(header, path, hline)]
     for c in cols:
-        if c not in PATCH_COLUMNS:
+        if c not in PATCH_COLUMNS and c not in LOCATION_COLUMNS:
             raise InputError(f"{where(path, hline, shown(c, quote=False))}: unknown column "
                              f"(expected {', '.join(PATCH_COLUMNS)})")
     if len(set(cols)) != len(cols):

@@ -25,7 +25,8 @@ from .outputs import output_folder, write_json, write_results_h5
 from .pipeline import Analysis, analyse, read_job_inputs
 from .progress import Progress
 from .register import register
-from .repair import write_patches_csv, write_patches_dxf
+from .repair import write_patches_csv
+from .report.dxf import patch_locations, write_patches_dxf
 from .report import figures as F
 from .report.content import actions, report_data
 from .report.figlist import figure_specs, file_stem
@@ -144,9 +145,13 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
     with prog.stage("outputs"):
         write_csv(an.zone_table, folder / "zones.csv")
         write_csv(an.zones_repaired, folder / "zones_repaired.csv")
-        write_patches_csv(an.patches, folder / "patches.csv")
-        write_patches_dxf(an.patches, folder / "patches.dxf")
-        write_indications_csv(an.indications, folder / "indications.csv")
+        geo, pitch = an.zones.geometry, an.new.pitch
+        where = dict(radius_mm=geo.radius_mm, centre=geo.centre, pitch_mm=pitch)
+        write_patches_csv(patch_locations(an.patches, **where), folder / "patches.csv")
+        write_patches_dxf(an.patches, folder / "patches.dxf", shell_radius_mm=geo.radius_mm, centre=geo.centre,
+                          critical_width_mm=float(an.rules.v("critical_zone_width_mm")), plate=an.new.plate,
+                          grid=(an.new.x0, an.new.y0, pitch), indications=an.indications)
+        write_indications_csv(an.indications, folder / "indications.csv", **where)
         files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
         if an.readings:
             # spot readings: the zones assessed from them, and the indications to prove up next
