@@ -9,10 +9,10 @@ the time until its thinnest point, scanned or not, reaches MRT,
 and the time to a leak is the same with MRT = 0.  Every quantity on the right is uncertain
 and is drawn by a seeded, vectorised Monte Carlo:
 
-* **thickness** of a scanned cell: :math:`t_i \sim N(t_i^\mathrm{meas}, \sigma_t^2)`, with
+* **thickness** of a scanned, measured cell: :math:`t_i \sim N(t_i^\mathrm{meas}, \sigma_t^2)`, with
   :math:`\sigma_t` the method's reading sigma (a per-cell array may carry the prove-up
-  scatter where there are prove-ups); a below-threshold (censored) cell is uniform between
-  nominal − threshold and nominal;
+  scatter where there are prove-ups); the below-threshold (censored) cells as one with
+  the threshold taken as its loss (the most it can be), at a similar-depth rate (below);
 * **rate** of a scanned cell, each side: a split normal whose 5 % and 95 % points are the
   cell's 90 % interval (``rate_*_lo``, ``rate_*_hi``: reading noise and the censoring of
   the older scan), truncated at ±4 standard deviations and at 0;
@@ -20,6 +20,8 @@ and is drawn by a seeded, vectorised Monte Carlo:
   parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
   :math:`U \sim U(0, 1)`, T = hidden area / block area: the predictive distribution of the
   deepest of T block maxima, not a plug-in return level;
+* **rate of a cell whose rate was assumed, not measured** (indications with no measured
+  rate): the same similar-depth rule as the unscanned part;
 * **rate there**: the rate of a scanned cell of the zone of similar depth (rule: the
   measured cells are ranked by loss; the one drawn is uniform among the ``w`` cells nearest
   in rank to D, ``w`` = max(5, 2 % of the cells); beyond the deepest measured cell, among
@@ -142,8 +144,8 @@ def _clean(point, lo, hi):
 
 def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo,
                            rate_under_hi, mrt, *, sigma_t, nominal, censored=None, threshold=None,
-                           hidden_fit=None, hidden_T=0.0, hidden_n=None, hidden_threshold=None,
-                           n_draws=2000, seed=0) -> LifeDistribution:
+                           measured=None, hidden_fit=None, hidden_T=0.0, hidden_n=None,
+                           hidden_threshold=None, n_draws=2000, seed=0) -> LifeDistribution:
     r"""Distribution of one zone's time to MRT and to a leak (our own model, module notes).
 
     Parameters
@@ -166,6 +168,10 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         Cells reported as nominal whose true loss lies below ``threshold``. [-]
     threshold : float, optional
         Detection threshold of the scan (loss). [mm]
+    measured : (n,) bool array_like, optional
+        Cells whose rates were measured (short- or long-term); the others (rates assumed
+        for indications with no measured rate) take the similar-depth rule of the unscanned
+        part instead of their assumed point.  None: all measured. [-]
     hidden_fit : GumbelFit or GEVFit, optional
         The zone's fit of block-maximum loss depth (:class:`~scananalyse.extremes.ZoneExtremes`
         ``.fit``); None: the unscanned part is not modelled.
@@ -223,38 +229,60 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
     rng = np.random.default_rng(seed)
     thr = float(threshold) if threshold else 0.0
     cens = cens & (thr > 0)
-    # the range each cell's thickness and rate can take in a draw
-    t_lo = np.where(cens, nominal - thr, t - TRUNC_SD * sig)
-    t_hi = np.where(cens, nominal, t + TRUNC_SD * sig)
+    unc = ~cens
+    meas = np.ones(n, bool) if measured is None else np.asarray(measured, bool).ravel()[ok]
+    # reference cells of the similar-depth rate rule: the measured, uncensored cells
+    ref = unc & meas
+    ref = ref if ref.any() else (unc if unc.any() else np.ones_like(unc))
+    ref_depth = nominal - t[ref]
+    ref_rates = tuple(a[ref] for a in (pt, lt, ht, pu, lu, hu))
+    if not meas.all():  # assumed rates: replaced by draws of the rule (range for pruning below)
+        am = ~meas
+        rmax = float(np.max(_rate_range(*ref_rates[:3])[1] + _rate_range(*ref_rates[3:])[1]))
+        pt, lt, ht, pu, lu, hu = (np.where(am, v, a) for a, v in zip((pt, lt, ht, pu, lu, hu),
+                                                                     (0.0, 0.0, 0.0, 0.0, 0.0, rmax)))
+    # the range each measured cell's thickness and rate can take in a draw
+    t_lo, t_hi = t - TRUNC_SD * sig, t + TRUNC_SD * sig
     rt_min, rt_max = _rate_range(pt, lt, ht)
     ru_min, ru_max = _rate_range(pu, lu, hu)
     with np.errstate(divide="ignore", invalid="ignore"):
-        pess = _life(t_lo - mrt_a, rt_max + ru_max)
-        opt = _life(t_hi - mrt_a, rt_min + ru_min)
-        pess0 = _life(t_lo, rt_max + ru_max)
-        opt0 = _life(t_hi, rt_min + ru_min)
+        pess = np.where(unc, _life(t_lo - mrt_a, rt_max + ru_max), np.inf)
+        opt = np.where(unc, _life(t_hi - mrt_a, rt_min + ru_min), np.inf)
+        pess0 = np.where(unc, _life(t_lo, rt_max + ru_max), np.inf)
+        opt0 = np.where(unc, _life(t_hi, rt_min + ru_min), np.inf)
     # cell i can be the minimum only if its shortest possible life is not above the
     # longest possible life of the cell that is surely shortest
-    keep = pess <= (opt.min() if opt.size else np.inf)
-    keep |= pess0 <= (opt0.min() if opt0.size else np.inf)  # the leak's candidates too
+    keep = unc & (pess <= (opt.min() if opt.size else np.inf))
+    keep |= unc & (pess0 <= (opt0.min() if opt0.size else np.inf))  # the leak's candidates too
     idx = np.flatnonzero(keep)
-    shape = (n_draws, idx.size)
-    tk = np.where(cens[idx], rng.uniform(nominal - thr, nominal, shape),
-                  t[idx] + sig[idx] * np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD))
-    rk = _split_normal(rng, pt[idx], lt[idx], ht[idx], shape) + _split_normal(rng, pu[idx], lu[idx], hu[idx], shape)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        l_mrt = _life(tk - mrt_a[idx], rk)
-        l_leak = _life(tk, rk)
-    life_mrt = l_mrt.min(axis=1) if idx.size else np.full(n_draws, np.inf)
-    life_leak = l_leak.min(axis=1) if idx.size else np.full(n_draws, np.inf)
+    life_mrt = np.full(n_draws, np.inf)
+    life_leak = np.full(n_draws, np.inf)
+    for c0 in range(0, idx.size, 256):  # bands of cells: bounded memory
+        ii = idx[c0:c0 + 256]
+        shape = (n_draws, ii.size)
+        tk = t[ii] + sig[ii] * np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
+        rk = _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
+        a_ii = np.flatnonzero(~meas[ii])
+        if a_ii.size:
+            d_a = np.broadcast_to(nominal - t[ii][a_ii], (n_draws, a_ii.size)).ravel()
+            rk[:, a_ii] = _hidden_rate(rng, d_a, ref_depth, *ref_rates).reshape(n_draws, a_ii.size)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            life_mrt = np.minimum(life_mrt, _life(tk - mrt_a[ii], rk).min(axis=1))
+            life_leak = np.minimum(life_leak, _life(tk, rk).min(axis=1))
+    m_h = float(np.min(mrt_a)) if mrt_a.size else float(np.min(mrt))
+    if cens.any():
+        # the below-threshold part: its deepest loss is at most the threshold; taken at the
+        # threshold, growing at the rate of a measured cell of similar depth
+        r_c = _hidden_rate(rng, np.full(n_draws, thr), ref_depth, *ref_rates)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            life_mrt = np.minimum(life_mrt, _life(nominal - thr - m_h, r_c))
+            life_leak = np.minimum(life_leak, _life(nominal - thr, r_c))
     notes = []
     p_hidden = 0.0
     T = float(hidden_T)
     if hidden_fit is not None and T > 0:
         d = _hidden_depth(hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
-        depth_meas = np.where(cens, 0.0, nominal - t)
-        r_h = _hidden_rate(rng, d, depth_meas, pt, lt, ht, pu, lu, hu)
-        m_h = float(np.min(mrt_a)) if mrt_a.size else float(np.min(mrt))
+        r_h = _hidden_rate(rng, d, ref_depth, *ref_rates)
         with np.errstate(divide="ignore", invalid="ignore"):
             h_mrt = _life(nominal - d - m_h, r_h)
             h_leak = _life(nominal - d, r_h)
@@ -352,10 +380,16 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         block = ze.block_mm if (ze and np.isfinite(ze.block_mm)) else np.nan
         T = hidden_mm2 / block ** 2 if fit is not None and np.isfinite(block) else 0.0
         cens = rates.censored[sel] if rates.censored is not None else None
+        # measured: the point is not above both sides' measured (short/long-term) rates
+        meas = np.ones(int(sel.sum()), bool)
+        for pnt, sh, lg in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top),
+                            (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
+            m = np.fmax(sh[sel], lg[sel])
+            meas &= ~(np.nan_to_num(pnt[sel]) > np.nan_to_num(m) + 1e-6)
         out[name] = zone_life_distribution(
             thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
             rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel], mrt_map[sel],
-            sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens,
+            sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens, measured=meas,
             threshold=rates.threshold, hidden_fit=fit, hidden_T=T, n_draws=n_draws, seed=seed + k)
     return out
 
