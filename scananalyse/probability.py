@@ -15,7 +15,9 @@ and is drawn by a seeded, vectorised Monte Carlo:
   the threshold taken as its loss (the most it can be), at a similar-depth rate (below);
 * **rate** of a scanned cell, each side: a split normal whose 5 % and 95 % points are the
   cell's 90 % interval (``rate_*_lo``, ``rate_*_hi``: reading noise and the censoring of
-  the older scan), truncated at ±4 standard deviations and at 0;
+  the older scan), truncated at ±4 standard deviations and at 0; where the point is the
+  top of its interval (a cell crossed below the older threshold: the older loss is unknown
+  below it) the rate is uniform over the interval instead;
 * **deepest loss of the unscanned part**: parameter sets of the zone's depth fit drawn by
   parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
   :math:`U \sim U(0, 1)`, T = hidden area / block area: the predictive distribution of the
@@ -126,7 +128,14 @@ def _split_normal(rng, point, lo, hi, shape):
     z = np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
     sd_lo = np.maximum(point - lo, 0.0) / Z90
     sd_hi = np.maximum(hi - point, 0.0) / Z90
-    return np.maximum(point + np.where(z < 0, z * sd_lo, z * sd_hi), 0.0)
+    r = point + np.where(z < 0, z * sd_lo, z * sd_hi)
+    # a point at the top of its interval is the censoring bound (older loss unknown below
+    # the older threshold), not a noisy estimate: uniform over the interval
+    cens = (point >= hi - 1e-9) & (lo < point - 1e-9)
+    if np.any(cens):
+        u = rng.random(shape)
+        r = np.where(cens, lo + u * (hi - lo), r)
+    return np.maximum(r, 0.0)
 
 
 def _rate_range(point, lo, hi):
