@@ -1,0 +1,423 @@
+r"""Probability of reaching MRT and of a leak: the distribution of a zone's remaining life.
+
+Our own model (it is not API RP 581's damage-factor tables): the zone's remaining life is
+the time until its thinnest point, scanned or not, reaches MRT,
+
+.. math:: L = \min\Bigl(\min_{i \in \mathrm{scanned}} \frac{t_i - \mathrm{MRT}_i}{r_i},\;
+          \frac{t_\mathrm{nom} - D - \mathrm{MRT}}{r_D}\Bigr),
+
+and the time to a leak is the same with MRT = 0.  Every quantity on the right is uncertain
+and is drawn by a seeded, vectorised Monte Carlo:
+
+* **thickness** of a scanned, measured cell: :math:`t_i \sim N(t_i^\mathrm{meas}, \sigma_t^2)`, with
+  :math:`\sigma_t` the method's reading sigma (a per-cell array may carry the prove-up
+  scatter where there are prove-ups); the below-threshold (censored) cells as one with
+  the threshold taken as its loss (the most it can be), at a similar-depth rate (below);
+* **rate** of a scanned cell, each side: a split normal whose 5 % and 95 % points are the
+  cell's 90 % interval (``rate_*_lo``, ``rate_*_hi``: reading noise and the censoring of
+  the older scan), truncated at ±4 standard deviations and at 0; where the point is the
+  top of its interval (a cell crossed below the older threshold: the older loss is unknown
+  below it) the rate is uniform over the interval instead;
+* **deepest loss of the unscanned part**: parameter sets of the zone's depth fit drawn by
+  parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
+  :math:`U \sim U(0, 1)`, T = hidden area / block area: the predictive distribution of the
+  deepest of T block maxima, not a plug-in return level;
+* **rate of a cell whose rate was assumed, not measured** (indications with no measured
+  rate): the same similar-depth rule as the unscanned part;
+* **rate there**: the rate of a scanned cell of the zone of similar depth (rule: the
+  measured cells are ranked by loss; the one drawn is uniform among the ``w`` cells nearest
+  in rank to D, ``w`` = max(5, 2 % of the cells); beyond the deepest measured cell, among
+  the ``w`` deepest), drawn from its own interval as above.
+
+Only cells that could be the zone's minimum enter the Monte Carlo: a cell whose shortest
+possible life (thickness −4σ, fastest rate of its truncated range) exceeds the longest
+possible life (thickness +4σ, slowest rate) of some other cell cannot be the minimum in any
+draw, so the pruning changes no draw's result.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["LifeDistribution", "zone_life_distribution", "life_distributions", "plot_life_curve",
+           "TRUNC_SD", "Z90"]
+
+#: Draws of thickness and rate are truncated at this many standard deviations (makes the
+#: pruning of cells exact). [-]
+TRUNC_SD = 4.0
+#: Standard normal quantile of 0.95: a two-sided 90 % interval is ±Z90 standard deviations. [-]
+Z90 = 1.6448536269514722
+
+
+@dataclass(frozen=True)
+class LifeDistribution:
+    """Monte Carlo draws of one zone's time to MRT and time to a leak.
+
+    Attributes
+    ----------
+    life_mrt, life_leak : (n_draws,) ndarray
+        Draws of the time from the newer inspection until the zone's thinnest point reaches
+        MRT, and zero thickness (0 when already there; inf when no point thins). [y]
+    n_cells, n_kept : int
+        Scanned cells of the zone, and those that could be its minimum (Monte Carlo). [-]
+    hidden_T : float
+        Unscanned area in blocks. [blocks]
+    p_hidden_governs : float
+        Fraction of draws in which the unscanned part reaches MRT first. [-]
+    reason : str
+        Empty when ok; otherwise why there is no estimate (the draws are NaN).
+    """
+
+    life_mrt: np.ndarray
+    life_leak: np.ndarray
+    n_cells: int = 0
+    n_kept: int = 0
+    hidden_T: float = 0.0
+    p_hidden_governs: float = float("nan")
+    reason: str = ""
+    notes: tuple = field(default=())
+
+    @property
+    def ok(self) -> bool:
+        return not self.reason
+
+    def quantiles(self, q=(0.05, 0.5, 0.95)) -> np.ndarray:
+        """Quantiles of the time to MRT. [y]"""
+        if not self.ok:
+            return np.full(len(q), np.nan)
+        return np.quantile(self.life_mrt, q, method="inverted_cdf")
+
+    def p_mrt(self, horizon) -> np.ndarray | float:
+        """P(some point of the zone is below MRT at ``horizon`` years after the newer
+        inspection). [-]"""
+        return self._p(self.life_mrt, horizon)
+
+    def p_leak(self, horizon) -> np.ndarray | float:
+        """P(some point of the zone is through-wall at ``horizon``). [-]"""
+        return self._p(self.life_leak, horizon)
+
+    def curve(self, years=None):
+        """(years, P(reach MRT by t), P(leak by t)) for a figure."""
+        years = np.linspace(0.0, 30.0, 121) if years is None else np.asarray(years, dtype=float)
+        return years, np.asarray(self.p_mrt(years)), np.asarray(self.p_leak(years))
+
+    def row(self, horizon=None) -> dict:
+        """The zones.csv columns: ``life_p05_y``, ``life_p50_y``, ``life_p95_y``,
+        ``p_mrt_at_due``, ``p_leak_at_due`` (the last two NaN without a horizon)."""
+        q = self.quantiles()
+        h = np.nan if horizon is None or not np.isfinite(horizon) else float(horizon)
+        return {"life_p05_y": float(q[0]), "life_p50_y": float(q[1]), "life_p95_y": float(q[2]),
+                "p_mrt_at_due": float(self.p_mrt(h)) if np.isfinite(h) else np.nan,
+                "p_leak_at_due": float(self.p_leak(h)) if np.isfinite(h) else np.nan}
+
+    def _p(self, draws, horizon):
+        if not self.ok:
+            return np.full(np.shape(horizon), np.nan) if np.ndim(horizon) else float("nan")
+        s = np.sort(draws)
+        p = np.searchsorted(s, np.asarray(horizon, dtype=float), side="right") / s.size
+        return p if np.ndim(horizon) else float(p)
+
+
+def _split_normal(rng, point, lo, hi, shape):
+    """Draws of a split normal with 5 %/95 % points ``lo``/``hi`` around ``point``,
+    truncated at ±TRUNC_SD and at 0."""
+    z = np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
+    sd_lo = np.maximum(point - lo, 0.0) / Z90
+    sd_hi = np.maximum(hi - point, 0.0) / Z90
+    r = point + np.where(z < 0, z * sd_lo, z * sd_hi)
+    # a point at the top of its interval is the censoring bound (older loss unknown below
+    # the older threshold), not a noisy estimate: uniform over the interval
+    cens = (point >= hi - 1e-9) & (lo < point - 1e-9)
+    if np.any(cens):
+        u = rng.random(shape)
+        r = np.where(cens, lo + u * (hi - lo), r)
+    return np.maximum(r, 0.0)
+
+
+def _rate_range(point, lo, hi):
+    """Smallest and largest rate a draw of :func:`_split_normal` can give."""
+    return (np.maximum(point - TRUNC_SD * np.maximum(point - lo, 0) / Z90, 0.0),
+            point + TRUNC_SD * np.maximum(hi - point, 0) / Z90)
+
+
+def _clean(point, lo, hi):
+    p = np.where(np.isfinite(point), np.maximum(point, 0.0), 0.0)
+    lo = np.where(np.isfinite(lo), np.minimum(lo, p), p)
+    hi = np.where(np.isfinite(hi), np.maximum(hi, p), p)
+    return p, lo, hi
+
+
+def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo,
+                           rate_under_hi, mrt, *, sigma_t, nominal, censored=None, threshold=None,
+                           measured=None, hidden_fit=None, hidden_T=0.0, hidden_n=None,
+                           hidden_threshold=None, n_draws=2000, seed=0) -> LifeDistribution:
+    r"""Distribution of one zone's time to MRT and to a leak (our own model, module notes).
+
+    Parameters
+    ----------
+    thickness : (n,) array_like
+        Measured remaining thickness of the zone's scanned cells. [mm]
+    rate_top, rate_under : (n,) array_like
+        Governing rates per side (NaN and negative count as 0). [mm/y]
+    rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : (n,) array_like
+        90 % interval of each rate (:class:`~scananalyse.rates.LossRates`). [mm/y]
+    mrt : float or (n,) array_like
+        Minimum remaining thickness (a scalar is used for the unscanned part; an array's
+        minimum there). [mm]
+    sigma_t : float or (n,) array_like
+        One-standard-deviation thickness uncertainty per cell (method sigma, or prove-up
+        scatter). [mm]
+    nominal : float
+        Nominal plate thickness. [mm]
+    censored : (n,) bool array_like, optional
+        Cells reported as nominal whose true loss lies below ``threshold``. [-]
+    threshold : float, optional
+        Detection threshold of the scan (loss). [mm]
+    measured : (n,) bool array_like, optional
+        Cells whose rates were measured (short- or long-term); the others (rates assumed
+        for indications with no measured rate) take the similar-depth rule of the unscanned
+        part instead of their assumed point.  None: all measured. [-]
+    hidden_fit : GumbelFit or GEVFit, optional
+        The zone's fit of block-maximum loss depth (:class:`~scananalyse.extremes.ZoneExtremes`
+        ``.fit``); None: the unscanned part is not modelled.
+    hidden_T : float
+        Unscanned area in blocks (zone area − scanned cells' area) / block area. [blocks]
+    hidden_n : int, optional
+        Blocks of the fit (``fit.n``) for the parametric bootstrap; None takes ``fit.n``. [-]
+    hidden_threshold : float, optional
+        Censoring threshold of the fit (``fit.threshold``). [mm]
+    n_draws : int
+        Monte Carlo draws. [-]
+    seed : int
+        Seed of :func:`numpy.random.default_rng`. [-]
+
+    Returns
+    -------
+    LifeDistribution
+
+    Notes
+    -----
+    For draw *k* the life of cell *i* is
+    :math:`L_{ik} = \max(0, (t_{ik} - \mathrm{MRT}_i) / (r^\mathrm{top}_{ik} + r^\mathrm{under}_{ik}))`,
+    the unscanned part's :math:`L_{Hk} = \max(0, (t_\mathrm{nom} - D_k - \mathrm{MRT}) / r_{Hk})`
+    with :math:`D_k = F^{-1}(U_k^{1/T}; \theta_k)`, :math:`\theta_k` a parametric-bootstrap
+    refit of the depth fit (Efron & Tibshirani [1]_; the law of the deepest of T blocks,
+    Shibata [2]_), and the zone's life :math:`\min(\min_i L_{ik}, L_{Hk})`.  Loss grows
+    linearly at the cell's rate (the co-located projection of domain §5).  A cell is kept
+    only if its shortest possible life (thickness at −4σ, fastest rate of its truncated
+    range) does not exceed :math:`\min_j` of the longest possible lives (for MRT, or for
+    zero thickness): the others cannot be the minimum in any draw.
+
+    References
+    ----------
+    .. [1] B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman &
+       Hall, 1993, ch. 6 (parametric bootstrap).
+    .. [2] T. Shibata, "Application of extreme value statistics to corrosion", J. Res. NIST
+       99 (1994) 327-336.
+    """
+    t = np.asarray(thickness, dtype=float).ravel()
+    n = t.size
+    if n_draws < 10:
+        raise InputError(f"zone_life_distribution: field 'n_draws' must be at least 10, got {n_draws}")
+    arrs = [np.broadcast_to(np.asarray(a, dtype=float).ravel() if np.ndim(a) else np.asarray(a, dtype=float), (n,))
+            for a in (rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi)]
+    mrt_a = np.broadcast_to(np.asarray(mrt, dtype=float).ravel() if np.ndim(mrt) else float(mrt), (n,))
+    sig = np.broadcast_to(np.asarray(sigma_t, dtype=float).ravel() if np.ndim(sigma_t) else float(sigma_t), (n,))
+    cens = np.zeros(n, bool) if censored is None else np.asarray(censored, bool).ravel()
+    ok = np.isfinite(t)
+    if not ok.any() and hidden_fit is None:
+        nan = np.full(n_draws, np.nan)
+        return LifeDistribution(nan, nan, reason="zone not scanned and no extreme-value fit")
+    t, mrt_a, sig, cens = t[ok], mrt_a[ok], sig[ok], cens[ok]
+    pt, lt, ht = _clean(arrs[0][ok], arrs[2][ok], arrs[3][ok])
+    pu, lu, hu = _clean(arrs[1][ok], arrs[4][ok], arrs[5][ok])
+    rng = np.random.default_rng(seed)
+    thr = float(threshold) if threshold else 0.0
+    cens = cens & (thr > 0)
+    unc = ~cens
+    meas = np.ones(n, bool) if measured is None else np.asarray(measured, bool).ravel()[ok]
+    # reference cells of the similar-depth rate rule: the measured, uncensored cells
+    ref = unc & meas
+    ref = ref if ref.any() else (unc if unc.any() else np.ones_like(unc))
+    ref_depth = nominal - t[ref]
+    ref_rates = tuple(a[ref] for a in (pt, lt, ht, pu, lu, hu))
+    if not meas.all():  # assumed rates: replaced by draws of the rule (range for pruning below)
+        am = ~meas
+        rmax = float(np.max(_rate_range(*ref_rates[:3])[1] + _rate_range(*ref_rates[3:])[1]))
+        pt, lt, ht, pu, lu, hu = (np.where(am, v, a) for a, v in zip((pt, lt, ht, pu, lu, hu),
+                                                                     (0.0, 0.0, 0.0, 0.0, 0.0, rmax)))
+    # the range each measured cell's thickness and rate can take in a draw
+    t_lo, t_hi = t - TRUNC_SD * sig, t + TRUNC_SD * sig
+    rt_min, rt_max = _rate_range(pt, lt, ht)
+    ru_min, ru_max = _rate_range(pu, lu, hu)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pess = np.where(unc, _life(t_lo - mrt_a, rt_max + ru_max), np.inf)
+        opt = np.where(unc, _life(t_hi - mrt_a, rt_min + ru_min), np.inf)
+        pess0 = np.where(unc, _life(t_lo, rt_max + ru_max), np.inf)
+        opt0 = np.where(unc, _life(t_hi, rt_min + ru_min), np.inf)
+    # cell i can be the minimum only if its shortest possible life is not above the
+    # longest possible life of the cell that is surely shortest
+    keep = unc & (pess <= (opt.min() if opt.size else np.inf))
+    keep |= unc & (pess0 <= (opt0.min() if opt0.size else np.inf))  # the leak's candidates too
+    idx = np.flatnonzero(keep)
+    life_mrt = np.full(n_draws, np.inf)
+    life_leak = np.full(n_draws, np.inf)
+    for c0 in range(0, idx.size, 256):  # bands of cells: bounded memory
+        ii = idx[c0:c0 + 256]
+        shape = (n_draws, ii.size)
+        tk = t[ii] + sig[ii] * np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
+        rk = _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
+        a_ii = np.flatnonzero(~meas[ii])
+        if a_ii.size:
+            d_a = np.broadcast_to(nominal - t[ii][a_ii], (n_draws, a_ii.size)).ravel()
+            rk[:, a_ii] = _hidden_rate(rng, d_a, ref_depth, *ref_rates).reshape(n_draws, a_ii.size)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            life_mrt = np.minimum(life_mrt, _life(tk - mrt_a[ii], rk).min(axis=1))
+            life_leak = np.minimum(life_leak, _life(tk, rk).min(axis=1))
+    m_h = float(np.min(mrt_a)) if mrt_a.size else float(np.min(mrt))
+    if cens.any():
+        # the below-threshold part: its deepest loss is at most the threshold; taken at the
+        # threshold, growing at the rate of a measured cell of similar depth
+        r_c = _hidden_rate(rng, np.full(n_draws, thr), ref_depth, *ref_rates)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            life_mrt = np.minimum(life_mrt, _life(nominal - thr - m_h, r_c))
+            life_leak = np.minimum(life_leak, _life(nominal - thr, r_c))
+    notes = []
+    p_hidden = 0.0
+    T = float(hidden_T)
+    if hidden_fit is not None and T > 0:
+        d = _hidden_depth(hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
+        r_h = _hidden_rate(rng, d, ref_depth, *ref_rates)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            h_mrt = _life(nominal - d - m_h, r_h)
+            h_leak = _life(nominal - d, r_h)
+        p_hidden = float(np.mean(h_mrt < life_mrt))
+        life_mrt = np.minimum(life_mrt, h_mrt)
+        life_leak = np.minimum(life_leak, h_leak)
+    elif T > 0:
+        notes.append("unscanned part not modelled (no extreme-value fit)")
+    return LifeDistribution(life_mrt, life_leak, n_cells=int(n), n_kept=int(idx.size), hidden_T=T,
+                            p_hidden_governs=p_hidden, notes=tuple(notes))
+
+
+def _life(margin, rate):
+    """max(0, margin / rate); inf where the rate is 0 and margin > 0."""
+    life = np.where(margin <= 0, 0.0, margin / rate)
+    return np.where(np.isnan(life), np.inf, life)
+
+
+def _hidden_depth(fit, T, n_draws, rng, n_fit=None, thr=None):
+    """Predictive draws of the deepest loss over T blocks: bootstrap parameters, then
+    :math:`F^{-1}(U^{1/T})`."""
+    from .extremes import _bootstrap_params
+
+    n_fit = int(n_fit or fit.n)
+    thr = fit.threshold if thr is None else thr
+    n_boot = n_draws if fit.distribution == "gumbel" else min(n_draws, 100)  # GEV refits are not vectorised
+    loc, scale, shape, _ = _bootstrap_params(fit, n_fit, thr, n_boot=n_boot, seed=int(rng.integers(2**31)))
+    if loc.size == 0:  # every refit failed: the fit itself (parameter uncertainty not carried)
+        loc, scale, shape = np.array([fit.loc]), np.array([fit.scale]), np.array([fit.shape])
+    j = rng.integers(0, loc.size, n_draws)
+    u = rng.random(n_draws) ** (1.0 / T)
+    y = -np.log(u)  # GEV quantile, vectorised over the parameter sets (Coles 2001, eq. 3.4)
+    xi = shape[j]
+    small = np.abs(xi) < 1e-9
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d = loc[j] + scale[j] * np.where(small, -np.log(y), (y ** -np.where(small, 1.0, xi) - 1.0)
+                                         / np.where(small, 1.0, xi))
+    return np.maximum(np.asarray(d, dtype=float), 0.0)
+
+
+def _hidden_rate(rng, d, depth_meas, pt, lt, ht, pu, lu, hu):
+    """Rate of the hidden deepest loss: a measured cell of similar depth (module notes)."""
+    n = depth_meas.size
+    if n == 0:
+        return np.zeros_like(d)
+    order = np.argsort(depth_meas, kind="stable")
+    ds = depth_meas[order]
+    w = max(5, int(0.02 * n))
+    pos = np.clip(np.searchsorted(ds, d), 0, n - 1)
+    start = np.clip(pos - w // 2, 0, max(n - w, 0))
+    pick = order[np.minimum(start + rng.integers(0, min(w, n), d.size), n - 1)]
+    return (_split_normal(rng, pt[pick], lt[pick], ht[pick], d.shape)
+            + _split_normal(rng, pu[pick], lu[pick], hu[pick], d.shape))
+
+
+def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,
+                       n_draws=2000, seed=0) -> dict:
+    """:func:`zone_life_distribution` for every zone of a floor.
+
+    Parameters
+    ----------
+    thickness : (M, N) ndarray
+        Newer scan's thickness, NaN where unscanned (``Analysis.new.thickness``). [mm]
+    rates : :class:`~scananalyse.rates.LossRates`
+        ``Analysis.rates`` (``censored``, ``threshold``, rates and their intervals).
+    zmap : :class:`~scananalyse.zones.ZoneMap`
+        ``Analysis.zones``.
+    mrt_map : (M, N) ndarray
+        ``Analysis.mrt_map``. [mm]
+    extremes_depth : dict
+        ``Analysis.extremes_depth`` (zone -> ZoneExtremes with ``.fit``, ``.block_mm``).
+    nominal : float
+        Nominal thickness. [mm]
+    sigma_t : float or (M, N) ndarray
+        Thickness sigma (``rates.sigma_new``; a map may carry prove-up scatter). [mm]
+    pitch : float
+        Cell size. [mm]
+    n_draws, seed : int
+        Monte Carlo draws and seed. [-]
+
+    Returns
+    -------
+    dict
+        Zone name -> :class:`LifeDistribution`.
+    """
+    out = {}
+    sig_map = np.ndim(sigma_t) > 0
+    for k, name in enumerate(zmap.names):
+        mask = zmap.labels == k
+        area = float(zmap.areas_mm2[k])
+        sel = mask & np.isfinite(thickness)
+        ze = extremes_depth.get(name)
+        fit = ze.fit if ze else None
+        hidden_mm2 = max(0.0, area - np.count_nonzero(sel) * pitch * pitch)
+        block = ze.block_mm if (ze and np.isfinite(ze.block_mm)) else np.nan
+        T = hidden_mm2 / block ** 2 if fit is not None and np.isfinite(block) else 0.0
+        cens = rates.censored[sel] if rates.censored is not None else None
+        # measured: the point is not above both sides' measured (short/long-term) rates
+        meas = np.ones(int(sel.sum()), bool)
+        for pnt, sh, lg in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top),
+                            (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
+            m = np.fmax(sh[sel], lg[sel])
+            meas &= ~(np.nan_to_num(pnt[sel]) > np.nan_to_num(m) + 1e-6)
+        out[name] = zone_life_distribution(
+            thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
+            rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel], mrt_map[sel],
+            sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens, measured=meas,
+            threshold=rates.threshold, hidden_fit=fit, hidden_T=T, n_draws=n_draws, seed=seed + k)
+    return out
+
+
+def plot_life_curve(dist: LifeDistribution, *, years=None, due_y=None, ax=None, label=None):
+    """P(reach MRT by t) and P(leak by t) of one zone; returns the figure."""
+    import matplotlib.pyplot as plt
+
+    if ax is None:
+        fig, ax = plt.subplots(figsize=(6, 4))
+    else:
+        fig = ax.figure
+    y, pm, pl = dist.curve(years)
+    ax.plot(y, pm, label=f"{label + ': ' if label else ''}reach MRT")
+    ax.plot(y, pl, "--", label=f"{label + ': ' if label else ''}leak")
+    if due_y is not None and np.isfinite(due_y):
+        ax.axvline(due_y, color="grey", lw=0.8)
+    ax.set_xlabel("years after the newer inspection")
+    ax.set_ylabel("probability")
+    ax.set_ylim(0, 1)
+    ax.legend()
+    return fig

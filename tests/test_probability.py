@@ -1,0 +1,114 @@
+"""Tests of scananalyse.probability (zone life distribution: P(reach MRT), P(leak))."""
+
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from scananalyse.errors import InputError
+from scananalyse.extremes import GumbelFit
+from scananalyse.probability import LifeDistribution, plot_life_curve, zone_life_distribution
+
+Z90 = 1.6448536269514722
+
+
+def _one(t, r, half, **kw):
+    """Arrays of one side with a symmetric 90 % interval of half-width ``half``."""
+    t = np.atleast_1d(np.asarray(t, float))
+    r = np.broadcast_to(np.asarray(r, float), t.shape)
+    z = np.zeros_like(t)
+    return zone_life_distribution(t, r, z, r - half, r + half, z, z, kw.pop("mrt", 2.54), **kw)
+
+
+def test_single_cell_exact_without_noise():
+    # No noise: life = (t - MRT) / r exactly, every draw.
+    d = _one(5.0, 0.1, 0.0, sigma_t=0.0, nominal=6.35)
+    assert np.allclose(d.life_mrt, (5.0 - 2.54) / 0.1)
+    assert np.allclose(d.life_leak, 5.0 / 0.1)
+    assert d.p_mrt(24.0) == 0.0 and d.p_mrt(25.0) == 1.0
+
+
+def test_single_cell_thickness_noise_matches_normal():
+    # Exact reference: with a fixed rate r, L = (t - MRT)/r with t ~ N(t0, s^2) (truncated
+    # at 4 s, negligible at these quantiles): P(L <= h) = Phi((MRT + r h - t0)/s).
+    from scipy.stats import norm
+    d = _one(4.0, 0.1, 0.0, sigma_t=0.2, nominal=6.35, n_draws=20000, seed=1)
+    for h in (12.0, 14.6, 17.0):
+        assert d.p_mrt(h) == pytest.approx(norm.cdf((2.54 + 0.1 * h - 4.0) / 0.2), abs=0.01)
+
+
+def test_rate_interval_is_90_percent():
+    # The rate's 90 % interval maps to the life's 90 % interval (one cell, no thickness noise).
+    d = _one(5.0, 0.1, 0.04, sigma_t=0.0, nominal=6.35, n_draws=20000, seed=2)
+    q = d.quantiles((0.05, 0.95))
+    assert q[0] == pytest.approx(2.46 / 0.14, rel=0.02)
+    assert q[1] == pytest.approx(2.46 / 0.06, rel=0.02)
+
+
+def test_pruning_changes_nothing():
+    # Far-away cells (thick and slow) cannot be the minimum: same draws as the one candidate.
+    t = np.r_[3.0, np.full(5000, 6.3)]
+    r = np.r_[0.2, np.full(5000, 0.01)]
+    d = _one(t, r, 0.02, sigma_t=0.1, nominal=6.35, seed=3)
+    d1 = _one(t[:1], r[:1], 0.02, sigma_t=0.1, nominal=6.35, seed=3)
+    assert d.n_kept == 1 and d.n_cells == 5001
+    assert np.array_equal(d.life_mrt, d1.life_mrt)
+
+
+def test_hidden_part_shortens_life_and_is_predictive():
+    # A Gumbel of deep block maxima over a large unscanned area governs the zone.
+    t = np.full(200, 6.0)
+    r = np.full(200, 0.05)
+    fit = GumbelFit(loc=2.0, scale=0.3, method="mle", loglik=0.0, n=30)
+    base = _one(t, r, 0.01, sigma_t=0.1, nominal=6.35, seed=4)
+    d = _one(t, r, 0.01, sigma_t=0.1, nominal=6.35, seed=4, hidden_fit=fit, hidden_T=50.0)
+    assert d.p_hidden_governs > 0.5
+    assert d.quantiles()[1] < base.quantiles()[1]
+
+
+def test_already_below_mrt_and_leak_monotone():
+    d = _one([2.0, 5.0], [0.1, 0.1], 0.02, sigma_t=0.05, nominal=6.35)
+    assert d.p_mrt(0.0) == 1.0
+    y, pm, pl = d.curve(np.linspace(0, 60, 61))
+    assert np.all(np.diff(pm) >= 0) and np.all(np.diff(pl) >= 0) and np.all(pl <= pm)
+    row = d.row(10.0)
+    assert set(row) == {"life_p05_y", "life_p50_y", "life_p95_y", "p_mrt_at_due", "p_leak_at_due"}
+
+
+def test_not_scanned_without_fit_is_nan():
+    d = _one(np.array([np.nan]), 0.1, 0.0, sigma_t=0.1, nominal=6.35)
+    assert not d.ok and np.isnan(d.quantiles()).all() and np.isnan(d.p_mrt(5.0))
+
+
+def test_bad_draws_refused():
+    with pytest.raises(InputError, match="n_draws"):
+        _one(5.0, 0.1, 0.0, sigma_t=0.1, nominal=6.35, n_draws=3)
+
+
+def test_plot_returns_figure():
+    import matplotlib
+    matplotlib.use("Agg")
+    d = _one(5.0, 0.1, 0.02, sigma_t=0.1, nominal=6.35)
+    fig = plot_life_curve(d, due_y=10.0)
+    assert fig.axes
+    import matplotlib.pyplot as plt
+    plt.close(fig)
+
+
+@pytest.mark.slow
+def test_calibration_fast_subset():
+    # Synthetic floors with known truth (bench/bench_calibration.py, other seeds than the
+    # bench's 100...): the true zone time to MRT falls inside [p05, p95] of about 90 % of
+    # the zones.  8 floors (2 per case): the tolerance allows 2 misses of 8 (a binomial
+    # with p = 0.9 gives >= 6 of 8 with probability 0.96).
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
+    import bench_calibration as bc
+
+    rows = []
+    for i, seed in enumerate(range(20, 28)):
+        method, hidden = bc.CASES[i % 4]
+        rows += bc.run_case(seed, method, hidden, n_draws=1000, max_pit_rate=bc.PIT_RATES[i // 4 % 2])
+    inside = [r["p05"] <= r["truth"] <= r["p95"] for r in rows]
+    assert len(rows) >= 8
+    assert np.mean(inside) >= 0.75, [(r["seed"], r["truth"], r["p05"], r["p95"]) for r in rows]
