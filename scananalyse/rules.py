@@ -158,6 +158,10 @@ class RuleSet:
     repair_to_step_mm: RuleValue
     noise_k: RuleValue
     min_coverage_pct: RuleValue
+    #: Upper quantile of a group's two-inspection zone-maximum rates lent to its one-inspection tanks. [1]
+    similar_service_quantile: RuleValue = _rv(
+        0.9, "1", "memory", "API 653 Annex H / §4.4 similar service [memory; check the edition in force]",
+        "p90 of the group's measured rates (scananalyse choice); at least 3 tanks")
 
     # --- access ---------------------------------------------------------
     @classmethod
