@@ -418,7 +418,8 @@ def similar_service(rows: list[dict], group_cols, *, quantile: float | None = No
         if z.empty:
             continue
         own = {s: pd.to_numeric(z.get(f"rate_{s}_max_mm_y"), errors="coerce") for s in ("top", "under")}
-        rate = sum(own[s].where(own[s].notna(), 0.0) if math.isnan(ss[s]) else ss[s] for s in ("top", "under"))
+        rate = sum((own[s].fillna(0.0) if math.isnan(ss[s]) else pd.Series(ss[s], index=z.index))
+                   for s in ("top", "under"))
         margin = pd.to_numeric(z["t_min_mm"], errors="coerce") - pd.to_numeric(z["mrt_mm"], errors="coerce")
         life = (margin / rate).where(rate > 0, float("inf")).clip(lower=0)
         rec = pd.to_numeric(z["interval_recommended_y"], errors="coerce")
@@ -557,8 +558,9 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
     df = res["table"]
     bad = df[~df["status"].astype(str).str.startswith("ok")]
     if raise_on_failure and len(bad):
-        first = bad.iloc[0]
-        line = {e["tank"]: e["line"] for e in entries}.get(first["tank"], "?")
+        lines = {e["tank"]: e["line"] for e in entries}
+        first = min((r for _, r in bad.iterrows()), key=lambda r: lines.get(r["tank"], 0))  # manifest order
+        line = lines.get(first["tank"], "?")
         if not quiet:
             print(res["summary"])
         raise FleetFailed(f"{os.fspath(manifest)}:{line}: {len(bad)} of {len(df)} tanks failed (first: tank "

@@ -125,6 +125,8 @@ class RuleSet:
     noise_k : a change counts as growth when above ``noise_k`` times its standard
         deviation. [1]
     min_coverage_pct : zones scanned less than this are flagged ``low-coverage``. [%]
+    similar_service_quantile : upper quantile of a group's two-inspection zone-maximum rates
+        lent to its one-inspection tanks (fleet runs). [1]
     """
 
     name: str
