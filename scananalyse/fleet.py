@@ -1,11 +1,12 @@
 """Fleet runs: every tank of a terminal on a Dask cluster, ranked by urgency.
 
-Each tank's :func:`scananalyse.runner.compare` is one Dask task.  With no
+Each tank's :func:`scananalyse.runner.compare` (or, with one inspection,
+:func:`~scananalyse.runner.assess_single`) is one Dask task.  With no
 scheduler address a :class:`dask.distributed.LocalCluster` of ``workers``
 processes on loopback is started; with an address, an existing cluster is used
 (every worker must see the manifest's files at the same paths, see
-``docs/fleet.md``).  A tank that fails is one row with its error, never a failed
-fleet.  A rerun skips tanks whose complete results already exist unless
+``docs/fleet.md``).  A tank that fails is one row with its error; the other tanks
+run, every output is written, and the run then fails (:class:`FleetFailed`, exit 2).  A rerun skips tanks whose complete results already exist unless
 ``force``.
 
 The output folder is the fleet's own: it is created by the run (and marked with
