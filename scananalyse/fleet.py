@@ -274,13 +274,26 @@ def _row_from_zones(tank: str, zones: pd.DataFrame, report: str, repaired: pd.Da
 
 
 def _scan_tank_name(path) -> str:
-    """The tank name a scan file states (cheap header read where possible), or ''."""
+    """The tank name a scan file states, from its header alone (HDF5 root attribute
+    ``tank``, or the CSV ``# tank:`` line), or '' when it states none or cannot be read."""
     try:
-        from .io import read_scan
+        with open(path, "rb") as fh:
+            head = fh.read(65536)
+        if head.startswith(b"\x89HDF"):
+            import h5py
 
-        return str(read_scan(path).meta.tank or "")
+            with h5py.File(path, "r") as f:
+                v = f.attrs.get("tank", "")
+            return (v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)).strip()
+        for line in head.decode("utf-8", "replace").splitlines():
+            if not line.startswith("#"):
+                break
+            key, _, value = line[1:].partition(":")
+            if key.strip().lower() == "tank":
+                return value.strip()
     except Exception:
-        return ""
+        pass
+    return ""
 
 
 def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
@@ -308,7 +321,6 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
             rep = pd.read_csv(folder / "zones_repaired.csv") if (folder / "zones_repaired.csv").is_file() else None
             row = _row_from_zones(tank, zones, report, rep)
             row["status"] = "ok (kept)"
-            scan_tank = ""
         else:
             for key in ("old", "new"):
                 if entry.get(key):
@@ -323,14 +335,11 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
                 res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
             zones = res.zones
             row = _row_from_zones(tank, zones, report, res.zones_repaired)
-            scan_tank = res.tank or ""
-            if not single:
-                old_tank = _scan_tank_name(entry["old"])
-                if old_tank and old_tank.strip().lower() != tank.strip().lower():
-                    scan_tank = scan_tank if scan_tank.strip().lower() != tank.strip().lower() else old_tank
-        if scan_tank and scan_tank.strip().lower() != tank.strip().lower():
+        others = sorted({n for n in (_scan_tank_name(entry[k]) for k in ("old", "new") if entry.get(k))
+                         if n and n.lower() != tank.strip().lower()})
+        if others:  # the scans state another tank's name: the manifest row may point at the wrong files
             row["flags"] = ";".join(f for f in (row["flags"], "scan-names-other-tank") if f)
-            row["scan_tank"] = scan_tank
+            row["scan_tank"] = ";".join(others)
         row["_zones"] = zones.to_dict("list")
         row["_inspected"] = _inspected(folder)
     except InputError as exc:
