@@ -243,7 +243,7 @@ def plot_population(summary: dict, rates, names, *, title: str = "", ax=None):
     from matplotlib.figure import Figure
 
     if ax is None:
-        fig = Figure(figsize=(5.0, 3.2))
+        fig = Figure(figsize=(5.0, 3.4), layout="constrained")
         ax = fig.add_subplot(1, 1, 1)
     else:
         fig = ax.figure
