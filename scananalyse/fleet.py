@@ -198,6 +198,9 @@ def read_manifest(path) -> list[dict]:
         raise InputError(f"{name}:1: field '{dup[0]}': repeated column")
     idx = {h: i for i, h in enumerate(header)}
     group_cols = [h for h in header if h and h not in _MANIFEST_FIELDS]
+    for h in group_cols:
+        if h in FLEET_COLUMNS or h in ("scan_tank", "inspections") or h.startswith("_"):
+            raise InputError(f"{name}:1: field '{h}': a fleet.csv column; rename this group column")
     base = path.resolve().parent
     out, seen = [], {}
     for n, row in enumerate(rows[1:], start=2):
@@ -377,7 +380,7 @@ def rank_fleet(rows: list[dict]) -> pd.DataFrame:
         if c not in df:
             df[c] = pd.NA
     failed = ~df["status"].astype(str).str.startswith("ok")
-    due = pd.to_datetime(df["next_due"].where(df["next_due"].astype(str).str.len() > 0), errors="coerce")
+    due = pd.to_datetime(df["next_due"].astype(str), format="%Y-%m-%d", errors="coerce")
     pleak = pd.to_numeric(df["p_leak_at_due"], errors="coerce").fillna(-1.0)
     interval = pd.to_numeric(df["interval_recommended_y"], errors="coerce").fillna(float("inf"))
     df = df.assign(_f=~failed, _d=due, _p=-pleak, _i=interval, _b=~df["below_mrt"].fillna(False).astype(bool),

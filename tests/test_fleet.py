@@ -156,6 +156,9 @@ def test_manifest_absolute_and_sibling_paths_accepted(tmp_path):
     m.write_text("tank,old,new,diameter,cp\nA,,../scans/b.h5,3000,sometimes\n")
     with pytest.raises(InputError, match=r"m\.csv:2: field 'cp': expected yes or no"):
         read_manifest(m)
+    m.write_text("tank,old,new,diameter,status\nA,,../scans/b.h5,3000,x\n")
+    with pytest.raises(InputError, match=r"m\.csv:1: field 'status': a fleet\.csv column"):
+        read_manifest(m)
 
 
 def test_manifest_fifo_row_refused(tmp_path):
