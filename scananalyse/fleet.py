@@ -1,11 +1,12 @@
 """Fleet runs: every tank of a terminal on a Dask cluster, ranked by urgency.
 
-Each tank's :func:`scananalyse.runner.compare` is one Dask task.  With no
+Each tank's :func:`scananalyse.runner.compare` (or, with one inspection,
+:func:`~scananalyse.runner.assess_single`) is one Dask task.  With no
 scheduler address a :class:`dask.distributed.LocalCluster` of ``workers``
 processes on loopback is started; with an address, an existing cluster is used
 (every worker must see the manifest's files at the same paths, see
-``docs/fleet.md``).  A tank that fails is one row with its error, never a failed
-fleet.  A rerun skips tanks whose complete results already exist unless
+``docs/fleet.md``).  A tank that fails is one row with its error; the other tanks
+run, every output is written, and the run then fails (:class:`FleetFailed`, exit 2).  A rerun skips tanks whose complete results already exist unless
 ``force``.
 
 The output folder is the fleet's own: it is created by the run (and marked with
@@ -18,8 +19,12 @@ the marker).  Each tank's folder is published like any output folder
 earlier output of the tool.
 
 Manifest: CSV with columns ``tank,old,new,diameter`` (diameter in the scans'
-units); optional column ``job`` (a TOML job file).  Paths are relative to the
-manifest and may not escape its folder.
+units); optional column ``job`` (a TOML job file); any other column (``service``,
+``cp``, ``coating``, ``foundation``, ``heated``, ...) is a group label of the
+population (:mod:`scananalyse.population`).  An empty ``old`` is one inspection
+(:func:`scananalyse.runner.assess_single`).  Paths are absolute or relative to the
+manifest (``../scans/a.h5`` allowed); a path that is a FIFO, device or socket is refused
+naming the row, since opening it could block the run.
 """
 
 from __future__ import annotations
@@ -40,9 +45,10 @@ import pandas as pd
 from . import CAUTION, __version__
 from .errors import InputError
 from .job import resolve_path
+from .population import MIN_TANKS_FIT
 
 __all__ = ["read_manifest", "run_tank", "run_fleet", "rank_fleet", "FLEET_COLUMNS", "FLEET_MARKER",
-           "claim_fleet_folder", "tank_folders"]
+           "claim_fleet_folder", "tank_folders", "similar_service", "FleetFailed", "ORDER_RULE"]
 
 #: Marker file of a fleet output folder (hidden), written when the run creates the folder;
 #: its first line is :data:`FLEET_SIGNATURE`.
@@ -52,9 +58,19 @@ FLEET_SIGNATURE = "scananalyse fleet output folder"
 _FLEET_FILES = ("fleet.csv", "fleet.html", "population.csv", FLEET_MARKER)
 
 FLEET_COLUMNS = [
-    "rank", "tank", "status", "interval_recommended_y", "worst_zone", "next_due", "limiting", "flags",
+    "rank", "tank", "status", "inspections", "interval_recommended_y", "interval_repaired_y", "worst_zone",
+    "next_due", "limiting", "p_leak_at_due", "rate_top_max_mm_y", "rate_under_max_mm_y",
+    "similar_service_top_mm_y", "similar_service_under_mm_y", "similar_service", "flags",
     "below_mrt", "code_exceeds_local", "report", "error", "seconds",
 ]
+#: Manifest columns that are not group labels.
+_MANIFEST_FIELDS = ("tank", "old", "new", "diameter", "job")
+#: Words accepted in the ``cp`` column (case ignored) and their label.
+_YES_NO = {"yes": "yes", "y": "yes", "true": "yes", "1": "yes", "no": "no", "n": "no", "false": "no", "0": "no"}
+#: The order rule of ``fleet.csv``, as the page states it.
+ORDER_RULE = ("Failed tanks first (they need attention before anything can be said); then the earliest next due "
+              "date; then the greater probability of a leak at that date (p_leak_at_due, where computed); then "
+              "the shorter recommended interval, below-MRT and code-exceeds-local flags, and the tank name.")
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 #: Largest manifest read. [bytes]
 _MAX_MANIFEST_BYTES = 16 << 20
@@ -133,8 +149,27 @@ def claim_fleet_folder(out_dir, *, force: bool = False):
     return out, lock
 
 
+def _refuse_special(path: str, what: str) -> None:
+    """Refuse a path that exists and is a FIFO, device or socket (opening it could block the
+    run); a missing file or a folder is left to the tank's own run, which names it."""
+    import stat
+
+    try:
+        st = os.stat(path)
+    except OSError:
+        return
+    if not (stat.S_ISREG(st.st_mode) or stat.S_ISDIR(st.st_mode)):
+        raise InputError(f"{what}: {path!r} is not a regular file (a FIFO, device or socket); refused")
+
+
 def read_manifest(path) -> list[dict]:
-    """Read and check a fleet manifest; returns one dict per tank with absolute paths."""
+    """Read and check a fleet manifest.
+
+    Returns one dict per tank: ``tank``, ``diameter``, ``line`` (manifest line), ``old``
+    (absolute path, or None for one inspection), ``new``, ``job`` (or None) and ``groups``
+    (group column -> label).  Raises :class:`InputError` naming the manifest and the
+    line for a malformed row or a path that is a FIFO, device or socket.
+    """
     from .io.validate import check_regular_file
 
     path = Path(path)
@@ -158,7 +193,14 @@ def read_manifest(path) -> list[dict]:
     for col in ("tank", "old", "new", "diameter"):
         if col not in header:
             raise InputError(f"{name}:1: field '{col}': missing column")
+    dup = sorted({h for h in header if header.count(h) > 1})
+    if dup:
+        raise InputError(f"{name}:1: field '{dup[0]}': repeated column")
     idx = {h: i for i, h in enumerate(header)}
+    group_cols = [h for h in header if h and h not in _MANIFEST_FIELDS]
+    for h in group_cols:
+        if h in FLEET_COLUMNS or h in ("scan_tank", "inspections") or h.startswith("_"):
+            raise InputError(f"{name}:1: field '{h}': a fleet.csv column; rename this group column")
     base = path.resolve().parent
     out, seen = [], {}
     for n, row in enumerate(rows[1:], start=2):
@@ -179,18 +221,37 @@ def read_manifest(path) -> list[dict]:
         if not (math.isfinite(diameter) and diameter > 0):
             raise InputError(f"{name}:{n}: field 'diameter': must be positive, got {diameter}")
         entry = {"tank": tank, "diameter": diameter, "line": n}
-        for col in ("old", "new"):
-            entry[col] = resolve_path(row[idx[col]].strip(), base, allow_absolute=False,
-                                      what=f"{name}:{n}: field '{col}'")
-        job = row[idx["job"]].strip() if "job" in idx else ""
-        entry["job"] = resolve_path(job, base, allow_absolute=False, what=f"{name}:{n}: field 'job'") if job else None
+        for col in ("old", "new", "job"):
+            value = row[idx[col]].strip() if col in idx else ""
+            if not value:
+                if col == "new":
+                    raise InputError(f"{name}:{n}: field 'new': empty; the newer scan is required")
+                entry[col] = None
+                continue
+            what = f"{name}:{n}: field '{col}'"
+            entry[col] = resolve_path(value, base, allow_absolute=True, what=what)
+            _refuse_special(entry[col], what)
+        groups = {}
+        for col in group_cols:
+            v = row[idx[col]].strip()
+            if col == "cp" and v:
+                if v.lower() not in _YES_NO:
+                    raise InputError(f"{name}:{n}: field 'cp': expected yes or no, got {v!r}")
+                v = _YES_NO[v.lower()]
+            groups[col] = v
+        entry["groups"] = groups
         out.append(entry)
     if not out:
         raise InputError(f"{name}:2: manifest lists no tanks")
     return out
 
 
-def _row_from_zones(tank: str, zones: pd.DataFrame, report: str) -> dict:
+def _zone_max(z: pd.DataFrame, col: str) -> float:
+    v = pd.to_numeric(z[col], errors="coerce") if col in z else pd.Series(dtype=float)
+    return float(v.max()) if v.notna().any() else float("nan")
+
+
+def _row_from_zones(tank: str, zones: pd.DataFrame, report: str, repaired: pd.DataFrame | None = None) -> dict:
     z = zones.copy()
     rec = pd.to_numeric(z["interval_recommended_y"], errors="coerce")
     flags = ";".join(sorted({f for s in z["flags"].fillna("") for f in str(s).split(";") if f}))
@@ -198,118 +259,326 @@ def _row_from_zones(tank: str, zones: pd.DataFrame, report: str) -> dict:
         i = rec.idxmin()
         worst = z.loc[i]
         interval, zone, due, lim = float(rec[i]), str(worst["zone"]), str(worst["next_due"]), str(worst["limiting"])
+        pleak = float(pd.to_numeric(pd.Series([worst.get("p_leak_at_due")]), errors="coerce")[0])
     else:
-        interval, zone, due, lim = float("nan"), "", "", ""
+        interval, zone, due, lim, pleak = float("nan"), "", "", "", float("nan")
+    rep = float("nan")
+    if repaired is not None and "interval_recommended_y" in repaired:
+        r = pd.to_numeric(repaired["interval_recommended_y"], errors="coerce")
+        rep = float(r.min()) if r.notna().any() else float("nan")
     return {
-        "tank": tank, "status": "ok", "interval_recommended_y": interval, "worst_zone": zone, "next_due": due,
-        "limiting": lim, "flags": flags, "below_mrt": "below-mrt" in flags,
-        "code_exceeds_local": "code-exceeds-local" in flags, "report": report, "error": "",
+        "tank": tank, "status": "ok", "interval_recommended_y": interval, "interval_repaired_y": rep,
+        "worst_zone": zone, "next_due": "" if due == "nan" else due, "limiting": "" if lim == "nan" else lim,
+        "p_leak_at_due": pleak, "rate_top_max_mm_y": _zone_max(z, "rate_top_max_mm_y"),
+        "rate_under_max_mm_y": _zone_max(z, "rate_under_max_mm_y"), "flags": flags,
+        "below_mrt": "below-mrt" in flags, "code_exceeds_local": "code-exceeds-local" in flags,
+        "report": report, "error": "",
     }
 
 
+def _scan_tank_name(path) -> str:
+    """The tank name a scan file states, from its header alone (HDF5 root attribute
+    ``tank``, or the CSV ``# tank:`` line), or '' when it states none or cannot be read."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(65536)
+        if head.startswith(b"\x89HDF"):
+            import h5py
+
+            with h5py.File(path, "r") as f:
+                v = f.attrs.get("tank", "")
+            return (v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)).strip()
+        for line in head.decode("utf-8", "replace").splitlines():
+            if not line.startswith("#"):
+                break
+            key, _, value = line[1:].partition(":")
+            if key.strip().lower() == "tank":
+                return value.strip()
+    except Exception:
+        pass
+    return ""
+
+
 def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
-    """Run one tank's compare into ``out_root/<folder>``; never raises for bad input.
+    """Run one tank's compare (or, with no ``old``, its one-inspection assessment) into
+    ``out_root/<folder>``; never raises for bad input.
 
     ``entry["folder"]`` names the tank's folder (:func:`tank_folders`; default the safe
-    tank name).  Returns a fleet row (dict).  Bad input gives a row with status ``error``
+    tank name).  Returns a fleet row (dict) carrying the tank's zones table (key
+    ``_zones``) for the similar-service step.  Bad input gives a row with status ``error``
     and the one-line message; an internal fault gives status ``fault``.
     """
+    from .io.validate import check_regular_file
     from .job import SCAN_UNITS, Job, read_job
     from .outputs import is_complete_output
-    from .runner import compare
+    from .runner import assess_single, compare
 
     t0 = time.perf_counter()
     tank = entry["tank"]
     folder = Path(out_root) / (entry.get("folder") or _safe_name(tank))
     report = os.path.join(folder.name, "report.html")
+    single = not entry.get("old")
     try:
         if is_complete_output(folder) and not force:
             zones = pd.read_csv(folder / "zones.csv")
-            row = _row_from_zones(tank, zones, report)
+            rep = pd.read_csv(folder / "zones_repaired.csv") if (folder / "zones_repaired.csv").is_file() else None
+            row = _row_from_zones(tank, zones, report, rep)
             row["status"] = "ok (kept)"
         else:
+            for key in ("old", "new"):
+                if entry.get(key):
+                    check_regular_file(entry[key], "scan file")  # 'is a folder', 'no such file', FIFO
             job = read_job(entry["job"]) if entry.get("job") else Job()
             # the manifest's diameter is in the scans' units, whatever units the job file states
             job = job.with_lengths(units=SCAN_UNITS, diameter=entry["diameter"],
                                    where={"diameter": f"{entry.get('tank')}: field 'diameter'"})
-            res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
-            row = _row_from_zones(tank, res.zones, report)
+            if single:
+                res = assess_single(entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
+            else:
+                res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
+            zones = res.zones
+            row = _row_from_zones(tank, zones, report, res.zones_repaired)
+        others = sorted({n for n in (_scan_tank_name(entry[k]) for k in ("old", "new") if entry.get(k))
+                         if n and n.lower() != tank.strip().lower()})
+        if others:  # the scans state another tank's name: the manifest row may point at the wrong files
+            row["flags"] = ";".join(f for f in (row["flags"], "scan-names-other-tank") if f)
+            row["scan_tank"] = ";".join(others)
+        row["_zones"] = zones.to_dict("list")
+        row["_inspected"] = _inspected(folder)
     except InputError as exc:
         row = {"tank": tank, "status": "error", "error": str(exc), "report": ""}
     except Exception as exc:  # one tank's fault must not fail the fleet
         row = {"tank": tank, "status": "fault", "error": f"{type(exc).__name__}: {exc}", "report": ""}
+    row["inspections"] = 1 if single else 2
+    row.update(entry.get("groups") or {})
     row["seconds"] = round(time.perf_counter() - t0, 2)
     return row
 
 
+def _inspected(folder: Path) -> str:
+    """The newer inspection's date (ISO) from the tank's results.h5, or ''."""
+    try:
+        import h5py
+
+        with h5py.File(folder / "results.h5", "r") as f:
+            v = f.attrs.get("inspected_new", "")
+        return v.decode() if isinstance(v, bytes) else str(v)
+    except Exception:
+        return ""
+
+
 def rank_fleet(rows: list[dict]) -> pd.DataFrame:
-    """Most urgent first: shortest recommended interval, then below-MRT and code-exceeds-local
-    flags; failed tanks (which need attention before anything can be said) go first."""
-    df = pd.DataFrame(rows)
+    """Order the fleet, most urgent first (:data:`ORDER_RULE`).
+
+    Failed tanks first; then the earliest ``next_due``; then the greater ``p_leak_at_due``
+    where that column exists; then the shorter recommended interval, below-MRT and
+    code-exceeds-local flags, and the tank name.  Group columns and any other keys are
+    kept after :data:`FLEET_COLUMNS`; keys starting with ``_`` are dropped.
+    """
+    df = pd.DataFrame([{k: v for k, v in r.items() if not str(k).startswith("_")} for r in rows])
     for c in FLEET_COLUMNS:
         if c not in df:
             df[c] = pd.NA
     failed = ~df["status"].astype(str).str.startswith("ok")
+    due = pd.to_datetime(df["next_due"].astype(str), format="%Y-%m-%d", errors="coerce")
+    pleak = pd.to_numeric(df["p_leak_at_due"], errors="coerce").fillna(-1.0)
     interval = pd.to_numeric(df["interval_recommended_y"], errors="coerce").fillna(float("inf"))
-    df = df.assign(_f=~failed, _i=interval, _b=~df["below_mrt"].fillna(False).astype(bool),
+    df = df.assign(_f=~failed, _d=due, _p=-pleak, _i=interval, _b=~df["below_mrt"].fillna(False).astype(bool),
                    _c=~df["code_exceeds_local"].fillna(False).astype(bool))
-    df = df.sort_values(["_f", "_i", "_b", "_c", "tank"], kind="stable").drop(columns=["_f", "_i", "_b", "_c"])
+    df = df.sort_values(["_f", "_d", "_p", "_i", "_b", "_c", "tank"], kind="stable", na_position="last")
+    df = df.drop(columns=["_f", "_d", "_p", "_i", "_b", "_c"])
     df["rank"] = range(1, len(df) + 1)
-    return df[FLEET_COLUMNS].reset_index(drop=True)
+    extra = [c for c in df.columns if c not in FLEET_COLUMNS]
+    return df[FLEET_COLUMNS + extra].reset_index(drop=True)
 
 
-def _fleet_html(df: pd.DataFrame) -> str:
+def similar_service(rows: list[dict], group_cols, *, quantile: float | None = None) -> None:
+    """Give each one-inspection tank the similar-service rate of its group (in place).
+
+    The group is the tank's labels in every group column (the whole fleet when the
+    manifest has none).  Per side, the rate is the ``quantile`` (default the rule value
+    ``similar_service_quantile``, p90) of the zone-maximum rates of the group's assessed
+    two-inspection tanks, needing :data:`~scananalyse.population.MIN_TANKS_SIMILAR`.
+    Where it exists, each zone's interval becomes
+    min(recommended, (t_min − MRT) / (top rate + under rate)), the sides' similar-service
+    rates summed (a side without one keeps its own measured rate), rounded down to the
+    rule set's step and never below 0; the tank's row takes the least zone and says so.
+    """
+    from .assess import add_years
+    from .population import MIN_TANKS_SIMILAR, similar_service_rate
+    from .rules import RULESETS
+
+    rules = RULESETS["api653"]
+    q = quantile if quantile is not None else rules.v("similar_service_quantile")
+    key = lambda r: tuple(str(r.get(c, "") or "") for c in group_cols)  # noqa: E731
+    donors = {}
+    for r in rows:
+        if r.get("inspections") == 2 and str(r.get("status", "")).startswith("ok"):
+            donors.setdefault(key(r), []).append(r)
+    for r in rows:
+        if r.get("inspections") != 1 or not str(r.get("status", "")).startswith("ok"):
+            continue
+        group = donors.get(key(r), [])
+        label = ", ".join(f"{c}={v}" for c, v in zip(group_cols, key(r))) or "whole fleet"
+        ss = {side: similar_service_rate([d.get(f"rate_{side}_max_mm_y") for d in group], quantile=q,
+                                         min_tanks=MIN_TANKS_SIMILAR) for side in ("top", "under")}
+        r["similar_service_top_mm_y"], r["similar_service_under_mm_y"] = ss["top"], ss["under"]
+        if all(math.isnan(v) for v in ss.values()):
+            r["similar_service"] = (f"none: {len(group)} two-inspection tank(s) in group {label}, "
+                                    f"fewer than {MIN_TANKS_SIMILAR}")
+            continue
+        z = pd.DataFrame(r.get("_zones") or {})
+        if z.empty:
+            continue
+        own = {s: pd.to_numeric(z.get(f"rate_{s}_max_mm_y"), errors="coerce") for s in ("top", "under")}
+        rate = sum((own[s].fillna(0.0) if math.isnan(ss[s]) else pd.Series(ss[s], index=z.index))
+                   for s in ("top", "under"))
+        margin = pd.to_numeric(z["t_min_mm"], errors="coerce") - pd.to_numeric(z["mrt_mm"], errors="coerce")
+        life = (margin / rate).where(rate > 0, float("inf")).clip(lower=0)
+        rec = pd.to_numeric(z["interval_recommended_y"], errors="coerce")
+        new = pd.concat([rec, life.apply(rules.round_interval)], axis=1).min(axis=1, skipna=False)
+        if not new.notna().any():
+            continue
+        i = new.idxmin()
+        r["similar_service"] = (f"p{q * 100:g} of {len(group)} two-inspection tanks in group {label}: "
+                                f"top {ss['top']:.3f}, under {ss['under']:.3f} mm/y")
+        if new[i] < r["interval_recommended_y"] - 1e-9:
+            r["interval_recommended_y"] = float(new[i])
+            r["worst_zone"] = str(z.loc[i, "zone"])
+            r["limiting"] = "similar-service"
+            r["p_leak_at_due"] = float("nan")  # computed for the longer interval; not valid here
+            if r.get("_inspected"):
+                r["next_due"] = add_years(_dt.date.fromisoformat(r["_inspected"]), float(new[i])).isoformat()
+            r["flags"] = ";".join(f for f in (r.get("flags", ""), "similar-service") if f)
+            r["similar_service"] += f"; interval shortened to {new[i]:.1f} y (zone {z.loc[i, 'zone']})"
+
+
+def _fmt_y(v) -> str:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return "–"
+    return f"{v:.1f}" if math.isfinite(v) else "–"
+
+
+def _population_html(pop: pd.DataFrame | None, figures: list) -> str:
+    e = html.escape
+    if pop is None or pop.empty:
+        return ""
+    cols = list(pop.columns)
+    body = []
+    for _, r in pop.iterrows():
+        cells = []
+        for c in cols:
+            v = r[c]
+            if isinstance(v, float):
+                cells.append("" if not math.isfinite(v) else (f"{v:.4f}" if c.endswith("mm_y") else f"{v:.1f}"))
+            else:
+                cells.append(e(str(v)))
+        body.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    figs = "".join(f'<figure><img alt="{e(cap)}" src="data:image/png;base64,{b64}"><figcaption>{e(cap)}'
+                   "</figcaption></figure>" for cap, b64 in figures)
+    return f"""<h2>Population of corrosion rates</h2>
+<p>Per group and side: the number of assessed tanks and their zone-maximum rates (short-term from two
+inspections, long-term from one). A lognormal, Gumbel or GEV distribution is fitted by maximum likelihood and
+the one with the least AIC kept; with fewer than {MIN_TANKS_FIT} tanks no model is fitted and the quantiles
+are empirical. p50 and p90 carry 90 % bounds from a seeded bootstrap (200 resamples); outliers are tanks above
+the fitted p99.</p>
+<table><thead><tr>{''.join(f"<th>{e(c)}</th>" for c in cols)}</tr></thead><tbody>
+{''.join(body)}
+</tbody></table>
+{figs}
+"""
+
+
+def _fleet_html(df: pd.DataFrame, pop: pd.DataFrame | None = None, figures: list | None = None) -> str:
     e = html.escape
     rows = []
     for _, r in df.iterrows():
         link = e(str(r["report"])) if isinstance(r["report"], str) and r["report"] else ""
         tank = f'<a href="{link}">{e(str(r["tank"]))}</a>' if link else e(str(r["tank"]))
-        iv = r["interval_recommended_y"]
-        iv = "–" if iv is None or (isinstance(iv, float) and not math.isfinite(iv)) or pd.isna(iv) else f"{float(iv):.1f}"
+
         def txt(v):
             return "" if v is None or (not isinstance(v, str) and pd.isna(v)) else e(str(v))
 
-        cells = [str(r["rank"]), tank, txt(r["status"]), iv, txt(r["worst_zone"]), txt(r["next_due"]),
-                 txt(r["flags"]), txt(r["error"])]
+        pl = pd.to_numeric(pd.Series([r["p_leak_at_due"]]), errors="coerce")[0]
+        cells = [str(r["rank"]), tank, txt(r["status"]), txt(r["inspections"]), _fmt_y(r["interval_recommended_y"]),
+                 _fmt_y(r["interval_repaired_y"]), txt(r["next_due"]), txt(r["worst_zone"]), txt(r["limiting"]),
+                 "" if pd.isna(pl) else f"{pl:.2g}", txt(r["flags"]), txt(r["similar_service"]), txt(r["error"])]
         cls = ' class="bad"' if not str(r["status"]).startswith("ok") else ""
         rows.append(f"<tr{cls}>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
-    head = "".join(f"<th>{h}</th>" for h in ["#", "tank", "status", "recommended interval [y]", "worst zone",
-                                               "next due", "flags", "error"])
+    head = "".join(f"<th>{h}</th>" for h in [
+        "#", "tank", "status", "inspections", "recommended interval, as found [y]",
+        "after the proposed repairs [y]", "next due", "worst zone", "limited by", "p(leak) at due", "flags",
+        "similar service", "error"])
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>scananalyse fleet overview</title>
 <style>
 body {{ font-family: sans-serif; margin: 2em; color: #222; }}
 table {{ border-collapse: collapse; }} td, th {{ border: 1px solid #999; padding: 0.3em 0.6em; text-align: left; }}
 tr.bad td {{ background: #fde8e0; }} .caution {{ border-left: 4px solid #b5471b; padding: 0.4em 0.8em; background: #fbf3ee; }}
+figure {{ display: inline-block; margin: 0.5em; }} img {{ max-width: 100%; }}
 </style></head><body>
 <h1>Fleet overview, most urgent first</h1>
 <p class="caution">{e(CAUTION)}</p>
+<p>Order: {e(ORDER_RULE)}</p>
 <table><thead><tr>{head}</tr></thead><tbody>
 {''.join(rows)}
 </tbody></table>
+{_population_html(pop, figures or [])}
 <p>Generated {e(_dt.datetime.now().strftime('%Y-%m-%d %H:%M'))} by scananalyse {e(__version__)}.</p>
 </body></html>
 """
 
 
-def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str | None = None,
-              force: bool = False, quiet: bool = False, timeout_s: float | None = None) -> dict:
-    """Run every tank of a manifest on Dask; write ``fleet.csv`` and ``fleet.html``.
+class FleetFailed(InputError):
+    """Some tanks of a fleet failed; the outputs were written.  ``result`` holds what
+    :func:`run_fleet` would return; the message is one line naming the manifest and the
+    first failed row (the command exits 2)."""
 
-    Returns a dict with ``table`` (the ranked DataFrame), ``summary`` (text) and ``seconds``.
+    def __init__(self, message: str, result: dict):
+        super().__init__(message)
+        self.result = result
+
+
+def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str | None = None,
+              force: bool = False, quiet: bool = False, timeout_s: float | None = None,
+              raise_on_failure: bool = True) -> dict:
+    """Run every tank of a manifest on Dask; write ``fleet.csv``, ``fleet.html`` and
+    ``population.csv``.
+
+    Returns a dict with ``table`` (the ranked DataFrame), ``population``, ``summary``
+    (text) and ``seconds``.  When a tank failed (bad input, fault or timeout) and
+    ``raise_on_failure``, raises :class:`FleetFailed` after writing every output, so the
+    command's exit status is 2.
     """
     from .io.tables import write_csv
     from .io.validate import atomic_output
 
+    if workers is not None and workers < 1:
+        raise InputError(f"--workers: must be at least 1, got {workers}")
+    if timeout_s is not None and not (timeout_s > 0):
+        raise InputError(f"--timeout: must be a positive number of seconds, got {timeout_s}")
     entries = read_manifest(manifest)
     for e, folder in zip(entries, tank_folders(entries)):
         e["folder"] = folder
     out, lock = claim_fleet_folder(out_dir, force=force)
     try:
-        return _run_fleet(entries, out, workers=workers, scheduler=scheduler, force=force, quiet=quiet,
-                          timeout_s=timeout_s, write_csv=write_csv, atomic_output=atomic_output)
+        res = _run_fleet(entries, out, workers=workers, scheduler=scheduler, force=force, quiet=quiet,
+                         timeout_s=timeout_s, write_csv=write_csv, atomic_output=atomic_output)
     finally:
         lock.close()
+    df = res["table"]
+    bad = df[~df["status"].astype(str).str.startswith("ok")]
+    if raise_on_failure and len(bad):
+        lines = {e["tank"]: e["line"] for e in entries}
+        first = min((r for _, r in bad.iterrows()), key=lambda r: lines.get(r["tank"], 0))  # manifest order
+        line = lines.get(first["tank"], "?")
+        if not quiet:
+            print(res["summary"])
+        raise FleetFailed(f"{os.fspath(manifest)}:{line}: {len(bad)} of {len(df)} tanks failed (first: tank "
+                          f"{first['tank']!r}: {first['error']}); see {out / 'fleet.csv'}", res)
+    return res
 
 
 def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_s, write_csv, atomic_output):
@@ -344,21 +613,45 @@ def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_
                 if fut.key not in done:
                     fut.cancel()
                     rows.append({"tank": e["tank"], "status": "timeout", "report": "",
+                                 "inspections": 2 if e.get("old") else 1, **(e.get("groups") or {}),
                                  "error": f"no result within {timeout_s:g} s"})
     finally:
         client.close()
         if cluster is not None:
             cluster.close()
+    group_cols = list(entries[0].get("groups") or {}) if entries else []
+    similar_service(rows, group_cols)
     df = rank_fleet(rows)
+    pop, figures = _population(df, group_cols)
     try:
         write_csv(df, out / "fleet.csv")  # text cells neutralised against spreadsheet formulas
+        write_csv(pop, out / "population.csv")
         with atomic_output(out / "fleet.html") as tmp:
-            Path(tmp).write_text(_fleet_html(df), encoding="utf-8")
+            Path(tmp).write_text(_fleet_html(df, pop, figures), encoding="utf-8")
     except OSError as exc:
         raise InputError(f"{exc.filename or out}: cannot write ({exc.strerror or exc})") from None
     secs = time.perf_counter() - t0
     ok = int(df["status"].astype(str).str.startswith("ok").sum())
     summary = (f"fleet: {len(df)} tanks, {ok} assessed, {len(df) - ok} failed, in {secs:.1f} s; "
-               f"most urgent: {df.iloc[0]['tank']}; wrote {out / 'fleet.csv'} and {out / 'fleet.html'}\n"
-               + CAUTION)
-    return {"table": df, "summary": summary, "seconds": secs}
+               f"most urgent: {df.iloc[0]['tank']}; wrote {out / 'fleet.csv'}, {out / 'population.csv'} and "
+               f"{out / 'fleet.html'}\n" + CAUTION)
+    return {"table": df, "population": pop, "summary": summary, "seconds": secs}
+
+
+def _population(df: pd.DataFrame, group_cols) -> tuple:
+    """population.csv's table and the figures (caption, base64 PNG) of groups with 2+ tanks."""
+    import base64
+
+    from .population import plot_population, population_table
+    from .report.figures import png_bytes
+
+    okdf = df[df["status"].astype(str).str.startswith("ok")]
+    pop, details = population_table(okdf, group_cols)
+    figures = []
+    for col, val, side, summ, rates, names in details:
+        if len(rates) < 2:
+            continue
+        title = f"{'all tanks' if col == 'all' else f'{col} = {val}'}, {side} side: {len(rates)} tanks"
+        fig = plot_population(summ, rates, names, title=title)
+        figures.append((title + f" ({summ['model']})", base64.b64encode(png_bytes(fig, 100)).decode("ascii")))
+    return pop, figures

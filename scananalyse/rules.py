@@ -137,6 +137,8 @@ class RuleSet:
     noise_k : a change counts as growth when above ``noise_k`` times its standard
         deviation. [1]
     min_coverage_pct : zones scanned less than this are flagged ``low-coverage``. [%]
+    similar_service_quantile : upper quantile of a group's two-inspection zone-maximum rates
+        lent to its one-inspection tanks (fleet runs). [1]
     """
 
     name: str
@@ -170,6 +172,10 @@ class RuleSet:
     repair_to_step_mm: RuleValue
     noise_k: RuleValue
     min_coverage_pct: RuleValue
+    #: Upper quantile of a group's two-inspection zone-maximum rates lent to its one-inspection tanks. [1]
+    similar_service_quantile: RuleValue = _rv(
+        0.9, "1", "memory", "API 653 Annex H / §4.4 similar service [memory; check the edition in force]",
+        "p90 of the group's measured rates (scananalyse choice); at least 3 tanks")
 
     # --- access ---------------------------------------------------------
     @classmethod
