@@ -92,7 +92,7 @@ PATCH_COLUMNS = ["patch", "zone", "x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"
                  "corner_radius_mm", "thickness_mm", "area_m2", "mass_kg", "flags",
                  "n_cells_covered"]
 
-#: Where a patch is on the floor (``patches.csv`` after ``y_max_mm``; read back and ignored):
+#: Where a patch is on the floor (``patches.csv``, after the contract's columns; read back and ignored):
 #: clock position of its centre from the datum and distance from the shell.
 LOCATION_COLUMNS = ["clock", "from_shell_mm"]
 
@@ -1228,7 +1228,7 @@ def write_patches_csv(patches, path) -> None:
     from .io.tables import write_csv
 
     _validate_table(patches)
-    order = PATCH_COLUMNS[:6] + LOCATION_COLUMNS + PATCH_COLUMNS[6:]
+    order = PATCH_COLUMNS + LOCATION_COLUMNS  # the contract's columns first, in their order
     cols = [c for c in order if c in patches.columns]
     # text cells (patch ids, zones, flags) neutralised against spreadsheet formulas
     write_csv(patches[cols], path, float_format="%.6g")
@@ -1437,9 +1437,15 @@ def _read_patches_dxf(path):
             scale = float(_units.conversion_factor(code, 4))
         except Exception:
             raise InputError(f"{where(path, field='$INSUNITS')}: unsupported drawing unit code {code}") from None
+    from .report.dxf import LAYERS
+
+    # the furniture of our own repair drawing (shell, seams, plate numbers, ...) is no patch
+    furniture = set(LAYERS) - {_DXF_LAYER, _DXF_TEXT_LAYER}
     outlines, texts, skipped = [], [], {}
     for e in doc.modelspace():
         kind = e.dxftype()
+        if str(e.dxf.get("layer", "0")).upper() in furniture:
+            continue
         if kind in ("LWPOLYLINE", "POLYLINE"):
             closed = e.closed if kind == "LWPOLYLINE" else e.is_closed
             if kind == "POLYLINE" and (e.is_3d_polyline or e.is_poly_face_mesh or e.is_polygon_mesh):

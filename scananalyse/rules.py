@@ -175,7 +175,8 @@ class RuleSet:
     #: Upper quantile of a group's two-inspection zone-maximum rates lent to its one-inspection tanks. [1]
     similar_service_quantile: RuleValue = _rv(
         0.9, "1", "memory", "API 653 Annex H / §4.4 similar service [memory; check the edition in force]",
-        "p90 of the group's measured rates (scananalyse choice); at least 3 tanks")
+        "p90 of the group's measured rates (scananalyse choice); at least 3 tanks",
+        use="fleet: the rate lent to a group's one-inspection tanks (population.similar_service_rate)")
 
     # --- access ---------------------------------------------------------
     @classmethod

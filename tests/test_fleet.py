@@ -18,16 +18,16 @@ def fleet_dir(tmp_path_factory):
     d = tmp_path_factory.mktemp("fleet")
     rows = ["tank,old,new,diameter"]
     for i, (tank, seed) in enumerate([("TK-A", 1), ("TK-B", 2)]):
-        pair = make_pair(diameter_mm=3000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, tank=tank,
+        pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, tank=tank,
                          rotation_deg=1.0, shift_mm=(30.0, 20.0))
         (d / tank).mkdir()
         write_scan(pair.old, d / tank / "old.h5")
         write_scan(pair.new, d / tank / "new.h5")
-        rows.append(f"{tank},{tank}/old.h5,{tank}/new.h5,3000")
+        rows.append(f"{tank},{tank}/old.h5,{tank}/new.h5,4000")
     (d / "TK-BAD").mkdir()
     (d / "TK-BAD" / "new.csv").write_text("# format: scananalyse-scan 1\n# inspected: 2024-13-45\n# units: mm\n"
                                           "# pitch: 20\n# nominal: 6.35\nx,y,thickness\n0,0,6.3\n")
-    rows.append("TK-BAD,TK-A/old.h5,TK-BAD/new.csv,3000")
+    rows.append("TK-BAD,TK-A/old.h5,TK-BAD/new.csv,4000")
     (d / "manifest.csv").write_text("\n".join(rows) + "\n")
     return d
 
@@ -178,9 +178,9 @@ def test_missing_file_and_folder_are_error_rows_and_the_run_fails(fleet_dir, tmp
 
     d = fleet_dir
     m = tmp_path / "m.csv"
-    m.write_text(f"tank,old,new,diameter,service\nTK-A,{d}/TK-A/old.h5,{d}/TK-A/new.h5,3000,crude\n"
-                 f"GONE,,{d}/nothing.h5,3000,crude\nDIR,,{d}/TK-A,3000,crude\n"
-                 f"ONE,,{d}/TK-B/new.h5,3000,crude\n")
+    m.write_text(f"tank,old,new,diameter,service\nTK-A,{d}/TK-A/old.h5,{d}/TK-A/new.h5,4000,crude\n"
+                 f"GONE,,{d}/nothing.h5,4000,crude\nDIR,,{d}/TK-A,4000,crude\n"
+                 f"ONE,,{d}/TK-B/new.h5,4000,crude\n")
     status = main(["fleet", str(m), "--out", str(tmp_path / "o"), "--workers", "1", "--quiet"])
     assert status == 2
     err = capsys.readouterr().err

@@ -49,7 +49,7 @@ def pair_files(tmp_path_factory):
     from scananalyse.synth import make_pair
 
     d = tmp_path_factory.mktemp("inputs")
-    pair = make_pair(diameter_mm=3000, pitch_new=20, pitch_old=25, seed=9, tank=TANK)
+    pair = make_pair(diameter_mm=4000, pitch_new=20, pitch_old=25, seed=9, tank=TANK)
     paths = {"old": d / "old.csv", "new": d / "new.h5"}
     write_scan(pair.old, paths["old"])
     write_scan(pair.new, paths["new"])
@@ -89,7 +89,7 @@ def complete_run(pair_files, tmp_path_factory):
     err = io.StringIO()
     try:
         with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
-            status = main(["compare", str(pair_files["old"]), str(pair_files["new"]), "--diameter", "3000",
+            status = main(["compare", str(pair_files["old"]), str(pair_files["new"]), "--diameter", "4000",
                            "--out", str(out), "--quiet"])
     finally:
         mp.undo()
@@ -153,7 +153,7 @@ def test_existing_folder_not_overwritten_without_force(complete_run, pair_files,
     out = complete_run["out"]
     digest = tree_digest(out)
     capsys.readouterr()
-    status = main(["compare", str(pair_files["old"]), str(pair_files["new"]), "--diameter", "3000",
+    status = main(["compare", str(pair_files["old"]), str(pair_files["new"]), "--diameter", "4000",
                    "--out", str(out), "--quiet"])
     err = capsys.readouterr().err.splitlines()
     assert status == 2
@@ -168,7 +168,7 @@ def test_output_path_that_is_a_file_refused(pair_files, capsys, tmp_path):
     target.write_text("precious notes\n")
     capsys.readouterr()
     for extra in ([], ["--force"]):
-        status = main(["compare", str(pair_files["old"]), str(pair_files["new"]), "--diameter", "3000",
+        status = main(["compare", str(pair_files["old"]), str(pair_files["new"]), "--diameter", "4000",
                        "--out", str(target), "--quiet", *extra])
         err = capsys.readouterr().err.splitlines()
         assert status == 2 and len(err) == 1 and str(target) in err[0], err
@@ -190,7 +190,7 @@ def test_convert_refuses_to_overwrite_its_input(pair_files, capsys):
 def _start(pair_files, out: Path, *extra):
     env = dict(os.environ, MPLBACKEND="Agg", PYTHONUNBUFFERED="1")
     cmd = [sys.executable, "-m", "scananalyse.cli", "compare", str(pair_files["old"]), str(pair_files["new"]),
-           "--diameter", "3000", "--out", str(out), "--quiet", *extra]
+           "--diameter", "4000", "--out", str(out), "--quiet", *extra]
     return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env,
                             cwd=str(out.parent), stdin=subprocess.DEVNULL)
 

@@ -266,7 +266,19 @@ EXERCISED = {
     "patch_thickness_mm": (_planned, 8.0),
     "steel_density_kg_m3": (_planned, 7800.0),
     "noise_k": (_noise, 3.0),
+    "similar_service_quantile": (lambda rs: _similar_service(rs), 0.5),
 }
+
+
+def _similar_service(rs):
+    # the fleet's rate lent to a one-inspection tank of a group of three measured tanks
+    from scananalyse import fleet
+
+    rows = [{"status": "ok", "service": "crude", "inspections": 2, "rate_top_max_mm_y": r, "rate_under_max_mm_y": r}
+            for r in (0.1, 0.2, 0.6)] + [{"status": "ok", "service": "crude", "inspections": 1, "rate_top_max_mm_y": None,
+                                          "rate_under_max_mm_y": None}]
+    fleet.similar_service(rows, ["service"], quantile=rs.v("similar_service_quantile"))
+    return rows[-1].get("similar_service_top_mm_y")
 
 
 @pytest.mark.parametrize("name", RuleSet.value_names())
