@@ -55,8 +55,10 @@ too short: the thinnest of thousands of readings is mostly thin by noise too.
 Only cells that could be the zone's minimum enter the Monte Carlo: a cell whose shortest
 possible life (thickness −4σ, fastest rate of its truncated range) exceeds the longest
 possible life (thickness +4σ, slowest rate) of some other cell cannot be the minimum in any
-draw, so the pruning changes no draw's result (a posterior draw stays inside the
-likelihood's truncated range).
+draw, so the pruning changes no draw's result.  With the zone's rate distribution a cell's
+rates range over its posterior's support (grid rates with mass above 1e-9 of its largest,
+widened by 3 grid steps; the draws are clipped to it), far narrower than its interval: on
+a 30 m floor 600 of 1.7 million cells are kept, against 23 000 with the intervals alone.
 """
 
 from __future__ import annotations
@@ -270,29 +272,58 @@ def _npmle(lik, counts, n_iter):
 
 
 def _groups(*keys):
-    """First index and count of each distinct row of the integer ``keys``."""
+    """First index and count of each distinct row of the integer ``keys``, and each row's
+    group."""
     key = np.zeros(keys[0].shape, np.int64)
     for k in keys:
         key = key * (1 << 21) + np.clip(k, 0, (1 << 21) - 1)
-    _, first, counts = np.unique(key, return_index=True, return_counts=True)
-    return first, counts
+    _, first, inverse, counts = np.unique(key, return_index=True, return_inverse=True, return_counts=True)
+    return first, counts, inverse.ravel()
 
 
-def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None) -> "GridPrior":
-    """:func:`fit_rate_prior` on the total-rate likelihoods ``par`` of :func:`_total_rate`."""
+def _lik_groups(par, q):
+    """:func:`_groups` of total-rate likelihoods equal to ``q``."""
+    point, sd_lo, sd_hi, flat, a, b = par
+    return _groups(np.rint(np.where(flat, a, point) / q).astype(np.int64),
+                   np.rint(np.where(flat, b, sd_lo) / q).astype(np.int64),
+                   np.where(flat, 0, np.rint(sd_hi / q) + 1).astype(np.int64))
+
+
+def _post_range(prior, par, eps=1e-9, pad=3):
+    """Smallest and largest rate each cell's posterior draws can take: its grid rates with
+    posterior mass above ``eps`` × the cell's largest, widened by ``pad`` grid steps (the
+    cells share the likelihood of their group to half a step), within [a, b].  The draws
+    are clipped to this range, so the pruning with it is exact."""
+    a, b = par[4], par[5]
+    if a.size == 0:
+        return a.copy(), b.copy()
+    h = prior.step
+    first, _, inv = _lik_groups(par, 0.5 * h)
+    post = prior.posterior(_lik(prior.grid, h, *(x[first] for x in par)))
+    m = post > eps * post.max(axis=1, keepdims=True)
+    K = prior.grid.size
+    k0 = np.argmax(m, axis=1)
+    k1 = K - 1 - np.argmax(m[:, ::-1], axis=1)
+    lo = np.maximum(prior.grid[k0][inv] - (pad + 0.5) * h, a)
+    hi = np.minimum(prior.grid[k1][inv] + (pad + 0.5) * h, b)
+    bad = ~(lo <= hi)
+    return np.where(bad, a, lo), np.where(bad, b, hi)
+
+
+def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=None) -> "GridPrior":
+    """:func:`fit_rate_prior` on the total-rate likelihoods ``par`` of :func:`_total_rate`
+    (grid 0 ... ``top``, default the largest rate any of the cells allows)."""
     point, sd_lo, sd_hi, flat, a, b = par
     n = point.size
     min_cells = MIN_PRIOR_CELLS if min_cells is None else min_cells
-    top = max(float(np.max(b)) if n else 0.0, 1e-3)
+    top = max(float(np.max(b)) if n else 0.0, 1e-3) if top is None else max(float(top), 1e-3)
     grid = np.linspace(0.0, top, n_grid)
     if n < min_cells:  # too few cells to estimate a distribution: the likelihood alone
         return GridPrior(grid, np.full(n_grid, 1.0 / n_grid), int(n), 0)
     h = grid[1] - grid[0]
     q = 0.5 * h
     # identical likelihoods (to half a grid step) are one group with a count
-    first, counts = _groups(np.rint(np.where(flat, a, point) / q).astype(np.int64),
-                            np.rint(np.where(flat, b, sd_lo) / q).astype(np.int64),
-                            np.where(flat, 0, np.rint(sd_hi / q) + 1).astype(np.int64))
+    first, counts, _ = _lik_groups(par, q)
     lik = _lik(grid, h, point[first], sd_lo[first], sd_hi[first], flat[first], a[first], b[first])
     w = _npmle(lik, counts, n_iter)
     if smooth is None:
@@ -356,15 +387,25 @@ def fit_rate_prior(rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo
 
 def _draw_posterior(rng, prior: GridPrior, lik, a, b, u, rows=None):
     """Rates drawn from cells' posteriors by inversion: ``lik`` (m, K) of m cells, ``u``
-    uniforms; element j of ``u`` is a draw of cell ``rows[j]`` (default: the last axis of
-    ``u`` runs over the m cells).  Spread uniformly within a grid step, kept in [a, b]."""
+    uniforms; element j of ``u`` is a draw of cell ``rows[j]`` (default: ``u`` is
+    (n, m), column i the draws of cell i).  The posterior mass of a grid rate is spread
+    uniformly over its grid step; draws are kept in [a, b] and at least 0."""
     post = prior.posterior(lik)
     cdf = np.cumsum(post, axis=1)
     cdf[:, -1] = 1.0
     m, K = cdf.shape
-    rows = np.arange(m) if rows is None else np.asarray(rows)
-    flat_cdf = (cdf + np.arange(m, dtype=float)[:, None]).ravel()
-    k = np.searchsorted(flat_cdf, np.minimum(u, 1.0 - 1e-12) + rows) - rows * K
+    u = np.minimum(u, 1.0 - 1e-12)
+    if rows is None:  # one search per cell: short sorted rows, cache-friendly
+        ut = np.ascontiguousarray(u.T)
+        k = np.empty(ut.shape, np.int64)
+        for i in range(m):
+            k[i] = np.searchsorted(cdf[i], ut[i], side="right")
+        k = k.T
+        rows = np.arange(m)
+    else:
+        rows = np.asarray(rows)
+        flat_cdf = (cdf + 2.0 * np.arange(m)[:, None]).ravel()
+        k = np.searchsorted(flat_cdf, u + 2.0 * rows, side="right") - rows * K
     k = np.clip(k, 0, K - 1)
     r = prior.grid[k] + (rng.random(np.shape(u)) - 0.5) * prior.step
     return np.maximum(np.clip(r, a[rows], b[rows]), 0.0)
@@ -484,11 +525,15 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         lo_known = np.isfinite(arrs[2][ok]) & np.isfinite(arrs[4][ok])
         par = _total_rate(pt, lt, ht, pu, lu, hu, assumed=~meas)
         ref_par = tuple(x[ref] for x in par)
-        prior = rate_prior if rate_prior is not None else _fit_prior(ref_par)
+        prior = rate_prior if rate_prior is not None else _fit_prior(
+            ref_par, top=float(np.max(par[5][unc])) if unc.any() else None)
         rate_rule = lambda d: _hidden_rate_post(rng, d, ref_depth, ref_par, prior)  # noqa: E731
         meas = meas | lo_known
-        r_min = np.where(meas, par[4], 0.0)
-        r_max = np.where(meas, par[5], float(np.max(ref_par[5])) if ref_par[5].size else 0.0)
+        r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
+        if unc.any():
+            r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
+        r_min = np.where(meas, r_lo, 0.0)
+        r_max = np.where(meas, r_hi, float(np.max(ref_par[5])) if ref_par[5].size else 0.0)
     else:
         ref_rates = tuple(a[ref] for a in (pt, lt, ht, pu, lu, hu))
         rate_rule = lambda d: _hidden_rate(rng, d, ref_depth, *ref_rates)  # noqa: E731
@@ -508,10 +553,11 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         opt0 = np.where(unc, _life(t_hi, r_min), np.inf)
     # cell i can be the minimum only if its shortest possible life is not above the
     # longest possible life of the cell that is surely shortest
-    keep = unc & (pess <= (opt.min() if opt.size else np.inf))
+    below = bool(opt.size) and opt.min() <= 0  # some cell is below MRT in every draw: life 0
+    keep = unc & (pess <= (opt.min() if opt.size else np.inf)) & (not below)
     keep |= unc & (pess0 <= (opt0.min() if opt0.size else np.inf))  # the leak's candidates too
     idx = np.flatnonzero(keep)
-    life_mrt = np.full(n_draws, np.inf)
+    life_mrt = np.full(n_draws, 0.0 if below else np.inf)
     life_leak = np.full(n_draws, np.inf)
     for c0 in range(0, idx.size, 256):  # bands of cells: bounded memory
         ii = idx[c0:c0 + 256]
@@ -519,7 +565,8 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         tk = t[ii] + sig[ii] * np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
         if shrink:
             sub = tuple(x[ii] for x in par)
-            rk = _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), sub[4], sub[5], rng.random(shape))
+            rk = _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
+                                 rng.random(shape))
         else:
             rk = _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
         a_ii = np.flatnonzero(~meas[ii])
