@@ -31,8 +31,10 @@ and is drawn by a seeded, vectorised Monte Carlo:
   widest intervals and the life comes out far too short (truth above p95 in 43 % of the
   zones not already below MRT, ``bench/RESULTS.md``).  Under :math:`g` a wide interval
   keeps only the rates that the zone's well-measured cells show to occur.  A zone with
-  fewer than :data:`MIN_PRIOR_CELLS` measured cells gets no shrinkage (uniform weights);
-  ``shrink=False`` gives the independent per-cell draws;
+  fewer than :data:`MIN_PRIOR_CELLS` measured cells gets no shrinkage (uniform weights),
+  nor does a cell uniform over an interval from 0 (no measured lower bound: without an
+  installation date there is no long-term bound, and its evidence does not separate it
+  from the zone's slow bulk); ``shrink=False`` gives the independent per-cell draws;
 * **rate of a cell whose rate was assumed, not measured** (indications with no measured
   rate): uniform between its measured lower bound and the assumed rate, under :math:`g`;
   with no measured lower bound (repaired, not compared) the similar-depth rule below;
@@ -247,12 +249,15 @@ class GridPrior:
     def step(self) -> float:
         return float(self.grid[1] - self.grid[0]) if self.grid.size > 1 else 1.0
 
-    def posterior(self, lik) -> np.ndarray:
+    def posterior(self, lik, own=None) -> np.ndarray:
         """(n, K) posterior of the listed cells' rates (rows sum to 1; a row whose
-        likelihood is zero on the whole support falls back to the likelihood alone)."""
+        likelihood is zero on the whole support, or marked in ``own``, is the likelihood
+        alone)."""
         post = lik * self.weights[None, :]
         s = post.sum(axis=1, keepdims=True)
         bad = ~(s[:, 0] > 0)
+        if own is not None:
+            bad |= own
         if bad.any():
             post[bad] = lik[bad]
             s[bad] = post[bad].sum(axis=1, keepdims=True)
@@ -299,7 +304,7 @@ def _post_range(prior, par, eps=1e-9, pad=3):
         return a.copy(), b.copy()
     h = prior.step
     first, _, inv = _lik_groups(par, 0.5 * h)
-    post = prior.posterior(_lik(prior.grid, h, *(x[first] for x in par)))
+    post = prior.posterior(_lik(prior.grid, h, *(x[first] for x in par)), _own(par, first))
     m = post > eps * post.max(axis=1, keepdims=True)
     K = prior.grid.size
     k0 = np.argmax(m, axis=1)
@@ -385,12 +390,20 @@ def fit_rate_prior(rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo
     return _fit_prior(par, n_grid=n_grid, n_iter=n_iter, min_cells=min_cells)
 
 
-def _draw_posterior(rng, prior: GridPrior, lik, a, b, u, rows=None):
+def _own(par, idx=slice(None)):
+    """Cells drawn from their own likelihood, not shrunk: uniform ones with no measured
+    lower bound (interval from 0).  Their evidence does not separate them from the zone's
+    slow bulk (no installation date, so no long-term lower bound), and the prior, mostly
+    general thinning, would call them slow."""
+    return par[3][idx] & ~(par[4][idx] > 0)
+
+
+def _draw_posterior(rng, prior: GridPrior, lik, a, b, u, rows=None, own=None):
     """Rates drawn from cells' posteriors by inversion: ``lik`` (m, K) of m cells, ``u``
     uniforms; element j of ``u`` is a draw of cell ``rows[j]`` (default: ``u`` is
     (n, m), column i the draws of cell i).  The posterior mass of a grid rate is spread
     uniformly over its grid step; draws are kept in [a, b] and at least 0."""
-    post = prior.posterior(lik)
+    post = prior.posterior(lik, own)
     cdf = np.cumsum(post, axis=1)
     cdf[:, -1] = 1.0
     m, K = cdf.shape
@@ -566,7 +579,7 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         if shrink:
             sub = tuple(x[ii] for x in par)
             rk = _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
-                                 rng.random(shape))
+                                 rng.random(shape), own=_own(sub))
         else:
             rk = _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
         a_ii = np.flatnonzero(~meas[ii])
@@ -658,7 +671,7 @@ def _hidden_rate_post(rng, d, depth_meas, par, prior):
     up, inv = np.unique(pick, return_inverse=True)
     sub = tuple(x[up] for x in par)
     return _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), sub[4], sub[5],
-                           rng.random(np.shape(d)), rows=inv.reshape(np.shape(d)))
+                           rng.random(np.shape(d)), rows=inv.reshape(np.shape(d)), own=_own(sub))
 
 
 def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,

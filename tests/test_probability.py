@@ -108,6 +108,24 @@ def test_shrinkage_of_many_noisy_cells():
     assert q_eb[0] < truth
 
 
+def test_interval_from_zero_is_not_shrunk():
+    # A cell crossed below the older threshold with no measured lower bound (rate known only
+    # to lie in [0, 0.3]) among 300 slow, well-measured cells: the zone's rate distribution
+    # (all near 0.01) would call it slow, life about (4.0 - 2.54)/0.01 = 146 y; it is drawn
+    # from its own interval instead, as without shrinkage (median about 1.46/0.15 = 9.7 y).
+    n = 300
+    t = np.r_[4.0, np.full(n, 6.3)]
+    pt = np.r_[0.3, np.full(n, 0.01)]
+    lo = np.r_[0.0, np.full(n, 0.005)]
+    hi = np.r_[0.3, np.full(n, 0.015)]
+    z = np.zeros_like(t)
+    kw = dict(sigma_t=0.05, nominal=6.35, n_draws=4000, seed=8)
+    q_eb = zone_life_distribution(t, pt, z, lo, hi, z, z, 2.54, **kw).quantiles()
+    q_raw = zone_life_distribution(t, pt, z, lo, hi, z, z, 2.54, shrink=False, **kw).quantiles()
+    assert q_eb[0] == pytest.approx(q_raw[0], rel=0.1)
+    assert q_eb[1] == pytest.approx(q_raw[1], rel=0.1) and q_eb[1] < 15.0
+
+
 def test_hidden_part_shortens_life_and_is_predictive():
     # A Gumbel of deep block maxima over a large unscanned area governs the zone.
     t = np.full(200, 6.0)
