@@ -51,8 +51,11 @@ The thickness is not shrunk the same way: an estimate of the zone's thickness
 distribution (NPMLE, smoothed) made the intervals too narrow and the life too long on the
 synthetic floors (diagnostic seeds 200-239, neither the bench's nor the tests': truth
 below p05 in 9 of 40 zones, against 4 with the rates alone), so thickness keeps its
-reading noise as drawn above.  That noise is now the main reason a zone's life comes out
-too short: the thinnest of thousands of readings is mostly thin by noise too.
+reading noise as drawn above.  Nor is it drawn given the rate from both readings (the
+older reading minus rate × Δt): the older scan resampled onto the newer grid reads pit
+bottoms about 0.05 mm thick (interpolation), and the life came out longer across the
+board.  Where a zone's life still comes out too short, the governing reading is usually
+low by its own noise (0.1-0.2 mm), which no zone-wide distribution can tell.
 
 Only cells that could be the zone's minimum enter the Monte Carlo: a cell whose shortest
 possible life (thickness −4σ, fastest rate of its truncated range) exceeds the longest
