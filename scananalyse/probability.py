@@ -229,13 +229,13 @@ def _lik(grid, h, point, sd_lo, sd_hi, flat, a, b):
 
 @dataclass(frozen=True)
 class GridPrior:
-    """A zone's distribution of true cell values (rates, or thickness) on a grid: the prior
-    of the empirical-Bayes draws (module notes).
+    """A zone's distribution of true cell rates on a grid: the prior of the empirical-Bayes
+    draws (module notes).
 
     Attributes
     ----------
     grid : (K,) ndarray
-        Support points (rates: 0 ... the largest rate any cell allows). [mm/y or mm]
+        Support points, 0 ... the largest rate any cell allows. [mm/y]
     weights : (K,) ndarray
         Probability of each support point (sums to 1). [-]
     n_cells, n_groups : int
