@@ -45,6 +45,8 @@ __all__ = [
     "recommend_interval",
     "ZONE_COLUMNS",
     "BOUND_NAMES",
+    "PROBABILITY_COLUMNS",
+    "add_life_distribution",
 ]
 
 #: The zones.csv columns of the design contract, in order (more follow them).
@@ -56,6 +58,9 @@ ZONE_COLUMNS = [
 
 #: Names of the bounds the recommendation takes the least of, in tie-break order.
 BOUND_NAMES = ("code", "local", "eva", "initial", "cap")
+
+#: The columns of the zone life distribution (:func:`add_life_distribution`), after the others.
+PROBABILITY_COLUMNS = ["life_p05_y", "life_p50_y", "life_p95_y", "p_mrt_at_due", "p_leak_at_due"]
 
 
 def _num(x, field_name, *, positive=False, allow_none=False):
@@ -886,3 +891,48 @@ def _flags(flags, row, kind, tmin, mrt, code, life_eva, rec, c: _Context) -> Non
         flags.append("no-short-term-rates")
     if not c.has_rates:
         flags.append("initial-interval")
+
+
+def add_life_distribution(table: pd.DataFrame, dists: dict, *, inspected: _dt.date, rules,
+                          target_probability: float | None = None) -> pd.DataFrame:
+    """The zone life distribution's columns, and optionally one more limit on the interval.
+
+    Parameters
+    ----------
+    table : per-zone table of :func:`assess_zones` (``zone``, ``interval_recommended_y``,
+        ``limiting``, ``next_due``).
+    dists : zone name -> :class:`~scananalyse.probability.LifeDistribution`.
+    inspected : date of the newer inspection (the distributions' time origin).
+    rules : rule set (``round_interval``).
+    target_probability : None (default, off) or P in (0, 1): the recommendation becomes at
+        most the longest interval, rounded down to the rule set's step, with P(some point of
+        the zone below MRT) ≤ P; ``limiting`` is then ``probability`` where it governs.
+
+    Returns
+    -------
+    DataFrame : a copy with :data:`PROBABILITY_COLUMNS` (NaN for a zone without a
+    distribution); ``p_mrt_at_due`` and ``p_leak_at_due`` at the (final) recommended
+    interval from ``inspected``.
+    """
+    out = table.copy()
+    rows = []
+    for i, zone in enumerate(out["zone"]):
+        d = dists.get(zone)
+        rec = float(out["interval_recommended_y"].iloc[i])
+        if d is None or not d.ok:
+            rows.append({c: math.nan for c in PROBABILITY_COLUMNS})
+            continue
+        if target_probability is not None and math.isfinite(rec):
+            s = np.sort(d.life_mrt)
+            k = min(int(math.floor(target_probability * s.size)), s.size - 1)
+            # P(L <= t) <= P for every t below the (k+1)-th smallest draw
+            t_p = rules.round_interval(max(float(s[k]) - 1e-9, 0.0)) if math.isfinite(s[k]) else math.inf
+            if t_p < rec:
+                rec = t_p
+                out.iloc[i, out.columns.get_loc("interval_recommended_y")] = rec
+                out.iloc[i, out.columns.get_loc("limiting")] = "probability"
+                out.iloc[i, out.columns.get_loc("next_due")] = add_years(inspected, rec).isoformat()
+        rows.append(d.row(rec))
+    for c in PROBABILITY_COLUMNS:
+        out[c] = [r[c] for r in rows]
+    return out

@@ -74,6 +74,9 @@ def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
     p.add_argument("--job", type=_input_file, help="TOML job file with further settings (see docs/job.md)")
     p.add_argument("--annular-width", type=_LENGTH, help=f"annular ring width ({u})")
     p.add_argument("--target-interval", type=_LENGTH, help="target interval for repair planning [years] (default 10)")
+    p.add_argument("--target-probability", type=_LENGTH, metavar="P",
+                   help="also limit each zone's interval to the longest with P(below MRT) <= P "
+                        "(decision support beside the code formula; off by default)")
     p.add_argument("--leak-detection", action="store_true", help="release detection and containment present (MRT 1.27 mm case)")
     p.add_argument("--cp", action="store_true", help="cathodic protection effective: UPr = 0")
     p.add_argument("--coated", action="store_true", help="top side coated (StPr = 0 if coating life >= interval)")
@@ -189,7 +192,8 @@ def _job_from_args(args):
     job = job.with_lengths(units=units, **lengths)
     changes = {}
     simple = {
-        "target_interval": "target_interval", "coating_life": "coating_life_years", "shapes": "shapes",
+        "target_interval": "target_interval", "target_probability": "target_probability",
+        "coating_life": "coating_life_years", "shapes": "shapes",
         "default_side": "default_side", "repairs": "repairs", "control_points": "control_points",
         "patches": "patches", "ruleset": "ruleset",
     }
@@ -209,7 +213,7 @@ def _job_from_args(args):
     for f in changes:
         origins[f] = OPTIONS.get(f, f)
     job = job.replace(origins=origins, **changes)
-    for f in ("target_interval", "coating_life_years"):
+    for f in ("target_interval", "target_probability", "coating_life_years"):
         if f in changes:
             check_value(f, changes[f], what=job.where(f))
     if "ruleset" in changes:

@@ -102,6 +102,7 @@ BOUNDS = {
     "patch_thickness": (1.0, 50.0, "mm"),
     "shell_tmin": (1.0, 100.0, "mm"),
     "target_interval": (0.5, 30.0, "y"),
+    "target_probability": (1e-4, 0.5, ""),
     "coating_life_years": (0.0, 100.0, "y"),
     "block_mm": (100.0, 10_000.0, "mm"),             # always mm
     "seed": (0, 2**32 - 1, ""),
@@ -114,7 +115,7 @@ OPTIONS = {
     "diameter": "--diameter", "annular_width": "--annular-width", "centre": "floor.centre",
     "zone_polygons": "zones.polygons", "repair_to": "--repair-to", "patch_thickness": "--patch-thickness",
     "shell_tmin": "--shell-tmin",
-    "target_interval": "--target-interval", "coating_life_years": "--coating-life", "block_mm": "--block-mm",
+    "target_interval": "--target-interval", "target_probability": "--target-probability", "coating_life_years": "--coating-life", "block_mm": "--block-mm",
     "seed": "--seed", "shapes": "--shapes", "repairs": "--repairs", "control_points": "--control-points",
     "patches": "--patches", "top_depth": "--top-depth", "readings": "--readings",
     "sizing_correction": "--no-sizing-correction",
@@ -149,6 +150,7 @@ class Job:
     repairs: str | None = None
     control_points: str | None = None
     target_interval: float = 10.0
+    target_probability: float | None = None  # off; else the largest P(below MRT) at next_due
     patch_thickness_mm: float | None = None
     repair_to_mm: float | None = None
     patches: str | None = None
@@ -369,6 +371,7 @@ _SCHEMA = {
     ("attribution", "repairs"): ("repairs", (str,)),
     ("registration", "control_points"): ("control_points", (str,)),
     ("repair", "target_interval"): ("target_interval", _NUM),
+    ("assessment", "target_probability"): ("target_probability", _NUM),
     ("repair", "patch_thickness"): ("patch_thickness", _NUM),
     ("repair", "repair_to"): ("repair_to", _NUM),
     ("repair", "patches"): ("patches", (str,)),

@@ -28,6 +28,7 @@ from .indications import (apply_indication_rates, assumed_rate_note, flag_indica
                           label_indications, match_indications, measure_indications, new_indication_rates,
                           old_indications, region_max, reporting_depth)
 from .job import Job
+from .probability import life_distributions, repaired_rates
 from .progress import Progress
 from .register import register, resample_onto
 from .rules import get_ruleset
@@ -54,6 +55,7 @@ class Analysis:
     extremes_depth: dict
     extremes_rate: dict
     hidden: dict
+    life_dists: dict
     zone_table: pd.DataFrame
     life_map: np.ndarray
     mrt_map: np.ndarray
@@ -301,6 +303,13 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                     pitch_mm=new.pitch, rate_short_available=old is not None,
                                     zone_rates=lr.zone_inputs())
         table = add_eva_columns(table, ext_depth, ext_life)
+
+    with prog.stage("probability"):
+        # each zone's life as a distribution (thickness noise, rate intervals, the hidden part)
+        prob_kw = dict(nominal=new.meta.nominal, sigma_t=lr.sigma_new, pitch=new.pitch, seed=job.seed)
+        life_dists = life_distributions(new.thickness, lr, zmap, mrt, ext_depth, **prob_kw)
+        table = assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
+                                             target_probability=job.target_probability)
         if reading_zone_table is not None:
             table = add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected)
 
@@ -308,6 +317,13 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
                                          own_patches=inputs["patches"], ext_rate=ext_rate,
                                          ext_depth=ext_depth, hidden=hidden, older=older)
+        # the repaired floor's distribution: patched cells new plate at their kept rates; the
+        # hidden part as found
+        life_dists_rep = life_distributions(rep["repaired_maps"]["thickness_repaired"],
+                                            repaired_rates(lr, rep["repaired_maps"]), zmap, mrt, ext_depth, **prob_kw)
+        rep["zones_repaired"] = assess.add_life_distribution(
+            rep["zones_repaired"], life_dists_rep, inspected=new.meta.inspected, rules=rules,
+            target_probability=job.target_probability)
         if reading_zone_table is not None and rep.get("zones_repaired") is not None:
             rep["zones_repaired"] = add_reading_zones(rep["zones_repaired"], reading_zone_table, rules=rules,
                                                       inspected=new.meta.inspected)
@@ -317,7 +333,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     rules=rules.for_inputs(shell_tmin_mm=job.shell_tmin_mm,  # rule table: which rules applied
                                            shell_clearance_checked=getattr(rep.get("patch_checks"), "attrs",
                                                                            {}).get("shell_clearance_checked", False)),
-                    extremes_rate=ext_rate, hidden=hidden, zone_table=table, life_map=life, mrt_map=mrt,
+                    extremes_rate=ext_rate, hidden=hidden, life_dists=life_dists, zone_table=table, life_map=life, mrt_map=mrt,
                     indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     readings=_readings_result(rinfo, reading_zone_table, scan_new, readings_new, readings_old),

@@ -74,7 +74,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["LifeDistribution", "GridPrior", "fit_rate_prior", "zone_life_distribution", "life_distributions",
+__all__ = ["repaired_rates", "LifeDistribution", "GridPrior", "fit_rate_prior", "zone_life_distribution", "life_distributions",
            "plot_life_curve", "TRUNC_SD", "Z90", "MIN_PRIOR_CELLS"]
 
 #: Draws of thickness and rate are truncated at this many standard deviations (makes the
@@ -754,3 +754,31 @@ def plot_life_curve(dist: LifeDistribution, *, years=None, due_y=None, ax=None, 
     ax.set_ylim(0, 1)
     ax.legend()
     return fig
+
+
+def repaired_rates(lr, repaired_maps: dict):
+    """The rates of the floor as repaired, for :func:`life_distributions`.
+
+    Patched cells (``repaired_maps["patched"]``) are new plate at the rates kept under the
+    patch (``rate_*_repaired``): their interval is that point, and they are no longer
+    below the threshold; every other cell keeps its own rates and intervals.
+
+    Parameters
+    ----------
+    lr : :class:`~scananalyse.rates.LossRates` as found.
+    repaired_maps : ``Analysis.repaired_maps`` (``patched``, ``rate_top_repaired``,
+        ``rate_under_repaired``).
+    """
+    import dataclasses
+
+    cov = np.asarray(repaired_maps["patched"], dtype=bool)
+    if not cov.any():
+        return lr
+    rt, ru = repaired_maps["rate_top_repaired"], repaired_maps["rate_under_repaired"]
+    kw = {}
+    for side, r in (("top", rt), ("under", ru)):
+        kw[f"rate_{side}"] = r
+        for b in ("lo", "hi"):
+            kw[f"rate_{side}_{b}"] = np.where(cov, r, getattr(lr, f"rate_{side}_{b}"))
+    cens = None if lr.censored is None else lr.censored & ~cov
+    return dataclasses.replace(lr, censored=cens, **kw)

@@ -38,7 +38,7 @@ __all__ = ["CompareResult", "STAGES_PAIR", "STAGES_SINGLE", "write_outputs", "co
 
 #: The stages a two-inspection job reports progress for, in order.
 STAGES_PAIR = ["load", "registration", "readings", "resampling", "attribution", "zones", "extremes", "rates", "indications",
-               "assessment", "repairs", "outputs", "report"]
+               "assessment", "probability", "repairs", "outputs", "report"]
 #: The stages of a one-inspection job.
 STAGES_SINGLE = [s for s in STAGES_PAIR if s not in ("registration", "resampling")]
 # ("readings" runs only for a job with spot readings: the list of a job without them drops it)
