@@ -210,7 +210,7 @@ def test_stages_run_in_the_documented_order():
     prog = Progress(quiet=True)
     analyse(pair.new, pair.old, job=Job(diameter=4000.0), progress=prog)
     assert list(prog.timings) == ["registration", "resampling", "attribution", "zones", "extremes", "rates",
-                                  "indications", "assessment", "repairs"]
+                                  "indications", "assessment", "probability", "repairs"]
     prog1 = Progress(quiet=True)
     analyse(pair.new, None, job=Job(diameter=4000.0), progress=prog1)
     assert "registration" not in prog1.timings and list(prog1.timings)[0] == "attribution"

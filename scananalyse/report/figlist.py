@@ -43,6 +43,12 @@ def figure_specs(an, units: str) -> list:
                         indications=getattr(an, "indications", None))
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
+    if getattr(an, "life_dists", None) and any(d.ok for d in an.life_dists.values()):
+        specs.append(("methods", "life_probability", "Probability that some point of each zone is below MRT "
+                      "(solid) or holed through (dashed) against years after the newer inspection, with each "
+                      "zone's next due date marked: decision support beside the code formula, not a "
+                      "replacement (model and calibration: docs/assessment.md).",
+                      partial(life_probability_figure, an.life_dists, an.zone_table)))
     if getattr(an, "readings", None):  # the spot readings as markers on the thickness map
         table = an.readings["new"].table
         specs = [(sec, slug, cap + " Spot readings marked by kind (circle UT, square prove-up, triangle pit gauge).",
@@ -58,6 +64,7 @@ def figure_specs(an, units: str) -> list:
 
 #: The report's order of the figures, by slug (prefix); figures of one rank keep their order.
 _REPORT_RANK = (("life_local", 1), ("patches", 2), ("registration", 3), ("methods_as_found", 4),
+                ("life_probability", 4),
                 ("methods_repaired", 5), ("probability_", 6), ("return_level_", 6))
 
 
@@ -336,3 +343,32 @@ def return_curve(z):
         except (FitError, ValueError, ArithmeticError):
             ups.append(np.nan)  # a display aid only: the table's bound comes from zone_extremes
     return T_line, lvl, None, np.array(ups), Ts
+
+
+def life_probability_figure(dists: dict, zone_table):
+    """Each zone's P(below MRT by t) and P(leak by t), its next due date marked."""
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(7.5, 4.2), layout="constrained")
+    due = dict(zip(zone_table["zone"], zone_table["interval_recommended_y"]))
+    years = np.linspace(0.0, 30.0, 241)
+    for k, (name, d) in enumerate(dists.items()):
+        if not d.ok:
+            continue
+        colour = f"C{k % 10}"
+        y, pm, pl = d.curve(years)
+        ax.plot(y, pm, color=colour, label=f"{name}: below MRT")
+        ax.plot(y, pl, color=colour, ls="--", label=f"{name}: leak")
+        t = due.get(name)
+        if t is not None and np.isfinite(t):
+            ax.axvline(t, color=colour, lw=0.8, ls=":")
+            ax.annotate(f"{name} due", (t, 1.0), xytext=(2, -10), textcoords="offset points", fontsize=7,
+                        color=colour, rotation=90, va="top")
+    ax.set_xlabel("years after the newer inspection")
+    ax.set_ylabel("probability")
+    ax.set_ylim(0, 1.02)
+    ax.set_xlim(0, 30)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, ncols=2, loc="lower right")
+    ax.set_title("Probability of reaching MRT and of a leak, per zone")
+    return fig

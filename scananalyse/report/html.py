@@ -72,7 +72,8 @@ ZONE_SHORT_COLUMNS = ("zone", "area_m2", "coverage_pct", "t_min_mm", "depth_max_
 
 #: Columns of the method comparison table.
 METHOD_COLUMNS = ("zone", "interval_code_y", "life_local_y", "life_eva_y", "interval_cap_y",
-                  "interval_recommended_y", "limiting", "flags")
+                  "interval_recommended_y", "limiting", "life_p05_y", "life_p50_y", "life_p95_y",
+                  "p_mrt_at_due", "p_leak_at_due", "flags")
 
 #: Columns of the indication list (the full list is indications.csv).
 INDICATION_COLUMNS = ("id", "zone", "plate", "side", "x_mm", "y_mm", "depth_max_mm", "t_min_mm",

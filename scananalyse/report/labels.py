@@ -45,6 +45,11 @@ LABELS = {
     "life_eva_y": "Extreme-value life",
     "life_eva_depth_rate_y": "Extreme-value life from deepest pit and fastest rate",
     "interval_recommended_y": "Recommended interval",
+    "life_p05_y": "Life to MRT, 5th percentile",
+    "life_p50_y": "Life to MRT, median",
+    "life_p95_y": "Life to MRT, 95th percentile",
+    "p_mrt_at_due": "Probability some point is below MRT at the due date",
+    "p_leak_at_due": "Probability of a through-wall pit at the due date",
     "interval_after_repair_y": "Interval after the proposed repairs",
     "interval_cap_y": "Longest interval allowed (cap)",
     "cap_y": "Longest interval allowed (cap)",
@@ -188,6 +193,7 @@ LIMITING_WORDS = {
     "eva": "the extreme-value life (the deepest pit expected where nobody scanned)",
     "initial": "the initial-interval rule (no rates known)",
     "cap": "the longest interval the rules allow",
+    "probability": "the target probability of falling below MRT (--target-probability)",
     "": "nothing (no interval could be set)",
     "none": "nothing (no interval could be set)",
 }
@@ -199,6 +205,7 @@ LIMITING_SHORT = {
     "eva": "extreme values",
     "initial": "initial rule",
     "cap": "cap",
+    "probability": "target probability",
     "none": "–",
 }
 
