@@ -932,7 +932,12 @@ def add_life_distribution(table: pd.DataFrame, dists: dict, *, inspected: _dt.da
                 out.iloc[i, out.columns.get_loc("interval_recommended_y")] = rec
                 out.iloc[i, out.columns.get_loc("limiting")] = "probability"
                 out.iloc[i, out.columns.get_loc("next_due")] = add_years(inspected, rec).isoformat()
-        rows.append(d.row(rec))
+        row = d.row(rec)
+        if target_probability is not None and math.isfinite(rec) and row["p_mrt_at_due"] > target_probability:
+            # even now (interval 0) the chance that some point is already below MRT is above the target
+            fl = str(out["flags"].iloc[i] or "")
+            out.iloc[i, out.columns.get_loc("flags")] = ";".join(f for f in (fl, "probability-above-target") if f)
+        rows.append(row)
     for c in PROBABILITY_COLUMNS:
         out[c] = [r[c] for r in rows]
     return out

@@ -227,3 +227,49 @@ def test_no_process_wide_settings_in_the_package():
     hits = [f"{f.relative_to(root)}" for f in root.rglob("*.py")
             if any(w in f.read_text(encoding="utf-8") for w in ("mallopt", "malloc_trim", "_set_madvise_hugepage"))]
     assert hits == []
+
+
+def test_compare_refuses_an_unreliable_registration():
+    # Issue: never short-term rates from a failed alignment.  A 3 m floor rotated 2° cannot be
+    # registered reliably (the rotation is unobservable at that size, register's own check);
+    # analyse refuses with one line naming the older scan and what to do.
+    from scananalyse.errors import InputError
+
+    p = make_pair(diameter_mm=3000.0, pitch_new=20.0, pitch_old=25.0, seed=1)
+    with pytest.warns(Warning), pytest.raises(InputError, match=r"could not be aligned reliably.*control points"):
+        analyse(p.new, p.old, job=Job(diameter=3000.0))
+
+
+def test_zone_life_distribution_columns_and_target_probability():
+    # The zones tables carry the life distribution; p05 <= p50 <= p95 and the probabilities
+    # are probabilities of the draws at the recommended interval (LifeDistribution.row).
+    from scananalyse.assess import PROBABILITY_COLUMNS
+
+    # a mild floor (slow pits, none hidden) whose interior keeps a positive interval
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
+                     shift_mm=(40.0, 20.0), max_pit_rate=0.15, n_hidden_pits=0)
+    an = analyse(pair.new, pair.old, job=Job(diameter=4000.0))
+    for t in (an.zone_table, an.zones_repaired):
+        assert set(PROBABILITY_COLUMNS) <= set(t.columns)
+    z = an.zone_table.set_index("zone")
+    ok = [n for n, d in an.life_dists.items() if d.ok]
+    assert ok
+    for n in ok:
+        r = z.loc[n]
+        assert r.life_p05_y <= r.life_p50_y <= r.life_p95_y
+        d = an.life_dists[n]
+        assert r.p_mrt_at_due == pytest.approx(float(np.mean(d.life_mrt <= r.interval_recommended_y)))
+        assert 0.0 <= r.p_leak_at_due <= r.p_mrt_at_due <= 1.0
+    # a target probability below what the recommendation carries shortens it, and says so
+    n = max(ok, key=lambda k: z.loc[k, "interval_recommended_y"])
+    rec, p_at = z.loc[n, "interval_recommended_y"], z.loc[n, "p_mrt_at_due"]
+    if rec > 0 and p_at > 0.002:
+        target = max(p_at / 4.0, 0.001)
+        an2 = analyse(pair.new, pair.old, job=Job(diameter=4000.0, target_probability=target))
+        r2 = an2.zone_table.set_index("zone").loc[n]
+        assert r2.interval_recommended_y < rec and r2.limiting == "probability"
+        # the target is met, or the zone is at 0 and flagged (already too likely below MRT)
+        assert r2.p_mrt_at_due <= target or (r2.interval_recommended_y == 0.0
+                                             and "probability-above-target" in r2["flags"])
+    else:
+        pytest.fail(f"the test floor no longer gives a zone with a positive interval and risk ({rec}, {p_at})")

@@ -182,6 +182,9 @@ FLAGS_EXPLAINED = {
     "overlaps-without-min-size": "The patch overlaps another patch or a plate seam but is "
                                  "smaller than the rule set's minimum size for that.",
     "not-beyond-corrosion": "The patch does not extend far enough beyond the corroded area.",
+    "probability-above-target": "Even at once (interval 0) the probability that some point of the zone is "
+                                "already below MRT is above the target probability: prove up by hand UT or "
+                                "repair before return to service.",
     "shell-clearance": "The patch's weld lies closer to the inside of the shell than the rule set's "
                        "lap-joint clearance (600 mm, API 650 §5.5.2): replace or insert plate there instead.",
 }
