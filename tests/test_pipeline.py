@@ -273,3 +273,24 @@ def test_zone_life_distribution_columns_and_target_probability():
                                              and "probability-above-target" in r2["flags"])
     else:
         pytest.fail(f"the test floor no longer gives a zone with a positive interval and risk ({rec}, {p_at})")
+
+
+def test_repaired_life_distribution_reuses_only_untouched_zones():
+    # The repaired floor reuses the as-found draws of zones no patch touches: they must be the
+    # same draws as computing them again from the repaired maps (the zone's inputs are equal).
+    from scananalyse.probability import life_distributions, repaired_rates
+
+    pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
+                     shift_mm=(40.0, 20.0), max_pit_rate=0.15, n_hidden_pits=0)
+    an = analyse(pair.new, pair.old, job=Job(diameter=4000.0, zone_rings=2, zone_sectors=4))
+    rm = an.repaired_maps
+    assert rm["patched"].any()
+    again = life_distributions(rm["thickness_repaired"], repaired_rates(an.rates, rm), an.zones, an.mrt_map,
+                               an.extremes_depth, nominal=an.new.meta.nominal, sigma_t=an.rates.sigma_new,
+                               pitch=an.new.pitch, seed=an.job.seed)
+    n_same = 0
+    for k, name in enumerate(an.zones.names):
+        if an.life_dists[name].ok and not rm["patched"][an.zones.labels == k].any():
+            np.testing.assert_array_equal(again[name].life_mrt, an.life_dists[name].life_mrt)
+            n_same += 1
+    assert n_same >= 1
