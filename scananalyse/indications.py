@@ -17,13 +17,11 @@ from __future__ import annotations
 import datetime as _dt
 import math
 import os
-import tempfile
 
 import numpy as np
 import pandas as pd
 
 from .errors import InputError, where
-from .outputs import publish_file
 from .scan import SIDE_NAMES, SIDE_UNKNOWN, years_between
 
 __all__ = [

@@ -88,7 +88,7 @@ def read_job_inputs(job: Job, new: FloorScan, rules=None, *, old: FloorScan | No
     """Read every file the job names besides the scans (shapes, top-side depth, repair
     records, the engineer's patches, spot readings), so bad files are refused before any
     work is done.  With ``old`` given, the readings are also told apart by outage
-    (:func:`split_readings`)."""
+    (:func:`~scananalyse.readings.split_readings`)."""
     rules = rules or get_ruleset(job.ruleset, job.rule_overrides or None)
     top_depth = None
     if job.top_depth:
@@ -100,50 +100,8 @@ def read_job_inputs(job: Job, new: FloorScan, rules=None, *, old: FloorScan | No
         "top_depth": top_depth,
         "repairs": rates.read_repairs(job.repairs, scan=new) if job.repairs else None,
         "patches": repair.read_patches(job.patches, rules=rules) if job.patches else None,
-        "readings": _split_or_list([rd.read_readings(p) for p in job.readings], new, old),
+        "readings": rd.job_readings([rd.read_readings(p) for p in job.readings], new, old),
     }
-
-
-#: A readings file further than this from the nearest scan's date is refused. [days]
-READINGS_MAX_DAYS = 365
-
-
-def split_readings(readings, new: FloorScan, old: FloorScan | None = None):
-    """Tell spot readings apart by outage: each file goes to the inspection whose date is
-    nearest its ``inspected`` date; the files of one outage are merged.
-
-    Parameters
-    ----------
-    readings : list of :class:`~scananalyse.readings.Readings`.
-    new, old : the newer (or only) and older scans.
-
-    Returns
-    -------
-    (Readings or None, Readings or None) : the newer outage's and the older outage's.
-
-    Raises
-    ------
-    InputError
-        A file dated more than :data:`READINGS_MAX_DAYS` from every scan (it matches
-        neither inspection), naming the file and its ``inspected`` field.
-    """
-    groups: dict = {"new": [], "old": []}
-    for r in readings:
-        cands = [("new", new)] + ([("old", old)] if old is not None else [])
-        which, scan = min(cands, key=lambda c: abs((r.inspected - c[1].meta.inspected).days))
-        gap = abs((r.inspected - scan.meta.inspected).days)
-        if gap > READINGS_MAX_DAYS:
-            dates = " and ".join(str(c[1].meta.inspected) for c in reversed(cands))
-            raise InputError(f"{r.source or 'readings'}: field 'inspected': readings dated {r.inspected} are more "
-                             f"than {READINGS_MAX_DAYS} days from the scan{'s' if old is not None else ''} "
-                             f"({dates}): they belong to no inspection of this job")
-        groups[which].append(r)
-    return tuple(rd.merge_readings(g) if g else None for g in (groups["new"], groups["old"]))
-
-
-def _split_or_list(readings, new, old):
-    return {"files": readings, "split": split_readings(readings, new, old) if readings else (None, None),
-            "old_known": old is not None}
 
 
 def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress: Progress | None = None,
@@ -175,7 +133,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     fit_kw = dict(pitch=new.pitch, block_mm=job.block_mm, seed=job.seed)
     rdg = inputs.get("readings") or {"files": []}
     if rdg["files"] and not rdg.get("old_known") and old is not None:
-        rdg = _split_or_list(rdg["files"], new, old)  # read without the older scan: tell them apart now
+        rdg = rd.job_readings(rdg["files"], new, old)  # read without the older scan: tell them apart now
     readings_new, readings_old = rdg["split"] if rdg["files"] else (None, None)
     scan_new = new  # as scanned, before the readings
 
@@ -197,7 +155,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                              f"({why}); give control points (--control-points), or run 'assess' on the newer scan")
         if readings_old is not None:
             with prog.stage("readings"):
-                old, rinfo_old = _apply_old_readings(old, readings_old, new, job, readings_new)
+                old, rinfo_old = rd.apply_old_readings(old, readings_old, new, job, readings_new)
                 assumptions.extend(rinfo_old["assumptions"])
         with prog.stage("resampling"):
             # only the thickness is used on the newer grid (the layers are not carried)
@@ -208,7 +166,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         # the readings govern at their cells; unproved loss corrected for under-sizing; the
         # corrected floor goes into every later stage
         with prog.stage("readings"):
-            new, rinfo = _apply_new_readings(new, readings_new, job)
+            new, rinfo = rd.apply_new_readings(new, readings_new, job)
             assumptions.extend(rinfo["assumptions"])
     with prog.stage("attribution"):
         shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
@@ -311,7 +269,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         table = assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
                                              target_probability=job.target_probability)
         if reading_zone_table is not None:
-            table = add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected)
+            table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected)
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
@@ -326,7 +284,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             rep["zones_repaired"], life_dists_rep, inspected=new.meta.inspected, rules=rules,
             target_probability=job.target_probability)
         if reading_zone_table is not None and rep.get("zones_repaired") is not None:
-            rep["zones_repaired"] = add_reading_zones(rep["zones_repaired"], reading_zone_table, rules=rules,
+            rep["zones_repaired"] = rd.add_reading_zones(rep["zones_repaired"], reading_zone_table, rules=rules,
                                                       inspected=new.meta.inspected)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
@@ -337,7 +295,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     extremes_rate=ext_rate, hidden=hidden, life_dists=life_dists, zone_table=table, life_map=life, mrt_map=mrt,
                     indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
-                    readings=_readings_result(rinfo, reading_zone_table, scan_new, readings_new, readings_old),
+                    readings=rd.readings_result(rinfo, reading_zone_table, scan_new, readings_new, readings_old),
                     **rep)
 
 
@@ -409,132 +367,3 @@ def _indications(found, new, old, reg, lr, zmap, labels, *, old_on_new=None, rep
         g = g[[c for c in ind.columns if c in g.columns]]
         ind = pd.concat([ind, g], ignore_index=True)
     return ind, gone
-
-
-# --------------------------------------------------------------------------- spot readings
-def _thickness_pairs(pairs):
-    """The pairs whose thickness may go into the grid: UT and prove-up readings on scanned
-    cells (a point is not an area: a reading where the scan has no value stays a point,
-    assessed by :func:`~scananalyse.readings.reading_zone_summary`), and every pit gauge."""
-    keep = pairs["scanned"].to_numpy(bool) | (pairs["kind"] == "pit-gauge").to_numpy()
-    return pairs[keep]
-
-
-def _apply_new_readings(new: FloorScan, readings, job: Job):
-    """The newer scan with its outage's readings applied and its unproved loss corrected."""
-    pairs = rd.pair_readings(readings, new)
-    check = rd.sizing_check(pairs, nominal_mm=new.meta.nominal)
-    applied = rd.apply_readings(new.thickness, _thickness_pairs(pairs))
-    t = applied.thickness
-    corrected = False
-    if job.sizing_correction and check.undersized:
-        t = rd.correct_undersizing(t, new.meta.nominal, check, proved_mask=applied.proved)
-        corrected = True
-    n_t = int(np.count_nonzero(applied.proved))
-    out = [f"Spot readings of {readings.inspected} ({len(readings)} readings): UT and prove-up thicknesses govern "
-           f"at their {n_t} scanned cells; readings where the scan has no value are points, not area: they assess "
-           "zones the scan did not cover (readings-only) and do not count as coverage."]
-    if corrected:
-        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; the loss of every unproved scanned "
-                   f"cell of the newer scan is multiplied by k = {check.k:.3f} (loss only ever increased).")
-    elif check.undersized:
-        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; NOT corrected "
-                   "(--no-sizing-correction): the scan's loss depths may be too shallow.")
-    else:
-        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; no correction applied.")
-    info = {"pairs": pairs, "check": check, "applied": applied, "corrected": corrected,
-            "assumptions": out, "prove_up": None}
-    return dataclasses.replace(new, thickness=t), info
-
-
-def _apply_old_readings(old: FloorScan, readings, new: FloorScan, job: Job, readings_new=None):
-    """The older scan with its outage's readings (in its own frame) applied.
-
-    The sizing correction found on the newer scan is applied to the older one only when
-    both were scanned by the same method: the same under-sizing then hides part of the
-    growth too.  With another method the older scan's sizing error is unknown, and
-    leaving it uncorrected keeps the short-term rates on the high side."""
-    pairs = rd.pair_readings(readings, old)
-    applied = rd.apply_readings(old.thickness, _thickness_pairs(pairs))
-    t = applied.thickness
-    m_old, m_new = (str(s.meta.method or "").strip().upper() for s in (old, new))
-    same = bool(m_old) and m_old == m_new
-    note = (f"Older spot readings of {readings.inspected} ({len(readings)} readings) govern at their scanned cells "
-            "of the older scan. ")
-    if job.sizing_correction and same:
-        check = rd.sizing_check(rd.pair_readings(readings_new, new), nominal_mm=new.meta.nominal) \
-            if readings_new is not None else None
-        if check is not None and check.undersized:
-            t = rd.correct_undersizing(t, old.meta.nominal, check, proved_mask=applied.proved)
-        note += ("Both scans are " + m_new + ": if the newer prove-ups show under-sizing, the older scan's "
-                 "unproved loss is corrected by the same ratio, since the same method under-sizes the growth too.")
-    else:
-        note += ("The older scan is not corrected for sizing: " + ("the correction is off." if not job.sizing_correction
-                 else f"it was scanned by another method ({m_old or 'unknown'} against {m_new or 'unknown'}), whose "
-                 "sizing error is unknown; left as scanned, its loss is if anything too shallow, which keeps the "
-                 "short-term rates on the high side."))
-    return dataclasses.replace(old, thickness=t), {"pairs": pairs, "applied": applied, "assumptions": [note],
-                                                   "same_method": same}
-
-
-def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, inspected) -> pd.DataFrame:
-    """The zone table with the spot readings' zone summary added.
-
-    Parameters
-    ----------
-    table : zones.csv table (:func:`~scananalyse.assess.assess_zones`).
-    summary : :func:`~scananalyse.readings.reading_zone_summary` output.
-    rules : :class:`~scananalyse.rules.RuleSet` (interval rounding).
-    inspected : date of the newer inspection (``next_due``).
-
-    Returns
-    -------
-    DataFrame : ``n_readings`` on every row; a zone with no scanned cell but with
-    readings takes the readings' thinnest value, code interval and co-located life in
-    place of the ``no-data`` NaNs, flagged ``readings-only;points-only`` (``no-data``
-    stays only where nothing at all was read).
-
-    Notes
-    -----
-    The recommended interval of such a zone is min(readings' code interval, co-located
-    life of the readings, cap), never below 0 and rounded down; with neither a code
-    interval nor a life it stays NaN.  The floor between the readings is unseen
-    (``points-only``): the extreme-value life has no data there and is not used.
-    """
-    out = table.copy()
-    s = summary.set_index("zone") if len(summary) else None
-    out["n_readings"] = [int(s.at[z, "n_readings"]) if s is not None and z in s.index else 0 for z in out["zone"]]
-    if s is None:
-        return out
-    for i in out.index:
-        z = out.at[i, "zone"]
-        flags = str(out.at[i, "flags"]).split(";") if isinstance(out.at[i, "flags"], str) else []
-        if z not in s.index or "no-data" not in flags:
-            continue
-        r = s.loc[z]
-        for col in ("t_min_mm", "interval_code_y", "life_local_y", "rtbc_mm", "rtip_mm", "stpr_mm_y", "upr_mm_y"):
-            if col in out.columns:
-                out.at[i, col] = float(r[col])
-        cap = float(out.at[i, "cap_y"]) if "cap_y" in out.columns else float("nan")
-        bounds = {"code": float(r["interval_code_y"]), "local": float(r["life_local_y"]), "cap": cap}
-        valid = {b: v for b, v in bounds.items() if not np.isnan(v)}
-        if "code" in valid or "local" in valid:
-            best = min(valid.values())
-            rec = rules.round_interval(max(best, 0.0))
-            out.at[i, "interval_recommended_y"] = rec
-            out.at[i, "limiting"] = next(b for b in ("code", "local", "cap") if b in valid and valid[b] == best)
-            out.at[i, "next_due"] = assess.add_years(inspected, rec).isoformat()
-        rflags = [f for f in str(r["flags"]).split(";") if f and f != "points-only"]
-        out.at[i, "flags"] = ";".join(["readings-only", "points-only"] + rflags)
-        out.at[i, "notes"] = f"no scanned cell; from {int(r['n_readings'])} spot readings: " + str(r["notes"])
-    return out
-
-
-def _readings_result(rinfo, zone_summary, scan_new, readings_new, readings_old) -> dict:
-    """What :class:`Analysis` keeps of the readings (empty without readings)."""
-    if rinfo is None:
-        return {}
-    return {"new": readings_new, "old": readings_old, "pairs": rinfo["pairs"], "check": rinfo["check"],
-            "corrected": rinfo["corrected"], "zones": zone_summary, "prove_up": rinfo["prove_up"],
-            "proved": rinfo["applied"].proved, "depth_top": rinfo["applied"].depth_top,
-            "thickness_scanned": scan_new.thickness}

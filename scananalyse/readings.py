@@ -48,16 +48,29 @@ import math
 import os
 import stat
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
-from .assess import AssessOptions, code_interval
+import dataclasses
+
+from .assess import AssessOptions, add_years, code_interval
 from .errors import InputError, where
 from .io import validate as v
 from .scan import SIDE_TOP, SIDE_UNDER, years_between
 
+if TYPE_CHECKING:  # annotations only
+    from .job import Job
+    from .scan import FloorScan
+
 __all__ = [
+    "split_readings",
+    "job_readings",
+    "apply_new_readings",
+    "apply_old_readings",
+    "add_reading_zones",
+    "readings_result",
     "FORMAT_NAME",
     "FORMAT_VERSION",
     "KINDS",
@@ -1029,3 +1042,175 @@ def prove_up_candidates(indications: pd.DataFrame, pairs: pd.DataFrame | None = 
     out = out.sort_values("depth_max_mm", ascending=False, kind="stable", na_position="last")
     out.insert(len(out.columns) - 1, "rank", np.arange(1, len(out) + 1, dtype=np.int64))
     return out.reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------- in a job
+#: A readings file further than this from the nearest scan's date is refused. [days]
+READINGS_MAX_DAYS = 365
+
+
+def split_readings(readings, new: FloorScan, old: FloorScan | None = None):
+    """Tell spot readings apart by outage: each file goes to the inspection whose date is
+    nearest its ``inspected`` date; the files of one outage are merged.
+
+    Parameters
+    ----------
+    readings : list of :class:`~scananalyse.readings.Readings`.
+    new, old : the newer (or only) and older scans.
+
+    Returns
+    -------
+    (Readings or None, Readings or None) : the newer outage's and the older outage's.
+
+    Raises
+    ------
+    InputError
+        A file dated more than :data:`READINGS_MAX_DAYS` from every scan (it matches
+        neither inspection), naming the file and its ``inspected`` field.
+    """
+    groups: dict = {"new": [], "old": []}
+    for r in readings:
+        cands = [("new", new)] + ([("old", old)] if old is not None else [])
+        which, scan = min(cands, key=lambda c: abs((r.inspected - c[1].meta.inspected).days))
+        gap = abs((r.inspected - scan.meta.inspected).days)
+        if gap > READINGS_MAX_DAYS:
+            dates = " and ".join(str(c[1].meta.inspected) for c in reversed(cands))
+            raise InputError(f"{r.source or 'readings'}: field 'inspected': readings dated {r.inspected} are more "
+                             f"than {READINGS_MAX_DAYS} days from the scan{'s' if old is not None else ''} "
+                             f"({dates}): they belong to no inspection of this job")
+        groups[which].append(r)
+    return tuple(merge_readings(g) if g else None for g in (groups["new"], groups["old"]))
+
+
+def job_readings(readings, new, old):
+    """The job's readings files, and (:func:`split_readings`) the newer and older outage's."""
+    return {"files": readings, "split": split_readings(readings, new, old) if readings else (None, None),
+            "old_known": old is not None}
+
+
+def _thickness_pairs(pairs):
+    """The pairs whose thickness may go into the grid: UT and prove-up readings on scanned
+    cells (a point is not an area: a reading where the scan has no value stays a point,
+    assessed by :func:`~scananalyse.readings.reading_zone_summary`), and every pit gauge."""
+    keep = pairs["scanned"].to_numpy(bool) | (pairs["kind"] == "pit-gauge").to_numpy()
+    return pairs[keep]
+
+
+def apply_new_readings(new: FloorScan, readings, job: Job):
+    """The newer scan with its outage's readings applied and its unproved loss corrected."""
+    pairs = pair_readings(readings, new)
+    check = sizing_check(pairs, nominal_mm=new.meta.nominal)
+    applied = apply_readings(new.thickness, _thickness_pairs(pairs))
+    t = applied.thickness
+    corrected = False
+    if job.sizing_correction and check.undersized:
+        t = correct_undersizing(t, new.meta.nominal, check, proved_mask=applied.proved)
+        corrected = True
+    n_t = int(np.count_nonzero(applied.proved))
+    out = [f"Spot readings of {readings.inspected} ({len(readings)} readings): UT and prove-up thicknesses govern "
+           f"at their {n_t} scanned cells; readings where the scan has no value are points, not area: they assess "
+           "zones the scan did not cover (readings-only) and do not count as coverage."]
+    if corrected:
+        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; the loss of every unproved scanned "
+                   f"cell of the newer scan is multiplied by k = {check.k:.3f} (loss only ever increased).")
+    elif check.undersized:
+        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; NOT corrected "
+                   "(--no-sizing-correction): the scan's loss depths may be too shallow.")
+    else:
+        out.append(f"Sizing check on {check.n_pairs} prove-ups: {check.note}; no correction applied.")
+    info = {"pairs": pairs, "check": check, "applied": applied, "corrected": corrected,
+            "assumptions": out, "prove_up": None}
+    return dataclasses.replace(new, thickness=t), info
+
+
+def apply_old_readings(old: FloorScan, readings, new: FloorScan, job: Job, readings_new=None):
+    """The older scan with its outage's readings (in its own frame) applied.
+
+    The sizing correction found on the newer scan is applied to the older one only when
+    both were scanned by the same method: the same under-sizing then hides part of the
+    growth too.  With another method the older scan's sizing error is unknown, and
+    leaving it uncorrected keeps the short-term rates on the high side."""
+    pairs = pair_readings(readings, old)
+    applied = apply_readings(old.thickness, _thickness_pairs(pairs))
+    t = applied.thickness
+    m_old, m_new = (str(s.meta.method or "").strip().upper() for s in (old, new))
+    same = bool(m_old) and m_old == m_new
+    note = (f"Older spot readings of {readings.inspected} ({len(readings)} readings) govern at their scanned cells "
+            "of the older scan. ")
+    if job.sizing_correction and same:
+        check = sizing_check(pair_readings(readings_new, new), nominal_mm=new.meta.nominal) \
+            if readings_new is not None else None
+        if check is not None and check.undersized:
+            t = correct_undersizing(t, old.meta.nominal, check, proved_mask=applied.proved)
+        note += ("Both scans are " + m_new + ": if the newer prove-ups show under-sizing, the older scan's "
+                 "unproved loss is corrected by the same ratio, since the same method under-sizes the growth too.")
+    else:
+        note += ("The older scan is not corrected for sizing: " + ("the correction is off." if not job.sizing_correction
+                 else f"it was scanned by another method ({m_old or 'unknown'} against {m_new or 'unknown'}), whose "
+                 "sizing error is unknown; left as scanned, its loss is if anything too shallow, which keeps the "
+                 "short-term rates on the high side."))
+    return dataclasses.replace(old, thickness=t), {"pairs": pairs, "applied": applied, "assumptions": [note],
+                                                   "same_method": same}
+
+
+def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, inspected) -> pd.DataFrame:
+    """The zone table with the spot readings' zone summary added.
+
+    Parameters
+    ----------
+    table : zones.csv table (:func:`~scananalyse.assess.assess_zones`).
+    summary : :func:`~scananalyse.readings.reading_zone_summary` output.
+    rules : :class:`~scananalyse.rules.RuleSet` (interval rounding).
+    inspected : date of the newer inspection (``next_due``).
+
+    Returns
+    -------
+    DataFrame : ``n_readings`` on every row; a zone with no scanned cell but with
+    readings takes the readings' thinnest value, code interval and co-located life in
+    place of the ``no-data`` NaNs, flagged ``readings-only;points-only`` (``no-data``
+    stays only where nothing at all was read).
+
+    Notes
+    -----
+    The recommended interval of such a zone is min(readings' code interval, co-located
+    life of the readings, cap), never below 0 and rounded down; with neither a code
+    interval nor a life it stays NaN.  The floor between the readings is unseen
+    (``points-only``): the extreme-value life has no data there and is not used.
+    """
+    out = table.copy()
+    s = summary.set_index("zone") if len(summary) else None
+    out["n_readings"] = [int(s.at[z, "n_readings"]) if s is not None and z in s.index else 0 for z in out["zone"]]
+    if s is None:
+        return out
+    for i in out.index:
+        z = out.at[i, "zone"]
+        flags = str(out.at[i, "flags"]).split(";") if isinstance(out.at[i, "flags"], str) else []
+        if z not in s.index or "no-data" not in flags:
+            continue
+        r = s.loc[z]
+        for col in ("t_min_mm", "interval_code_y", "life_local_y", "rtbc_mm", "rtip_mm", "stpr_mm_y", "upr_mm_y"):
+            if col in out.columns:
+                out.at[i, col] = float(r[col])
+        cap = float(out.at[i, "cap_y"]) if "cap_y" in out.columns else float("nan")
+        bounds = {"code": float(r["interval_code_y"]), "local": float(r["life_local_y"]), "cap": cap}
+        valid = {b: v for b, v in bounds.items() if not np.isnan(v)}
+        if "code" in valid or "local" in valid:
+            best = min(valid.values())
+            rec = rules.round_interval(max(best, 0.0))
+            out.at[i, "interval_recommended_y"] = rec
+            out.at[i, "limiting"] = next(b for b in ("code", "local", "cap") if b in valid and valid[b] == best)
+            out.at[i, "next_due"] = add_years(inspected, rec).isoformat()
+        rflags = [f for f in str(r["flags"]).split(";") if f and f != "points-only"]
+        out.at[i, "flags"] = ";".join(["readings-only", "points-only"] + rflags)
+        out.at[i, "notes"] = f"no scanned cell; from {int(r['n_readings'])} spot readings: " + str(r["notes"])
+    return out
+
+
+def readings_result(rinfo, zone_summary, scan_new, readings_new, readings_old) -> dict:
+    """What :class:`Analysis` keeps of the readings (empty without readings)."""
+    if rinfo is None:
+        return {}
+    return {"new": readings_new, "old": readings_old, "pairs": rinfo["pairs"], "check": rinfo["check"],
+            "corrected": rinfo["corrected"], "zones": zone_summary, "prove_up": rinfo["prove_up"],
+            "proved": rinfo["applied"].proved, "depth_top": rinfo["applied"].depth_top,
+            "thickness_scanned": scan_new.thickness}

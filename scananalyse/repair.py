@@ -41,7 +41,6 @@ straight runs at least as long as the clearance take part in the clearance test
 
 from __future__ import annotations
 
-import csv
 import math
 import os
 import tempfile

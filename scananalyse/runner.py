@@ -111,24 +111,6 @@ def _fmt(v, nd=1) -> str:
     return f"{v:.{nd}f}"
 
 
-def _to_mm(value, scan: FloorScan):
-    if value is None:
-        return None
-    return float(value) * (MM_PER_IN if scan.meta.units == "in" else 1.0)
-
-
-def _fmt(v, nd=1) -> str:
-    try:
-        v = float(v)
-    except (TypeError, ValueError):
-        return "-"
-    if math.isnan(v):
-        return "-"
-    if math.isinf(v):
-        return "inf"
-    return f"{v:.{nd}f}"
-
-
 def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi: int = 130) -> list:
     """Write every output file of an analysis into ``folder`` (which must exist).
 

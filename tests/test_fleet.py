@@ -1,6 +1,5 @@
 """Fleet runs on a real Dask LocalCluster (two worker processes on loopback)."""
 
-import math
 
 import numpy as np
 import pandas as pd

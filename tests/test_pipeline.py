@@ -1,6 +1,5 @@
 """The whole analysis on synthetic floors with known truth (invented data)."""
 
-import os
 
 import numpy as np
 import pandas as pd

@@ -1,6 +1,5 @@
 """The commands never delete a user's folder (issue 22, items 2 and 4, and --out .)."""
 
-import os
 
 import pytest
 
