@@ -167,3 +167,28 @@ def test_new_figures_render_to_png(runs):
     for slug in NEW_SLUGS:
         data = F.png_bytes(specs[slug][2]())
         assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
+
+
+def test_repair_record_map_shapes_and_dates_before_the_older_inspection():
+    import datetime as dt
+
+    from matplotlib.patches import Circle, Polygon
+
+    from scananalyse.attribution import Shape
+    from scananalyse.rates import Repair
+
+    reps = [Repair(Shape("circle", 0, x=100.0, y=100.0, r=50.0), dt.date(2012, 3, 4)),
+            Repair(Shape("polygon", 0, points=((-300.0, -300.0), (-100.0, -300.0), (-200.0, -150.0))),
+                   dt.date(2020, 7, 1), thickness=8.0)]
+    t = np.full((40, 40), 6.0)
+    fig = F.repair_record_map(t, reps, older_date=dt.date(2016, 5, 1), extent=(-400, 400, -400, 400),
+                              diameter_mm=800.0)
+    ax = fig.axes[0]
+    circ = [p for p in ax.patches if isinstance(p, Circle) and p.get_radius() == pytest.approx(0.05)]
+    poly = [p for p in ax.patches if isinstance(p, Polygon) and len(p.get_xy()) >= 3
+            and np.allclose(p.get_xy()[:3], np.array(reps[1].shape.points) / 1000.0)]
+    assert len(circ) == 1 and len(poly) == 1
+    assert circ[0].get_linestyle() == "--" and poly[0].get_linestyle() == "-"  # before / after the older scan
+    assert fig.scananalyse_repair_labels == ["R1 2012-03-04", "R2 2020-07-01\n8.00 mm plate"]
+    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert "repaired between the inspections" in legend and "repaired before the older inspection" in legend

@@ -235,7 +235,7 @@ def comparison_specs(an, units: str) -> list:
                     "indication there), grown (growth above the noise level), stable, repaired (mostly inside an "
                     "area repaired since the older inspection), partly unscanned (to prove up: part may lie in "
                     "unscanned ground) and not found (an older indication with no newer one, at its older place); "
-                    "box: the indication's extent, marker at its centre, with its id.",
+                    "box: the indication's extent, marker at its centre, with its id when there are at most 60.",
                     partial(F.indication_status_map, ind, scanned=np.isfinite(new.thickness),
                             extent=new.extent, units=units, diameter_mm=an.zones.geometry.diameter_mm,
                             centre=an.zones.geometry.centre, plate=new.plate, zones=an.zones,

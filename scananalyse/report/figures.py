@@ -893,6 +893,7 @@ def repair_record_map(values, repairs, *, older_date=None, title="Repair record"
         record order).
     """
     units = kw.get("units", "mm")
+    cx = float(kw.get("centre", (0.0, 0.0))[0])
     labels = []
 
     def draw(ax, handles):
@@ -911,9 +912,12 @@ def repair_record_map(values, repairs, *, older_date=None, title="Repair record"
                          f"{U.unit_label('thickness', units)} plate")
             labels.append(text)
             x0, x1, y0, y1 = r.shape.bounds
-            ax.annotate(text, (x1 / 1000.0, y1 / 1000.0), xytext=(3, 3), textcoords="offset points", fontsize=7,
+            right = (x0 + x1) / 2 > cx  # the label towards the tank centre, so it stays on the map
+            ax.annotate(text, ((x0 if right else x1) / 1000.0, y1 / 1000.0), xytext=(-3 if right else 3, 3),
+                        textcoords="offset points", fontsize=7, ha="right" if right else "left",
                         color="#00502f", fontweight="bold", zorder=7, va="bottom",
-                        path_effects=[patheffects.withStroke(linewidth=2.4, foreground="white")])
+                        bbox=dict(boxstyle="round,pad=0.2", facecolor="white", edgecolor=_REPAIR_COLOUR,
+                                  linewidth=0.6, alpha=0.88))
         if True in styles:
             handles.append(Patch(facecolor="none", edgecolor=_REPAIR_COLOUR, linewidth=1.8,
                                  label="repaired" + (" between the inspections" if older_date else "")))
@@ -921,6 +925,7 @@ def repair_record_map(values, repairs, *, older_date=None, title="Repair record"
             handles.append(Patch(facecolor="none", edgecolor=_REPAIR_COLOUR, linewidth=1.8, linestyle="--",
                                  label="repaired before the older inspection"))
 
+    kw.setdefault("plate_numbers", False)  # the dates are the labels that matter here
     fig = floor_map(values, title=title, label=label, kind=kind, overlay=draw, **kw)
     fig.scananalyse_repair_labels = labels
     return fig
