@@ -74,6 +74,8 @@ class Analysis:
     timings: dict = field(default_factory=dict)
     # spot readings (readings CSV v1), when the job gives any
     readings: dict = field(default_factory=dict)
+    # the operator's repair records (rates.read_repairs), for the report's repair-record map
+    repairs: list = field(default_factory=list)
 
     @property
     def single(self) -> bool:
@@ -296,7 +298,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                     indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     readings=rd.readings_result(rinfo, reading_zone_table, scan_new, readings_new, readings_old),
-                    **rep)
+                    repairs=list(repairs or []), **rep)
 
 
 def _zone_map(new, job, rules):

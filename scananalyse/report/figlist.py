@@ -15,7 +15,8 @@ import numpy as np
 from ..indications import reporting_depth
 from . import figures as F
 
-__all__ = ["figure_specs", "shared_range", "summed_rate", "map_specs", "scan_map_specs", "rate_map_specs", "as_found_specs", "repair_specs",
+__all__ = ["figure_specs", "shared_range", "summed_rate", "map_specs", "scan_map_specs", "rate_map_specs",
+           "comparison_specs", "growth_map_data", "as_found_specs", "repair_specs",
            "patches_spec", "registration_figure", "return_level_figure", "return_curve", "file_stem"]
 
 
@@ -41,6 +42,7 @@ def figure_specs(an, units: str) -> list:
     specs = (map_specs(an.new, an.rates, an.zones, an.rules, an.options, an.job, units, single=an.single,
                         life=an.life_map, old=an.old, old_on_new=an.old_on_new,
                         indications=getattr(an, "indications", None))
+             + comparison_specs(an, units)
              + as_found_specs(an.zone_table, an.extremes_depth, units)
              + repair_specs(an, units))
     if getattr(an, "life_dists", None) and any(d.ok for d in an.life_dists.values()):
@@ -172,6 +174,72 @@ def rate_map_specs(new, lr, zmap, job, units, *, single, life, old=None, old_on_
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
                     "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
                     partial(registration_figure, new, old, old_on_new)))
+    return out
+
+
+def growth_map_data(old_on_new_thickness, new_thickness) -> np.ndarray:
+    """Change of thickness between the inspections on the newer grid: the older scan
+    resampled onto the newer grid minus the newer scan (positive = metal lost), NaN
+    where either inspection did not scan the cell. [mm]"""
+    with np.errstate(invalid="ignore"):
+        return (np.asarray(old_on_new_thickness, dtype=np.float32)
+                - np.asarray(new_thickness, dtype=np.float32))
+
+
+def comparison_specs(an, units: str) -> list:
+    """The figures an inspector compares two outages with (two inspections only; none for
+    one): the growth map with its noise band, the two scans side by side on the newer grid
+    and one colour scale, the repair record with its dates (when the job has one) in the
+    maps section, and the indications by status in the indications section."""
+    if getattr(an, "old", None) is None or getattr(an, "old_on_new", None) is None:
+        return []
+    from ..rates import growth_threshold
+    from . import units as U
+
+    new, old, lr = an.new, an.old, an.rates
+    common = map_common(new, an.zones, units)
+    d_new, d_old = new.meta.inspected, old.meta.inspected
+    out = []
+    k = float(getattr(lr, "k_sigma", 2.0))
+    s_old, s_new = float(lr.sigma_old), float(lr.sigma_new)
+    g = growth_threshold(s_old, s_new, k=k)
+    unit = U.unit_label("depth", units)
+    nd = U.decimals("depth", units)
+    g_txt = f"{U.convert(g, 'depth', units):.{nd}f} {unit}"
+    sig_txt = "; ".join(f"σ {w} {U.convert(s, 'depth', units):.{nd + 1}f} {unit}"
+                        for w, s in (("older", s_old), ("newer", s_new)))
+    growth = growth_map_data(an.old_on_new.thickness, new.thickness)
+    out.append(("maps", "growth", f"Change of thickness between the inspections ({d_old} to {d_new}) on the newer "
+                "grid: the older scan resampled onto the newer grid minus the newer scan, so red is metal lost and "
+                "blue is thicker now (a repair, or sizing). The hatched band on the colour bar is the noise level, "
+                f"±{g_txt} = k·√(σ_old² + σ_new²) with k = {k:g} ({sig_txt}): a change inside it is not growth. "
+                "Grey cells were not scanned in one of the inspections.",
+                partial(F.floor_map, growth, title="Change of thickness between the inspections",
+                        label="older − newer thickness (+ = metal lost)", kind="growth", noise_band=g, **common)))
+    out.append(("maps", "scans_side_by_side", f"The older scan ({d_old}) resampled onto the newer grid (left) and "
+                f"the newer scan ({d_new}) (right), on one colour scale; grey cells were not scanned in that "
+                "inspection.",
+                partial(F.floor_map_pair, an.old_on_new.thickness, new.thickness,
+                        titles=(f"Older scan ({d_old}) on the newer grid", f"Newer scan ({d_new})"),
+                        label="remaining thickness", kind="thickness", **common)))
+    repairs = list(getattr(an, "repairs", None) or [])
+    if repairs:
+        out.append(("maps", "repair_record", f"The operator's repair record ({len(repairs)} "
+                    f"area{'s' if len(repairs) != 1 else ''}) on the newer thickness map, each area numbered and "
+                    "dated; solid: repaired between the inspections, dashed: before the older one.",
+                    partial(F.repair_record_map, new.thickness, repairs, older_date=d_old,
+                            title="Repair record on the thickness map now", **common)))
+    ind = getattr(an, "indications", None)
+    if ind is not None and "status" in getattr(ind, "columns", ()):
+        out.append(("indications", "indication_status", "Indications by status on the floor: new (no older "
+                    "indication there), grown (growth above the noise level), stable, repaired (mostly inside an "
+                    "area repaired since the older inspection), partly unscanned (to prove up: part may lie in "
+                    "unscanned ground) and not found (an older indication with no newer one, at its older place); "
+                    "box: the indication's extent, marker at its centre, with its id when there are at most 60.",
+                    partial(F.indication_status_map, ind, scanned=np.isfinite(new.thickness),
+                            extent=new.extent, units=units, diameter_mm=an.zones.geometry.diameter_mm,
+                            centre=an.zones.geometry.centre, plate=new.plate, zones=an.zones,
+                            title="Indications by status")))
     return out
 
 

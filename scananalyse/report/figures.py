@@ -42,6 +42,10 @@ __all__ = [
     "reduce_feature_masks",
     "decimation_caption",
     "floor_map",
+    "floor_map_pair",
+    "indication_status_map",
+    "repair_record_map",
+    "STATUS_STYLE",
     "registration_overlay",
     "probability_plot",
     "return_level_plot",
@@ -60,13 +64,16 @@ CMAPS = {
     "loss": "magma_r",
     "rate": "plasma_r",
     "life": "cividis",
+    # change between the inspections: diverging, centred at 0 (red = metal lost,
+    # blue = thicker now), still continuous
+    "growth": "RdBu_r",
 }
 
 #: Block reduction per kind: the conservative choice for display.
-_REDUCE = {"thickness": "min", "loss": "max", "rate": "max", "life": "min", "side": "max"}
+_REDUCE = {"thickness": "min", "loss": "max", "rate": "max", "life": "min", "side": "max", "growth": "max"}
 
 #: Map kind -> quantity for unit conversion.
-_QUANTITY = {"thickness": "thickness", "loss": "depth", "rate": "rate", "life": "years"}
+_QUANTITY = {"thickness": "thickness", "loss": "depth", "rate": "rate", "life": "years", "growth": "depth"}
 
 # side codes (scan.py): 0 unknown, 1 top, 2 under
 _SIDE_COLOURS = ["#f2efe6", "#d9822b", "#2f6f9f"]
@@ -163,6 +170,7 @@ def decimation_caption(kind: str, factor: int) -> str:
         "loss": "the deepest loss",
         "rate": "the fastest rate",
         "life": "the shortest remaining life",
+        "growth": "the most metal lost between the inspections",
         "side": "the underside where any cell is underside",
     }.get(kind, f"the {which} cell")
     return (f"Reduced for display: each pixel covers {factor} × {factor} scan cells and shows "
@@ -227,7 +235,8 @@ def _find_col(df, names):
 # ---------------------------------------------------------------------------
 def floor_map(values, *, extent, title, label, units="mm", kind="thickness", diameter_mm=None,
               centre=(0.0, 0.0), plate=None, contours=None, patches=None, indications=None,
-              zones=None, plate_numbers=True, max_pixels=400_000, vmin=None, vmax=None, ax=None):
+              zones=None, plate_numbers=True, max_pixels=400_000, vmin=None, vmax=None, ax=None,
+              noise_band=None, colorbar=True, overlay=None):
     """Map of one quantity over the floor.
 
     Parameters
@@ -239,7 +248,9 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     label : colour-bar label without the unit, e.g. ``"remaining thickness"``.
     units : display units, ``"mm"`` (mm, mm/y) or ``"in"`` (in for thickness, mils
         for loss, mpy for rates).
-    kind : ``"thickness"``, ``"loss"``, ``"rate"``, ``"life"`` or ``"side"``.
+    kind : ``"thickness"``, ``"loss"``, ``"rate"``, ``"life"``, ``"growth"`` (change of
+        thickness between two inspections, older minus newer: positive = metal lost; a
+        diverging colour map centred at 0, symmetric range by default) or ``"side"``.
     diameter_mm : inside diameter of the shell, drawn as a circle. [mm]
     centre : tank centre in the floor frame. [mm]
     plate : optional plate-id layer on the same grid (−1 none); seams are drawn where
@@ -262,6 +273,14 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     vmin, vmax : colour range in internal units (default: data range; life is
         clipped to [0, 50] y).
     ax : axes to draw on (default: a new figure).
+    noise_band : ``kind="growth"`` only: the growth threshold g [mm]; the band ±g (a
+        change that is not growth, the noise rule) is marked on the colour bar and in the
+        legend, and the default colour range is at least ±2g so the band shows.
+    colorbar : draw the colour bar (off when several maps share one, e.g.
+        :func:`floor_map_pair`).
+    overlay : optional ``overlay(ax, handles)`` drawing more on the map (in metres of
+        the floor frame) and appending its legend entries to ``handles``, before the
+        legend is made (e.g. :func:`repair_record_map`).
 
     Returns
     -------
@@ -289,7 +308,7 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     ext_m = (x_min, x_min + v.shape[1] * f * px, y_min, y_min + v.shape[0] * f * py)
 
     disp, handles, cax = _draw_values(fig, ax, v, kind=kind, units=units, label=label, vmin=vmin, vmax=vmax,
-                                      ext_m=ext_m, own=own)
+                                      ext_m=ext_m, own=own, band=noise_band, colorbar=colorbar)
     handles.append(Patch(facecolor=NOT_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5,
                          label="not scanned"))
 
@@ -302,6 +321,8 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
         _draw_contours(ax, disp, contours, handles, kind=kind, units=units, ext_m=ext_m, step=(f, px, py))
     _draw_patches(ax, patches, handles)
     _draw_indications(ax, indications, handles)
+    if overlay is not None:
+        overlay(ax, handles)
     xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title)
     if own:
         _place_map(fig, ax, cax, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
@@ -312,9 +333,10 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
 
 
 
-def _draw_values(fig, ax, v, *, kind, units, label, vmin, vmax, ext_m, own):
+def _draw_values(fig, ax, v, *, kind, units, label, vmin, vmax, ext_m, own, band=None, colorbar=True):
     """The grid itself: side codes in their colours, or a quantity on its colour scale
-    with a colour bar; returns ``(displayed grid or None, legend handles, colour-bar axes)``."""
+    with a colour bar (growth: the noise band ``band`` [mm] marked on it); returns
+    ``(displayed grid or None, legend handles, colour-bar axes)``."""
     cax = None
     if kind == "side":
         codes = np.where(np.isfinite(v), v, -1).astype(np.int16)
@@ -343,6 +365,18 @@ def _draw_values(fig, ax, v, *, kind, units, label, vmin, vmax, ext_m, own):
             pos = bool(np.any(disp[np.isfinite(disp)] > hi)) or bool(np.any(np.isposinf(v)))
             extend = {(False, False): "neither", (True, False): "min", (False, True): "max",
                       (True, True): "both"}[(neg, pos)]
+        band_d = None
+        if kind == "growth":
+            # symmetric about 0, so white is "no change"; at least twice the noise band
+            band_d = None if band is None or not np.isfinite(band) else abs(float(U.convert(band, q, units)))
+            big = float(np.max(np.abs(disp[finite]))) if finite.any() else 1.0
+            half = max(big, 2.0 * band_d if band_d else 0.0) or 1.0
+            lo = -half if lo is None else lo
+            hi = half if hi is None else hi
+            over = bool(np.any(disp[finite] > hi)) if finite.any() else False
+            under = bool(np.any(disp[finite] < lo)) if finite.any() else False
+            extend = {(False, False): "neither", (True, False): "min", (False, True): "max",
+                      (True, True): "both"}[(under, over)]
         if lo is None:
             lo = float(np.min(disp[finite])) if finite.any() else 0.0
         if hi is None:
@@ -352,14 +386,41 @@ def _draw_values(fig, ax, v, *, kind, units, label, vmin, vmax, ext_m, own):
         cmap = mpl.colormaps[CMAPS[kind]].with_extremes(bad=NOT_SCANNED_COLOUR)
         im = ax.imshow(np.ma.masked_invalid(disp), origin="lower", extent=ext_m, cmap=cmap,
                        vmin=lo, vmax=hi, interpolation="nearest", zorder=1)
+        handles = []
+        if not colorbar:
+            return disp, handles, cax
         if own:
             cax = fig.add_axes((0.9, 0.1, 0.03, 0.8))  # placed by _place_map
             cb = fig.colorbar(im, cax=cax, extend=extend)
         else:
             cb = fig.colorbar(im, ax=ax, shrink=0.82, pad=0.02, extend=extend)
         cb.set_label(f"{label} [{U.unit_label(q, units)}]")
-        handles = []
+        if band_d:
+            handles.append(_mark_noise_band(cb, band_d, q, units))
     return disp, handles, cax
+
+
+_BAND_EDGE = "#111111"
+
+
+def _mark_noise_band(cb, band, quantity, units):
+    """The noise band ±``band`` (display units) on a growth colour bar: hatched, framed,
+    its limits ticked; returns its legend handle."""
+    lo, hi = cb.mappable.get_clim()
+    b0, b1 = max(-band, lo), min(band, hi)
+    cb.ax.axhspan(b0, b1, facecolor="none", edgecolor=_BAND_EDGE, hatch="////", linewidth=1.0, zorder=3)
+    for y in (b0, b1):
+        cb.ax.axhline(y, color=_BAND_EDGE, lw=1.2, zorder=4)
+    nd = U.decimals(quantity, units)
+    # the band's limits as ticks; the usual ticks inside the band or next to its limits
+    # dropped, so no two labels touch
+    span = hi - lo
+    ticks = [t for t in cb.get_ticks() if lo <= t <= hi and abs(t) > band and abs(abs(t) - band) > 0.07 * span]
+    cb.set_ticks(sorted(ticks + [t for t in (-band, band) if lo <= t <= hi]))
+    cb.ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:.{nd}f}".replace("-", "\u2212")
+                                                  if abs(abs(v) - band) < 1e-9 else f"{v:g}".replace("-", "\u2212")))
+    return Patch(facecolor="white", edgecolor=_BAND_EDGE, hatch="////", linewidth=0.8,
+                 label=f"noise band ±{band:.{nd}f} {U.unit_label(quantity, units)} (not growth)")
 
 
 def _draw_seams(ax, p_sub, handles, *, origin, step):
@@ -628,6 +689,246 @@ def _place_map(fig, ax, cax, legend, *, rows: int, aspect: float) -> None:
         cax.set_position(((x0 + w + _CBAR_GAP) / fw, (y0 + (h - ch) / 2) / fh, _CBAR_WIDTH / fw, ch / fh))
     # the legend's top just under the x label, in the map's axes fraction
     legend.set_bbox_to_anchor((0.5, -(_MAP_BOTTOM - 0.04) / h))
+
+
+# ---------------------------------------------------------------------------
+# comparison of two inspections
+# ---------------------------------------------------------------------------
+def floor_map_pair(left, right, *, titles, label, extent, kind="thickness", units="mm", vmin=None, vmax=None,
+                   suptitle=None, max_pixels=250_000, **common):
+    """Two floor maps side by side on one grid and one colour scale (e.g. the older scan
+    resampled onto the newer grid and the newer scan).
+
+    Parameters
+    ----------
+    left, right : 2-D grids of the same shape, NaN = not scanned. [by kind]
+    titles : ``(left title, right title)``.
+    label : colour-bar label without the unit.
+    extent : cell edges of the grid. [mm]
+    kind : a :func:`floor_map` kind (not ``"side"``).
+    units : display units.
+    vmin, vmax : the shared colour range in internal units; default the range of the
+        finite cells of both grids.
+    suptitle : optional title over both panels.
+    max_pixels : each panel's display reduction (:func:`decimate`).
+    **common : further :func:`floor_map` arguments (``diameter_mm``, ``centre``,
+        ``plate``, ``zones``, ``contours``, …).
+
+    Returns
+    -------
+    Figure : two panels, one colour bar and one legend under both.
+    """
+    a, b = np.asarray(left), np.asarray(right)
+    if a.shape != b.shape:
+        raise ValueError(f"floor_map_pair needs two grids of one shape, got {a.shape} and {b.shape}")
+    if kind == "side":
+        raise ValueError("floor_map_pair draws quantities, not side codes")
+    fin = [g[np.isfinite(g)] for g in (a, b)]
+    vals = np.concatenate([f.ravel() for f in fin]) if any(f.size for f in fin) else np.zeros(1)
+    lo = float(vals.min()) if vmin is None else float(vmin)
+    hi = float(vals.max()) if vmax is None else float(vmax)
+    fig = Figure(figsize=(12.0, 6.4), layout="constrained")
+    axes = fig.subplots(1, 2, sharex=True, sharey=True)
+    common.setdefault("plate_numbers", False)  # two panels: the numbers would crowd them
+    for ax, grid, title in zip(axes, (a, b), titles):
+        floor_map(grid, extent=extent, title=title, label=label, units=units, kind=kind, vmin=lo, vmax=hi,
+                  max_pixels=max_pixels, ax=ax, colorbar=False, **common)
+    handles = axes[1].get_legend().legend_handles
+    labels = [t.get_text() for t in axes[1].get_legend().get_texts()]
+    for ax in axes:
+        ax.get_legend().remove()
+    axes[1].set_ylabel("")
+    q = _QUANTITY[kind]
+    cb = fig.colorbar(axes[0].images[0], ax=list(axes), shrink=0.8, pad=0.015, aspect=30)
+    cb.set_label(f"{label} [{U.unit_label(q, units)}]")
+    fig.legend(handles, labels, loc="outside lower center", ncols=min(5, len(handles)), fontsize=8, frameon=False)
+    if suptitle:
+        fig.suptitle(suptitle, fontsize=12, x=0.02, ha="left")
+    f = fig.scananalyse_factor
+    fig.scananalyse_caption = decimation_caption(kind, f)
+    return fig
+
+
+#: Marker, colour and legend name of each indication status (distinct in shape and in
+#: colour, so the map reads in grey print too); any other status is drawn as a small dot.
+STATUS_STYLE = {
+    "new": ("^", "#d62728", "new"),
+    "grown": ("D", "#ff7f0e", "grown"),
+    "stable": ("o", "#2ca02c", "stable"),
+    "repaired": ("s", "#1f77b4", "repaired"),
+    "partly unscanned": ("X", "#9467bd", "partly unscanned"),
+    "not found": ("v", "#6b6b6b", "not found (older only)"),
+}
+_STATUS_ALWAYS = ("new", "grown", "stable", "repaired", "partly unscanned")
+_SCANNED_COLOUR = "#fbfaf6"
+
+
+def indication_status_map(indications, *, scanned, extent, units="mm", diameter_mm=None, centre=(0.0, 0.0),
+                          plate=None, zones=None, title="Indications by status", max_pixels=400_000,
+                          label_limit=60):
+    """Each indication on the floor outline, drawn by its status (new, grown, stable,
+    repaired, partly unscanned, …): its outline box and a marker at its centre, one shape
+    and colour per status; the legend gives each status with its count.
+
+    Parameters
+    ----------
+    indications : table with ``x_mm, y_mm, status`` and optionally ``x_min_mm, y_min_mm,
+        x_max_mm, y_max_mm`` (the box) and ``id``. [mm]
+    scanned : boolean grid of the scanned cells (or a thickness grid: finite = scanned).
+    extent : cell edges of the grid. [mm]
+    units : display units (the map is in metres either way).
+    diameter_mm, centre, plate, zones : as :func:`floor_map`.
+    title : figure title.
+    max_pixels : display reduction of the scanned mask.
+    label_limit : the ids are written when there are at most this many indications.
+
+    Returns
+    -------
+    Figure : with ``scananalyse_caption`` and ``scananalyse_status_counts`` (status →
+        number drawn).
+    """
+    U._check(units)
+    sc = np.asarray(scanned)
+    sc = np.isfinite(sc) if sc.dtype != bool else sc
+    fig = Figure(figsize=_FIGSIZE_MAP)
+    ax = fig.add_subplot()
+    f = _factor(sc.shape, max_pixels)
+    shown = _decimate_any(sc, f)
+    nr, nc = sc.shape
+    x_min, x_max, y_min, y_max = (float(e) / 1000.0 for e in extent)
+    px, py = (x_max - x_min) / nc, (y_max - y_min) / nr
+    ext_m = (x_min, x_min + shown.shape[1] * f * px, y_min, y_min + shown.shape[0] * f * py)
+    ax.imshow(np.where(shown, 1.0, 0.0), origin="lower", extent=ext_m, interpolation="nearest", zorder=1,
+              cmap=ListedColormap([NOT_SCANNED_COLOUR, _SCANNED_COLOUR]), vmin=0, vmax=1)
+    handles = [Patch(facecolor=_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5, label="scanned"),
+               Patch(facecolor=NOT_SCANNED_COLOUR, edgecolor="#888888", linewidth=0.5, label="not scanned")]
+    p_sub = None if plate is None else np.asarray(plate)[::f, ::f]
+    _draw_seams(ax, p_sub, handles, origin=(x_min, y_min), step=(f, px, py))
+    if zones is not None:
+        _draw_zones(ax, zones, handles, f=f, origin=(x_min, y_min), step=(px, py))
+    df = indications if indications is not None else None
+    status = (df["status"].fillna("").astype(str).to_numpy() if df is not None and len(df) and "status" in df
+              else np.array([], dtype=str))
+    counts = {}
+    order = list(_STATUS_ALWAYS) + [s for s in dict.fromkeys(status) if s not in _STATUS_ALWAYS]
+    has_box = df is not None and all(c in df.columns for c in ("x_min_mm", "y_min_mm", "x_max_mm", "y_max_mm"))
+    for st in order:
+        sel = status == st
+        n = int(sel.sum())
+        counts[st] = n
+        marker, colour, name = STATUS_STYLE.get(st, (".", "#333333", st or "no status"))
+        if n:
+            sub = df[sel]
+            if has_box:
+                x0 = sub["x_min_mm"].to_numpy(float) / 1000.0
+                y0 = sub["y_min_mm"].to_numpy(float) / 1000.0
+                w = sub["x_max_mm"].to_numpy(float) / 1000.0 - x0
+                h = sub["y_max_mm"].to_numpy(float) / 1000.0 - y0
+                ok = np.isfinite(x0 + y0 + w + h)
+                boxes = [Rectangle((a, b), c, d) for a, b, c, d in zip(x0[ok], y0[ok], w[ok], h[ok])]
+                ax.add_collection(PatchCollection(boxes, facecolor="none", edgecolor=colour, linewidth=0.9,
+                                                  zorder=4), autolim=False)
+            ax.scatter(sub["x_mm"].to_numpy(float) / 1000.0, sub["y_mm"].to_numpy(float) / 1000.0, s=46,
+                       marker=marker, facecolors=colour, edgecolors="#111111", linewidths=0.6, zorder=6)
+        handles.append(Line2D([], [], marker=marker, linestyle="none", markerfacecolor=colour,
+                              markeredgecolor="#111111", markersize=7, label=f"{name} ({n})"))
+    if df is not None and 0 < len(df) <= label_limit and "id" in df.columns:
+        for _, row in df.iterrows():
+            text = _indication_label(row)
+            if text and np.isfinite(row["x_mm"]) and np.isfinite(row["y_mm"]):
+                ax.annotate(text, (row["x_mm"] / 1000.0, row["y_mm"] / 1000.0), xytext=(4, 3),
+                            textcoords="offset points", fontsize=6.5, color="#222222", zorder=7,
+                            path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
+    xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title)
+    _place_map(fig, ax, None, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
+    fig.scananalyse_factor = f
+    fig.scananalyse_status_counts = counts
+    fig.scananalyse_caption = ("" if f == 1 else f"The scanned area is reduced {f} × {f} for display (a pixel "
+                               "is scanned if any cell in it is).")
+    return fig
+
+
+def _indication_label(row) -> str:
+    """The id written beside an indication; an older one found in no newer (no id of its
+    own) is written with its older id, e.g. "old 3"."""
+    import pandas as pd
+
+    if not pd.isna(row.get("id")):
+        return str(row["id"])
+    old = row.get("old_id")
+    return "" if old is None or pd.isna(old) else f"old {old}"
+
+
+_REPAIR_COLOUR = "#00a36c"
+
+
+def _repair_outline(shape):
+    """A matplotlib patch of a repair record's area (metres of the floor frame)."""
+    if shape.kind == "circle":
+        return Circle((shape.x / 1000.0, shape.y / 1000.0), shape.r / 1000.0)
+    if shape.kind == "rect":
+        return Rectangle(((shape.x - shape.w / 2) / 1000.0, (shape.y - shape.h / 2) / 1000.0),
+                         shape.w / 1000.0, shape.h / 1000.0)
+    return Polygon(np.asarray(shape.points, dtype=float) / 1000.0, closed=True)
+
+
+def repair_record_map(values, repairs, *, older_date=None, title="Repair record", label="remaining thickness",
+                      kind="thickness", **kw):
+    """The operator's repair record on a floor map: each repaired area outlined and
+    labelled with its number and date (and the plate thickness fitted, when the record
+    gives it); repairs made between the inspections drawn solid, earlier ones dashed.
+
+    Parameters
+    ----------
+    values : the map underneath (e.g. the newer thickness). [by kind]
+    repairs : list of :class:`~scananalyse.rates.Repair` (``shape``, ``date``,
+        ``thickness``). [mm]
+    older_date : date of the older inspection, or None (all drawn solid).
+    title, label, kind : as :func:`floor_map`.
+    **kw : further :func:`floor_map` arguments (``extent``, ``units``, ``diameter_mm``, …).
+
+    Returns
+    -------
+    Figure : with ``scananalyse_repair_labels`` (the label written at each area, in
+        record order).
+    """
+    units = kw.get("units", "mm")
+    cx = float(kw.get("centre", (0.0, 0.0))[0])
+    labels = []
+
+    def draw(ax, handles):
+        styles = set()
+        for k, r in enumerate(repairs, start=1):
+            between = older_date is None or r.date > older_date
+            styles.add(between)
+            ls = "-" if between else "--"
+            outline = _repair_outline(r.shape)
+            outline.set(facecolor="none", edgecolor=_REPAIR_COLOUR, linewidth=1.8, linestyle=ls, zorder=6,
+                        path_effects=[patheffects.withStroke(linewidth=3.4, foreground="white")])
+            ax.add_patch(outline)
+            text = f"R{k} {r.date.isoformat()}"
+            if r.thickness is not None:
+                text += (f"\n{U.convert(r.thickness, 'thickness', units):.{U.decimals('thickness', units)}f} "
+                         f"{U.unit_label('thickness', units)} plate")
+            labels.append(text)
+            x0, x1, y0, y1 = r.shape.bounds
+            right = (x0 + x1) / 2 > cx  # the label towards the tank centre, so it stays on the map
+            ax.annotate(text, ((x0 if right else x1) / 1000.0, y1 / 1000.0), xytext=(-3 if right else 3, 3),
+                        textcoords="offset points", fontsize=7, ha="right" if right else "left",
+                        color="#00502f", fontweight="bold", zorder=7, va="bottom",
+                        bbox=dict(boxstyle="round,pad=0.2", facecolor="white", edgecolor=_REPAIR_COLOUR,
+                                  linewidth=0.6, alpha=0.88))
+        if True in styles:
+            handles.append(Patch(facecolor="none", edgecolor=_REPAIR_COLOUR, linewidth=1.8,
+                                 label="repaired" + (" between the inspections" if older_date else "")))
+        if False in styles:
+            handles.append(Patch(facecolor="none", edgecolor=_REPAIR_COLOUR, linewidth=1.8, linestyle="--",
+                                 label="repaired before the older inspection"))
+
+    kw.setdefault("plate_numbers", False)  # the dates are the labels that matter here
+    fig = floor_map(values, title=title, label=label, kind=kind, overlay=draw, **kw)
+    fig.scananalyse_repair_labels = labels
+    return fig
 
 
 # ---------------------------------------------------------------------------
