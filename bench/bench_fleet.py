@@ -1,8 +1,8 @@
 """Fleet benchmark: one synthetic fleet of small tanks run with 1 and with 2 Dask workers.
 
-Usage: python bench/bench_fleet.py [--tanks 40] [--diameter 3000] [--pitch 25] [--single-every 4]
+Usage: python bench/bench_fleet.py [--tanks 40] [--diameter 4000] [--pitch 25] [--single-every 4]
 
-Each tank is ``scananalyse.synth.make_pair(diameter_mm=3000, pitch_new=25, pitch_old=25)``
+Each tank is ``scananalyse.synth.make_pair(diameter_mm=4000, pitch_new=25, pitch_old=25)``
 written with ``scananalyse.io.write_scan``; every ``--single-every``-th tank has one
 inspection only (so the similar-service step and the population fits run too).  For each
 worker count a LocalCluster (processes, one thread each, no dashboard) is started, the fleet
@@ -31,7 +31,7 @@ def _peak_rss_mb():
 def main():
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--tanks", type=int, default=40)
-    ap.add_argument("--diameter", type=float, default=3000.0)
+    ap.add_argument("--diameter", type=float, default=4000.0)
     ap.add_argument("--pitch", type=float, default=25.0)
     ap.add_argument("--single-every", type=int, default=4)
     ap.add_argument("--workers", default="1,2", help="worker counts to run, comma-separated")
