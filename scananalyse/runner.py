@@ -31,6 +31,7 @@ from .report import figures as F
 from .report.content import actions, report_data
 from .report.figlist import figure_specs, file_stem
 from .report.html import write_report
+from .report.pdf import write_pdf
 from .scan import to_display
 
 __all__ = ["CompareResult", "STAGES_PAIR", "STAGES_SINGLE", "write_outputs", "compare", "assess_single",
@@ -117,7 +118,8 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
     The data files first (zones.csv, zones_repaired.csv, patches.csv, patches.dxf,
     indications.csv, registration.json, results.h5), then each figure of
     :func:`~scananalyse.report.figlist.figure_specs` drawn in the report's order as
-    ``figures/NN_<slug>.png``, then report.html.  Returns the files' names relative to
+    ``figures/NN_<slug>.png``, then report.html and report.pdf (when a headless
+    Chromium is found; else a note in ``an.notes``).  Returns the files' names relative to
     ``folder``.
     """
     prog = progress or Progress(quiet=True)
@@ -163,6 +165,12 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
             del fig
         write_report(report_data(an, units, reg_dict, figs), folder / "report.html")
         files.append("report.html")
+        # the same page printed (headless Chromium); without a browser, a one-line note instead
+        pdf_note = write_pdf(folder / "report.html", folder / "report.pdf")
+        if pdf_note is None:
+            files.append("report.pdf")
+        else:
+            an.notes.append(pdf_note)
     return files
 
 

@@ -1002,7 +1002,7 @@ def registration_overlay(new_features, old_features_before, old_features_after, 
     handles = [Patch(facecolor=(0.90, 0.45, 0.05), label="newer scan only"),
                Patch(facecolor=(0.15, 0.45, 0.80), label="older scan only"),
                Patch(facecolor=(0.10, 0.10, 0.10), label="both (aligned)")]
-    axes[1].legend(handles=handles, loc="upper right", fontsize=7, framealpha=0.9)
+    axes[1].legend(handles=handles, loc="upper right", fontsize=10, framealpha=0.9)
     fig.scananalyse_factor = f
     fig.scananalyse_caption = ("Feature masks (unscanned seams and deep loss) of the two scans; "
                                "shared-feature score = cells in both / cells in either."
@@ -1295,7 +1295,7 @@ def method_comparison(zones_df, *, x_max=None, ax=None):
     ax.set_xlabel("years")
     ax.set_title("Interval and remaining life by method", fontsize=10.5, loc="left")
     ax.grid(True, axis="x", color="#e3e3e3", lw=0.6)
-    ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.18 if n > 1 else -0.35),
+    ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.18 if n > 1 else -0.35),
               ncol=5, frameon=False)
     ax.tick_params(labelsize=8)
     return fig
