@@ -22,7 +22,7 @@ from scananalyse.report.figlist import figure_specs
 from scananalyse.synth import make_pair, write_repair_record
 
 NEW_SLUGS = {"growth": "maps", "scans_side_by_side": "maps", "repair_record": "maps",
-             "indication_status": "indications"}
+             "indication_status": "maps"}
 
 
 @pytest.fixture(scope="module")

@@ -27,13 +27,14 @@ import pypdf  # noqa: E402  (a test dependency: pyproject [test])
 
 MM = 72 / 25.4
 TOP_MM, FOOTER_MM = 12.0, 25.0  # @page top margin; bottom margin + footer band (report.css)
-# measured on the demo (Chromium 156, DejaVu fonts): A4 19 pages, Letter 21; one page spare
-MAX_PAGES = {"A4": 20, "Letter": 22}
+# measured on the demo (Chromium 156, DejaVu fonts): A4 23 pages, Letter 25 with the four
+# comparison figures (19 and 21 without them); one page spare
+MAX_PAGES = {"A4": 24, "Letter": 26}
 MIN_FILL = 1 / 3
 FIG_DPI = 130  # runner.write_outputs draws the figures at this resolution
 # legend font sizes drawn in report.figures: 10 pt on the two-panel registration figure
-# (1300 px wide), 7.5 pt on every other figure
-LEGEND_PT = {1300: 10.0}
+# (1300 px wide), 13 pt on the side-by-side scans (1560 px), 7.5 pt on every other figure
+LEGEND_PT = {1300: 10.0, 1560: 13.0}
 LEGEND_PT_DEFAULT = 7.5
 
 

@@ -231,7 +231,7 @@ def comparison_specs(an, units: str) -> list:
                             title="Repair record on the thickness map now", **common)))
     ind = getattr(an, "indications", None)
     if ind is not None and "status" in getattr(ind, "columns", ()):
-        out.append(("indications", "indication_status", "Indications by status on the floor: new (no older "
+        out.append(("maps", "indication_status", "Indications by status on the floor: new (no older "
                     "indication there), grown (growth above the noise level), stable, repaired (mostly inside an "
                     "area repaired since the older inspection), partly unscanned (to prove up: part may lie in "
                     "unscanned ground) and not found (an older indication with no newer one, at its older place); "
@@ -417,7 +417,7 @@ def life_probability_figure(dists: dict, zone_table):
     """Each zone's P(below MRT by t) and P(leak by t), its next due date marked."""
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(7.5, 4.2), layout="constrained")
+    fig, ax = plt.subplots(figsize=(6.0, 3.6), layout="constrained")  # prints full width: legend >= 7 pt
     due = dict(zip(zone_table["zone"], zone_table["interval_recommended_y"]))
     years = np.linspace(0.0, 30.0, 241)
     for k, (name, d) in enumerate(dists.items()):
@@ -437,6 +437,6 @@ def life_probability_figure(dists: dict, zone_table):
     ax.set_ylim(0, 1.02)
     ax.set_xlim(0, 30)
     ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, ncols=2, loc="lower right")
+    ax.legend(fontsize=7.5, ncols=2, loc="lower right")
     ax.set_title("Probability of reaching MRT and of a leak, per zone")
     return fig

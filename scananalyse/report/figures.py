@@ -741,7 +741,7 @@ def floor_map_pair(left, right, *, titles, label, extent, kind="thickness", unit
     q = _QUANTITY[kind]
     cb = fig.colorbar(axes[0].images[0], ax=list(axes), shrink=0.8, pad=0.015, aspect=30)
     cb.set_label(f"{label} [{U.unit_label(q, units)}]")
-    fig.legend(handles, labels, loc="outside lower center", ncols=min(5, len(handles)), fontsize=8, frameon=False)
+    fig.legend(handles, labels, loc="outside lower center", ncols=min(5, len(handles)), fontsize=13, frameon=False)  # prints at >= 7 pt (12 in wide figure)
     if suptitle:
         fig.suptitle(suptitle, fontsize=12, x=0.02, ha="left")
     f = fig.scananalyse_factor
