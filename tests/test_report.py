@@ -699,3 +699,16 @@ def test_glossary_lists_every_page_label():
     assert missing == []
     missing = [k for k, v in FLAGS_EXPLAINED.items() if f"| `{k}` | {v} |" not in text]
     assert missing == []
+
+
+def test_hand_ut_sentence_names_the_area_neither_scan_saw():
+    # The verdict's hand-UT area agrees with the note's: where the older scan saw part of what
+    # the newer one missed, the area to prove up is the part neither saw, and both are named.
+    from scananalyse.report.html import _hand_ut_sentence
+
+    row = {"hidden_area_m2": 3.13, "limiting": "eva"}
+    s = _hand_ut_sentence(["eva-below-mrt"], row, 3.53, "mm")
+    assert "3.13 m² neither scan saw" in s and "3.53 m²" in s
+    # no older coverage: the two areas are one, said once
+    s2 = _hand_ut_sentence(["eva-below-mrt"], {"hidden_area_m2": 3.53}, 3.53, "mm")
+    assert s2.startswith("Hand UT the 3.53 m² not scanned")

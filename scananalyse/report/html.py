@@ -437,6 +437,12 @@ def _limit_words(row) -> str:
 def _hand_ut_sentence(flags, row, unscanned, units, *, force=False) -> str:
     a = _qty(unscanned, "area", units) if not math.isnan(unscanned) else "the area"
     lim = row.get("limiting") if row is not None else ""
+    hidden = float(pd.to_numeric(pd.Series([row.get("hidden_area_m2")]), errors="coerce")[0]) \
+        if row is not None else math.nan
+    if "eva-below-mrt" in flags and math.isfinite(hidden) and not math.isnan(unscanned) and hidden < unscanned - 1e-9:
+        # the older scan saw part of what the newer one missed: name both areas, as the notes do
+        return (f"Hand UT the {_qty(hidden, 'area', units)} neither scan saw (of the {a} the newer scan "
+                "missed): the extreme-value estimate says metal there may already be below MRT.")
     if force or "eva-below-mrt" in flags:
         return (f"Hand UT the {a} not scanned: the extreme-value estimate says metal there may "
                 "already be below MRT.")
