@@ -107,6 +107,8 @@ def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
                    help="units of every length given (here and in a job file without report.units) and of the "
                    "display in the report and console (files keep SI); default: lengths in the scans' units, "
                    "display in mm")
+    p.add_argument("--csv-units", choices=["mm", "in"], default=None,
+                   help="'in' adds inch and mils-per-year columns beside the SI ones in the CSVs")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
@@ -203,6 +205,8 @@ def _job_from_args(args):
             changes[f] = os.path.abspath(v) if f in ("shapes", "repairs", "control_points", "patches") else v
     if getattr(args, "readings", None):  # added to the job file's readings
         changes["readings"] = list(job.readings) + [os.path.abspath(r) for r in args.readings]
+    if getattr(args, "csv_units", None):
+        changes["csv_units"] = args.csv_units
     if getattr(args, "no_sizing_correction", False):
         changes["sizing_correction"] = False
     for a, f in {"leak_detection": "leak_detection", "cp": "cp_effective", "coated": "coated",

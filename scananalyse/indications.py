@@ -817,7 +817,8 @@ def gone_indications(old_ind: pd.DataFrame, matched: pd.DataFrame) -> pd.DataFra
     return out
 
 
-def write_indications_csv(df: pd.DataFrame, path, *, radius_mm=None, centre=(0.0, 0.0), pitch_mm=None) -> None:
+def write_indications_csv(df: pd.DataFrame, path, *, radius_mm=None, centre=(0.0, 0.0), pitch_mm=None,
+                          inch_columns: bool = False) -> None:
     """Write ``indications.csv`` (design.md §3.5), atomically (temporary file + rename).
 
     Coordinates are rounded to :func:`~scananalyse.locate.coordinate_step` of the pitch
@@ -833,6 +834,7 @@ def write_indications_csv(df: pd.DataFrame, path, *, radius_mm=None, centre=(0.0
     radius_mm : inside radius of the shell; None leaves out the location columns. [mm]
     centre : tank centre in the floor frame. [mm]
     pitch_mm : scan pitch, for the rounding step of coordinates. [mm]
+    inch_columns : inch and mils-per-year columns beside the SI ones (``--csv-units in``). [-]
     """
     from .locate import add_location_columns, coordinate_step
 
@@ -856,7 +858,7 @@ def write_indications_csv(df: pd.DataFrame, path, *, radius_mm=None, centre=(0.0
         out = add_location_columns(out, radius_mm=radius_mm, centre=centre, pitch_mm=pitch_mm)
     from .io.tables import write_csv
 
-    write_csv(out, path)  # atomic; text cells neutralised against spreadsheet formulas
+    write_csv(out, path, inch_columns=inch_columns)  # atomic; text cells neutralised against formulas
 
 
 

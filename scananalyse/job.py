@@ -160,6 +160,7 @@ class Job:
     ruleset: str = "api653"
     rule_overrides: dict = field(default_factory=dict)
     units: str = "mm"
+    csv_units: str = "mm"  # "in": inch and mils-per-year columns beside the SI ones in the CSVs
     block_mm: float = 1000.0
     zone_rings: int | None = None
     zone_sectors: int | None = None
@@ -379,6 +380,7 @@ _SCHEMA = {
     ("rules", "name"): ("ruleset", (str,)),
     ("rules", "overrides"): ("rule_overrides", (dict,)),
     ("report", "units"): ("units", (str,)),
+    ("report", "csv_units"): ("csv_units", (str,)),
     ("statistics", "block_mm"): ("block_mm", _NUM),
     ("zones", "rings"): ("zone_rings", (int,)),
     ("zones", "sectors"): ("zone_sectors", (int,)),
@@ -581,6 +583,8 @@ def read_job(path) -> Job:
         raise InputError(f"{name}: field 'attribution.default_side': must be 'under' or 'top'")
     if values.get("units", "mm") not in ("mm", "in"):
         raise InputError(f"{name}: field 'report.units': must be 'mm' or 'in'")
+    if values.get("csv_units", "mm") not in ("mm", "in"):
+        raise InputError(f"{name}: field 'report.csv_units': must be 'mm' or 'in'")
     if values.get("repair_to") == 0:
         del values["repair_to"]  # 0 = plan from rates
     units = values.get("units")  # the file's lengths are in its display units when it gives them

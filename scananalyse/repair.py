@@ -1216,13 +1216,14 @@ def _atomic_write(path, write):
         raise
 
 
-def write_patches_csv(patches, path) -> None:
+def write_patches_csv(patches, path, *, inch_columns: bool = False) -> None:
     """Write a patch table as ``patches.csv`` (:data:`PATCH_COLUMNS`, mm, m², kg).
 
     Parameters
     ----------
     patches : patch table. [-]
     path : output file. [-]
+    inch_columns : inch columns beside the SI ones (``--csv-units in``). [-]
     """
     from .io.tables import write_csv
 
@@ -1230,7 +1231,7 @@ def write_patches_csv(patches, path) -> None:
     order = PATCH_COLUMNS + LOCATION_COLUMNS  # the contract's columns first, in their order
     cols = [c for c in order if c in patches.columns]
     # text cells (patch ids, zones, flags) neutralised against spreadsheet formulas
-    write_csv(patches[cols], path, float_format="%.6g")
+    write_csv(patches[cols], path, float_format="%.6g", inch_columns=inch_columns)
 
 
 def _num_field(text, path, line, name, *, positive=False, nonneg=False, allow_blank=False, **bounds):

@@ -127,20 +127,21 @@ def write_outputs(an: Analysis, folder, *, progress: Progress | None = None, dpi
     units = an.job.units
     files = []
     with prog.stage("outputs"):
-        write_csv(an.zone_table, folder / "zones.csv")
-        write_csv(an.zones_repaired, folder / "zones_repaired.csv")
+        inch = an.job.csv_units == "in"  # inch columns beside the SI ones
+        write_csv(an.zone_table, folder / "zones.csv", inch_columns=inch)
+        write_csv(an.zones_repaired, folder / "zones_repaired.csv", inch_columns=inch)
         geo, pitch = an.zones.geometry, an.new.pitch
         where = dict(radius_mm=geo.radius_mm, centre=geo.centre, pitch_mm=pitch)
-        write_patches_csv(patch_locations(an.patches, **where), folder / "patches.csv")
+        write_patches_csv(patch_locations(an.patches, **where), folder / "patches.csv", inch_columns=inch)
         write_patches_dxf(an.patches, folder / "patches.dxf", shell_radius_mm=geo.radius_mm, centre=geo.centre,
                           critical_width_mm=float(an.rules.v("critical_zone_width_mm")), plate=an.new.plate,
                           grid=(an.new.x0, an.new.y0, pitch), indications=an.indications)
-        write_indications_csv(an.indications, folder / "indications.csv", **where)
+        write_indications_csv(an.indications, folder / "indications.csv", inch_columns=inch, **where)
         files += ["zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv"]
         if an.readings:
             # spot readings: the zones assessed from them, and the indications to prove up next
-            write_csv(an.readings["zones"], folder / "readings_zones.csv")
-            write_csv(an.readings["prove_up"], folder / "prove_up.csv")
+            write_csv(an.readings["zones"], folder / "readings_zones.csv", inch_columns=inch)
+            write_csv(an.readings["prove_up"], folder / "prove_up.csv", inch_columns=inch)
             files += ["readings_zones.csv", "prove_up.csv"]
         reg_dict = None
         if an.registration is not None:

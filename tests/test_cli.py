@@ -5,6 +5,7 @@ import re
 import json
 import os
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -144,6 +145,24 @@ def test_units_in_display(small_pair_files, tmp_path, capsys):
     assert "thickness in" in capsys.readouterr().out
     # files keep SI columns whatever the display units
     assert "t_min_mm" in pd.read_csv(out / "zones.csv").columns
+    assert "t_min_in" not in pd.read_csv(out / "zones.csv").columns
+    # --csv-units in adds inch and mils-per-year columns beside the SI ones (1 in = 25.4 mm exactly,
+    # NIST SP 811 B.8); the SI columns keep their order and values
+    out2 = tmp_path / "inch_csv"
+    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "157.48",
+                 "--out", str(out2), "--quiet", "--units", "in", "--csv-units", "in"]) == 0
+    for f in ("zones.csv", "indications.csv", "patches.csv"):
+        a, b = pd.read_csv(out / f), pd.read_csv(out2 / f)
+        si = [c for c in b.columns if not (c.endswith("_in") or c.endswith("_mpy"))]
+        assert si == list(a.columns)
+        pd.testing.assert_frame_equal(b[si], a, check_dtype=False)
+        mm = [c for c in a.columns if c.endswith("_mm") and pd.api.types.is_numeric_dtype(a[c])]
+        assert mm, f
+        for c in mm:
+            np.testing.assert_allclose(b[c[:-3] + "_in"], a[c] / 25.4, atol=6e-5)
+            assert list(b.columns).index(c[:-3] + "_in") == list(b.columns).index(c) + 1
+    z = pd.read_csv(out2 / "zones.csv")
+    np.testing.assert_allclose(z["rate_top_max_mpy"], z["rate_top_max_mm_y"] / 0.0254, atol=6e-3)
 
 
 def test_internal_fault_is_exit_1_without_traceback(monkeypatch, small_pair_files, capsys):

@@ -78,7 +78,31 @@ def neutralise_frame(df: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-def write_csv(df: pd.DataFrame, path, *, float_format: str | None = None) -> None:
+def with_inch_columns(df: pd.DataFrame) -> pd.DataFrame:
+    """``df`` with an inch column after every numeric length column and a mils-per-year
+    column after every rate column (the SI columns stay as they are).
+
+    ``<name>_mm`` gets ``<name>_in`` (÷ 25.4, 4 decimals); ``<name>_mm_y`` gets
+    ``<name>_mpy`` (÷ 0.0254, 2 decimals).  1 in = 25.4 mm exactly (NIST SP 811, B.8).
+    """
+    out = df.copy()
+    cols = []
+    for c in df.columns:
+        cols.append(c)
+        name = str(c)
+        num = pd.api.types.is_numeric_dtype(df[c])
+        if num and name.endswith("_mm_y"):
+            new = name[:-5] + "_mpy"
+            out[new] = (pd.to_numeric(df[c], errors="coerce") / 0.0254).round(2)
+            cols.append(new)
+        elif num and name.endswith("_mm"):
+            new = name[:-3] + "_in"
+            out[new] = (pd.to_numeric(df[c], errors="coerce") / 25.4).round(4)
+            cols.append(new)
+    return out[[c for c in dict.fromkeys(cols)]]
+
+
+def write_csv(df: pd.DataFrame, path, *, float_format: str | None = None, inch_columns: bool = False) -> None:
     """Write ``df`` as a CSV (no index, UTF-8, ``\\n`` line ends) atomically, text cells
     neutralised against spreadsheet formulas (:func:`neutralise_text`).
 
@@ -88,8 +112,10 @@ def write_csv(df: pd.DataFrame, path, *, float_format: str | None = None) -> Non
     path : the file to write. [-]
     float_format : printf-style format of floating-point cells (pandas' ``float_format``);
         None writes the shortest text that reads back to the same value. [-]
+    inch_columns : add inch and mils-per-year columns beside the SI ones
+        (:func:`with_inch_columns`; ``--csv-units in``). [-]
     """
-    safe = neutralise_frame(df)
+    safe = neutralise_frame(with_inch_columns(df) if inch_columns else df)
     with atomic_output(path) as tmp:
         with open(tmp, "w", newline="", encoding="utf-8") as fh:
             safe.to_csv(fh, index=False, float_format=float_format, lineterminator="\n")
