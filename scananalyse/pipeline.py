@@ -194,9 +194,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
             target_interval_years=job.target_interval, shell_tmin_mm=job.shell_tmin_mm)
         mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
-        check_repair_to(job.repair_to_mm,
-                        dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
-                        nominal_mm=new.meta.nominal, given=job.typed.get("repair_to"), what=job.where("repair_to"))
+        zone_mrt = dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal)))
+        check_repair_to(job.repair_to_mm, zone_mrt, nominal_mm=new.meta.nominal, given=job.typed.get("repair_to"),
+                        what=job.where("repair_to"))
         reading_zone_table = None
         if readings_new is not None:
             moved_old = None
@@ -206,7 +206,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                              rotation_deg=tr.rotation_deg)
             reading_zone_table = rd.reading_zone_summary(
                 readings_new, moved_old, zones=zmap, nominal_mm=new.meta.nominal, installed=new.meta.installed,
-                mrt_mm=dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal))),
+                mrt_mm=zone_mrt,
                 options=options, critical_width_mm=float(rules.critical_zone_width_mm.value))
         ind_new = measure_indications(ind_labels, layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
                                       side=side, plate=new.plate, zone_labels=zmap.labels, zone_names=zmap.names,
