@@ -50,18 +50,15 @@ FLOORS = {
 
 def _filled(lr, new, oon):
     """The pipeline's step after ``compute_rates``: indication cells the older scan did not
-    cover take the short-term rate of their indication's measured cells (in pipeline.py
-    today; moving to rates.py as ``fill_uncovered_rates``). Each filled point stays inside
-    its interval."""
+    cover take the short-term rate of their indication's measured cells
+    (``rates.fill_uncovered_rates``). Each filled point stays inside its interval."""
     import dataclasses
 
-    fill_fn = getattr(rates, "fill_uncovered_rates", None)
-    if fill_fn is None:
-        from scananalyse import pipeline
+    from scananalyse.indications import label_indications, reporting_depth
 
-        fill_fn = pipeline._fill_uncovered_rates
     before = lr
-    lr, _n = fill_fn(lr, new, oon)
+    labels = label_indications(lr.loss, reporting_depth_mm=reporting_depth(new))  # as pipeline.analyse
+    lr, _n = rates.fill_uncovered_rates(lr, new, oon, labels)
     changes = {}
     for side in ("top", "under"):
         point = getattr(lr, f"rate_{side}")
