@@ -280,8 +280,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         # the repaired floor's distribution: patched cells new plate at their kept rates; the
         # hidden part as found
         life_dists_rep = life_distributions(rep["repaired_maps"]["thickness_repaired"],
-                                            repaired_rates(lr, rep["repaired_maps"]), zmap, mrt, ext_depth,
-                                            reuse=life_dists, changed=rep["repaired_maps"]["patched"], **prob_kw)
+                                            repaired_rates(lr, rep["repaired_maps"]), zmap, mrt, ext_depth, **prob_kw)
         rep["zones_repaired"] = assess.add_life_distribution(
             rep["zones_repaired"], life_dists_rep, inspected=new.meta.inspected, rules=rules,
             target_probability=job.target_probability)

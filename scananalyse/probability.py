@@ -678,7 +678,7 @@ def _hidden_rate_post(rng, d, depth_meas, par, prior):
 
 
 def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,
-                       n_draws=2000, seed=0, shrink=True, reuse=None, changed=None) -> dict:
+                       n_draws=2000, seed=0, shrink=True) -> dict:
     """:func:`zone_life_distribution` for every zone of a floor.
 
     Parameters
@@ -704,11 +704,6 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     shrink : bool
         Rates from their posteriors under each zone's rate distribution (module notes). [-]
 
-    reuse, changed : optional: the distributions of the same floor before a change
-        (``reuse``, zone -> LifeDistribution) and the cells the change touched (``changed``,
-        (M, N) bool): a zone none of whose cells changed keeps its earlier distribution
-        (the same draws: nothing it depends on differs). [-]
-
     Returns
     -------
     dict
@@ -717,9 +712,6 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     out = {}
     sig_map = np.ndim(sigma_t) > 0
     for k, name in enumerate(zmap.names):
-        if reuse is not None and changed is not None and name in reuse and not changed[zmap.labels == k].any():
-            out[name] = reuse[name]
-            continue
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
         sel = mask & np.isfinite(thickness)

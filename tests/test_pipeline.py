@@ -274,9 +274,9 @@ def test_zone_life_distribution_columns_and_target_probability():
         pytest.fail(f"the test floor no longer gives a zone with a positive interval and risk ({rec}, {p_at})")
 
 
-def test_repaired_life_distribution_reuses_only_untouched_zones():
-    # The repaired floor reuses the as-found draws of zones no patch touches: they must be the
-    # same draws as computing them again from the repaired maps (the zone's inputs are equal).
+def test_repaired_life_distribution_of_untouched_zones_is_as_found():
+    # Zones no patch touches have the same life distribution after repair as found: the
+    # same draws (their inputs are equal, the seeds per zone fixed).
     from scananalyse.probability import life_distributions, repaired_rates
 
     pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
