@@ -149,6 +149,8 @@ def summary(rows: list[dict], *, min_rate: float = 0.05) -> dict:
             "life_short_over_1": float(np.mean(sv > 1.0)) if sv.size else math.nan,
             "recommended_over_true_life": float(np.mean([r["recommended"] > r["true_life"] + 1e-9
                                                          for r in sel if r["side"] == "top"])),
+            "recommended_over_1.1_true_life": float(np.mean([r["recommended"] > 1.1 * r["true_life"] + 1e-9
+                                                             for r in sel if r["side"] == "top"])),
         }
     return out
 

@@ -615,7 +615,7 @@ def assess_zones(*, thickness, side, rate_top, rate_under, zones, meta, rules,
         raise InputError(f"scan metadata: field 'installed': {meta.installed} is not before "
                          f"the inspection date {meta.inspected}")
     z = _zone_reductions(t, side, rt, ru, zones, rules, options, t0=t0,
-                         zone_rates=zone_rates)
+                         zone_rates=zone_rates, threshold=meta.threshold)
     has_rates = rt is not None
     ctx = _Context(
         t0=t0, age=age, meta=meta, rules=rules, options=options, extremes=extremes or {},
@@ -656,8 +656,14 @@ def _checked_maps(thickness, side, rate_top, rate_under, zones, pitch_mm):
     return t, side, rt, ru
 
 
-def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates) -> dict:
-    """Per-zone arrays: coverage, thinnest cells per side, co-located lives, rate maxima."""
+def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates,
+                     threshold=None) -> dict:
+    """Per-zone arrays: coverage, thinnest cells per side, co-located lives, rate maxima.
+
+    A cell whose loss is below the scan's detection threshold and whose point rates are 0
+    has no measured rate (the rate 0 is the censored reading's, not a measurement): its
+    co-located life is not counted, so a zone of such cells only has NaN, never ``inf``
+    (:func:`_unmeasured_cells`)."""
     from .rates import zone_max_rate_bounds
 
     # each map's zoned cells are gathered once (zone after zone) and reduced per zone there
@@ -676,7 +682,9 @@ def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates) 
            "rtbc": zones.reduce_gathered(np.where(under_g, t_g, nanf), np.min),
            "rtip": zones.reduce_gathered(np.where(top_g, t_g, nanf), np.min),
            "mrt": zone_mrt(zones, rules, options, t0=t0),
-           "area_m2": np.asarray(zones.areas_mm2, dtype=np.float64) / 1e6}
+           "area_m2": np.asarray(zones.areas_mm2, dtype=np.float64) / 1e6,
+           "n_unmeasured": np.zeros(len(zones.names), dtype=np.int64),
+           "censored_hi": np.full(len(zones.names), np.nan)}
     del t_g, under_g, top_g
     nan_z = np.full(n, np.nan)
     for key in ("life", "life_short", "life_fit", "top_raw", "under_raw"):
@@ -686,7 +694,17 @@ def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates) 
     if rt is None:
         return out
     mrt = mrt_map(zones, rules, options, t0=t0)
-    out["life"] = zones.reduce_gathered(zones.gather(local_life_map(t, rt, ru, mrt)), np.min)
+    life = local_life_map(t, rt, ru, mrt)
+    unmeasured = _unmeasured_cells(t, rt, ru, t0=t0, threshold=threshold)
+    life[unmeasured] = np.nan
+    out["life"] = zones.reduce_gathered(zones.gather(life), np.min)
+    out["n_unmeasured"] = zones.count_gathered(zones.gather(unmeasured))
+    del life
+    if zone_rates is not None and unmeasured.any():
+        # a censored cell's total loss is below the threshold, so its rate is below the
+        # larger of its two sides' upper ends (not their sum)
+        hi = np.fmax(np.asarray(zone_rates.top_hi, np.float32), np.asarray(zone_rates.under_hi, np.float32))
+        out["censored_hi"] = zones.reduce_gathered(zones.gather(np.where(unmeasured, hi, nanf)), np.max)
     for s, point_map in (("top", rt), ("under", ru)):
         out[f"{s}_raw"] = zones.reduce_gathered(np.where(scanned_g, zones.gather(point_map), nanf),
                                                 np.max)
@@ -706,6 +724,22 @@ def _zone_reductions(t, side, rt, ru, zones, rules, options, *, t0, zone_rates) 
             life = local_life_map(t, np.asarray(a, np.float32), np.asarray(b, np.float32), mrt)
             out[key] = zones.reduce_gathered(zones.gather(life), np.min)
     return out
+
+
+def _unmeasured_cells(t, rt, ru, *, t0: float, threshold) -> np.ndarray:
+    """Cells read as below the detection threshold whose point rates are both 0 (or NaN).
+
+    Such a cell's true loss is somewhere in [0, threshold) and its rate is not measured:
+    0 is the censored reading's rate, and ``inf`` would be a biased point reported as
+    a life. The extreme-value life bounds this metal instead (docs/assessment.md §4a).
+    """
+    if threshold is None or not threshold > 0:
+        return np.zeros(t.shape, dtype=bool)
+    from .rates import censored_map
+
+    with np.errstate(invalid="ignore"):
+        no_rate = ~(rt > 0) & ~(ru > 0)
+        return censored_map(np.float32(t0) - t, threshold) & no_rate & ~np.isnan(t)
 
 
 @dataclass(frozen=True)
@@ -770,8 +804,11 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
                     f"rate_{s}_max_raw_mm_y": float(z[f"{s}_raw"][k])})
     if kind == "critical":
         notes.append(c.cz[1])
+    if c.has_rates and z["n_unmeasured"][k] == z["n_scanned"][k]:
+        notes.append("no scanned cell has loss above the detection threshold: no co-located "
+                     "life is measured; the extreme-value life bounds the zone")
     code = _code_part(row, rtbc, rtip, mrt, c, flags, notes)
-    life_eva = _eva_part(row, name, mrt, c, flags)
+    life_eva = _eva_part(row, name, mrt, c, flags, censored_hi=float(z["censored_hi"][k]))
     rec, limiting = recommend_interval(code=code, local=row["life_local_y"], eva=life_eva,
                                        initial=c.initial if not c.has_rates else math.nan,
                                        cap=c.cap, rules=c.rules)
@@ -810,7 +847,7 @@ def _code_part(row, rtbc, rtip, mrt, c: _Context, flags, notes) -> float:
 OBSERVED_UPPER_Z = 1.645
 
 
-def _eva_part(row, name, mrt, c: _Context, flags) -> float:
+def _eva_part(row, name, mrt, c: _Context, flags, censored_hi: float = math.nan) -> float:
     """The extreme-value life of a zone and its depth columns.
 
     The zone's deepest loss is never below the deepest observed: ``depth_eva_mm`` is the
@@ -819,7 +856,10 @@ def _eva_part(row, name, mrt, c: _Context, flags) -> float:
     bound (:data:`scananalyse.evlife.HIDDEN_LEVELS`).  The life is the extremes' own when
     they give it (:func:`scananalyse.evlife.zone_lives`: the shorter of the seen and the
     hidden part's); else, from a given depth bound, :func:`eva_life` at the extremes' rate
-    or the zone's upper-end rates.
+    or the zone's upper-end rates.  With no statistics at all, a zone holding cells read
+    below the detection threshold with no measured rate gets the fallback life of that
+    metal: a loss at the threshold growing at ``censored_hi``, the largest upper-end rate
+    of those cells (flag ``eva-fallback``).
     """
     ex = c.extremes.get(name)
     obs = row["depth_max_mm"]
@@ -846,6 +886,10 @@ def _eva_part(row, name, mrt, c: _Context, flags) -> float:
     else:
         life_eva = math.nan
         flags.append("no-eva")
+        if not math.isnan(censored_hi):
+            r_eva, r_src = censored_hi, "censored-hi"
+            life_eva = eva_life(t0=c.t0, depth_upper=float(c.meta.threshold), mrt=mrt, rate=r_eva)
+            flags.append("eva-fallback")
     if bound is not None and c.t0 - bound < mrt:
         flags.append("eva-below-mrt")
     source = str((ex.get("eva_source") if isinstance(ex, dict) else getattr(ex, "eva_source", "")) or "")

@@ -157,6 +157,9 @@ FLAGS_EXPLAINED = {
     "no-age": "The scan gives no installation date: age-based rates and the code formula "
               "cannot be computed.",
     "no-eva": "No extreme-value estimate could be made for the zone (too few blocks).",
+    "eva-fallback": "Without extreme-value statistics, metal read below the detection threshold is "
+                    "taken to be as deep as the threshold, growing at the largest upper-end rate "
+                    "of those cells.",
     "eva-borrowed": "The zone is too small for an extreme-value fit of its own: its unscanned part is "
                     "judged with the whole floor's fit, extrapolated to the zone's own unscanned area.",
     "eva-worst-seen": "No extreme-value fit could be made anywhere on the floor: the unscanned metal is taken "
