@@ -6,8 +6,9 @@ Run from the repository root (or anywhere):
 
 It builds the invented demo pair (tank FQ-214, see README.md beside this file)
 with a fixed seed, writes both inspections as floor-scan CSV v1 and HDF5 v1,
-the operator repair record, and the ground truth used to check the demo, then
-reads every scan back and checks it against what was written.
+the operator repair record, the 2025 hand readings (readings CSV v1), and the
+ground truth used to check the demo, then reads every scan back and checks it
+against what was written.  ``--readings-only`` rewrites only the readings.
 """
 
 from __future__ import annotations
@@ -51,9 +52,56 @@ def build():
     return synth.make_pair(**SCENARIO)
 
 
+#: The hand readings of the 2025 outage (README.md): hand UT round the shell where the
+#: crawler stopped 120 mm short, UT prove-ups of the deepest reported pits, and pit-gauge
+#: depths of the two deepest top-side pits.  One-sigma of a hand reading. [mm]
+READING_SIGMA = 0.10
+
+
+def readings_rows(pair, *, seed: int = 2025) -> list[str]:
+    """CSV rows (x, y, kind, thickness, depth, side, id, note) sampled from the truth."""
+    tr, new = pair.truth, pair.new
+    rng = np.random.default_rng(seed)
+
+    def t_true(x, y):
+        r, c = new.cell_of(x, y)
+        return float(tr.t_new_true[int(round(float(r))), int(round(float(c)))])
+
+    rows = []
+    radius = tr.diameter_mm / 2 - 60.0  # mid-way across the unscanned 120 mm margin
+    for k, ang in enumerate(range(0, 360, 10), start=1):
+        x = tr.centre[0] + radius * np.cos(np.radians(ang))
+        y = tr.centre[1] + radius * np.sin(np.radians(ang))
+        t = t_true(x, y) + rng.normal(0, READING_SIGMA)
+        rows.append(f"{x:.1f},{y:.1f},ut,{t:.2f},,,CZ-{k:02d},hand UT at the shell")
+    pits = tr.pits[tr.pits.seen_new & (tr.pits.repair < 0)]
+    deepest = pits.sort_values("depth_new_mm", ascending=False)
+    for k, p in enumerate(deepest[deepest.side == "under"].head(8).itertuples(), start=1):
+        t = t_true(p.x_mm, p.y_mm) + rng.normal(0, READING_SIGMA)
+        rows.append(f"{p.x_mm:.1f},{p.y_mm:.1f},prove-up,{t:.2f},,under,PU-{k:02d},UT prove-up")
+    for k, p in enumerate(deepest[deepest.side == "top"].head(2).itertuples(), start=1):
+        d = max(p.depth_new_mm + rng.normal(0, READING_SIGMA), 0.0)
+        rows.append(f"{p.x_mm:.1f},{p.y_mm:.1f},pit-gauge,,{d:.2f},top,PG-{k:02d},top-side pit from above")
+    return rows
+
+
+def write_readings(pair, path: str) -> None:
+    head = ["# format: scananalyse-readings 1", f"# tank: {SCENARIO['tank']}",
+            f"# inspected: {SCENARIO['inspected_new'].isoformat()}", "# units: mm",
+            f"# sigma: {READING_SIGMA}", "# invented: synthetic readings for the demo",
+            "x,y,kind,thickness,depth,side,id,note"]
+    with open(path, "w", encoding="utf-8", newline="\n") as fh:
+        fh.write("\n".join(head + readings_rows(pair)) + "\n")
+
+
 def main() -> int:
     pair = build()
     tank = SCENARIO["tank"]
+    readings = os.path.join(HERE, f"{tank}_readings_{SCENARIO['inspected_new'].isoformat()}.csv")
+    if "--readings-only" in sys.argv:  # leave the scans as they are; rewrite only the readings
+        write_readings(pair, readings)
+        print(f"{os.path.relpath(readings, HERE)} written")
+        return 0
     written = []
     for scan in (pair.old, pair.new):
         stem = os.path.join(HERE, f"{tank}_{scan.meta.inspected.isoformat()}")
@@ -62,6 +110,7 @@ def main() -> int:
             written.append((scan, stem + ext))
     rec = os.path.join(HERE, f"{tank}_repairs.csv")
     synth.write_repair_record(pair.truth, rec)
+    write_readings(pair, readings)
 
     tdir = os.path.join(HERE, "truth")
     os.makedirs(tdir, exist_ok=True)

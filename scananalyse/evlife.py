@@ -221,7 +221,9 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
     Returns
     -------
     dict
-        Zone name -> :class:`HiddenPart`, for the zones with a scanned cell.
+        Zone name -> :class:`HiddenPart`, for every zone.  A zone with no scanned cell
+        is hidden over its whole area (less what the older scan saw) and judged with the
+        whole floor's fit (``source = "floor"``): what nobody saw is never taken as sound.
 
     Notes
     -----
@@ -248,12 +250,18 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
     thr = threshold or None
     kw = dict(pitch=pitch, block_mm=block_mm, seed=seed, threshold=thr)
     floor = []  # the whole floor's fit, made once if a zone needs to borrow it
+
+    def floor_fit():
+        if not floor:
+            fm = zmap.labels >= 0
+            floor.append((fit_zone(depth0, fm, pitch_mm=pitch, zone_area_mm2=float(np.sum(zmap.areas_mm2)),
+                                   block_mm=block_mm, threshold=thr, seed=seed, valid=scanned), scanned & fm))
+        return floor[0]
+
     out = {}
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         cells = scanned & mask
-        if not cells.any():
-            continue
         extra = _older_cells(thickness, older, mask)
         n_seen = np.count_nonzero(cells) + (0 if extra is None else np.count_nonzero(extra))
         hidden_mm2 = max(0.0, float(zmap.areas_mm2[k]) - n_seen * pitch * pitch)
@@ -263,25 +271,24 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
         allowance = _allowance(mrt, mask, nominal)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ScanWarning)
-            z0 = (methods or {}).get(name)
-            if z0 is None:
-                z0 = fit_zone(depth0, mask, pitch_mm=pitch, zone_area_mm2=float(zmap.areas_mm2[k]),
-                              block_mm=block_mm, threshold=thr, seed=seed, valid=scanned)
-            source, reason, fit_mask = "zone", "", cells
+            if cells.any():
+                z0 = (methods or {}).get(name)
+                if z0 is None:
+                    z0 = fit_zone(depth0, mask, pitch_mm=pitch, zone_area_mm2=float(zmap.areas_mm2[k]),
+                                  block_mm=block_mm, threshold=thr, seed=seed, valid=scanned)
+                source, reason, fit_mask = "zone", "", cells
+            else:  # not scanned at all: nothing of its own to fit, and nothing to credit
+                z0, reason, fit_mask = None, "zone fit: no scanned cell", cells
             if not z0:
-                reason = f"zone fit: {z0.reason}"
-                if not floor:
-                    fm = zmap.labels >= 0
-                    floor.append((fit_zone(depth0, fm, pitch_mm=pitch, zone_area_mm2=float(np.sum(zmap.areas_mm2)),
-                                           block_mm=block_mm, threshold=thr, seed=seed, valid=scanned),
-                                  scanned & fm))
-                z0, fit_mask = floor[0]
+                reason = reason or f"zone fit: {z0.reason}"
+                z0, fit_mask = floor_fit()
                 source = "floor"
             if z0:
                 out[name] = _hidden_from_fit(depth0, rate, fit_mask, z0, hidden_mm2, allowance, source=source,
                                              reason=reason, **kw)
             else:
-                out[name] = _hidden_worst_seen(depth0, rate, cells, hidden_mm2, allowance, thr,
+                worst = cells if cells.any() else fit_mask  # no cell of its own: the floor's worst
+                out[name] = _hidden_worst_seen(depth0, rate, worst, hidden_mm2, allowance, thr,
                                                reason=f"{reason}; floor fit: {z0.reason}")
     return out
 

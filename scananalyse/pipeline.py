@@ -271,7 +271,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         table = assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
                                              target_probability=job.target_probability)
         if reading_zone_table is not None:
-            table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected)
+            table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected,
+                                         hidden=hidden)
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
@@ -286,7 +287,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
             target_probability=job.target_probability)
         if reading_zone_table is not None and rep.get("zones_repaired") is not None:
             rep["zones_repaired"] = rd.add_reading_zones(rep["zones_repaired"], reading_zone_table, rules=rules,
-                                                      inspected=new.meta.inspected)
+                                                      inspected=new.meta.inspected, hidden=hidden)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, options=options, extremes_depth=ext_depth,

@@ -1153,7 +1153,8 @@ def apply_old_readings(old: FloorScan, readings, new: FloorScan, job: Job, readi
                                                    "same_method": same}
 
 
-def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, inspected) -> pd.DataFrame:
+def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, inspected,
+                      hidden: dict | None = None) -> pd.DataFrame:
     """The zone table with the spot readings' zone summary added.
 
     Parameters
@@ -1162,20 +1163,27 @@ def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, insp
     summary : :func:`~scananalyse.readings.reading_zone_summary` output.
     rules : :class:`~scananalyse.rules.RuleSet` (interval rounding).
     inspected : date of the newer inspection (``next_due``).
+    hidden : zone name -> :class:`~scananalyse.evlife.HiddenPart` of the floor as found
+        (:func:`~scananalyse.evlife.hidden_parts`): the floor between the readings.
 
     Returns
     -------
     DataFrame : ``n_readings`` on every row; a zone with no scanned cell but with
     readings takes the readings' thinnest value, code interval and co-located life in
-    place of the ``no-data`` NaNs, flagged ``readings-only;points-only`` (``no-data``
-    stays only where nothing at all was read).
+    place of the ``no-data`` NaNs, and the extreme-value life of its unseen floor,
+    flagged ``readings-only;points-only`` (``no-data`` stays only where nothing at all
+    was read).
 
     Notes
     -----
     The recommended interval of such a zone is min(readings' code interval, co-located
-    life of the readings, cap), never below 0 and rounded down; with neither a code
-    interval nor a life it stays NaN.  The floor between the readings is unseen
-    (``points-only``): the extreme-value life has no data there and is not used.
+    life of the readings, extreme-value life of the floor between them, cap), never
+    below 0 and rounded down; with neither a code interval nor a life it stays NaN.
+    The floor between the readings is unseen (``points-only``): spot readings say
+    nothing of the deepest pit between them, so that floor is judged with the whole
+    floor's extreme-value law over the zone's area (``eva-borrowed``; ``eva-below-mrt``
+    where its 95 % bound is already past MRT).  Without ``hidden`` it is left out and
+    the row says so (``no-eva``).
     """
     out = table.copy()
     s = summary.set_index("zone") if len(summary) else None
@@ -1192,18 +1200,38 @@ def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, insp
             if col in out.columns:
                 out.at[i, col] = float(r[col])
         cap = float(out.at[i, "cap_y"]) if "cap_y" in out.columns else float("nan")
-        bounds = {"code": float(r["interval_code_y"]), "local": float(r["life_local_y"]), "cap": cap}
+        eva, eflags = _unseen_floor(out, i, (hidden or {}).get(z))
+        bounds = {"code": float(r["interval_code_y"]), "local": float(r["life_local_y"]), "eva": eva, "cap": cap}
         valid = {b: v for b, v in bounds.items() if not np.isnan(v)}
         if "code" in valid or "local" in valid:
             best = min(valid.values())
             rec = rules.round_interval(max(best, 0.0))
             out.at[i, "interval_recommended_y"] = rec
-            out.at[i, "limiting"] = next(b for b in ("code", "local", "cap") if b in valid and valid[b] == best)
+            out.at[i, "limiting"] = next(b for b in ("code", "local", "eva", "cap") if b in valid and valid[b] == best)
             out.at[i, "next_due"] = add_years(inspected, rec).isoformat()
         rflags = [f for f in str(r["flags"]).split(";") if f and f != "points-only"]
-        out.at[i, "flags"] = ";".join(["readings-only", "points-only"] + rflags)
+        out.at[i, "flags"] = ";".join(["readings-only", "points-only"] + rflags + eflags)
         out.at[i, "notes"] = f"no scanned cell; from {int(r['n_readings'])} spot readings: " + str(r["notes"])
     return out
+
+
+def _unseen_floor(out: pd.DataFrame, i, h) -> tuple[float, list]:
+    """Row ``i`` of a readings-only zone gets the extreme-value columns of the floor
+    between its readings (``h``, a HiddenPart, or None); returns (life [y], flags)."""
+    if h is None or not np.isfinite(h.life_y):
+        return float("nan"), ["no-eva"]
+    cols = {"life_eva_y": float(h.life_y), "depth_hidden_p50_mm": h.depth_p50_mm,
+            "depth_hidden_p95_mm": h.depth_p95_mm, "hidden_area_m2": h.area_mm2 / 1e6, "eva_source": h.source}
+    for col, v in cols.items():
+        if col not in out.columns:
+            continue
+        if isinstance(v, str) and out[col].dtype != object:
+            out[col] = out[col].astype(object)
+        out.at[i, col] = v
+    flags = {"floor": ["eva-borrowed"], "worst-seen": ["eva-worst-seen"]}.get(h.source, [])
+    if h.life_y == 0:  # the 95 % bound of its deepest loss is already past MRT
+        flags.append("eva-below-mrt")
+    return float(h.life_y), flags
 
 
 def readings_result(rinfo, zone_summary, scan_new, readings_new, readings_old) -> dict:

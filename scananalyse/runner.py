@@ -299,7 +299,7 @@ def sample_dir() -> Path:
 
 
 DEMO = {"old": "FQ-214_2015-09-21.h5", "new": "FQ-214_2025-10-06.h5", "repairs": "FQ-214_repairs.csv",
-        "diameter": 8000.0}
+        "readings": "FQ-214_readings_2025-10-06.csv", "diameter": 8000.0}
 
 
 def run_demo(out_dir="demo_out", *, units=None, quiet=False, force: bool = False) -> CompareResult:
@@ -309,5 +309,6 @@ def run_demo(out_dir="demo_out", *, units=None, quiet=False, force: bool = False
     complete earlier output of scananalyse is replaced (:func:`~scananalyse.outputs.output_folder`).
     """
     d = sample_dir()
-    job = Job(diameter=DEMO["diameter"], repairs=str(d / DEMO["repairs"]), units=units or "mm")
+    job = Job(diameter=DEMO["diameter"], repairs=str(d / DEMO["repairs"]), units=units or "mm",
+              readings=[str(d / DEMO["readings"])])
     return compare(d / DEMO["old"], d / DEMO["new"], job=job, out_dir=out_dir, force=force, quiet=quiet)

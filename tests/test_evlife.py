@@ -182,6 +182,28 @@ def test_a_zone_too_small_for_a_fit_borrows_the_floors():
     assert np.isfinite(h.life_y) and h.life_y < LIFE_HORIZON_Y
 
 
+def test_a_zone_nobody_scanned_is_hidden_over_its_whole_area_with_the_floors_law():
+    # A ring zone with no scanned cell (the shell margin the crawler cannot reach): it is
+    # not skipped; its whole area is hidden and judged with the floor's fit.  Its median
+    # deepest loss follows F^T over its own area (Shibata 1994; Coles 2001 §3.1), so it is
+    # deeper than the median over the much smaller hidden part of a 3 x 3-cell zone.
+    thickness, _ = _floor(seed=2, shape=(80, 80))
+    labels = np.zeros(thickness.shape, np.int16)
+    labels[:, -4:] = 1
+    labels[10:13, 10:13] = 2
+    thickness[:, -4:] = np.nan  # the ring was not scanned
+    ring_mm2 = 2.0e6
+    zmap = SimpleNamespace(names=["interior", "ring", "sump"], labels=labels,
+                           areas_mm2=np.array([2.0 * 80 * 76 * PITCH ** 2, ring_mm2, 9 * PITCH ** 2 + 0.05e6]))
+    seen, hidden = _parts(thickness, zmap, 0.02, 6.0)
+    h = hidden["ring"]
+    assert h.source == "floor" and "no scanned cell" in h.reason
+    assert h.area_mm2 == pytest.approx(ring_mm2)
+    assert h.depth_p50_mm > hidden["sump"].depth_p50_mm
+    assert np.isfinite(h.life_y) and h.life_y < LIFE_HORIZON_Y
+    assert "ring" not in seen  # nothing seen: the zone's life is the hidden part's alone
+
+
 def test_cells_the_older_scan_saw_are_projected_not_hidden():
     thickness, zmap = _floor(seed=4)
     t_new = thickness.copy()

@@ -440,6 +440,41 @@ def test_chime_zone_from_hand_ut_matches_hand_computation():
     assert one["interval_code_y"] == pytest.approx(or_code, rel=1e-9)
 
 
+def test_readings_only_zone_is_held_by_the_unseen_floor_between_the_spots():
+    # A zone with no scanned cell and spot readings: the readings give the code interval
+    # (9.0 y) and the co-located life (7.2 y); the floor between the spots is judged with
+    # the whole floor's extreme-value law (a HiddenPart, here a life of 3.4 y), and the
+    # least of the three, rounded down to 0.5 y, is recommended (hand arithmetic).
+    from scananalyse.evlife import HiddenPart
+    from scananalyse.readings import add_reading_zones
+    from scananalyse.rules import get_ruleset
+
+    table = pd.DataFrame({"zone": ["critical"], "flags": ["no-data"], "notes": ["zone not scanned"],
+                          "cap_y": [20.0], "t_min_mm": [np.nan], "interval_code_y": [np.nan],
+                          "life_local_y": [np.nan], "interval_recommended_y": [np.nan], "limiting": [""],
+                          "next_due": [""], "life_eva_y": [np.nan], "depth_hidden_p50_mm": [np.nan],
+                          "depth_hidden_p95_mm": [np.nan], "hidden_area_m2": [np.nan], "eva_source": [np.nan]})
+    summary = pd.DataFrame({"zone": ["critical"], "n_readings": [12], "t_min_mm": [4.1],
+                            "interval_code_y": [9.0], "life_local_y": [7.2], "rtbc_mm": [4.1], "rtip_mm": [6.35],
+                            "stpr_mm_y": [0.0], "upr_mm_y": [0.09], "flags": ["points-only"], "notes": ["points"]})
+    kw = dict(rules=get_ruleset(), inspected=dt.date(2026, 5, 1))
+    h = HiddenPart(area_mm2=1.8e6, T=30.0, life_y=3.4, depth_p50_mm=1.9, depth_p95_mm=2.6, source="floor")
+    got = add_reading_zones(table, summary, hidden={"critical": h}, **kw).iloc[0]
+    assert got["interval_recommended_y"] == 3.0 and got["limiting"] == "eva"
+    assert got["next_due"] == "2029-05-01"
+    assert got["life_eva_y"] == 3.4 and got["hidden_area_m2"] == pytest.approx(1.8)
+    assert got["eva_source"] == "floor"
+    assert got["flags"].split(";") == ["readings-only", "points-only", "eva-borrowed"]
+    # the unseen floor already past MRT: 0 and said so
+    h0 = HiddenPart(area_mm2=1.8e6, T=30.0, life_y=0.0, depth_p50_mm=3.0, depth_p95_mm=4.5, source="floor")
+    got0 = add_reading_zones(table, summary, hidden={"critical": h0}, **kw).iloc[0]
+    assert got0["interval_recommended_y"] == 0.0 and "eva-below-mrt" in got0["flags"].split(";")
+    # without the floor's law the row says it has no extreme-value life
+    bare = add_reading_zones(table, summary, **kw).iloc[0]
+    assert bare["interval_recommended_y"] == 7.0 and bare["limiting"] == "local"
+    assert "no-eva" in bare["flags"].split(";")
+
+
 def test_reading_spots_pit_gauge_and_tolerance():
     # hand computation: pit gauge depth 1.35 -> t = 6.35 − 1.35 = 5.0; the older depth 0.85 at the
     # same spot gives (5.5 − 5.0)/Δt; a UT reading 30 mm from the older one is not the same spot

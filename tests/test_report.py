@@ -504,8 +504,8 @@ def test_verdict_zone_below_mrt_with_repairs():
                              "next inspection by 2027-11-01.")
     assert v["limit"].startswith("The thinnest reading, 1.40 mm, is below the MRT of 2.54 mm.")
     assert "After repair the interval is limited by the extreme-value life" in v["limit"]
-    # after repair the extreme-value estimate of the unscanned 20 % limits: hand UT helps
-    assert v["hand_ut"].startswith("Optional: hand UT of the 2.00 m² not scanned")
+    # after repair the extreme-value estimate of the unscanned 20 % limits: scanning it helps
+    assert v["hand_ut"].startswith("Optional: scanning the 2.00 m² not scanned")
     assert v["patches"] == "2 patch plates proposed here, 0.75 m² in all."
     # in inches: the thickness in in, the area in ft²
     (vi,) = zone_verdicts(found, rep, patches, units="in")

@@ -32,8 +32,9 @@ def actions(an) -> list[str]:
             out.append(f"Zone {zone} was not scanned: assess it by hand UT before setting its interval.")
             continue
         if "readings-only" in flags:
-            out.append(f"Zone {zone} was not scanned; its interval rests on {int(z.get('n_readings', 0))} spot readings "
-                       "alone: the floor between them is unseen, so read more of it (hand UT) where the interval is short.")
+            out.append(f"Zone {zone} was not scanned; {int(z.get('n_readings', 0))} spot readings give its metal at "
+                       "their spots only: the floor between them is unseen and is judged with the whole floor's pit "
+                       "statistics over the zone's area. Scan the zone to replace that prediction with measurements.")
         if "below-mrt" in flags:
             out.append(f"Zone {zone} is below MRT now (thinnest {z['t_min_mm']:.2f} mm against {z['mrt_mm']:.2f} mm): "
                        "repair before return to service.")
@@ -51,13 +52,13 @@ def actions(an) -> list[str]:
                 if "eva-below-mrt" in rflags or float(r["interval_recommended_y"]) == 0.0:
                     out.append(f"Zone {zone}: the {hidden:.1f} m² nobody scanned may already hold metal below MRT "
                                f"(deepest loss expected there up to {r['depth_hidden_p95_mm']:.2f} mm, 95 % bound): "
-                               "prove up the unscanned area by hand UT before return to service; repairs of scanned "
-                               "metal do not change this. Hand UT readings (--readings) and a re-run replace the "
-                               "prediction with measurements.")
+                               "prove up the unscanned area (scan it by hand or with an edge scanner) before return to "
+                               "service; repairs of scanned metal do not change this. Spot readings (--readings) assess "
+                               "their own spots only: the prediction for the area stands until the area is scanned.")
                 else:
                     out.append(f"After repair, zone {zone} is limited by the extreme-value life ({r['life_eva_y']:.1f} y): "
-                               f"the {hidden:.1f} m² nobody scanned may hide deeper pits; hand UT readings there "
-                               "(--readings) and a re-run can lengthen the interval.")
+                               f"the {hidden:.1f} m² nobody scanned may hide deeper pits; scanning that area can lengthen the "
+                               "interval (spot readings assess their own spots only).")
     return out
 
 

@@ -449,8 +449,8 @@ def _hand_ut_sentence(flags, row, unscanned, units, *, force=False) -> str:
     if "low-coverage" in flags:
         return (f"Less was scanned than the rules ask: hand UT the {a} not scanned.")
     if lim == "eva":
-        return (f"Optional: hand UT of the {a} not scanned can lengthen the interval, "
-                "which the extreme-value estimate of that area limits.")
+        return (f"Optional: scanning the {a} not scanned can lengthen the interval, "
+                "which the extreme-value estimate of that area limits (spot readings assess their spots only).")
     return "None beyond the usual prove-up of the indications listed."
 
 
