@@ -731,7 +731,7 @@ def _unmeasured_cells(t, rt, ru, *, t0: float, threshold) -> np.ndarray:
 
     Such a cell's true loss is somewhere in [0, threshold) and its rate is not measured:
     0 is the censored reading's rate, and ``inf`` would be a biased point reported as
-    a life. The extreme-value life bounds this metal instead (docs/assessment.md §4a).
+    a life. The extreme-value life bounds this metal instead (docs/assessment.md §4).
     """
     if threshold is None or not threshold > 0:
         return np.zeros(t.shape, dtype=bool)
