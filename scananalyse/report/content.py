@@ -55,8 +55,9 @@ def actions(an, units: str = "mm") -> list[str]:
                     hidden = max(0.0, float(r["area_m2"]) * (1 - float(r["coverage_pct"]) / 100))
                 rflags = set(str(r["flags"]).split(";")) if isinstance(r["flags"], str) else set()
                 if "eva-below-mrt" in rflags or float(r["interval_recommended_y"]) == 0.0:
-                    out.append(f"Zone {zone}: the {q(hidden, 'area')} nobody scanned may already hold metal below MRT "
-                               f"(deepest loss expected there up to {q(r['depth_hidden_p95_mm'], 'depth')}, 95 % bound): "
+                    out.append(f"Zone {zone}: the {q(hidden, 'area')} nobody scanned may already hold metal below "
+                               f"MRT (deepest loss expected there up to {q(r['depth_hidden_p95_mm'], 'depth')}, 95 % "
+                               "bound): "
                                "prove up the unscanned area by hand UT before return to service; repairs of scanned "
                                "metal do not change this. Hand UT readings (--readings) and a re-run replace the "
                                "prediction with measurements.")
@@ -156,9 +157,11 @@ def report_data(an, units: str, registration_dict, figs) -> ReportData:
         zones_repaired=_texts_in_units(an.zones_repaired, units),
         patches=_texts_in_units(an.patches, units), indications=_texts_in_units(an.indications, units),
         registration=None if registration_dict is None else _registration_shown(registration_dict, units),
-        rules_table=_rules_shown(an.rules.table(), units), assumptions=[U.text_in_units(a, units) for a in assumptions],
+        rules_table=_rules_shown(an.rules.table(), units),
+        assumptions=[U.text_in_units(a, units) for a in assumptions],
         figures=fig_dict, extremes={z: _texts_in_units(row, units) for z, row in ext.items()},
-        flags_explained=_texts_in_units({**FLAGS_EXPLAINED, **READINGS_FLAGS}, units), units=units, timings=dict(an.timings),
+        flags_explained=_texts_in_units({**FLAGS_EXPLAINED, **READINGS_FLAGS}, units), units=units,
+        timings=dict(an.timings),
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
 
 
