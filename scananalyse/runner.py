@@ -30,6 +30,7 @@ from .report.dxf import patch_locations, write_patches_dxf
 from .report import figures as F
 from .report.content import actions, report_data
 from .report.figlist import figure_specs, file_stem
+from .report.units import text_in_units, with_unit
 from .report.html import write_report
 from .report.pdf import write_pdf
 from .scan import to_display
@@ -68,10 +69,7 @@ class CompareResult:
         lines = [f"scananalyse {__version__}: tank {self.tank or '-'}"
                  + (" (one inspection: long-term rates only)" if self.single else "")]
         if self.registration:
-            r = self.registration
-            lines.append(f"registration: rotation {r['rotation_deg']:.3f} deg, shift "
-                         f"({r['dx_mm']:.1f}, {r['dy_mm']:.1f}) mm, score {r['score'] or 0:.2f}, "
-                         f"overlap {r['overlap_pct'] or 0:.1f} %" + ("" if r["reliable"] else "  ** UNRELIABLE **"))
+            lines.append(_registration_line(self.registration, u))
         nd = 3 if u == "in" else 1
         hdr = f"  {'zone':<12}{'t_min':>8}{'code':>8}{'local':>8}{'eva':>8}{'recomm.':>9}  {'next due':<11}{'limiting':<10}flags"
         for title, table in (("as found", self.zones), ("after the proposed repairs", self.zones_repaired)):
@@ -89,15 +87,31 @@ class CompareResult:
                     f"{_fmt(z['interval_recommended_y']):>9}  {due:<11}{str(z['limiting'] or '-') if isinstance(z['limiting'], str) else '-':<10}"
                     f"{flags}")
         area = float(self.patches["area_m2"].sum()) if len(self.patches) else 0.0
-        lines.append(patches_line(len(self.patches), area, self.zones, self.zones_repaired))
+        lines.append(_patches_line(len(self.patches), area, self.zones, self.zones_repaired, u))
         st = self.indications["status"].value_counts() if "status" in self.indications else {}
         parts = [f"{int(st[k])} {k}" for k in ("new", "grown", "stable", "repaired", "partly unscanned", "not found") if k in st]
         lines.append(f"indications: {len(self.indications)} (indications.csv)" + (f": {', '.join(parts)}" if parts else ""))
         for n in self.notes:
-            lines.append("note: " + n)
+            lines.append("note: " + text_in_units(n, u))
         lines.append(f"report: {self.report_path}")
         lines.append("CAUTION: " + CAUTION)
         return "\n".join(lines)
+
+
+def _registration_line(r: dict, units: str) -> str:
+    """The console's line on the registration, the shift in mm or inches."""
+    dx, dy = (to_display(r[k], units) for k in ("dx_mm", "dy_mm"))
+    nd = 3 if units == "in" else 1
+    return (f"registration: rotation {r['rotation_deg']:.3f} deg, shift ({dx:.{nd}f}, {dy:.{nd}f}) "
+            f"{'in' if units == 'in' else 'mm'}, score {r['score'] or 0:.2f}, overlap {r['overlap_pct'] or 0:.1f} %"
+            + ("" if r["reliable"] else "  ** UNRELIABLE **"))
+
+
+def _patches_line(n: int, area_m2: float, zones, zones_repaired, units: str) -> str:
+    """The console's patch-plate line (:func:`~scananalyse.checks.patches_line`), the area in
+    ft² for ``units="in"`` (converted from the unrounded area)."""
+    line = patches_line(n, area_m2, zones, zones_repaired)
+    return line.replace(f"{area_m2:.2f} m2", with_unit(area_m2, "area", units), 1) if units == "in" else line
 
 
 def _fmt(v, nd=1) -> str:
@@ -255,7 +269,7 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
                          patches=an.patches, indications=an.indications, registration=reg,
                          report_path=str(Path(out_dir) / "report.html"), units=job.units,
                          tank=an.new.meta.tank, single=single, files=files,
-                         notes=actions(an) + list(an.notes) + ([an.patch_note] if an.patch_note else []))
+                         notes=actions(an, job.units) + list(an.notes) + ([an.patch_note] if an.patch_note else []))
 
 
 def compare(old_path, new_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:

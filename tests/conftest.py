@@ -26,3 +26,21 @@ def small_pair_files(tmp_path_factory):
     paths["pair"] = pair
     paths["dir"] = d
     return paths
+
+
+@pytest.fixture(scope="session")
+def inch_compare_run(small_pair_files, tmp_path_factory):
+    """One ``compare --units in`` of the small pair, the diameter typed in inches
+    (157.48 in = 4000 mm): its output folder and what it printed (no PDF)."""
+    import contextlib
+    import io
+
+    from scananalyse.cli import main
+
+    out = tmp_path_factory.mktemp("inch") / "out"
+    printed = io.StringIO()
+    with pytest.MonkeyPatch.context() as mp, contextlib.redirect_stdout(printed):
+        mp.setenv("SCANANALYSE_BROWSER", "none")
+        code = main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "157.48",
+                     "--out", str(out), "--quiet", "--units", "in"])
+    return {"code": code, "out": out, "console": printed.getvalue()}

@@ -137,12 +137,12 @@ def test_assess_single_inspection(small_pair_files, tmp_path, capsys):
     assert "one inspection" in capsys.readouterr().out
 
 
-def test_units_in_display(small_pair_files, tmp_path, capsys):
-    out = tmp_path / "inch"
-    # --units states the units of the options too: 157.48 in = 4000 mm
-    assert main(["compare", small_pair_files["old_h5"], small_pair_files["new_h5"], "--diameter", "157.48",
-                 "--out", str(out), "--quiet", "--units", "in"]) == 0
-    assert "thickness in" in capsys.readouterr().out
+def test_units_in_display(small_pair_files, inch_compare_run, tmp_path):
+    # --units states the units of the options too: 157.48 in = 4000 mm (the run is shared with
+    # test_inch_display.py)
+    out = inch_compare_run["out"]
+    assert inch_compare_run["code"] == 0
+    assert "thickness in" in inch_compare_run["console"]
     # files keep SI columns whatever the display units
     assert "t_min_mm" in pd.read_csv(out / "zones.csv").columns
     assert "t_min_in" not in pd.read_csv(out / "zones.csv").columns

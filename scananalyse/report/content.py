@@ -8,11 +8,13 @@ import math
 import os
 
 import numpy as np
+import pandas as pd
 
 from ..evlife import LIFE_LEVEL
 from ..extremes import GEV_ALPHA, MIN_BLOCK_MM
 from ..indications import reporting_depth
 from . import labels
+from . import units as U
 from .html import ReportData
 
 __all__ = ["FLAGS_EXPLAINED", "actions", "report_data"]
@@ -21,23 +23,28 @@ __all__ = ["FLAGS_EXPLAINED", "actions", "report_data"]
 FLAGS_EXPLAINED = labels.FLAGS_EXPLAINED
 
 
-def actions(an) -> list[str]:
-    """Plain sentences on what each zone's result asks of the inspector and the engineer."""
+def actions(an, units: str = "mm") -> list[str]:
+    """Plain sentences on what each zone's result asks of the inspector and the engineer,
+    their numbers in the display ``units`` (``"mm"`` or ``"in"``)."""
+    def q(value, quantity):
+        return U.with_unit(value, quantity, units)
+
     out = []
     found = an.zone_table.set_index("zone")
     rep = an.zones_repaired.set_index("zone") if an.zones_repaired is not None else None
     for zone, z in found.iterrows():
         flags = set(str(z["flags"]).split(";")) if isinstance(z["flags"], str) else set()
         if "no-data" in flags:
-            out.append(f"Zone {zone} was not scanned: assess it by hand UT before setting its interval.")
+            out.append(f"Zone {zone} was not scanned: scan it (by hand or with an edge scanner) before setting its "
+                       "interval; hand UT spots alone leave the floor between them to the whole floor's pit statistics.")
             continue
         if "readings-only" in flags:
             out.append(f"Zone {zone} was not scanned; {int(z.get('n_readings', 0))} spot readings give its metal at "
                        "their spots only: the floor between them is unseen and is judged with the whole floor's pit "
                        "statistics over the zone's area. Scan the zone to replace that prediction with measurements.")
         if "below-mrt" in flags:
-            out.append(f"Zone {zone} is below MRT now (thinnest {z['t_min_mm']:.2f} mm against {z['mrt_mm']:.2f} mm): "
-                       "repair before return to service.")
+            out.append(f"Zone {zone} is below MRT now (thinnest {q(z['t_min_mm'], 'thickness')} against "
+                       f"{q(z['mrt_mm'], 'thickness')}): repair before return to service.")
         if "code-exceeds-local" in flags:
             out.append(f"In zone {zone} the code formula gives {z['interval_code_y']:.1f} y but the co-located "
                        f"projection from the measured rates only {z['life_local_y']:.1f} y: the formula overstates what "
@@ -50,15 +57,16 @@ def actions(an) -> list[str]:
                     hidden = max(0.0, float(r["area_m2"]) * (1 - float(r["coverage_pct"]) / 100))
                 rflags = set(str(r["flags"]).split(";")) if isinstance(r["flags"], str) else set()
                 if "eva-below-mrt" in rflags or float(r["interval_recommended_y"]) == 0.0:
-                    out.append(f"Zone {zone}: the {hidden:.1f} m² nobody scanned may already hold metal below MRT "
-                               f"(deepest loss expected there up to {r['depth_hidden_p95_mm']:.2f} mm, 95 % bound): "
-                               "prove up the unscanned area (scan it by hand or with an edge scanner) before return to "
-                               "service; repairs of scanned metal do not change this. Spot readings (--readings) assess "
-                               "their own spots only: the prediction for the area stands until the area is scanned.")
+                    out.append(f"Zone {zone}: the {q(hidden, 'area')} nobody scanned may already hold metal below "
+                               f"MRT (deepest loss expected there up to {q(r['depth_hidden_p95_mm'], 'depth')}, 95 % "
+                               "bound): prove up the unscanned area (scan it by hand or with an edge scanner) before "
+                               "return to service; repairs of scanned metal do not change this. Spot readings "
+                               "(--readings) assess their own spots only: the prediction for the area stands until "
+                               "the area is scanned.")
                 else:
                     out.append(f"After repair, zone {zone} is limited by the extreme-value life ({r['life_eva_y']:.1f} y): "
-                               f"the {hidden:.1f} m² nobody scanned may hide deeper pits; scanning that area can lengthen the "
-                               "interval (spot readings assess their own spots only).")
+                               f"the {q(hidden, 'area')} nobody scanned may hide deeper pits; scanning that area can "
+                               "lengthen the interval (spot readings assess their own spots only).")
     return out
 
 
@@ -126,7 +134,7 @@ def report_data(an, units: str, registration_dict, figs) -> ReportData:
                           "their measured underside rate (the cause of the underside corrosion is not assumed removed)."))
     assumptions.append("Maps are drawn from decimated grids on big floors (minimum thickness / maximum loss and "
                        "rate per displayed pixel), so the worst value is never hidden; the tables use every cell.")
-    notes = actions(an) + list(an.notes)
+    notes = actions(an, units) + [U.text_in_units(n, units) for n in an.notes]
     if att and att.get("cells_with_loss"):
         notes.append(
             f"Attribution: of {att['cells_with_loss']} cells with reported loss, {att['cells_top']} were attributed "
@@ -135,25 +143,67 @@ def report_data(an, units: str, registration_dict, figs) -> ReportData:
             + f"; {att['cells_defaulted']} ({att['defaulted_pct']:.0f} %) were not attributed and count as "
             f"{'underside' if att['default_side'] == 'under' else 'top-side'} loss (the default).")
     if an.patch_note:
-        notes.append(an.patch_note)
+        notes.append(U.text_in_units(an.patch_note, units))
     if an.uncovered_cells:
         notes.append(f"{an.uncovered_cells} cells needing repair for the target interval are not covered by any patch.")
     rdg = _readings_data(an, units)
     if rdg:
         assumptions.extend(rdg.pop("assumptions"))
+        rdg["sizing_text"] = U.text_in_units(rdg["sizing_text"], units)
+        rdg["zones"], rdg["prove_up"] = (_texts_in_units(rdg[k], units) for k in ("zones", "prove_up"))
+    diameter = U.diameter_text(an.zones.geometry.diameter_mm, an.job.typed.get("diameter"), units)
     return ReportData(
         readings=rdg or None,
-        tank={"name": an.new.meta.tank, "diameter_mm": an.zones.geometry.diameter_mm},
-        inspections=inspections, zones=an.zone_table, zones_repaired=an.zones_repaired,
-        patches=an.patches, indications=an.indications,
-        registration=None if registration_dict is None else {
-            k: registration_dict.get(k) for k in ("method", "rotation_deg", "dx_mm", "dy_mm", "score",
-                                                  "overlap_pct", "residual_rms_mm", "reliable", "warnings",
-                                                  "std_rotation_deg", "std_shift_mm", "control_residuals_mm",
-                                                  "control_rms_mm", "convention")},
-        rules_table=an.rules.table(), assumptions=assumptions, figures=fig_dict, extremes=ext,
-        flags_explained={**FLAGS_EXPLAINED, **READINGS_FLAGS}, units=units, timings=dict(an.timings),
+        tank={"name": an.new.meta.tank, "diameter_mm": diameter},
+        inspections=inspections, zones=_texts_in_units(an.zone_table, units),
+        zones_repaired=_texts_in_units(an.zones_repaired, units),
+        patches=_texts_in_units(an.patches, units), indications=_texts_in_units(an.indications, units),
+        registration=None if registration_dict is None else _registration_shown(registration_dict, units),
+        rules_table=_rules_shown(an.rules.table(), units),
+        assumptions=[U.text_in_units(a, units) for a in assumptions],
+        figures=fig_dict, extremes={z: _texts_in_units(row, units) for z, row in ext.items()},
+        flags_explained=_texts_in_units({**FLAGS_EXPLAINED, **READINGS_FLAGS}, units), units=units,
+        timings=dict(an.timings),
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
+
+
+#: The registration.json keys the page shows.
+_REGISTRATION_SHOWN = ("method", "rotation_deg", "dx_mm", "dy_mm", "score", "overlap_pct", "residual_rms_mm",
+                       "reliable", "warnings", "std_rotation_deg", "std_shift_mm", "control_residuals_mm",
+                       "control_rms_mm", "convention")
+
+
+def _registration_shown(reg: dict, units: str) -> dict:
+    """The registration keys the page shows, its warnings' numbers in display units."""
+    out = {k: reg.get(k) for k in _REGISTRATION_SHOWN}
+    if isinstance(out.get("warnings"), (list, tuple)):
+        out["warnings"] = [U.text_in_units(w, units) for w in out["warnings"]]
+    return out
+
+
+def _rules_shown(rows: list, units: str) -> list:
+    """The rule table's rows with each value and its unit in display units; the notes are
+    left as written (they quote the sources, which give their own inch or metric values)."""
+    out = []
+    for row in rows:
+        value, unit = U.rule_value(row.get("value"), row.get("unit", ""), units)
+        out.append({**row, "value": value, "unit": unit})
+    return out
+
+
+def _texts_in_units(table, units: str):
+    """A copy of a table (DataFrame or mapping) whose sentences (notes, why no fit, …) have
+    their SI numbers in display units (:func:`~scananalyse.report.units.text_in_units`);
+    numbers stay SI (the page converts them by column), the analysis's own table untouched."""
+    if table is None or units == "mm":
+        return table
+    if isinstance(table, dict):
+        return {k: U.text_in_units(v, units) for k, v in table.items()}
+    out = table.copy()
+    for c in out.columns:
+        if out[c].dtype == object or pd.api.types.is_string_dtype(out[c]):
+            out[c] = out[c].map(lambda v: U.text_in_units(v, units), na_action="ignore")
+    return out
 
 
 #: The flags the spot readings add to zones.csv.

@@ -173,7 +173,7 @@ def rate_map_specs(new, lr, zmap, job, units, *, single, life, old=None, old_on_
     if old is not None and old_on_new is not None:
         out.append(("registration", "registration", "Features of the two scans (unscanned seams and margins, loss above the "
                     "reporting depth): newer scan against the older one before (left) and after (right) alignment.",
-                    partial(registration_figure, new, old, old_on_new)))
+                    partial(registration_figure, new, old, old_on_new, units=units)))
     return out
 
 
@@ -281,7 +281,7 @@ def patches_spec(new, patches, zmap, units):
                     **map_common(new, zmap, units)))
 
 
-def registration_figure(new, old, old_on_new):
+def registration_figure(new, old, old_on_new, *, units="mm"):
     """The registration overlay: the scans' features (unscanned cells, loss at or above the
     reporting depth) of the newer scan against the older one before and after alignment
     (:func:`~scananalyse.report.figures.registration_overlay`)."""
@@ -300,7 +300,7 @@ def registration_figure(new, old, old_on_new):
     # coordinates (nearest cell; a display aid, so no interpolation is needed)
     feat_before = resample_layer(features(old.thickness, old.meta.nominal), old, new, RigidTransform(), fill=True)
     feat_after = features(old_on_new.thickness, new.meta.nominal)
-    return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent)
+    return F.registration_overlay(feat_new, feat_before, feat_after, extent=new.extent, units=units)
 
 
 #: Marker of each reading kind on the maps.
@@ -339,18 +339,18 @@ def sizing_figure(pairs, nominal_mm: float, check=None, *, ax=None, units: str =
     -------
     matplotlib Figure
     """
-    from ..scan import to_display
+    from . import units as U
 
     fig, ax = F._new_axes(ax, (5.2, 5.0))
     sel = (pairs["kind"] == "prove-up") & pairs["scanned"].astype(bool)
-    m = to_display(float(nominal_mm) - pairs.loc[sel, "t_scan_mm"].to_numpy(float), units)
-    u = to_display(float(nominal_mm) - pairs.loc[sel, "thickness_mm"].to_numpy(float), units)
-    top = max(float(np.nanmax(np.r_[m, u, 0.0])) * 1.1, to_display(1.0, units))
+    m = U.convert(float(nominal_mm) - pairs.loc[sel, "t_scan_mm"].to_numpy(float), "depth", units)
+    u = U.convert(float(nominal_mm) - pairs.loc[sel, "thickness_mm"].to_numpy(float), "depth", units)
+    top = max(float(np.nanmax(np.r_[m, u, 0.0])) * 1.1, U.convert(1.0, "depth", units))
     ax.plot([0, top], [0, top], "k--", lw=1, label="1:1 (sized right)")
     if check is not None and np.isfinite(check.k):
         ax.plot([0, top], [0, check.k * top], color="#b03a2e", lw=1.2, label=f"fitted ratio k = {check.k:.2f}")
     ax.scatter(m, u, s=28, color="#2f6f9f", zorder=3, label=f"prove-ups ({int(sel.sum())})")
-    unit = "in" if units == "in" else "mm"
+    unit = U.unit_label("depth", units)  # loss: mm, or mils
     ax.set_xlabel(f"loss sized by the scan [{unit}]")
     ax.set_ylabel(f"loss found by prove-up UT [{unit}]")
     ax.set_xlim(0, top)
@@ -413,11 +413,10 @@ def return_curve(z):
     return T_line, lvl, None, np.array(ups), Ts
 
 
-def life_probability_figure(dists: dict, zone_table):
-    """Each zone's P(below MRT by t) and P(leak by t), its next due date marked."""
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(6.0, 3.6), layout="constrained")  # prints full width: legend >= 7 pt
+def life_probability_figure(dists: dict, zone_table, *, ax=None):
+    """Each zone's P(below MRT by t) and P(leak by t), its next due date marked (years and
+    probabilities only: the same in every display unit)."""
+    fig, ax = F._new_axes(ax, (6.0, 3.6))  # prints full width: legend >= 7 pt
     due = dict(zip(zone_table["zone"], zone_table["interval_recommended_y"]))
     years = np.linspace(0.0, 30.0, 241)
     for k, (name, d) in enumerate(dists.items()):

@@ -6,7 +6,8 @@ it drew on; with ``ax=None`` a new figure is created with
 and nothing needs closing).  Inputs are plain arrays and tables in internal units
 (mm, mm/y, years); the ``units`` argument only changes what is shown.
 
-Floor maps show floor coordinates in metres, the shell circle, a scale bar and a
+Floor maps show floor coordinates in metres (feet, or inches on small floors, with
+``units="in"``: :func:`~scananalyse.report.units.length_axis_unit`), the shell circle, a scale bar and a
 datum arrow, with continuous perceptually uniform colour maps from matplotlib's
 viridis family (viridis, magma, plasma, cividis) and a light grey for cells that
 were not scanned.  Big grids are block-reduced to at most ``max_pixels`` pixels
@@ -25,7 +26,7 @@ import tempfile
 import numpy as np
 from matplotlib.figure import Figure
 from matplotlib.colors import ListedColormap, BoundaryNorm
-from matplotlib.ticker import FuncFormatter
+from matplotlib.ticker import FuncFormatter, MultipleLocator
 from matplotlib.lines import Line2D
 from matplotlib.collections import PatchCollection
 from matplotlib.patches import Circle, FancyBboxPatch, Patch, Polygon, Rectangle
@@ -191,9 +192,33 @@ def _nice_length(span_m: float) -> float:
     return 10 ** exp
 
 
-def _scale_bar(ax, xlim, ylim):
+def _tick_text(value: float) -> str:
+    """A tick label: the display value without float noise, with a proper minus sign."""
+    v = round(float(value), 6)
+    return f"{v + 0.0:g}".replace("-", "−")
+
+
+def _length_axes(ax, xlim, units, *, y_label=True):
+    """Label a map's axes in floor coordinates of the display units (m, or ft / in), ticks
+    at round display values; the data stay in metres.  Returns ``(unit label, metres per
+    unit)`` for the scale bar."""
+    name, per = U.length_axis_unit(xlim[1] - xlim[0], units)
+    ax.set_xlabel(f"x [{name}]")
+    ax.set_ylabel(f"y [{name}]" if y_label else "")
+    if per != 1.0:
+        step = _nice_length((xlim[1] - xlim[0]) / per) * per
+        fmt = FuncFormatter(lambda v, _pos: _tick_text(v / per))
+        for axis in (ax.xaxis, ax.yaxis):
+            axis.set_major_locator(MultipleLocator(step))
+            axis.set_major_formatter(fmt)
+    return name, per
+
+
+def _scale_bar(ax, xlim, ylim, unit=("m", 1.0)):
+    """A scale bar of a round length in ``unit`` = ``(label, metres per unit)``."""
+    name, per = unit
     span = xlim[1] - xlim[0]
-    L = _nice_length(span)
+    L = _nice_length(span / per) * per
     h = 0.012 * (ylim[1] - ylim[0])
     x0 = xlim[0] + 0.04 * span
     y0 = ylim[0] + 0.035 * (ylim[1] - ylim[0])
@@ -202,7 +227,7 @@ def _scale_bar(ax, xlim, ylim):
         ax.add_patch(Rectangle((x0 + k * L / 4, y0), L / 4, h,
                                facecolor="#222222" if k % 2 == 0 else "white",
                                edgecolor="#222222", linewidth=0.6, zorder=6))
-    label = f"{L:g} m"
+    label = f"{_tick_text(L / per)} {name}"
     ax.text(x0 + L / 2, y0 + 1.6 * h, label, ha="center", va="bottom", fontsize=7.5,
             zorder=6, bbox=dict(boxstyle="square,pad=0.15", facecolor="white",
                                 edgecolor="none", alpha=0.75))
@@ -323,7 +348,8 @@ def floor_map(values, *, extent, title, label, units="mm", kind="thickness", dia
     _draw_indications(ax, indications, handles)
     if overlay is not None:
         overlay(ax, handles)
-    xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title)
+    xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title,
+                                        units=units)
     if own:
         _place_map(fig, ax, cax, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
     fig.scananalyse_factor = f
@@ -626,9 +652,10 @@ def _draw_indications(ax, indications, handles):
 
 
 
-def _frame_floor(ax, ext_m, handles, *, centre, diameter_mm, title):
-    """The shell circle, limits, labels, scale bar, datum arrow and the legend under the map;
-    returns ``(x limits, y limits, legend, legend columns)``."""
+def _frame_floor(ax, ext_m, handles, *, centre, diameter_mm, title, units="mm"):
+    """The shell circle, limits, labels (floor coordinates in the display ``units``), scale
+    bar, datum arrow and the legend under the map; returns ``(x limits, y limits, legend,
+    legend columns)``."""
     cx, cy = centre[0] / 1000.0, centre[1] / 1000.0
     xl = [ext_m[0], ext_m[1]]
     yl = [ext_m[2], ext_m[3]]
@@ -645,11 +672,10 @@ def _frame_floor(ax, ext_m, handles, *, centre, diameter_mm, title):
     ax.set_xlim(*xl)
     ax.set_ylim(*yl)
     ax.set_aspect("equal")
-    ax.set_xlabel("x [m]")
-    ax.set_ylabel("y [m]")
+    unit = _length_axes(ax, xl, units)
     ax.set_title(title, fontsize=11, loc="left")
     ax.tick_params(labelsize=8)
-    _scale_bar(ax, xl, yl)
+    _scale_bar(ax, xl, yl, unit)
     _datum_arrow(ax)
     # legend under the map, so nothing covers the floor
     ncol = min(4, len(handles))
@@ -776,7 +802,7 @@ def indication_status_map(indications, *, scanned, extent, units="mm", diameter_
         x_max_mm, y_max_mm`` (the box) and ``id``. [mm]
     scanned : boolean grid of the scanned cells (or a thickness grid: finite = scanned).
     extent : cell edges of the grid. [mm]
-    units : display units (the map is in metres either way).
+    units : display units (floor coordinates in m, or ft / in).
     diameter_mm, centre, plate, zones : as :func:`floor_map`.
     title : figure title.
     max_pixels : display reduction of the scanned mask.
@@ -839,7 +865,8 @@ def indication_status_map(indications, *, scanned, extent, units="mm", diameter_
                 ax.annotate(text, (row["x_mm"] / 1000.0, row["y_mm"] / 1000.0), xytext=(4, 3),
                             textcoords="offset points", fontsize=6.5, color="#222222", zorder=7,
                             path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
-    xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title)
+    xl, yl, legend, ncol = _frame_floor(ax, ext_m, handles, centre=centre, diameter_mm=diameter_mm, title=title,
+                                        units=units)
     _place_map(fig, ax, None, legend, rows=-(-len(handles) // ncol), aspect=(yl[1] - yl[0]) / (xl[1] - xl[0]))
     fig.scananalyse_factor = f
     fig.scananalyse_status_counts = counts
@@ -958,7 +985,7 @@ def reduce_feature_masks(new_features, old_features_before, old_features_after, 
 
 
 def registration_overlay(new_features, old_features_before, old_features_after, *, extent,
-                         max_pixels=300_000, ax=None):
+                         max_pixels=300_000, ax=None, units="mm"):
     """Two-colour composite of the scans' feature masks before and after alignment.
 
     Parameters
@@ -971,6 +998,7 @@ def registration_overlay(new_features, old_features_before, old_features_after, 
     extent : (x_min, x_max, y_min, y_max) of the new grid's cell edges. [mm]
     max_pixels : masks are block-reduced with "any" to at most this many pixels.
     ax : None, or a pair of axes (before, after).
+    units : display units: floor coordinates in m (``"mm"``), or ft / in (``"in"``).
 
     Returns
     -------
@@ -995,10 +1023,9 @@ def registration_overlay(new_features, old_features_before, old_features_after, 
         union = np.count_nonzero(nb | old)
         jac = both / union if union else float("nan")
         a.set_title(f"{ttl}: shared features {100 * jac:.0f} %", fontsize=10, loc="left")
-        a.set_xlabel("x [m]")
+        _length_axes(a, (ext[0], ext[1]), units, y_label=a is axes[0])
         a.set_aspect("equal")
         a.tick_params(labelsize=8)
-    axes[0].set_ylabel("y [m]")
     handles = [Patch(facecolor=(0.90, 0.45, 0.05), label="newer scan only"),
                Patch(facecolor=(0.15, 0.45, 0.80), label="older scan only"),
                Patch(facecolor=(0.10, 0.10, 0.10), label="both (aligned)")]
