@@ -341,7 +341,8 @@ def sizing_figure(pairs, nominal_mm: float, check=None, *, ax=None, units: str =
     """
     from . import units as U
 
-    fig, ax = F._new_axes(ax, (5.2, 5.0))
+    # 4.4 in tall: printed under the report's 115 mm cap for figures, so never shrunk
+    fig, ax = F._new_axes(ax, (5.2, 4.4))
     sel = (pairs["kind"] == "prove-up") & pairs["scanned"].astype(bool)
     m = U.convert(float(nominal_mm) - pairs.loc[sel, "t_scan_mm"].to_numpy(float), "depth", units)
     u = U.convert(float(nominal_mm) - pairs.loc[sel, "thickness_mm"].to_numpy(float), "depth", units)
