@@ -523,8 +523,8 @@ def test_verdict_zone_without_data():
     (v,) = zone_verdicts(z)
     assert v["verdict"] == "prove up first (hand UT)" and v["kind"] == "proveup"
     assert v["interval"] == "No interval can be set: the zone was not scanned."
-    assert v["hand_ut"] == ("Hand UT the whole zone (10.00 m²) and re-run the assessment "
-                            "with the readings.")
+    assert v["hand_ut"].startswith("Scan the whole zone (10.00 m²), by hand or with an edge scanner")
+    assert "spot readings alone" in v["hand_ut"]
 
 
 def test_verdict_extreme_value_below_mrt():
@@ -534,6 +534,13 @@ def test_verdict_extreme_value_below_mrt():
     assert v["verdict"] == "prove up first (hand UT)"
     assert "may already be below" in v["limit"]
     assert v["hand_ut"].startswith("Hand UT the 2.00 m² not scanned")
+    # the unseen metal alone makes the interval 0 (no scanned cell below MRT): still a
+    # prove-up, not a repair; no repair of measured metal would change it
+    z0 = _one_zone(interval_recommended_y=0.0, next_due="2026-05-01", limiting="eva",
+                   flags="readings-only;points-only;eva-borrowed;eva-below-mrt")
+    (v0,) = zone_verdicts(z0)
+    assert v0["verdict"] == "prove up first (hand UT)" and v0["kind"] == "proveup"
+    assert v0["interval"].startswith("Do not return to service before the area nobody scanned is proved up")
 
 
 def test_verdict_block_first_on_page(page):

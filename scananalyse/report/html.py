@@ -342,8 +342,9 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
     - ``no-data`` (or no interval at all) → prove up first (hand UT).
     - ``below-mrt``, or a recommended interval of 0 y → repair first; the interval
       given is the one after the proposed repairs.
-    - ``eva-below-mrt`` → prove up first: the extreme-value estimate says metal
-      nobody measured may already be below MRT.
+    - ``eva-below-mrt`` (no measured metal below MRT) → prove up first, also when that
+      makes the interval 0: the extreme-value estimate says metal nobody measured may
+      already be below MRT, and no repair of measured metal changes that.
     - otherwise → return to service as is, with the as-found interval.
     """
     if zones is None or len(zones) == 0:
@@ -382,8 +383,9 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
                 "the scan does not support one.")
             limit = "Nothing is known of the metal here from the scan."
             a = _qty(area, "area", units) if not math.isnan(area) else "all of it"
-            hand = f"Hand UT the whole zone ({a}) and re-run the assessment with the readings."
-        elif below or rec <= 0:
+            hand = (f"Scan the whole zone ({a}), by hand or with an edge scanner, and re-run the assessment; "
+                    "spot readings alone leave the floor between them to the whole floor's pit statistics.")
+        elif below or (rec <= 0 and "eva-below-mrt" not in flags):
             kind, verdict = "repair", VERDICTS[1]
             rr = _f(r, "interval_recommended_y") if r is not None else math.nan
             still = r is not None and "below-mrt" in _flag_set(r.get("flags"))
@@ -405,7 +407,9 @@ def zone_verdicts(zones: pd.DataFrame | None, zones_repaired: pd.DataFrame | Non
         elif "eva-below-mrt" in flags:
             kind, verdict = "proveup", VERDICTS[2]
             interval = (f"If the hand UT finds nothing thinner: inspect again within "
-                        f"{_years(rec)}{_due(z)}.")
+                        f"{_years(rec)}{_due(z)}." if rec > 0 else
+                        "Do not return to service before the area nobody scanned is proved up: "
+                        "no interval can be given until then.")
             limit = (f"Every scanned reading is above MRT, but the extreme-value estimate says "
                      f"metal nobody measured may already be below it; the interval is limited by "
                      f"{_limit_words(z)}.")
