@@ -81,8 +81,9 @@ class CompareResult:
             for _, z in table.iterrows():
                 due = z["next_due"] if isinstance(z["next_due"], str) and z["next_due"] else "-"
                 flags = z["flags"] if isinstance(z["flags"], str) else ""
+                code_txt = _fmt_code(z["interval_code_y"])
                 lines.append(
-                    f"  {str(z['zone']):<12}{_fmt(to_display(z['t_min_mm'], u), nd):>8}{_fmt(z['interval_code_y']):>8}"
+                    f"  {str(z['zone']):<12}{_fmt(to_display(z['t_min_mm'], u), nd):>8}{code_txt:>8}"
                     f"{_fmt(z['life_local_y']):>8}{_fmt(z.get('life_eva_y', float('nan'))):>8}"
                     f"{_fmt(z['interval_recommended_y']):>9}  {due:<11}{str(z['limiting'] or '-') if isinstance(z['limiting'], str) else '-':<10}"
                     f"{flags}")
@@ -112,6 +113,16 @@ def _patches_line(n: int, area_m2: float, zones, zones_repaired, units: str) -> 
     ft² for ``units="in"`` (converted from the unrounded area)."""
     line = patches_line(n, area_m2, zones, zones_repaired)
     return line.replace(f"{area_m2:.2f} m2", with_unit(area_m2, "area", units), 1) if units == "in" else line
+
+
+def _fmt_code(v) -> str:
+    """The code formula's interval for the console: ``<0`` where the formula goes negative
+    (the metal is already below MRT; zones.csv keeps the formula's value)."""
+    try:
+        neg = float(v) < 0
+    except (TypeError, ValueError):
+        neg = False
+    return "<0" if neg else _fmt(v)
 
 
 def _fmt(v, nd=1) -> str:

@@ -311,3 +311,18 @@ def test_units_option_applies_to_a_job_file_without_units(dummy_scans, tmp_path)
     r = resolve(job, "mm")
     assert job.units == "mm" and r.diameter == pytest.approx(8001.0) and r.repair_to_mm == pytest.approx(3.81)
     assert r.where("diameter").endswith("job.toml: field 'floor.diameter'") and r.where("repair_to") == "--repair-to"
+
+
+def test_console_code_interval_below_zero_and_pdf_skip_message(monkeypatch, tmp_path):
+    # the code formula goes negative once the metal is below MRT: the console says "<0"
+    # (zones.csv keeps the formula's value)
+    import numpy as np
+
+    from scananalyse.report.pdf import write_pdf
+    from scananalyse.runner import _fmt_code
+
+    assert _fmt_code(np.float64(-3.3)) == "<0" and _fmt_code(2.54) == "2.5" and _fmt_code(np.nan) == "-"
+    # a PDF skipped on purpose says why, not that no browser exists
+    monkeypatch.setenv("SCANANALYSE_BROWSER", "none")
+    msg = write_pdf(tmp_path / "r.html", tmp_path / "r.pdf")
+    assert "SCANANALYSE_BROWSER='none'" in msg and not (tmp_path / "r.pdf").exists()

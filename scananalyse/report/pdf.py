@@ -53,6 +53,10 @@ def write_pdf(html_path, pdf_path, *, paper: str = "A4", timeout: float = 180.0)
     html_path, pdf_path = Path(html_path), Path(pdf_path)
     exe = find_browser()
     if exe is None:
+        env = os.environ.get("SCANANALYSE_BROWSER")
+        if env is not None:
+            return (f"report.pdf not written: SCANANALYSE_BROWSER={env!r} names no browser to print "
+                    "with (unset it to look for chromium, or print report.html from a browser)")
         return ("report.pdf not written: no Chromium found (install chromium, or print "
                 "report.html from a browser)")
     with tempfile.TemporaryDirectory(prefix="scananalyse-pdf-") as work:
