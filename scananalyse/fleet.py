@@ -69,7 +69,7 @@ _MANIFEST_FIELDS = ("tank", "old", "new", "diameter", "job")
 _YES_NO = {"yes": "yes", "y": "yes", "true": "yes", "1": "yes", "no": "no", "n": "no", "false": "no", "0": "no"}
 #: The order rule of ``fleet.csv``, as the page states it.
 ORDER_RULE = ("Failed tanks first (they need attention before anything can be said); then the earliest next due "
-              "date; then the greater probability of a leak at that date (p_leak_at_due, where computed); then "
+              "date; then the greater probability of a leak at that date (where computed); then "
               "the shorter recommended interval, below-MRT and code-exceeds-local flags, and the tank name.")
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 #: Largest manifest read. [bytes]
