@@ -611,8 +611,9 @@ def fleet_page_data(df: pd.DataFrame, rows: list[dict], pop: pd.DataFrame | None
     tanks = {}
     for r in rows:
         n, area = r.get("_patches") or (None, None)
-        tanks[str(r["tank"])] = TankZones(zones=_frame(r.get("_zones")), zones_repaired=_frame(r.get("_zones_repaired")),
-                                          n_patches=n, patch_area_m2=area, rule_changes=tuple(r.get("_rule_changes") or ()))
+        tanks[str(r["tank"])] = TankZones(
+            zones=_frame(r.get("_zones")), zones_repaired=_frame(r.get("_zones_repaired")), n_patches=n,
+            patch_area_m2=area, rule_changes=tuple(r.get("_rule_changes") or ()))
     return FleetPageData(table=df, tanks=tanks, population=pop, figures=list(figures or []),
                          rules_table=RULESETS["api653"].table(), ruleset="api653", order_rule=ORDER_RULE,
                          units="mm", units_note=UNITS_NOTE, min_tanks_fit=MIN_TANKS_FIT)

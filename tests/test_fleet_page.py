@@ -14,7 +14,7 @@ import pytest
 
 from scananalyse import CAUTION
 from scananalyse.fleet import ORDER_RULE, UNITS_NOTE, fleet_page_data, rank_fleet, run_tank
-from scananalyse.report.fleet_page import (FLEET_FLAGS_EXPLAINED, FLEET_SECTIONS, FleetPageData, TankZones,
+from scananalyse.report.fleet_page import (FLEET_FLAGS_EXPLAINED, FLEET_SECTIONS, FleetPageData,
                                            render_fleet_page)
 from scananalyse.report.html import MEMORY_MARK, esc
 from scananalyse.report.labels import FLAGS_EXPLAINED
@@ -37,7 +37,8 @@ def _tank(name, found, repaired, *, patches=(2, 0.5), inspections=2, **extra):
     w = z.loc[rec.idxmin()]
     rep = pd.DataFrame(_zones(repaired)) if repaired is not None else None
     flags = ";".join(sorted({f for s in z["flags"] for f in str(s or "").split(";") if f}))
-    row = {"tank": name, "status": "ok", "inspections": inspections, "interval_recommended_y": float(w["interval_recommended_y"]),
+    row = {"tank": name, "status": "ok", "inspections": inspections,
+           "interval_recommended_y": float(w["interval_recommended_y"]),
            "interval_repaired_y": float(rep["interval_recommended_y"].min()) if rep is not None else float("nan"),
            "worst_zone": w["zone"], "next_due": w["next_due"], "limiting": w["limiting"],
            "p_leak_at_due": w["p_leak_at_due"], "flags": flags, "below_mrt": "below-mrt" in flags,

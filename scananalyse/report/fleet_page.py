@@ -160,7 +160,8 @@ def _limit_text(value) -> str:
 def _limit_in_zone(limiting, zone) -> str:
     """What limits a tank's interval and in which zone ("code formula, zone interior")."""
     text = _limit_text(limiting)
-    return f"{text}, zone {zone}" if text != "–" and isinstance(zone, str) and zone else text
+    zone = "" if zone is None or (isinstance(zone, float) and math.isnan(zone)) else str(zone)
+    return f"{text}, zone {zone}" if text != "–" and zone else text
 
 
 def _fleet_cell(value, name: str, units: str) -> dict:
@@ -184,13 +185,6 @@ def _align(heads: list, rows: list) -> list:
     for j, h in enumerate(heads):
         h["cls"] = "num" if any(len(r) > j and r[j]["cls"] == "num" for r in rows) else ""
     return heads
-
-
-def _num(v) -> float:
-    try:
-        return float(v)
-    except (TypeError, ValueError):
-        return math.nan
 
 
 def _worst(zones: pd.DataFrame | None) -> dict:
