@@ -281,3 +281,14 @@ def test_run_tank_carries_the_zone_tables_patches_and_rule_changes_of_a_kept_tan
     fl = next(r for r in _rows(page, "fleet") if len(r) > 1 and r[1] == "TK-K")
     assert fl[4] == "6.0" and fl[8:10] == ["10.0", "2035-05-01"] and fl[-2:] == ["2", "0.75"]
     assert "Tank TK-K: its job file changes interval_cap_y." in _section(page, "assumptions")
+
+
+def test_glossary_lists_the_fleet_words():
+    """docs/glossary.md explains the fleet's own limit word and flags as the page does."""
+    from scananalyse.report.fleet_page import FLEET_LIMITING_SHORT, FLEET_LIMITING_WORDS
+
+    text = (Path(__file__).parents[1] / "docs" / "glossary.md").read_text(encoding="utf-8")
+    for k, v in FLEET_LIMITING_WORDS.items():
+        assert f"| `{k}` (limit) | {FLEET_LIMITING_SHORT[k]} | {v} |" in text
+    for k, v in FLEET_FLAGS_EXPLAINED.items():
+        assert f"| `{k}` (flag) | {k} | {v} |" in text
