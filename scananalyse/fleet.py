@@ -32,7 +32,6 @@ from __future__ import annotations
 import csv
 import datetime as _dt
 import errno
-import html
 import math
 import os
 import re
@@ -42,13 +41,14 @@ from pathlib import Path
 
 import pandas as pd
 
-from . import CAUTION, __version__
+from . import CAUTION
 from .errors import InputError
 from .job import resolve_path
 from .population import MIN_TANKS_FIT
 
 __all__ = ["read_manifest", "run_tank", "run_fleet", "rank_fleet", "FLEET_COLUMNS", "FLEET_MARKER",
-           "claim_fleet_folder", "tank_folders", "similar_service", "FleetFailed", "ORDER_RULE"]
+           "claim_fleet_folder", "tank_folders", "similar_service", "FleetFailed", "ORDER_RULE",
+           "fleet_page_data"]
 
 #: Marker file of a fleet output folder (hidden), written when the run creates the folder;
 #: its first line is :data:`FLEET_SIGNATURE`.
@@ -69,7 +69,7 @@ _MANIFEST_FIELDS = ("tank", "old", "new", "diameter", "job")
 _YES_NO = {"yes": "yes", "y": "yes", "true": "yes", "1": "yes", "no": "no", "n": "no", "false": "no", "0": "no"}
 #: The order rule of ``fleet.csv``, as the page states it.
 ORDER_RULE = ("Failed tanks first (they need attention before anything can be said); then the earliest next due "
-              "date; then the greater probability of a leak at that date (p_leak_at_due, where computed); then "
+              "date; then the greater probability of a leak at that date (where computed); then "
               "the shorter recommended interval, below-MRT and code-exceeds-local flags, and the tank name.")
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 #: Largest manifest read. [bytes]
@@ -319,6 +319,7 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
     report = os.path.join(folder.name, "report.html")
     single = not entry.get("old")
     try:
+        job = None
         if is_complete_output(folder) and not force:
             zones = pd.read_csv(folder / "zones.csv")
             rep = pd.read_csv(folder / "zones_repaired.csv") if (folder / "zones_repaired.csv").is_file() else None
@@ -336,8 +337,8 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
                 res = assess_single(entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
             else:
                 res = compare(entry["old"], entry["new"], job=job, out_dir=str(folder), force=force, quiet=True)
-            zones = res.zones
-            row = _row_from_zones(tank, zones, report, res.zones_repaired)
+            zones, rep = res.zones, res.zones_repaired
+            row = _row_from_zones(tank, zones, report, rep)
         others = sorted({n for n in (_scan_tank_name(entry[k]) for k in ("old", "new") if entry.get(k))
                          if n and n.lower() != tank.strip().lower()})
         if others:  # the scans state another tank's name: the manifest row may point at the wrong files
@@ -345,6 +346,10 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
             row["scan_tank"] = ";".join(others)
         row["_zones"] = zones.to_dict("list")
         row["_inspected"] = _inspected(folder)
+        # for the page: the zones after the proposed repairs, the patch plates, the job's rule changes
+        row["_zones_repaired"] = None if rep is None else rep.to_dict("list")
+        row["_patches"] = _patch_summary(folder / "patches.csv")
+        row["_rule_changes"] = _rule_changes(job, entry)
     except InputError as exc:
         row = {"tank": tank, "status": "error", "error": str(exc), "report": ""}
     except Exception as exc:  # one tank's fault must not fail the fleet
@@ -353,6 +358,29 @@ def run_tank(entry: dict, out_root: str, force: bool = False) -> dict:
     row.update(entry.get("groups") or {})
     row["seconds"] = round(time.perf_counter() - t0, 2)
     return row
+
+
+def _patch_summary(path: Path) -> tuple | None:
+    """(number of patch plates, their total area [m²]) from a tank's patches.csv, or None."""
+    try:
+        p = pd.read_csv(path)
+    except (OSError, ValueError):
+        return None
+    area = pd.to_numeric(p["area_m2"], errors="coerce").sum() if "area_m2" in p else float("nan")
+    return len(p), float(area)
+
+
+def _rule_changes(job, entry: dict) -> tuple:
+    """Names of the rule values a tank's job file changes (its rule overrides), sorted; a kept
+    tank's job file is read again for this, and an unreadable one gives ()."""
+    if job is None and entry.get("job"):
+        from .job import read_job
+
+        try:
+            job = read_job(entry["job"])
+        except InputError:
+            return ()
+    return tuple(sorted(getattr(job, "rule_overrides", None) or ()))
 
 
 def _inspected(folder: Path) -> str:
@@ -453,84 +481,6 @@ def similar_service(rows: list[dict], group_cols, *, quantile: float | None = No
             r["similar_service"] += f"; interval shortened to {new[i]:.1f} y (zone {z.loc[i, 'zone']})"
 
 
-def _fmt_y(v) -> str:
-    try:
-        v = float(v)
-    except (TypeError, ValueError):
-        return "–"
-    return f"{v:.1f}" if math.isfinite(v) else "–"
-
-
-def _population_html(pop: pd.DataFrame | None, figures: list) -> str:
-    e = html.escape
-    if pop is None or pop.empty:
-        return ""
-    cols = list(pop.columns)
-    body = []
-    for _, r in pop.iterrows():
-        cells = []
-        for c in cols:
-            v = r[c]
-            if isinstance(v, float):
-                cells.append("" if not math.isfinite(v) else (f"{v:.4f}" if c.endswith("mm_y") else f"{v:.1f}"))
-            else:
-                cells.append(e(str(v)))
-        body.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
-    figs = "".join(f'<figure><img alt="{e(cap)}" src="data:image/png;base64,{b64}"><figcaption>{e(cap)}'
-                   "</figcaption></figure>" for cap, b64 in figures)
-    return f"""<h2>Population of corrosion rates</h2>
-<p>Per group and side: the number of assessed tanks and their zone-maximum rates (short-term from two
-inspections, long-term from one). A lognormal, Gumbel or GEV distribution is fitted by maximum likelihood and
-the one with the least AIC kept; with fewer than {MIN_TANKS_FIT} tanks no model is fitted and the quantiles
-are empirical. p50 and p90 carry 90 % bounds from a seeded bootstrap (200 resamples); outliers are tanks above
-the fitted p99.</p>
-<table><thead><tr>{''.join(f"<th>{e(c)}</th>" for c in cols)}</tr></thead><tbody>
-{''.join(body)}
-</tbody></table>
-{figs}
-"""
-
-
-def _fleet_html(df: pd.DataFrame, pop: pd.DataFrame | None = None, figures: list | None = None) -> str:
-    e = html.escape
-    rows = []
-    for _, r in df.iterrows():
-        link = e(str(r["report"])) if isinstance(r["report"], str) and r["report"] else ""
-        tank = f'<a href="{link}">{e(str(r["tank"]))}</a>' if link else e(str(r["tank"]))
-
-        def txt(v):
-            return "" if v is None or (not isinstance(v, str) and pd.isna(v)) else e(str(v))
-
-        pl = pd.to_numeric(pd.Series([r["p_leak_at_due"]]), errors="coerce")[0]
-        cells = [str(r["rank"]), tank, txt(r["status"]), txt(r["inspections"]), _fmt_y(r["interval_recommended_y"]),
-                 _fmt_y(r["interval_repaired_y"]), txt(r["next_due"]), txt(r["worst_zone"]), txt(r["limiting"]),
-                 "" if pd.isna(pl) else f"{pl:.2g}", txt(r["flags"]), txt(r["similar_service"]), txt(r["error"])]
-        cls = ' class="bad"' if not str(r["status"]).startswith("ok") else ""
-        rows.append(f"<tr{cls}>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
-    head = "".join(f"<th>{h}</th>" for h in [
-        "#", "tank", "status", "inspections", "recommended interval, as found [y]",
-        "after the proposed repairs [y]", "next due", "worst zone", "limited by", "p(leak) at due", "flags",
-        "similar service", "error"])
-    return f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><title>scananalyse fleet overview</title>
-<style>
-body {{ font-family: sans-serif; margin: 2em; color: #222; }}
-table {{ border-collapse: collapse; }} td, th {{ border: 1px solid #999; padding: 0.3em 0.6em; text-align: left; }}
-tr.bad td {{ background: #fde8e0; }} .caution {{ border-left: 4px solid #b5471b; padding: 0.4em 0.8em; background: #fbf3ee; }}
-figure {{ display: inline-block; margin: 0.5em; }} img {{ max-width: 100%; }}
-</style></head><body>
-<h1>Fleet overview, most urgent first</h1>
-<p class="caution">{e(CAUTION)}</p>
-<p>Order: {e(ORDER_RULE)}</p>
-<table><thead><tr>{head}</tr></thead><tbody>
-{''.join(rows)}
-</tbody></table>
-{_population_html(pop, figures or [])}
-<p>Generated {e(_dt.datetime.now().strftime('%Y-%m-%d %H:%M'))} by scananalyse {e(__version__)}.</p>
-</body></html>
-"""
-
-
 class FleetFailed(InputError):
     """Some tanks of a fleet failed; the outputs were written.  ``result`` holds what
     :func:`run_fleet` would return; the message is one line naming the manifest and the
@@ -584,6 +534,8 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
 def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_s, write_csv, atomic_output):
     from dask.distributed import Client, LocalCluster, as_completed
 
+    from .report.fleet_page import render_fleet_page
+
     t0 = time.perf_counter()
     cluster = None
     if scheduler:
@@ -623,11 +575,12 @@ def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_
     similar_service(rows, group_cols)
     df = rank_fleet(rows)
     pop, figures = _population(df, group_cols)
+    page = fleet_page_data(df, rows, pop, figures)
     try:
         write_csv(df, out / "fleet.csv")  # text cells neutralised against spreadsheet formulas
         write_csv(pop, out / "population.csv")
         with atomic_output(out / "fleet.html") as tmp:
-            Path(tmp).write_text(_fleet_html(df, pop, figures), encoding="utf-8")
+            Path(tmp).write_text(render_fleet_page(page), encoding="utf-8")
     except OSError as exc:
         raise InputError(f"{exc.filename or out}: cannot write ({exc.strerror or exc})") from None
     secs = time.perf_counter() - t0
@@ -638,10 +591,36 @@ def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_
     return {"table": df, "population": pop, "summary": summary, "seconds": secs}
 
 
-def _population(df: pd.DataFrame, group_cols) -> tuple:
-    """population.csv's table and the figures (caption, base64 PNG) of groups with 2+ tanks."""
-    import base64
+#: What the fleet page says of its units (the fleet command has no display-units option).
+UNITS_NOTE = ("This page shows SI units (mm, mm/y, m²): the fleet command has no display-units option. "
+              "Each tank's own report uses the display units of its job file.")
 
+
+def _frame(d) -> pd.DataFrame | None:
+    return None if d is None else pd.DataFrame(d)
+
+
+def fleet_page_data(df: pd.DataFrame, rows: list[dict], pop: pd.DataFrame | None = None,
+                    figures: list | None = None):
+    """What ``fleet.html`` shows (:class:`scananalyse.report.fleet_page.FleetPageData`),
+    from the ranked table and the tanks' rows as :func:`run_tank` returns them (their
+    ``_zones``, ``_zones_repaired``, ``_patches`` and ``_rule_changes`` keys)."""
+    from .report.fleet_page import FleetPageData, TankZones
+    from .rules import RULESETS
+
+    tanks = {}
+    for r in rows:
+        n, area = r.get("_patches") or (None, None)
+        tanks[str(r["tank"])] = TankZones(
+            zones=_frame(r.get("_zones")), zones_repaired=_frame(r.get("_zones_repaired")), n_patches=n,
+            patch_area_m2=area, rule_changes=tuple(r.get("_rule_changes") or ()))
+    return FleetPageData(table=df, tanks=tanks, population=pop, figures=list(figures or []),
+                         rules_table=RULESETS["api653"].table(), ruleset="api653", order_rule=ORDER_RULE,
+                         units="mm", units_note=UNITS_NOTE, min_tanks_fit=MIN_TANKS_FIT)
+
+
+def _population(df: pd.DataFrame, group_cols) -> tuple:
+    """population.csv's table and the figures (caption, PNG bytes) of groups with 2+ tanks."""
     from .population import plot_population, population_table
     from .report.figures import png_bytes
 
@@ -653,5 +632,5 @@ def _population(df: pd.DataFrame, group_cols) -> tuple:
             continue
         title = f"{'all tanks' if col == 'all' else f'{col} = {val}'}, {side} side: {len(rates)} tanks"
         fig = plot_population(summ, rates, names, title=title)
-        figures.append((title + f" ({summ['model']})", base64.b64encode(png_bytes(fig, 100)).decode("ascii")))
+        figures.append((title + f" ({summ['model']})", png_bytes(fig, 100)))
     return pop, figures

@@ -8,7 +8,8 @@ attached to an inspection record, mailed and printed as it is.
 :func:`write_report` writes it atomically.
 
 The page structure lives in the Jinja2 template ``templates/report.html.j2`` (with
-its style sheet ``templates/report.css``); this module only shapes the data: it
+its style sheet ``templates/report.css`` and the macros of ``templates/macros.html.j2``,
+both shared with the fleet overview, :mod:`.fleet_page`); this module only shapes the data: it
 picks the columns, gives them plain labels (:mod:`.labels`), formats numbers with
 their display units and words the verdict per zone (:func:`zone_verdicts`).
 
@@ -652,15 +653,22 @@ def _indications(d: ReportData) -> dict:
             "figures": figs}
 
 
-def _assumptions(d: ReportData) -> dict:
+def rule_rows(rules_table) -> list[dict]:
+    """Rows of the rule-value table (macro ``rules`` of ``macros.html.j2``) from
+    ``RuleSet.table()`` rows: the value printed, its tag, whether it is from memory."""
     rules = []
-    for row in d.rules_table or ():
+    for row in rules_table or ():
         val = row.get("value")
         nd = 3 if isinstance(val, float) and not float(val).is_integer() else 0
         rules.append({"name": row.get("name", ""), "value": U.fmt_number(val, nd),
                       "unit": row.get("unit", ""), "tag": str(row.get("tag", "")),
                       "memory": str(row.get("tag", "")) == "memory",
                       "source": row.get("source", ""), "note": row.get("note") or None})
+    return rules
+
+
+def _assumptions(d: ReportData) -> dict:
+    rules = rule_rows(d.rules_table)
     timings = _kv({f"{k}_s": v for k, v in d.timings.items()}, d.units) if d.timings else None
     return {"rules": rules, "assumptions": list(d.assumptions), "timings": timings}
 
