@@ -65,7 +65,7 @@ def main():
         times = {}
         for workers in (int(w) for w in args.workers.split(",")):
             cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                   dashboard_address=None)
+                                   dashboard_address=":0")
             client = Client(cluster)
             try:
                 t = time.perf_counter()

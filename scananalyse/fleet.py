@@ -542,8 +542,10 @@ def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_
         client = Client(scheduler, timeout="30s")
     else:
         n = workers or os.cpu_count() or 1
+        # ":0": any free port for the status page (None still tries 8787 first and warns
+        # when another cluster holds it)
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                               dashboard_address=None)
+                               dashboard_address=":0")
         client = Client(cluster)
     rows = []
     try:
