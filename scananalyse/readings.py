@@ -1247,12 +1247,12 @@ def _unseen_floor(out: pd.DataFrame, i, h) -> tuple[float, list]:
         return float("nan"), ["no-eva"]
     cols = {"life_eva_y": float(h.life_y), "depth_hidden_p50_mm": h.depth_p50_mm,
             "depth_hidden_p95_mm": h.depth_p95_mm, "hidden_area_m2": h.area_mm2 / 1e6, "eva_source": h.source}
-    for col, v in cols.items():
+    for col, value in cols.items():
         if col not in out.columns:
             continue
-        if isinstance(v, str) and out[col].dtype != object:
+        if isinstance(value, str) and out[col].dtype != object:
             out[col] = out[col].astype(object)
-        out.at[i, col] = v
+        out.at[i, col] = value
     flags = {"floor": ["eva-borrowed"], "worst-seen": ["eva-worst-seen"]}.get(h.source, [])
     if h.life_y == 0:  # the 95 % bound of its deepest loss is already past MRT
         flags.append("eva-below-mrt")
