@@ -34,6 +34,8 @@ Run::
 from __future__ import annotations
 
 import argparse
+import functools
+import importlib
 import json
 import os
 import resource
@@ -148,9 +150,11 @@ def child_base(size: float, workdir: str, seed: int, repeat: int, csv: bool) -> 
     # the first call in the process (as `compare` runs once per process), then the best of
     # two more: the first pays the page faults of its ~1.4 GB of fresh FFT buffers, which
     # cost 0.5-1.1 s more or less depending on the machine's memory state (seen: 0.53-1.67 s)
-    t_pcc = _best(lambda: phase_cross_correlation(a, b, upsample_factor=10), 1)
-    t_pcc_warm = min(t_pcc, _best(lambda: phase_cross_correlation(a, b, upsample_factor=10), 2))
+    pcc = functools.partial(phase_cross_correlation, a, b, upsample_factor=10)
     del a, b
+    t_pcc = _best(pcc, 1)
+    t_pcc_warm = min(t_pcc, _best(pcc, 2))
+    del pcc
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -180,10 +184,12 @@ def child_run(size: float, workdir: str, seed: int) -> dict:
 
     import h5py
 
-    from scananalyse import assess, extremes, indications, rates, register, repair, zones  # noqa: F401
     from scananalyse.job import Job
     from scananalyse.runner import compare
-    from scananalyse.report import figures, html  # noqa: F401
+
+    for name in ("assess", "extremes", "indications", "rates", "register", "repair", "zones", "report.figures",
+                 "report.html"):
+        importlib.import_module(f"scananalyse.{name}")  # loaded before the memory is read
 
     rss_imports = _maxrss_bytes()  # the interpreter and libraries, before any grid exists
     p = _paths(workdir, size, seed)

@@ -121,65 +121,23 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     """
     prog = progress or Progress(quiet=True)
     assumptions: list[str] = []
-    notes: list[str] = []
-    if job.diameter is None:
-        raise InputError("--diameter: the tank's inside diameter is required")
-    # units of every length, scanned cells inside the stated shell, the two scans of one tank
-    job, warns = check_job_against_scans(job, new, old)
-    for w in warns:
-        warnings.warn(w, ScanWarning, stacklevel=2)
-        notes.append(w)
+    job, notes = _checked_job(job, new, old)
     rules = get_ruleset(job.ruleset, job.rule_overrides or None)
     if inputs is None:
         inputs = read_job_inputs(job, new, rules)
     fit_kw = dict(pitch=new.pitch, block_mm=job.block_mm, seed=job.seed)
-    rdg = inputs.get("readings") or {"files": []}
-    if rdg["files"] and not rdg.get("old_known") and old is not None:
-        rdg = rd.job_readings(rdg["files"], new, old)  # read without the older scan: tell them apart now
-    readings_new, readings_old = rdg["split"] if rdg["files"] else (None, None)
+    readings_new, readings_old = _outage_readings(inputs, new, old)
     scan_new = new  # as scanned, before the readings
+    repairs = inputs["repairs"]
 
     reg, old_on_new = registration, None
     if old is not None:
-        if abs(old.meta.nominal - new.meta.nominal) > 1e-6:
-            notes.append(f"the scans give different nominal thicknesses ({old.meta.nominal:.2f} and "
-                         f"{new.meta.nominal:.2f} mm); the newer one is used")
-        if old.meta.inspected >= new.meta.inspected:
-            raise InputError(f"{new.source or 'new scan'}: field 'inspected': the newer scan ({new.meta.inspected}) "
-                             f"must be inspected after the older one ({old.meta.inspected})")
-        if reg is None:
-            with prog.stage("registration"):
-                reg = register(new, old, control_points=job.control_points)
-        if not reg.reliable:
-            # never short-term rates from a failed alignment
-            why = "; ".join(reg.warnings) or f"method {reg.method}"
-            raise InputError(f"{old.source or 'old scan'}: the two inspections could not be aligned reliably "
-                             f"({why}); give control points (--control-points), or run 'assess' on the newer scan")
-        if readings_old is not None:
-            with prog.stage("readings"):
-                old, rinfo_old = rd.apply_old_readings(old, readings_old, new, job, readings_new)
-                assumptions.extend(rinfo_old["assumptions"])
-        with prog.stage("resampling"):
-            # only the thickness is used on the newer grid (the layers are not carried)
-            old_on_new = resample_onto(dataclasses.replace(old, side=None, plate=None), new, reg.transform)
+        old, reg, old_on_new = _older_on_newer_grid(new, old, job, prog, reg, readings_new, readings_old,
+                                                    notes=notes, assumptions=assumptions)
 
-    rinfo = None
-    if readings_new is not None:
-        # the readings govern at their cells; unproved loss corrected for under-sizing; the
-        # corrected floor goes into every later stage
-        with prog.stage("readings"):
-            new, rinfo = rd.apply_new_readings(new, readings_new, job)
-            assumptions.extend(rinfo["assumptions"])
+    new, rinfo = _newer_readings_applied(new, readings_new, job, prog, assumptions=assumptions)
     with prog.stage("attribution"):
-        shapes, top_depth, repairs = inputs["shapes"], inputs["top_depth"], inputs["repairs"]
-        if rinfo is not None and np.isfinite(rinfo["applied"].depth_top).any():
-            pg = rinfo["applied"].depth_top  # pit-gauge depths: measured top-side depth
-            top_depth = pg if top_depth is None else np.fmax(top_depth, pg)
-        side_raw = attribution.raw_side_map(new, shapes=shapes)
-        if rinfo is not None:
-            stated = rinfo["applied"].side >= 0  # the side a reading states governs at its cell
-            side_raw = np.where(stated, rinfo["applied"].side, side_raw).astype(side_raw.dtype)
-        side = attribution.resolve_side(side_raw, job.default_side)
+        side_raw, side, top_depth = _sides(new, job, inputs, rinfo)
         ropt = rates.RateOptions(k_sigma=float(rules.noise_k.value), unknown_side=job.default_side)
         # the newer scan's loss by side, and its indication regions (labelled once: the
         # rate fill and the indication list use them)
@@ -188,40 +146,19 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     with prog.stage("zones"):
         zmap = _zone_map(new, job, rules)
-        options = assess.AssessOptions(
-            leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
-            coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
-            release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
-            target_interval_years=job.target_interval, shell_tmin_mm=job.shell_tmin_mm)
-        mrt = assess.mrt_map(zmap, rules, options, t0=new.meta.nominal)
-        zone_mrt = dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=new.meta.nominal)))
-        check_repair_to(job.repair_to_mm, zone_mrt, nominal_mm=new.meta.nominal, given=job.typed.get("repair_to"),
-                        what=job.where("repair_to"))
-        reading_zone_table = None
-        if readings_new is not None:
-            moved_old = None
-            if readings_old is not None and reg is not None:
-                tr = reg.transform
-                moved_old = rd.move_readings(readings_old, dx_mm=tr.dx_mm, dy_mm=tr.dy_mm,
-                                             rotation_deg=tr.rotation_deg)
-            reading_zone_table = rd.reading_zone_summary(
-                readings_new, moved_old, zones=zmap, nominal_mm=new.meta.nominal, installed=new.meta.installed,
-                mrt_mm=zone_mrt,
-                options=options, critical_width_mm=float(rules.critical_zone_width_mm.value))
-        ind_new = measure_indications(ind_labels, layers.loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0,
-                                      side=side, plate=new.plate, zone_labels=zmap.labels, zone_names=zmap.names,
-                                      rate=None, thickness=new.thickness)
+        options = _assess_options(job)
+        mrt, zone_mrt = _mrt(zmap, rules, options, job, nominal_mm=new.meta.nominal)
+        reading_zone_table = _reading_zone_table(readings_new, readings_old, reg, zmap, zone_mrt, new, rules,
+                                                 options)
+        ind_new = _newer_indications(ind_labels, layers.loss, new, side, zmap)
 
     with prog.stage("extremes"):
         ext_depth = depth_statistics(new.thickness, zmap, nominal=new.meta.nominal, censored=layers.censored,
                                      threshold=new.meta.threshold, **fit_kw)
+        del layers
 
     with prog.stage("rates"):
-        lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
-        del layers
-        n_filled = 0
-        if old_on_new is not None:
-            lr, n_filled = rates.fill_uncovered_rates(lr, new, old_on_new, ind_labels)
+        lr, n_filled = _rates(new, old_on_new, side, top_depth, repairs, ropt, ind_labels)
 
     with prog.stage("indications"):
         # before the life map: new, repaired and partly unscanned indications have no measured
@@ -229,18 +166,10 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         ind, gone = _indications(ind_new, new, old, reg, lr, zmap, ind_labels, old_on_new=old_on_new,
                                  repairs=repairs)
         if old is not None and len(ind):
-            top, under = apply_indication_rates(lr.rate_top, lr.rate_under, ind_labels, ind,
-                                                unknown_side=job.default_side)
-            # an assumed rate is no measurement: it widens the cell's interval upwards
-            lr = dataclasses.replace(lr, rate_top=top, rate_under=under, rate_top_hi=np.fmax(lr.rate_top_hi, top),
-                                     rate_under_hi=np.fmax(lr.rate_under_hi, under))
-            note = assumed_rate_note(ind)
-            if note:
-                assumptions.append(note)
+            lr, note = _with_assumed_rates(lr, ind, ind_labels, unknown_side=job.default_side)
+            assumptions += [note] if note else []
         if rinfo is not None:
-            pairs_lab = rd.pair_readings(readings_new, new, indication_labels=ind_labels)
-            listed = ind[np.isfinite(pd.to_numeric(ind["depth_max_mm"], errors="coerce"))] if len(ind) else ind
-            rinfo["prove_up"] = rd.prove_up_candidates(listed, pairs_lab)
+            rinfo["prove_up"] = _prove_up(readings_new, new, ind, ind_labels)
         del ind_labels, ind_new
 
     att = attribution.attribution_summary(side_raw, lr.loss, top_depth=top_depth, default=job.default_side)
@@ -249,30 +178,13 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
     with prog.stage("assessment"):
         life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
         ext_rate = rate_statistics(lr.rate_top, lr.rate_under, zmap, **fit_kw)
-        # the part of each zone nobody scanned, as found: kept as it is after any repair
         older = (old_on_new.thickness, lr.dt_years) if old_on_new is not None else None
-        hidden = hidden_parts(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
-                              censored=lr.censored, threshold=new.meta.threshold, methods=ext_depth, older=older,
-                              **fit_kw)
-        seen = seen_lives(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
-                          censored=lr.censored, older=older)
-        ext_life = zone_lives(seen, hidden)
-        table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top,
-                                    rate_under=lr.rate_under, zones=zmap, meta=new.meta, rules=rules,
-                                    options=options, extremes=merge_extremes(ext_depth, ext_rate, ext_life, hidden),
-                                    pitch_mm=new.pitch, rate_short_available=old is not None,
-                                    zone_rates=lr.zone_inputs())
-        table = add_eva_columns(table, ext_depth, ext_life)
+        hidden, table = _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, older,
+                                    have_old=old is not None, fit_kw=fit_kw)
 
     with prog.stage("probability"):
-        # each zone's life as a distribution (thickness noise, rate intervals, the hidden part)
-        prob_kw = dict(nominal=new.meta.nominal, sigma_t=lr.sigma_new, pitch=new.pitch, seed=job.seed)
-        life_dists = life_distributions(new.thickness, lr, zmap, mrt, ext_depth, **prob_kw)
-        table = assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
-                                             target_probability=job.target_probability)
-        if reading_zone_table is not None:
-            table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected,
-                                         hidden=hidden)
+        life_dists = _life_distributions(new.thickness, lr, zmap, mrt, ext_depth, new=new, job=job)
+        table = _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job)
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
@@ -280,25 +192,199 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                          ext_depth=ext_depth, hidden=hidden, older=older)
         # the repaired floor's distribution: patched cells new plate at their kept rates; the
         # hidden part as found
-        life_dists_rep = life_distributions(rep["repaired_maps"]["thickness_repaired"],
-                                            repaired_rates(lr, rep["repaired_maps"]), zmap, mrt, ext_depth, **prob_kw)
-        rep["zones_repaired"] = assess.add_life_distribution(
-            rep["zones_repaired"], life_dists_rep, inspected=new.meta.inspected, rules=rules,
-            target_probability=job.target_probability)
-        if reading_zone_table is not None and rep.get("zones_repaired") is not None:
-            rep["zones_repaired"] = rd.add_reading_zones(rep["zones_repaired"], reading_zone_table, rules=rules,
-                                                      inspected=new.meta.inspected, hidden=hidden)
+        maps = rep["repaired_maps"]
+        dists_rep = _life_distributions(maps["thickness_repaired"], repaired_rates(lr, maps), zmap, mrt, ext_depth,
+                                        new=new, job=job)
+        rep["zones_repaired"] = _with_probabilities(rep["zones_repaired"], dists_rep, reading_zone_table, hidden,
+                                                    new, rules, job)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, options=options, extremes_depth=ext_depth,
-                    rules=rules.for_inputs(shell_tmin_mm=job.shell_tmin_mm,  # rule table: which rules applied
-                                           shell_clearance_checked=getattr(rep.get("patch_checks"), "attrs",
-                                                                           {}).get("shell_clearance_checked", False)),
-                    extremes_rate=ext_rate, hidden=hidden, life_dists=life_dists, zone_table=table, life_map=life, mrt_map=mrt,
-                    indications=ind,
+                    rules=_rules_applied(rules, job, rep), extremes_rate=ext_rate, hidden=hidden,
+                    life_dists=life_dists, zone_table=table, life_map=life, mrt_map=mrt, indications=ind,
                     gone=gone, attribution=att, assumptions=assumptions, notes=notes, timings=prog.timings,
                     readings=rd.readings_result(rinfo, reading_zone_table, scan_new, readings_new, readings_old),
                     repairs=list(repairs or []), **rep)
+
+
+# --------------------------------------------------------------------------- the stages' parts
+def _checked_job(job, new, old):
+    """The job checked against the scans (units of every length, scanned cells inside the
+    stated shell, the two scans of one tank), and the notes its warnings give."""
+    if job.diameter is None:
+        raise InputError("--diameter: the tank's inside diameter is required")
+    job, warns = check_job_against_scans(job, new, old)
+    for w in warns:
+        warnings.warn(w, ScanWarning, stacklevel=3)  # at the caller of analyse
+    return job, list(warns)
+
+
+def _outage_readings(inputs, new, old):
+    """The job's spot readings of the newer and of the older outage (None where there are none)."""
+    rdg = inputs.get("readings") or {"files": []}
+    if not rdg["files"]:
+        return None, None
+    if not rdg.get("old_known") and old is not None:
+        rdg = rd.job_readings(rdg["files"], new, old)  # read without the older scan: tell them apart now
+    return rdg["split"]
+
+
+def _older_on_newer_grid(new, old, job, prog, reg, readings_new, readings_old, *, notes, assumptions):
+    """The older scan checked against the newer one (inspected before it; a note where the
+    nominal thicknesses differ), registered (unless ``reg`` is given; refused if not
+    reliable), its readings applied, and its thickness resampled onto the newer grid:
+    (old, registration, old_on_new).  Appends to ``notes`` and ``assumptions``."""
+    if abs(old.meta.nominal - new.meta.nominal) > 1e-6:
+        notes.append(f"the scans give different nominal thicknesses ({old.meta.nominal:.2f} and "
+                     f"{new.meta.nominal:.2f} mm); the newer one is used")
+    if old.meta.inspected >= new.meta.inspected:
+        raise InputError(f"{new.source or 'new scan'}: field 'inspected': the newer scan ({new.meta.inspected}) "
+                         f"must be inspected after the older one ({old.meta.inspected})")
+    if reg is None:
+        with prog.stage("registration"):
+            reg = register(new, old, control_points=job.control_points)
+    if not reg.reliable:
+        # never short-term rates from a failed alignment
+        why = "; ".join(reg.warnings) or f"method {reg.method}"
+        raise InputError(f"{old.source or 'old scan'}: the two inspections could not be aligned reliably "
+                         f"({why}); give control points (--control-points), or run 'assess' on the newer scan")
+    if readings_old is not None:
+        with prog.stage("readings"):
+            old, rinfo_old = rd.apply_old_readings(old, readings_old, new, job, readings_new)
+            assumptions.extend(rinfo_old["assumptions"])
+    with prog.stage("resampling"):
+        # only the thickness is used on the newer grid (the layers are not carried)
+        old_on_new = resample_onto(dataclasses.replace(old, side=None, plate=None), new, reg.transform)
+    return old, reg, old_on_new
+
+
+def _newer_readings_applied(new, readings_new, job, prog, *, assumptions):
+    """The newer scan with its readings governing at their cells and unproved loss corrected
+    for under-sizing (the corrected floor goes into every later stage), and what the
+    readings gave (None without readings).  Appends to ``assumptions``."""
+    if readings_new is None:
+        return new, None
+    with prog.stage("readings"):
+        new, rinfo = rd.apply_new_readings(new, readings_new, job)
+        assumptions.extend(rinfo["assumptions"])
+    return new, rinfo
+
+
+def _sides(new, job, inputs, rinfo):
+    """The raw and resolved side maps and the top-side depth map (the job's shapes and
+    top-side depth, and the side and pit-gauge depth the readings state at their cells)."""
+    top_depth = inputs["top_depth"]
+    if rinfo is not None and np.isfinite(rinfo["applied"].depth_top).any():
+        pg = rinfo["applied"].depth_top  # pit-gauge depths: measured top-side depth
+        top_depth = pg if top_depth is None else np.fmax(top_depth, pg)
+    side_raw = attribution.raw_side_map(new, shapes=inputs["shapes"])
+    if rinfo is not None:
+        stated = rinfo["applied"].side >= 0  # the side a reading states governs at its cell
+        side_raw = np.where(stated, rinfo["applied"].side, side_raw).astype(side_raw.dtype)
+    return side_raw, attribution.resolve_side(side_raw, job.default_side), top_depth
+
+
+def _assess_options(job) -> assess.AssessOptions:
+    """The assessment options the job sets."""
+    return assess.AssessOptions(
+        leak_detection=job.leak_detection, reinforced_lining=job.reinforced_lining, coated=job.coated,
+        coating_life_years=job.coating_life_years if job.coated else None, cp_effective=job.cp_effective,
+        release_prevention_barrier=job.release_prevention_barrier, unknown_side=job.default_side,
+        target_interval_years=job.target_interval, shell_tmin_mm=job.shell_tmin_mm)
+
+
+def _mrt(zmap, rules, options, job, *, nominal_mm):
+    """The MRT map and each zone's MRT, with the job's repair-to thickness checked against them."""
+    mrt = assess.mrt_map(zmap, rules, options, t0=nominal_mm)
+    zone_mrt = dict(zip(zmap.names, assess.zone_mrt(zmap, rules, options, t0=nominal_mm)))
+    check_repair_to(job.repair_to_mm, zone_mrt, nominal_mm=nominal_mm, given=job.typed.get("repair_to"),
+                    what=job.where("repair_to"))
+    return mrt, zone_mrt
+
+
+def _reading_zone_table(readings_new, readings_old, reg, zmap, zone_mrt, new, rules, options):
+    """The zones assessed from the spot readings alone (older readings moved onto the newer
+    frame by the registration), or None without newer readings."""
+    if readings_new is None:
+        return None
+    moved_old = None
+    if readings_old is not None and reg is not None:
+        tr = reg.transform
+        moved_old = rd.move_readings(readings_old, dx_mm=tr.dx_mm, dy_mm=tr.dy_mm, rotation_deg=tr.rotation_deg)
+    return rd.reading_zone_summary(readings_new, moved_old, zones=zmap, nominal_mm=new.meta.nominal,
+                                   installed=new.meta.installed, mrt_mm=zone_mrt, options=options,
+                                   critical_width_mm=float(rules.critical_zone_width_mm.value))
+
+
+def _newer_indications(labels, loss, new, side, zmap):
+    """The newer scan's indication regions measured (no rate yet)."""
+    return measure_indications(labels, loss, pitch_mm=new.pitch, x0=new.x0, y0=new.y0, side=side, plate=new.plate,
+                               zone_labels=zmap.labels, zone_names=zmap.names, rate=None, thickness=new.thickness)
+
+
+def _rates(new, old_on_new, side, top_depth, repairs, ropt, labels):
+    """The loss and rate maps, with the short-term rate filled on indication cells the older
+    scan did not cover: (rates, number of cells filled)."""
+    lr = rates.compute_rates(new, old_on_new, side, top_depth=top_depth, repairs=repairs, options=ropt)
+    if old_on_new is None:
+        return lr, 0
+    return rates.fill_uncovered_rates(lr, new, old_on_new, labels)
+
+
+def _with_assumed_rates(lr, ind, labels, *, unknown_side):
+    """The rate maps raised to the rate assumed for indications with no measured rate, and
+    the sentence saying so (None if none was assumed)."""
+    top, under = apply_indication_rates(lr.rate_top, lr.rate_under, labels, ind, unknown_side=unknown_side)
+    # an assumed rate is no measurement: it widens the cell's interval upwards
+    lr = dataclasses.replace(lr, rate_top=top, rate_under=under, rate_top_hi=np.fmax(lr.rate_top_hi, top),
+                             rate_under_hi=np.fmax(lr.rate_under_hi, under))
+    return lr, assumed_rate_note(ind)
+
+
+def _prove_up(readings_new, new, ind, labels):
+    """The listed indications to prove up next, given the readings already taken on them."""
+    pairs_lab = rd.pair_readings(readings_new, new, indication_labels=labels)
+    listed = ind[np.isfinite(pd.to_numeric(ind["depth_max_mm"], errors="coerce"))] if len(ind) else ind
+    return rd.prove_up_candidates(listed, pairs_lab)
+
+
+def _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, older, *, have_old, fit_kw):
+    """The per-zone assessment table with its extreme-value columns, and the part of each
+    zone nobody scanned as found (``hidden``: kept as it is after any repair)."""
+    hidden = hidden_parts(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
+                          censored=lr.censored, threshold=new.meta.threshold, methods=ext_depth, older=older,
+                          **fit_kw)
+    seen = seen_lives(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
+                      censored=lr.censored, older=older)
+    ext_life = zone_lives(seen, hidden)
+    table = assess.assess_zones(thickness=new.thickness, side=side, rate_top=lr.rate_top, rate_under=lr.rate_under,
+                                zones=zmap, meta=new.meta, rules=rules, options=options,
+                                extremes=merge_extremes(ext_depth, ext_rate, ext_life, hidden), pitch_mm=new.pitch,
+                                rate_short_available=have_old, zone_rates=lr.zone_inputs())
+    return hidden, add_eva_columns(table, ext_depth, ext_life)
+
+
+def _life_distributions(thickness, lr, zmap, mrt, ext_depth, *, new, job):
+    """Each zone's life as a distribution (thickness noise, rate intervals, the hidden part)."""
+    return life_distributions(thickness, lr, zmap, mrt, ext_depth, nominal=new.meta.nominal, sigma_t=lr.sigma_new,
+                              pitch=new.pitch, seed=job.seed)
+
+
+def _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job):
+    """The zone table with the life quantiles and the probabilities at the due date, and the
+    readings' zone columns (with the part of each zone nobody scanned) when there are readings."""
+    table = assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
+                                         target_probability=job.target_probability)
+    if reading_zone_table is not None:
+        table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected,
+                                     hidden=hidden)
+    return table
+
+
+def _rules_applied(rules, job, rep):
+    """The rule table for the report: which rules applied to this job."""
+    checked = getattr(rep.get("patch_checks"), "attrs", {}).get("shell_clearance_checked", False)
+    return rules.for_inputs(shell_tmin_mm=job.shell_tmin_mm, shell_clearance_checked=checked)
 
 
 def _zone_map(new, job, rules):

@@ -238,19 +238,42 @@ def read_readings(path) -> Readings:
     """
     path = os.fspath(path)
     lines = _lines(path)
+    fields, columns, table_line = _header_lines(lines, path)
+    units, inspected, sigma, tank, extra = _parse_header(fields, path)
+    seen = _check_columns(columns, path, table_line)
+    factor = v.UNIT_FACTORS[units]
+    rows = {c: [] for c in READING_COLUMNS}
+    ids: dict[str, int] = {}
+    for lineno, text in lines:
+        if lineno <= table_line or not text.strip():
+            continue
+        row = _parse_row(_split_row(text, path, lineno), columns, seen, factor, path, lineno)
+        if row["id"]:
+            if row["id"] in ids:
+                raise InputError(f"{where(path, lineno, 'id')}: id {row['id']!r} repeated (first on line "
+                                 f"{ids[row['id']]})")
+            ids[row["id"]] = lineno
+        for c in READING_COLUMNS:
+            rows[c].append(row[c])
+    if not rows["line"]:
+        raise InputError(f"{where(path, table_line)}: no readings below the header row")
+    table = pd.DataFrame(rows)
+    table["line"] = table["line"].astype(np.int64)
+    return Readings(inspected=inspected, units=units, table=table, sigma_mm=sigma, tank=tank,
+                    extra=extra, source=path)
+
+
+def _header_lines(lines, path):
+    """The ``# key: value`` lines above the table as {key: (value, line)}, the table's
+    column names (None if there is no table header row) and the header row's line."""
     fields: dict[str, tuple[str, int]] = {}
-    columns: list[str] | None = None
-    table_line = None
-    k = 0
-    for k, (lineno, text) in enumerate(lines):
+    for lineno, text in lines:
         s = text.strip()
         if not s:
             continue
         if not s.startswith("#"):
             names = _split_row(s, path, lineno)
-            columns = [_check_field(c, path, lineno, "columns").strip().lower() for c in names]
-            table_line = lineno
-            break
+            return fields, [_check_field(c, path, lineno, "columns").strip().lower() for c in names], lineno
         body = s[1:]
         if ":" not in body:
             continue  # a free comment line
@@ -262,8 +285,11 @@ def read_readings(path) -> Readings:
         if key in fields:
             raise InputError(f"{where(path, lineno, key)}: key repeated (first on line {fields[key][1]})")
         fields[key] = (value, lineno)
+    return fields, None, None
 
-    # ---- header -------------------------------------------------------------------
+
+def _check_format(fields, path) -> None:
+    """Refuse a header without the ``format`` line of this format and version."""
     if "format" not in fields:
         raise InputError(f"{where(path, None, 'format')}: missing '# format: {FORMAT_NAME} "
                          f"{FORMAT_VERSION}' line; not a readings CSV")
@@ -275,23 +301,31 @@ def read_readings(path) -> Readings:
     if len(parts) != 2 or parts[1] != str(FORMAT_VERSION):
         raise InputError(f"{where(path, line, 'format')}: unsupported version in {value!r} "
                          f"(this reader knows version {FORMAT_VERSION})")
+
+
+def _parse_header(fields, path):
+    """The header keys checked and parsed: (units, inspected, sigma in mm or None, tank,
+    unknown keys)."""
+    _check_format(fields, path)
     for key in _REQUIRED_KEYS:
         if key not in fields:
             raise InputError(f"{where(path, None, key)}: required header key missing")
         if not fields[key][0]:
             raise InputError(f"{where(path, fields[key][1], key)}: required header key has no value")
     units = v.parse_units(fields["units"][0], path, fields["units"][1])
-    factor = v.UNIT_FACTORS[units]
     inspected = v.parse_date(fields["inspected"][0], path, fields["inspected"][1], "inspected")
     sigma = None
     if "sigma" in fields and fields["sigma"][0]:
         sigma = v.parse_number(fields["sigma"][0], path, fields["sigma"][1], "sigma",
-                               sign="nonneg") * factor
+                               sign="nonneg") * v.UNIT_FACTORS[units]
     tank = v.parse_text(fields["tank"][0], path, fields["tank"][1], "tank") if "tank" in fields else ""
     extra = {key: v.parse_text(val, path, ln, key) for key, (val, ln) in fields.items()
              if key not in _KNOWN_KEYS}
+    return units, inspected, sigma, tank, extra
 
-    # ---- columns ------------------------------------------------------------------
+
+def _check_columns(columns, path, table_line) -> dict[str, int]:
+    """The table header row checked: {column: position}."""
     if columns is None:
         raise InputError(f"{where(path, None, 'columns')}: no table header row (x,y,kind,...)")
     seen: dict[str, int] = {}
@@ -308,68 +342,59 @@ def read_readings(path) -> Readings:
     if "thickness" not in seen and "depth" not in seen:
         raise InputError(f"{where(path, table_line, 'thickness')}: a 'thickness' or a 'depth' "
                          "column is required")
+    return seen
 
-    # ---- rows ---------------------------------------------------------------------
-    rows = {c: [] for c in READING_COLUMNS}
-    ids: dict[str, int] = {}
-    for lineno, text in lines[k + 1:]:
-        if not text.strip():
-            continue
-        cells = _split_row(text, path, lineno)
-        if len(cells) != len(columns):
-            raise InputError(f"{where(path, lineno)}: {len(cells)} fields, the header row has "
-                             f"{len(columns)} ({', '.join(columns)})")
-        for name, cell in zip(columns, cells):
-            _check_field(cell, path, lineno, name)
-        get = {name: cell.strip() for name, cell in zip(columns, cells)}
-        x = v.parse_number(get["x"], path, lineno, "x", sign="any") * factor
-        y = v.parse_number(get["y"], path, lineno, "y", sign="any") * factor
-        kind = get["kind"].lower()
-        if kind not in KINDS:
-            raise InputError(f"{where(path, lineno, 'kind')}: {get['kind']!r} is not a reading kind "
-                             f"(allowed: {', '.join(KINDS)})")
-        need = KINDS[kind]
-        other = "depth" if need == "thickness" else "thickness"
-        if need not in seen:
-            raise InputError(f"{where(path, lineno, need)}: a {kind} reading needs a '{need}' column")
-        if get.get(other, ""):
-            raise InputError(f"{where(path, lineno, other)}: a {kind} reading takes '{need}', "
-                             f"not '{other}'; leave it empty")
-        if not get[need]:
-            raise InputError(f"{where(path, lineno, need)}: empty; a {kind} reading needs a {need}")
-        value = v.parse_number(get[need], path, lineno, need,
-                               sign="positive" if need == "thickness" else "nonneg") * factor
-        side_text = get.get("side", "").lower()
-        if side_text not in _SIDES:
-            raise InputError(f"{where(path, lineno, 'side')}: {get['side']!r} is not a side "
-                             "(allowed: top, under, unknown or empty)")
-        side = _SIDES[side_text]
-        if kind == "pit-gauge":
-            if side == "under":
-                raise InputError(f"{where(path, lineno, 'side')}: a pit gauge measures from above; "
-                                 "side must be top, unknown or empty")
-            side = "top"
-        rid = get.get("id", "")
-        if rid:
-            if rid in ids:
-                raise InputError(f"{where(path, lineno, 'id')}: id {rid!r} repeated (first on line "
-                                 f"{ids[rid]})")
-            ids[rid] = lineno
-        rows["x_mm"].append(x)
-        rows["y_mm"].append(y)
-        rows["kind"].append(kind)
-        rows["thickness_mm"].append(value if need == "thickness" else math.nan)
-        rows["depth_mm"].append(value if need == "depth" else math.nan)
-        rows["side"].append(side)
-        rows["id"].append(rid)
-        rows["note"].append(" ".join(get.get("note", "").split()))
-        rows["line"].append(lineno)
-    if not rows["line"]:
-        raise InputError(f"{where(path, table_line)}: no readings below the header row")
-    table = pd.DataFrame(rows)
-    table["line"] = table["line"].astype(np.int64)
-    return Readings(inspected=inspected, units=units, table=table, sigma_mm=sigma, tank=tank,
-                    extra=extra, source=path)
+
+def _parse_row(cells, columns, seen, factor, path, lineno) -> dict:
+    """One table row checked and converted to mm: {column of :data:`READING_COLUMNS`: value}."""
+    if len(cells) != len(columns):
+        raise InputError(f"{where(path, lineno)}: {len(cells)} fields, the header row has "
+                         f"{len(columns)} ({', '.join(columns)})")
+    for name, cell in zip(columns, cells):
+        _check_field(cell, path, lineno, name)
+    get = {name: cell.strip() for name, cell in zip(columns, cells)}
+    x = v.parse_number(get["x"], path, lineno, "x", sign="any") * factor
+    y = v.parse_number(get["y"], path, lineno, "y", sign="any") * factor
+    kind = get["kind"].lower()
+    if kind not in KINDS:
+        raise InputError(f"{where(path, lineno, 'kind')}: {get['kind']!r} is not a reading kind "
+                         f"(allowed: {', '.join(KINDS)})")
+    need, value = _row_value(get, kind, seen, factor, path, lineno)
+    return {"x_mm": x, "y_mm": y, "kind": kind,
+            "thickness_mm": value if need == "thickness" else math.nan,
+            "depth_mm": value if need == "depth" else math.nan,
+            "side": _row_side(get, kind, path, lineno), "id": get.get("id", ""),
+            "note": " ".join(get.get("note", "").split()), "line": lineno}
+
+
+def _row_value(get, kind, seen, factor, path, lineno):
+    """The value a row's kind needs: (``"thickness"`` or ``"depth"``, value in mm)."""
+    need = KINDS[kind]
+    other = "depth" if need == "thickness" else "thickness"
+    if need not in seen:
+        raise InputError(f"{where(path, lineno, need)}: a {kind} reading needs a '{need}' column")
+    if get.get(other, ""):
+        raise InputError(f"{where(path, lineno, other)}: a {kind} reading takes '{need}', "
+                         f"not '{other}'; leave it empty")
+    if not get[need]:
+        raise InputError(f"{where(path, lineno, need)}: empty; a {kind} reading needs a {need}")
+    return need, v.parse_number(get[need], path, lineno, need,
+                                sign="positive" if need == "thickness" else "nonneg") * factor
+
+
+def _row_side(get, kind, path, lineno) -> str:
+    """A row's side (``top`` on a pit-gauge row, where ``under`` is refused)."""
+    side_text = get.get("side", "").lower()
+    if side_text not in _SIDES:
+        raise InputError(f"{where(path, lineno, 'side')}: {get['side']!r} is not a side "
+                         "(allowed: top, under, unknown or empty)")
+    side = _SIDES[side_text]
+    if kind == "pit-gauge":
+        if side == "under":
+            raise InputError(f"{where(path, lineno, 'side')}: a pit gauge measures from above; "
+                             "side must be top, unknown or empty")
+        side = "top"
+    return side
 
 
 def merge_readings(readings) -> Readings:
@@ -1222,12 +1247,12 @@ def _unseen_floor(out: pd.DataFrame, i, h) -> tuple[float, list]:
         return float("nan"), ["no-eva"]
     cols = {"life_eva_y": float(h.life_y), "depth_hidden_p50_mm": h.depth_p50_mm,
             "depth_hidden_p95_mm": h.depth_p95_mm, "hidden_area_m2": h.area_mm2 / 1e6, "eva_source": h.source}
-    for col, v in cols.items():
+    for col, value in cols.items():
         if col not in out.columns:
             continue
-        if isinstance(v, str) and out[col].dtype != object:
+        if isinstance(value, str) and out[col].dtype != object:
             out[col] = out[col].astype(object)
-        out.at[i, col] = v
+        out.at[i, col] = value
     flags = {"floor": ["eva-borrowed"], "worst-seen": ["eva-worst-seen"]}.get(h.source, [])
     if h.life_y == 0:  # the 95 % bound of its deepest loss is already past MRT
         flags.append("eva-below-mrt")

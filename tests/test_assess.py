@@ -618,16 +618,28 @@ def test_zone_rate_interval_columns_and_eva_fallback_uses_upper_ends():
 # critical-zone minimum: half t0, 50 % of the lower shell course tmin, >= 2.54 mm
 # (domain.md §1, memory)
 # ---------------------------------------------------------------------------
-def test_critical_zone_minimum_without_shell_tmin_states_the_default():
-    from scananalyse.assess import critical_zone_minimum
-
+def _thin_critical_cell_floor():
+    """:func:`base_floor` with a critical-zone cell at 3.1 mm (above 50 % of a 6.0 mm shell
+    tmin, 3.0 mm; below t0/2), and the critical zone's mask."""
     zm, t, side, rt, ru = base_floor()
-    # a critical-zone cell at 3.1 mm: above 50 % of a 6.0 mm shell tmin (3.0 mm), below t0/2
     crit = zm.mask("critical")
     ci, cj = np.argwhere(crit)[0]
     t[ci, cj] = 3.1
-    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
-                      meta=make_meta(), rules=RULES, options=AssessOptions())
+    return (zm, t, side, rt, ru), crit
+
+
+def _assess_floor(floor, rules=RULES, **options):
+    """:func:`assess_zones` on a ``base_floor()`` tuple with ``AssessOptions(**options)``."""
+    zm, t, side, rt, ru = floor
+    return assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
+                        meta=make_meta(), rules=rules, options=AssessOptions(**options))
+
+
+def test_critical_zone_minimum_without_shell_tmin_states_the_default():
+    from scananalyse.assess import critical_zone_minimum
+
+    floor, crit = _thin_critical_cell_floor()
+    df = _assess_floor(floor)
     r = row(df, "critical")
     # no shell tmin: max(min(6.35/2), 2.54) = 3.175 mm; the note says the shell term was not applied
     assert r["mrt_mm"] == pytest.approx(3.175)
@@ -637,32 +649,26 @@ def test_critical_zone_minimum_without_shell_tmin_states_the_default():
     cz, note = critical_zone_minimum(RULES, 6.35)
     assert cz == pytest.approx(3.175) and note in r["notes"]
     # an unscanned critical zone keeps its minimum, and the note
-    t[crit] = np.nan
-    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
-                      meta=make_meta(), rules=RULES, options=AssessOptions())
+    thickness = floor[1]
+    thickness[crit] = np.nan
+    df = _assess_floor(floor)
     assert row(df, "critical")["flags"] == "no-data" and note in row(df, "critical")["notes"]
 
 
 def test_critical_zone_minimum_with_shell_tmin_applies_it():
-    zm, t, side, rt, ru = base_floor()
-    crit = zm.mask("critical")
-    ci, cj = np.argwhere(crit)[0]
-    t[ci, cj] = 3.1
-    df = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
-                      meta=make_meta(), rules=RULES, options=AssessOptions(shell_tmin_mm=6.0))
+    floor, _ = _thin_critical_cell_floor()
+    df = _assess_floor(floor, shell_tmin_mm=6.0)
     r = row(df, "critical")
     # min(3.175, 0.5 * 6.0 = 3.0) = 3.0 mm, not below 2.54 mm: the 3.1 mm cell is now acceptable
     assert r["mrt_mm"] == pytest.approx(3.0)
     assert "critical-zone-below-min" not in flags_of(df, "critical")
     assert "lower shell course tmin 6.00 mm" in r["notes"] and "not applied" not in r["notes"]
     # a thin shell: 50 % of 4.0 mm = 2.0 mm, raised to the 2.54 mm floor
-    df2 = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
-                       meta=make_meta(), rules=RULES, options=AssessOptions(shell_tmin_mm=4.0))
+    df2 = _assess_floor(floor, shell_tmin_mm=4.0)
     assert row(df2, "critical")["mrt_mm"] == pytest.approx(2.54)
     # the rule set's fraction is the one applied
     rs = get_ruleset(overrides={"critical_zone_min_shell_fraction": 0.45})
-    df3 = assess_zones(thickness=t, side=side, rate_top=rt, rate_under=ru, zones=zm,
-                       meta=make_meta(), rules=rs, options=AssessOptions(shell_tmin_mm=6.0))
+    df3 = _assess_floor(floor, rs, shell_tmin_mm=6.0)
     assert row(df3, "critical")["mrt_mm"] == pytest.approx(2.7)
 
 

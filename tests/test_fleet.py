@@ -58,20 +58,21 @@ def test_fleet_on_local_cluster_ranks_and_survives_a_bad_tank(fleet_dir, tmp_pat
     assert st["TK-A"] == "ok (kept)" and st["TK-B"] == "ok (kept)" and st["TK-BAD"] == "error"
 
 
-def test_manifest_errors(tmp_path):
-    p = tmp_path / "m.csv"
-    p.write_text("tank,old,diameter\nA,a.h5,3\n")
-    with pytest.raises(InputError, match=r"m\.csv:1: field 'new': missing column"):
-        read_manifest(p)
-    p.write_text("tank,old,new,diameter\nA,a.h5,b.h5,wide\n")
-    with pytest.raises(InputError, match=r"m\.csv:2: field 'diameter': not a number"):
-        read_manifest(p)
-    p.write_text("tank,old,new,diameter\nA,a.h5,b.h5,3\nA,c.h5,d.h5,3\n")
-    with pytest.raises(InputError, match=r"m\.csv:3: field 'tank': 'A' repeats line 2"):
-        read_manifest(p)
-    p.write_text("tank,old,new,diameter\n")
-    with pytest.raises(InputError, match=r"lists no tanks"):
-        read_manifest(p)
+def _manifest_refused(path, text, message):
+    """The manifest ``text``, written to ``path``, is refused with ``message`` (a regular expression)."""
+    path.write_text(text)
+    with pytest.raises(InputError, match=message):
+        read_manifest(path)
+
+
+@pytest.mark.parametrize("text, message", [
+    ("tank,old,diameter\nA,a.h5,3\n", r"m\.csv:1: field 'new': missing column"),
+    ("tank,old,new,diameter\nA,a.h5,b.h5,wide\n", r"m\.csv:2: field 'diameter': not a number"),
+    ("tank,old,new,diameter\nA,a.h5,b.h5,3\nA,c.h5,d.h5,3\n", r"m\.csv:3: field 'tank': 'A' repeats line 2"),
+    ("tank,old,new,diameter\n", r"lists no tanks"),
+])
+def test_manifest_errors(tmp_path, text, message):
+    _manifest_refused(tmp_path / "m.csv", text, message)
 
 
 def test_ranking_order():
@@ -152,12 +153,10 @@ def test_manifest_absolute_and_sibling_paths_accepted(tmp_path):
     assert a["old"] == str(tmp_path / "scans" / "a.h5") and a["new"] == str(tmp_path / "scans" / "b.h5")
     assert a["groups"] == {"service": "crude", "cp": "yes"}
     assert b["old"] is None and b["groups"]["service"] == "water"
-    m.write_text("tank,old,new,diameter,cp\nA,,../scans/b.h5,3000,sometimes\n")
-    with pytest.raises(InputError, match=r"m\.csv:2: field 'cp': expected yes or no"):
-        read_manifest(m)
-    m.write_text("tank,old,new,diameter,status\nA,,../scans/b.h5,3000,x\n")
-    with pytest.raises(InputError, match=r"m\.csv:1: field 'status': a fleet\.csv column"):
-        read_manifest(m)
+    _manifest_refused(m, "tank,old,new,diameter,cp\nA,,../scans/b.h5,3000,sometimes\n",
+                      r"m\.csv:2: field 'cp': expected yes or no")
+    _manifest_refused(m, "tank,old,new,diameter,status\nA,,../scans/b.h5,3000,x\n",
+                      r"m\.csv:1: field 'status': a fleet\.csv column")
 
 
 def test_manifest_fifo_row_refused(tmp_path):

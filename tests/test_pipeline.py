@@ -2,7 +2,6 @@
 
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from scananalyse.job import Job

@@ -8,7 +8,7 @@ import pytest
 
 from scananalyse.errors import InputError
 from scananalyse.extremes import GumbelFit
-from scananalyse.probability import (MIN_PRIOR_CELLS, LifeDistribution, fit_rate_prior, plot_life_curve,
+from scananalyse.probability import (MIN_PRIOR_CELLS, fit_rate_prior, plot_life_curve,
                                      zone_life_distribution)
 
 Z90 = 1.6448536269514722

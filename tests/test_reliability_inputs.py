@@ -5,7 +5,6 @@ scan files whose reading would allocate far more than they hold, paths that are 
 regular files, and the CSV writers' neutralisation of formulas.
 """
 
-import math
 import os
 import time
 

@@ -104,7 +104,7 @@ def build_data(*, units="mm", tank="TK-Test 1", single=False, dpi=80, seed=5):
         "area_m2": [0.12, 0.12], "mass_kg": [5.9, 5.9], "flags": ["", "near seam"]})
     mrt = [(2.54, "MRT", "-"), (4.0, "repair-to", "--")]
     maps = []
-    for vals, kind, title, label, extra in (
+    for vals, kind, title, cbar_label, extra in (
             (new.thickness, "thickness", "Remaining thickness now", "thickness",
              dict(contours=mrt, plate=new.plate)),
             (loss_top, "loss", "Loss, top side", "loss depth", {}),
@@ -112,7 +112,7 @@ def build_data(*, units="mm", tank="TK-Test 1", single=False, dpi=80, seed=5):
             (rate, "rate", "Short-term rate, both sides", "rate", {}),
             (life, "life", "Remaining life", "remaining life", {}),
             (new.thickness, "thickness", "Repairs", "thickness", dict(patches=patches))):
-        fig = F.floor_map(vals, extent=ext, title=title, label=label, units=units, kind=kind,
+        fig = F.floor_map(vals, extent=ext, title=title, label=cbar_label, units=units, kind=kind,
                           diameter_mm=D, **extra)
         maps.append((f"{title}. {fig.scananalyse_caption}", F.png_bytes(fig, dpi=dpi)))
     X, Y = new.grid_xy()
