@@ -9,7 +9,7 @@ import pytest
 from scananalyse.errors import InputError
 from scananalyse.extremes import GumbelFit
 from scananalyse.probability import (MIN_PRIOR_CELLS, LifeDistribution, fit_rate_prior, plot_life_curve,
-                                     zone_life_distribution)
+                                     repaired_rates, zone_life_distribution)
 
 Z90 = 1.6448536269514722
 
@@ -164,6 +164,94 @@ def test_plot_returns_figure():
     assert fig.axes
     import matplotlib.pyplot as plt
     plt.close(fig)
+
+
+def test_same_numbers_as_before_the_split():
+    # Regression: values of the module as one 189-line function (commit 1e22d63), before it
+    # was split into the seen, censored and hidden parts, the rate draws and the pruning.
+    # Same seed, same numbers (no older reading given: that path is unchanged).
+    rng = np.random.default_rng(11)
+    n = 400
+    t = 3.2 + 3.0 * rng.random(n)
+    r = 0.05 + 0.15 * rng.random(n)
+    meas, cens = np.arange(n) % 37 != 0, np.arange(n) % 11 == 0
+    fit = GumbelFit(loc=2.0, scale=0.3, method="mle", loglik=0.0, n=30)
+    want = {True: (210, [0.0, 2.0987886965, 2.4599868017], 11.0863465026, 0.195),
+            False: (298, [0.0, 2.0114739873, 2.3663536764], 10.0411417126, 0.1825)}
+    for shrink, (kept, q, leak_mean, p_hidden) in want.items():
+        d = zone_life_distribution(t, r, 0.5 * r, r - 0.02, r + 0.04, 0.4 * r, 0.6 * r, 2.54, sigma_t=0.1,
+                                   nominal=6.35, censored=cens, threshold=1.0, measured=meas, hidden_fit=fit,
+                                   hidden_T=20.0, seed=5, shrink=shrink, n_draws=400)
+        assert d.n_kept == kept
+        assert np.allclose(d.quantiles(), q, rtol=0, atol=1e-9)
+        assert float(np.mean(d.life_leak)) == pytest.approx(leak_mean, abs=1e-9)
+        assert d.p_hidden_governs == p_hidden
+
+
+def test_thickness_given_rate_from_both_readings_matches_normal():
+    # Exact reference: one cell, rate known (zero-width interval), newer reading y1 = 3.9 and
+    # older y0 = 5.3, dt = 10 y, both sd 0.1: given r = 0.15 the present thickness is
+    # N((y1 + y0 - r dt)/2, 0.1^2/2) = N(3.85, 0.0707^2), so P(L <= h) = Phi((MRT + r h - 3.85)/0.0707).
+    from scipy.stats import norm
+    d = zone_life_distribution(np.r_[3.9], np.r_[0.15], np.r_[0.0], np.r_[0.15], np.r_[0.15], np.r_[0.0],
+                               np.r_[0.0], 2.54, sigma_t=0.1, nominal=6.35, older=np.r_[5.3], sigma_old=0.1,
+                               dt_years=10.0, n_draws=20000, seed=9)
+    for h in (8.0, 8.73, 9.5):
+        assert d.p_mrt(h) == pytest.approx(norm.cdf((2.54 + 0.15 * h - 3.85) / (0.1 / np.sqrt(2))), abs=0.01)
+    # without the older reading: the newer reading alone, sd 0.1
+    d1 = zone_life_distribution(np.r_[3.9], np.r_[0.15], np.r_[0.0], np.r_[0.15], np.r_[0.15], np.r_[0.0],
+                                np.r_[0.0], 2.54, sigma_t=0.1, nominal=6.35, n_draws=20000, seed=9)
+    assert d1.p_mrt(9.0) == pytest.approx(norm.cdf((2.54 + 0.15 * 9.0 - 3.9) / 0.1), abs=0.01)
+
+
+def test_both_readings_reduce_the_thinnest_readings_bias_and_stay_conservative():
+    # 300 cells, all truly thinning at 0.15 mm/y (a zone rate distribution with a sharp top,
+    # as on the synthetic floors), true thickness uniform in 3-5 mm, read now and 10 y earlier
+    # with sd 0.1.  The thinnest reading is low by its noise (chosen for it) and its
+    # short-term rate high by the same noise.  Drawn from the newer reading alone, the
+    # median life is about half the truth; given the (shrunk) rate, the older reading, not
+    # chosen for being low, moves it up.  The truth is never below p05 in either.
+    def quantiles(seed, both):
+        rng = np.random.default_rng(seed)
+        t_true = 3.0 + 2.0 * rng.random(300)
+        y1 = t_true + 0.1 * rng.standard_normal(300)
+        y0 = t_true + 1.5 + 0.1 * rng.standard_normal(300)
+        r = (y0 - y1) / 10.0
+        half = Z90 * np.hypot(0.1, 0.1) / 10.0
+        z = np.zeros_like(r)
+        kw = dict(older=y0, sigma_old=0.1, dt_years=10.0) if both else {}
+        d = zone_life_distribution(y1, r, z, r - half, r + half, z, z, 2.54, sigma_t=0.1, nominal=6.35, seed=seed,
+                                   n_draws=400, **kw)
+        return d.quantiles(), (t_true.min() - 2.54) / 0.15
+
+    res = {b: [quantiles(s, b) for s in range(12)] for b in (False, True)}
+    ratio = {b: np.median([q[1] / tr for q, tr in res[b]]) for b in res}
+    assert ratio[False] < 0.6 and ratio[True] > ratio[False] + 0.07
+    assert all(q[0] <= tr for b in res for q, tr in res[b])
+
+
+def test_repaired_floor_does_not_use_the_older_reading_under_a_patch():
+    # A patch is new metal: the older scan read the plate it covers, so the repaired floor's
+    # distribution must not project the older reading forward there (it would make the
+    # patch's metal look like the old plate's).
+    import dataclasses
+
+    @dataclasses.dataclass(frozen=True)
+    class Rates:
+        rate_top: np.ndarray
+        rate_under: np.ndarray
+        rate_top_lo: np.ndarray
+        rate_top_hi: np.ndarray
+        rate_under_lo: np.ndarray
+        rate_under_hi: np.ndarray
+        censored: np.ndarray
+        growth: np.ndarray
+
+    a = np.full((2, 2), 0.1)
+    lr = Rates(a, a, a, a, a, a, np.zeros((2, 2), bool), np.full((2, 2), 1.0))
+    patched = np.array([[True, False], [False, False]])
+    rep = repaired_rates(lr, {"patched": patched, "rate_top_repaired": a * 0, "rate_under_repaired": a * 0})
+    assert np.isnan(rep.growth[0, 0]) and np.all(rep.growth[~patched] == 1.0)
 
 
 @pytest.mark.slow
