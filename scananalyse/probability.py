@@ -538,21 +538,27 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
             " and no extreme-value fit" if hidden_fit is None else ": no measured rate for its unscanned part"))
     rng = np.random.default_rng(seed)
     rates = _shrunk_rates(c, rng, rate_prior) if shrink else _own_rates(c, rng)
-    idx, below = _candidates(c, rates)
-    life_mrt, life_leak = _seen_lives(c, rates, idx, below, n_draws, rng)
-    m_h = float(np.min(c.mrt)) if c.mrt.size else float(np.min(mrt))
+    cand = _candidates(c, rates)
+    m_h = float(np.min(c.mrt))
+    # the below-threshold and unscanned parts first: their draws bound which scanned cells
+    # can still lower a draw's minimum (the seen part stops there, exactly)
+    life_mrt = np.full(n_draws, 0.0 if cand.below else np.inf)
+    life_leak = np.full(n_draws, np.inf)
     if c.cens.any():
         h_mrt, h_leak = _censored_lives(c, rates, n_draws, m_h)
         life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
-    notes, p_hidden, T = [], 0.0, float(hidden_T)
+    notes, T, h_mrt = [], float(hidden_T), None
     if hidden_fit is not None and T > 0:
         d = _hidden_depth(hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
         h_mrt, h_leak = _part_lives(c.nominal - d, m_h, rates.rule(d))
-        p_hidden = float(np.mean(h_mrt < life_mrt))
-        life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
     elif T > 0:
         notes.append("unscanned part not modelled (no extreme-value fit)")
-    return LifeDistribution(life_mrt, life_leak, n_cells=c.n, n_kept=int(idx.size), hidden_T=T,
+    seen_mrt, seen_leak, n_drawn = _seen_lives(c, rates, cand, life_mrt, life_leak,
+                                               h_mrt=h_mrt, h_leak=None if h_mrt is None else h_leak, rng=rng)
+    p_hidden = 0.0 if h_mrt is None else float(np.mean(h_mrt < seen_mrt))
+    if h_mrt is not None:
+        seen_mrt, seen_leak = np.minimum(seen_mrt, h_mrt), np.minimum(seen_leak, h_leak)
+    return LifeDistribution(seen_mrt, seen_leak, n_cells=c.n, n_kept=n_drawn, hidden_T=T,
                             p_hidden_governs=p_hidden, notes=tuple(notes))
 
 
@@ -687,15 +693,43 @@ def _candidates(c: _Cells, rates: _Rates):
     below = bool(opt.size) and opt.min() <= 0
     keep = unc & (pess <= (opt.min() if opt.size else np.inf)) & (not below)
     keep |= unc & (pess0 <= (opt0.min() if opt0.size else np.inf))  # the leak's candidates too
-    return np.flatnonzero(keep), below
+    idx = np.flatnonzero(keep)
+    # most dangerous first: by the shortest possible life to MRT (to a leak when every draw
+    # is already below MRT)
+    idx = idx[np.argsort(pess0[idx] if below else pess[idx], kind="stable")]
+    return _Candidates(idx=idx, pess=pess[idx], pess0=pess0[idx], below=below)
 
 
-def _seen_lives(c: _Cells, rates: _Rates, idx, below, n_draws, rng, band=256):
-    """Draws of the shortest life to MRT and to a leak among the candidate cells ``idx``,
-    computed ``band`` cells at a time (bounded memory)."""
-    life_mrt = np.full(n_draws, 0.0 if below else np.inf)
-    life_leak = np.full(n_draws, np.inf)
-    for c0 in range(0, idx.size, band):
+@dataclass(frozen=True)
+class _Candidates:
+    """Cells that could be the zone's minimum, most dangerous first (``idx``), their
+    shortest possible lives to MRT and to a leak (``pess``, ``pess0``) [y], and whether
+    some cell is below MRT in every draw (``below``)."""
+
+    idx: np.ndarray
+    pess: np.ndarray
+    pess0: np.ndarray
+    below: bool
+
+
+def _seen_lives(c: _Cells, rates: _Rates, cand: _Candidates, life_mrt, life_leak, *, h_mrt, h_leak, rng,
+                band=256, stop_early=True):
+    """Draws of the shortest life to MRT and to a leak over ``life_mrt``, ``life_leak`` (the
+    parts drawn before) and the candidate cells, ``band`` cells at a time, most dangerous
+    first; and the number of cells drawn.  With ``stop_early`` the bands stop once no cell
+    left can lower any draw's minimum, the unscanned part's draws ``h_mrt``, ``h_leak``
+    included: its shortest possible life exceeds the longest of the draws' minima (exact:
+    the same draws as going on to the last cell, since nothing is drawn after this)."""
+    idx = cand.idx
+    rest0 = np.minimum.accumulate(cand.pess0[::-1])[::-1]  # least pess0 of the cells from k on
+    n_draws = life_mrt.size
+    bound_mrt, bound_leak = (life_mrt, life_leak) if h_mrt is None else (np.minimum(life_mrt, h_mrt),
+                                                                         np.minimum(life_leak, h_leak))
+    c0 = 0
+    while c0 < idx.size:
+        if stop_early and _cannot_lower(cand, c0, rest0, np.minimum(bound_mrt, life_mrt).max(),
+                                        np.minimum(bound_leak, life_leak).max()):
+            break
         ii = idx[c0:c0 + band]
         shape = (n_draws, ii.size)
         zk = np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
@@ -708,7 +742,16 @@ def _seen_lives(c: _Cells, rates: _Rates, idx, below, n_draws, rng, band=256):
         with np.errstate(divide="ignore", invalid="ignore"):
             life_mrt = np.minimum(life_mrt, _life(tk - c.mrt[ii], rk).min(axis=1))
             life_leak = np.minimum(life_leak, _life(tk, rk).min(axis=1))
-    return life_mrt, life_leak
+        c0 += ii.size
+    return life_mrt, life_leak, int(min(c0, idx.size))
+
+
+def _cannot_lower(cand: _Candidates, k, rest0, top_mrt, top_leak) -> bool:
+    """True when none of the candidates from ``k`` on can lower any draw: each one's
+    shortest possible life exceeds ``top_mrt`` (the longest of the draws' minima; or every
+    draw is below MRT already) and its shortest possible life to a leak ``top_leak``."""
+    mrt_done = cand.below or cand.pess[k:].min() > top_mrt
+    return bool(mrt_done and rest0[k] > top_leak)
 
 
 def _thickness_mean(c: _Cells, ii, rate):

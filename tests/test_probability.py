@@ -166,26 +166,52 @@ def test_plot_returns_figure():
     plt.close(fig)
 
 
-def test_same_numbers_as_before_the_split():
-    # Regression: values of the module as one 189-line function (commit 1e22d63), before it
-    # was split into the seen, censored and hidden parts, the rate draws and the pruning.
-    # Same seed, same numbers (no older reading given: that path is unchanged).
+def _mixed_zone():
     rng = np.random.default_rng(11)
     n = 400
     t = 3.2 + 3.0 * rng.random(n)
     r = 0.05 + 0.15 * rng.random(n)
     meas, cens = np.arange(n) % 37 != 0, np.arange(n) % 11 == 0
     fit = GumbelFit(loc=2.0, scale=0.3, method="mle", loglik=0.0, n=30)
-    want = {True: (210, [0.0, 2.0987886965, 2.4599868017], 11.0863465026, 0.195),
-            False: (298, [0.0, 2.0114739873, 2.3663536764], 10.0411417126, 0.1825)}
-    for shrink, (kept, q, leak_mean, p_hidden) in want.items():
-        d = zone_life_distribution(t, r, 0.5 * r, r - 0.02, r + 0.04, 0.4 * r, 0.6 * r, 2.54, sigma_t=0.1,
-                                   nominal=6.35, censored=cens, threshold=1.0, measured=meas, hidden_fit=fit,
-                                   hidden_T=20.0, seed=5, shrink=shrink, n_draws=400)
-        assert d.n_kept == kept
-        assert np.allclose(d.quantiles(), q, rtol=0, atol=1e-9)
-        assert float(np.mean(d.life_leak)) == pytest.approx(leak_mean, abs=1e-9)
-        assert d.p_hidden_governs == p_hidden
+    return (t, r, 0.5 * r, r - 0.02, r + 0.04, 0.4 * r, 0.6 * r, 2.54), dict(
+        sigma_t=0.1, nominal=6.35, censored=cens, threshold=1.0, measured=meas, hidden_fit=fit, hidden_T=20.0)
+
+
+def test_same_distribution_as_the_single_function():
+    # Values of the module as one 189-line function (commit 1e22d63), 8000 draws, seed 5.
+    # Split into parts it gave the same numbers draw for draw; the cells are now drawn most
+    # dangerous first and the unscanned part before them (so the bands can stop early), which
+    # reorders the random numbers: the same law within Monte Carlo error (quantiles of 8000
+    # draws: about 1 %).
+    args, kw = _mixed_zone()
+    want = {True: ([0.0, 2.1067757702, 2.4637757298], 11.0658457743, 0.182375),
+            False: ([0.0544770394, 2.0391095844, 2.3957036206], 10.1010076525, 0.161625)}
+    for shrink, (q, leak_mean, p_hidden) in want.items():
+        d = zone_life_distribution(*args, seed=5, shrink=shrink, n_draws=8000, **kw)
+        assert np.allclose(d.quantiles()[1:], q[1:], rtol=0.015)
+        assert d.quantiles()[0] <= 0.1
+        assert float(np.mean(d.life_leak)) == pytest.approx(leak_mean, rel=0.01)
+        assert d.p_hidden_governs == pytest.approx(p_hidden, abs=0.015)
+
+
+def test_early_stop_changes_no_draw(monkeypatch):
+    # The seen part's bands stop once no cell left can lower any draw: the same draws as
+    # going on through every candidate.
+    import functools
+
+    import scananalyse.probability as P
+    args, kw = _mixed_zone()
+    seen = P._seen_lives
+    for shrink in (True, False):
+        out = {}
+        for stop in (True, False):  # bands of 16 cells (the default 256 takes these 210 in one)
+            with monkeypatch.context() as m:
+                m.setattr(P, "_seen_lives", functools.partial(seen, stop_early=stop, band=16))
+                out[stop] = zone_life_distribution(*args, seed=6, shrink=shrink, n_draws=500, **kw)
+        fast, full = out[True], out[False]
+        assert fast.n_kept < full.n_kept
+        assert np.array_equal(fast.life_mrt, full.life_mrt) and np.array_equal(fast.life_leak, full.life_leak)
+        assert fast.p_hidden_governs == full.p_hidden_governs
 
 
 def test_thickness_given_rate_from_both_readings_matches_normal():
