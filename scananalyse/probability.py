@@ -594,30 +594,34 @@ def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, t
     """:class:`_Cells` of the scanned (finite-thickness) cells (none: empty arrays)."""
     t = np.asarray(thickness, dtype=float).ravel()
     n = t.size
-
-    def flat(a):
-        return np.broadcast_to(np.asarray(a, dtype=float).ravel() if np.ndim(a) else np.asarray(a, dtype=float),
-                               (n,))
-    arrs = [flat(a) for a in rate_arrays]
     ok = np.isfinite(t)
-    mrt_a, sig = flat(mrt)[ok], flat(sigma_t)[ok]
-    cens = np.zeros(n, bool) if censored is None else np.asarray(censored, bool).ravel()
+    every = bool(ok.all())  # the usual case (life_distributions passes scanned cells): no copies
+    t = t if every else t[ok]
+    m = t.size
+
+    def flat(a, dtype=float):
+        if np.ndim(a) == 0:
+            return np.full(m, a, dtype=dtype)
+        a = np.asarray(a, dtype=dtype).ravel()
+        return a if every else a[ok]
+    arrs = [flat(a) for a in rate_arrays]
+    mrt_a, sig = flat(mrt), flat(sigma_t)
     thr = float(threshold) if threshold else 0.0
-    cens = cens[ok] & (thr > 0)
+    cens = (np.zeros(m, bool) if censored is None else flat(censored, bool)) & (thr > 0)
     unc = ~cens
-    meas = np.ones(int(ok.sum()), bool) if measured is None else np.asarray(measured, bool).ravel()[ok]
-    side_rates = (*_clean(arrs[0][ok], arrs[2][ok], arrs[3][ok]), *_clean(arrs[1][ok], arrs[4][ok], arrs[5][ok]))
+    meas = np.ones(m, bool) if measured is None else flat(measured, bool)
+    side_rates = (*_clean(arrs[0], arrs[2], arrs[3]), *_clean(arrs[1], arrs[4], arrs[5]))
     # reference cells of the similar-depth rate rule: the measured, uncensored cells
     ref = unc & meas
     ref = ref if ref.any() else (unc if unc.any() else np.ones_like(unc))
-    old = np.full(sig.shape, np.nan) if older is None else flat(older)[ok]
+    old = np.full(m, np.nan) if older is None else flat(older)
     use = np.isfinite(old) & unc & meas & bool(dt_years) & (sigma_old is not None)
     s_old2 = float(sigma_old) ** 2 if sigma_old is not None else 0.0
     w_new = np.where(use, s_old2 / np.maximum(s_old2 + sig * sig, 1e-30), 1.0)
     sig_post = np.where(use, np.sqrt(w_new) * sig, sig)
-    return _Cells(t=t[ok], mrt=mrt_a, sig=sig, cens=cens, unc=unc, meas=meas,
-                  lo_known=np.isfinite(arrs[2][ok]) & np.isfinite(arrs[4][ok]), side_rates=side_rates, ref=ref,
-                  ref_depth=nominal - t[ok][ref], nominal=float(nominal), threshold=thr, n=int(n),
+    return _Cells(t=t, mrt=mrt_a, sig=sig, cens=cens, unc=unc, meas=meas,
+                  lo_known=np.isfinite(arrs[2]) & np.isfinite(arrs[4]), side_rates=side_rates, ref=ref,
+                  ref_depth=nominal - t[ref], nominal=float(nominal), threshold=thr, n=int(n),
                   old=np.where(use, old, np.nan), w_new=w_new, sig_post=sig_post, dt=float(dt_years or 0.0))
 
 
@@ -768,9 +772,9 @@ def _thickness_mean(c: _Cells, ii, rate):
 
 def _thickness_range(c: _Cells, r_min, r_max):
     """Smallest and largest thickness a draw can give each cell, over its rate range."""
-    idx = np.arange(c.t.size)
-    lo = _thickness_mean(c, idx, r_max) - TRUNC_SD * c.sig_post
-    hi = _thickness_mean(c, idx, r_min) + TRUNC_SD * c.sig_post
+    every = slice(None)
+    lo = _thickness_mean(c, every, r_max) - TRUNC_SD * c.sig_post
+    hi = _thickness_mean(c, every, r_min) + TRUNC_SD * c.sig_post
     return lo, hi
 
 

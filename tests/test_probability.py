@@ -284,8 +284,11 @@ def test_repaired_floor_does_not_use_the_older_reading_under_a_patch():
 def test_calibration_fast_subset():
     # Synthetic floors with known truth (bench/bench_calibration.py, other seeds than the
     # bench's 100...): the true zone time to MRT falls inside [p05, p95] of about 90 % of
-    # the zones.  8 floors (2 per case): at most 1 miss of 8 (7 of 8 inside on these
-    # seeds; 6 of 8 before the rates were drawn from the zone's rate distribution).
+    # the zones.  8 floors (2 per case): at most 1 miss of 8 (7 of 8 inside on these seeds,
+    # before and after the thickness was drawn given the rate from both readings: the one
+    # miss, seed 21, is set by the unscanned part's wide predictive law; 6 of 8 before the
+    # rates were drawn from the zone's rate distribution), and never optimistic: no zone's
+    # truth below its p05 (none on these seeds; 0 of 48 on the bench).
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
     import bench_calibration as bc
 
@@ -296,6 +299,4 @@ def test_calibration_fast_subset():
     inside = [r["p05"] <= r["truth"] <= r["p95"] for r in rows]
     assert len(rows) >= 8
     assert np.mean(inside) >= 0.8, [(r["seed"], r["truth"], r["p05"], r["p95"]) for r in rows]
-    # not unconservative: no zone's p05 is far above its true life
-    assert all(r["p05"] <= 1.25 * r["truth"] + 0.5 for r in rows), \
-        [(r["seed"], r["truth"], r["p05"]) for r in rows]
+    assert not any(r["truth"] < r["p05"] for r in rows), [(r["seed"], r["truth"], r["p05"]) for r in rows]
