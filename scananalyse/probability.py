@@ -90,6 +90,18 @@ above the longest of the draws' minima so far (for MRT and for a leak), so none 
 could lower any draw: the same draws as going on.  On the 30 m MFL bench floor (already
 below MRT: the leak's candidates) 3 600 of 22 400 candidates are drawn, of 1.7 million
 cells.
+
+References
+----------
+B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman & Hall, 1993,
+ch. 6 (parametric bootstrap).  T. Shibata, "Application of extreme value statistics to
+corrosion", J. Res. NIST 99 (1994) 327-336 (the deepest of T blocks).  B. Efron,
+*Large-Scale Inference*, Cambridge University Press, 2010, ch. 1 (empirical Bayes,
+Tweedie's formula, selection).  S. Coles, *An Introduction to Statistical Modeling of
+Extreme Values*, Springer, 2001 (predictive distributions of extremes).  The structure,
+probability of failure from thinning as the chance that the rate and thickness
+uncertainties use up the wall by a date, is that of risk-based inspection practice (API RP
+581, from memory); the distributions are our own.
 """
 
 from __future__ import annotations
@@ -464,48 +476,34 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
     ----------
     thickness : (n,) array_like
         Measured remaining thickness of the zone's scanned cells (NaN: not scanned). [mm]
-    rate_top, rate_under : (n,) array_like
-        Governing rates per side (NaN and negative count as 0). [mm/y]
-    rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : (n,) array_like
-        90 % interval of each rate (:class:`~scananalyse.rates.LossRates`). [mm/y]
+    rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : (n,) array_like
+        Governing rates per side (NaN and negative count as 0) and their 90 % intervals. [mm/y]
     mrt : float or (n,) array_like
         Minimum remaining thickness (the unscanned part takes its minimum). [mm]
-    sigma_t : float or (n,) array_like
-        One-standard-deviation uncertainty of the newer reading (method sigma, or prove-up
-        scatter). [mm]
-    nominal : float
-        Nominal plate thickness. [mm]
-    censored : (n,) bool array_like, optional
-        Cells reported as nominal whose true loss lies below ``threshold``. [-]
-    threshold : float, optional
-        Detection threshold of the scan (loss). [mm]
+    sigma_t, nominal : float or (n,) array_like, float
+        Sigma of the newer reading (method sigma, or prove-up scatter); nominal plate
+        thickness. [mm]
+    censored, threshold : (n,) bool array_like, float, optional
+        Cells reported as nominal (true loss below the threshold); the scan's detection
+        threshold (loss). [-], [mm]
     measured : (n,) bool array_like, optional
         Cells whose rates were measured; the others (rates assumed for indications) are
         drawn as the module notes say.  None: all measured. [-]
-    hidden_fit : GumbelFit or GEVFit, optional
-        The zone's fit of block-maximum loss depth; None: the unscanned part is not modelled.
-    hidden_T : float
-        Unscanned area in blocks (zone area − scanned cells' area) / block area. [blocks]
+    hidden_fit, hidden_T : GumbelFit or GEVFit, float
+        The zone's fit of block-maximum loss depth (None: the unscanned part is not
+        modelled); the unscanned area in blocks. [-], [blocks]
     hidden_n, hidden_threshold : int, float, optional
-        Blocks and censoring threshold of the fit's parametric bootstrap (default: the
-        fit's own). [-], [mm]
+        Blocks and censoring threshold of the fit's bootstrap (default: the fit's). [-], [mm]
     n_draws, seed : int
         Monte Carlo draws; seed of :func:`numpy.random.default_rng`. [-]
-    shrink : bool
-        Draw the rates from their posteriors under the zone's rate distribution; False:
-        independently from each cell's own interval. [-]
-    rate_prior : GridPrior, optional
-        The rate distribution to use (:func:`fit_rate_prior`); None: estimated from the
-        zone's measured, uncensored cells. [-]
-    older : (n,) array_like, optional
+    shrink, rate_prior : bool, GridPrior, optional
+        Draw the rates from their posteriors under the zone's rate distribution (False:
+        each from its own interval); that distribution (:func:`fit_rate_prior`; None:
+        estimated from the zone's measured, uncensored cells). [-]
+    older, sigma_old, dt_years : (n,) array_like, float, float, optional
         The older scan's reading on the newer grid where it reads the same metal (NaN
-        elsewhere; :func:`life_distributions` says where): with ``sigma_old`` and
-        ``dt_years`` the present thickness is drawn given the drawn rate from both
-        readings. [mm]
-    sigma_old : float, optional
-        One-standard-deviation uncertainty of ``older``. [mm]
-    dt_years : float, optional
-        Years between the inspections. [y]
+        elsewhere), its sigma, and the years between the inspections: the present
+        thickness is then drawn given the drawn rate from both readings. [mm], [mm], [y]
 
     Returns
     -------
@@ -513,24 +511,11 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
 
     Notes
     -----
-    Draw *k* of cell *i*: the rate :math:`r_{ik}` from :math:`\propto g(r) L_i(r)` (Efron
-    [3]_), then the thickness :math:`t_{ik} \sim N(w_i y_i + (1 - w_i)(y^0_i - r_{ik}\Delta t),
-    w_i \sigma_i^2)`, :math:`w_i = \sigma_0^2 / (\sigma_0^2 + \sigma_i^2)` (:math:`w_i = 1`
-    where there is no older reading), truncated at ±4 sd; the cell's life
-    :math:`\max(0, (t_{ik} - \mathrm{MRT}_i) / r_{ik})`.  The unscanned part's life uses
-    :math:`D_k = F^{-1}(U_k^{1/T}; \theta_k)`, :math:`\theta_k` a parametric-bootstrap refit
-    (Efron & Tibshirani [1]_; the deepest of T blocks, Shibata [2]_); the zone's life is the
-    least.  Pruning: a cell whose shortest possible life exceeds another's longest
-    possible life is never the minimum and is left out (exact).
-
-    References
-    ----------
-    .. [1] B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman &
-       Hall, 1993, ch. 6 (parametric bootstrap).
-    .. [2] T. Shibata, "Application of extreme value statistics to corrosion", J. Res. NIST
-       99 (1994) 327-336.
-    .. [3] B. Efron, *Large-Scale Inference: Empirical Bayes Methods for Estimation,
-       Testing, and Prediction*, Cambridge University Press, 2010, ch. 1.
+    Draw *k*: each candidate cell's rate from its posterior, its thickness given that rate
+    (module notes), its life :math:`\max(0, (t_{ik} - \mathrm{MRT}_i) / r_{ik})`; the
+    unscanned part's from a predictive draw of its deepest loss; the zone's life the least.
+    References in the module notes (Efron & Tibshirani 1993; Shibata 1994; Efron 2010;
+    Coles 2001).
     """
     if n_draws < 10:
         raise InputError(f"zone_life_distribution: field 'n_draws' must be at least 10, got {n_draws}")
@@ -544,27 +529,33 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
     rng = np.random.default_rng(seed)
     rates = _shrunk_rates(c, rng, rate_prior) if shrink else _own_rates(c, rng)
     cand = _candidates(c, rates)
-    m_h = float(np.min(c.mrt))
     # the below-threshold and unscanned parts first: their draws bound which scanned cells
     # can still lower a draw's minimum (the seen part stops there, exactly)
     life_mrt = np.full(n_draws, 0.0 if cand.below else np.inf)
     life_leak = np.full(n_draws, np.inf)
     if c.cens.any():
-        h_mrt, h_leak = _censored_lives(c, rates, n_draws, m_h)
+        h_mrt, h_leak = _censored_lives(c, rates, n_draws, float(np.min(c.mrt)))
         life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
-    notes, T, h_mrt = [], float(hidden_T), None
-    if hidden_fit is not None and T > 0:
-        d = _hidden_depth(hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
-        h_mrt, h_leak = _part_lives(c.nominal - d, m_h, rates.rule(d))
-    elif T > 0:
-        notes.append("unscanned part not modelled (no extreme-value fit)")
-    seen_mrt, seen_leak, n_drawn = _seen_lives(c, rates, cand, life_mrt, life_leak,
-                                               h_mrt=h_mrt, h_leak=None if h_mrt is None else h_leak, rng=rng)
+    T = float(hidden_T)
+    h_mrt, h_leak = _unscanned_lives(c, rates, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
+    seen_mrt, seen_leak, n_drawn = _seen_lives(c, rates, cand, life_mrt, life_leak, h_mrt=h_mrt, h_leak=h_leak,
+                                               rng=rng)
     p_hidden = 0.0 if h_mrt is None else float(np.mean(h_mrt < seen_mrt))
     if h_mrt is not None:
         seen_mrt, seen_leak = np.minimum(seen_mrt, h_mrt), np.minimum(seen_leak, h_leak)
+    notes = ("unscanned part not modelled (no extreme-value fit)",) if (T > 0 and hidden_fit is None) else ()
     return LifeDistribution(seen_mrt, seen_leak, n_cells=c.n, n_kept=n_drawn, hidden_T=T,
-                            p_hidden_governs=p_hidden, notes=tuple(notes))
+                            p_hidden_governs=p_hidden, notes=notes)
+
+
+def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
+    """Draws of the unscanned part's lives to MRT (the zone's least) and to a leak: its
+    deepest loss from the predictive law, growing at the similar-depth rate; (None, None)
+    when it is not modelled."""
+    if fit is None or T <= 0:
+        return None, None
+    d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
+    return _part_lives(c.nominal - d, float(np.min(c.mrt)), rates.rule(d))
 
 
 @dataclass(frozen=True)
