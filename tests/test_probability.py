@@ -8,8 +8,8 @@ import pytest
 
 from scananalyse.errors import InputError
 from scananalyse.extremes import GumbelFit
-from scananalyse.probability import (MIN_PRIOR_CELLS, LifeDistribution, fit_rate_prior, plot_life_curve,
-                                     repaired_rates, zone_life_distribution)
+from scananalyse.probability import (MIN_PRIOR_CELLS, fit_rate_prior, plot_life_curve,
+                                     zone_life_distribution)
 
 Z90 = 1.6448536269514722
 
@@ -261,6 +261,8 @@ def test_repaired_floor_does_not_use_the_older_reading_under_a_patch():
     # distribution must not project the older reading forward there (it would make the
     # patch's metal look like the old plate's).
     import dataclasses
+
+    from scananalyse.probability import repaired_rates
 
     @dataclasses.dataclass(frozen=True)
     class Rates:
