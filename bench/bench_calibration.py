@@ -9,9 +9,11 @@ Reported: coverage of [p05, p95] (overall, zones not already below MRT, per case
 reliability table of the predicted P(reach MRT within h) against the observed fraction,
 binned, for h in HORIZONS.
 
-    PYTHONPATH=. python bench/bench_calibration.py [n_seeds] [--no-shrink]
-        (default 48: one case per seed, cycling; --no-shrink: each cell's rate drawn from its
-        own interval, no zone rate distribution, as before issue 20 item 3)
+    PYTHONPATH=. python bench/bench_calibration.py [n_seeds] [--no-shrink] [--one-reading] [--first N]
+        (default 48 seeds from 100: one case per seed, cycling; --no-shrink: each cell's rate
+        drawn from its own interval, no zone rate distribution; --one-reading: each cell's
+        present thickness from the newer reading alone, not given its drawn rate from both
+        readings, as before)
 """
 
 from __future__ import annotations
@@ -41,7 +43,7 @@ def true_zone_life(pair, mrt_map, mask):
     return float(np.nanmin(np.where(mask, life, np.nan)))
 
 
-def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, **pair_kw):
+def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, **pair_kw):
     pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, method=method,
                      threshold=1.0 if method == "MFL" else None, n_hidden_pits=n_hidden, **pair_kw)
     with warnings.catch_warnings():
@@ -50,7 +52,7 @@ def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, **pair_kw):
     t0 = time.perf_counter()
     dists = life_distributions(an.new.thickness, an.rates, an.zones, an.mrt_map, an.extremes_depth,
                                nominal=an.new.meta.nominal, sigma_t=an.rates.sigma_new, pitch=an.new.pitch,
-                               n_draws=n_draws, seed=seed, shrink=shrink)
+                               n_draws=n_draws, seed=seed, shrink=shrink, both_readings=both_readings)
     dt = time.perf_counter() - t0
     rows = []
     for k, name in enumerate(an.zones.names):
@@ -104,12 +106,12 @@ def summarise(rows):
 PIT_RATES = (0.15, 0.3)
 
 
-def main(n_seeds=48, first=100, shrink=True):
+def main(n_seeds=48, first=100, shrink=True, both_readings=True):
     rows = []
     t = time.time()
     for i, seed in enumerate(range(first, first + n_seeds)):
         method, hidden = CASES[i % len(CASES)]
-        rows += run_case(seed, method, hidden, shrink=shrink,
+        rows += run_case(seed, method, hidden, shrink=shrink, both_readings=both_readings,
                          max_pit_rate=PIT_RATES[(i // len(CASES)) % len(PIT_RATES)])
     print(summarise(rows))
     print(f"total {time.time() - t:.0f} s")
@@ -117,5 +119,8 @@ def main(n_seeds=48, first=100, shrink=True):
 
 
 if __name__ == "__main__":
-    args = [a for a in sys.argv[1:] if not a.startswith("--")]
-    main(int(args[0]) if args else 48, shrink="--no-shrink" not in sys.argv[1:])
+    argv = sys.argv[1:]
+    first = int(argv[argv.index("--first") + 1]) if "--first" in argv else 100
+    args = [a for i, a in enumerate(argv) if not a.startswith("--") and (i == 0 or argv[i - 1] != "--first")]
+    main(int(args[0]) if args else 48, first=first, shrink="--no-shrink" not in argv,
+         both_readings="--one-reading" not in argv)

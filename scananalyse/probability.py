@@ -9,9 +9,27 @@ the time until its thinnest point, scanned or not, reaches MRT,
 and the time to a leak is the same with MRT = 0.  Every quantity on the right is uncertain
 and is drawn by a seeded, vectorised Monte Carlo:
 
-* **thickness** of a scanned, measured cell: :math:`t_i \sim N(t_i^\mathrm{meas}, \sigma_t^2)`, with
-  :math:`\sigma_t` the method's reading sigma (a per-cell array may carry the prove-up
-  scatter where there are prove-ups); the below-threshold (censored) cells as one with
+* **thickness** of a scanned, measured cell, *given its drawn rate*: with the newer
+  reading :math:`y_i` (sd :math:`\sigma_i`, the method's sigma or the prove-up scatter) and,
+  where it reads the same metal, the older reading on the newer grid :math:`y^0_i` (sd
+  :math:`\sigma_0`), :math:`\Delta t` apart, linear growth gives
+  :math:`y_i = t_i + e_i`, :math:`y^0_i = t_i + r_i \Delta t + e^0_i`, so
+
+  .. math:: t_i \mid r_i, y_i, y^0_i \sim N\bigl(w_i y_i + (1 - w_i)(y^0_i - r_i \Delta t),\;
+            w_i \sigma_i^2\bigr), \qquad w_i = \sigma_0^2 / (\sigma_0^2 + \sigma_i^2),
+
+  truncated at ±4 sd; without a usable older reading :math:`w_i = 1`:
+  :math:`N(y_i, \sigma_i^2)`.  The rate is drawn first from
+  :math:`p(r_i \mid y_i, y^0_i)` (below), the thickness from this conditional: together a
+  draw of the joint posterior.  Drawing the thickness from :math:`N(y_i, \sigma_i^2)`
+  independently of the rate counts the newer reading's noise twice, once in the thickness
+  and once, independently, in the rate's interval built from the same reading; where the
+  reading is low by its noise the short-term rate is high by the same noise, and the zone's
+  thinnest reading is the one chosen for being low.  The older reading was not chosen for
+  it; given the rate it is a second measurement of today's thickness.  It is used only
+  where both scans report a loss (not censored now, not crossed below the older
+  threshold), no repair is seen or recorded and the rate was measured; a patch is new
+  metal (:func:`repaired_rates`); the below-threshold (censored) cells as one with
   the threshold taken as its loss (the most it can be), at a similar-depth rate (below);
 * **rate** of a scanned cell (both sides together): drawn from its *posterior* under the
   zone's distribution of true rates (empirical Bayes, below), not from its own interval
@@ -47,23 +65,43 @@ and is drawn by a seeded, vectorised Monte Carlo:
   in rank to D, ``w`` = max(5, 2 % of the cells); beyond the deepest measured cell, among
   the ``w`` deepest), drawn from its posterior as above.
 
-The thickness is not shrunk the same way: an estimate of the zone's thickness
-distribution (NPMLE, smoothed) made the intervals too narrow and the life too long on the
-synthetic floors (diagnostic seeds 200-239, neither the bench's nor the tests': truth
-below p05 in 9 of 40 zones, against 4 with the rates alone), so thickness keeps its
-reading noise as drawn above.  Nor is it drawn given the rate from both readings (the
-older reading minus rate × Δt): the older scan resampled onto the newer grid reads pit
-bottoms about 0.05 mm thick (interpolation), and the life came out longer across the
-board.  Where a zone's life still comes out too short, the governing reading is usually
-low by its own noise (0.1-0.2 mm), which no zone-wide distribution can tell.
+The thickness is not shrunk by a zone-wide distribution: an estimate of the zone's
+thickness distribution (NPMLE, smoothed) made the intervals too narrow and the life too
+long on the synthetic floors (diagnostic seeds 200-239, neither the bench's nor the
+tests': truth below p05 in 9 of 40 zones, against 4 with the rates alone): a zone's
+thinnest cells are single pits, not draws from its bulk.  The older scan resampled onto
+the newer grid reads the thinnest cells about 0.07 mm thick on average (bilinear
+interpolation across pit bottoms; ``bench/RESULTS.md``), which moves the drawn thickness
+up by about half that (:math:`1 - w_i = 1/2` at equal sigmas); it is stated, not
+corrected.  Left: the thinnest of several cells at one pit bottom, near-equal in truth and
+each drawn with its own noise, still gives a minimum below the truth (the winner's curse
+within a pit: no spatial model of the pit bottom here).
 
 Only cells that could be the zone's minimum enter the Monte Carlo: a cell whose shortest
-possible life (thickness −4σ, fastest rate of its truncated range) exceeds the longest
-possible life (thickness +4σ, slowest rate) of some other cell cannot be the minimum in any
+possible life (thickness −4 sd at its fastest rate, the fastest rate of its truncated
+range) exceeds the longest possible life (thickness +4 sd at its slowest rate, the slowest
+rate) of some other cell cannot be the minimum in any
 draw, so the pruning changes no draw's result.  With the zone's rate distribution a cell's
 rates range over its posterior's support (grid rates with mass above 1e-9 of its largest,
-widened by 3 grid steps; the draws are clipped to it), far narrower than its interval: on
-a 30 m floor 600 of 1.7 million cells are kept, against 23 000 with the intervals alone.
+widened by 3 grid steps; the draws are clipped to it), far narrower than its interval.
+The below-threshold and unscanned parts are drawn first, then the candidates in bands,
+most dangerous first; the bands stop once every cell left has a shortest possible life
+above the longest of the draws' minima so far (for MRT and for a leak), so none of them
+could lower any draw: the same draws as going on.  On the 30 m MFL bench floor (already
+below MRT: the leak's candidates) 3 600 of 22 400 candidates are drawn, of 1.7 million
+cells.
+
+References
+----------
+B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman & Hall, 1993,
+ch. 6 (parametric bootstrap).  T. Shibata, "Application of extreme value statistics to
+corrosion", J. Res. NIST 99 (1994) 327-336 (the deepest of T blocks).  B. Efron,
+*Large-Scale Inference*, Cambridge University Press, 2010, ch. 1 (empirical Bayes,
+Tweedie's formula, selection).  S. Coles, *An Introduction to Statistical Modeling of
+Extreme Values*, Springer, 2001 (predictive distributions of extremes).  The structure,
+probability of failure from thinning as the chance that the rate and thickness
+uncertainties use up the wall by a date, is that of risk-based inspection practice (API RP
+581, from memory); the distributions are our own.
 """
 
 from __future__ import annotations
@@ -431,52 +469,41 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
                            rate_under_hi, mrt, *, sigma_t, nominal, censored=None, threshold=None,
                            measured=None, hidden_fit=None, hidden_T=0.0, hidden_n=None,
                            hidden_threshold=None, n_draws=2000, seed=0, shrink=True,
-                           rate_prior=None) -> LifeDistribution:
+                           rate_prior=None, older=None, sigma_old=None, dt_years=None) -> LifeDistribution:
     r"""Distribution of one zone's time to MRT and to a leak (our own model, module notes).
 
     Parameters
     ----------
     thickness : (n,) array_like
-        Measured remaining thickness of the zone's scanned cells. [mm]
-    rate_top, rate_under : (n,) array_like
-        Governing rates per side (NaN and negative count as 0). [mm/y]
-    rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : (n,) array_like
-        90 % interval of each rate (:class:`~scananalyse.rates.LossRates`). [mm/y]
+        Measured remaining thickness of the zone's scanned cells (NaN: not scanned). [mm]
+    rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi : (n,) array_like
+        Governing rates per side (NaN and negative count as 0) and their 90 % intervals. [mm/y]
     mrt : float or (n,) array_like
-        Minimum remaining thickness (a scalar is used for the unscanned part; an array's
-        minimum there). [mm]
-    sigma_t : float or (n,) array_like
-        One-standard-deviation thickness uncertainty per cell (method sigma, or prove-up
-        scatter). [mm]
-    nominal : float
-        Nominal plate thickness. [mm]
-    censored : (n,) bool array_like, optional
-        Cells reported as nominal whose true loss lies below ``threshold``. [-]
-    threshold : float, optional
-        Detection threshold of the scan (loss). [mm]
+        Minimum remaining thickness (the unscanned part takes its minimum). [mm]
+    sigma_t, nominal : float or (n,) array_like, float
+        Sigma of the newer reading (method sigma, or prove-up scatter); nominal plate
+        thickness. [mm]
+    censored, threshold : (n,) bool array_like, float, optional
+        Cells reported as nominal (true loss below the threshold); the scan's detection
+        threshold (loss). [-], [mm]
     measured : (n,) bool array_like, optional
-        Cells whose rates were measured (short- or long-term); the others (rates assumed
-        for indications with no measured rate) take the similar-depth rule of the unscanned
-        part instead of their assumed point.  None: all measured. [-]
-    hidden_fit : GumbelFit or GEVFit, optional
-        The zone's fit of block-maximum loss depth (:class:`~scananalyse.extremes.ZoneExtremes`
-        ``.fit``); None: the unscanned part is not modelled.
-    hidden_T : float
-        Unscanned area in blocks (zone area − scanned cells' area) / block area. [blocks]
-    hidden_n : int, optional
-        Blocks of the fit (``fit.n``) for the parametric bootstrap; None takes ``fit.n``. [-]
-    hidden_threshold : float, optional
-        Censoring threshold of the fit (``fit.threshold``). [mm]
-    n_draws : int
-        Monte Carlo draws. [-]
-    seed : int
-        Seed of :func:`numpy.random.default_rng`. [-]
-    shrink : bool
-        Draw the rates from their posteriors under the zone's rate distribution (module
-        notes); False: independently from each cell's own interval. [-]
-    rate_prior : GridPrior, optional
-        The rate distribution to use (:func:`fit_rate_prior`); None estimates it from the
-        zone's measured, uncensored cells. [-]
+        Cells whose rates were measured; the others (rates assumed for indications) are
+        drawn as the module notes say.  None: all measured. [-]
+    hidden_fit, hidden_T : GumbelFit or GEVFit, float
+        The zone's fit of block-maximum loss depth (None: the unscanned part is not
+        modelled); the unscanned area in blocks. [-], [blocks]
+    hidden_n, hidden_threshold : int, float, optional
+        Blocks and censoring threshold of the fit's bootstrap (default: the fit's). [-], [mm]
+    n_draws, seed : int
+        Monte Carlo draws; seed of :func:`numpy.random.default_rng`. [-]
+    shrink, rate_prior : bool, GridPrior, optional
+        Draw the rates from their posteriors under the zone's rate distribution (False:
+        each from its own interval); that distribution (:func:`fit_rate_prior`; None:
+        estimated from the zone's measured, uncensored cells). [-]
+    older, sigma_old, dt_years : (n,) array_like, float, float, optional
+        The older scan's reading on the newer grid where it reads the same metal (NaN
+        elsewhere), its sigma, and the years between the inspections: the present
+        thickness is then drawn given the drawn rate from both readings. [mm], [mm], [y]
 
     Returns
     -------
@@ -484,138 +511,280 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
 
     Notes
     -----
-    With ``shrink`` the rate :math:`r_{ik}` is a draw of the posterior
-    :math:`\propto g(r) L_i(r)` (:func:`fit_rate_prior`; Efron [3]_ on empirical Bayes);
-    otherwise of :math:`L_i` alone.  For draw *k* the life of cell *i* is
-    :math:`L_{ik} = \max(0, (t_{ik} - \mathrm{MRT}_i) / (r^\mathrm{top}_{ik} + r^\mathrm{under}_{ik}))`,
-    the unscanned part's :math:`L_{Hk} = \max(0, (t_\mathrm{nom} - D_k - \mathrm{MRT}) / r_{Hk})`
-    with :math:`D_k = F^{-1}(U_k^{1/T}; \theta_k)`, :math:`\theta_k` a parametric-bootstrap
-    refit of the depth fit (Efron & Tibshirani [1]_; the law of the deepest of T blocks,
-    Shibata [2]_), and the zone's life :math:`\min(\min_i L_{ik}, L_{Hk})`.  Loss grows
-    linearly at the cell's rate (the co-located projection of domain §5).  A cell is kept
-    only if its shortest possible life (thickness at −4σ, fastest rate of its truncated
-    range) does not exceed :math:`\min_j` of the longest possible lives (for MRT, or for
-    zero thickness): the others cannot be the minimum in any draw.
-
-    References
-    ----------
-    .. [1] B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman &
-       Hall, 1993, ch. 6 (parametric bootstrap).
-    .. [2] T. Shibata, "Application of extreme value statistics to corrosion", J. Res. NIST
-       99 (1994) 327-336.
-    .. [3] B. Efron, *Large-Scale Inference: Empirical Bayes Methods for Estimation,
-       Testing, and Prediction*, Cambridge University Press, 2010, ch. 1 (Tweedie's
-       formula, shrinking the largest of many noisy estimates).
+    Draw *k*: each candidate cell's rate from its posterior, its thickness given that rate
+    (module notes), its life :math:`\max(0, (t_{ik} - \mathrm{MRT}_i) / r_{ik})`; the
+    unscanned part's from a predictive draw of its deepest loss; the zone's life the least.
+    References in the module notes (Efron & Tibshirani 1993; Shibata 1994; Efron 2010;
+    Coles 2001).
     """
-    t = np.asarray(thickness, dtype=float).ravel()
-    n = t.size
     if n_draws < 10:
         raise InputError(f"zone_life_distribution: field 'n_draws' must be at least 10, got {n_draws}")
-    arrs = [np.broadcast_to(np.asarray(a, dtype=float).ravel() if np.ndim(a) else np.asarray(a, dtype=float), (n,))
-            for a in (rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi)]
-    mrt_a = np.broadcast_to(np.asarray(mrt, dtype=float).ravel() if np.ndim(mrt) else float(mrt), (n,))
-    sig = np.broadcast_to(np.asarray(sigma_t, dtype=float).ravel() if np.ndim(sigma_t) else float(sigma_t), (n,))
-    cens = np.zeros(n, bool) if censored is None else np.asarray(censored, bool).ravel()
-    ok = np.isfinite(t)
-    if not ok.any() and hidden_fit is None:
+    c = _scanned_cells(thickness, (rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi),
+                       mrt, sigma_t=sigma_t, nominal=nominal, censored=censored, threshold=threshold,
+                       measured=measured, older=older, sigma_old=sigma_old, dt_years=dt_years)
+    if c.t.size == 0:  # nothing measured: no rate for the unscanned part either
         nan = np.full(n_draws, np.nan)
-        return LifeDistribution(nan, nan, reason="zone not scanned and no extreme-value fit")
-    t, mrt_a, sig, cens = t[ok], mrt_a[ok], sig[ok], cens[ok]
-    pt, lt, ht = _clean(arrs[0][ok], arrs[2][ok], arrs[3][ok])
-    pu, lu, hu = _clean(arrs[1][ok], arrs[4][ok], arrs[5][ok])
+        return LifeDistribution(nan, nan, n_cells=c.n, reason="zone not scanned" + (
+            " and no extreme-value fit" if hidden_fit is None else ": no measured rate for its unscanned part"))
     rng = np.random.default_rng(seed)
+    rates = _shrunk_rates(c, rng, rate_prior) if shrink else _own_rates(c, rng)
+    cand = _candidates(c, rates)
+    # the below-threshold and unscanned parts first: their draws bound which scanned cells
+    # can still lower a draw's minimum (the seen part stops there, exactly)
+    life_mrt = np.full(n_draws, 0.0 if cand.below else np.inf)
+    life_leak = np.full(n_draws, np.inf)
+    if c.cens.any():
+        h_mrt, h_leak = _censored_lives(c, rates, n_draws, float(np.min(c.mrt)))
+        life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
+    T = float(hidden_T)
+    h_mrt, h_leak = _unscanned_lives(c, rates, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
+    seen_mrt, seen_leak, n_drawn = _seen_lives(c, rates, cand, life_mrt, life_leak, h_mrt=h_mrt, h_leak=h_leak,
+                                               rng=rng)
+    p_hidden = 0.0 if h_mrt is None else float(np.mean(h_mrt < seen_mrt))
+    if h_mrt is not None:
+        seen_mrt, seen_leak = np.minimum(seen_mrt, h_mrt), np.minimum(seen_leak, h_leak)
+    notes = ("unscanned part not modelled (no extreme-value fit)",) if (T > 0 and hidden_fit is None) else ()
+    return LifeDistribution(seen_mrt, seen_leak, n_cells=c.n, n_kept=n_drawn, hidden_T=T,
+                            p_hidden_governs=p_hidden, notes=notes)
+
+
+def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
+    """Draws of the unscanned part's lives to MRT (the zone's least) and to a leak: its
+    deepest loss from the predictive law, growing at the similar-depth rate; (None, None)
+    when it is not modelled."""
+    if fit is None or T <= 0:
+        return None, None
+    d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
+    return _part_lives(c.nominal - d, float(np.min(c.mrt)), rates.rule(d))
+
+
+@dataclass(frozen=True)
+class _Cells:
+    """A zone's scanned cells as the Monte Carlo takes them: thickness ``t``, ``mrt``,
+    sigma ``sig`` [mm]; per-side rates and intervals ``pt, lt, ht, pu, lu, hu`` [mm/y];
+    ``cens`` (below the threshold), ``unc`` (not), ``meas`` (rate measured), ``lo_known``
+    (both sides' lower bounds finite); ``ref``: the cells of the similar-depth rule and
+    ``ref_depth`` their loss [mm]; ``n``: cells given, scanned or not."""
+
+    t: np.ndarray
+    mrt: np.ndarray
+    sig: np.ndarray
+    cens: np.ndarray
+    unc: np.ndarray
+    meas: np.ndarray
+    lo_known: np.ndarray
+    side_rates: tuple
+    ref: np.ndarray
+    ref_depth: np.ndarray
+    nominal: float
+    threshold: float
+    n: int
+    old: np.ndarray
+    w_new: np.ndarray
+    sig_post: np.ndarray
+    dt: float
+
+
+def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, threshold, measured, older=None,
+                   sigma_old=None, dt_years=None):
+    """:class:`_Cells` of the scanned (finite-thickness) cells (none: empty arrays)."""
+    t = np.asarray(thickness, dtype=float).ravel()
+    n = t.size
+    ok = np.isfinite(t)
+    every = bool(ok.all())  # the usual case (life_distributions passes scanned cells): no copies
+    t = t if every else t[ok]
+    m = t.size
+
+    def flat(a, dtype=float):
+        if np.ndim(a) == 0:
+            return np.full(m, a, dtype=dtype)
+        a = np.asarray(a, dtype=dtype).ravel()
+        return a if every else a[ok]
+    arrs = [flat(a) for a in rate_arrays]
+    mrt_a, sig = flat(mrt), flat(sigma_t)
     thr = float(threshold) if threshold else 0.0
-    cens = cens & (thr > 0)
+    cens = (np.zeros(m, bool) if censored is None else flat(censored, bool)) & (thr > 0)
     unc = ~cens
-    meas = np.ones(n, bool) if measured is None else np.asarray(measured, bool).ravel()[ok]
+    meas = np.ones(m, bool) if measured is None else flat(measured, bool)
+    side_rates = (*_clean(arrs[0], arrs[2], arrs[3]), *_clean(arrs[1], arrs[4], arrs[5]))
     # reference cells of the similar-depth rate rule: the measured, uncensored cells
     ref = unc & meas
     ref = ref if ref.any() else (unc if unc.any() else np.ones_like(unc))
-    ref_depth = nominal - t[ref]
-    t_lo, t_hi = t - TRUNC_SD * sig, t + TRUNC_SD * sig
-    if shrink:
-        # each cell's total-rate likelihood; the zone's rate distribution from its
-        # uncensored cells; rates drawn from each cell's posterior (module notes)
-        # an assumed rate is no measurement, but a measured lower bound is: such a cell's
-        # rate is uniform between them; with no measured lower bound, the similar-depth rule
-        lo_known = np.isfinite(arrs[2][ok]) & np.isfinite(arrs[4][ok])
-        par = _total_rate(pt, lt, ht, pu, lu, hu, assumed=~meas)
-        ref_par = tuple(x[ref] for x in par)
-        prior = rate_prior if rate_prior is not None else _fit_prior(
-            ref_par, top=float(np.max(par[5][unc])) if unc.any() else None)
-        rate_rule = lambda d: _hidden_rate_post(rng, d, ref_depth, ref_par, prior)  # noqa: E731
-        meas = meas | lo_known
-        r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
-        if unc.any():
-            r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
-        r_min = np.where(meas, r_lo, 0.0)
-        r_max = np.where(meas, r_hi, float(np.max(ref_par[5])) if ref_par[5].size else 0.0)
-    else:
-        ref_rates = tuple(a[ref] for a in (pt, lt, ht, pu, lu, hu))
-        rate_rule = lambda d: _hidden_rate(rng, d, ref_depth, *ref_rates)  # noqa: E731
-        if not meas.all():  # assumed rates: replaced by draws of the rule (range for pruning below)
-            am = ~meas
-            rmax = float(np.max(_rate_range(*ref_rates[:3])[1] + _rate_range(*ref_rates[3:])[1]))
-            pt, lt, ht, pu, lu, hu = (np.where(am, v, a) for a, v in zip((pt, lt, ht, pu, lu, hu),
-                                                                         (0.0, 0.0, 0.0, 0.0, 0.0, rmax)))
-        rt_min, rt_max = _rate_range(pt, lt, ht)
-        ru_min, ru_max = _rate_range(pu, lu, hu)
-        r_min, r_max = rt_min + ru_min, rt_max + ru_max
-    # the range each measured cell's thickness and rate can take in a draw
+    old = np.full(m, np.nan) if older is None else flat(older)
+    use = np.isfinite(old) & unc & meas & bool(dt_years) & (sigma_old is not None)
+    s_old2 = float(sigma_old) ** 2 if sigma_old is not None else 0.0
+    w_new = np.where(use, s_old2 / np.maximum(s_old2 + sig * sig, 1e-30), 1.0)
+    sig_post = np.where(use, np.sqrt(w_new) * sig, sig)
+    return _Cells(t=t, mrt=mrt_a, sig=sig, cens=cens, unc=unc, meas=meas,
+                  lo_known=np.isfinite(arrs[2]) & np.isfinite(arrs[4]), side_rates=side_rates, ref=ref,
+                  ref_depth=nominal - t[ref], nominal=float(nominal), threshold=thr, n=int(n),
+                  old=np.where(use, old, np.nan), w_new=w_new, sig_post=sig_post, dt=float(dt_years or 0.0))
+
+
+@dataclass(frozen=True)
+class _Rates:
+    """How the Monte Carlo draws rates: ``r_min``, ``r_max`` (each cell's range, for the
+    pruning) [mm/y]; ``meas`` (cells drawn by ``draw``; the others by ``rule``); ``draw(ii,
+    shape)``: draws of cells ``ii``; ``rule(d)``: the similar-depth rule at depths ``d``."""
+
+    r_min: np.ndarray
+    r_max: np.ndarray
+    meas: np.ndarray
+    draw: object
+    rule: object
+
+
+def _shrunk_rates(c: _Cells, rng, rate_prior) -> _Rates:
+    """Rates from each cell's posterior under the zone's rate distribution (module notes).
+    An assumed rate is no measurement, but a measured lower bound is: such a cell's rate is
+    uniform between them; with no measured lower bound, the similar-depth rule."""
+    unc = c.unc
+    par = _total_rate(*c.side_rates, assumed=~c.meas)
+    ref_par = tuple(x[c.ref] for x in par)
+    prior = rate_prior if rate_prior is not None else _fit_prior(
+        ref_par, top=float(np.max(par[5][unc])) if unc.any() else None)
+    meas = c.meas | c.lo_known
+    r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
+    if unc.any():
+        r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
+
+    def draw(ii, shape):
+        sub = tuple(x[ii] for x in par)
+        return _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
+                               rng.random(shape), own=_own(sub))
+
+    return _Rates(r_min=np.where(meas, r_lo, 0.0),
+                  r_max=np.where(meas, r_hi, float(np.max(ref_par[5])) if ref_par[5].size else 0.0), meas=meas,
+                  draw=draw, rule=lambda d: _hidden_rate_post(rng, d, c.ref_depth, ref_par, prior))
+
+
+def _own_rates(c: _Cells, rng) -> _Rates:
+    """Rates drawn independently from each cell's own interval (``shrink=False``); assumed
+    rates are replaced by draws of the similar-depth rule."""
+    sr = c.side_rates
+    ref_rates = tuple(a[c.ref] for a in sr)
+    if not c.meas.all():  # the range of an assumed rate, for the pruning: 0 ... the fastest rule rate
+        am = ~c.meas
+        rmax = float(np.max(_rate_range(*ref_rates[:3])[1] + _rate_range(*ref_rates[3:])[1]))
+        sr = tuple(np.where(am, v, a) for a, v in zip(sr, (0.0, 0.0, 0.0, 0.0, 0.0, rmax)))
+    pt, lt, ht, pu, lu, hu = sr
+    rt_min, rt_max = _rate_range(pt, lt, ht)
+    ru_min, ru_max = _rate_range(pu, lu, hu)
+
+    def draw(ii, shape):
+        return _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
+
+    return _Rates(r_min=rt_min + ru_min, r_max=rt_max + ru_max, meas=c.meas, draw=draw,
+                  rule=lambda d: _hidden_rate(rng, d, c.ref_depth, *ref_rates))
+
+
+def _candidates(c: _Cells, rates: _Rates):
+    """The cells that could be the zone's minimum in some draw (module notes), and whether
+    some cell is below MRT in every draw (the life to MRT is then 0)."""
+    unc = c.unc
+    t_lo, t_hi = _thickness_range(c, rates.r_min, rates.r_max)
     with np.errstate(divide="ignore", invalid="ignore"):
-        pess = np.where(unc, _life(t_lo - mrt_a, r_max), np.inf)
-        opt = np.where(unc, _life(t_hi - mrt_a, r_min), np.inf)
-        pess0 = np.where(unc, _life(t_lo, r_max), np.inf)
-        opt0 = np.where(unc, _life(t_hi, r_min), np.inf)
+        pess = np.where(unc, _life(t_lo - c.mrt, rates.r_max), np.inf)
+        opt = np.where(unc, _life(t_hi - c.mrt, rates.r_min), np.inf)
+        pess0 = np.where(unc, _life(t_lo, rates.r_max), np.inf)
+        opt0 = np.where(unc, _life(t_hi, rates.r_min), np.inf)
     # cell i can be the minimum only if its shortest possible life is not above the
     # longest possible life of the cell that is surely shortest
-    below = bool(opt.size) and opt.min() <= 0  # some cell is below MRT in every draw: life 0
+    below = bool(opt.size) and opt.min() <= 0
     keep = unc & (pess <= (opt.min() if opt.size else np.inf)) & (not below)
     keep |= unc & (pess0 <= (opt0.min() if opt0.size else np.inf))  # the leak's candidates too
     idx = np.flatnonzero(keep)
-    life_mrt = np.full(n_draws, 0.0 if below else np.inf)
-    life_leak = np.full(n_draws, np.inf)
-    for c0 in range(0, idx.size, 256):  # bands of cells: bounded memory
-        ii = idx[c0:c0 + 256]
+    # most dangerous first: by the shortest possible life to MRT (to a leak when every draw
+    # is already below MRT)
+    idx = idx[np.argsort(pess0[idx] if below else pess[idx], kind="stable")]
+    return _Candidates(idx=idx, pess=pess[idx], pess0=pess0[idx], below=below)
+
+
+@dataclass(frozen=True)
+class _Candidates:
+    """Cells that could be the zone's minimum, most dangerous first (``idx``), their
+    shortest possible lives to MRT and to a leak (``pess``, ``pess0``) [y], and whether
+    some cell is below MRT in every draw (``below``)."""
+
+    idx: np.ndarray
+    pess: np.ndarray
+    pess0: np.ndarray
+    below: bool
+
+
+def _seen_lives(c: _Cells, rates: _Rates, cand: _Candidates, life_mrt, life_leak, *, h_mrt, h_leak, rng,
+                band=256, stop_early=True):
+    """Draws of the shortest life to MRT and to a leak over ``life_mrt``, ``life_leak`` (the
+    parts drawn before) and the candidate cells, ``band`` cells at a time, most dangerous
+    first; and the number of cells drawn.  With ``stop_early`` the bands stop once no cell
+    left can lower any draw's minimum, the unscanned part's draws ``h_mrt``, ``h_leak``
+    included: its shortest possible life exceeds the longest of the draws' minima (exact:
+    the same draws as going on to the last cell, since nothing is drawn after this)."""
+    idx = cand.idx
+    rest0 = np.minimum.accumulate(cand.pess0[::-1])[::-1]  # least pess0 of the cells from k on
+    n_draws = life_mrt.size
+    bound_mrt, bound_leak = (life_mrt, life_leak) if h_mrt is None else (np.minimum(life_mrt, h_mrt),
+                                                                         np.minimum(life_leak, h_leak))
+    c0 = 0
+    while c0 < idx.size:
+        if stop_early and _cannot_lower(cand, c0, rest0, np.minimum(bound_mrt, life_mrt).max(),
+                                        np.minimum(bound_leak, life_leak).max()):
+            break
+        ii = idx[c0:c0 + band]
         shape = (n_draws, ii.size)
-        tk = t[ii] + sig[ii] * np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
-        if shrink:
-            sub = tuple(x[ii] for x in par)
-            rk = _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
-                                 rng.random(shape), own=_own(sub))
-        else:
-            rk = _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
-        a_ii = np.flatnonzero(~meas[ii])
+        zk = np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
+        rk = rates.draw(ii, shape)
+        a_ii = np.flatnonzero(~rates.meas[ii])
         if a_ii.size:
-            d_a = np.broadcast_to(nominal - t[ii][a_ii], (n_draws, a_ii.size)).ravel()
-            rk[:, a_ii] = rate_rule(d_a).reshape(n_draws, a_ii.size)
+            d_a = np.broadcast_to(c.nominal - c.t[ii][a_ii], (n_draws, a_ii.size)).ravel()
+            rk[:, a_ii] = rates.rule(d_a).reshape(n_draws, a_ii.size)
+        tk = _thickness_mean(c, ii, rk) + c.sig_post[ii] * zk
         with np.errstate(divide="ignore", invalid="ignore"):
-            life_mrt = np.minimum(life_mrt, _life(tk - mrt_a[ii], rk).min(axis=1))
+            life_mrt = np.minimum(life_mrt, _life(tk - c.mrt[ii], rk).min(axis=1))
             life_leak = np.minimum(life_leak, _life(tk, rk).min(axis=1))
-    m_h = float(np.min(mrt_a)) if mrt_a.size else float(np.min(mrt))
-    if cens.any():
-        # the below-threshold part: its deepest loss is at most the threshold; taken at the
-        # threshold, growing at the rate of a measured cell of similar depth
-        r_c = rate_rule(np.full(n_draws, thr))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            life_mrt = np.minimum(life_mrt, _life(nominal - thr - m_h, r_c))
-            life_leak = np.minimum(life_leak, _life(nominal - thr, r_c))
-    notes = []
-    p_hidden = 0.0
-    T = float(hidden_T)
-    if hidden_fit is not None and T > 0:
-        d = _hidden_depth(hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
-        r_h = rate_rule(d)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            h_mrt = _life(nominal - d - m_h, r_h)
-            h_leak = _life(nominal - d, r_h)
-        p_hidden = float(np.mean(h_mrt < life_mrt))
-        life_mrt = np.minimum(life_mrt, h_mrt)
-        life_leak = np.minimum(life_leak, h_leak)
-    elif T > 0:
-        notes.append("unscanned part not modelled (no extreme-value fit)")
-    return LifeDistribution(life_mrt, life_leak, n_cells=int(n), n_kept=int(idx.size), hidden_T=T,
-                            p_hidden_governs=p_hidden, notes=tuple(notes))
+        c0 += ii.size
+    return life_mrt, life_leak, int(min(c0, idx.size))
+
+
+def _cannot_lower(cand: _Candidates, k, rest0, top_mrt, top_leak) -> bool:
+    """True when none of the candidates from ``k`` on can lower any draw: each one's
+    shortest possible life exceeds ``top_mrt`` (the longest of the draws' minima; or every
+    draw is below MRT already) and its shortest possible life to a leak ``top_leak``."""
+    mrt_done = cand.below or cand.pess[k:].min() > top_mrt
+    return bool(mrt_done and rest0[k] > top_leak)
+
+
+def _thickness_mean(c: _Cells, ii, rate):
+    """Mean of a cell's present thickness given its total rate: the newer reading, and
+    where the older reading counts, the two combined by their sigmas, the older projected
+    forward at the rate (module notes)."""
+    t = c.t[ii]
+    old = c.old[ii]
+    if not np.isfinite(old).any():
+        return np.broadcast_to(t, np.shape(rate))
+    w = c.w_new[ii]
+    return np.where(np.isfinite(old), w * t + (1.0 - w) * (old - rate * c.dt), t)
+
+
+def _thickness_range(c: _Cells, r_min, r_max):
+    """Smallest and largest thickness a draw can give each cell, over its rate range."""
+    every = slice(None)
+    lo = _thickness_mean(c, every, r_max) - TRUNC_SD * c.sig_post
+    hi = _thickness_mean(c, every, r_min) + TRUNC_SD * c.sig_post
+    return lo, hi
+
+
+def _censored_lives(c: _Cells, rates: _Rates, n_draws, mrt):
+    """The below-threshold part: its deepest loss is at most the threshold; taken at the
+    threshold, growing at the rate of a measured cell of similar depth."""
+    return _part_lives(np.full(n_draws, c.nominal - c.threshold), mrt, rates.rule(np.full(n_draws, c.threshold)))
+
+
+def _part_lives(thickness, mrt, rate):
+    """Lives to MRT and to zero thickness of a part of thickness ``thickness`` [mm] at
+    ``rate`` [mm/y]."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return _life(thickness - mrt, rate), _life(thickness, rate)
 
 
 def _life(margin, rate):
@@ -678,7 +847,7 @@ def _hidden_rate_post(rng, d, depth_meas, par, prior):
 
 
 def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,
-                       n_draws=2000, seed=0, shrink=True) -> dict:
+                       n_draws=2000, seed=0, shrink=True, both_readings=True, sigma_old_extra=0.0) -> dict:
     """:func:`zone_life_distribution` for every zone of a floor.
 
     Parameters
@@ -711,6 +880,8 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     """
     out = {}
     sig_map = np.ndim(sigma_t) > 0
+    old_map = _older_readings(thickness, rates) if both_readings else None
+    s_old = float(np.hypot(rates.sigma_old, sigma_old_extra)) if old_map is not None else None
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
@@ -732,8 +903,24 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
             rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel], mrt_map[sel],
             sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens, measured=meas,
             threshold=rates.threshold, hidden_fit=fit, hidden_T=T, n_draws=n_draws, seed=seed + k,
-            shrink=shrink)
+            shrink=shrink, older=None if old_map is None else old_map[sel], sigma_old=s_old,
+            dt_years=rates.dt_years if old_map is not None else None)
     return out
+
+
+def _older_readings(thickness, rates):
+    """The older scan's reading on the newer grid where it is a reading of the same metal:
+    both scans report a loss (not censored now, not crossed below the older threshold),
+    no repair seen or recorded; NaN elsewhere.  None without an older scan. [mm]"""
+    g = getattr(rates, "growth", None)
+    if g is None or not np.isfinite(rates.dt_years or np.nan) or not np.isfinite(g).any():
+        return None
+    ok = np.isfinite(g) & ~np.asarray(rates.crossed, bool) & ~np.asarray(rates.repaired, bool)
+    if rates.censored is not None:
+        ok &= ~rates.censored
+    if rates.repair_record is not None:
+        ok &= ~np.asarray(rates.repair_record, bool)
+    return np.where(ok, thickness + g, np.nan)
 
 
 def plot_life_curve(dist: LifeDistribution, *, years=None, due_y=None, ax=None, label=None):
@@ -781,4 +968,6 @@ def repaired_rates(lr, repaired_maps: dict):
         for b in ("lo", "hi"):
             kw[f"rate_{side}_{b}"] = np.where(cov, r, getattr(lr, f"rate_{side}_{b}"))
     cens = None if lr.censored is None else lr.censored & ~cov
-    return dataclasses.replace(lr, censored=cens, **kw)
+    # a patch is new metal: the older scan's reading there is of the plate it covers
+    growth = None if lr.growth is None else np.where(cov, np.nan, lr.growth)
+    return dataclasses.replace(lr, censored=cens, growth=growth, **kw)

@@ -166,12 +166,131 @@ def test_plot_returns_figure():
     plt.close(fig)
 
 
+def _mixed_zone():
+    rng = np.random.default_rng(11)
+    n = 400
+    t = 3.2 + 3.0 * rng.random(n)
+    r = 0.05 + 0.15 * rng.random(n)
+    meas, cens = np.arange(n) % 37 != 0, np.arange(n) % 11 == 0
+    fit = GumbelFit(loc=2.0, scale=0.3, method="mle", loglik=0.0, n=30)
+    return (t, r, 0.5 * r, r - 0.02, r + 0.04, 0.4 * r, 0.6 * r, 2.54), dict(
+        sigma_t=0.1, nominal=6.35, censored=cens, threshold=1.0, measured=meas, hidden_fit=fit, hidden_T=20.0)
+
+
+def test_same_distribution_as_the_single_function():
+    # Values of the module as one 189-line function (commit 1e22d63), 8000 draws, seed 5.
+    # Split into parts it gave the same numbers draw for draw; the cells are now drawn most
+    # dangerous first and the unscanned part before them (so the bands can stop early), which
+    # reorders the random numbers: the same law within Monte Carlo error (quantiles of 8000
+    # draws: about 1 %).
+    args, kw = _mixed_zone()
+    want = {True: ([0.0, 2.1067757702, 2.4637757298], 11.0658457743, 0.182375),
+            False: ([0.0544770394, 2.0391095844, 2.3957036206], 10.1010076525, 0.161625)}
+    for shrink, (q, leak_mean, p_hidden) in want.items():
+        d = zone_life_distribution(*args, seed=5, shrink=shrink, n_draws=8000, **kw)
+        assert np.allclose(d.quantiles()[1:], q[1:], rtol=0.015)
+        assert d.quantiles()[0] <= 0.1
+        assert float(np.mean(d.life_leak)) == pytest.approx(leak_mean, rel=0.01)
+        assert d.p_hidden_governs == pytest.approx(p_hidden, abs=0.015)
+
+
+def test_early_stop_changes_no_draw(monkeypatch):
+    # The seen part's bands stop once no cell left can lower any draw: the same draws as
+    # going on through every candidate.
+    import functools
+
+    import scananalyse.probability as P
+    args, kw = _mixed_zone()
+    seen = P._seen_lives
+    for shrink in (True, False):
+        out = {}
+        for stop in (True, False):  # bands of 16 cells (the default 256 takes these 210 in one)
+            with monkeypatch.context() as m:
+                m.setattr(P, "_seen_lives", functools.partial(seen, stop_early=stop, band=16))
+                out[stop] = zone_life_distribution(*args, seed=6, shrink=shrink, n_draws=500, **kw)
+        fast, full = out[True], out[False]
+        assert fast.n_kept < full.n_kept
+        assert np.array_equal(fast.life_mrt, full.life_mrt) and np.array_equal(fast.life_leak, full.life_leak)
+        assert fast.p_hidden_governs == full.p_hidden_governs
+
+
+def test_thickness_given_rate_from_both_readings_matches_normal():
+    # Exact reference: one cell, rate known (zero-width interval), newer reading y1 = 3.9 and
+    # older y0 = 5.3, dt = 10 y, both sd 0.1: given r = 0.15 the present thickness is
+    # N((y1 + y0 - r dt)/2, 0.1^2/2) = N(3.85, 0.0707^2), so P(L <= h) = Phi((MRT + r h - 3.85)/0.0707).
+    from scipy.stats import norm
+    d = zone_life_distribution(np.r_[3.9], np.r_[0.15], np.r_[0.0], np.r_[0.15], np.r_[0.15], np.r_[0.0],
+                               np.r_[0.0], 2.54, sigma_t=0.1, nominal=6.35, older=np.r_[5.3], sigma_old=0.1,
+                               dt_years=10.0, n_draws=20000, seed=9)
+    for h in (8.0, 8.73, 9.5):
+        assert d.p_mrt(h) == pytest.approx(norm.cdf((2.54 + 0.15 * h - 3.85) / (0.1 / np.sqrt(2))), abs=0.01)
+    # without the older reading: the newer reading alone, sd 0.1
+    d1 = zone_life_distribution(np.r_[3.9], np.r_[0.15], np.r_[0.0], np.r_[0.15], np.r_[0.15], np.r_[0.0],
+                                np.r_[0.0], 2.54, sigma_t=0.1, nominal=6.35, n_draws=20000, seed=9)
+    assert d1.p_mrt(9.0) == pytest.approx(norm.cdf((2.54 + 0.15 * 9.0 - 3.9) / 0.1), abs=0.01)
+
+
+def test_both_readings_reduce_the_thinnest_readings_bias_and_stay_conservative():
+    # 300 cells, all truly thinning at 0.15 mm/y (a zone rate distribution with a sharp top,
+    # as on the synthetic floors), true thickness uniform in 3-5 mm, read now and 10 y earlier
+    # with sd 0.1.  The thinnest reading is low by its noise (chosen for it) and its
+    # short-term rate high by the same noise.  Drawn from the newer reading alone, the
+    # median life is about half the truth; given the (shrunk) rate, the older reading, not
+    # chosen for being low, moves it up.  The truth is never below p05 in either.
+    def quantiles(seed, both):
+        rng = np.random.default_rng(seed)
+        t_true = 3.0 + 2.0 * rng.random(300)
+        y1 = t_true + 0.1 * rng.standard_normal(300)
+        y0 = t_true + 1.5 + 0.1 * rng.standard_normal(300)
+        r = (y0 - y1) / 10.0
+        half = Z90 * np.hypot(0.1, 0.1) / 10.0
+        z = np.zeros_like(r)
+        kw = dict(older=y0, sigma_old=0.1, dt_years=10.0) if both else {}
+        d = zone_life_distribution(y1, r, z, r - half, r + half, z, z, 2.54, sigma_t=0.1, nominal=6.35, seed=seed,
+                                   n_draws=400, **kw)
+        return d.quantiles(), (t_true.min() - 2.54) / 0.15
+
+    res = {b: [quantiles(s, b) for s in range(12)] for b in (False, True)}
+    ratio = {b: np.median([q[1] / tr for q, tr in res[b]]) for b in res}
+    assert ratio[False] < 0.6 and ratio[True] > ratio[False] + 0.07
+    assert all(q[0] <= tr for b in res for q, tr in res[b])
+
+
+def test_repaired_floor_does_not_use_the_older_reading_under_a_patch():
+    # A patch is new metal: the older scan read the plate it covers, so the repaired floor's
+    # distribution must not project the older reading forward there (it would make the
+    # patch's metal look like the old plate's).
+    import dataclasses
+
+    from scananalyse.probability import repaired_rates
+
+    @dataclasses.dataclass(frozen=True)
+    class Rates:
+        rate_top: np.ndarray
+        rate_under: np.ndarray
+        rate_top_lo: np.ndarray
+        rate_top_hi: np.ndarray
+        rate_under_lo: np.ndarray
+        rate_under_hi: np.ndarray
+        censored: np.ndarray
+        growth: np.ndarray
+
+    a = np.full((2, 2), 0.1)
+    lr = Rates(a, a, a, a, a, a, np.zeros((2, 2), bool), np.full((2, 2), 1.0))
+    patched = np.array([[True, False], [False, False]])
+    rep = repaired_rates(lr, {"patched": patched, "rate_top_repaired": a * 0, "rate_under_repaired": a * 0})
+    assert np.isnan(rep.growth[0, 0]) and np.all(rep.growth[~patched] == 1.0)
+
+
 @pytest.mark.slow
 def test_calibration_fast_subset():
     # Synthetic floors with known truth (bench/bench_calibration.py, other seeds than the
     # bench's 100...): the true zone time to MRT falls inside [p05, p95] of about 90 % of
-    # the zones.  8 floors (2 per case): at most 1 miss of 8 (7 of 8 inside on these
-    # seeds; 6 of 8 before the rates were drawn from the zone's rate distribution).
+    # the zones.  8 floors (2 per case): at most 1 miss of 8 (7 of 8 inside on these seeds,
+    # before and after the thickness was drawn given the rate from both readings: the one
+    # miss, seed 21, is set by the unscanned part's wide predictive law; 6 of 8 before the
+    # rates were drawn from the zone's rate distribution), and never optimistic: no zone's
+    # truth below its p05 (none on these seeds; 0 of 48 on the bench).
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
     import bench_calibration as bc
 
@@ -182,6 +301,4 @@ def test_calibration_fast_subset():
     inside = [r["p05"] <= r["truth"] <= r["p95"] for r in rows]
     assert len(rows) >= 8
     assert np.mean(inside) >= 0.8, [(r["seed"], r["truth"], r["p05"], r["p95"]) for r in rows]
-    # not unconservative: no zone's p05 is far above its true life
-    assert all(r["p05"] <= 1.25 * r["truth"] + 0.5 for r in rows), \
-        [(r["seed"], r["truth"], r["p05"]) for r in rows]
+    assert not any(r["truth"] < r["p05"] for r in rows), [(r["seed"], r["truth"], r["p05"]) for r in rows]
