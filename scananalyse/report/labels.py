@@ -120,6 +120,14 @@ LABELS = {
     "convention": "Convention",
     "point": "Point",
     "residual_mm": "Misfit",
+    # sizing check of the scan against the prove-ups (report, Field readings)
+    "n_pairs": "Prove-ups paired with a scanned cell",
+    "bias_mm": "Mean difference of loss, scan − prove-up",
+    "scatter_mm": "Scatter of that difference (1 σ)",
+    "k": "Ratio of prove-up loss to scan loss (k)",
+    "k_se": "Standard error of k",
+    "undersized": "Scan under-sizes beyond the scatter",
+    "corrected": "Unproved loss corrected",
     # inspections and tank
     "label": "Inspection",
     "date": "Date",
