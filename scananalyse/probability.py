@@ -533,8 +533,8 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
     # can still lower a draw's minimum (the seen part stops there, exactly)
     life_mrt = np.full(n_draws, 0.0 if cand.below else np.inf)
     life_leak = np.full(n_draws, np.inf)
-    if c.cens.any():
-        h_mrt, h_leak = _censored_lives(c, rates, n_draws, float(np.min(c.mrt)))
+    if c.any_cens:
+        h_mrt, h_leak = _censored_lives(c, rates, n_draws, c.mrt_min)
         life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
     T = float(hidden_T)
     h_mrt, h_leak = _unscanned_lives(c, rates, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
@@ -555,16 +555,18 @@ def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
     if fit is None or T <= 0:
         return None, None
     d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
-    return _part_lives(c.nominal - d, float(np.min(c.mrt)), rates.rule(d))
+    return _part_lives(c.nominal - d, c.mrt_min, rates.rule(d))
 
 
 @dataclass(frozen=True)
 class _Cells:
-    """A zone's scanned cells as the Monte Carlo takes them: thickness ``t``, ``mrt``,
-    sigma ``sig`` [mm]; per-side rates and intervals ``pt, lt, ht, pu, lu, hu`` [mm/y];
-    ``cens`` (below the threshold), ``unc`` (not), ``meas`` (rate measured), ``lo_known``
-    (both sides' lower bounds finite); ``ref``: the cells of the similar-depth rule and
-    ``ref_depth`` their loss [mm]; ``n``: cells given, scanned or not."""
+    """A zone's scanned cells as the Monte Carlo takes them, one by one: thickness ``t``,
+    ``mrt``, sigma ``sig`` [mm]; per-side rates and intervals ``pt, lt, ht, pu, lu, hu``
+    [mm/y]; ``cens`` (below the threshold), ``unc`` (not), ``meas`` (rate measured),
+    ``lo_known`` (both sides' lower bounds finite); ``ref``: the cells of the similar-depth
+    rule and ``ref_depth`` their loss [mm]; ``n``: cells given, scanned or not;
+    ``any_cens``: some scanned cell is below the threshold; ``mrt_min``: the least MRT of
+    the scanned cells [mm] (:func:`_kept_cells`: which scanned cells are listed)."""
 
     t: np.ndarray
     mrt: np.ndarray
@@ -583,27 +585,44 @@ class _Cells:
     w_new: np.ndarray
     sig_post: np.ndarray
     dt: float
+    any_cens: bool
+    mrt_min: float
+
+
+def _kept_cells(scanned, cens):
+    """The scanned cells listed one by one: a below-threshold cell enters only as the
+    below-threshold part (its count and the zone's least MRT), never as a candidate nor a
+    cell of the similar-depth rule once some cell is not below the threshold, so those are
+    left out before the per-cell work; all scanned cells when every one is below it."""
+    unc = scanned & ~cens
+    return unc if unc.any() else scanned
 
 
 def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, threshold, measured, older=None,
                    sigma_old=None, dt_years=None):
-    """:class:`_Cells` of the scanned (finite-thickness) cells (none: empty arrays)."""
-    t = np.asarray(thickness, dtype=float).ravel()
-    n = t.size
-    ok = np.isfinite(t)
-    every = bool(ok.all())  # the usual case (life_distributions passes scanned cells): no copies
-    t = t if every else t[ok]
-    m = t.size
+    """:class:`_Cells` of the scanned (finite-thickness) cells that can matter one by one
+    (:func:`_kept_cells`; none: empty arrays)."""
+    t_all = np.asarray(thickness).ravel()
+    n = t_all.size
+    ok = np.isfinite(t_all)
+    thr = float(threshold) if threshold else 0.0
+    cens_all = (np.zeros(n, bool) if censored is None or not thr > 0
+                else np.broadcast_to(np.asarray(censored, bool).ravel(), (n,)))
+    take = _kept_cells(ok, cens_all)
+    take = None if take.all() else take  # the usual UT case: no copies
+    m = n if take is None else int(np.count_nonzero(take))
 
     def flat(a, dtype=float):
         if np.ndim(a) == 0:
             return np.full(m, a, dtype=dtype)
-        a = np.asarray(a, dtype=dtype).ravel()
-        return a if every else a[ok]
+        a = np.asarray(a).ravel()
+        return (a if take is None else a[take]).astype(dtype, copy=False)
+    t = flat(t_all)
     arrs = [flat(a) for a in rate_arrays]
     mrt_a, sig = flat(mrt), flat(sigma_t)
-    thr = float(threshold) if threshold else 0.0
-    cens = (np.zeros(m, bool) if censored is None else flat(censored, bool)) & (thr > 0)
+    mrt_min = float(np.min(np.asarray(mrt).ravel(), where=ok, initial=np.inf)
+                    if np.ndim(mrt) else mrt) if ok.any() else np.nan
+    cens = flat(cens_all, bool)
     unc = ~cens
     meas = np.ones(m, bool) if measured is None else flat(measured, bool)
     side_rates = (*_clean(arrs[0], arrs[2], arrs[3]), *_clean(arrs[1], arrs[4], arrs[5]))
@@ -618,7 +637,8 @@ def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, t
     return _Cells(t=t, mrt=mrt_a, sig=sig, cens=cens, unc=unc, meas=meas,
                   lo_known=np.isfinite(arrs[2]) & np.isfinite(arrs[4]), side_rates=side_rates, ref=ref,
                   ref_depth=nominal - t[ref], nominal=float(nominal), threshold=thr, n=int(n),
-                  old=np.where(use, old, np.nan), w_new=w_new, sig_post=sig_post, dt=float(dt_years or 0.0))
+                  old=np.where(use, old, np.nan), w_new=w_new, sig_post=sig_post, dt=float(dt_years or 0.0),
+                  any_cens=bool(np.any(cens_all & ok)), mrt_min=mrt_min)
 
 
 @dataclass(frozen=True)

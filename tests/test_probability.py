@@ -214,6 +214,36 @@ def test_early_stop_changes_no_draw(monkeypatch):
         assert fast.p_hidden_governs == full.p_hidden_governs
 
 
+def test_leaving_out_below_threshold_cells_changes_no_draw(monkeypatch):
+    # A below-threshold cell enters only as the below-threshold part (the count, the least
+    # MRT), so such cells are left out before the per-cell work: the draws must be the same
+    # as with every scanned cell listed.  The least MRT here is on a below-threshold cell
+    # (the scanned cells thicker, so the unscanned part, which takes it, often governs),
+    # some cells are not scanned, and one zone is wholly below the threshold.
+    import scananalyse.probability as P
+    args, kw = _mixed_zone()
+    t = args[0] + 1.5
+    t[::13] = np.nan
+    mrt = np.where(kw["censored"], 1.0, 2.54)
+    args = (t, *args[1:-1], mrt)
+    kw.update(older=t + 10.0 * (args[1] + args[2]), sigma_old=0.1, dt_years=10.0)
+    kept = P._kept_cells(np.isfinite(t), kw["censored"])
+    assert 0 < kept.sum() < np.isfinite(t).sum()
+    for shrink in (True, False):
+        for cens in (kw["censored"], np.ones(t.size, bool)):
+            out = []
+            for every in (False, True):
+                with monkeypatch.context() as m:
+                    if every:
+                        m.setattr(P, "_kept_cells", lambda scanned, cens: scanned)
+                    out.append(zone_life_distribution(*args, seed=7, shrink=shrink, n_draws=300,
+                                                      **{**kw, "censored": cens}))
+            a, b = out
+            assert np.array_equal(a.life_mrt, b.life_mrt) and np.array_equal(a.life_leak, b.life_leak)
+            assert (a.n_cells, a.n_kept, a.p_hidden_governs) == (b.n_cells, b.n_kept, b.p_hidden_governs)
+            assert a.p_hidden_governs > 0.01
+
+
 def test_thickness_given_rate_from_both_readings_matches_normal():
     # Exact reference: one cell, rate known (zero-width interval), newer reading y1 = 3.9 and
     # older y0 = 5.3, dt = 10 y, both sd 0.1: given r = 0.15 the present thickness is
