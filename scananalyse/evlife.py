@@ -34,7 +34,7 @@ from .extremes import (depth_map, fit_gev_mle, fit_gumbel_mle, fit_zone, predict
                        projected_block_maxima)
 
 __all__ = ["LIFE_LEVEL", "LIFE_HORIZON_Y", "HIDDEN_LEVELS", "EVA_COLUMNS", "HiddenPart", "masked_nanmin",
-           "seen_lives", "hidden_parts", "zone_lives", "merge_extremes", "add_eva_columns"]
+           "seen_lives", "hidden_parts", "floor_fit", "zone_lives", "merge_extremes", "add_eva_columns"]
 
 #: Probability that the deepest projected loss in the hidden part stays below the value
 #: used for the extreme-value life (predictive, parameter uncertainty included). [-]
@@ -253,9 +253,8 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
 
     def floor_fit():
         if not floor:
-            fm = zmap.labels >= 0
-            floor.append((fit_zone(depth0, fm, pitch_mm=pitch, zone_area_mm2=float(np.sum(zmap.areas_mm2)),
-                                   block_mm=block_mm, threshold=thr, seed=seed, valid=scanned), scanned & fm))
+            floor.append((_floor_fit(depth0, zmap, scanned, pitch=pitch, block_mm=block_mm, threshold=thr, seed=seed),
+                          scanned & (zmap.labels >= 0)))
         return floor[0]
 
     out = {}
@@ -291,6 +290,28 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
                 out[name] = _hidden_worst_seen(depth0, rate, worst, hidden_mm2, allowance, thr,
                                                reason=f"{reason}; floor fit: {z0.reason}")
     return out
+
+
+def _floor_fit(depth0, zmap, scanned, *, pitch, block_mm, threshold, seed):
+    return fit_zone(depth0, zmap.labels >= 0, pitch_mm=pitch, zone_area_mm2=float(np.sum(zmap.areas_mm2)),
+                    block_mm=block_mm, threshold=threshold, seed=seed, valid=scanned)
+
+
+def floor_fit(thickness, zmap, *, nominal, censored, threshold, pitch, block_mm, seed):
+    """The whole floor's fit of block-maximum loss depth, as a zone too small for a fit of
+    its own (or not scanned at all) borrows it (:func:`hidden_parts`).
+
+    Parameters are those of :func:`hidden_parts` (the floor as found).
+
+    Returns
+    -------
+    :class:`~scananalyse.extremes.ZoneExtremes`
+        Falsy when even the floor allows no fit.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ScanWarning)
+        return _floor_fit(depth_map(thickness, nominal, censored), zmap, np.isfinite(thickness), pitch=pitch,
+                          block_mm=block_mm, threshold=threshold or None, seed=seed)
 
 
 def _hidden_worst_seen(depth0, rate, cells, hidden_mm2, allowance, thr, *, reason) -> HiddenPart:

@@ -22,7 +22,7 @@ import pandas as pd
 from . import assess, attribution, rates, readings as rd, repair, zones
 from .checks import check_job_against_scans, check_repair_to
 from .errors import InputError, ScanWarning
-from .evlife import add_eva_columns, hidden_parts, merge_extremes, seen_lives, zone_lives
+from .evlife import add_eva_columns, floor_fit, hidden_parts, merge_extremes, seen_lives, zone_lives
 from .extremes import depth_statistics, rate_statistics
 from .indications import (apply_indication_rates, assumed_rate_note, flag_indications, gone_indications,
                           label_indications, match_indications, measure_indications, new_indication_rates,
@@ -183,7 +183,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
                                     have_old=old is not None, fit_kw=fit_kw)
 
     with prog.stage("probability"):
-        life_dists = _life_distributions(new.thickness, lr, zmap, mrt, ext_depth, new=new, job=job)
+        floor = _floor_extremes(new, lr, zmap, ext_depth, fit_kw)  # lent to zones with no fit of their own
+        life_dists = _life_distributions(new.thickness, lr, zmap, mrt, ext_depth, new=new, job=job, floor=floor)
         table = _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job)
 
     with prog.stage("repairs"):
@@ -194,7 +195,7 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         # hidden part as found
         maps = rep["repaired_maps"]
         dists_rep = _life_distributions(maps["thickness_repaired"], repaired_rates(lr, maps), zmap, mrt, ext_depth,
-                                        new=new, job=job)
+                                        new=new, job=job, floor=floor)
         rep["zones_repaired"] = _with_probabilities(rep["zones_repaired"], dists_rep, reading_zone_table, hidden,
                                                     new, rules, job)
 
@@ -364,10 +365,18 @@ def _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, o
     return hidden, add_eva_columns(table, ext_depth, ext_life)
 
 
-def _life_distributions(thickness, lr, zmap, mrt, ext_depth, *, new, job):
+def _life_distributions(thickness, lr, zmap, mrt, ext_depth, *, new, job, floor=None):
     """Each zone's life as a distribution (thickness noise, rate intervals, the hidden part)."""
     return life_distributions(thickness, lr, zmap, mrt, ext_depth, nominal=new.meta.nominal, sigma_t=lr.sigma_new,
-                              pitch=new.pitch, seed=job.seed)
+                              pitch=new.pitch, seed=job.seed, floor_extremes=floor)
+
+
+def _floor_extremes(new, lr, zmap, ext_depth, fit_kw):
+    """The whole floor's depth fit when some zone has none of its own (as found), else None."""
+    if all(ext_depth.get(name) for name in zmap.names):
+        return None
+    return floor_fit(new.thickness, zmap, nominal=new.meta.nominal, censored=lr.censored,
+                     threshold=new.meta.threshold, **fit_kw)
 
 
 def _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job):

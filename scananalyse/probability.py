@@ -826,10 +826,12 @@ def _hidden_depth(fit, T, n_draws, rng, n_fit=None, thr=None):
         loc, scale, shape = np.array([fit.loc]), np.array([fit.scale]), np.array([fit.shape])
     j = rng.integers(0, loc.size, n_draws)
     u = rng.random(n_draws) ** (1.0 / T)
-    y = -np.log(u)  # GEV quantile, vectorised over the parameter sets (Coles 2001, eq. 3.4)
     xi = shape[j]
     small = np.abs(xi) < 1e-9
+    # an area of far less than one block (T << 1) underflows u to 0: y = inf, a depth of
+    # -inf, clipped to 0 below (the deepest loss over almost no area is almost surely none)
     with np.errstate(divide="ignore", invalid="ignore"):
+        y = -np.log(u)  # GEV quantile, vectorised over the parameter sets (Coles 2001, eq. 3.4)
         d = loc[j] + scale[j] * np.where(small, -np.log(y), (y ** -np.where(small, 1.0, xi) - 1.0)
                                          / np.where(small, 1.0, xi))
     return np.maximum(np.asarray(d, dtype=float), 0.0)
@@ -867,7 +869,8 @@ def _hidden_rate_post(rng, d, depth_meas, par, prior):
 
 
 def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,
-                       n_draws=2000, seed=0, shrink=True, both_readings=True, sigma_old_extra=0.0) -> dict:
+                       n_draws=2000, seed=0, shrink=True, both_readings=True, sigma_old_extra=0.0,
+                       floor_extremes=None) -> dict:
     """:func:`zone_life_distribution` for every zone of a floor.
 
     Parameters
@@ -892,6 +895,10 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         Monte Carlo draws and seed. [-]
     shrink : bool
         Rates from their posteriors under each zone's rate distribution (module notes). [-]
+    floor_extremes : ZoneExtremes, optional
+        The whole floor's depth statistics (:func:`scananalyse.evlife.floor_fit`), lent to
+        a zone whose own fit failed, as its extreme-value life borrows them: without it
+        such a zone's unscanned part would be left out of its distribution. [-]
 
     Returns
     -------
@@ -907,6 +914,8 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         area = float(zmap.areas_mm2[k])
         sel = mask & np.isfinite(thickness)
         ze = extremes_depth.get(name)
+        if not ze and floor_extremes:  # borrowed, as the zone's extreme-value life does
+            ze = floor_extremes
         fit = ze.fit if ze else None
         hidden_mm2 = max(0.0, area - np.count_nonzero(sel) * pitch * pitch)
         block = ze.block_mm if (ze and np.isfinite(ze.block_mm)) else np.nan

@@ -122,6 +122,13 @@ def test_small_zones_get_extreme_values_with_smaller_blocks():
     smaller = user[user["eva_block_mm"] < 1000.0]
     assert len(smaller) >= 1
     assert np.isfinite(smaller["depth_eva_mm"]).any()
+    # zones whose own fit still fails borrow the floor's, in the extreme-value life and in
+    # the life distribution alike: their unscanned part is never left out of either
+    borrowed = [n for n in user.index if not an.extremes_depth.get(n) and z.loc[n, "hidden_area_m2"] > 0]
+    assert borrowed  # on this floor r1s1, r1s3 and r1s4
+    for n in borrowed:
+        assert z.loc[n, "eva_source"] == "floor"
+        assert an.life_dists[n].hidden_T > 0 and np.isfinite(z.loc[n, "p_mrt_at_due"])
     baseline = analyse(pair.new, pair.old, job=Job(diameter=8000.0)).zone_table.set_index("zone")
     assert baseline.loc["interior", "eva_block_mm"] == pytest.approx(1000.0)
 
@@ -276,6 +283,7 @@ def test_zone_life_distribution_columns_and_target_probability():
 def test_repaired_life_distribution_of_untouched_zones_is_as_found():
     # Zones no patch touches have the same life distribution after repair as found: the
     # same draws (their inputs are equal, the seeds per zone fixed).
+    from scananalyse.evlife import floor_fit
     from scananalyse.probability import life_distributions, repaired_rates
 
     pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
@@ -283,9 +291,12 @@ def test_repaired_life_distribution_of_untouched_zones_is_as_found():
     an = analyse(pair.new, pair.old, job=Job(diameter=4000.0, zone_rings=2, zone_sectors=4))
     rm = an.repaired_maps
     assert rm["patched"].any()
+    # the floor's fit, lent to zones with none of their own (as the pipeline does)
+    floor = floor_fit(an.new.thickness, an.zones, nominal=an.new.meta.nominal, censored=an.rates.censored,
+                      threshold=an.new.meta.threshold, pitch=an.new.pitch, block_mm=an.job.block_mm, seed=an.job.seed)
     again = life_distributions(rm["thickness_repaired"], repaired_rates(an.rates, rm), an.zones, an.mrt_map,
                                an.extremes_depth, nominal=an.new.meta.nominal, sigma_t=an.rates.sigma_new,
-                               pitch=an.new.pitch, seed=an.job.seed)
+                               pitch=an.new.pitch, seed=an.job.seed, floor_extremes=floor)
     n_same = 0
     for k, name in enumerate(an.zones.names):
         if an.life_dists[name].ok and not rm["patched"][an.zones.labels == k].any():
