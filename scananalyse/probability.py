@@ -317,34 +317,49 @@ def _npmle(lik, counts, n_iter):
     return w
 
 
-def _groups(*keys):
-    """First index and count of each distinct row of the integer ``keys``, and each row's
-    group."""
-    key = np.zeros(keys[0].shape, np.int64)
-    for k in keys:
-        key = key * (1 << 21) + np.clip(k, 0, (1 << 21) - 1)
-    _, first, inverse, counts = np.unique(key, return_index=True, return_inverse=True, return_counts=True)
-    return first, counts, inverse.ravel()
+def _groups(key):
+    """First index and count of each distinct value of the integer ``key``, and each
+    value's group; the groups in ascending order of the key (as :func:`numpy.unique`).  A
+    hash table (:func:`pandas.factorize`) groups the cells, then only the few distinct keys
+    are sorted: far cheaper than sorting a million keys."""
+    import pandas as pd
+
+    codes, uniq = pd.factorize(key)  # codes numbered in order of first appearance
+    order = np.argsort(uniq)
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    inverse = rank[codes]
+    top = np.maximum.accumulate(codes)
+    first = np.concatenate(([0], 1 + np.flatnonzero(top[1:] > top[:-1])))[:order.size]  # code j first at first[j]
+    return first[order], np.bincount(inverse, minlength=order.size), inverse
+
+
+def _lik_key(par, q):
+    """One integer per cell, equal for total-rate likelihoods equal to ``q``."""
+    point, sd_lo, sd_hi, flat, a, b = par
+    key = np.zeros(point.shape, np.int64)
+    for k in (np.rint(np.where(flat, a, point) / q), np.rint(np.where(flat, b, sd_lo) / q),
+              np.where(flat, 0, np.rint(sd_hi / q) + 1)):
+        key = key * (1 << 21) + np.clip(k.astype(np.int64), 0, (1 << 21) - 1)
+    return key
 
 
 def _lik_groups(par, q):
     """:func:`_groups` of total-rate likelihoods equal to ``q``."""
-    point, sd_lo, sd_hi, flat, a, b = par
-    return _groups(np.rint(np.where(flat, a, point) / q).astype(np.int64),
-                   np.rint(np.where(flat, b, sd_lo) / q).astype(np.int64),
-                   np.where(flat, 0, np.rint(sd_hi / q) + 1).astype(np.int64))
+    return _groups(_lik_key(par, q))
 
 
-def _post_range(prior, par, eps=1e-9, pad=3):
+def _post_range(prior, par, eps=1e-9, pad=3, groups=None):
     """Smallest and largest rate each cell's posterior draws can take: its grid rates with
     posterior mass above ``eps`` × the cell's largest, widened by ``pad`` grid steps (the
     cells share the likelihood of their group to half a step), within [a, b].  The draws
-    are clipped to this range, so the pruning with it is exact."""
+    are clipped to this range, so the pruning with it is exact.  ``groups``: the cells'
+    :func:`_lik_groups` at half the prior's step, when already made."""
     a, b = par[4], par[5]
     if a.size == 0:
         return a.copy(), b.copy()
     h = prior.step
-    first, _, inv = _lik_groups(par, 0.5 * h)
+    first, _, inv = _lik_groups(par, 0.5 * h) if groups is None else groups
     post = prior.posterior(_lik(prior.grid, h, *(x[first] for x in par)), _own(par, first))
     m = post > eps * post.max(axis=1, keepdims=True)
     K = prior.grid.size
@@ -356,20 +371,27 @@ def _post_range(prior, par, eps=1e-9, pad=3):
     return np.where(bad, a, lo), np.where(bad, b, hi)
 
 
-def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=None) -> "GridPrior":
+def _rate_grid(b, top=None, n_grid=200):
+    """The support of a zone's rate distribution: 0 ... ``top`` (default the largest rate
+    any of the cells allows, the ``b`` of :func:`_total_rate`), ``n_grid`` points."""
+    top = max(float(np.max(b)) if b.size else 0.0, 1e-3) if top is None else max(float(top), 1e-3)
+    return np.linspace(0.0, top, n_grid)
+
+
+def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=None, groups=None) -> "GridPrior":
     """:func:`fit_rate_prior` on the total-rate likelihoods ``par`` of :func:`_total_rate`
-    (grid 0 ... ``top``, default the largest rate any of the cells allows)."""
+    (grid :func:`_rate_grid`); ``groups``: their :func:`_lik_groups` at half its step,
+    when already made."""
     point, sd_lo, sd_hi, flat, a, b = par
     n = point.size
     min_cells = MIN_PRIOR_CELLS if min_cells is None else min_cells
-    top = max(float(np.max(b)) if n else 0.0, 1e-3) if top is None else max(float(top), 1e-3)
-    grid = np.linspace(0.0, top, n_grid)
+    grid = _rate_grid(b, top, n_grid)
     if n < min_cells:  # too few cells to estimate a distribution: the likelihood alone
         return GridPrior(grid, np.full(n_grid, 1.0 / n_grid), int(n), 0)
     h = grid[1] - grid[0]
     q = 0.5 * h
     # identical likelihoods (to half a grid step) are one group with a count
-    first, counts, _ = _lik_groups(par, q)
+    first, counts, _ = _lik_groups(par, q) if groups is None else groups
     lik = _lik(grid, h, point[first], sd_lo[first], sd_hi[first], flat[first], a[first], b[first])
     w = _npmle(lik, counts, n_iter)
     if smooth is None:
@@ -660,13 +682,22 @@ def _shrunk_rates(c: _Cells, rng, rate_prior) -> _Rates:
     uniform between them; with no measured lower bound, the similar-depth rule."""
     unc = c.unc
     par = _total_rate(*c.side_rates, assumed=~c.meas)
-    ref_par = tuple(x[c.ref] for x in par)
-    prior = rate_prior if rate_prior is not None else _fit_prior(
-        ref_par, top=float(np.max(par[5][unc])) if unc.any() else None)
+
+    def only(mask):
+        return par if mask.all() else tuple(x[mask] for x in par)
+
+    ref_par, unc_par = only(c.ref), only(unc)
+    top = float(np.max(unc_par[5])) if unc.any() else None
+    groups = ref_groups = None
+    if rate_prior is None and unc.any():  # the likelihoods grouped once, for the prior and the ranges
+        key = _lik_key(unc_par, 0.5 * np.diff(_rate_grid(ref_par[5], top)[:2])[0])
+        groups = _groups(key)
+        ref_groups = groups if np.array_equal(c.ref, unc) else _groups(key[c.ref[unc]])  # ref: within unc
+    prior = rate_prior if rate_prior is not None else _fit_prior(ref_par, top=top, groups=ref_groups)
     meas = c.meas | c.lo_known
     r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
     if unc.any():
-        r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
+        r_lo[unc], r_hi[unc] = _post_range(prior, unc_par, groups=groups)
 
     def draw(ii, shape):
         sub = tuple(x[ii] for x in par)
