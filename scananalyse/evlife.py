@@ -197,7 +197,7 @@ class HiddenPart:
 
 
 def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censored, threshold, pitch, block_mm,
-                 seed, methods: dict | None = None, older=None) -> dict:
+                 seed, methods: dict | None = None, older=None, floor=None) -> dict:
     r"""The hidden part of each zone (:class:`HiddenPart`), from the floor as found.
 
     Parameters
@@ -217,6 +217,9 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
         (:func:`~scananalyse.extremes.depth_statistics`), reused when given.
     older : (t_old_on_new, dt_years), optional
         As :func:`seen_lives`: cells the older scan saw are not hidden.
+    floor : ZoneExtremes, optional
+        The whole floor's fit (:func:`floor_fit` of the same floor), when already made;
+        otherwise it is made here if a zone needs it.
 
     Returns
     -------
@@ -249,13 +252,13 @@ def hidden_parts(thickness, rate_top, rate_under, mrt, zmap, *, nominal, censore
     rate = _summed_rate(rate_top, rate_under)
     thr = threshold or None
     kw = dict(pitch=pitch, block_mm=block_mm, seed=seed, threshold=thr)
-    floor = []  # the whole floor's fit, made once if a zone needs to borrow it
+    lent = [] if floor is None else [(floor, scanned & (zmap.labels >= 0))]  # made once if a zone borrows it
 
     def floor_fit():
-        if not floor:
-            floor.append((_floor_fit(depth0, zmap, scanned, pitch=pitch, block_mm=block_mm, threshold=thr, seed=seed),
-                          scanned & (zmap.labels >= 0)))
-        return floor[0]
+        if not lent:
+            lent.append((_floor_fit(depth0, zmap, scanned, pitch=pitch, block_mm=block_mm, threshold=thr, seed=seed),
+                         scanned & (zmap.labels >= 0)))
+        return lent[0]
 
     out = {}
     for k, name in enumerate(zmap.names):

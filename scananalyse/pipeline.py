@@ -179,11 +179,11 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         life = assess.local_life_map(new.thickness, lr.rate_top, lr.rate_under, mrt)
         ext_rate = rate_statistics(lr.rate_top, lr.rate_under, zmap, **fit_kw)
         older = (old_on_new.thickness, lr.dt_years) if old_on_new is not None else None
+        floor = _floor_extremes(new, lr, zmap, ext_depth, fit_kw)  # lent to zones with no fit of their own
         hidden, table = _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, older,
-                                    have_old=old is not None, fit_kw=fit_kw)
+                                    have_old=old is not None, fit_kw=fit_kw, floor=floor)
 
     with prog.stage("probability"):
-        floor = _floor_extremes(new, lr, zmap, ext_depth, fit_kw)  # lent to zones with no fit of their own
         life_dists = _life_distributions(new.thickness, lr, zmap, mrt, ext_depth, new=new, job=job, floor=floor)
         table = _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job)
 
@@ -349,12 +349,14 @@ def _prove_up(readings_new, new, ind, labels):
     return rd.prove_up_candidates(listed, pairs_lab)
 
 
-def _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, older, *, have_old, fit_kw):
+def _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, older, *, have_old, fit_kw,
+                floor=None):
     """The per-zone assessment table with its extreme-value columns, and the part of each
-    zone nobody scanned as found (``hidden``: kept as it is after any repair)."""
+    zone nobody scanned as found (``hidden``: kept as it is after any repair); ``floor``:
+    the whole floor's fit, made once for this and the life distributions."""
     hidden = hidden_parts(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
                           censored=lr.censored, threshold=new.meta.threshold, methods=ext_depth, older=older,
-                          **fit_kw)
+                          floor=floor, **fit_kw)
     seen = seen_lives(new.thickness, lr.rate_top, lr.rate_under, mrt, zmap, nominal=new.meta.nominal,
                       censored=lr.censored, older=older)
     ext_life = zone_lives(seen, hidden)

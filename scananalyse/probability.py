@@ -634,20 +634,23 @@ def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, t
     take = None if take.all() else take  # the usual UT case: no copies
     m = n if take is None else int(np.count_nonzero(take))
 
-    def flat(a, dtype=float):
+    def flat(a, dtype=float):  # dtype None: the array's own
         if np.ndim(a) == 0:
             return np.full(m, a, dtype=dtype)
         a = np.asarray(a).ravel()
-        return (a if take is None else a[take]).astype(dtype, copy=False)
+        a = a if take is None else a[take]
+        return a if dtype is None else a.astype(dtype, copy=False)
     t = flat(t_all)
-    arrs = [flat(a) for a in rate_arrays]
+    raw = [flat(a, None) for a in rate_arrays]
     mrt_a, sig = flat(mrt), flat(sigma_t)
     mrt_min = float(np.min(np.asarray(mrt).ravel(), where=ok, initial=np.inf)
                     if np.ndim(mrt) else mrt) if ok.any() else np.nan
     cens = flat(cens_all, bool)
     unc = ~cens
     meas = np.ones(m, bool) if measured is None else flat(measured, bool)
-    side_rates = (*_clean(arrs[0], arrs[2], arrs[3]), *_clean(arrs[1], arrs[4], arrs[5]))
+    # cleaned in the maps' own precision (it only compares and selects: exact), then float64
+    side_rates = tuple(x.astype(float, copy=False) for x in (*_clean(raw[0], raw[2], raw[3]),
+                                                             *_clean(raw[1], raw[4], raw[5])))
     # reference cells of the similar-depth rate rule: the measured, uncensored cells
     ref = unc & meas
     ref = ref if ref.any() else (unc if unc.any() else np.ones_like(unc))
@@ -657,7 +660,7 @@ def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, t
     w_new = np.where(use, s_old2 / np.maximum(s_old2 + sig * sig, 1e-30), 1.0)
     sig_post = np.where(use, np.sqrt(w_new) * sig, sig)
     return _Cells(t=t, mrt=mrt_a, sig=sig, cens=cens, unc=unc, meas=meas,
-                  lo_known=np.isfinite(arrs[2]) & np.isfinite(arrs[4]), side_rates=side_rates, ref=ref,
+                  lo_known=np.isfinite(raw[2]) & np.isfinite(raw[4]), side_rates=side_rates, ref=ref,
                   ref_depth=nominal - t[ref], nominal=float(nominal), threshold=thr, n=int(n),
                   old=np.where(use, old, np.nan), w_new=w_new, sig_post=sig_post, dt=float(dt_years or 0.0),
                   any_cens=bool(np.any(cens_all & ok)), mrt_min=mrt_min)

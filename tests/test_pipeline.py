@@ -303,3 +303,22 @@ def test_repaired_life_distribution_of_untouched_zones_is_as_found():
             np.testing.assert_array_equal(again[name].life_mrt, an.life_dists[name].life_mrt)
             n_same += 1
     assert n_same >= 1
+
+
+def test_floor_fit_made_once(monkeypatch):
+    # the whole floor's depth fit, lent to a zone with none of its own (here the unscanned
+    # critical zone), is made once for the hidden parts and the life distributions
+    from scananalyse import evlife
+
+    made = []
+    real = evlife._floor_fit
+
+    def counted(*a, **kw):
+        made.append(1)
+        return real(*a, **kw)
+
+    monkeypatch.setattr(evlife, "_floor_fit", counted)
+    pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=3, max_pit_rate=0.15, method="UT")
+    an = analyse(pair.new, pair.old, job=Job(diameter=5000.0))
+    assert an.hidden["critical"].source == "floor" and an.life_dists["interior"].ok
+    assert len(made) == 1

@@ -332,3 +332,36 @@ def test_calibration_fast_subset():
     assert len(rows) >= 8
     assert np.mean(inside) >= 0.8, [(r["seed"], r["truth"], r["p05"], r["p95"]) for r in rows]
     assert not any(r["truth"] < r["p05"] for r in rows), [(r["seed"], r["truth"], r["p05"]) for r in rows]
+
+
+def test_groups_as_numpy_unique():
+    # the hash-table grouping gives exactly numpy.unique's first indices, counts and inverse
+    from scananalyse.probability import _groups
+
+    rng = np.random.default_rng(4)
+    for key in (rng.integers(0, 50, 20000) * (1 << 42) + rng.integers(0, 7, 20000), np.array([3] * 5),
+                np.array([9]), rng.permutation(1000), np.zeros(0, np.int64)):
+        key = np.asarray(key, np.int64)
+        _, first, inverse, counts = np.unique(key, return_index=True, return_inverse=True, return_counts=True)
+        got = _groups(key)
+        for a, b in zip(got, (first, counts, inverse.ravel())):
+            np.testing.assert_array_equal(a, b)
+
+
+def test_grouping_made_once_gives_the_same_prior_and_ranges():
+    # the likelihood groups made once (for the prior and the posterior ranges) are those each
+    # would make: the same prior weights and the same ranges
+    from scananalyse.probability import _fit_prior, _lik_groups, _post_range, _rate_grid, _total_rate
+
+    rng = np.random.default_rng(8)
+    n = 3000
+    r = rng.gamma(2.0, 0.03, n)
+    half = rng.choice([0.02, 0.05, 0.1], n)
+    z = np.zeros(n)
+    par = _total_rate(r, r - half, r + half, z, z, z, assumed=rng.random(n) < 0.05)
+    top = float(np.max(par[5]))
+    groups = _lik_groups(par, 0.5 * np.diff(_rate_grid(par[5], top)[:2])[0])
+    alone, shared = _fit_prior(par, top=top), _fit_prior(par, top=top, groups=groups)
+    np.testing.assert_array_equal(alone.weights, shared.weights)
+    for a, b in zip(_post_range(alone, par), _post_range(shared, par, groups=groups)):
+        np.testing.assert_array_equal(a, b)
