@@ -854,7 +854,7 @@ def _hidden_depth(fit, T, n_draws, rng, n_fit=None, thr=None):
 
     n_fit = int(n_fit or fit.n)
     thr = fit.threshold if thr is None else thr
-    n_boot = n_draws if fit.distribution == "gumbel" else min(n_draws, 100)  # GEV refits are not vectorised
+    n_boot = n_draws if fit.distribution == "gumbel" else min(n_draws, 100)  # GEV refits cost more
     loc, scale, shape, _ = _bootstrap_params(fit, n_fit, thr, n_boot=n_boot, seed=int(rng.integers(2**31)))
     if loc.size == 0:  # every refit failed: the fit itself (parameter uncertainty not carried)
         loc, scale, shape = np.array([fit.loc]), np.array([fit.scale]), np.array([fit.shape])
