@@ -171,6 +171,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="recompute tanks whose results exist")
     p.add_argument("--timeout", type=_number(float, 0, lo_open=True, what="a positive number"), default=None,
                    help="give up on tanks without a result after this many seconds of the whole run")
+    _add_display_units(p, "on fleet.html (each tank's report keeps its job's units)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     return parser
 
@@ -350,7 +351,7 @@ def _cmd_fleet(args) -> int:
     from .fleet import run_fleet
 
     res = run_fleet(args.manifest, out_dir=args.out, workers=args.workers, scheduler=args.scheduler,
-                    force=args.force, quiet=args.quiet, timeout_s=args.timeout)
+                    force=args.force, quiet=args.quiet, timeout_s=args.timeout, units=args.units)
     print(res["summary"])
     return 0
 
