@@ -116,6 +116,12 @@ def test_compare_with_readings_fills_the_critical_zone(tmp_path, capsys):
     # the repaired table carries the same readings-only row (no repair reaches those points)
     rep = pd.read_csv(out_dir / "zones_repaired.csv").set_index("zone")
     assert rep.loc["critical", "interval_recommended_y"] == pytest.approx(expected)
+    # its life distribution: the zone's whole area from the floor's law at the floor's
+    # rates, and the spots; the truth (already below MRT) is at or above p05, and the
+    # repaired floor's figures for it are the same draws (no repair touched that metal)
+    assert crit["life_p05_y"] == 0.0 and crit["p_mrt_at_due"] > 0.5
+    for col in ("life_p05_y", "life_p50_y", "life_p95_y", "p_mrt_at_due", "p_leak_at_due"):
+        assert rep.loc["critical", col] == pytest.approx(crit[col], nan_ok=False), col
 
     # the prove-up governs at its cell, and its indication is no longer on the prove-up list
     with h5py.File(out_dir / "results.h5", "r") as f:

@@ -187,8 +187,12 @@ FLAGS_EXPLAINED = {
     # spot readings
     "readings-only": "No cell of the zone was scanned; its thinnest value, code interval and co-located life come "
                      "from spot readings (hand UT, pit gauge) alone.",
-    "points-only": "The readings are points: the floor between them is unseen; the recommended interval is the least "
-                   "of the readings' code interval, their co-located life and the cap, without an extreme-value life.",
+    "points-only": "The readings are points: the floor between them is unseen and is judged with the whole floor's "
+                   "extreme-value law over the zone's area; the recommended interval is the least of the readings' "
+                   "code interval, their co-located life, that extreme-value life and the cap.",
+    "readings-govern": "Spot readings where the scan has no value are thinner, or their metal shorter-lived, than "
+                       "anything the scan read in the zone: they lowered its thinnest value, code interval or "
+                       "co-located life, and so its recommended interval.",
     # patch plates
     "critical-zone-special-repair": "A patch touches the critical zone: only special shapes or "
                                     "plate replacement are allowed there.",
