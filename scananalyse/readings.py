@@ -1309,6 +1309,10 @@ def _readings_in_scanned(out: pd.DataFrame, i, r, flags, *, rules, inspected, co
         said.append(f"co-located life {r_local:.1f} y at the readings")
     if not said:
         return
+    if float(r["t_min_mm"]) < get("mrt_mm") and "below-mrt" not in flags:  # measured metal below MRT
+        flags.append("below-mrt")
+        said.append("below MRT at that reading: the patch plan, made from the scan, does not cover it")
+        out.at[i, "flags"] = ";".join(f for f in flags if f)
     rec = get("interval_recommended_y")
     best = min((v for v in (code, local) if not math.isnan(v)), default=math.nan)
     if best < rec or (math.isnan(rec) and not math.isnan(best)):

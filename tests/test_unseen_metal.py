@@ -116,6 +116,12 @@ def test_spot_readings_on_a_scanned_zone_lower_its_bounds():
     assert got["life_local_y"] == 3.7
     assert got["interval_recommended_y"] == 3.5 and got["next_due"] == "2029-10-31"  # 3 calendar years + 182.6 d
     assert "readings-govern" in got["flags"].split(";") and "3.20 mm" in got["notes"]
+    assert "below-mrt" not in got["flags"].split(";")
+    # a reading below MRT: measured metal below MRT, said so, recommendation 0
+    low = summary.assign(t_min_mm=2.3, rtbc_mm=2.3, life_local_y=0.0)
+    bad = add_reading_zones(table, low, rules=get_ruleset(), inspected=inspected, code_of=code_of).iloc[0]
+    assert bad["interval_recommended_y"] == 0.0 and {"below-mrt", "readings-govern"} <= set(bad["flags"].split(";"))
+    assert "does not cover it" in bad["notes"]
     # readings no thinner and no shorter-lived than the scan change nothing
     calm = summary.assign(t_min_mm=5.0, rtbc_mm=5.0, life_local_y=30.0)
     same = add_reading_zones(table, calm, rules=get_ruleset(), inspected=inspected, code_of=code_of).iloc[0]
