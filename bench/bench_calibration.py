@@ -14,6 +14,8 @@ binned, for h in HORIZONS.
         drawn from its own interval, no zone rate distribution; --one-reading: each cell's
         present thickness from the newer reading alone, not given its drawn rate from both
         readings, as before)
+    ... --unscanned: the zones nobody scanned instead (drawn over their whole area from the
+        floor's depth law at the floor's rates; left out otherwise)
 """
 
 from __future__ import annotations
@@ -44,7 +46,7 @@ def true_zone_life(pair, mrt_map, mask):
     return float(np.nanmin(np.where(mask, life, np.nan)))
 
 
-def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, **pair_kw):
+def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, unscanned=False, **pair_kw):
     pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, method=method,
                      threshold=1.0 if method == "MFL" else None, n_hidden_pits=n_hidden, **pair_kw)
     with warnings.catch_warnings():
@@ -62,7 +64,7 @@ def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=Tr
     rows = []
     for k, name in enumerate(an.zones.names):
         d = dists[name]
-        if not d.ok:
+        if not d.ok or (d.n_cells == 0) != unscanned:  # zones nobody scanned: only with --unscanned
             continue
         truth = true_zone_life(pair, an.mrt_map, an.zones.labels == k)
         q = d.quantiles()
@@ -111,12 +113,12 @@ def summarise(rows):
 PIT_RATES = (0.15, 0.3)
 
 
-def main(n_seeds=48, first=100, shrink=True, both_readings=True):
+def main(n_seeds=48, first=100, shrink=True, both_readings=True, unscanned=False):
     rows = []
     t = time.time()
     for i, seed in enumerate(range(first, first + n_seeds)):
         method, hidden = CASES[i % len(CASES)]
-        rows += run_case(seed, method, hidden, shrink=shrink, both_readings=both_readings,
+        rows += run_case(seed, method, hidden, shrink=shrink, both_readings=both_readings, unscanned=unscanned,
                          max_pit_rate=PIT_RATES[(i // len(CASES)) % len(PIT_RATES)])
     print(summarise(rows))
     print(f"total {time.time() - t:.0f} s")
@@ -128,4 +130,4 @@ if __name__ == "__main__":
     first = int(argv[argv.index("--first") + 1]) if "--first" in argv else 100
     args = [a for i, a in enumerate(argv) if not a.startswith("--") and (i == 0 or argv[i - 1] != "--first")]
     main(int(args[0]) if args else 48, first=first, shrink="--no-shrink" not in argv,
-         both_readings="--one-reading" not in argv)
+         both_readings="--one-reading" not in argv, unscanned="--unscanned" in argv)
