@@ -132,6 +132,8 @@ MIN_PRIOR_CELLS = 50
 #: Width of the normal kernel the discrete NPMLE of the rate distribution is smoothed by,
 #: as a fraction of the median rate noise (one sd) of the zone's cells. [-]
 SMOOTH_FRACTION = 0.5
+#: Most cells the floor's similar-depth rule is built from (:func:`floor_rate_rule`). [-]
+FLOOR_RULE_CELLS = 150_000
 #: The note of a zone with no scanned cell.
 NOT_SCANNED = ("zone not scanned: its whole area drawn from the floor's depth fit, at the rates of the floor's "
                "measured cells of similar depth")
@@ -1080,10 +1082,22 @@ def floor_rate_rule(thickness, rates, mask, *, nominal, sigma_t, shrink=True):
     """The similar-depth rate rule over the measured, uncensored cells of ``mask`` (the
     whole floor), as ``rule(rng, d)`` -> rate draws at depths ``d``; None when ``mask``
     holds no scanned cell.  Lent to a zone nobody scanned, as its extreme-value life
-    borrows the floor's projection (:func:`scananalyse.evlife.hidden_parts`)."""
+    borrows the floor's projection (:func:`scananalyse.evlife.hidden_parts`).  Over more
+    than :data:`FLOOR_RULE_CELLS` such cells, a systematic sample of them in order of
+    depth (every k-th from the deepest): each depth keeps its share of the cells, so the
+    rule's neighbours in rank and the rate distribution are the floor's, at a tenth of the
+    cost on a 30 m floor."""
     sel = mask & np.isfinite(thickness)
     if not sel.any():
         return None
+    if rates.censored is not None and np.any(sel & ~rates.censored):
+        sel &= ~rates.censored  # never reference cells of the rule (_kept_cells)
+    idx = np.flatnonzero(sel)
+    if idx.size > FLOOR_RULE_CELLS:  # a systematic sample in order of depth, the deepest first
+        step = -(-idx.size // FLOOR_RULE_CELLS)
+        idx = idx[np.argsort(thickness.ravel()[idx], kind="stable")[::step]]
+        sel = np.zeros(thickness.shape, bool)
+        sel.ravel()[idx] = True
     arrs = (rates.rate_top, rates.rate_under, rates.rate_top_lo, rates.rate_top_hi, rates.rate_under_lo,
             rates.rate_under_hi)
     c = _scanned_cells(thickness[sel], tuple(a[sel] for a in arrs), 0.0,

@@ -127,3 +127,33 @@ def test_spot_readings_on_a_scanned_zone_lower_its_bounds():
     same = add_reading_zones(table, calm, rules=get_ruleset(), inspected=inspected, code_of=code_of).iloc[0]
     assert same["interval_recommended_y"] == 12.0 and same["interval_code_y"] == pytest.approx(before)
     assert "readings-govern" not in str(same["flags"])
+
+
+def test_floor_rule_on_a_systematic_sample_draws_the_floors_rates(monkeypatch):
+    # A floor of 400 000 measured cells whose rate grows with depth, r = 0.02 + 0.05 d
+    # (interval +-0.01): the similar-depth rule built on a sample of 150 000 cells in order
+    # of depth draws the same rates at each depth as the rule built on every cell, and
+    # both recover the law (hand arithmetic).
+    from types import SimpleNamespace
+
+    import scananalyse.probability as P
+
+    rng = np.random.default_rng(7)
+    n = 400_000
+    depth = rng.gamma(2.0, 0.4, n)
+    t = (T0 - depth).reshape(800, 500)
+    r = (0.02 + 0.05 * depth).reshape(t.shape)
+    z = np.zeros_like(r)
+    lr = SimpleNamespace(rate_top=z, rate_under=r, rate_top_lo=z, rate_top_hi=z, rate_under_lo=r - 0.01,
+                         rate_under_hi=r + 0.01, rate_short_top=z, rate_long_top=z, rate_short_under=r,
+                         rate_long_under=r, censored=None, threshold=None)
+    mask = np.ones(t.shape, bool)
+    sampled = P.floor_rate_rule(t, lr, mask, nominal=T0, sigma_t=0.1)
+    monkeypatch.setattr(P, "FLOOR_RULE_CELLS", 10 * n)
+    full = P.floor_rate_rule(t, lr, mask, nominal=T0, sigma_t=0.1)
+    for d in (0.3, 1.0, 2.5):
+        ds = np.full(20_000, d)
+        a = sampled(np.random.default_rng(1), ds).mean()
+        b = full(np.random.default_rng(1), ds).mean()
+        assert a == pytest.approx(b, rel=0.03), d
+        assert a == pytest.approx(0.02 + 0.05 * d, rel=0.1), d
