@@ -110,7 +110,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import InputError
+from .errors import FitError, InputError
 
 __all__ = ["repaired_rates", "LifeDistribution", "GridPrior", "fit_rate_prior", "zone_life_distribution", "life_distributions",
            "plot_life_curve", "TRUNC_SD", "Z90", "MIN_PRIOR_CELLS"]
@@ -837,6 +837,21 @@ def _hidden_depth(fit, T, n_draws, rng, n_fit=None, thr=None):
     return np.maximum(np.asarray(d, dtype=float), 0.0)
 
 
+def _unscanned_law(ze):
+    """The law of the unscanned part's block maxima: the zone's fit, except that a GEV
+    with a bounded upper tail (shape < 0) gives way to the Gumbel of the same block maxima
+    (module notes)."""
+    fit, b = ze.fit, getattr(ze, "blocks", None)
+    if fit is None or fit.distribution != "gev" or not fit.shape < 0 or b is None:
+        return fit
+    from .extremes import fit_gumbel_mle
+
+    try:
+        return fit_gumbel_mle(b.maxima, censored=b.censored, threshold=b.threshold)
+    except FitError:
+        return fit
+
+
 def _similar_depth(rng, d, depth_meas):
     """Index of a measured cell of similar depth for each depth in ``d`` (module notes)."""
     n = depth_meas.size
@@ -916,10 +931,13 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         ze = extremes_depth.get(name)
         if not ze and floor_extremes:  # borrowed, as the zone's extreme-value life does
             ze = floor_extremes
-        fit = ze.fit if ze else None
+        fit = _unscanned_law(ze) if ze else None
         hidden_mm2 = max(0.0, area - np.count_nonzero(sel) * pitch * pitch)
         block = ze.block_mm if (ze and np.isfinite(ze.block_mm)) else np.nan
-        T = hidden_mm2 / block ** 2 if fit is not None and np.isfinite(block) else 0.0
+        # the fit is the law of the deepest loss over the scanned part of a counted block
+        # (on average ``coverage`` of it), not over a whole block (module notes)
+        cov = float(np.mean(ze.blocks.coverage)) if ze and getattr(ze, "blocks", None) is not None else 1.0
+        T = hidden_mm2 / (block ** 2 * cov) if fit is not None and np.isfinite(block) and cov > 0 else 0.0
         cens = rates.censored[sel] if rates.censored is not None else None
         # measured: the point is not above both sides' measured (short/long-term) rates
         meas = np.ones(int(sel.sum()), bool)
