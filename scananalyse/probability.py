@@ -58,8 +58,15 @@ and is drawn by a seeded, vectorised Monte Carlo:
   with no measured lower bound (repaired, not compared) the similar-depth rule below;
 * **deepest loss of the unscanned part**: parameter sets of the zone's depth fit drawn by
   parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
-  :math:`U \sim U(0, 1)`, T = hidden area / block area: the predictive distribution of the
-  deepest of T block maxima, not a plug-in return level;
+  :math:`U \sim U(0, 1)`, T = hidden area / (block area × the counted blocks' mean
+  coverage): the predictive distribution of the deepest of T block maxima, not a plug-in
+  return level.  A block maximum is the deepest loss over the *scanned* part of its block
+  (blocks count from half covered), so the fitted F is the law of the deepest loss over
+  that mean scanned area, not over a whole block; where the zone's fit is a GEV with a
+  bounded upper tail (shape < 0) the Gumbel of the same block maxima is used instead
+  (:func:`_unscanned_law`): a bounded fit from some twenty blocks says that no unscanned
+  loss is deeper than its upper end, barely above the deepest seen, which nobody measured
+  (Smith 1985: for shape < −0.5 the likelihood is not regular);
 * **rate there**: the rate of a scanned cell of the zone of similar depth (rule: the
   measured cells are ranked by loss; the one drawn is uniform among the ``w`` cells nearest
   in rank to D, ``w`` = max(5, 2 % of the cells); beyond the deepest measured cell, among
@@ -93,6 +100,8 @@ cells.
 
 References
 ----------
+R. L. Smith, "Maximum likelihood estimation in a class of nonregular cases", Biometrika 72
+(1985) 67-90 (the GEV's likelihood for shape < −0.5; from memory).
 B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman & Hall, 1993,
 ch. 6 (parametric bootstrap).  T. Shibata, "Application of extreme value statistics to
 corrosion", J. Res. NIST 99 (1994) 327-336 (the deepest of T blocks).  B. Efron,
@@ -140,7 +149,8 @@ class LifeDistribution:
     n_cells, n_kept : int
         Scanned cells of the zone, and those that could be its minimum (Monte Carlo). [-]
     hidden_T : float
-        Unscanned area in blocks. [blocks]
+        Unscanned area in blocks (:func:`life_distributions`: in units of the mean scanned
+        area of a counted block). [blocks]
     p_hidden_governs : float
         Fraction of draws in which the unscanned part reaches MRT first. [-]
     reason : str
