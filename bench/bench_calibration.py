@@ -18,6 +18,8 @@ binned, for h in HORIZONS.
         life_distributions and the zones' true lives) kept in DIR/<seed>.pkl and read back
         when its case matches, so that two versions of the model are compared on the same
         analyses: PYTHONPATH=/path/to/other/version python bench/bench_calibration.py ...)
+    ... --unscanned: the zones nobody scanned instead (drawn over their whole area from the
+        floor's depth law at the floor's rates; left out otherwise)
 """
 
 from __future__ import annotations
@@ -80,7 +82,8 @@ def analysed_case(seed, method, n_hidden, cache=None, **pair_kw):
     return a
 
 
-def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, cache=None, **pair_kw):
+def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, unscanned=False, cache=None,
+             **pair_kw):
     a = analysed_case(seed, method, n_hidden, cache=cache, **pair_kw)
     t0 = time.perf_counter()
     dists = life_distributions(a["thickness"], a["rates"], a["zones"], a["mrt"], a["ext"], nominal=a["nominal"],
@@ -90,7 +93,7 @@ def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=Tr
     rows = []
     for name in a["zones"].names:
         d = dists[name]
-        if not d.ok:
+        if not d.ok or (d.n_cells == 0) != unscanned:  # zones nobody scanned: only with --unscanned
             continue
         truth = a["truths"][name]
         q = d.quantiles()
@@ -139,12 +142,13 @@ def summarise(rows):
 PIT_RATES = (0.15, 0.3)
 
 
-def main(n_seeds=48, first=100, shrink=True, both_readings=True, cache=None):
+def main(n_seeds=48, first=100, shrink=True, both_readings=True, unscanned=False, cache=None):
     rows = []
     t = time.time()
     for i, seed in enumerate(range(first, first + n_seeds)):
         method, hidden = CASES[i % len(CASES)]
-        rows += run_case(seed, method, hidden, shrink=shrink, both_readings=both_readings, cache=cache,
+        rows += run_case(seed, method, hidden, shrink=shrink, both_readings=both_readings, unscanned=unscanned,
+                         cache=cache,
                          max_pit_rate=PIT_RATES[(i // len(CASES)) % len(PIT_RATES)])
     print(summarise(rows))
     print(f"total {time.time() - t:.0f} s")
@@ -157,4 +161,4 @@ if __name__ == "__main__":
     cache = argv[argv.index("--cache") + 1] if "--cache" in argv else None
     args = [a for i, a in enumerate(argv) if not a.startswith("--") and (i == 0 or argv[i - 1] not in ("--first", "--cache"))]
     main(int(args[0]) if args else 48, first=first, shrink="--no-shrink" not in argv,
-         both_readings="--one-reading" not in argv, cache=cache)
+         both_readings="--one-reading" not in argv, unscanned="--unscanned" in argv, cache=cache)

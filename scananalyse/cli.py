@@ -113,6 +113,11 @@ def _add_job_options(p: argparse.ArgumentParser, *, single: bool = False):
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
 
+def _add_display_units(p: argparse.ArgumentParser, what: str = "printed"):
+    p.add_argument("--units", choices=["mm", "in"], default="mm",
+                   help=f"units of the numbers {what}: mm (default) or in (inches, mils, ft²); files keep SI")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(
         prog="scananalyse",
@@ -125,6 +130,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("check", help="validate one scan file and print a short summary")
     p.add_argument("file", type=_input_file, help="scan file (.csv floor-scan CSV v1 or .h5 floor-scan HDF5 v1)")
+    _add_display_units(p)
 
     p = sub.add_parser("convert", help="convert a scan between CSV and HDF5 (lossless)")
     p.add_argument("input", type=_input_file, help="input scan file")
@@ -136,6 +142,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("new", type=_input_file, help="newer inspection's scan")
     p.add_argument("--out", required=True, type=_path, help="output folder")
     p.add_argument("--control-points", type=_input_file, help="matching points old/new (docs/registration.md)")
+    _add_display_units(p)
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
@@ -164,6 +171,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="recompute tanks whose results exist")
     p.add_argument("--timeout", type=_number(float, 0, lo_open=True, what="a positive number"), default=None,
                    help="give up on tanks without a result after this many seconds of the whole run")
+    _add_display_units(p, "on fleet.html (each tank's report keeps its job's units)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     return parser
 
@@ -234,23 +242,38 @@ def _job_from_args(args):
 
 def _cmd_check(args) -> int:
     from .io import read_scan
+    from .report import units as U
 
     scan = read_scan(args.file)
     s = scan.summary()
-    u = s["units"]
+    units = args.units
+
+    def shown(value, quantity):  # a number in the display units, as the run's console prints it
+        return U.fmt_number(U.convert(value, quantity, units), U.decimals(quantity, units))
+
+    thick, depth = U.unit_label("thickness", units), U.unit_label("depth", units)
+    (x0, x1), (y0, y1) = s["x_range_mm"], s["y_range_mm"]
+    if units == "mm":
+        pitch, area = f"{s['pitch_mm']:g} mm", f"{s['scanned_area_m2']:.2f} m2"
+        where = f"x {x0 / 1000:.3f} to {x1 / 1000:.3f} m, y {y0 / 1000:.3f} to {y1 / 1000:.3f} m"
+    else:  # floor coordinates as on the maps: feet, inches on a small grid
+        pitch, area = U.with_unit(s["pitch_mm"], "thickness", units), U.with_unit(s["scanned_area_m2"], "area", units)
+        ax, per = U.length_axis_unit(max(x1 - x0, y1 - y0) / 1000.0, units)
+        nd = 1 if ax == "in" else 2
+        where = ", ".join(f"{c} {a / 1000 / per:.{nd}f} to {b / 1000 / per:.{nd}f} {ax}"
+                          for c, a, b in (("x", x0, x1), ("y", y0, y1)))
     print(f"{args.file}: valid floor-scan file")
-    print(f"  tank {s['tank'] or '-'}, inspected {s['inspected']}, method {s['method'] or '-'}, file units {u}")
-    print(f"  grid {s['rows']} x {s['cols']} cells at {s['pitch_mm']:g} mm pitch; "
-          f"x {s['x_range_mm'][0] / 1000:.3f} to {s['x_range_mm'][1] / 1000:.3f} m, "
-          f"y {s['y_range_mm'][0] / 1000:.3f} to {s['y_range_mm'][1] / 1000:.3f} m")
-    print(f"  scanned {s['scanned_cells']} cells = {s['scanned_area_m2']:.2f} m2 ({s['grid_fill_pct']:.1f} % of the grid box)")
-    print(f"  thickness {s['t_min_mm']:.2f} to {s['t_max_mm']:.2f} mm (nominal {s['nominal_mm']:.2f} mm)")
+    print(f"  tank {s['tank'] or '-'}, inspected {s['inspected']}, method {s['method'] or '-'}, file units {s['units']}")
+    print(f"  grid {s['rows']} x {s['cols']} cells at {pitch} pitch; {where}")
+    print(f"  scanned {s['scanned_cells']} cells = {area} ({s['grid_fill_pct']:.1f} % of the grid box)")
+    print(f"  thickness {shown(s['t_min_mm'], 'thickness')} to {shown(s['t_max_mm'], 'thickness')} {thick} "
+          f"(nominal {shown(s['nominal_mm'], 'thickness')} {thick})")
     m = scan.meta
     extras = []
     if m.threshold is not None:
-        extras.append(f"threshold {m.threshold:.2f} mm")
+        extras.append(f"threshold {shown(m.threshold, 'depth')} {depth}")
     if m.sigma is not None:
-        extras.append(f"sigma {m.sigma:.2f} mm")
+        extras.append(f"sigma {shown(m.sigma, 'depth')} {depth}")
     if m.installed is not None:
         extras.append(f"installed {m.installed.isoformat()}")
     extras.append("side layer" if scan.side is not None else "no side layer")
@@ -291,7 +314,7 @@ def _cmd_register(args) -> int:
     from .runner import register_files
 
     out = register_files(args.old, args.new, out_dir=args.out, control_points=args.control_points,
-                         force=args.force, quiet=args.quiet)
+                         force=args.force, quiet=args.quiet, units=args.units)
     print(out["summary"])
     return 0
 
@@ -328,7 +351,7 @@ def _cmd_fleet(args) -> int:
     from .fleet import run_fleet
 
     res = run_fleet(args.manifest, out_dir=args.out, workers=args.workers, scheduler=args.scheduler,
-                    force=args.force, quiet=args.quiet, timeout_s=args.timeout)
+                    force=args.force, quiet=args.quiet, timeout_s=args.timeout, units=args.units)
     print(res["summary"])
     return 0
 

@@ -493,9 +493,10 @@ class FleetFailed(InputError):
 
 def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str | None = None,
               force: bool = False, quiet: bool = False, timeout_s: float | None = None,
-              raise_on_failure: bool = True) -> dict:
+              raise_on_failure: bool = True, units: str = "mm") -> dict:
     """Run every tank of a manifest on Dask; write ``fleet.csv``, ``fleet.html`` and
-    ``population.csv``.
+    ``population.csv``.  ``units`` are the display units of ``fleet.html`` and its figures
+    (``"mm"`` or ``"in"``); the CSV files keep SI.
 
     Returns a dict with ``table`` (the ranked DataFrame), ``population``, ``summary``
     (text) and ``seconds``.  When a tank failed (bad input, fault or timeout) and
@@ -509,13 +510,15 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
         raise InputError(f"--workers: must be at least 1, got {workers}")
     if timeout_s is not None and not (timeout_s > 0):
         raise InputError(f"--timeout: must be a positive number of seconds, got {timeout_s}")
+    if units not in ("mm", "in"):
+        raise InputError(f"--units: must be mm or in, got {units!r}")
     entries = read_manifest(manifest)
     for e, folder in zip(entries, tank_folders(entries)):
         e["folder"] = folder
     out, lock = claim_fleet_folder(out_dir, force=force)
     try:
         res = _run_fleet(entries, out, workers=workers, scheduler=scheduler, force=force, quiet=quiet,
-                         timeout_s=timeout_s, write_csv=write_csv, atomic_output=atomic_output)
+                         timeout_s=timeout_s, write_csv=write_csv, atomic_output=atomic_output, units=units)
     finally:
         lock.close()
     df = res["table"]
@@ -531,7 +534,8 @@ def run_fleet(manifest, *, out_dir, workers: int | None = None, scheduler: str |
     return res
 
 
-def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_s, write_csv, atomic_output):
+def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_s, write_csv, atomic_output,
+               units):
     from dask.distributed import Client, LocalCluster, as_completed
 
     from .report.fleet_page import render_fleet_page
@@ -576,8 +580,8 @@ def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_
     group_cols = list(entries[0].get("groups") or {}) if entries else []
     similar_service(rows, group_cols)
     df = rank_fleet(rows)
-    pop, figures = _population(df, group_cols)
-    page = fleet_page_data(df, rows, pop, figures)
+    pop, figures = _population(df, group_cols, units)
+    page = fleet_page_data(df, rows, pop, figures, units=units)
     try:
         write_csv(df, out / "fleet.csv")  # text cells neutralised against spreadsheet formulas
         write_csv(pop, out / "population.csv")
@@ -593,9 +597,9 @@ def _run_fleet(entries, out: Path, *, workers, scheduler, force, quiet, timeout_
     return {"table": df, "population": pop, "summary": summary, "seconds": secs}
 
 
-#: What the fleet page says of its units (the fleet command has no display-units option).
-UNITS_NOTE = ("This page shows SI units (mm, mm/y, m²): the fleet command has no display-units option. "
-              "Each tank's own report uses the display units of its job file.")
+#: What the fleet page says of its units.
+UNITS_NOTE = ("This page shows the display units of the fleet command's --units (default mm); fleet.csv and "
+              "population.csv keep SI (mm/y). Each tank's own report uses the display units of its job file.")
 
 
 def _frame(d) -> pd.DataFrame | None:
@@ -603,10 +607,11 @@ def _frame(d) -> pd.DataFrame | None:
 
 
 def fleet_page_data(df: pd.DataFrame, rows: list[dict], pop: pd.DataFrame | None = None,
-                    figures: list | None = None):
+                    figures: list | None = None, *, units: str = "mm"):
     """What ``fleet.html`` shows (:class:`scananalyse.report.fleet_page.FleetPageData`),
     from the ranked table and the tanks' rows as :func:`run_tank` returns them (their
-    ``_zones``, ``_zones_repaired``, ``_patches`` and ``_rule_changes`` keys)."""
+    ``_zones``, ``_zones_repaired``, ``_patches`` and ``_rule_changes`` keys), in the
+    display ``units``."""
     from .report.fleet_page import FleetPageData, TankZones
     from .rules import RULESETS
 
@@ -618,11 +623,12 @@ def fleet_page_data(df: pd.DataFrame, rows: list[dict], pop: pd.DataFrame | None
             patch_area_m2=area, rule_changes=tuple(r.get("_rule_changes") or ()))
     return FleetPageData(table=df, tanks=tanks, population=pop, figures=list(figures or []),
                          rules_table=RULESETS["api653"].table(), ruleset="api653", order_rule=ORDER_RULE,
-                         units="mm", units_note=UNITS_NOTE, min_tanks_fit=MIN_TANKS_FIT)
+                         units=units, units_note=UNITS_NOTE, min_tanks_fit=MIN_TANKS_FIT)
 
 
-def _population(df: pd.DataFrame, group_cols) -> tuple:
-    """population.csv's table and the figures (caption, PNG bytes) of groups with 2+ tanks."""
+def _population(df: pd.DataFrame, group_cols, units: str = "mm") -> tuple:
+    """population.csv's table and the figures (caption, PNG bytes) of groups with 2+ tanks,
+    the rates drawn in the display ``units``."""
     from .population import plot_population, population_table
     from .report.figures import png_bytes
 
@@ -633,6 +639,6 @@ def _population(df: pd.DataFrame, group_cols) -> tuple:
         if len(rates) < 2:
             continue
         title = f"{'all tanks' if col == 'all' else f'{col} = {val}'}, {side} side: {len(rates)} tanks"
-        fig = plot_population(summ, rates, names, title=title)
+        fig = plot_population(summ, rates, names, title=title, units=units)
         figures.append((title + f" ({summ['model']})", png_bytes(fig, 100)))
     return pop, figures

@@ -32,7 +32,7 @@ from .probability import life_distributions, repaired_rates
 from .progress import Progress
 from .register import register, resample_onto
 from .rules import get_ruleset
-from .scan import MM_PER_IN, FloorScan
+from .scan import MM_PER_IN, FloorScan, years_between
 
 __all__ = ["Analysis", "analyse", "read_job_inputs"]
 
@@ -148,8 +148,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         zmap = _zone_map(new, job, rules)
         options = _assess_options(job)
         mrt, zone_mrt = _mrt(zmap, rules, options, job, nominal_mm=new.meta.nominal)
-        reading_zone_table = _reading_zone_table(readings_new, readings_old, reg, zmap, zone_mrt, new, rules,
-                                                 options)
+        reading_zone_table, off_scan_table, spots = _reading_zone_table(readings_new, readings_old, reg, zmap, zone_mrt, new,
+                                                        rules, options)
         ind_new = _newer_indications(ind_labels, layers.loss, new, side, zmap)
 
     with prog.stage("extremes"):
@@ -184,8 +184,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
 
     with prog.stage("probability"):
         floor = _floor_extremes(new, lr, zmap, ext_depth, fit_kw)  # lent to zones with no fit of their own
-        life_dists = _life_distributions(new.thickness, lr, zmap, mrt, ext_depth, new=new, job=job, floor=floor)
-        table = _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job)
+        life_dists = _life_distributions(new.thickness, lr, zmap, mrt, ext_depth, new=new, job=job, floor=floor,
+                                         spots=spots)
+        table = _with_probabilities(table, life_dists, off_scan_table, hidden, new, rules, job, options)
 
     with prog.stage("repairs"):
         rep = repair.repair_and_reassess(new, lr, side, zmap, rules, options, mrt, job, have_old=old is not None,
@@ -195,9 +196,9 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         # hidden part as found
         maps = rep["repaired_maps"]
         dists_rep = _life_distributions(maps["thickness_repaired"], repaired_rates(lr, maps), zmap, mrt, ext_depth,
-                                        new=new, job=job, floor=floor)
-        rep["zones_repaired"] = _with_probabilities(rep["zones_repaired"], dists_rep, reading_zone_table, hidden,
-                                                    new, rules, job)
+                                        new=new, job=job, floor=floor, spots=spots, as_found=life_dists)
+        rep["zones_repaired"] = _with_probabilities(rep["zones_repaired"], dists_rep, off_scan_table, hidden,
+                                                    new, rules, job, options)
 
     return Analysis(job=job, new=new, old=old, registration=reg, old_on_new=old_on_new, side_raw=side_raw,
                     side=side, rates=lr, zones=zmap, options=options, extremes_depth=ext_depth,
@@ -305,16 +306,21 @@ def _mrt(zmap, rules, options, job, *, nominal_mm):
 
 def _reading_zone_table(readings_new, readings_old, reg, zmap, zone_mrt, new, rules, options):
     """The zones assessed from the spot readings alone (older readings moved onto the newer
-    frame by the registration), or None without newer readings."""
+    frame by the registration): all of them (the report's table), those on cells the scan
+    has no value at (the zone table's), and these as spots by zone;
+    (None, None, None) without newer readings."""
     if readings_new is None:
-        return None
+        return None, None, None
     moved_old = None
     if readings_old is not None and reg is not None:
         tr = reg.transform
         moved_old = rd.move_readings(readings_old, dx_mm=tr.dx_mm, dy_mm=tr.dy_mm, rotation_deg=tr.rotation_deg)
-    return rd.reading_zone_summary(readings_new, moved_old, zones=zmap, nominal_mm=new.meta.nominal,
-                                   installed=new.meta.installed, mrt_mm=zone_mrt, options=options,
-                                   critical_width_mm=float(rules.critical_zone_width_mm.value))
+    kw = dict(zones=zmap, nominal_mm=new.meta.nominal, installed=new.meta.installed,
+              critical_width_mm=float(rules.critical_zone_width_mm.value))
+    off = rd.off_scan(readings_new, new)  # the others are in the scan's grid already
+    return (rd.reading_zone_summary(readings_new, moved_old, mrt_mm=zone_mrt, options=options, **kw),
+            rd.reading_zone_summary(off, moved_old, mrt_mm=zone_mrt, options=options, **kw) if len(off) else None,
+            rd.zone_spots(off, moved_old, **kw))
 
 
 def _newer_indications(labels, loss, new, side, zmap):
@@ -365,10 +371,11 @@ def _zone_table(new, side, lr, zmap, mrt, rules, options, ext_depth, ext_rate, o
     return hidden, add_eva_columns(table, ext_depth, ext_life)
 
 
-def _life_distributions(thickness, lr, zmap, mrt, ext_depth, *, new, job, floor=None):
-    """Each zone's life as a distribution (thickness noise, rate intervals, the hidden part)."""
+def _life_distributions(thickness, lr, zmap, mrt, ext_depth, *, new, job, floor=None, spots=None, as_found=None):
+    """Each zone's life as a distribution (thickness noise, rate intervals, the hidden part,
+    the spot readings where the scan has no value)."""
     return life_distributions(thickness, lr, zmap, mrt, ext_depth, nominal=new.meta.nominal, sigma_t=lr.sigma_new,
-                              pitch=new.pitch, seed=job.seed, floor_extremes=floor)
+                              pitch=new.pitch, seed=job.seed, floor_extremes=floor, spots=spots, as_found=as_found)
 
 
 def _floor_extremes(new, lr, zmap, ext_depth, fit_kw):
@@ -379,15 +386,28 @@ def _floor_extremes(new, lr, zmap, ext_depth, fit_kw):
                      threshold=new.meta.threshold, **fit_kw)
 
 
-def _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job):
-    """The zone table with the life quantiles and the probabilities at the due date, and the
-    readings' zone columns (with the part of each zone nobody scanned) when there are readings."""
-    table = assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
-                                         target_probability=job.target_probability)
+def _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rules, job, options):
+    """The zone table with the readings' zone columns (with the part of each zone nobody
+    scanned) when there are readings, then the life quantiles and the probabilities at the
+    due date (the readings may have set or shortened it)."""
     if reading_zone_table is not None:
         table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected,
-                                     hidden=hidden)
-    return table
+                                     hidden=hidden, code_of=_code_of(new, options))
+    return assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
+                                        target_probability=job.target_probability)
+
+
+def _code_of(new, options):
+    """The code formula of this floor's zones as ``code_of(rtbc, rtip, mrt)`` (the scan's
+    method and threshold), or None without an installation date."""
+    meta = new.meta
+    if meta.installed is None:
+        return None
+    age = years_between(meta.installed, meta.inspected)
+    return lambda rtbc, rtip, mrt: assess.code_interval(
+        t0=meta.nominal, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=age, method=meta.method or "",
+        threshold=meta.threshold, coated=options.coated or options.reinforced_lining,
+        coating_life_years=options.coating_life_years, cp_effective=options.cp_effective)
 
 
 def _rules_applied(rules, job, rep):

@@ -234,13 +234,19 @@ def population_table(df: pd.DataFrame, group_cols=(), *, n_boot: int = 200, seed
     return pd.DataFrame(rows, columns=POPULATION_COLUMNS), details
 
 
-def plot_population(summary: dict, rates, names, *, title: str = "", ax=None):
+def plot_population(summary: dict, rates, names, *, title: str = "", ax=None, units: str = "mm"):
     """The tanks' rates against the fitted distribution (or the empirical one).
 
     Each tank at its rate and plotting position (i − 0.5)/n; the fitted CDF; p50 and
-    p90 with their bounds; tanks above the fitted p99 named.  Returns the figure.
+    p90 with their bounds; tanks above the fitted p99 named.  Rates [mm/y] are drawn in
+    the display ``units`` (mm/y, or mpy for ``"in"``).  Returns the figure.
     """
     from matplotlib.figure import Figure
+
+    from .report.units import convert, decimals, unit_label
+
+    def shown(v):
+        return convert(v, "rate", units)
 
     if ax is None:
         fig = Figure(figsize=(5.0, 3.4), layout="constrained")
@@ -252,21 +258,23 @@ def plot_population(summary: dict, rates, names, *, title: str = "", ax=None):
     n = len(x)
     if n:
         pp = (np.arange(1, n + 1) - 0.5) / n
-        ax.plot(x, pp, "o", ms=4, color="#1f4e79", label="tanks")
+        ax.plot(shown(x), pp, "o", ms=4, color="#1f4e79", label="tanks")
     if summary.get("model", "empirical") != "empirical" and n:
         grid = np.linspace(0, max(x.max(), summary["p99"]) * 1.05, 200)
-        ax.plot(grid, _dist(summary["model"]).cdf(grid, *summary["params"]), "-", color="#b5471b",
+        ax.plot(shown(grid), _dist(summary["model"]).cdf(grid, *summary["params"]), "-", color="#b5471b",
                 label=f"{summary['model']} (least AIC)")
         for nm in summary["outliers"]:
             i = list(np.asarray(names)[order]).index(nm)
-            ax.annotate(nm, (x[i], pp[i]), textcoords="offset points", xytext=(-4, -10), fontsize=7, ha="right")
+            ax.annotate(nm, (shown(x[i]), pp[i]), textcoords="offset points", xytext=(-4, -10), fontsize=7,
+                        ha="right")
     for q, ls in ((0.5, "--"), (0.9, ":")):
         est, lo, hi = summary[q]
         if math.isfinite(est):
-            ax.axvline(est, ls=ls, color="#555", lw=1, label=f"p{int(q * 100)} {est:.3f}")
+            ax.axvline(shown(est), ls=ls, color="#555", lw=1,
+                       label=f"p{int(q * 100)} {shown(est):.{decimals('rate', units)}f}")
             if math.isfinite(lo) and math.isfinite(hi):
-                ax.axvspan(lo, hi, color="#999", alpha=0.15)
-    ax.set_xlabel("zone-maximum rate [mm/y]")
+                ax.axvspan(shown(lo), shown(hi), color="#999", alpha=0.15)
+    ax.set_xlabel(f"zone-maximum rate [{unit_label('rate', units)}]")
     ax.set_ylabel("fraction of tanks")
     ax.set_ylim(0, 1)
     ax.set_title(title, fontsize=9)

@@ -70,7 +70,15 @@ and is drawn by a seeded, vectorised Monte Carlo:
 * **rate there**: the rate of a scanned cell of the zone of similar depth (rule: the
   measured cells are ranked by loss; the one drawn is uniform among the ``w`` cells nearest
   in rank to D, ``w`` = max(5, 2 % of the cells); beyond the deepest measured cell, among
-  the ``w`` deepest), drawn from its posterior as above.
+  the ``w`` deepest), drawn from its posterior as above;
+* **spot readings** where the scan has no value: points of the zone, each thickness drawn
+  around its reading, at the greater of the similar-depth rate and the rate measured at
+  the spot (:func:`_spot_lives`);
+* **a zone nobody scanned**: its whole area is the unscanned part, from the floor's depth
+  fit at the floor's similar-depth rates (:func:`floor_rate_rule`), with its spots.
+
+On a repaired floor the unscanned part and the spots are the floor as found's draws
+(``as_found``): a patch changes the cells it covers, never the metal nobody measured.
 
 The thickness is not shrunk by a zone-wide distribution: an estimate of the zone's
 thickness distribution (NPMLE, smoothed) made the intervals too narrow and the life too
@@ -122,7 +130,7 @@ import numpy as np
 from .errors import FitError, InputError
 
 __all__ = ["repaired_rates", "LifeDistribution", "GridPrior", "fit_rate_prior", "zone_life_distribution", "life_distributions",
-           "plot_life_curve", "TRUNC_SD", "Z90", "MIN_PRIOR_CELLS"]
+           "plot_life_curve", "floor_rate_rule", "TRUNC_SD", "Z90", "MIN_PRIOR_CELLS"]
 
 #: Draws of thickness and rate are truncated at this many standard deviations (makes the
 #: pruning of cells exact). [-]
@@ -133,6 +141,9 @@ MIN_PRIOR_CELLS = 50
 #: Width of the normal kernel the discrete NPMLE of the rate distribution is smoothed by,
 #: as a fraction of the median rate noise (one sd) of the zone's cells. [-]
 SMOOTH_FRACTION = 0.5
+#: The note of a zone with no scanned cell.
+NOT_SCANNED = ("zone not scanned: its whole area drawn from the floor's depth fit, at the rates of the floor's "
+               "measured cells of similar depth")
 #: Standard normal quantile of 0.95: a two-sided 90 % interval is ±Z90 standard deviations. [-]
 Z90 = 1.6448536269514722
 
@@ -152,7 +163,11 @@ class LifeDistribution:
         Unscanned area in blocks (:func:`life_distributions`: in units of the mean scanned
         area of a counted block). [blocks]
     p_hidden_governs : float
-        Fraction of draws in which the unscanned part reaches MRT first. [-]
+        Fraction of draws in which what the scan did not see (the unscanned part, the spot
+        readings) reaches MRT first. [-]
+    unseen : tuple
+        (life to MRT, life to a leak) draws of what the scan did not see, (None, None) when
+        nothing: a repaired floor's distribution takes them from the floor as found. [y]
     reason : str
         Empty when ok; otherwise why there is no estimate (the draws are NaN).
     """
@@ -165,6 +180,7 @@ class LifeDistribution:
     p_hidden_governs: float = float("nan")
     reason: str = ""
     notes: tuple = field(default=())
+    unseen: tuple = field(default=(None, None), repr=False)
 
     @property
     def ok(self) -> bool:
@@ -479,7 +495,8 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
                            rate_under_hi, mrt, *, sigma_t, nominal, censored=None, threshold=None,
                            measured=None, hidden_fit=None, hidden_T=0.0, hidden_n=None,
                            hidden_threshold=None, n_draws=2000, seed=0, shrink=True,
-                           rate_prior=None, older=None, sigma_old=None, dt_years=None) -> LifeDistribution:
+                           rate_prior=None, older=None, sigma_old=None, dt_years=None, spots=None,
+                           floor_rule=None, unseen=None) -> LifeDistribution:
     r"""Distribution of one zone's time to MRT and to a leak (our own model, module notes).
 
     Parameters
@@ -514,6 +531,19 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         The older scan's reading on the newer grid where it reads the same metal (NaN
         elsewhere), its sigma, and the years between the inspections: the present
         thickness is then drawn given the drawn rate from both readings. [mm], [mm], [y]
+    spots : (t, rate, sigma), optional
+        Spot readings (hand UT, prove-up, pit gauge) on cells the scan has no value at:
+        thickness (k,) [mm], the rate measured at the spot (k,) (NaN: none) [mm/y], and the
+        readings' sigma [mm].  Each spot is a point of the zone (:func:`_spot_lives`).
+    floor_rule : callable, optional
+        ``floor_rule(rng, d)``: the similar-depth rate rule of the whole floor
+        (:func:`floor_rate_rule`), used when the zone has no measured cell of its own: a
+        zone nobody scanned is then its unscanned part (its whole area, ``hidden_T``) and
+        its spots.
+    unseen : tuple, optional
+        :attr:`LifeDistribution.unseen` of the same zone as found, taken as it is (the
+        unscanned part and the spots are not drawn again): on a repaired floor, so that no
+        repair changes metal nobody measured.
 
     Returns
     -------
@@ -532,10 +562,12 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
     c = _scanned_cells(thickness, (rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi),
                        mrt, sigma_t=sigma_t, nominal=nominal, censored=censored, threshold=threshold,
                        measured=measured, older=older, sigma_old=sigma_old, dt_years=dt_years)
-    if c.t.size == 0:  # nothing measured: no rate for the unscanned part either
-        nan = np.full(n_draws, np.nan)
-        return LifeDistribution(nan, nan, n_cells=c.n, reason="zone not scanned" + (
-            " and no extreme-value fit" if hidden_fit is None else ": no measured rate for its unscanned part"))
+    if c.t.size == 0:  # nothing of its own measured: the floor's rates, or no estimate
+        if unseen is not None and unseen[0] is not None:  # as found: a repair changes none of it
+            return LifeDistribution(unseen[0], unseen[1], n_cells=c.n, hidden_T=float(hidden_T),
+                                    p_hidden_governs=1.0, notes=(NOT_SCANNED,), unseen=unseen)
+        return _unscanned_zone(c, mrt, hidden_fit, float(hidden_T), n_draws, seed, hidden_n, hidden_threshold,
+                               spots, floor_rule)
     rng = np.random.default_rng(seed)
     rates = _shrunk_rates(c, rng, rate_prior) if shrink else _own_rates(c, rng)
     cand = _candidates(c, rates)
@@ -547,7 +579,10 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         h_mrt, h_leak = _censored_lives(c, rates, n_draws, c.mrt_min)
         life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
     T = float(hidden_T)
-    h_mrt, h_leak = _unscanned_lives(c, rates, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
+    if unseen is None:
+        h_mrt, h_leak = _unseen_lives(c, rates, spots, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
+    else:  # the floor as found's (on a repaired floor: a repair changes no metal nobody saw)
+        h_mrt, h_leak = unseen
     seen_mrt, seen_leak, n_drawn = _seen_lives(c, rates, cand, life_mrt, life_leak, h_mrt=h_mrt, h_leak=h_leak,
                                                rng=rng)
     p_hidden = 0.0 if h_mrt is None else float(np.mean(h_mrt < seen_mrt))
@@ -555,7 +590,51 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         seen_mrt, seen_leak = np.minimum(seen_mrt, h_mrt), np.minimum(seen_leak, h_leak)
     notes = ("unscanned part not modelled (no extreme-value fit)",) if (T > 0 and hidden_fit is None) else ()
     return LifeDistribution(seen_mrt, seen_leak, n_cells=c.n, n_kept=n_drawn, hidden_T=T,
-                            p_hidden_governs=p_hidden, notes=notes)
+                            p_hidden_governs=p_hidden, notes=notes, unseen=(h_mrt, h_leak))
+
+
+def _unseen_lives(c, rates, spots, fit, T, n_draws, rng, n_fit, thr):
+    """Draws of the lives of what the scan did not see, the least of the spot readings and
+    the unscanned part; (None, None) when there is neither."""
+    h_mrt, h_leak = _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr)
+    if spots is None or not len(spots[0]):
+        return h_mrt, h_leak
+    s_mrt, s_leak = _spot_lives(spots, c.nominal, c.mrt_min, rates.rule, n_draws, rng)
+    return (s_mrt, s_leak) if h_mrt is None else (np.minimum(h_mrt, s_mrt), np.minimum(h_leak, s_leak))
+
+
+def _unscanned_zone(c, mrt, fit, T, n_draws, seed, n_fit, thr, spots, floor_rule) -> LifeDistribution:
+    """A zone with no measured cell: its whole area drawn from the depth fit lent to it,
+    growing at the floor's similar-depth rates, and its spot readings; NaN draws with the
+    reason when there is no fit or no floor rule."""
+    if fit is None or T <= 0 or floor_rule is None:
+        nan = np.full(n_draws, np.nan)
+        why = "no extreme-value fit" if fit is None or T <= 0 else "no measured rate for its unscanned part"
+        return LifeDistribution(nan, nan, n_cells=c.n, reason=f"zone not scanned: {why}")
+    rng = np.random.default_rng(seed)
+    mrt_min = float(np.nanmin(mrt)) if np.ndim(mrt) else float(mrt)
+    d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
+    life_mrt, life_leak = _part_lives(c.nominal - d, mrt_min, floor_rule(rng, d))
+    if spots is not None and len(spots[0]):
+        s_mrt, s_leak = _spot_lives(spots, c.nominal, mrt_min, lambda x: floor_rule(rng, x), n_draws, rng)
+        life_mrt, life_leak = np.minimum(life_mrt, s_mrt), np.minimum(life_leak, s_leak)
+    return LifeDistribution(life_mrt, life_leak, n_cells=c.n, n_kept=0, hidden_T=T, p_hidden_governs=1.0,
+                            notes=(NOT_SCANNED,), unseen=(life_mrt, life_leak))
+
+
+def _spot_lives(spots, nominal, mrt, rule, n_draws, rng):
+    """Lives to MRT and to a leak of a zone's spot readings, the least over the spots per
+    draw: each spot's thickness drawn around its reading (normal, the readings' sigma,
+    truncated at ±4 sd), its rate the greater of the similar-depth rule at its loss and the
+    rate measured at the spot (one reading says nothing of its own rate; a short-term rate
+    from two outages' readings at the spot is kept where it is faster)."""
+    t, r_meas, sig = np.asarray(spots[0], float), np.asarray(spots[1], float), float(spots[2])
+    shape = (n_draws, t.size)
+    tk = t + sig * np.clip(rng.standard_normal(shape), -TRUNC_SD, TRUNC_SD)
+    d = np.broadcast_to(np.maximum(nominal - t, 0.0), shape).ravel()
+    rk = np.fmax(rule(d).reshape(shape), np.nan_to_num(r_meas, nan=0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return _life(tk - mrt, rk).min(axis=1), _life(tk, rk).min(axis=1)
 
 
 def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
@@ -895,7 +974,7 @@ def _hidden_rate_post(rng, d, depth_meas, par, prior):
 
 def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,
                        n_draws=2000, seed=0, shrink=True, both_readings=True, sigma_old_extra=0.0,
-                       floor_extremes=None) -> dict:
+                       floor_extremes=None, spots=None, as_found=None) -> dict:
     """:func:`zone_life_distribution` for every zone of a floor.
 
     Parameters
@@ -923,7 +1002,17 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     floor_extremes : ZoneExtremes, optional
         The whole floor's depth statistics (:func:`scananalyse.evlife.floor_fit`), lent to
         a zone whose own fit failed, as its extreme-value life borrows them: without it
-        such a zone's unscanned part would be left out of its distribution. [-]
+        such a zone's unscanned part would be left out of its distribution.  A zone with
+        no scanned cell is then drawn over its whole area, at the rates of the floor's
+        measured cells of similar depth (:func:`floor_rate_rule`). [-]
+    spots : dict, optional
+        Zone name -> (thickness (k,), rate (k,), sigma) of the newer spot readings on cells
+        the scan has no value at (:func:`scananalyse.readings.zone_spots`; sigma NaN: the
+        scan's, ``sigma_t``, its median where a map). [mm], [mm/y], [mm]
+    as_found : dict, optional
+        This function's result on the floor as found, given for a repaired floor: each
+        zone's unscanned part and spots are taken from it, not drawn again (a repair
+        changes none of that metal). [-]
 
     Returns
     -------
@@ -934,6 +1023,8 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     sig_map = np.ndim(sigma_t) > 0
     old_map = _older_readings(thickness, rates) if both_readings else None
     s_old = float(np.hypot(rates.sigma_old, sigma_old_extra)) if old_map is not None else None
+    s_scan = float(np.nanmedian(sigma_t) if sig_map else sigma_t)
+    floor_rule = []  # made once, when a zone nobody scanned needs it
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
@@ -949,20 +1040,56 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         cov = float(np.mean(ze.blocks.coverage)) if ze and getattr(ze, "blocks", None) is not None else 1.0
         T = hidden_mm2 / (block ** 2 * cov) if fit is not None and np.isfinite(block) and cov > 0 else 0.0
         cens = rates.censored[sel] if rates.censored is not None else None
-        # measured: the point is not above both sides' measured (short/long-term) rates
-        meas = np.ones(int(sel.sum()), bool)
-        for pnt, sh, lg in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top),
-                            (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
-            m = np.fmax(sh[sel], lg[sel])
-            meas &= ~(np.nan_to_num(pnt[sel]) > np.nan_to_num(m) + 1e-6)
+        unseen = as_found[name].unseen if as_found and name in as_found else None
+        if not sel.any() and fit is not None and not floor_rule and unseen is None:
+            floor_rule.append(floor_rate_rule(thickness, rates, zmap.labels >= 0, nominal=nominal, sigma_t=sigma_t,
+                                              shrink=shrink))
+        zs = (spots or {}).get(name)
         out[name] = zone_life_distribution(
             thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
-            rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel], mrt_map[sel],
-            sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens, measured=meas,
+            rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel],
+            mrt_map[sel] if sel.any() else float(np.min(mrt_map[mask], initial=np.inf)),
+            sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens,
+            measured=_measured(rates, sel),
             threshold=rates.threshold, hidden_fit=fit, hidden_T=T, n_draws=n_draws, seed=seed + k,
             shrink=shrink, older=None if old_map is None else old_map[sel], sigma_old=s_old,
-            dt_years=rates.dt_years if old_map is not None else None)
+            dt_years=rates.dt_years if old_map is not None else None,
+            spots=None if zs is None else (zs[0], zs[1], zs[2] if np.isfinite(zs[2]) else s_scan),
+            floor_rule=floor_rule[0] if floor_rule else None, unseen=unseen)
     return out
+
+
+def _measured(rates, sel):
+    """Cells of ``sel`` whose rates were measured: the point is not above both sides'
+    measured (short- or long-term) rates (an assumed rate is)."""
+    meas = np.ones(int(np.count_nonzero(sel)), bool)
+    for pnt, sh, lg in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top),
+                        (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
+        m = np.fmax(sh[sel], lg[sel])
+        meas &= ~(np.nan_to_num(pnt[sel]) > np.nan_to_num(m) + 1e-6)
+    return meas
+
+
+def floor_rate_rule(thickness, rates, mask, *, nominal, sigma_t, shrink=True):
+    """The similar-depth rate rule over the measured, uncensored cells of ``mask`` (the
+    whole floor), as ``rule(rng, d)`` -> rate draws at depths ``d``; None when ``mask``
+    holds no scanned cell.  Lent to a zone nobody scanned, as its extreme-value life
+    borrows the floor's projection (:func:`scananalyse.evlife.hidden_parts`)."""
+    sel = mask & np.isfinite(thickness)
+    if not sel.any():
+        return None
+    arrs = (rates.rate_top, rates.rate_under, rates.rate_top_lo, rates.rate_top_hi, rates.rate_under_lo,
+            rates.rate_under_hi)
+    c = _scanned_cells(thickness[sel], tuple(a[sel] for a in arrs), 0.0,
+                       sigma_t=sigma_t[sel] if np.ndim(sigma_t) else sigma_t, nominal=nominal,
+                       censored=rates.censored[sel] if rates.censored is not None else None,
+                       threshold=rates.threshold, measured=_measured(rates, sel))
+    if not shrink:
+        ref_rates = tuple(a[c.ref] for a in c.side_rates)
+        return lambda rng, d: _hidden_rate(rng, d, c.ref_depth, *ref_rates)
+    ref_par = tuple(x[c.ref] for x in _total_rate(*c.side_rates, assumed=~c.meas))
+    prior = _fit_prior(ref_par)
+    return lambda rng, d: _hidden_rate_post(rng, d, c.ref_depth, ref_par, prior)
 
 
 def _older_readings(thickness, rates):

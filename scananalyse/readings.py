@@ -70,6 +70,8 @@ __all__ = [
     "apply_new_readings",
     "apply_old_readings",
     "add_reading_zones",
+    "off_scan",
+    "zone_spots",
     "readings_result",
     "FORMAT_NAME",
     "FORMAT_VERSION",
@@ -865,6 +867,37 @@ SUMMARY_COLUMNS = (
 )
 
 
+def off_scan(readings: Readings, scan) -> Readings:
+    """The readings on cells ``scan`` has no value at (or off its grid): points, not in the
+    thickness grid (:func:`apply_readings` writes only readings on scanned cells)."""
+    keep = ~pair_readings(readings, scan)["scanned"].to_numpy(bool)
+    return dataclasses.replace(readings, table=readings.table[keep].reset_index(drop=True))
+
+
+def zone_spots(readings_new, readings_old=None, *, zones, nominal_mm: float, installed=None,
+               critical_width_mm: float = 75.0) -> dict:
+    """The newer spot readings by zone, as the life distribution takes them.
+
+    Parameters
+    ----------
+    readings_new, readings_old, zones, nominal_mm, installed, critical_width_mm :
+        As :func:`reading_zone_summary` (``readings_new`` usually :func:`off_scan`).
+
+    Returns
+    -------
+    dict : zone name -> (thickness (k,) [mm], rate (k,) [mm/y], NaN where the spot has
+    none, the readings' sigma [mm], NaN when the file gives none), from
+    :func:`reading_spots`; zones with no reading are left out.
+    """
+    if not len(readings_new):
+        return {}
+    spots = reading_spots(readings_new, readings_old, nominal_mm=nominal_mm, installed=installed)
+    zone = reading_zones(spots, zones, critical_width_mm=critical_width_mm)
+    t, r = spots["t_mm"].to_numpy(float), spots["rate_mm_y"].to_numpy(float)
+    sig = float(readings_new.sigma_mm) if readings_new.sigma_mm is not None else math.nan
+    return {name: (t[zone == name], r[zone == name], sig) for name in zones.names if np.any(zone == name)}
+
+
 def _mrt_of(mrt_mm, zone: str, zones) -> float:
     """MRT of ``zone`` from a number, a ``{zone: MRT}`` mapping or an array by zone label; NaN if absent."""
     if isinstance(mrt_mm, dict):
@@ -1179,7 +1212,7 @@ def apply_old_readings(old: FloorScan, readings, new: FloorScan, job: Job, readi
 
 
 def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, inspected,
-                      hidden: dict | None = None) -> pd.DataFrame:
+                      hidden: dict | None = None, code_of=None) -> pd.DataFrame:
     """The zone table with the spot readings' zone summary added.
 
     Parameters
@@ -1190,6 +1223,8 @@ def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, insp
     inspected : date of the newer inspection (``next_due``).
     hidden : zone name -> :class:`~scananalyse.evlife.HiddenPart` of the floor as found
         (:func:`~scananalyse.evlife.hidden_parts`): the floor between the readings.
+    code_of : ``code_of(rtbc, rtip, mrt)`` -> :class:`~scananalyse.assess.CodeResult`, the
+        code formula of the scanned zones (their method and threshold), or None.
 
     Returns
     -------
@@ -1197,7 +1232,10 @@ def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, insp
     readings takes the readings' thinnest value, code interval and co-located life in
     place of the ``no-data`` NaNs, and the extreme-value life of its unseen floor,
     flagged ``readings-only;points-only`` (``no-data`` stays only where nothing at all
-    was read).
+    was read).  In a scanned zone the readings are measured metal too: the thinnest
+    reading lowers ``t_min_mm``, RTbc and RTip (the code formula is rerun with
+    ``code_of``), the readings' co-located life lowers ``life_local_y``, and where that
+    shortens the recommendation the row says so (``readings-govern``).
 
     Notes
     -----
@@ -1218,9 +1256,12 @@ def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, insp
     for i in out.index:
         z = out.at[i, "zone"]
         flags = str(out.at[i, "flags"]).split(";") if isinstance(out.at[i, "flags"], str) else []
-        if z not in s.index or "no-data" not in flags:
+        if z not in s.index:
             continue
         r = s.loc[z]
+        if "no-data" not in flags:
+            _readings_in_scanned(out, i, r, flags, rules=rules, inspected=inspected, code_of=code_of)
+            continue
         for col in ("t_min_mm", "interval_code_y", "life_local_y", "rtbc_mm", "rtip_mm", "stpr_mm_y", "upr_mm_y"):
             if col in out.columns:
                 out.at[i, col] = float(r[col])
@@ -1238,6 +1279,54 @@ def add_reading_zones(table: pd.DataFrame, summary: pd.DataFrame, *, rules, insp
         out.at[i, "flags"] = ";".join(["readings-only", "points-only"] + rflags + eflags)
         out.at[i, "notes"] = f"no scanned cell; from {int(r['n_readings'])} spot readings: " + str(r["notes"])
     return out
+
+
+def _readings_in_scanned(out: pd.DataFrame, i, r, flags, *, rules, inspected, code_of) -> None:
+    """Row ``i`` of a scanned zone with the readings' summary ``r`` taken in (see
+    :func:`add_reading_zones`): a reading is never ignored because the scan is there."""
+    def get(col):
+        return float(out.at[i, col]) if col in out.columns else math.nan
+
+    said = []
+    if float(r["t_min_mm"]) < get("t_min_mm"):
+        out.at[i, "t_min_mm"] = float(r["t_min_mm"])
+        said.append(f"thinnest reading {float(r['t_min_mm']):.2f} mm at ({float(r['x_t_min_mm']):.0f}, "
+                    f"{float(r['y_t_min_mm']):.0f}) mm")
+    code = get("interval_code_y")
+    rtbc, rtip = (min(get(c), float(r[c])) for c in ("rtbc_mm", "rtip_mm"))
+    if code_of is not None and (rtbc < get("rtbc_mm") or rtip < get("rtip_mm")):
+        cr = code_of(rtbc, rtip, get("mrt_mm"))
+        for col, value in (("rtbc_mm", rtbc), ("rtip_mm", rtip), ("stpr_mm_y", cr.stpr), ("upr_mm_y", cr.upr),
+                           ("t_used_upr_mm", cr.t_used_upr), ("interval_code_y", cr.interval_y)):
+            if col in out.columns:
+                out.at[i, col] = value
+        if not cr.interval_y >= code:
+            said.append(f"code interval {cr.interval_y:.1f} y with the readings' RTbc/RTip")
+        code = cr.interval_y
+    local, r_local = get("life_local_y"), float(r["life_local_y"])
+    if r_local < local or (math.isnan(local) and not math.isnan(r_local)):
+        out.at[i, "life_local_y"] = local = r_local
+        said.append(f"co-located life {r_local:.1f} y at the readings")
+    if not said:
+        return
+    if float(r["t_min_mm"]) < get("mrt_mm") and "below-mrt" not in flags:  # measured metal below MRT
+        flags.append("below-mrt")
+        said.append("below MRT at that reading: the patch plan, made from the scan, does not cover it")
+        out.at[i, "flags"] = ";".join(f for f in flags if f)
+    rec = get("interval_recommended_y")
+    best = min((v for v in (code, local) if not math.isnan(v)), default=math.nan)
+    if best < rec or (math.isnan(rec) and not math.isnan(best)):
+        new = rules.round_interval(max(best, 0.0))
+        if new < rec or math.isnan(rec):
+            out.at[i, "interval_recommended_y"] = new
+            out.at[i, "limiting"] = "code" if best == code else "local"
+            out.at[i, "next_due"] = add_years(inspected, new).isoformat()
+            flags.append("readings-govern")
+            out.at[i, "flags"] = ";".join(f for f in flags if f)
+    note = "spot readings on this zone: " + "; ".join(said)
+    old = out.at[i, "notes"] if "notes" in out.columns else ""
+    if "notes" in out.columns:
+        out.at[i, "notes"] = "; ".join(x for x in (str(old) if isinstance(old, str) else "", note) if x)
 
 
 def _unseen_floor(out: pd.DataFrame, i, h) -> tuple[float, list]:

@@ -1080,141 +1080,173 @@ def _gradient_samples(new_lv: _Level, n_samples: int) -> np.ndarray:
     return idx
 
 
+@dataclass(eq=False)
+class _Samples:
+    """The refinement's sample cells of the newer level (positions ``px``, ``py`` [mm], smoothed
+    values ``fv``), matched in the older level ``old_lv``; ``rchar`` scales the rotation to a
+    length (RMS distance of the samples from the origin). [mm]"""
+
+    old_lv: _Level
+    px: np.ndarray
+    py: np.ndarray
+    fv: np.ndarray
+    rchar: float
+
+    @classmethod
+    def of(cls, new_lv: _Level, old_lv: _Level, idx: np.ndarray) -> "_Samples":
+        fn = new_lv.smooth
+        rr, cc = np.divmod(idx, fn.shape[1])
+        px = new_lv.x0 + cc * new_lv.pitch
+        py = new_lv.y0 + rr * new_lv.pitch
+        rchar = float(np.sqrt(np.mean(px * px + py * py))) or 1.0
+        return cls(old_lv, px, py, fn.ravel()[idx].astype(np.float64), rchar)
+
+    def warp(self, params):
+        """The older level's smoothed values at the samples carried by ``params`` (theta, dx,
+        dy, gain, offset): ``(values, inside, qx, qy, cos theta, sin theta)``."""
+        th_, dx_, dy_ = params[:3]
+        c, s = math.cos(th_), math.sin(th_)
+        vx = self.px - dx_
+        vy = self.py - dy_
+        qx = c * vx + s * vy
+        qy = -s * vx + c * vy
+        g, inside = _sample_level(self.old_lv, self.old_lv.smooth, qx, qy)
+        return g, inside, qx, qy, c, s
+
+    def try_step(self, params, step, k):
+        """``(cost, warp, params)`` after ``step`` (theta scaled by ``rchar``), None if fewer than
+        50 samples stay inside the older level."""
+        trial = params + step * np.array([1.0 / self.rchar, 1, 1, 1, 1])
+        state = self.warp(trial)
+        g_t, in_t = state[0], state[1]
+        if np.count_nonzero(in_t) < 50:
+            return None
+        return _huber_cost(trial[3] * g_t[in_t] + trial[4] - self.fv[in_t], k), state, trial
+
+
+def _huber_cost(r, k):
+    """Mean Huber loss of the residuals ``r`` with threshold ``k``."""
+    a = np.abs(r)
+    return float(np.mean(np.where(a <= k, 0.5 * r * r, k * (a - 0.5 * k))))
+
+
+def _photometric_start(sm: _Samples, params, state):
+    """Gain and offset by least squares before the geometric steps (kept only for a positive
+    gain), and the Huber threshold from the residuals' MAD, fixed for the level:
+    ``(params, k, cost)``."""
+    g, inside = state[0], state[1]
+    A = np.column_stack([g[inside], np.ones(np.count_nonzero(inside))])
+    sol, *_ = np.linalg.lstsq(A, sm.fv[inside], rcond=None)
+    if sol[0] > 1e-6:
+        params[3], params[4] = sol
+    r_all = params[3] * g[inside] + params[4] - sm.fv[inside]
+    mad = np.median(np.abs(r_all - np.median(r_all))) * 1.4826
+    k = 2.0 * max(mad, 1e-6)
+    return params, k, _huber_cost(r_all, k)
+
+
+def _normal_equations(sm: _Samples, params, state, k):
+    """The Huber-weighted Gauss-Newton normal equations at ``params``: ``(H, grad, s2, n)``,
+    s2 the weighted residual variance and n the residuals' count."""
+    g, inside, qx, qy, c, s = state
+    gxo, gyo = sm.old_lv.grad
+    gx, _ = _sample_level(sm.old_lv, gxo, qx, qy)
+    gy, _ = _sample_level(sm.old_lv, gyo, qx, qy)
+    gi = g[inside].astype(np.float64)
+    gx = gx[inside].astype(np.float64)
+    gy = gy[inside].astype(np.float64)
+    qxi, qyi = qx[inside], qy[inside]
+    gain = params[3]
+    r = gain * gi + params[4] - sm.fv[inside]
+    J = np.column_stack([
+        gain * (gx * qyi - gy * qxi) / sm.rchar,         # d r / d(theta * rchar)
+        gain * (-gx * c + gy * s),                       # d r / d dx
+        gain * (-gx * s - gy * c),                       # d r / d dy
+        gi,                                              # d r / d gain
+        np.ones_like(gi),                                # d r / d offset
+    ])
+    wts = np.minimum(1.0, k / np.maximum(np.abs(r), 1e-12))
+    JW = J * wts[:, None]
+    return JW.T @ J, JW.T @ r, float(np.sum(wts * r * r) / max(1, r.size - 5)), r.size
+
+
+def _damped_step(sm: _Samples, params, cost, H, grad, n_res, lam, k, pitch):
+    """One Levenberg-Marquardt step: ``(tried, lam)``, ``tried`` = ``(cost, warp, params)`` of
+    the step kept, or None when no damping up to 10^11 times ``lam`` lowers the robust cost
+    (or the system is singular).
+
+    A step is at most one cell (``pitch``) of displacement.  Parabolic line search along it
+    (cost at 0 and 1, slope at 0): the Gauss-Newton model neglects the residual curvature
+    term, and near seams whose two pictures differ the true curvature can be twice the
+    model's, so full steps overshoot and the iterates zig-zag across the minimum (the cause
+    of non-convergence on some floors).
+    """
+    for _ in range(12):
+        Hd = H + lam * np.diag(np.diag(H))
+        try:
+            step = -np.linalg.solve(Hd, grad)
+        except np.linalg.LinAlgError:
+            break
+        geo = math.hypot(step[0], math.hypot(step[1], step[2]))
+        if geo > pitch:
+            step *= pitch / geo
+        tried = sm.try_step(params, step, k)
+        if tried is None:
+            lam *= 10
+            continue
+        slope = float(grad @ step) / max(1, n_res)
+        a2 = (tried[0] - cost) - slope
+        if slope < 0 and a2 > 0:
+            t_star = -slope / (2.0 * a2)
+            if 0.05 <= t_star <= 0.85:
+                short = sm.try_step(params, step * t_star, k)
+                if short is not None and short[0] < tried[0]:
+                    tried = short
+        if tried[0] <= cost:
+            return tried, max(lam / 10, 1e-7)
+        lam *= 10
+    return None, lam
+
+
 def _refine_level(new_lv: _Level, old_lv: _Level, tr: RigidTransform, *, n_samples: int,
                   max_iter: int = 20, tol_cells: float = 0.005, lam0: float = 1e-3):
     """Gauss-Newton / Levenberg-Marquardt fit of (theta, dx, dy, gain, offset) on one level.
 
     ``lam0`` is the starting damping (large for a restart after a failed run).
     """
-    fn = new_lv.smooth
-    w = fn.shape[1]
     idx = _gradient_samples(new_lv, n_samples)
     n = int(idx.size)
     if n < 50:
         return tr, {"converged": False, "n": n, "iterations": 0, "cov": None}
-    rr, cc = np.divmod(idx, w)
-    px = new_lv.x0 + cc * new_lv.pitch
-    py = new_lv.y0 + rr * new_lv.pitch
-    fv = fn.ravel()[idx].astype(np.float64)
-    go = old_lv.smooth
-    gxo, gyo = old_lv.grad
-    th, dx, dy = tr.theta, tr.dx_mm, tr.dy_mm
-    gain, off = 1.0, 0.0
-    rchar = float(np.sqrt(np.mean(px * px + py * py))) or 1.0
+    sm = _Samples.of(new_lv, old_lv, idx)
     pitch = new_lv.pitch
-    converged = False
-    cov = None
-    it = 0
-
-    def evaluate(params):
-        th_, dx_, dy_, gain_, off_ = params
-        c, s = math.cos(th_), math.sin(th_)
-        vx = px - dx_
-        vy = py - dy_
-        qx = c * vx + s * vy
-        qy = -s * vx + c * vy
-        g, inside = _sample_level(old_lv, go, qx, qy)
-        return g, inside, qx, qy, c, s
-
-    def huber_cost(r, k):
-        a = np.abs(r)
-        return float(np.mean(np.where(a <= k, 0.5 * r * r, k * (a - 0.5 * k))))
-
-    def try_step(step):
-        """(cost, state, params) after ``step`` (theta scaled by rchar), None if too few samples."""
-        trial = params + step * np.array([1.0 / rchar, 1, 1, 1, 1])
-        state = evaluate(trial)
-        g_t, in_t = state[0], state[1]
-        if np.count_nonzero(in_t) < 50:
-            return None
-        return huber_cost(trial[3] * g_t[in_t] + trial[4] - fv[in_t], k), state, trial
-
-    params = np.array([th, dx, dy, gain, off], dtype=np.float64)
-    g, inside, qx, qy, c, s = evaluate(params)
-    if np.count_nonzero(inside) < 50:
+    params = np.array([tr.theta, tr.dx_mm, tr.dy_mm, 1.0, 0.0], dtype=np.float64)
+    state = sm.warp(params)
+    if np.count_nonzero(state[1]) < 50:
         return tr, {"converged": False, "n": n, "iterations": 0, "cov": None}
-    # photometric gain and offset by least squares before the geometric steps
-    A = np.column_stack([g[inside], np.ones(np.count_nonzero(inside))])
-    sol, *_ = np.linalg.lstsq(A, fv[inside], rcond=None)
-    if sol[0] > 1e-6:
-        params[3], params[4] = sol
-    r_all = params[3] * g[inside] + params[4] - fv[inside]
-    mad = np.median(np.abs(r_all - np.median(r_all))) * 1.4826
-    k = 2.0 * max(mad, 1e-6)          # Huber threshold, fixed for the level
-    cost = huber_cost(r_all, k)
+    params, k, cost = _photometric_start(sm, params, state)
     lam = lam0
-    H = None
-    s2 = None
+    converged = False
+    H = s2 = cov = None
+    it = 0
     for it in range(1, max_iter + 1):
-        gx, _ = _sample_level(old_lv, gxo, qx, qy)
-        gy, _ = _sample_level(old_lv, gyo, qx, qy)
-        gi = g[inside].astype(np.float64)
-        gx = gx[inside].astype(np.float64)
-        gy = gy[inside].astype(np.float64)
-        qxi, qyi = qx[inside], qy[inside]
-        gain = params[3]
-        r = gain * gi + params[4] - fv[inside]
-        J = np.column_stack([
-            gain * (gx * qyi - gy * qxi) / rchar,           # d r / d(theta * rchar)
-            gain * (-gx * c + gy * s),                       # d r / d dx
-            gain * (-gx * s - gy * c),                       # d r / d dy
-            gi,                                              # d r / d gain
-            np.ones_like(gi),                                # d r / d offset
-        ])
-        wts = np.minimum(1.0, k / np.maximum(np.abs(r), 1e-12))
-        JW = J * wts[:, None]
-        H = JW.T @ J
-        grad = JW.T @ r
-        s2 = float(np.sum(wts * r * r) / max(1, r.size - 5))
-        accepted = False
-        taken = np.zeros(5)
-        for _ in range(12):
-            # Levenberg-Marquardt damping; a step is kept only if the robust cost drops
-            Hd = H + lam * np.diag(np.diag(H))
-            try:
-                step = -np.linalg.solve(Hd, grad)
-            except np.linalg.LinAlgError:
-                break
-            geo = math.hypot(step[0], math.hypot(step[1], step[2]))
-            if geo > pitch:            # at most one cell of displacement per step
-                step *= pitch / geo
-            tried = try_step(step)
-            if tried is None:
-                lam *= 10
-                continue
-            # Parabolic line search along the step (cost at 0 and 1, slope at 0): the Gauss-Newton
-            # model neglects the residual curvature term, and near seams whose two pictures differ
-            # the true curvature can be twice the model's, so full steps overshoot and the
-            # iterates zig-zag across the minimum (the cause of non-convergence on some floors).
-            slope = float(grad @ step) / max(1, r.size)
-            a2 = (tried[0] - cost) - slope
-            if slope < 0 and a2 > 0:
-                t_star = -slope / (2.0 * a2)
-                if 0.05 <= t_star <= 0.85:
-                    short = try_step(step * t_star)
-                    if short is not None and short[0] < tried[0]:
-                        tried = short
-            if tried[0] <= cost:
-                cost = tried[0]
-                taken = tried[2] - params
-                params = tried[2]
-                g, inside, qx, qy, c, s = tried[1]
-                lam = max(lam / 10, 1e-7)
-                accepted = True
-                break
-            lam *= 10
-        if not accepted:
+        H, grad, s2, n_res = _normal_equations(sm, params, state, k)
+        tried, lam = _damped_step(sm, params, cost, H, grad, n_res, lam, k, pitch)
+        if tried is None:
             converged = lam > 1e3     # no further descent possible: at the minimum
             break
-        if abs(taken[0]) * rchar < tol_cells * pitch and math.hypot(taken[1], taken[2]) < tol_cells * pitch:
+        cost, state = tried[0], tried[1]
+        taken = tried[2] - params
+        params = tried[2]
+        if abs(taken[0]) * sm.rchar < tol_cells * pitch and math.hypot(taken[1], taken[2]) < tol_cells * pitch:
             converged = True
             break
     th, dx, dy, gain, off = (float(v) for v in params)
     if converged and H is not None:
         try:
             cov = np.linalg.inv(H) * s2
-            cov[0, :] /= rchar
-            cov[:, 0] /= rchar
+            cov[0, :] /= sm.rchar
+            cov[:, 0] /= sm.rchar
         except np.linalg.LinAlgError:
             cov = None
     out = RigidTransform(math.degrees(th), float(dx), float(dy))

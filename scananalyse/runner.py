@@ -30,7 +30,7 @@ from .report.dxf import patch_locations, write_patches_dxf
 from .report import figures as F
 from .report.content import actions, report_data
 from .report.figlist import figure_specs, file_stem
-from .report.units import text_in_units, with_unit
+from .report.units import diameter_text, text_in_units, with_unit
 from .report.html import write_report
 from .report.pdf import write_pdf
 from .scan import to_display
@@ -62,11 +62,13 @@ class CompareResult:
     single: bool
     files: list
     notes: list = field(default_factory=list)
+    diameter: str = ""  # as the report shows it (:func:`~scananalyse.report.units.diameter_text`)
 
     def console_summary(self) -> str:
         u = self.units
         lu = "in" if u == "in" else "mm"
         lines = [f"scananalyse {__version__}: tank {self.tank or '-'}"
+                 + (f", diameter {self.diameter}" if self.diameter else "")
                  + (" (one inspection: long-term rates only)" if self.single else "")]
         if self.registration:
             lines.append(_registration_line(self.registration, u))
@@ -101,11 +103,16 @@ class CompareResult:
 
 def _registration_line(r: dict, units: str) -> str:
     """The console's line on the registration, the shift in mm or inches."""
+    return (f"registration: {_rotation_shift(r, units)}, score {r['score'] or 0:.2f}, overlap {r['overlap_pct'] or 0:.1f} %"
+            + ("" if r["reliable"] else "  ** UNRELIABLE **"))
+
+
+def _rotation_shift(r: dict, units: str) -> str:
+    """``rotation 1.500 deg, shift (60.0, -40.0) mm`` of a registration.json dict, the shift
+    in mm or inches."""
     dx, dy = (to_display(r[k], units) for k in ("dx_mm", "dy_mm"))
     nd = 3 if units == "in" else 1
-    return (f"registration: rotation {r['rotation_deg']:.3f} deg, shift ({dx:.{nd}f}, {dy:.{nd}f}) "
-            f"{'in' if units == 'in' else 'mm'}, score {r['score'] or 0:.2f}, overlap {r['overlap_pct'] or 0:.1f} %"
-            + ("" if r["reliable"] else "  ** UNRELIABLE **"))
+    return f"rotation {r['rotation_deg']:.3f} deg, shift ({dx:.{nd}f}, {dy:.{nd}f}) {'in' if units == 'in' else 'mm'}"
 
 
 def _patches_line(n: int, area_m2: float, zones, zones_repaired, units: str) -> str:
@@ -280,7 +287,16 @@ def _run(old_path, new_path, *, job, out_dir, force, quiet, single) -> CompareRe
                          patches=an.patches, indications=an.indications, registration=reg,
                          report_path=str(Path(out_dir) / "report.html"), units=job.units,
                          tank=an.new.meta.tank, single=single, files=files,
-                         notes=actions(an, job.units) + list(an.notes) + ([an.patch_note] if an.patch_note else []))
+                         notes=actions(an, job.units) + list(an.notes) + ([an.patch_note] if an.patch_note else []),
+                         diameter=_diameter_shown(an.zones.geometry.diameter_mm, an.job.typed.get("diameter"),
+                                                  job.units))
+
+
+def _diameter_shown(diameter_mm: float, typed, units: str) -> str:
+    """The tank diameter for the console, as the report shows it: as the user gave it, with
+    feet and inches and the mm value where inches are involved; else ``"8000 mm"``."""
+    d = diameter_text(diameter_mm, typed, units)
+    return d if isinstance(d, str) else f"{d:g} mm"
 
 
 def compare(old_path, new_path, *, job: Job, out_dir, force: bool = False, quiet: bool = False) -> CompareResult:
@@ -293,8 +309,10 @@ def assess_single(scan_path, *, job: Job, out_dir, force: bool = False, quiet: b
     return _run(None, scan_path, job=job, out_dir=out_dir, force=force, quiet=quiet, single=True)
 
 
-def register_files(old_path, new_path, *, out_dir, control_points=None, force=False, quiet=False) -> dict:
-    """Register two scan files and write ``out_dir/registration.json``."""
+def register_files(old_path, new_path, *, out_dir, control_points=None, force=False, quiet=False,
+                   units: str = "mm") -> dict:
+    """Register two scan files and write ``out_dir/registration.json`` (mm); the summary's
+    numbers in the display ``units`` (the shift in mm or inches, the misfit in mm or mils)."""
     _check_out_dir(out_dir, force)
     prog = Progress(["load", "registration"], quiet=quiet)
     with prog.stage("load"):
@@ -306,10 +324,11 @@ def register_files(old_path, new_path, *, out_dir, control_points=None, force=Fa
         d = reg.to_dict()
         write_json(d, Path(tmp) / "registration.json")
     prog.finish()
-    summary = (f"rotation {d['rotation_deg']:.3f} deg, shift ({d['dx_mm']:.1f}, {d['dy_mm']:.1f}) mm, "
-               f"score {d['score'] or 0:.2f}, overlap {d['overlap_pct'] or 0:.1f} %, "
-               f"residual RMS {d['residual_rms_mm'] or float('nan'):.3f} mm, method {d['method']}"
-               + ("" if d["reliable"] else " -- UNRELIABLE: " + "; ".join(d["warnings"]))
+    rms = d["residual_rms_mm"] or float("nan")
+    summary = (f"{_rotation_shift(d, units)}, score {d['score'] or 0:.2f}, overlap {d['overlap_pct'] or 0:.1f} %, "
+               f"residual RMS {f'{rms:.3f} mm' if units == 'mm' else with_unit(rms, 'depth', units)}, "
+               f"method {d['method']}"
+               + ("" if d["reliable"] else " -- UNRELIABLE: " + text_in_units("; ".join(d["warnings"]), units))
                + f"\nwrote {Path(out_dir) / 'registration.json'}")
     return {"registration": d, "summary": summary}
 

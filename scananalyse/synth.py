@@ -722,6 +722,17 @@ def _check_positive(name, value):
         raise ValueError(f"{name} must be positive, got {value}")
 
 
+def _checked_inputs(dates: dict, **positive) -> list:
+    """``dates`` (name -> ``datetime.date`` or ISO string) as dates, once each of ``positive``
+    (name -> value) is checked to be positive and the dates to be in the order given."""
+    out = [_as_date(d) for d in dates.values()]
+    for name, v in positive.items():
+        _check_positive(name, v)
+    if not all(a < b for a, b in zip(out, out[1:])):
+        raise ValueError("dates must satisfy " + " < ".join(dates))
+    return out
+
+
 def _defaults_coverage(R, cx, cy, *, margin, sump, obstruction, sump_xy, sump_radius_mm,
                        column_xy, column_mm, temp_obstruction):
     sump_t = None
@@ -736,6 +747,93 @@ def _defaults_coverage(R, cx, cy, *, margin, sump, obstruction, sump_xy, sump_ra
         if temp_obstruction:
             rects.append((cx + 0.05 * R, cy - 0.62 * R, cx + 0.45 * R, cy - 0.50 * R))
     return sump_t, rects
+
+
+def _low_spot(R, cx, cy, low_spot):
+    """The top-side cluster's (x, y, spread): as given, else near the shell towards the
+    draw-off (south-west)."""
+    if low_spot is not None:
+        return low_spot
+    ang = math.radians(225.0)
+    return (cx + 0.62 * R * math.cos(ang), cy + 0.62 * R * math.sin(ang), 0.12 * R)
+
+
+def _pair_coverage(R, cx, cy, *, margin, margin_old, sump, obstruction, sump_xy, sump_radius_mm,
+                   column_xy, column_mm):
+    """What the newer and the older scan cover: the same sump and column base, a wider shell
+    margin and a temporary obstruction in the older one. Returns ``(cov_new, cov_old)``."""
+    sump_t, rects = _defaults_coverage(R, cx, cy, margin=margin, sump=sump, obstruction=obstruction,
+                                       sump_xy=sump_xy, sump_radius_mm=sump_radius_mm, column_xy=column_xy,
+                                       column_mm=column_mm, temp_obstruction=True)
+    return _Coverage(margin, sump_t, tuple(rects[:1])), _Coverage(margin_old, sump_t, tuple(rects))
+
+
+def _pair_grids(R, cx, cy, pitch_new, pitch_old, rotation_deg, shift_mm):
+    """The newer scan's grid in the floor frame and the older one's in its own frame
+    (old -> floor = the rotation and shift). Returns ``(g_new, g_old)``."""
+    tr = _Transform(float(rotation_deg), float(shift_mm[0]), float(shift_mm[1]))
+    g_new = _grid_covering(R, (cx, cy), pitch_new, _Transform(0.0, 0.0, 0.0))
+    c_old = tr.inverse().apply(cx, cy)
+    return g_new, _grid_covering(R, (float(c_old[0]), float(c_old[1])), pitch_old, tr)
+
+
+def _true_thickness(maps: dict, nominal) -> np.ndarray:
+    """Nominal less both faces' loss of :meth:`_Floor.render`'s maps (float32). [mm]"""
+    return (np.float32(nominal) - maps["loss_top"] - maps["loss_under"]).astype(np.float32)
+
+
+@dataclass(eq=False)
+class _Seen:
+    """One simulated inspection on its grid: the truth maps (:meth:`_Floor.render`), the true
+    thickness, the scanned mask, the readings, the side layer (or None) and the plate ids."""
+
+    grid: _Grid
+    X: np.ndarray
+    Y: np.ndarray
+    maps: dict
+    t_true: np.ndarray
+    covered: np.ndarray
+    read: np.ndarray
+    side: np.ndarray | None
+    plate: np.ndarray
+
+    def scan(self, meta: ScanMeta) -> FloorScan:
+        g = self.grid
+        return FloorScan(self.read, g.x0, g.y0, g.pitch, meta, side=self.side, plate=self.plate)
+
+
+def _inspect(floor: _Floor, grid: _Grid, cov: _Coverage, age: float, *, side_layer: bool, nominal, method,
+             threshold, sigma, resolution, rng) -> _Seen:
+    """Inspect ``floor`` at ``age`` [y since installation] on ``grid``: readings with noise
+    drawn from ``rng``, a side layer of the detected top-side pits if ``side_layer``."""
+    X, Y = grid.floor_xy()
+    maps = floor.render(grid, age, X, Y, owner_side=SIDE_TOP if side_layer else None)
+    t_true = _true_thickness(maps, nominal)
+    covered = cov.mask(floor, X, Y)
+    read = _measure(t_true, covered, nominal=nominal, method=method, threshold=threshold, sigma=sigma,
+                    resolution=resolution, rng=rng)
+    side = (_side_layer(read, maps["owner"], maps["pit_top"], floor, grid, nominal=nominal,
+                        level=_detect_level(method, threshold, sigma)) if side_layer else None)
+    return _Seen(grid=grid, X=X, Y=Y, maps=maps, t_true=t_true, covered=covered, read=read, side=side,
+                 plate=floor.plate_id(X, Y))
+
+
+def _truth_on_new(floor: _Floor, seen_new: _Seen, age_old: float, nominal) -> dict:
+    """:class:`SynthTruth`'s maps on the newer grid: the true thickness at both inspections,
+    each face's loss and rate and the side of the local loss at the newer one."""
+    m = seen_new.maps
+    old_on_new = floor.render(seen_new.grid, age_old, seen_new.X, seen_new.Y)
+    return dict(t_new_true=seen_new.t_true, t_old_true=_true_thickness(old_on_new, nominal),
+                loss_top_true=m["loss_top"], loss_under_true=m["loss_under"], rate_top_true=m["rate_top"],
+                rate_under_true=m["rate_under"], side_true=_side_truth(m["pit_top"], m["pit_under"]))
+
+
+def _synth_meta(inspected, *, installed, nominal, tank, method, threshold, sigma, seed) -> ScanMeta:
+    """The metadata of a synthetic scan (the threshold only for MFL)."""
+    thr = float(threshold) if (method.upper() == "MFL" and threshold is not None) else None
+    return ScanMeta(inspected=inspected, nominal=float(nominal), units="mm", tank=tank, method=method,
+                    threshold=thr, sigma=float(sigma), installed=installed,
+                    extra={"synthetic": f"scananalyse.synth seed={seed}"})
 
 
 # ----------------------------------------------------------------------------
@@ -816,14 +914,9 @@ def make_pair(*, diameter_mm: float = 8000.0, pitch_new: float = 10.0, pitch_old
         ``y_min_mm``, ``x_max_mm``, ``y_max_mm`` (floor frame), ``date``, ``year``,
         ``kind`` (``insert plate``), ``pit_id``, ``side``, ``restart``.
     """
-    installed = _as_date(installed)
-    inspected_old = _as_date(inspected_old)
-    inspected_new = _as_date(inspected_new)
-    for name, v in (("diameter_mm", diameter_mm), ("pitch_new", pitch_new), ("pitch_old", pitch_old),
-                    ("nominal", nominal)):
-        _check_positive(name, v)
-    if not (installed < inspected_old < inspected_new):
-        raise ValueError("dates must satisfy installed < inspected_old < inspected_new")
+    installed, inspected_old, inspected_new = _checked_inputs(
+        {"installed": installed, "inspected_old": inspected_old, "inspected_new": inspected_new},
+        diameter_mm=diameter_mm, pitch_new=pitch_new, pitch_old=pitch_old, nominal=nominal)
     if sigma < 0:
         raise ValueError(f"sigma must be >= 0, got {sigma}")
     rng = np.random.default_rng(seed)
@@ -831,86 +924,47 @@ def make_pair(*, diameter_mm: float = 8000.0, pitch_new: float = 10.0, pitch_old
     age_new = years_between(installed, inspected_new)
     R = diameter_mm / 2.0
     cx, cy = float(centre[0]), float(centre[1])
-    margin_old = 1.3 * shell_margin_mm if shell_margin_old_mm is None else float(shell_margin_old_mm)
-    sump_t, rects = _defaults_coverage(R, cx, cy, margin=shell_margin_mm, sump=sump,
-                                       obstruction=obstruction, sump_xy=sump_xy,
-                                       sump_radius_mm=sump_radius_mm, column_xy=column_xy,
-                                       column_mm=column_mm, temp_obstruction=True)
-    cov_new = _Coverage(float(shell_margin_mm), sump_t, tuple(rects[:1]))
-    cov_old = _Coverage(margin_old, sump_t, tuple(rects))
+    cov_new, cov_old = _pair_coverage(
+        R, cx, cy, margin=float(shell_margin_mm),
+        margin_old=1.3 * shell_margin_mm if shell_margin_old_mm is None else float(shell_margin_old_mm),
+        sump=sump, obstruction=obstruction, sump_xy=sump_xy, sump_radius_mm=sump_radius_mm,
+        column_xy=column_xy, column_mm=column_mm)
     coarse = max(pitch_new, pitch_old)
-    if low_spot is None:
-        ang = math.radians(225.0)
-        low_spot = (cx + 0.62 * R * math.cos(ang), cy + 0.62 * R * math.sin(ang), 0.12 * R)
-    hidden_spots = _hidden_spots(R, cx, cy, shell_margin_mm, rects[:1], coarse)
-
     floor, kinds = _build_floor(
         rng=rng, diameter_mm=diameter_mm, centre=(cx, cy), nominal=nominal, coarse_pitch=coarse,
         age_old=age_old, age_new=age_new, n_top_pits=n_top_pits, n_under_pits=n_under_pits,
         n_hidden_pits=n_hidden_pits, general_rate_top=general_rate_top,
         general_rate_under=general_rate_under, plate_mm=plate_mm, plate_stagger_mm=plate_stagger_mm,
         seam_gap_mm=seam_gap_mm, pit_radius_cells=pit_radius_cells,
-        top_cluster_fraction=top_cluster_fraction, low_spot=low_spot,
+        top_cluster_fraction=top_cluster_fraction, low_spot=_low_spot(R, cx, cy, low_spot),
         new_pit_fraction=new_pit_fraction, max_pit_rate=max_pit_rate, deep_fraction=deep_fraction,
-        t_floor_mm=t_floor_mm, cov_new=cov_new, hidden_spots=hidden_spots)
-
-    # grids: new in the floor frame, old in its own frame (old -> floor = transform)
-    tr = _Transform(float(rotation_deg), float(shift_mm[0]), float(shift_mm[1]))
-    g_new = _grid_covering(R, (cx, cy), pitch_new, _Transform(0.0, 0.0, 0.0))
-    c_old = tr.inverse().apply(cx, cy)
-    g_old = _grid_covering(R, (float(c_old[0]), float(c_old[1])), pitch_old, tr)
+        t_floor_mm=t_floor_mm, cov_new=cov_new,
+        hidden_spots=_hidden_spots(R, cx, cy, shell_margin_mm, list(cov_new.rects), coarse))
+    g_new, g_old = _pair_grids(R, cx, cy, pitch_new, pitch_old, rotation_deg, shift_mm)
 
     # repairs between the inspections, chosen among the deepest old pits seen in both scans
     rep_df = _choose_repairs(floor, kinds, repairs, age_old=age_old, age_new=age_new, installed=installed,
                              cov_old=cov_old, cov_new=cov_new, threshold=_detect_level(method, threshold, sigma),
                              coarse=coarse, rng=rng)
 
-    Xn, Yn = g_new.floor_xy()
-    Xo, Yo = g_old.floor_xy()
-    mn = floor.render(g_new, age_new, Xn, Yn, owner_side=SIDE_TOP)
-    mo_on_new = floor.render(g_new, age_old, Xn, Yn)
-    mo = floor.render(g_old, age_old, Xo, Yo, owner_side=SIDE_TOP if side_layer_old else None)
-
-    t_new_true = (np.float32(nominal) - mn["loss_top"] - mn["loss_under"]).astype(np.float32)
-    t_old_true = (np.float32(nominal) - mo_on_new["loss_top"] - mo_on_new["loss_under"]).astype(np.float32)
-    t_old_own = (np.float32(nominal) - mo["loss_top"] - mo["loss_under"]).astype(np.float32)
-
-    covn = cov_new.mask(floor, Xn, Yn)
-    covo = cov_old.mask(floor, Xo, Yo)
-    rng_meas = np.random.default_rng([seed, 1])
-    level = _detect_level(method, threshold, sigma)
-    read_old = _measure(t_old_own, covo, nominal=nominal, method=method, threshold=threshold,
-                        sigma=sigma, resolution=resolution_mm, rng=rng_meas)
-    read_new = _measure(t_new_true, covn, nominal=nominal, method=method, threshold=threshold,
-                        sigma=sigma, resolution=resolution_mm, rng=rng_meas)
-
-    side_new = _side_layer(read_new, mn["owner"], mn["pit_top"], floor, g_new, nominal=nominal,
-                           level=level) if side_layer else None
-    side_old = _side_layer(read_old, mo["owner"], mo["pit_top"], floor, g_old, nominal=nominal,
-                           level=level) if side_layer_old else None
-
-    extra = {"synthetic": f"scananalyse.synth seed={seed}"}
-    thr = float(threshold) if (method.upper() == "MFL" and threshold is not None) else None
-    meta_new = ScanMeta(inspected=inspected_new, nominal=float(nominal), units="mm", tank=tank,
-                        method=method, threshold=thr, sigma=float(sigma), installed=installed, extra=dict(extra))
-    meta_old = meta_new.replace(inspected=inspected_old, extra=dict(extra))
-    new = FloorScan(read_new, g_new.x0, g_new.y0, g_new.pitch, meta_new, side=side_new,
-                    plate=floor.plate_id(Xn, Yn))
-    old = FloorScan(read_old, g_old.x0, g_old.y0, g_old.pitch, meta_old, side=side_old,
-                    plate=floor.plate_id(Xo, Yo))
+    # the two inspections: the older one read first (the order of the noise draws)
+    look = dict(nominal=nominal, method=method, threshold=threshold, sigma=sigma, resolution=resolution_mm,
+                rng=np.random.default_rng([seed, 1]))
+    seen_old = _inspect(floor, g_old, cov_old, age_old, side_layer=side_layer_old, **look)
+    seen_new = _inspect(floor, g_new, cov_new, age_new, side_layer=side_layer, **look)
+    new = seen_new.scan(_synth_meta(inspected_new, installed=installed, nominal=nominal, tank=tank, method=method,
+                                    threshold=threshold, sigma=sigma, seed=seed))
+    old = seen_old.scan(new.meta.replace(inspected=inspected_old, extra=dict(new.meta.extra)))
 
     pits = _pit_table(floor, kinds, installed, {"old": age_old, "new": age_new},
-                      {"new": g_new, "old": g_old}, {"new": read_new, "old": read_old}, rep_df)
+                      {"new": g_new, "old": g_old}, {"new": seen_new.read, "old": seen_old.read}, rep_df)
     truth = SynthTruth(
         rotation_deg=float(rotation_deg), dx_mm=float(shift_mm[0]), dy_mm=float(shift_mm[1]),
         diameter_mm=float(diameter_mm), centre=(cx, cy), dt_years=age_new - age_old,
-        age_new_years=age_new, age_old_years=age_old, t_new_true=t_new_true, t_old_true=t_old_true,
-        loss_top_true=mn["loss_top"], loss_under_true=mn["loss_under"],
-        rate_top_true=mn["rate_top"], rate_under_true=mn["rate_under"],
-        side_true=_side_truth(mn["pit_top"], mn["pit_under"]), plate_true=new.plate.copy(),
-        pits=pits, seams=floor.seams(), repairs=rep_df, nominal=float(nominal),
+        age_new_years=age_new, age_old_years=age_old, **_truth_on_new(floor, seen_new, age_old, nominal),
+        plate_true=new.plate.copy(), pits=pits, seams=floor.seams(), repairs=rep_df, nominal=float(nominal),
         general_rate_top=float(general_rate_top), general_rate_under=float(general_rate_under),
-        coverage_new=covn, coverage_old=covo)
+        coverage_new=seen_new.covered, coverage_old=seen_old.covered)
     return SynthPair(old=old, new=new, truth=truth)
 
 
@@ -945,12 +999,8 @@ def make_scan(*, diameter_mm: float = 8000.0, pitch: float = 10.0, nominal: floa
         ``truth.pits`` has ``depth_mm`` (at the inspection) and ``seen`` instead
         of the old/new pairs.
     """
-    installed = _as_date(installed)
-    inspected = _as_date(inspected)
-    for name, v in (("diameter_mm", diameter_mm), ("pitch", pitch), ("nominal", nominal)):
-        _check_positive(name, v)
-    if not installed < inspected:
-        raise ValueError("dates must satisfy installed < inspected")
+    installed, inspected = _checked_inputs({"installed": installed, "inspected": inspected},
+                                           diameter_mm=diameter_mm, pitch=pitch, nominal=nominal)
     rng = np.random.default_rng(seed)
     age = years_between(installed, inspected)
     R = diameter_mm / 2.0
@@ -960,42 +1010,30 @@ def make_scan(*, diameter_mm: float = 8000.0, pitch: float = 10.0, nominal: floa
                                        sump_radius_mm=sump_radius_mm, column_xy=column_xy,
                                        column_mm=column_mm, temp_obstruction=False)
     cov = _Coverage(float(shell_margin_mm), sump_t, tuple(rects))
-    if low_spot is None:
-        ang = math.radians(225.0)
-        low_spot = (cx + 0.62 * R * math.cos(ang), cy + 0.62 * R * math.sin(ang), 0.12 * R)
     floor, kinds = _build_floor(
         rng=rng, diameter_mm=diameter_mm, centre=(cx, cy), nominal=nominal, coarse_pitch=pitch,
         age_old=0.6 * age, age_new=age, n_top_pits=n_top_pits, n_under_pits=n_under_pits,
         n_hidden_pits=n_hidden_pits, general_rate_top=general_rate_top,
         general_rate_under=general_rate_under, plate_mm=plate_mm, plate_stagger_mm=plate_stagger_mm,
         seam_gap_mm=seam_gap_mm, pit_radius_cells=pit_radius_cells,
-        top_cluster_fraction=top_cluster_fraction, low_spot=low_spot, new_pit_fraction=0.2,
+        top_cluster_fraction=top_cluster_fraction, low_spot=_low_spot(R, cx, cy, low_spot), new_pit_fraction=0.2,
         max_pit_rate=max_pit_rate, deep_fraction=deep_fraction, t_floor_mm=t_floor_mm, cov_new=cov,
         hidden_spots=_hidden_spots(R, cx, cy, shell_margin_mm, rects, pitch))
     g = _grid_covering(R, (cx, cy), pitch, _Transform(0.0, 0.0, 0.0))
-    X, Y = g.floor_xy()
-    m = floor.render(g, age, X, Y, owner_side=SIDE_TOP)
-    t_true = (np.float32(nominal) - m["loss_top"] - m["loss_under"]).astype(np.float32)
-    c = cov.mask(floor, X, Y)
-    read = _measure(t_true, c, nominal=nominal, method=method, threshold=threshold, sigma=sigma,
-                    resolution=resolution_mm, rng=np.random.default_rng([seed, 1]))
-    level = _detect_level(method, threshold, sigma)
-    side = _side_layer(read, m["owner"], m["pit_top"], floor, g, nominal=nominal, level=level) \
-        if side_layer else None
-    thr = float(threshold) if (method.upper() == "MFL" and threshold is not None) else None
-    meta = ScanMeta(inspected=inspected, nominal=float(nominal), units="mm", tank=tank, method=method,
-                    threshold=thr, sigma=float(sigma), installed=installed,
-                    extra={"synthetic": f"scananalyse.synth seed={seed}"})
-    scan = FloorScan(read, g.x0, g.y0, g.pitch, meta, side=side, plate=floor.plate_id(X, Y))
-    pits = _pit_table(floor, kinds, installed, {"new": age}, {"new": g}, {"new": read}, None)
+    seen = _inspect(floor, g, cov, age, side_layer=side_layer, nominal=nominal, method=method, threshold=threshold,
+                    sigma=sigma, resolution=resolution_mm, rng=np.random.default_rng([seed, 1]))
+    scan = seen.scan(_synth_meta(inspected, installed=installed, nominal=nominal, tank=tank, method=method,
+                                 threshold=threshold, sigma=sigma, seed=seed))
+    pits = _pit_table(floor, kinds, installed, {"new": age}, {"new": g}, {"new": seen.read}, None)
     pits = pits.rename(columns={"depth_new_mm": "depth_mm", "seen_new": "seen"})
+    m = seen.maps
     truth = SynthScanTruth(
-        diameter_mm=float(diameter_mm), centre=(cx, cy), age_years=age, t_true=t_true,
+        diameter_mm=float(diameter_mm), centre=(cx, cy), age_years=age, t_true=seen.t_true,
         loss_top_true=m["loss_top"], loss_under_true=m["loss_under"], rate_top_true=m["rate_top"],
         rate_under_true=m["rate_under"], side_true=_side_truth(m["pit_top"], m["pit_under"]),
         plate_true=scan.plate.copy(), pits=pits, seams=floor.seams(), nominal=float(nominal),
         general_rate_top=float(general_rate_top), general_rate_under=float(general_rate_under),
-        coverage=c)
+        coverage=seen.covered)
     return scan, truth
 
 

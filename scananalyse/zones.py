@@ -400,8 +400,49 @@ def zone_map(scan_or_grid, geometry: FloorGeometry, rules, *, user_zones=None) -
         names, bad polygons, a ring-sector grid reaching into the annular ring.
     """
     shape, x0, y0, pitch = _grid_of(scan_or_grid)
+    zs = _standard_zones(shape, x0, y0, pitch, geometry, float(rules.v("critical_zone_width_mm")))
+    items = []
+    if user_zones is not None:
+        items = [user_zones] if isinstance(user_zones, RingSectorGrid) else list(user_zones)
+    for item in items:
+        if isinstance(item, RingSectorGrid):
+            _add_ring_sectors(zs, item)
+        else:
+            _add_polygon(zs, item)
+        if len(zs.names) > np.iinfo(np.int16).max:
+            raise InputError("zones: field 'user_zones': too many zones")
+    return _finish_zones(zs, geometry)
+
+
+@dataclass(eq=False)
+class _Zoning:
+    """A zone map being built: the zones so far (``names``, ``kinds``, ``areas`` [mm²]), the
+    cell ``labels``, and the interior cells no user zone has taken yet (``free``).
+
+    ``xs``, ``ys`` are the cell centres' coordinates from the tank centre and ``r`` their
+    distance from it (float32) [mm]; ``r_int`` is the interior disc's radius [mm] and
+    ``k_int`` the interior zone's index.
+    """
+
+    x0: float
+    y0: float
+    pitch: float
+    xs: np.ndarray
+    ys: np.ndarray
+    r: np.ndarray
+    r_int: float
+    k_int: int
+    names: list
+    kinds: list
+    areas: list
+    labels: np.ndarray
+    free: np.ndarray
+
+
+def _standard_zones(shape, x0, y0, pitch, geometry: FloorGeometry, w: float) -> _Zoning:
+    """The critical zone (width ``w`` [mm] inside the shell), the annular ring if any and the
+    interior disc inside them, on the grid."""
     R = geometry.radius_mm
-    w = float(rules.v("critical_zone_width_mm"))
     if w >= R:
         raise InputError(f"rules: field 'critical_zone_width_mm': {w:g} mm is not less than the "
                          f"floor radius {R:g} mm")
@@ -432,73 +473,80 @@ def zone_map(scan_or_grid, geometry: FloorGeometry, rules, *, user_zones=None) -
     areas.append(math.pi * r_int ** 2)
     interior = r < r_int
     labels[interior] = k_int
+    return _Zoning(x0=x0, y0=y0, pitch=pitch, xs=xs, ys=ys, r=r, r_int=r_int, k_int=k_int, names=names,
+                   kinds=kinds, areas=areas, labels=labels, free=interior.copy())
 
-    items = []
-    if user_zones is not None:
-        items = [user_zones] if isinstance(user_zones, RingSectorGrid) else list(user_zones)
-    free = interior.copy()  # interior cells not yet taken by a user zone
-    for item in items:
-        if isinstance(item, RingSectorGrid):
-            ro = r_int if item.outer_radius_mm is None else float(item.outer_radius_mm)
-            if not (0 < ro <= r_int * (1 + 1e-9)):
-                raise InputError(f"zones: field 'outer_radius_mm': ring-sector grid radius {ro:g} mm "
-                                 f"must be > 0 and not beyond the interior radius {r_int:g} mm")
-            dr = ro / item.n_rings
-            dth = 2 * math.pi / item.n_sectors
-            ring = np.minimum(np.floor(r / np.float32(dr)).astype(np.int32), item.n_rings - 1)
-            th = np.mod(np.arctan2(ys[:, None], xs[None, :]) - np.float32(math.radians(item.start_deg)),
-                        np.float32(2 * math.pi))
-            sec = np.minimum(np.floor(th / np.float32(dth)).astype(np.int32), item.n_sectors - 1)
-            inside = free & (r < ro)
-            base = len(names)
-            for i in range(item.n_rings):
-                for j in range(item.n_sectors):
-                    nm = item.name(i, j)
-                    if nm in names:
-                        raise InputError(f"zones: field '{nm}': duplicate zone name")
-                    names.append(nm)
-                    kinds.append("user")
-                    r1, r2 = i * dr, (i + 1) * dr
-                    areas.append(0.5 * dth * (r2 ** 2 - r1 ** 2))
-            code = base + ring * item.n_sectors + sec
-            labels[inside] = code[inside].astype(np.int16)
-            free &= ~inside
-            areas[k_int] -= math.pi * ro ** 2
-        else:
-            try:
-                nm, verts = item
-            except (TypeError, ValueError):
-                raise InputError("zones: field 'user_zones': each item must be (name, vertices) "
-                                 "or a ring-sector grid") from None
-            v = _check_polygon(nm, verts)
-            if nm in names:
-                raise InputError(f"zones: field '{nm}': duplicate or reserved zone name")
-            # cells whose centre may lie in the polygon: its bounding box on the grid
-            j0 = max(int(math.floor((v[:, 0].min() - x0) / pitch)), 0)
-            j1 = min(int(math.ceil((v[:, 0].max() - x0) / pitch)) + 1, shape[1])
-            i0 = max(int(math.floor((v[:, 1].min() - y0) / pitch)), 0)
-            i1 = min(int(math.ceil((v[:, 1].max() - y0) / pitch)) + 1, shape[0])
-            k = len(names)
-            names.append(nm)
-            kinds.append("user")
-            n_in = 0
-            if i1 > i0 and j1 > j0:
-                gx, gy = np.meshgrid(x0 + pitch * np.arange(j0, j1), y0 + pitch * np.arange(i0, i1))
-                pts = np.column_stack([gx.ravel(), gy.ravel()])
-                inside = _MplPath(v).contains_points(pts).reshape(gx.shape)
-                inside &= free[i0:i1, j0:j1]
-                n_in = int(np.count_nonzero(inside))
-                sub = labels[i0:i1, j0:j1]
-                sub[inside] = k
-                free[i0:i1, j0:j1] &= ~inside
-            areas.append(n_in * pitch * pitch)
-            areas[k_int] -= n_in * pitch * pitch
-        if len(names) > np.iinfo(np.int16).max:
-            raise InputError("zones: field 'user_zones': too many zones")
 
-    areas_arr = np.array(areas, dtype=np.float64)
-    # interior fully taken by user zones: drop it and renumber
-    if areas_arr[k_int] <= 1e-9 * math.pi * r_int ** 2 and not np.any(labels == k_int):
+def _add_ring_sectors(zs: _Zoning, item: RingSectorGrid) -> None:
+    """Add a ring × sector grid of user zones over the free interior cells (in place)."""
+    ro = zs.r_int if item.outer_radius_mm is None else float(item.outer_radius_mm)
+    if not (0 < ro <= zs.r_int * (1 + 1e-9)):
+        raise InputError(f"zones: field 'outer_radius_mm': ring-sector grid radius {ro:g} mm "
+                         f"must be > 0 and not beyond the interior radius {zs.r_int:g} mm")
+    dr = ro / item.n_rings
+    dth = 2 * math.pi / item.n_sectors
+    ring = np.minimum(np.floor(zs.r / np.float32(dr)).astype(np.int32), item.n_rings - 1)
+    th = np.mod(np.arctan2(zs.ys[:, None], zs.xs[None, :]) - np.float32(math.radians(item.start_deg)),
+                np.float32(2 * math.pi))
+    sec = np.minimum(np.floor(th / np.float32(dth)).astype(np.int32), item.n_sectors - 1)
+    inside = zs.free & (zs.r < ro)
+    base = len(zs.names)
+    for i in range(item.n_rings):
+        for j in range(item.n_sectors):
+            nm = item.name(i, j)
+            if nm in zs.names:
+                raise InputError(f"zones: field '{nm}': duplicate zone name")
+            zs.names.append(nm)
+            zs.kinds.append("user")
+            r1, r2 = i * dr, (i + 1) * dr
+            zs.areas.append(0.5 * dth * (r2 ** 2 - r1 ** 2))
+    code = base + ring * item.n_sectors + sec
+    zs.labels[inside] = code[inside].astype(np.int16)
+    zs.free &= ~inside
+    zs.areas[zs.k_int] -= math.pi * ro ** 2
+
+
+def _add_polygon(zs: _Zoning, item) -> None:
+    """Add a ``(name, vertices)`` polygon user zone: the free interior cells whose centre lies
+    in it (in place); its area is those cells'."""
+    try:
+        nm, verts = item
+    except (TypeError, ValueError):
+        raise InputError("zones: field 'user_zones': each item must be (name, vertices) "
+                         "or a ring-sector grid") from None
+    v = _check_polygon(nm, verts)
+    if nm in zs.names:
+        raise InputError(f"zones: field '{nm}': duplicate or reserved zone name")
+    x0, y0, pitch = zs.x0, zs.y0, zs.pitch
+    rows, cols = zs.labels.shape
+    # cells whose centre may lie in the polygon: its bounding box on the grid
+    j0 = max(int(math.floor((v[:, 0].min() - x0) / pitch)), 0)
+    j1 = min(int(math.ceil((v[:, 0].max() - x0) / pitch)) + 1, cols)
+    i0 = max(int(math.floor((v[:, 1].min() - y0) / pitch)), 0)
+    i1 = min(int(math.ceil((v[:, 1].max() - y0) / pitch)) + 1, rows)
+    k = len(zs.names)
+    zs.names.append(nm)
+    zs.kinds.append("user")
+    n_in = 0
+    if i1 > i0 and j1 > j0:
+        gx, gy = np.meshgrid(x0 + pitch * np.arange(j0, j1), y0 + pitch * np.arange(i0, i1))
+        pts = np.column_stack([gx.ravel(), gy.ravel()])
+        inside = _MplPath(v).contains_points(pts).reshape(gx.shape)
+        inside &= zs.free[i0:i1, j0:j1]
+        n_in = int(np.count_nonzero(inside))
+        sub = zs.labels[i0:i1, j0:j1]
+        sub[inside] = k
+        zs.free[i0:i1, j0:j1] &= ~inside
+    zs.areas.append(n_in * pitch * pitch)
+    zs.areas[zs.k_int] -= n_in * pitch * pitch
+
+
+def _finish_zones(zs: _Zoning, geometry: FloorGeometry) -> ZoneMap:
+    """The :class:`ZoneMap`; an interior that the user zones take completely is dropped and
+    the zones renumbered; areas below 0 (round-off) become 0."""
+    labels, names, kinds, k_int = zs.labels, zs.names, zs.kinds, zs.k_int
+    areas_arr = np.array(zs.areas, dtype=np.float64)
+    if areas_arr[k_int] <= 1e-9 * math.pi * zs.r_int ** 2 and not np.any(labels == k_int):
         keep = [k for k in range(len(names)) if k != k_int]
         remap = np.full(len(names) + 1, -1, dtype=np.int16)
         remap[np.array(keep)] = np.arange(len(keep), dtype=np.int16)
@@ -508,7 +556,7 @@ def zone_map(scan_or_grid, geometry: FloorGeometry, rules, *, user_zones=None) -
         areas_arr = areas_arr[keep]
     areas_arr = np.maximum(areas_arr, 0.0)
     return ZoneMap(labels=labels, names=names, kinds=kinds, areas_mm2=areas_arr,
-                   x0=x0, y0=y0, pitch=pitch, geometry=geometry)
+                   x0=zs.x0, y0=zs.y0, pitch=zs.pitch, geometry=geometry)
 
 
 def zone_table(zones: ZoneMap, scanned: np.ndarray) -> pd.DataFrame:

@@ -35,6 +35,7 @@ def test_check_prints_summary(small_pair_files, capsys):
     assert main(["check", small_pair_files["new_csv"]]) == 0
     out = capsys.readouterr().out
     assert "valid floor-scan file" in out and "SYN-E2E" in out and "20 mm pitch" in out
+    assert "x -2.000 to 2.000 m" in out and " m2 (" in out and "threshold 1.00 mm, sigma 0.10 mm" in out
 
 
 def test_convert_round_trip_and_refuses_overwrite(small_pair_files, tmp_path, capsys):
@@ -60,6 +61,7 @@ def test_compare_writes_every_output(small_pair_files, tmp_path, capsys):
     assert rc == 0
     console = capsys.readouterr().out
     assert "per zone" in console and "report:" in console and "authorised inspector" in console
+    assert console.splitlines()[0].endswith("tank SYN-E2E, diameter 4000 mm")
     for f in ("zones.csv", "zones_repaired.csv", "patches.csv", "patches.dxf", "indications.csv",
               "registration.json", "results.h5", "report.html"):
         assert (out / f).is_file(), f
@@ -122,7 +124,10 @@ def test_register_command(small_pair_files, tmp_path, capsys):
                  "--quiet"]) == 0
     reg = json.loads((out / "registration.json").read_text())
     assert abs(reg["rotation_deg"] - small_pair_files["pair"].truth.rotation_deg) < 0.05
-    assert "rotation" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    m = re.search(r"shift \((\S+), (\S+)\) mm, .* residual RMS (\S+) mm", printed)  # --units mm, the default
+    assert [float(v) for v in m.groups()] == pytest.approx([reg["dx_mm"], reg["dy_mm"], reg["residual_rms_mm"]],
+                                                           abs=0.051)
 
 
 def test_assess_single_inspection(small_pair_files, tmp_path, capsys):

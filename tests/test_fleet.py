@@ -52,10 +52,19 @@ def test_fleet_on_local_cluster_ranks_and_survives_a_bad_tank(fleet_dir, tmp_pat
     assert 'href="TK-A/report.html"' in html and "authorised inspector" in html
     assert "most urgent" in res["summary"]
 
-    # a rerun keeps complete results
-    again = run_fleet(fleet_dir / "manifest.csv", out_dir=out, workers=2, quiet=True, raise_on_failure=False)
-    st = dict(zip(again["table"]["tank"], again["table"]["status"]))
+    assert "display units mm, mm/y, m²" in html
+
+    # a rerun keeps complete results; through the command line, the page in inches (exit 2: TK-BAD failed)
+    from scananalyse.cli import main
+
+    assert main(["fleet", str(fleet_dir / "manifest.csv"), "--out", str(out), "--workers", "2", "--quiet",
+                 "--units", "in"]) == 2
+    again = pd.read_csv(out / "fleet.csv")
+    st = dict(zip(again["tank"], again["status"]))
     assert st["TK-A"] == "ok (kept)" and st["TK-B"] == "ok (kept)" and st["TK-BAD"] == "error"
+    assert list(again.columns) == list(df.columns)  # the CSV keeps SI columns
+    html = (out / "fleet.html").read_text()
+    assert "display units in, mils, mpy, ft²" in html and "display units mm" not in html
 
 
 def _manifest_refused(path, text, message):

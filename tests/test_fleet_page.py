@@ -14,10 +14,9 @@ import pytest
 
 from scananalyse import CAUTION
 from scananalyse.fleet import ORDER_RULE, UNITS_NOTE, fleet_page_data, rank_fleet, run_tank
-from scananalyse.report.fleet_page import (FLEET_FLAGS_EXPLAINED, FLEET_SECTIONS, FleetPageData,
-                                           render_fleet_page)
+from scananalyse.report.fleet_page import FLEET_SECTIONS, FleetPageData, render_fleet_page
 from scananalyse.report.html import MEMORY_MARK, esc
-from scananalyse.report.labels import FLAGS_EXPLAINED
+from scananalyse.report.labels import FLAGS_EXPLAINED, FLEET_FLAGS_EXPLAINED
 from scananalyse.rules import RULESETS
 
 HOSTILE = '<script>alert(1)</script> & "x"'
@@ -283,9 +282,20 @@ def test_run_tank_carries_the_zone_tables_patches_and_rule_changes_of_a_kept_tan
     assert "Tank TK-K: its job file changes interval_cap_y." in _section(page, "assumptions")
 
 
+def test_every_flag_a_tank_writes_is_explained_on_the_fleet_page_too():
+    """The fleet page takes its words from the same place as the tank report (labels.py):
+    the spot readings' flags are explained there as well."""
+    found = [("critical", 0.0, "2025-10-06", "eva", 0.3, "readings-only;points-only;eva-below-mrt")]
+    _, page = _page(_fleet() + [_tank("RDG", found, found)])
+    words = _section(page, "words")
+    for flag in ("readings-only", "points-only", "eva-below-mrt"):
+        assert f"<dt>{flag}</dt><dd>{esc(FLAGS_EXPLAINED[flag])}</dd>" in words
+    assert "no explanation recorded" not in words
+
+
 def test_glossary_lists_the_fleet_words():
     """docs/glossary.md explains the fleet's own limit word and flags as the page does."""
-    from scananalyse.report.fleet_page import FLEET_LIMITING_SHORT, FLEET_LIMITING_WORDS
+    from scananalyse.report.labels import FLEET_LIMITING_SHORT, FLEET_LIMITING_WORDS
 
     text = (Path(__file__).parents[1] / "docs" / "glossary.md").read_text(encoding="utf-8")
     for k, v in FLEET_LIMITING_WORDS.items():

@@ -79,8 +79,55 @@ def test_console_speaks_inches(inch_compare_run):
     text = inch_compare_run["console"]
     assert re.search(r"shift \(−?-?\d+\.\d{3}, −?-?\d+\.\d{3}\) in", text)
     assert "ft² in all" in text and "thickness in" in text
-    bad = [ln for ln in text.splitlines() if _SI_TOKEN.search(ln)]
+    # the header gives the diameter as the report does, as typed, with its SI value beside it
+    assert text.splitlines()[0].endswith(f", diameter {_DIAMETER_SHOWN}")
+    bad = [ln for ln in text.replace(_DIAMETER_SHOWN, "").splitlines() if _SI_TOKEN.search(ln)]
     assert bad == []
+
+
+def _numbers(text: str) -> list[float]:
+    return [float(v.replace("−", "-")) for v in re.findall(r"[−-]?\d+\.?\d*", text)]
+
+
+def test_check_speaks_inches(small_pair_files, capsys):
+    from scananalyse.cli import main
+    from scananalyse.io import read_scan
+
+    assert main(["check", small_pair_files["new_csv"], "--units", "in"]) == 0
+    text = capsys.readouterr().out
+    # the first line names the file (its path may hold anything), the second the file's own units
+    assert ", file units mm" in text.splitlines()[1]
+    body = text.split("\n", 2)[2]
+    assert [ln for ln in body.splitlines() if _SI_TOKEN.search(ln)] == []
+    s = read_scan(small_pair_files["new_csv"]).summary()
+    grid = next(ln for ln in body.splitlines() if ln.strip().startswith("grid"))
+    pitch, x0, x1 = _numbers(grid.split("pitch")[0])[-1], *_numbers(grid.split(";")[1])[:2]
+    assert pitch == pytest.approx(s["pitch_mm"] / 25.4, abs=6e-4) and "in pitch" in grid
+    assert (x0, x1) == pytest.approx([v / 304.8 for v in s["x_range_mm"]], abs=6e-3) and grid.endswith(" ft")
+    area = _numbers(body.split("cells =")[1].split("ft²")[0])[0]
+    assert area == pytest.approx(s["scanned_area_m2"] / 0.3048 ** 2, abs=0.06)
+    t = next(ln for ln in body.splitlines() if ln.strip().startswith("thickness"))
+    lo, hi, nominal = _numbers(t)
+    assert [lo, hi, nominal] == pytest.approx([s["t_min_mm"] / 25.4, s["t_max_mm"] / 25.4, s["nominal_mm"] / 25.4],
+                                              abs=6e-4)
+    assert "threshold 39 mils" in body  # 1.00 mm = 39.37 mils
+
+
+def test_register_speaks_inches(small_pair_files, tmp_path, capsys):
+    import json
+
+    from scananalyse.cli import main
+
+    out = tmp_path / "reg"
+    assert main(["register", small_pair_files["old_csv"], small_pair_files["new_csv"], "--out", str(out),
+                 "--quiet", "--units", "in"]) == 0
+    line = capsys.readouterr().out.splitlines()[0]
+    reg = json.loads((out / "registration.json").read_text())  # the file keeps mm
+    m = re.search(r"shift \((\S+), (\S+)\) in", line)
+    assert [float(m[1]), float(m[2])] == pytest.approx([reg["dx_mm"] / 25.4, reg["dy_mm"] / 25.4], abs=6e-4)
+    rms = re.search(r"residual RMS (\d+) mils", line)
+    assert int(rms[1]) == round(reg["residual_rms_mm"] / 0.0254)
+    assert not _SI_TOKEN.search(line)
 
 
 # ---------------------------------------------------------------------------

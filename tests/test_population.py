@@ -85,3 +85,22 @@ def test_population_table_groups_and_sides():
     top = pop[(pop["value"] == "water") & (pop["side"] == "top")].iloc[0]
     assert top["n_tanks"] == 2 and top["model"] == "empirical"
     assert pop[(pop["group"] == "all") & (pop["side"] == "under")].iloc[0]["n_tanks"] == 6
+
+
+@pytest.mark.parametrize("units,unit,per", [("mm", "mm/y", 1.0), ("in", "mpy", 0.0254)])
+def test_population_figure_in_display_units(units, unit, per):
+    # 1 mpy = 0.0254 mm/y exactly (1 in = 25.4 mm, NIST SP 811, 2008, appendix B.8)
+    from scananalyse.population import plot_population
+
+    rates = stats.lognorm.rvs(0.4, scale=0.2, size=12, random_state=np.random.default_rng(5))
+    s = summarise_rates(rates)
+    assert s["model"] != "empirical"
+    ax = plot_population(s, rates, [f"T{i}" for i in range(12)], units=units).axes[0]
+    assert ax.get_xlabel() == f"zone-maximum rate [{unit}]"
+    tanks, cdf = ax.lines[:2]
+    np.testing.assert_allclose(tanks.get_xdata(), np.sort(rates) / per, rtol=1e-12)
+    # the fitted CDF keeps its shape: at the drawn median line it is 0.5
+    p50 = next(ln for ln in ax.lines[2:] if ln.get_label().startswith("p50"))
+    x50 = p50.get_xdata()[0]
+    assert x50 == pytest.approx(s[0.5][0] / per, rel=1e-12)
+    assert np.interp(x50, cdf.get_xdata(), cdf.get_ydata()) == pytest.approx(0.5, abs=0.01)

@@ -116,6 +116,12 @@ def test_compare_with_readings_fills_the_critical_zone(tmp_path, capsys):
     # the repaired table carries the same readings-only row (no repair reaches those points)
     rep = pd.read_csv(out_dir / "zones_repaired.csv").set_index("zone")
     assert rep.loc["critical", "interval_recommended_y"] == pytest.approx(expected)
+    # its life distribution: the zone's whole area from the floor's law at the floor's
+    # rates, and the spots; the truth (already below MRT) is at or above p05, and the
+    # repaired floor's figures for it are the same draws (no repair touched that metal)
+    assert crit["life_p05_y"] == 0.0 and crit["p_mrt_at_due"] > 0.5
+    for col in ("life_p05_y", "life_p50_y", "life_p95_y", "p_mrt_at_due", "p_leak_at_due"):
+        assert rep.loc["critical", col] == pytest.approx(crit[col], nan_ok=False), col
 
     # the prove-up governs at its cell, and its indication is no longer on the prove-up list
     with h5py.File(out_dir / "results.h5", "r") as f:
@@ -219,3 +225,35 @@ def test_sizing_figure_ax_none_and_given():
     other = Figure()
     ax2 = other.add_subplot()
     assert sizing_figure(pairs, T0, None, ax=ax2) is other
+
+
+def test_a_hand_reading_off_the_scan_governs_its_scanned_zone(tmp_path, capsys):
+    # The interior is scanned except around obstructions; a hand UT reading on one of those
+    # unscanned cells reads 2.0 mm, below the interior's MRT of 2.54 mm (API 653 Table 4.4
+    # without leak detection, from memory; the demo's zones.csv states it).  It is measured
+    # metal: the zone is below MRT at that spot whatever the scan says, and the patch plan
+    # (made from the scan) does not cover it.
+    import numpy as np
+
+    from scananalyse.io import read_scan
+
+    scan = read_scan(NEW)
+    rows, cols = np.nonzero(~np.isfinite(scan.thickness))
+    x, y = scan.x0 + cols * scan.pitch, scan.y0 + rows * scan.pitch
+    inner = np.hypot(x, y) < 3000.0  # well inside the shell: the interior zone
+    k = int(np.flatnonzero(inner)[0])
+    path = _readings_file(tmp_path / "ut.csv", DATE_NEW, [(float(x[k]), float(y[k]), "ut", 2.0, None)])
+    out_dir = tmp_path / "out"
+    code, out, err = _run(["assess", NEW, "--diameter", "8000", "--out", str(out_dir), "--quiet",
+                           "--readings", path], capsys)
+    assert code == 0, err
+    # as found the scan itself reads 1.40 mm there already; after the proposed repairs the
+    # scanned metal is sound (4.2 mm and up) but the spot is not: it governs
+    for name in ("zones.csv", "zones_repaired.csv"):
+        row = pd.read_csv(out_dir / name).set_index("zone").loc["interior"]
+        assert row["interval_recommended_y"] == 0.0 and "below-mrt" in row["flags"].split(";"), name
+        assert row["p_mrt_at_due"] == 1.0, name  # below MRT in every draw
+    rep = pd.read_csv(out_dir / "zones_repaired.csv").set_index("zone").loc["interior"]
+    assert rep["t_min_mm"] == 2.0  # (already 0 y by the unscanned part: readings-govern is not added)
+    assert "2.00 mm" in rep["notes"] and "does not cover it" in rep["notes"]
+    assert rep["life_p05_y"] == rep["life_p95_y"] == 0.0

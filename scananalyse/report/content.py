@@ -162,7 +162,7 @@ def report_data(an, units: str, registration_dict, figs) -> ReportData:
         rules_table=_rules_shown(an.rules.table(), units),
         assumptions=[U.text_in_units(a, units) for a in assumptions],
         figures=fig_dict, extremes={z: _texts_in_units(row, units) for z, row in ext.items()},
-        flags_explained=_texts_in_units({**FLAGS_EXPLAINED, **READINGS_FLAGS}, units), units=units,
+        flags_explained=_texts_in_units(FLAGS_EXPLAINED, units), units=units,
         timings=dict(an.timings),
         generated=_dt.datetime.now().replace(microsecond=0), single_inspection=an.single, notes=notes)
 
@@ -204,15 +204,6 @@ def _texts_in_units(table, units: str):
         if out[c].dtype == object or pd.api.types.is_string_dtype(out[c]):
             out[c] = out[c].map(lambda v: U.text_in_units(v, units), na_action="ignore")
     return out
-
-
-#: The flags the spot readings add to zones.csv.
-READINGS_FLAGS = {
-    "readings-only": "No cell of the zone was scanned; its thinnest value, code interval and co-located life come "
-                     "from spot readings (hand UT, pit gauge) alone.",
-    "points-only": "The readings are points: the floor between them is unseen; the recommended interval is the least "
-                   "of the readings' code interval, their co-located life and the cap, without an extreme-value life.",
-}
 
 
 def _readings_data(an, units: str) -> dict:

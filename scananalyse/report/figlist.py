@@ -420,6 +420,7 @@ def life_probability_figure(dists: dict, zone_table, *, ax=None):
     fig, ax = F._new_axes(ax, (6.0, 3.6))  # prints full width: legend >= 7 pt
     due = dict(zip(zone_table["zone"], zone_table["interval_recommended_y"]))
     years = np.linspace(0.0, 30.0, 241)
+    marked = []  # due dates labelled so far: labels at the same date go side by side
     for k, (name, d) in enumerate(dists.items()):
         if not d.ok:
             continue
@@ -430,8 +431,10 @@ def life_probability_figure(dists: dict, zone_table, *, ax=None):
         t = due.get(name)
         if t is not None and np.isfinite(t):
             ax.axvline(t, color=colour, lw=0.8, ls=":")
-            ax.annotate(f"{name} due", (t, 1.0), xytext=(2, -10), textcoords="offset points", fontsize=7,
-                        color=colour, rotation=90, va="top")
+            near = sum(abs(t - m) < 0.5 for m in marked)
+            marked.append(t)
+            ax.annotate(f"{name} due", (t, 1.0), xytext=(2 + 9 * near, -10), textcoords="offset points",
+                        fontsize=7, color=colour, rotation=90, va="top")
     ax.set_xlabel("years after the newer inspection")
     ax.set_ylabel("probability")
     ax.set_ylim(0, 1.02)

@@ -26,7 +26,8 @@ import pandas as pd
 from .. import CAUTION, __version__
 from . import units as U
 from .html import MEMORY_MARK, _cell, _env, _figures, _flag_set, rule_rows
-from .labels import FLAGS_EXPLAINED, LIMITING_SHORT, LIMITING_WORDS, label
+from .labels import (FLAGS_EXPLAINED, FLEET_FLAGS_EXPLAINED, FLEET_LIMITING_SHORT, FLEET_LIMITING_WORDS,
+                     LIMITING_SHORT, LIMITING_WORDS, label)
 
 __all__ = ["FleetPageData", "TankZones", "FLEET_SECTIONS", "render_fleet_page", "units_words"]
 
@@ -38,20 +39,6 @@ FLEET_SECTIONS = (
     ("population", "Population of corrosion rates"),
     ("assumptions", "Rules and assumptions"),
 )
-
-#: Limits and flags only a fleet run writes (the similar-service step, the scan-name
-#: check) → words, beside the tank report's (:mod:`.labels`).
-FLEET_LIMITING_WORDS = {
-    "similar-service": "the similar-service rate: an upper quantile of the measured rates of the "
-                       "group's two-inspection tanks, lent to a tank with one inspection",
-}
-FLEET_LIMITING_SHORT = {"similar-service": "similar service"}
-FLEET_FLAGS_EXPLAINED = {
-    "similar-service": "The tank has one inspection; the similar-service rate of its group shortened "
-                       "its interval below the one from its own long-term rates.",
-    "scan-names-other-tank": "A scan file of this tank states another tank's name: the manifest row "
-                             "may point at the wrong files; check them before using the results.",
-}
 
 #: The ``status`` column's words → plain words.
 STATUS_WORDS = {

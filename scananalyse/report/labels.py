@@ -7,17 +7,21 @@ The CSV files and ``results.h5`` keep the column names (``interval_recommended_y
 * :data:`LABELS` — column name → plain label (without the unit: the unit comes from
   the name's SI suffix, :func:`scananalyse.report.units.display_column`, so it follows
   the display units).
-* :data:`FLAGS_EXPLAINED` — every flag word the tool can write (zones and patch
-  plates) → one sentence.
+* :data:`FLAGS_EXPLAINED` — every flag word the tool can write (zones, spot readings and
+  patch plates) → one sentence.
 * :data:`LIMITING_WORDS` — the ``limiting`` column's words → what they mean;
   :data:`LIMITING_SHORT` — the same, short, for table cells.
+* :data:`FLEET_FLAGS_EXPLAINED`, :data:`FLEET_LIMITING_WORDS`, :data:`FLEET_LIMITING_SHORT` —
+  the flags and the limit word only a fleet run writes (``fleet.csv``), for the fleet page
+  beside the ones above.
 """
 
 from __future__ import annotations
 
 from . import units as U
 
-__all__ = ["LABELS", "FLAGS_EXPLAINED", "LIMITING_WORDS", "LIMITING_SHORT", "label", "label_with_unit"]
+__all__ = ["LABELS", "FLAGS_EXPLAINED", "LIMITING_WORDS", "LIMITING_SHORT", "FLEET_FLAGS_EXPLAINED",
+           "FLEET_LIMITING_WORDS", "FLEET_LIMITING_SHORT", "label", "label_with_unit"]
 
 #: Column (or key) name → plain label, no unit.
 LABELS = {
@@ -180,6 +184,15 @@ FLAGS_EXPLAINED = {
     "initial-interval": "No corrosion rates are known: the initial-interval rules apply.",
     "no-mfl-threshold": "The MFL scan gives no detection threshold: the code formula's "
                         "underside rate cannot use the threshold rule.",
+    # spot readings
+    "readings-only": "No cell of the zone was scanned; its thinnest value, code interval and co-located life come "
+                     "from spot readings (hand UT, pit gauge) alone.",
+    "points-only": "The readings are points: the floor between them is unseen and is judged with the whole floor's "
+                   "extreme-value law over the zone's area; the recommended interval is the least of the readings' "
+                   "code interval, their co-located life, that extreme-value life and the cap.",
+    "readings-govern": "Spot readings where the scan has no value are thinner, or their metal shorter-lived, than "
+                       "anything the scan read in the zone: they lowered its thinnest value, code interval or "
+                       "co-located life, and so its recommended interval.",
     # patch plates
     "critical-zone-special-repair": "A patch touches the critical zone: only special shapes or "
                                     "plate replacement are allowed there.",
@@ -221,6 +234,20 @@ LIMITING_SHORT = {
     "cap": "cap",
     "probability": "target probability",
     "none": "–",
+}
+
+#: Limits and flags only a fleet run writes (the similar-service step, the scan-name
+#: check) → words, for the fleet page beside the ones above.
+FLEET_LIMITING_WORDS = {
+    "similar-service": "the similar-service rate: an upper quantile of the measured rates of the "
+                       "group's two-inspection tanks, lent to a tank with one inspection",
+}
+FLEET_LIMITING_SHORT = {"similar-service": "similar service"}
+FLEET_FLAGS_EXPLAINED = {
+    "similar-service": "The tank has one inspection; the similar-service rate of its group shortened "
+                       "its interval below the one from its own long-term rates.",
+    "scan-names-other-tank": "A scan file of this tank states another tank's name: the manifest row "
+                             "may point at the wrong files; check them before using the results.",
 }
 
 
