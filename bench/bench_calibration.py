@@ -10,16 +10,22 @@ reliability table of the predicted P(reach MRT within h) against the observed fr
 binned, for h in HORIZONS.
 
     PYTHONPATH=. python bench/bench_calibration.py [n_seeds] [--no-shrink] [--one-reading] [--first N]
+                                                   [--cache DIR]
         (default 48 seeds from 100: one case per seed, cycling; --no-shrink: each cell's rate
         drawn from its own interval, no zone rate distribution; --one-reading: each cell's
         present thickness from the newer reading alone, not given its drawn rate from both
-        readings, as before)
+        readings, as before; --cache: each floor's analysis (the inputs of
+        life_distributions and the zones' true lives) kept in DIR/<seed>.pkl and read back
+        when its case matches, so that two versions of the model are compared on the same
+        analyses: PYTHONPATH=/path/to/other/version python bench/bench_calibration.py ...)
     ... --unscanned: the zones nobody scanned instead (drawn over their whole area from the
         floor's depth law at the floor's rates; left out otherwise)
 """
 
 from __future__ import annotations
 
+import os
+import pickle
 import sys
 import time
 import warnings
@@ -46,7 +52,16 @@ def true_zone_life(pair, mrt_map, mask):
     return float(np.nanmin(np.where(mask, life, np.nan)))
 
 
-def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, unscanned=False, **pair_kw):
+def analysed_case(seed, method, n_hidden, cache=None, **pair_kw):
+    """What the life distribution of a floor needs, and each zone's true life; read from
+    ``cache``/<seed>.pkl when it holds this case, else computed (and kept there)."""
+    case = dict(seed=seed, method=method, hidden=n_hidden, **pair_kw)
+    path = os.path.join(cache, f"{seed}.pkl") if cache else None
+    if path and os.path.exists(path):
+        with open(path, "rb") as f:
+            a = pickle.load(f)
+        if a["case"] == case:
+            return a
     pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, method=method,
                      threshold=1.0 if method == "MFL" else None, n_hidden_pits=n_hidden, **pair_kw)
     with warnings.catch_warnings():
@@ -55,18 +70,32 @@ def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=Tr
     # the floor's fit, lent to zones with none of their own, as the pipeline does
     floor = floor_fit(an.new.thickness, an.zones, nominal=an.new.meta.nominal, censored=an.rates.censored,
                       threshold=an.new.meta.threshold, pitch=an.new.pitch, block_mm=an.job.block_mm, seed=an.job.seed)
+    a = dict(case=case, thickness=an.new.thickness, rates=an.rates, zones=an.zones, mrt=an.mrt_map,
+             ext=an.extremes_depth, floor=floor, nominal=an.new.meta.nominal, pitch=an.new.pitch,
+             truths={name: true_zone_life(pair, an.mrt_map, an.zones.labels == k)
+                     for k, name in enumerate(an.zones.names)})
+    if path:
+        os.makedirs(cache, exist_ok=True)
+        with open(path + ".tmp", "wb") as f:
+            pickle.dump(a, f)
+        os.replace(path + ".tmp", path)
+    return a
+
+
+def run_case(seed, method, n_hidden, n_draws=2000, shrink=True, both_readings=True, unscanned=False, cache=None,
+             **pair_kw):
+    a = analysed_case(seed, method, n_hidden, cache=cache, **pair_kw)
     t0 = time.perf_counter()
-    dists = life_distributions(an.new.thickness, an.rates, an.zones, an.mrt_map, an.extremes_depth,
-                               nominal=an.new.meta.nominal, sigma_t=an.rates.sigma_new, pitch=an.new.pitch,
-                               n_draws=n_draws, seed=seed, shrink=shrink, both_readings=both_readings,
-                               floor_extremes=floor)
+    dists = life_distributions(a["thickness"], a["rates"], a["zones"], a["mrt"], a["ext"], nominal=a["nominal"],
+                               sigma_t=a["rates"].sigma_new, pitch=a["pitch"], n_draws=n_draws, seed=seed,
+                               shrink=shrink, both_readings=both_readings, floor_extremes=a["floor"])
     dt = time.perf_counter() - t0
     rows = []
-    for k, name in enumerate(an.zones.names):
+    for name in a["zones"].names:
         d = dists[name]
         if not d.ok or (d.n_cells == 0) != unscanned:  # zones nobody scanned: only with --unscanned
             continue
-        truth = true_zone_life(pair, an.mrt_map, an.zones.labels == k)
+        truth = a["truths"][name]
         q = d.quantiles()
         rows.append(dict(seed=seed, method=method, hidden=n_hidden, zone=name, truth=truth, p05=q[0], p50=q[1],
                          p95=q[2], p=[d.p_mrt(h) for h in HORIZONS], p_hidden=d.p_hidden_governs,
@@ -113,12 +142,13 @@ def summarise(rows):
 PIT_RATES = (0.15, 0.3)
 
 
-def main(n_seeds=48, first=100, shrink=True, both_readings=True, unscanned=False):
+def main(n_seeds=48, first=100, shrink=True, both_readings=True, unscanned=False, cache=None):
     rows = []
     t = time.time()
     for i, seed in enumerate(range(first, first + n_seeds)):
         method, hidden = CASES[i % len(CASES)]
         rows += run_case(seed, method, hidden, shrink=shrink, both_readings=both_readings, unscanned=unscanned,
+                         cache=cache,
                          max_pit_rate=PIT_RATES[(i // len(CASES)) % len(PIT_RATES)])
     print(summarise(rows))
     print(f"total {time.time() - t:.0f} s")
@@ -128,6 +158,7 @@ def main(n_seeds=48, first=100, shrink=True, both_readings=True, unscanned=False
 if __name__ == "__main__":
     argv = sys.argv[1:]
     first = int(argv[argv.index("--first") + 1]) if "--first" in argv else 100
-    args = [a for i, a in enumerate(argv) if not a.startswith("--") and (i == 0 or argv[i - 1] != "--first")]
+    cache = argv[argv.index("--cache") + 1] if "--cache" in argv else None
+    args = [a for i, a in enumerate(argv) if not a.startswith("--") and (i == 0 or argv[i - 1] not in ("--first", "--cache"))]
     main(int(args[0]) if args else 48, first=first, shrink="--no-shrink" not in argv,
-         both_readings="--one-reading" not in argv, unscanned="--unscanned" in argv)
+         both_readings="--one-reading" not in argv, unscanned="--unscanned" in argv, cache=cache)

@@ -58,8 +58,15 @@ and is drawn by a seeded, vectorised Monte Carlo:
   with no measured lower bound (repaired, not compared) the similar-depth rule below;
 * **deepest loss of the unscanned part**: parameter sets of the zone's depth fit drawn by
   parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
-  :math:`U \sim U(0, 1)`, T = hidden area / block area: the predictive distribution of the
-  deepest of T block maxima, not a plug-in return level;
+  :math:`U \sim U(0, 1)`, T = hidden area / (block area × the counted blocks' mean
+  coverage): the predictive distribution of the deepest of T block maxima, not a plug-in
+  return level.  A block maximum is the deepest loss over the *scanned* part of its block
+  (blocks count from half covered), so the fitted F is the law of the deepest loss over
+  that mean scanned area, not over a whole block; where the zone's fit is a GEV with a
+  bounded upper tail (shape < 0) the Gumbel of the same block maxima is used instead
+  (:func:`_unscanned_law`): a bounded fit from some twenty blocks says that no unscanned
+  loss is deeper than its upper end, barely above the deepest seen, which nobody measured
+  (Smith 1985: for shape < −0.5 the likelihood is not regular);
 * **rate there**: the rate of a scanned cell of the zone of similar depth (rule: the
   measured cells are ranked by loss; the one drawn is uniform among the ``w`` cells nearest
   in rank to D, ``w`` = max(5, 2 % of the cells); beyond the deepest measured cell, among
@@ -101,6 +108,8 @@ cells.
 
 References
 ----------
+R. L. Smith, "Maximum likelihood estimation in a class of nonregular cases", Biometrika 72
+(1985) 67-90 (the GEV's likelihood for shape < −0.5; from memory).
 B. Efron and R. J. Tibshirani, *An Introduction to the Bootstrap*, Chapman & Hall, 1993,
 ch. 6 (parametric bootstrap).  T. Shibata, "Application of extreme value statistics to
 corrosion", J. Res. NIST 99 (1994) 327-336 (the deepest of T blocks).  B. Efron,
@@ -118,7 +127,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import InputError
+from .errors import FitError, InputError
 
 __all__ = ["repaired_rates", "LifeDistribution", "GridPrior", "fit_rate_prior", "zone_life_distribution", "life_distributions",
            "plot_life_curve", "floor_rate_rule", "TRUNC_SD", "Z90", "MIN_PRIOR_CELLS"]
@@ -153,7 +162,8 @@ class LifeDistribution:
     n_cells, n_kept : int
         Scanned cells of the zone, and those that could be its minimum (Monte Carlo). [-]
     hidden_T : float
-        Unscanned area in blocks. [blocks]
+        Unscanned area in blocks (:func:`life_distributions`: in units of the mean scanned
+        area of a counted block). [blocks]
     p_hidden_governs : float
         Fraction of draws in which what the scan did not see (the unscanned part, the spot
         readings) reaches MRT first. [-]
@@ -952,6 +962,21 @@ def _hidden_depth(fit, T, n_draws, rng, n_fit=None, thr=None):
     return np.maximum(np.asarray(d, dtype=float), 0.0)
 
 
+def _unscanned_law(ze):
+    """The law of the unscanned part's block maxima: the zone's fit, except that a GEV
+    with a bounded upper tail (shape < 0) gives way to the Gumbel of the same block maxima
+    (module notes)."""
+    fit, b = ze.fit, getattr(ze, "blocks", None)
+    if fit is None or fit.distribution != "gev" or not fit.shape < 0 or b is None:
+        return fit
+    from .extremes import fit_gumbel_mle
+
+    try:
+        return fit_gumbel_mle(b.maxima, censored=b.censored, threshold=b.threshold)
+    except FitError:
+        return fit
+
+
 def _similar_depth(rng, d, depth_meas):
     """Index of a measured cell of similar depth for each depth in ``d`` (module notes)."""
     n = depth_meas.size
@@ -1043,10 +1068,13 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         ze = extremes_depth.get(name)
         if not ze and floor_extremes:  # borrowed, as the zone's extreme-value life does
             ze = floor_extremes
-        fit = ze.fit if ze else None
+        fit = _unscanned_law(ze) if ze else None
         hidden_mm2 = max(0.0, area - np.count_nonzero(sel) * pitch * pitch)
         block = ze.block_mm if (ze and np.isfinite(ze.block_mm)) else np.nan
-        T = hidden_mm2 / block ** 2 if fit is not None and np.isfinite(block) else 0.0
+        # the fit is the law of the deepest loss over the scanned part of a counted block
+        # (on average ``coverage`` of it), not over a whole block (module notes)
+        cov = float(np.mean(ze.blocks.coverage)) if ze and getattr(ze, "blocks", None) is not None else 1.0
+        T = hidden_mm2 / (block ** 2 * cov) if fit is not None and np.isfinite(block) and cov > 0 else 0.0
         cens = rates.censored[sel] if rates.censored is not None else None
         unseen = as_found[name].unseen if as_found and name in as_found else None
         if not sel.any() and fit is not None and not floor_rule and unseen is None:

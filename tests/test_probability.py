@@ -365,3 +365,47 @@ def test_grouping_made_once_gives_the_same_prior_and_ranges():
     np.testing.assert_array_equal(alone.weights, shared.weights)
     for a, b in zip(_post_range(alone, par), _post_range(shared, par, groups=groups)):
         np.testing.assert_array_equal(a, b)
+
+
+def test_unscanned_part_has_no_upper_end_where_the_gev_fit_has_one():
+    # 21 block maxima spread as a GEV with a bounded upper tail (shape -0.6, upper end
+    # 2.83 mm): the fit says no unscanned loss is deeper than that, a claim 21 blocks cannot
+    # make for metal nobody saw.  The unscanned part takes the Gumbel of the same maxima;
+    # over 2 blocks it puts loss beyond the GEV's upper end in more than 5 % of the draws,
+    # the GEV's own bootstrap in hardly any.
+    from types import SimpleNamespace
+
+    from scananalyse.extremes import fit_gev_mle, gev_ppf
+    from scananalyse.probability import _unscanned_law
+
+    x = gev_ppf((np.arange(21) + 0.5) / 21, 2.0, 0.5, -0.6)
+    gev = fit_gev_mle(x)
+    assert gev.distribution == "gev" and gev.shape < -0.3
+    ze = SimpleNamespace(fit=gev, blocks=SimpleNamespace(maxima=x, censored=np.zeros(x.size, bool), threshold=None))
+    law = _unscanned_law(ze)
+    assert law.distribution == "gumbel" and law.n == x.size
+    end = gev.loc - gev.scale / gev.shape
+    t, r = np.full(200, 6.2), np.full(200, 0.05)
+    kw = dict(sigma_t=0.0, nominal=6.35, hidden_T=2.0, n_draws=4000, seed=11)
+    h_end = (6.35 - end - 2.54) / 0.05  # life of the unscanned part at the GEV's upper end
+    p_gev = _one(t, r, 0.0, hidden_fit=gev, **kw).p_mrt(h_end)
+    p_law = _one(t, r, 0.0, hidden_fit=law, **kw).p_mrt(h_end)
+    assert p_law > 0.05 and p_gev < 0.02
+    # a fit with an unbounded tail is kept as it is
+    assert _unscanned_law(SimpleNamespace(fit=law, blocks=ze.blocks)) is law
+
+
+@pytest.mark.slow
+def test_unscanned_pit_beyond_a_bounded_fit_is_not_optimistic():
+    # The bench floor (bench/bench_calibration.py) of seed 235, UT, no planted pits, pit
+    # rates up to 0.15 mm/y: the zone's truth (3.92 y) is an unscanned pit 3.18 mm deep; the
+    # zone's GEV fit (shape -0.8) puts the unscanned part's deepest loss below 3.1 mm in
+    # every draw, and the life's p05 came out 4.97 y.  With the Gumbel there the truth is
+    # inside [p05, p95].
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
+    import bench_calibration as bc
+
+    rows = bc.run_case(235, "UT", 0, n_draws=2000, max_pit_rate=0.15)
+    r = [r for r in rows if r["zone"] == "interior"][0]
+    assert 3.5 < r["truth"] < 4.5  # the floor is the one described
+    assert r["p05"] <= r["truth"] <= r["p95"], (r["truth"], r["p05"], r["p95"])
