@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import FitError, ScanWarning
-from .extremes import (depth_map, fit_gev_mle, fit_gumbel_mle, fit_zone, predictive_max_quantile,
+from .extremes import (depth_map, fit_gev_mle, fit_gumbel_mle, fit_zone, predictive_max_quantile, unscanned_law,
                        projected_block_maxima)
 
 __all__ = ["LIFE_LEVEL", "LIFE_HORIZON_Y", "HIDDEN_LEVELS", "EVA_COLUMNS", "HiddenPart", "masked_nanmin",
@@ -330,29 +330,35 @@ def _hidden_worst_seen(depth0, rate, cells, hidden_mm2, allowance, thr, *, reaso
 
 def _hidden_from_fit(depth0, rate, fit_mask, z0, hidden_mm2, allowance, *, source, reason, pitch, block_mm,
                      seed, threshold) -> HiddenPart:
-    """:class:`HiddenPart` from the fit ``z0`` of the block maxima of ``fit_mask``."""
-    gev = getattr(z0.fit, "distribution", "") == "gev"
+    """:class:`HiddenPart` from the fit ``z0`` of the block maxima of ``fit_mask``; a GEV
+    with a bounded upper tail is never extrapolated to the hidden metal
+    (:func:`~scananalyse.extremes.unscanned_law`: the Gumbel of the same maxima instead,
+    at every horizon)."""
+    b = z0.blocks
+    law0 = unscanned_law(z0.fit, b.maxima, censored=b.censored, threshold=b.threshold) if b is not None else z0.fit
+    gev = getattr(law0, "distribution", "") == "gev"
     n_boot = N_BOOT["gev" if gev else "gumbel"]
     b_cells = max(1, int(round((z0.block_mm if np.isfinite(z0.block_mm) else block_mm) / pitch)))
     T = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
     cens_thr = threshold if z0.n_censored else None
-    p50, p95 = (predictive_max_quantile(z0.fit, z0.n_blocks, T, p, threshold=cens_thr, n_boot=n_boot, seed=seed)
+    p50, p95 = (predictive_max_quantile(law0, z0.n_blocks, T, p, threshold=cens_thr, n_boot=n_boot, seed=seed)
                 for p in HIDDEN_LEVELS)
-    last = [(z0.fit.loc, z0.fit.scale, z0.fit.shape) if gev else None]  # warm start of the next GEV
+    last = [(law0.loc, law0.scale, law0.shape) if gev else None]  # warm start of the next GEV
 
     def fitter(x, cens):
+        thr = threshold if cens is not None else None
         if not gev:
-            return fit_gumbel_mle(x, censored=cens, threshold=threshold if cens is not None else None)
-        f = fit_gev_mle(x, censored=cens, threshold=threshold if cens is not None else None, start=last[0])
+            return fit_gumbel_mle(x, censored=cens, threshold=thr)
+        f = fit_gev_mle(x, censored=cens, threshold=thr, start=last[0])
         last[0] = (f.loc, f.scale, f.shape)
-        return f
+        return unscanned_law(f, x, censored=cens, threshold=thr)
 
     projector = projected_block_maxima(depth0, rate, valid=fit_mask, block_cells=b_cells, min_coverage=0.5,
                                        threshold=threshold)
 
     def excess(h):
         if h == 0:
-            fit, n, thr_h = z0.fit, z0.n_blocks, cens_thr
+            fit, n, thr_h = law0, z0.n_blocks, cens_thr
         else:
             bm = projector(h)
             x, cens = bm.maxima, bm.censored
@@ -374,8 +380,12 @@ def _hidden_from_fit(depth0, rate, fit_mask, z0, hidden_mm2, allowance, *, sourc
         from scipy.optimize import brentq
 
         life = max(0.0, brentq(excess, 0.0, LIFE_HORIZON_Y, xtol=0.02) - 0.05)
+    method = z0.row().get("eva_method", "")
+    if law0 is not z0.fit:
+        why = "the zone's GEV fit has a bounded upper tail: the unscanned part takes the Gumbel of the same maxima"
+        method, reason = f"gumbel-{law0.method}", "; ".join(x for x in (reason, why) if x)
     return HiddenPart(area_mm2=hidden_mm2, T=T, life_y=life, depth_p50_mm=p50, depth_p95_mm=p95, source=source,
-                      method=z0.row().get("eva_method", ""), reason=reason)
+                      method=method, reason=reason)
 
 
 def zone_lives(seen: dict, hidden: dict) -> dict:

@@ -30,7 +30,7 @@ from scipy import optimize, stats
 
 from .errors import FitError, InputError
 
-__all__ = ["predictive_max_quantile", 
+__all__ = ["predictive_max_quantile", "unscanned_law", 
     "EULER_GAMMA",
     "MIN_UNCENSORED",
     "BlockMaxima",
@@ -1194,6 +1194,27 @@ def max_quantile(fit, T, p):
     if not (T > 0 and 0 < p < 1):
         raise InputError(f"max_quantile: fields 'T' > 0 and 0 < 'p' < 1 needed, got {T}, {p}")
     return float(fit.ppf(p ** (1.0 / T)))
+
+
+def unscanned_law(fit, maxima, *, censored=None, threshold=None):
+    """The law to extrapolate block maxima to metal nobody saw: ``fit``, except that a GEV
+    with a bounded upper tail (shape < 0) gives way to the Gumbel of the same ``maxima``
+    (``fit`` itself if that fit fails).
+
+    A negative shape fitted to some twenty block maxima puts an end to the loss just past
+    the deepest seen; no sample of that size can show that deeper loss does not occur where
+    nobody looked (the shape's estimate is irregular below -0.5: Smith, Biometrika 72 (1985)
+    67-90; Coles 2001 §3.3.2, both from memory), so the unscanned part is never given an
+    upper end the data cannot support.  The Gumbel (shape 0) is the bounded fit's nearest
+    law with an unbounded tail; Shibata (1994) and the corrosion literature use it for pit
+    depths throughout.
+    """
+    if fit is None or fit.distribution != "gev" or not fit.shape < 0 or maxima is None:
+        return fit
+    try:
+        return fit_gumbel_mle(maxima, censored=censored, threshold=threshold)
+    except FitError:
+        return fit
 
 
 def predictive_max_quantile(fit, n_blocks: int, T: float, p: float, *, threshold=None, n_boot: int = 200,

@@ -127,7 +127,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import FitError, InputError
+from .errors import InputError
 
 __all__ = ["repaired_rates", "LifeDistribution", "GridPrior", "fit_rate_prior", "zone_life_distribution", "life_distributions",
            "plot_life_curve", "floor_rate_rule", "TRUNC_SD", "Z90", "MIN_PRIOR_CELLS"]
@@ -966,15 +966,12 @@ def _unscanned_law(ze):
     """The law of the unscanned part's block maxima: the zone's fit, except that a GEV
     with a bounded upper tail (shape < 0) gives way to the Gumbel of the same block maxima
     (module notes)."""
-    fit, b = ze.fit, getattr(ze, "blocks", None)
-    if fit is None or fit.distribution != "gev" or not fit.shape < 0 or b is None:
-        return fit
-    from .extremes import fit_gumbel_mle
+    from .extremes import unscanned_law
 
-    try:
-        return fit_gumbel_mle(b.maxima, censored=b.censored, threshold=b.threshold)
-    except FitError:
-        return fit
+    b = getattr(ze, "blocks", None)
+    if b is None:
+        return ze.fit
+    return unscanned_law(ze.fit, b.maxima, censored=b.censored, threshold=b.threshold)
 
 
 def _similar_depth(rng, d, depth_meas):
