@@ -339,7 +339,11 @@ def _hidden_from_fit(depth0, rate, fit_mask, z0, hidden_mm2, allowance, *, sourc
     gev = getattr(law0, "distribution", "") == "gev"
     n_boot = N_BOOT["gev" if gev else "gumbel"]
     b_cells = max(1, int(round((z0.block_mm if np.isfinite(z0.block_mm) else block_mm) / pitch)))
-    T = max(1.0, hidden_mm2 / (b_cells * pitch) ** 2)
+    # the fit is the law of the deepest loss over the scanned part of a counted block (on
+    # average ``cov`` of it), not over a whole block: T counts that area (as the life
+    # distribution does)
+    cov = float(np.mean(b.coverage)) if b is not None and np.size(b.coverage) else 1.0
+    T = max(1.0, hidden_mm2 / ((b_cells * pitch) ** 2 * (cov if cov > 0 else 1.0)))
     cens_thr = threshold if z0.n_censored else None
     p50, p95 = (predictive_max_quantile(law0, z0.n_blocks, T, p, threshold=cens_thr, n_boot=n_boot, seed=seed)
                 for p in HIDDEN_LEVELS)
