@@ -250,9 +250,11 @@ def test_zone_life_distribution_columns_and_target_probability():
     # are probabilities of the draws at the recommended interval (LifeDistribution.row).
     from scananalyse.assess import PROBABILITY_COLUMNS
 
-    # a mild floor (slow pits, none hidden) whose interior keeps a positive interval
+    # a mild floor (slow pits, none hidden) whose interior keeps a positive interval (at
+    # 0.15 mm/y its unscanned part's 95 % bound is past the allowance since that part takes
+    # no bounded tail and counts blocks by their coverage: 0 y)
     pair = make_pair(diameter_mm=4000.0, pitch_new=20.0, pitch_old=25.0, seed=11, rotation_deg=0.8,
-                     shift_mm=(40.0, 20.0), max_pit_rate=0.15, n_hidden_pits=0)
+                     shift_mm=(40.0, 20.0), max_pit_rate=0.10, n_hidden_pits=0)
     an = analyse(pair.new, pair.old, job=Job(diameter=4000.0))
     for t in (an.zone_table, an.zones_repaired):
         assert set(PROBABILITY_COLUMNS) <= set(t.columns)
