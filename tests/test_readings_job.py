@@ -257,3 +257,6 @@ def test_a_hand_reading_off_the_scan_governs_its_scanned_zone(tmp_path, capsys):
     assert rep["t_min_mm"] == 2.0  # (already 0 y by the unscanned part: readings-govern is not added)
     assert "2.00 mm" in rep["notes"] and "does not cover it" in rep["notes"]
     assert rep["life_p05_y"] == rep["life_p95_y"] == 0.0
+    # and the report says what to do about it
+    html = (out_dir / "report.html").read_text(encoding="utf-8")
+    assert "still below MRT at a spot reading" in html and "does not cover" in html

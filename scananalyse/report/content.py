@@ -51,6 +51,11 @@ def actions(an, units: str = "mm") -> list[str]:
                        "the metal supports; the recommendation follows the metal.")
         if rep is not None and zone in rep.index:
             r = rep.loc[zone]
+            if "does not cover it" in str(r.get("notes", "")):  # a hand reading below MRT off the scan
+                out.append(f"After the proposed repairs zone {zone} is still below MRT at a spot reading where the "
+                           f"scan has no value (thinnest {q(r['t_min_mm'], 'thickness')} against "
+                           f"{q(r['mrt_mm'], 'thickness')}): the patch plan is made from the scan and does not cover "
+                           "that spot; repair it too, and scan around it.")
             if isinstance(r["limiting"], str) and r["limiting"] == "eva" and np.isfinite(r["interval_recommended_y"]):
                 hidden = r.get("hidden_area_m2", np.nan)
                 if not np.isfinite(hidden):
