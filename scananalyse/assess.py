@@ -42,6 +42,7 @@ __all__ = [
     "mrt_map",
     "add_years",
     "assess_zones",
+    "code_formula",
     "recommend_interval",
     "ZONE_COLUMNS",
     "BOUND_NAMES",
@@ -820,6 +821,23 @@ def _zone_row(k: int, name: str, kind: str, z: dict, c: _Context) -> dict:
     return row
 
 
+def code_formula(meta, options: AssessOptions):
+    """:func:`code_interval` of a floor's zones as ``f(rtbc, rtip, mrt)`` -> CodeResult: the
+    scan's nominal, age, method and threshold and the job's coating and CP options; None
+    without an installation date.  The zone table and the spot readings of a scanned zone
+    (:func:`~scananalyse.readings.add_reading_zones`) both run it."""
+    age = meta.age_years
+    if age is None:
+        return None
+    t0 = _num(meta.nominal, "nominal", positive=True)
+
+    def formula(rtbc, rtip, mrt):
+        return code_interval(t0=t0, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=age, method=meta.method or "",
+                             threshold=meta.threshold, coated=options.coated or options.reinforced_lining,
+                             coating_life_years=options.coating_life_years, cp_effective=options.cp_effective)
+    return formula
+
+
 def _code_part(row, rtbc, rtip, mrt, c: _Context, flags, notes) -> float:
     """The code-formula interval of a zone (exactly as the standard reads)."""
     meta = c.meta
@@ -829,11 +847,7 @@ def _code_part(row, rtbc, rtip, mrt, c: _Context, flags, notes) -> float:
         flags.append("no-age")
         return math.nan
     method = meta.method or ""
-    cr = code_interval(t0=c.t0, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=c.age,
-                       method=method, threshold=meta.threshold,
-                       coated=c.options.coated or c.options.reinforced_lining,
-                       coating_life_years=c.options.coating_life_years,
-                       cp_effective=c.options.cp_effective)
+    cr = code_formula(meta, c.options)(rtbc, rtip, mrt)
     row.update({"t_used_upr_mm": cr.t_used_upr, "stpr_mm_y": cr.stpr, "upr_mm_y": cr.upr,
                 "interval_code_y": cr.interval_y})
     notes.extend(cr.notes)

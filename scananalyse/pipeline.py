@@ -32,7 +32,7 @@ from .probability import life_distributions, repaired_rates
 from .progress import Progress
 from .register import register, resample_onto
 from .rules import get_ruleset
-from .scan import MM_PER_IN, FloorScan, years_between
+from .scan import MM_PER_IN, FloorScan
 
 __all__ = ["Analysis", "analyse", "read_job_inputs"]
 
@@ -148,8 +148,8 @@ def analyse(new: FloorScan, old: FloorScan | None = None, *, job: Job, progress:
         zmap = _zone_map(new, job, rules)
         options = _assess_options(job)
         mrt, zone_mrt = _mrt(zmap, rules, options, job, nominal_mm=new.meta.nominal)
-        reading_zone_table, off_scan_table, spots = _reading_zone_table(readings_new, readings_old, reg, zmap, zone_mrt, new,
-                                                        rules, options)
+        reading_zone_table, off_scan_table, spots = _reading_zone_table(readings_new, readings_old, reg, zmap,
+                                                                        zone_mrt, new, rules, options)
         ind_new = _newer_indications(ind_labels, layers.loss, new, side, zmap)
 
     with prog.stage("extremes"):
@@ -394,22 +394,10 @@ def _with_probabilities(table, life_dists, reading_zone_table, hidden, new, rule
     due date (the readings may have set or shortened it)."""
     if reading_zone_table is not None:
         table = rd.add_reading_zones(table, reading_zone_table, rules=rules, inspected=new.meta.inspected,
-                                     hidden=hidden, code_of=_code_of(new, options))
+                                     hidden=hidden, code_of=assess.code_formula(new.meta, options))
     return assess.add_life_distribution(table, life_dists, inspected=new.meta.inspected, rules=rules,
                                         target_probability=job.target_probability)
 
-
-def _code_of(new, options):
-    """The code formula of this floor's zones as ``code_of(rtbc, rtip, mrt)`` (the scan's
-    method and threshold), or None without an installation date."""
-    meta = new.meta
-    if meta.installed is None:
-        return None
-    age = years_between(meta.installed, meta.inspected)
-    return lambda rtbc, rtip, mrt: assess.code_interval(
-        t0=meta.nominal, rtbc=rtbc, rtip=rtip, mrt=mrt, age_years=age, method=meta.method or "",
-        threshold=meta.threshold, coated=options.coated or options.reinforced_lining,
-        coating_life_years=options.coating_life_years, cp_effective=options.cp_effective)
 
 
 def _rules_applied(rules, job, rep):
