@@ -30,7 +30,7 @@ from scipy import optimize, stats
 
 from .errors import FitError, InputError
 
-__all__ = ["predictive_max_quantile", "unscanned_law", 
+__all__ = ["predictive_max_quantile", "unscanned_law",
     "EULER_GAMMA",
     "MIN_UNCENSORED",
     "BlockMaxima",
