@@ -123,7 +123,7 @@ uncertainties use up the wall by a date, is that of risk-based inspection practi
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -141,8 +141,16 @@ MIN_PRIOR_CELLS = 50
 #: Width of the normal kernel the discrete NPMLE of the rate distribution is smoothed by,
 #: as a fraction of the median rate noise (one sd) of the zone's cells. [-]
 SMOOTH_FRACTION = 0.5
-#: Most cells the floor's similar-depth rule is built from (:func:`floor_rate_rule`). [-]
-FLOOR_RULE_CELLS = 150_000
+#: Most cells the similar-depth rule and a zone's rate distribution are built from
+#: (:func:`_reference`); above it a random sample of them. [-]
+REF_CELLS = 150_000
+#: Cells whose rate ranges are worked out exactly first, to bound which cells can be a
+#: zone's minimum (:func:`_screen`). [-]
+PROBE_CELLS = 64
+#: Most block maxima the unscanned part's bootstrap resamples in all (parameter sets ×
+#: blocks; at least 200 sets): a zone of many blocks has tight parameters and needs fewer
+#: sets (a 30 m floor's 700 blocks: 285 sets, not 2 000); a 5 m floor's 20 keep 2 000. [-]
+BOOT_MAXIMA = 200_000
 #: The note of a zone with no scanned cell.
 NOT_SCANNED = ("zone not scanned: its whole area drawn from the floor's depth fit, at the rates of the floor's "
                "measured cells of similar depth")
@@ -170,6 +178,10 @@ class LifeDistribution:
     unseen : tuple
         (life to MRT, life to a leak) draws of what the scan did not see, (None, None) when
         nothing: a repaired floor's distribution takes them from the floor as found. [y]
+    reference : object
+        The zone's rate distribution and the cells of its similar-depth rule (None for a
+        zone nobody scanned): a repaired floor's distribution takes them from the floor as
+        found.
     reason : str
         Empty when ok; otherwise why there is no estimate (the draws are NaN).
     """
@@ -183,6 +195,7 @@ class LifeDistribution:
     reason: str = ""
     notes: tuple = field(default=())
     unseen: tuple = field(default=(None, None), repr=False)
+    reference: object = field(default=None, repr=False)
 
     @property
     def ok(self) -> bool:
@@ -248,8 +261,10 @@ def _rate_range(point, lo, hi):
 
 
 def _clean(point, lo, hi):
+    """A side's rate and interval as drawn: a NaN or negative point is 0, a NaN bound the
+    point, a lower bound at least 0 and at most the point."""
     p = np.where(np.isfinite(point), np.maximum(point, 0.0), 0.0)
-    lo = np.where(np.isfinite(lo), np.minimum(lo, p), p)
+    lo = np.where(np.isfinite(lo), np.clip(lo, 0.0, p), p)
     hi = np.where(np.isfinite(hi), np.maximum(hi, p), p)
     return p, lo, hi
 
@@ -335,12 +350,15 @@ class GridPrior:
 
 def _npmle(lik, counts, n_iter):
     """EM for the weights of a mixing distribution on a grid: ``lik`` (m, K) likelihoods of
-    m distinct data, ``counts`` (m,) how often each occurs."""
+    m distinct data, ``counts`` (m,) how often each occurs.  The two products of each step
+    are :func:`numpy.einsum`'s own loops, not the threaded BLAS: on a machine another
+    process keeps busy, 300 small threaded products took 0.3-4.8 s instead of 0.05 s (a
+    thread waits for its sibling's core), and einsum's take 0.1 s either way."""
     c = counts.astype(float) / counts.sum()
     w = np.full(lik.shape[1], 1.0 / lik.shape[1])
     for _ in range(n_iter):
-        f = lik @ w
-        w = w * (lik.T @ (c / np.where(f > 0, f, np.inf)))
+        f = np.einsum("ij,j->i", lik, w)
+        w = w * np.einsum("ij,i->j", lik, c / np.where(f > 0, f, np.inf))
         w /= w.sum()
     return w
 
@@ -363,32 +381,44 @@ def _groups(key):
 
 
 def _lik_key(par, q):
-    """One integer per cell, equal for total-rate likelihoods equal to ``q``."""
+    """One integer per cell, equal for total-rate likelihoods equal to ``q`` (and alike in
+    :func:`_own`)."""
     point, sd_lo, sd_hi, flat, a, b = par
     key = np.zeros(point.shape, np.int64)
     for k in (np.rint(np.where(flat, a, point) / q), np.rint(np.where(flat, b, sd_lo) / q),
-              np.where(flat, 0, np.rint(sd_hi / q) + 1)):
+              np.where(flat, _own(par), np.rint(sd_hi / q) + 2)):
         key = key * (1 << 21) + np.clip(k.astype(np.int64), 0, (1 << 21) - 1)
     return key
 
 
 def _lik_groups(par, q):
-    """:func:`_groups` of total-rate likelihoods equal to ``q``."""
-    return _groups(_lik_key(par, q))
+    """The total-rate likelihoods ``par`` grouped where equal to ``q``: each group's
+    likelihood, its parameters rounded to ``q`` (so the same whichever cells are grouped
+    with it: within ``q``/2 of each of its cells'), whether its cells are drawn alone
+    (:func:`_own`), how many cells share it, and each cell's group."""
+    first, counts, inv = _groups(_lik_key(par, q))
+    point, sd_lo, sd_hi, flat, a, b = (x[first] for x in par)
+
+    def r(x):
+        return np.rint(x / q) * q
+    p, lo, hi = r(point), r(sd_lo), r(sd_hi)
+    rep = (p, lo, hi, flat, np.where(flat, r(a), np.maximum(p - TRUNC_SD * lo, 0.0)),
+           np.where(flat, r(b), p + TRUNC_SD * hi))
+    return rep, _own(par, first), counts, inv
 
 
-def _post_range(prior, par, eps=1e-9, pad=3, groups=None):
+def _post_range(prior, par, eps=1e-9, pad=3):
     """Smallest and largest rate each cell's posterior draws can take: its grid rates with
-    posterior mass above ``eps`` × the cell's largest, widened by ``pad`` grid steps (the
-    cells share the likelihood of their group to half a step), within [a, b].  The draws
-    are clipped to this range, so the pruning with it is exact.  ``groups``: the cells'
-    :func:`_lik_groups` at half the prior's step, when already made."""
+    posterior mass above ``eps`` × the cell's largest, widened by ``pad`` grid steps (each
+    cell's likelihood is taken rounded to half a step, :func:`_lik_groups`), within [a,
+    b].  A cell's range does not depend on the other cells given with it.  The draws are
+    clipped to this range, so the pruning with it is exact."""
     a, b = par[4], par[5]
     if a.size == 0:
         return a.copy(), b.copy()
     h = prior.step
-    first, _, inv = _lik_groups(par, 0.5 * h) if groups is None else groups
-    post = prior.posterior(_lik(prior.grid, h, *(x[first] for x in par)), _own(par, first))
+    rep, own, _, inv = _lik_groups(par, 0.5 * h)
+    post = prior.posterior(_lik(prior.grid, h, *rep), own)
     m = post > eps * post.max(axis=1, keepdims=True)
     K = prior.grid.size
     k0 = np.argmax(m, axis=1)
@@ -406,10 +436,9 @@ def _rate_grid(b, top=None, n_grid=200):
     return np.linspace(0.0, top, n_grid)
 
 
-def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=None, groups=None) -> "GridPrior":
+def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=None) -> "GridPrior":
     """:func:`fit_rate_prior` on the total-rate likelihoods ``par`` of :func:`_total_rate`
-    (grid :func:`_rate_grid`); ``groups``: their :func:`_lik_groups` at half its step,
-    when already made."""
+    (grid :func:`_rate_grid`)."""
     point, sd_lo, sd_hi, flat, a, b = par
     n = point.size
     min_cells = MIN_PRIOR_CELLS if min_cells is None else min_cells
@@ -419,8 +448,8 @@ def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=
     h = grid[1] - grid[0]
     q = 0.5 * h
     # identical likelihoods (to half a grid step) are one group with a count
-    first, counts, _ = _lik_groups(par, q) if groups is None else groups
-    lik = _lik(grid, h, point[first], sd_lo[first], sd_hi[first], flat[first], a[first], b[first])
+    rep, _, counts, _ = _lik_groups(par, q)
+    lik = _lik(grid, h, *rep)
     w = _npmle(lik, counts, n_iter)
     if smooth is None:
         nf = ~flat & (point > h)
@@ -428,7 +457,7 @@ def _fit_prior(par, *, n_grid=200, n_iter=300, min_cells=None, smooth=None, top=
     if smooth > 0.5 * h:  # the NPMLE is discrete: spread each atom by a normal kernel
         ker = np.exp(-0.5 * ((grid[:, None] - grid[None, :]) / smooth) ** 2)
         w = (ker / ker.sum(axis=0, keepdims=True)) @ w
-    return GridPrior(grid, w / w.sum(), int(n), int(first.size))
+    return GridPrior(grid, w / w.sum(), int(n), int(counts.size))
 
 
 def fit_rate_prior(rate_top, rate_under, rate_top_lo, rate_top_hi, rate_under_lo, rate_under_hi, *,
@@ -520,7 +549,7 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
                            measured=None, hidden_fit=None, hidden_T=0.0, hidden_n=None,
                            hidden_threshold=None, n_draws=2000, seed=0, shrink=True,
                            rate_prior=None, older=None, sigma_old=None, dt_years=None, spots=None,
-                           floor_rule=None, unseen=None) -> LifeDistribution:
+                           floor_rule=None, unseen=None, reference=None) -> LifeDistribution:
     r"""Distribution of one zone's time to MRT and to a leak (our own model, module notes).
 
     Parameters
@@ -568,6 +597,10 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         :attr:`LifeDistribution.unseen` of the same zone as found, taken as it is (the
         unscanned part and the spots are not drawn again): on a repaired floor, so that no
         repair changes metal nobody measured.
+    reference : object, optional
+        :attr:`LifeDistribution.reference` of the same zone as found, taken as it is (its
+        rate distribution and similar-depth cells are not estimated again): on a repaired
+        floor, so that a repair changes no other cell's rates.
 
     Returns
     -------
@@ -593,8 +626,19 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         return _unscanned_zone(c, mrt, hidden_fit, float(hidden_T), n_draws, seed, hidden_n, hidden_threshold,
                                spots, floor_rule)
     rng = np.random.default_rng(seed)
-    rates = _shrunk_rates(c, rng, rate_prior) if shrink else _own_rates(c, rng)
-    cand = _candidates(c, rates)
+    bound = _rate_bound(c)
+    ref = reference
+    if ref is None or (ref.prior is not None) != bool(shrink):
+        top = _rate_top(c, bound) if shrink and rate_prior is None and c.unc.any() else None
+        ref = _reference(c, shrink=shrink, prior=rate_prior, top=top)
+
+    def rates_of(cells):
+        return _shrunk_rates(cells, ref, rng) if shrink else _own_rates(cells, ref, rng)
+
+    # one cheap pass over all cells; the exact ranges only for those that could matter
+    seen = _take(c, _screen(c, bound, ref.r_top, lambda cells: _life_bounds(cells, rates_of(cells))))
+    rates = rates_of(seen)
+    cand = _candidates(seen, rates)
     # the below-threshold and unscanned parts first: their draws bound which scanned cells
     # can still lower a draw's minimum (the seen part stops there, exactly)
     life_mrt = np.full(n_draws, 0.0 if cand.below else np.inf)
@@ -607,14 +651,14 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         h_mrt, h_leak = _unseen_lives(c, rates, spots, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
     else:  # the floor as found's (on a repaired floor: a repair changes no metal nobody saw)
         h_mrt, h_leak = unseen
-    seen_mrt, seen_leak, n_drawn = _seen_lives(c, rates, cand, life_mrt, life_leak, h_mrt=h_mrt, h_leak=h_leak,
-                                               rng=rng)
+    seen_mrt, seen_leak, n_drawn = _seen_lives(seen, rates, cand, life_mrt, life_leak, h_mrt=h_mrt,
+                                               h_leak=h_leak, rng=rng)
     p_hidden = 0.0 if h_mrt is None else float(np.mean(h_mrt < seen_mrt))
     if h_mrt is not None:
         seen_mrt, seen_leak = np.minimum(seen_mrt, h_mrt), np.minimum(seen_leak, h_leak)
     notes = ("unscanned part not modelled (no extreme-value fit)",) if (T > 0 and hidden_fit is None) else ()
     return LifeDistribution(seen_mrt, seen_leak, n_cells=c.n, n_kept=n_drawn, hidden_T=T,
-                            p_hidden_governs=p_hidden, notes=notes, unseen=(h_mrt, h_leak))
+                            p_hidden_governs=p_hidden, notes=notes, unseen=(h_mrt, h_leak), reference=ref)
 
 
 def _unseen_lives(c, rates, spots, fit, T, n_draws, rng, n_fit, thr):
@@ -674,10 +718,11 @@ def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
 @dataclass(frozen=True)
 class _Cells:
     """A zone's scanned cells as the Monte Carlo takes them, one by one: thickness ``t``,
-    ``mrt``, sigma ``sig`` [mm]; per-side rates and intervals ``pt, lt, ht, pu, lu, hu``
-    [mm/y]; ``cens`` (below the threshold), ``unc`` (not), ``meas`` (rate measured),
-    ``lo_known`` (both sides' lower bounds finite); ``ref``: the cells of the similar-depth
-    rule and ``ref_depth`` their loss [mm]; ``n``: cells given, scanned or not;
+    ``mrt``, sigma ``sig`` [mm]; per-side rates and intervals ``side_rates`` = ``(pt, lt,
+    ht, pu, lu, hu)`` [mm/y] (as given, in the maps' precision; cleaned, in float64, in a
+    :func:`_take`); ``cens`` (below the threshold), ``unc`` (not), ``meas`` (rate measured),
+    ``lo_known`` (both sides' lower bounds finite); ``ref``: the cells the similar-depth
+    rule may take (:func:`_reference`); ``n``: cells given, scanned or not;
     ``any_cens``: some scanned cell is below the threshold; ``mrt_min``: the least MRT of
     the scanned cells [mm] (:func:`_kept_cells`: which scanned cells are listed)."""
 
@@ -690,11 +735,11 @@ class _Cells:
     lo_known: np.ndarray
     side_rates: tuple
     ref: np.ndarray
-    ref_depth: np.ndarray
     nominal: float
     threshold: float
     n: int
     old: np.ndarray
+    s_old2: float
     w_new: np.ndarray
     sig_post: np.ndarray
     dt: float
@@ -725,36 +770,196 @@ def _scanned_cells(thickness, rate_arrays, mrt, *, sigma_t, nominal, censored, t
     take = None if take.all() else take  # the usual UT case: no copies
     m = n if take is None else int(np.count_nonzero(take))
 
-    def flat(a, dtype=float):  # dtype None: the array's own
+    def flat(a, dtype=None):  # dtype None: the array's own (a scalar: a read-only view, no copies)
         if np.ndim(a) == 0:
-            return np.full(m, a, dtype=dtype)
+            return np.broadcast_to(np.asarray(a, dtype=dtype or float), (m,))
         a = np.asarray(a).ravel()
         a = a if take is None else a[take]
         return a if dtype is None else a.astype(dtype, copy=False)
+    # in the maps' own precision: every use is arithmetic in float64 or a comparison (exact)
     t = flat(t_all)
-    raw = [flat(a, None) for a in rate_arrays]
+    raw = [flat(a) for a in rate_arrays]
     mrt_a, sig = flat(mrt), flat(sigma_t)
     mrt_min = float(np.min(np.asarray(mrt).ravel(), where=ok, initial=np.inf)
                     if np.ndim(mrt) else mrt) if ok.any() else np.nan
     cens = flat(cens_all, bool)
     unc = ~cens
-    meas = np.ones(m, bool) if measured is None else flat(measured, bool)
-    # cleaned in the maps' own precision (it only compares and selects: exact), then float64
-    side_rates = tuple(x.astype(float, copy=False) for x in (*_clean(raw[0], raw[2], raw[3]),
-                                                             *_clean(raw[1], raw[4], raw[5])))
+    meas = flat(True, bool) if measured is None else flat(measured, bool)
     # reference cells of the similar-depth rate rule: the measured, uncensored cells
     ref = unc & meas
     ref = ref if ref.any() else (unc if unc.any() else np.ones_like(unc))
-    old = np.full(m, np.nan) if older is None else flat(older)
-    use = np.isfinite(old) & unc & meas & bool(dt_years) & (sigma_old is not None)
-    s_old2 = float(sigma_old) ** 2 if sigma_old is not None else 0.0
-    w_new = np.where(use, s_old2 / np.maximum(s_old2 + sig * sig, 1e-30), 1.0)
-    sig_post = np.where(use, np.sqrt(w_new) * sig, sig)
+    both = older is not None and bool(dt_years) and sigma_old is not None  # else the newer reading alone
     return _Cells(t=t, mrt=mrt_a, sig=sig, cens=cens, unc=unc, meas=meas,
-                  lo_known=np.isfinite(raw[2]) & np.isfinite(raw[4]), side_rates=side_rates, ref=ref,
-                  ref_depth=nominal - t[ref], nominal=float(nominal), threshold=thr, n=int(n),
-                  old=np.where(use, old, np.nan), w_new=w_new, sig_post=sig_post, dt=float(dt_years or 0.0),
+                  lo_known=np.isfinite(raw[2]) & np.isfinite(raw[4]), ref=ref,
+                  side_rates=(raw[0], raw[2], raw[3], raw[1], raw[4], raw[5]),  # (pt, lt, ht, pu, lu, hu)
+                  nominal=float(nominal), threshold=thr, n=int(n), old=flat(older if both else np.nan),
+                  s_old2=float(sigma_old) ** 2 if both else np.nan, w_new=None, sig_post=None,
+                  dt=float(dt_years or 0.0) if both else 0.0,
                   any_cens=bool(np.any(cens_all & ok)), mrt_min=mrt_min)
+
+
+def _take(c: _Cells, idx) -> _Cells:
+    """The cells ``idx`` of ``c``, their rates cleaned and in float64: what the per-cell
+    work takes (the cleaning only compares and selects, so it is exact in the maps' own
+    precision)."""
+    raw = [a[idx] for a in c.side_rates]
+    side = tuple(x.astype(float, copy=False) for x in (*_clean(*raw[:3]), *_clean(*raw[3:])))
+    unc, meas, sig = c.unc[idx], c.meas[idx], c.sig[idx].astype(float)
+    old = c.old[idx].astype(float)
+    # the older reading counts where it reads the same metal (module notes): its weight
+    use = np.isfinite(old) & unc & meas & np.isfinite(c.s_old2)
+    w_new = np.where(use, c.s_old2 / np.maximum(c.s_old2 + sig * sig, 1e-30), 1.0)
+    return replace(c, t=c.t[idx].astype(float), mrt=c.mrt[idx].astype(float), sig=sig, cens=c.cens[idx], unc=unc,
+                   meas=meas, lo_known=c.lo_known[idx], side_rates=side, ref=c.ref[idx],
+                   old=np.where(use, old, np.nan), w_new=w_new, sig_post=np.where(use, np.sqrt(w_new) * sig, sig))
+
+
+@dataclass(frozen=True)
+class _Reference:
+    """The cells of the similar-depth rate rule (module notes): ``depth``, their loss in
+    ascending order [mm]; ``side_rates`` and ``par`` (:func:`_total_rate`) in that order;
+    ``prior``, the zone's rate distribution (None: each rate from its own interval);
+    ``r_top``, the fastest rate a draw of the rule can take [mm/y]."""
+
+    depth: np.ndarray
+    side_rates: tuple
+    par: tuple
+    prior: object
+    r_top: float
+
+    def rule(self, rng, d):
+        """Rate draws at depths ``d``: a cell of similar depth, its rate drawn from its
+        posterior (from its own interval without a prior)."""
+        if self.depth.size == 0:
+            return np.zeros_like(d)
+        pick = _similar_depth(rng, d, self.depth)
+        if self.prior is None:
+            pt, lt, ht, pu, lu, hu = (x[pick] for x in self.side_rates)
+            return _split_normal(rng, pt, lt, ht, d.shape) + _split_normal(rng, pu, lu, hu, d.shape)
+        up, inv = np.unique(pick, return_inverse=True)
+        sub = tuple(x[up] for x in self.par)
+        return _draw_posterior(rng, self.prior, _lik(self.prior.grid, self.prior.step, *sub), sub[4], sub[5],
+                               rng.random(np.shape(d)), rows=inv.reshape(np.shape(d)), own=_own(sub))
+
+
+def _sample(idx):
+    """At most :data:`REF_CELLS` of the cells ``idx``: every k-th (from k/2), k the least
+    that keeps no more; all when fewer.  A systematic sample over the map: the rule draws a
+    cell among the 2 % nearest in depth, and the rate distribution is a distribution, so
+    150 000 cells give both, at a tenth of the cost on a 30 m floor."""
+    k = -(-idx.size // REF_CELLS)
+    return idx if k <= 1 else idx[k // 2::k]
+
+
+def _reference(c: _Cells, *, shrink, prior=None, top=None) -> _Reference:
+    """:class:`_Reference` of the cells ``c.ref`` (a :func:`_sample` of them).  ``prior``:
+    the zone's rate distribution when given, else estimated from these cells (``shrink``;
+    its grid up to ``top``)."""
+    idx = _sample(np.flatnonzero(c.ref))
+    r = _take(c, idx)
+    depth = c.nominal - r.t
+    order = np.argsort(depth, kind="stable")
+    side = tuple(x[order] for x in r.side_rates)
+    if not shrink:
+        r_top = float(np.max(_rate_range(*side[:3])[1] + _rate_range(*side[3:])[1])) if idx.size else 0.0
+        return _Reference(depth[order], side, (), None, r_top)
+    par = _total_rate(*r.side_rates, assumed=~r.meas)
+    prior = prior if prior is not None else _fit_prior(par, top=top)
+    return _Reference(depth[order], side, tuple(x[order] for x in par), prior,
+                      float(np.max(par[5])) if idx.size else 0.0)
+
+
+def _chunks(n, size=1 << 16):
+    """Slices of ``size`` cells covering ``n``: a pass over a million cells made chunk by
+    chunk keeps its temporaries in the cache (a 30 m floor's full-size temporaries cost
+    more in first touches of memory than in arithmetic)."""
+    return [slice(i, min(i + size, n)) for i in range(0, n, size)]
+
+
+def _rate_bound(c: _Cells):
+    """A cheap upper bound of the fastest rate each cell's draws can take: per side
+    p + TRUNC_SD·(hi − p)/Z90, the top of :func:`_rate_range`; their sum is at least the
+    ``b`` of :func:`_total_rate` (hypot ≤ sum, and TRUNC_SD/Z90 > 1 for a uniform side).
+    In the maps' precision, with a margin of 1e-5 for its rounding (float32: 6e-8 per
+    operation). [mm/y]"""
+    pt, _, ht, pu, _, hu = c.side_rates
+    k = TRUNC_SD / Z90
+    out = np.empty(c.t.size, np.result_type(pt, ht, pu, hu))
+    for s in _chunks(out.size):
+        total = 0.0
+        for p, h in ((pt[s], ht[s]), (pu[s], hu[s])):
+            p = np.fmax(p, 0.0)  # NaN: 0, as _clean
+            total = total + p + k * (np.fmax(h, p) - p)  # NaN hi: the point, as _clean
+        out[s] = total * (1.0 + 1e-5)
+    return out
+
+
+def _rate_top(c: _Cells, bound):
+    """The largest rate any uncensored cell's likelihood allows (the ``b`` of
+    :func:`_total_rate`), exactly: computed on the cell of the largest ``bound`` first,
+    then on the cells whose bound exceeds what it allows (no other cell can)."""
+    def exact(ii):
+        s = _take(c, ii)
+        return float(np.max(_total_rate(*s.side_rates, assumed=~s.meas)[5]))
+
+    masked = np.where(c.unc, bound, -np.inf)
+    top = exact([int(np.argmax(masked))])
+    more = np.flatnonzero(masked > top)
+    return max(top, exact(more)) if more.size else top
+
+
+def _smallest(x, m):
+    """Indices of the ``m`` smallest elements of ``x`` (all when fewer)."""
+    return np.argpartition(x, m - 1)[:m] if x.size > m else np.arange(x.size)
+
+
+def _screen(c: _Cells, bound, bound_ref, exact_bounds):
+    """Indices of cells among which :func:`_candidates` finds every cell that could be the
+    zone's minimum in some draw: a superset, from one cheap pass over all cells.
+
+    Each cell's shortest possible lives (to MRT and to a leak) are bounded below cheaply:
+    at the rate bound (``bound``; ``bound_ref``, the largest over the rule's cells, for a
+    rate the rule draws), the thickness at least the lesser of the newer reading and the
+    older projected at that rate (the mean of :func:`_thickness_mean` is between them),
+    less TRUNC_SD of the newer reading's sigma (the posterior's is smaller).  The longest
+    possible lives of the :data:`PROBE_CELLS` cells of shortest such lives are worked out
+    exactly (``exact_bounds(cells)`` -> :func:`_life_bounds`; they are chosen among each
+    chunk's cells of shortest such lives, and of shortest life at the point rates); a cell
+    is kept when its
+    shortest possible life is not above the least of them.  This keeps every candidate:
+    the cell of least longest possible life over the whole zone is a candidate, so its
+    shortest possible life is not above that least, which is not above the probes'
+    least."""
+    n = c.t.size
+    m = min(PROBE_CELLS, n)
+    pess, pess0 = np.empty(n), np.empty(n)
+    pool = []
+    for s in _chunks(n):
+        r_max = np.where(c.meas[s], bound[s], np.maximum(bound[s], bound_ref)).astype(float)
+        t = c.t[s].astype(float)
+        t_lo = np.fmin(t, c.old[s] - r_max * c.dt) - TRUNC_SD * c.sig[s]  # no older reading (NaN): the newer
+        unc = c.unc[s]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            pess[s] = np.where(unc, _life(t_lo - c.mrt[s], r_max), np.inf)
+            pess0[s] = np.where(unc, _life(t_lo, r_max), np.inf)
+            r = np.fmax(c.side_rates[0][s], 0) + np.fmax(c.side_rates[3][s], 0)
+            point, point0 = np.where(unc, _life(t - c.mrt[s], r), np.inf), np.where(unc, _life(t, r), np.inf)
+        # each chunk's most dangerous cells: by the bounds, and by the point rates (a cell
+        # whose range reaches 0 has no finite longest life and makes a poor probe)
+        pool += [s.start + np.argmin(x) for x in (pess[s], pess0[s], point, point0)]
+    pool = np.unique(pool)
+    probe = np.union1d(pool[_smallest(pess[pool], m)], pool[_smallest(pess0[pool], m)])
+    probe = probe[c.unc[probe]]
+    if probe.size == 0:
+        return probe
+    _, opt, _, opt0 = exact_bounds(_take(c, probe))
+    # rounding: the cheap bound's arithmetic is not the exact one's
+    top, top0 = opt.min() * (1 + 1e-9) + 1e-9, opt0.min() * (1 + 1e-9) + 1e-9
+    keep = pess0 <= top0
+    if opt.min() > 0:  # else every draw is already below MRT: only the leak's candidates
+        keep |= pess <= top
+    # a cell whose shortest possible lives are both infinite never lowers a draw
+    return np.flatnonzero(keep & c.unc & (np.isfinite(pess) | np.isfinite(pess0)))
 
 
 @dataclass(frozen=True)
@@ -770,69 +975,60 @@ class _Rates:
     rule: object
 
 
-def _shrunk_rates(c: _Cells, rng, rate_prior) -> _Rates:
+def _shrunk_rates(c: _Cells, ref: _Reference, rng) -> _Rates:
     """Rates from each cell's posterior under the zone's rate distribution (module notes).
     An assumed rate is no measurement, but a measured lower bound is: such a cell's rate is
     uniform between them; with no measured lower bound, the similar-depth rule."""
     unc = c.unc
+    prior = ref.prior
     par = _total_rate(*c.side_rates, assumed=~c.meas)
-
-    def only(mask):
-        return par if mask.all() else tuple(x[mask] for x in par)
-
-    ref_par, unc_par = only(c.ref), only(unc)
-    top = float(np.max(unc_par[5])) if unc.any() else None
-    groups = ref_groups = None
-    if rate_prior is None and unc.any():  # the likelihoods grouped once, for the prior and the ranges
-        key = _lik_key(unc_par, 0.5 * np.diff(_rate_grid(ref_par[5], top)[:2])[0])
-        groups = _groups(key)
-        ref_groups = groups if np.array_equal(c.ref, unc) else _groups(key[c.ref[unc]])  # ref: within unc
-    prior = rate_prior if rate_prior is not None else _fit_prior(ref_par, top=top, groups=ref_groups)
     meas = c.meas | c.lo_known
     r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
     if unc.any():
-        r_lo[unc], r_hi[unc] = _post_range(prior, unc_par, groups=groups)
+        r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
 
     def draw(ii, shape):
         sub = tuple(x[ii] for x in par)
         return _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
                                rng.random(shape), own=_own(sub))
 
-    return _Rates(r_min=np.where(meas, r_lo, 0.0),
-                  r_max=np.where(meas, r_hi, float(np.max(ref_par[5])) if ref_par[5].size else 0.0), meas=meas,
-                  draw=draw, rule=lambda d: _hidden_rate_post(rng, d, c.ref_depth, ref_par, prior))
+    return _Rates(r_min=np.where(meas, r_lo, 0.0), r_max=np.where(meas, r_hi, ref.r_top), meas=meas,
+                  draw=draw, rule=lambda d: ref.rule(rng, d))
 
 
-def _own_rates(c: _Cells, rng) -> _Rates:
+def _own_rates(c: _Cells, ref: _Reference, rng) -> _Rates:
     """Rates drawn independently from each cell's own interval (``shrink=False``); assumed
     rates are replaced by draws of the similar-depth rule."""
-    sr = c.side_rates
-    ref_rates = tuple(a[c.ref] for a in sr)
-    if not c.meas.all():  # the range of an assumed rate, for the pruning: 0 ... the fastest rule rate
-        am = ~c.meas
-        rmax = float(np.max(_rate_range(*ref_rates[:3])[1] + _rate_range(*ref_rates[3:])[1]))
-        sr = tuple(np.where(am, v, a) for a, v in zip(sr, (0.0, 0.0, 0.0, 0.0, 0.0, rmax)))
-    pt, lt, ht, pu, lu, hu = sr
+    pt, lt, ht, pu, lu, hu = c.side_rates
     rt_min, rt_max = _rate_range(pt, lt, ht)
     ru_min, ru_max = _rate_range(pu, lu, hu)
 
     def draw(ii, shape):
         return _split_normal(rng, pt[ii], lt[ii], ht[ii], shape) + _split_normal(rng, pu[ii], lu[ii], hu[ii], shape)
 
-    return _Rates(r_min=rt_min + ru_min, r_max=rt_max + ru_max, meas=c.meas, draw=draw,
-                  rule=lambda d: _hidden_rate(rng, d, c.ref_depth, *ref_rates))
+    # an assumed rate is drawn by the rule: 0 ... the fastest rule rate
+    return _Rates(r_min=np.where(c.meas, rt_min + ru_min, 0.0), r_max=np.where(c.meas, rt_max + ru_max, ref.r_top),
+                  meas=c.meas, draw=draw, rule=lambda d: ref.rule(rng, d))
+
+
+def _life_bounds(c: _Cells, rates: _Rates):
+    """Each cell's shortest and longest possible lives to MRT and to a leak over its
+    thickness and rate ranges: ``(pess, opt, pess0, opt0)``; inf for a cell below the
+    threshold. [y]"""
+    unc = c.unc
+    t_lo, t_hi = _thickness_range(c, rates.r_min, rates.r_max)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return (np.where(unc, _life(t_lo - c.mrt, rates.r_max), np.inf),
+                np.where(unc, _life(t_hi - c.mrt, rates.r_min), np.inf),
+                np.where(unc, _life(t_lo, rates.r_max), np.inf),
+                np.where(unc, _life(t_hi, rates.r_min), np.inf))
 
 
 def _candidates(c: _Cells, rates: _Rates):
     """The cells that could be the zone's minimum in some draw (module notes), and whether
     some cell is below MRT in every draw (the life to MRT is then 0)."""
     unc = c.unc
-    t_lo, t_hi = _thickness_range(c, rates.r_min, rates.r_max)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        pess = np.where(unc, _life(t_lo - c.mrt, rates.r_max), np.inf)
-        opt = np.where(unc, _life(t_hi - c.mrt, rates.r_min), np.inf)
-        pess0 = np.where(unc, _life(t_lo, rates.r_max), np.inf)
-        opt0 = np.where(unc, _life(t_hi, rates.r_min), np.inf)
+    pess, opt, pess0, opt0 = _life_bounds(c, rates)
     # cell i can be the minimum only if its shortest possible life is not above the
     # longest possible life of the cell that is surely shortest
     below = bool(opt.size) and opt.min() <= 0
@@ -946,6 +1142,7 @@ def _hidden_depth(fit, T, n_draws, rng, n_fit=None, thr=None):
     n_fit = int(n_fit or fit.n)
     thr = fit.threshold if thr is None else thr
     n_boot = n_draws if fit.distribution == "gumbel" else min(n_draws, 100)  # GEV refits cost more
+    n_boot = min(n_boot, max(200, BOOT_MAXIMA // max(n_fit, 1)))
     loc, scale, shape, _ = _bootstrap_params(fit, n_fit, thr, n_boot=n_boot, seed=int(rng.integers(2**31)))
     if loc.size == 0:  # every refit failed: the fit itself (parameter uncertainty not carried)
         loc, scale, shape = np.array([fit.loc]), np.array([fit.scale]), np.array([fit.shape])
@@ -974,35 +1171,14 @@ def _unscanned_law(ze):
     return unscanned_law(ze.fit, b.maxima, censored=b.censored, threshold=b.threshold)
 
 
-def _similar_depth(rng, d, depth_meas):
-    """Index of a measured cell of similar depth for each depth in ``d`` (module notes)."""
-    n = depth_meas.size
-    order = np.argsort(depth_meas, kind="stable")
-    ds = depth_meas[order]
+def _similar_depth(rng, d, depth_sorted):
+    """Index of a measured cell of similar depth for each depth in ``d``, in the measured
+    cells' loss ``depth_sorted``, ascending (module notes)."""
+    n = depth_sorted.size
     w = max(5, int(0.02 * n))
-    pos = np.clip(np.searchsorted(ds, d), 0, n - 1)
+    pos = np.clip(np.searchsorted(depth_sorted, d), 0, n - 1)
     start = np.clip(pos - w // 2, 0, max(n - w, 0))
-    return order[np.minimum(start + rng.integers(0, min(w, n), np.shape(d)), n - 1)]
-
-
-def _hidden_rate(rng, d, depth_meas, pt, lt, ht, pu, lu, hu):
-    """Rate at depth ``d``: a measured cell of similar depth, drawn from its own interval."""
-    if depth_meas.size == 0:
-        return np.zeros_like(d)
-    pick = _similar_depth(rng, d, depth_meas)
-    return (_split_normal(rng, pt[pick], lt[pick], ht[pick], d.shape)
-            + _split_normal(rng, pu[pick], lu[pick], hu[pick], d.shape))
-
-
-def _hidden_rate_post(rng, d, depth_meas, par, prior):
-    """Rate at depth ``d``: a measured cell of similar depth, drawn from its posterior."""
-    if depth_meas.size == 0:
-        return np.zeros_like(d)
-    pick = _similar_depth(rng, d, depth_meas)
-    up, inv = np.unique(pick, return_inverse=True)
-    sub = tuple(x[up] for x in par)
-    return _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), sub[4], sub[5],
-                           rng.random(np.shape(d)), rows=inv.reshape(np.shape(d)), own=_own(sub))
+    return np.minimum(start + rng.integers(0, min(w, n), np.shape(d)), n - 1)
 
 
 def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nominal, sigma_t, pitch,
@@ -1045,7 +1221,8 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     as_found : dict, optional
         This function's result on the floor as found, given for a repaired floor: each
         zone's unscanned part and spots are taken from it, not drawn again (a repair
-        changes none of that metal). [-]
+        changes none of that metal), and so are its rate distribution and similar-depth
+        cells (a repair changes no other cell's rates). [-]
 
     Returns
     -------
@@ -1058,6 +1235,7 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     s_old = float(np.hypot(rates.sigma_old, sigma_old_extra)) if old_map is not None else None
     s_scan = float(np.nanmedian(sigma_t) if sig_map else sigma_t)
     floor_rule = []  # made once, when a zone nobody scanned needs it
+    meas_map = _measured(rates)
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
@@ -1073,68 +1251,65 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         cov = float(np.mean(ze.blocks.coverage)) if ze and getattr(ze, "blocks", None) is not None else 1.0
         T = hidden_mm2 / (block ** 2 * cov) if fit is not None and np.isfinite(block) and cov > 0 else 0.0
         cens = rates.censored[sel] if rates.censored is not None else None
-        unseen = as_found[name].unseen if as_found and name in as_found else None
+        found = as_found.get(name) if as_found else None
+        unseen = found.unseen if found is not None else None
         if not sel.any() and fit is not None and not floor_rule and unseen is None:
             floor_rule.append(floor_rate_rule(thickness, rates, zmap.labels >= 0, nominal=nominal, sigma_t=sigma_t,
-                                              shrink=shrink))
+                                              shrink=shrink, measured=meas_map))
         zs = (spots or {}).get(name)
         out[name] = zone_life_distribution(
             thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
             rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel],
             mrt_map[sel] if sel.any() else float(np.min(mrt_map[mask], initial=np.inf)),
             sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens,
-            measured=_measured(rates, sel),
+            measured=meas_map[sel],
             threshold=rates.threshold, hidden_fit=fit, hidden_T=T, n_draws=n_draws, seed=seed + k,
             shrink=shrink, older=None if old_map is None else old_map[sel], sigma_old=s_old,
             dt_years=rates.dt_years if old_map is not None else None,
             spots=None if zs is None else (zs[0], zs[1], zs[2] if np.isfinite(zs[2]) else s_scan),
-            floor_rule=floor_rule[0] if floor_rule else None, unseen=unseen)
+            floor_rule=floor_rule[0] if floor_rule else None, unseen=unseen,
+            reference=found.reference if found is not None else None)
     return out
 
 
-def _measured(rates, sel):
-    """Cells of ``sel`` whose rates were measured: the point is not above both sides'
+def _measured(rates):
+    """The map of cells whose rates were measured: the point is not above both sides'
     measured (short- or long-term) rates (an assumed rate is)."""
-    meas = np.ones(int(np.count_nonzero(sel)), bool)
+    meas = np.ones(np.shape(rates.rate_top), bool)
     for pnt, sh, lg in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top),
                         (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
-        m = np.fmax(sh[sel], lg[sel])
-        meas &= ~(np.nan_to_num(pnt[sel]) > np.nan_to_num(m) + 1e-6)
+        meas &= ~(np.nan_to_num(pnt) > np.nan_to_num(np.fmax(sh, lg)) + 1e-6)
     return meas
 
 
-def floor_rate_rule(thickness, rates, mask, *, nominal, sigma_t, shrink=True):
+def floor_rate_rule(thickness, rates, mask, *, nominal, sigma_t, shrink=True, measured=None):
     """The similar-depth rate rule over the measured, uncensored cells of ``mask`` (the
     whole floor), as ``rule(rng, d)`` -> rate draws at depths ``d``; None when ``mask``
     holds no scanned cell.  Lent to a zone nobody scanned, as its extreme-value life
     borrows the floor's projection (:func:`scananalyse.evlife.hidden_parts`).  Over more
-    than :data:`FLOOR_RULE_CELLS` such cells, a systematic sample of them in order of
-    depth (every k-th from the deepest): each depth keeps its share of the cells, so the
-    rule's neighbours in rank and the rate distribution are the floor's, at a tenth of the
-    cost on a 30 m floor."""
+    than :data:`REF_CELLS` such cells, a :func:`_sample` of them.  ``measured``: the map of
+    :func:`_measured`, when made."""
     sel = mask & np.isfinite(thickness)
     if not sel.any():
         return None
-    if rates.censored is not None and np.any(sel & ~rates.censored):
-        sel &= ~rates.censored  # never reference cells of the rule (_kept_cells)
-    idx = np.flatnonzero(sel)
-    if idx.size > FLOOR_RULE_CELLS:  # a systematic sample in order of depth, the deepest first
-        step = -(-idx.size // FLOOR_RULE_CELLS)
-        idx = idx[np.argsort(thickness.ravel()[idx], kind="stable")[::step]]
-        sel = np.zeros(thickness.shape, bool)
-        sel.ravel()[idx] = True
-    arrs = (rates.rate_top, rates.rate_under, rates.rate_top_lo, rates.rate_top_hi, rates.rate_under_lo,
-            rates.rate_under_hi)
-    c = _scanned_cells(thickness[sel], tuple(a[sel] for a in arrs), 0.0,
-                       sigma_t=sigma_t[sel] if np.ndim(sigma_t) else sigma_t, nominal=nominal,
-                       censored=rates.censored[sel] if rates.censored is not None else None,
-                       threshold=rates.threshold, measured=_measured(rates, sel))
-    if not shrink:
-        ref_rates = tuple(a[c.ref] for a in c.side_rates)
-        return lambda rng, d: _hidden_rate(rng, d, c.ref_depth, *ref_rates)
-    ref_par = tuple(x[c.ref] for x in _total_rate(*c.side_rates, assumed=~c.meas))
-    prior = _fit_prior(ref_par)
-    return lambda rng, d: _hidden_rate_post(rng, d, c.ref_depth, ref_par, prior)
+    meas = _measured(rates) if measured is None else measured
+    # the rule's cells as _scanned_cells takes them: uncensored (all when every one is
+    # censored), measured (all when none is)
+    if rates.censored is not None and rates.threshold and np.any(sel & ~rates.censored):
+        sel = sel & ~rates.censored
+    if np.any(sel & meas):
+        sel = sel & meas
+    idx = _sample(np.flatnonzero(sel))
+
+    def at(a):
+        return a if np.ndim(a) == 0 else np.asarray(a).ravel()[idx]
+    c = _scanned_cells(at(thickness), tuple(at(a) for a in (rates.rate_top, rates.rate_under, rates.rate_top_lo,
+                                                              rates.rate_top_hi, rates.rate_under_lo,
+                                                              rates.rate_under_hi)),
+                       0.0, sigma_t=at(sigma_t), nominal=nominal,
+                       censored=None if rates.censored is None else at(rates.censored), threshold=rates.threshold,
+                       measured=at(meas))
+    return _reference(c, shrink=shrink).rule
 
 
 def _older_readings(thickness, rates):
