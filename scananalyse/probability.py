@@ -95,16 +95,24 @@ within a pit: no spatial model of the pit bottom here).
 Only cells that could be the zone's minimum enter the Monte Carlo: a cell whose shortest
 possible life (thickness −4 sd at its fastest rate, the fastest rate of its truncated
 range) exceeds the longest possible life (thickness +4 sd at its slowest rate, the slowest
-rate) of some other cell cannot be the minimum in any
-draw, so the pruning changes no draw's result.  With the zone's rate distribution a cell's
-rates range over its posterior's support (grid rates with mass above 1e-9 of its largest,
-widened by 3 grid steps; the draws are clipped to it), far narrower than its interval.
-The below-threshold and unscanned parts are drawn first, then the candidates in bands,
-most dangerous first; the bands stop once every cell left has a shortest possible life
-above the longest of the draws' minima so far (for MRT and for a leak), so none of them
-could lower any draw: the same draws as going on.  On the 30 m MFL bench floor (already
-below MRT: the leak's candidates) 3 600 of 22 400 candidates are drawn, of 1.7 million
-cells.
+rate) of some other cell cannot be the minimum in any draw, so the pruning changes no
+draw's result.  With the zone's rate distribution a cell's rates range over its
+posterior's support (grid rates with mass above 1e-9 of its largest, widened by 3 grid
+steps; the draws are clipped to it), far narrower than its interval; the support is worked
+out from the cell's likelihood rounded to half a grid step, so it is the cell's own,
+whichever cells are worked out with it.  Finding those cells costs one cheap pass over all
+cells (:func:`_screen`, in chunks): each cell's shortest possible lives at a rate bound
+(p + 4·(hi − p)/1.645 per side, at least its fastest rate) and a thickness bound (the
+lesser of the newer reading and the older projected at that rate, less 4 sd of the newer
+reading), no longer than the exact ones; the exact ranges of a few probe cells give an
+upper bound of the least longest possible life; only cells under it are worked out
+exactly.  That keeps every candidate (:func:`_screen`; tested against the candidates of
+all cells).  The rule's cells and the zone's rate distribution are a systematic sample of
+at most :data:`REF_CELLS` cells (:func:`_sample`), and the floor as repaired takes them
+as found.  The below-threshold and unscanned parts are drawn first, then the candidates in
+bands, most dangerous first; the bands stop once every cell left has a shortest possible
+life above the longest of the draws' minima so far (for MRT and for a leak), so none of
+them could lower any draw: the same draws as going on.
 
 References
 ----------
@@ -144,9 +152,6 @@ SMOOTH_FRACTION = 0.5
 #: Most cells the similar-depth rule and a zone's rate distribution are built from
 #: (:func:`_reference`); above it a random sample of them. [-]
 REF_CELLS = 150_000
-#: Cells whose rate ranges are worked out exactly first, to bound which cells can be a
-#: zone's minimum (:func:`_screen`). [-]
-PROBE_CELLS = 64
 #: Most block maxima the unscanned part's bootstrap resamples in all (parameter sets ×
 #: blocks; at least 200 sets): a zone of many blocks has tight parameters and needs fewer
 #: sets (a 30 m floor's 700 blocks: 285 sets, not 2 000); a 5 m floor's 20 keep 2 000. [-]
@@ -350,15 +355,19 @@ class GridPrior:
 
 def _npmle(lik, counts, n_iter):
     """EM for the weights of a mixing distribution on a grid: ``lik`` (m, K) likelihoods of
-    m distinct data, ``counts`` (m,) how often each occurs.  The two products of each step
-    are :func:`numpy.einsum`'s own loops, not the threaded BLAS: on a machine another
-    process keeps busy, 300 small threaded products took 0.3-4.8 s instead of 0.05 s (a
-    thread waits for its sibling's core), and einsum's take 0.1 s either way."""
+    m distinct data, ``counts`` (m,) how often each occurs.  The products of each step are
+    sparse (a likelihood is zero off its cell's interval: some 7 % of the grid on a 30 m
+    floor): :mod:`scipy.sparse`, which also keeps off the threaded BLAS (on a machine
+    another process keeps busy, 300 small threaded products took 0.3-4.8 s, not 0.05 s)."""
+    from scipy import sparse
+
     c = counts.astype(float) / counts.sum()
+    L = sparse.csr_matrix(lik)
+    LT = L.T.tocsr()
     w = np.full(lik.shape[1], 1.0 / lik.shape[1])
     for _ in range(n_iter):
-        f = np.einsum("ij,j->i", lik, w)
-        w = w * np.einsum("ij,i->j", lik, c / np.where(f > 0, f, np.inf))
+        f = L @ w
+        w = w * (LT @ (c / np.where(f > 0, f, np.inf)))
         w /= w.sum()
     return w
 
@@ -908,58 +917,49 @@ def _rate_top(c: _Cells, bound):
     return max(top, exact(more)) if more.size else top
 
 
-def _smallest(x, m):
-    """Indices of the ``m`` smallest elements of ``x`` (all when fewer)."""
-    return np.argpartition(x, m - 1)[:m] if x.size > m else np.arange(x.size)
-
-
 def _screen(c: _Cells, bound, bound_ref, exact_bounds):
     """Indices of cells among which :func:`_candidates` finds every cell that could be the
     zone's minimum in some draw: a superset, from one cheap pass over all cells.
 
     Each cell's shortest possible lives (to MRT and to a leak) are bounded below cheaply:
-    at the rate bound (``bound``; ``bound_ref``, the largest over the rule's cells, for a
+    at the rate bound (``bound``; ``bound_ref``, the fastest rate the rule draws, for a
     rate the rule draws), the thickness at least the lesser of the newer reading and the
     older projected at that rate (the mean of :func:`_thickness_mean` is between them),
     less TRUNC_SD of the newer reading's sigma (the posterior's is smaller).  The longest
-    possible lives of the :data:`PROBE_CELLS` cells of shortest such lives are worked out
-    exactly (``exact_bounds(cells)`` -> :func:`_life_bounds`; they are chosen among each
-    chunk's cells of shortest such lives, and of shortest life at the point rates); a cell
-    is kept when its
-    shortest possible life is not above the least of them.  This keeps every candidate:
-    the cell of least longest possible life over the whole zone is a candidate, so its
-    shortest possible life is not above that least, which is not above the probes'
-    least."""
-    n = c.t.size
-    m = min(PROBE_CELLS, n)
-    pess, pess0 = np.empty(n), np.empty(n)
-    pool = []
-    for s in _chunks(n):
-        r_max = np.where(c.meas[s], bound[s], np.maximum(bound[s], bound_ref)).astype(float)
-        t = c.t[s].astype(float)
-        t_lo = np.fmin(t, c.old[s] - r_max * c.dt) - TRUNC_SD * c.sig[s]  # no older reading (NaN): the newer
-        unc = c.unc[s]
+    possible lives of a few probe cells (each chunk's cells of shortest lives at the point
+    rates) are worked out exactly (``exact_bounds(cells)`` ->
+    :func:`_life_bounds`); a cell is kept when its shortest possible life is not above the
+    least of them.  This keeps every candidate: the cell of least longest possible life
+    over the whole zone is a candidate, so its shortest possible life is not above that
+    least, which is not above the probes' least."""
+    chunks = _chunks(c.t.size)
+
+    def lives(s, point=False):  # the bounds of the cells of chunk s (point: their lives at the point rates)
+        unc, t = c.unc[s], c.t[s].astype(float)
+        r = (np.fmax(c.side_rates[0][s], 0) + np.fmax(c.side_rates[3][s], 0) if point else
+             np.where(c.meas[s], bound[s], np.maximum(bound[s], bound_ref)).astype(float))
+        if not point:  # no older reading (NaN): the newer
+            t = np.fmin(t, c.old[s] - r * c.dt) - TRUNC_SD * c.sig[s]
         with np.errstate(divide="ignore", invalid="ignore"):
-            pess[s] = np.where(unc, _life(t_lo - c.mrt[s], r_max), np.inf)
-            pess0[s] = np.where(unc, _life(t_lo, r_max), np.inf)
-            r = np.fmax(c.side_rates[0][s], 0) + np.fmax(c.side_rates[3][s], 0)
-            point, point0 = np.where(unc, _life(t - c.mrt[s], r), np.inf), np.where(unc, _life(t, r), np.inf)
-        # each chunk's most dangerous cells: by the bounds, and by the point rates (a cell
-        # whose range reaches 0 has no finite longest life and makes a poor probe)
-        pool += [s.start + np.argmin(x) for x in (pess[s], pess0[s], point, point0)]
-    pool = np.unique(pool)
-    probe = np.union1d(pool[_smallest(pess[pool], m)], pool[_smallest(pess0[pool], m)])
-    probe = probe[c.unc[probe]]
-    if probe.size == 0:
-        return probe
-    _, opt, _, opt0 = exact_bounds(_take(c, probe))
+            return np.where(unc, _life(t - c.mrt[s], r), np.inf), np.where(unc, _life(t, r), np.inf)
+
+    # probes: each chunk's most dangerous cells at the point rates
+    pool = np.unique([s.start + np.argmin(x) for s in chunks for x in lives(s, point=True)])
+    pool = pool[c.unc[pool]]
+    if pool.size == 0:
+        return pool
+    _, opt, _, opt0 = exact_bounds(_take(c, pool))
     # rounding: the cheap bound's arithmetic is not the exact one's
     top, top0 = opt.min() * (1 + 1e-9) + 1e-9, opt0.min() * (1 + 1e-9) + 1e-9
-    keep = pess0 <= top0
-    if opt.min() > 0:  # else every draw is already below MRT: only the leak's candidates
-        keep |= pess <= top
-    # a cell whose shortest possible lives are both infinite never lowers a draw
-    return np.flatnonzero(keep & c.unc & (np.isfinite(pess) | np.isfinite(pess0)))
+    kept = []
+    for s in chunks:
+        pess, pess0 = lives(s)
+        keep = pess0 <= top0
+        if opt.min() > 0:  # else every draw is already below MRT: only the leak's candidates
+            keep |= pess <= top
+        # a cell whose shortest possible lives are both infinite never lowers a draw
+        kept.append(s.start + np.flatnonzero(keep & c.unc[s] & (np.isfinite(pess) | np.isfinite(pess0))))
+    return np.concatenate(kept)
 
 
 @dataclass(frozen=True)
@@ -1236,10 +1236,11 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     s_scan = float(np.nanmedian(sigma_t) if sig_map else sigma_t)
     floor_rule = []  # made once, when a zone nobody scanned needs it
     meas_map = _measured(rates)
+    scanned = np.isfinite(thickness)
     for k, name in enumerate(zmap.names):
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
-        sel = mask & np.isfinite(thickness)
+        sel = mask & scanned
         ze = extremes_depth.get(name)
         if not ze and floor_extremes:  # borrowed, as the zone's extreme-value life does
             ze = floor_extremes
@@ -1257,10 +1258,13 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
             floor_rule.append(floor_rate_rule(thickness, rates, zmap.labels >= 0, nominal=nominal, sigma_t=sigma_t,
                                               shrink=shrink, measured=meas_map))
         zs = (spots or {}).get(name)
+        # the zone's MRT: a number where it is one over the zone's scanned cells (the usual case)
+        m_lo = float(np.min(mrt_map, where=sel, initial=np.inf))
+        mrt_z = m_lo if not sel.any() or m_lo == np.max(mrt_map, where=sel, initial=-np.inf) else mrt_map[sel]
         out[name] = zone_life_distribution(
             thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
             rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel],
-            mrt_map[sel] if sel.any() else float(np.min(mrt_map[mask], initial=np.inf)),
+            mrt_z if sel.any() else float(np.min(mrt_map, where=mask, initial=np.inf)),
             sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens,
             measured=meas_map[sel],
             threshold=rates.threshold, hidden_fit=fit, hidden_T=T, n_draws=n_draws, seed=seed + k,

@@ -84,6 +84,29 @@ def test_repaired_floor_takes_the_unseen_part_as_found():
     assert np.quantile(fresh.life_mrt, 0.5) > 2 * np.quantile(rep.life_mrt, 0.5)
 
 
+def test_repaired_floor_keeps_the_rates_of_metal_it_did_not_repair():
+    # MFL zone: 100 cells below the 1.0 mm threshold (the below-threshold part, taken at
+    # the threshold, growing at the rate of measured cells of similar depth), 100 cells
+    # 1.0 mm deep at 0.1 mm/y and 100 cells 0.2 mm deep at 0.005 mm/y.  As found the
+    # below-threshold part governs: (6.35 - 1.0 - 2.54) / 0.1 = 28.1 y (hand arithmetic).
+    # The 1.0 mm cells are patched (new plate at 0.005 mm/y).  The repaired floor takes
+    # the rates as found: the unrepaired below-threshold metal still reaches MRT at about
+    # 28 y; rates estimated afresh from the repaired cells would have given it 562 y.
+    n = 100
+    t = np.concatenate([np.full(n, T0), np.full(n, T0 - 1.0), np.full(n, T0 - 0.2)])
+    r = np.concatenate([np.zeros(n), np.full(n, 0.1), np.full(n, 0.005)])
+    cens = np.arange(3 * n) < n
+    kw = dict(censored=cens, threshold=1.0, seed=3, n_draws=2000)
+    found = _zone(t, r, half=0.005, **kw)
+    assert np.median(found.life_mrt) == pytest.approx(28.1, rel=0.1)
+    t_rep, r_rep = t.copy(), r.copy()
+    t_rep[n:2 * n], r_rep[n:2 * n] = T0, 0.005
+    rep = _zone(t_rep, r_rep, half=0.0, reference=found.reference, **kw)
+    assert np.median(rep.life_mrt) == pytest.approx(28.1, rel=0.1)
+    fresh = _zone(t_rep, r_rep, half=0.0, **kw)
+    assert np.median(fresh.life_mrt) > 100.0
+
+
 def _scanned_row(**kw):
     row = {"zone": "interior", "flags": "", "notes": "", "cap_y": 20.0, "t_min_mm": 4.5, "mrt_mm": MRT,
            "rtbc_mm": 4.5, "rtip_mm": 6.0, "stpr_mm_y": 0.0, "upr_mm_y": 0.0, "t_used_upr_mm": 4.5,
