@@ -150,7 +150,7 @@ MIN_PRIOR_CELLS = 50
 #: as a fraction of the median rate noise (one sd) of the zone's cells. [-]
 SMOOTH_FRACTION = 0.5
 #: Most cells the similar-depth rule and a zone's rate distribution are built from
-#: (:func:`_reference`); above it a random sample of them. [-]
+#: (:func:`_reference`); above it a systematic sample of them (:func:`_sample`). [-]
 REF_CELLS = 150_000
 #: Most block maxima the unscanned part's bootstrap resamples in all (parameter sets ×
 #: blocks; at least 200 sets): a zone of many blocks has tight parameters and needs fewer
@@ -733,7 +733,11 @@ class _Cells:
     ``lo_known`` (both sides' lower bounds finite); ``ref``: the cells the similar-depth
     rule may take (:func:`_reference`); ``n``: cells given, scanned or not;
     ``any_cens``: some scanned cell is below the threshold; ``mrt_min``: the least MRT of
-    the scanned cells [mm] (:func:`_kept_cells`: which scanned cells are listed)."""
+    the scanned cells [mm] (:func:`_kept_cells`: which scanned cells are listed); ``old``,
+    the older reading (NaN: none), ``s_old2`` its variance (NaN: the older reading is not
+    used) [mm], [mm²], ``dt`` the years between the readings; ``w_new``, ``sig_post``, the
+    newer reading's weight and the sigma of the two combined (:func:`_thickness_mean`; set
+    by a :func:`_take`, None before)."""
 
     t: np.ndarray
     mrt: np.ndarray
