@@ -1241,7 +1241,9 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     floor_rule = []  # made once, when a zone nobody scanned needs it
     meas_map = _measured(rates)
     scanned = np.isfinite(thickness)
-    for k, name in enumerate(zmap.names):
+    n_scanned = [np.count_nonzero(scanned & (zmap.labels == k)) for k in range(len(zmap.names))]
+    for k in sorted(range(len(zmap.names)), key=lambda j: n_scanned[j] == 0):  # scanned zones first
+        name = zmap.names[k]
         mask = zmap.labels == k
         area = float(zmap.areas_mm2[k])
         sel = mask & scanned
@@ -1259,8 +1261,13 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         found = as_found.get(name) if as_found else None
         unseen = found.unseen if found is not None else None
         if not sel.any() and fit is not None and not floor_rule and unseen is None:
-            floor_rule.append(floor_rate_rule(thickness, rates, zmap.labels >= 0, nominal=nominal, sigma_t=sigma_t,
-                                              shrink=shrink, measured=meas_map))
+            only = [j for j in range(len(n_scanned)) if n_scanned[j]]
+            if len(only) == 1 and out[zmap.names[only[0]]].reference is not None:
+                # every scanned cell is in one zone: its rule is the floor's (the same cells)
+                floor_rule.append(out[zmap.names[only[0]]].reference.rule)
+            else:
+                floor_rule.append(floor_rate_rule(thickness, rates, zmap.labels >= 0, nominal=nominal,
+                                                  sigma_t=sigma_t, shrink=shrink, measured=meas_map))
         zs = (spots or {}).get(name)
         # the zone's MRT: a number where it is one over the zone's scanned cells (the usual case)
         m_lo = float(np.min(mrt_map, where=sel, initial=np.inf))
@@ -1277,7 +1284,7 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
             spots=None if zs is None else (zs[0], zs[1], zs[2] if np.isfinite(zs[2]) else s_scan),
             floor_rule=floor_rule[0] if floor_rule else None, unseen=unseen,
             reference=found.reference if found is not None else None)
-    return out
+    return {name: out[name] for name in zmap.names}
 
 
 def _measured(rates):
