@@ -663,12 +663,20 @@ def _spot_lives(spots, nominal, mrt, rule, n_draws, rng):
 
 def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
     """Draws of the unscanned part's lives to MRT (the zone's least) and to a leak: its
-    deepest loss from the predictive law, growing at the similar-depth rate; (None, None)
-    when it is not modelled."""
+    deepest loss from the predictive law, growing at the similar-depth rate, but at least
+    at the rate that grows that loss in the time the zone's deepest measured losses took
+    to grow theirs (module notes); (None, None) when it is not modelled."""
     if fit is None or T <= 0:
         return None, None
     d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
-    return _part_lives(c.nominal - d, c.mrt_min, rates.rule(d))
+    # the time the w deepest measured cells (the rule's cells beyond the deepest) took to
+    # grow their loss at their point rates, the median; none growing: no floor
+    w = max(5, int(0.02 * c.ref_depth.size))
+    deep = np.argsort(c.ref_depth)[::-1][:w]
+    r_pt = (c.side_rates[0] + c.side_rates[3])[c.ref][deep]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        grown = float(np.median(np.where(r_pt > 0, c.ref_depth[deep] / r_pt, np.inf))) if deep.size else np.inf
+    return _part_lives(c.nominal - d, c.mrt_min, np.maximum(rates.rule(d), d / grown))
 
 
 @dataclass(frozen=True)
