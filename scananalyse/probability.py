@@ -663,9 +663,20 @@ def _spot_lives(spots, nominal, mrt, rule, n_draws, rng):
 
 def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
     """Draws of the unscanned part's lives to MRT (the zone's least) and to a leak: its
-    deepest loss from the predictive law, growing at the similar-depth rate, but at least
-    at the rate that grows that loss in the time the zone's deepest measured losses took
-    to grow theirs (module notes); (None, None) when it is not modelled."""
+    deepest loss D from the predictive law, growing at the similar-depth rate, but at
+    least at D / A, A the median time the zone's w deepest measured cells took to grow
+    their loss at their point rates (loss / rate); (None, None) when it is not modelled.
+
+    Beyond the deepest measured cell the similar-depth rule draws among the w deepest
+    (2 % of the cells: on a 5 m floor down to 0.6 mm of loss, mostly pit flanks), whose
+    median rate (0.04–0.06 mm/y on the bench floors looked at) grows a loss of 4 mm in
+    70–100 years, far longer than those floors have stood (25 years); the true deepest
+    pits nobody scanned grew theirs in about the time the deepest seen did.  On the
+    synthetic leak bench floors the true time to a leak fell below the leak life's p05 in
+    12 of 119 zones without the floor, 1 with it (``bench/RESULTS.md``).  Only a floor:
+    no draw's life is longer than at the rule's rate alone.  Not capped: in a zone whose
+    deepest losses are shallow and young, a deep D grows very fast (the conservative
+    side)."""
     if fit is None or T <= 0:
         return None, None
     d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
