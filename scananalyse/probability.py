@@ -681,12 +681,13 @@ def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
         return None, None
     d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
     # the time the w deepest measured cells (the rule's cells beyond the deepest) took to
-    # grow their loss at their point rates, the median; none growing: no floor
+    # grow their loss at their point rates, the median; a cell with no loss or no rate
+    # tells no time (infinite); none: no floor
     w = max(5, int(0.02 * c.ref_depth.size))
     deep = np.argsort(c.ref_depth)[::-1][:w]
-    r_pt = (c.side_rates[0] + c.side_rates[3])[c.ref][deep]
+    r_pt, d_pt = (c.side_rates[0] + c.side_rates[3])[c.ref][deep], c.ref_depth[deep]
     with np.errstate(divide="ignore", invalid="ignore"):
-        grown = float(np.median(np.where(r_pt > 0, c.ref_depth[deep] / r_pt, np.inf))) if deep.size else np.inf
+        grown = float(np.median(np.where((r_pt > 0) & (d_pt > 0), d_pt / r_pt, np.inf))) if deep.size else np.inf
     return _part_lives(c.nominal - d, c.mrt_min, np.maximum(rates.rule(d), d / grown))
 
 
