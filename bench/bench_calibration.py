@@ -52,6 +52,12 @@ def true_zone_life(pair, mrt_map, mask):
     return float(np.nanmin(np.where(mask, life, np.nan)))
 
 
+def case_pair(seed, method, n_hidden, **pair_kw):
+    """The synthetic 5 m floor of a case (the truth with it; cheap next to its analysis)."""
+    return make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, method=method,
+                     threshold=1.0 if method == "MFL" else None, n_hidden_pits=n_hidden, **pair_kw)
+
+
 def analysed_case(seed, method, n_hidden, cache=None, **pair_kw):
     """What the life distribution of a floor needs, and each zone's true life; read from
     ``cache``/<seed>.pkl when it holds this case, else computed (and kept there)."""
@@ -62,8 +68,7 @@ def analysed_case(seed, method, n_hidden, cache=None, **pair_kw):
             a = pickle.load(f)
         if a["case"] == case:
             return a
-    pair = make_pair(diameter_mm=5000.0, pitch_new=20.0, pitch_old=25.0, seed=seed, method=method,
-                     threshold=1.0 if method == "MFL" else None, n_hidden_pits=n_hidden, **pair_kw)
+    pair = case_pair(seed, method, n_hidden, **pair_kw)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         an = analyse(pair.new, pair.old, job=Job(diameter=5000.0))

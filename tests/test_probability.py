@@ -183,9 +183,12 @@ def test_same_distribution_as_the_single_function():
     # dangerous first and the unscanned part before them (so the bands can stop early), which
     # reorders the random numbers: the same law within Monte Carlo error (quantiles of 8000
     # draws: about 1 %).
+    # p_hidden_governs since the unscanned part's rate has a floor (grown in the median time
+    # of the deepest measured cells): 0.182 -> 0.204 and 0.162 -> 0.192, the quantiles and
+    # the mean leak life within the tolerances below.
     args, kw = _mixed_zone()
-    want = {True: ([0.0, 2.1067757702, 2.4637757298], 11.0658457743, 0.182375),
-            False: ([0.0544770394, 2.0391095844, 2.3957036206], 10.1010076525, 0.161625)}
+    want = {True: ([0.0, 2.1067757702, 2.4637757298], 11.0658457743, 0.20375),
+            False: ([0.0544770394, 2.0391095844, 2.3957036206], 10.1010076525, 0.192)}
     for shrink, (q, leak_mean, p_hidden) in want.items():
         d = zone_life_distribution(*args, seed=5, shrink=shrink, n_draws=8000, **kw)
         assert np.allclose(d.quantiles()[1:], q[1:], rtol=0.015)
@@ -392,7 +395,9 @@ def test_unscanned_part_has_no_upper_end_where_the_gev_fit_has_one():
     end = gev.loc - gev.scale / gev.shape
     t, r = np.full(200, 6.2), np.full(200, 0.05)
     kw = dict(sigma_t=0.0, nominal=6.35, hidden_T=2.0, n_draws=4000, seed=11)
-    h_end = (6.35 - end - 2.54) / 0.05  # life of the unscanned part at the GEV's upper end
+    # life of the unscanned part at the GEV's upper end: its rate there is at least end / 3 y
+    # (the cells grew their 0.15 mm in 3 y), and the life falls as the depth grows
+    h_end = (6.35 - end - 2.54) / max(0.05, end / (0.15 / 0.05))
     p_gev = _one(t, r, 0.0, hidden_fit=gev, **kw).p_mrt(h_end)
     p_law = _one(t, r, 0.0, hidden_fit=law, **kw).p_mrt(h_end)
     assert p_law > 0.05 and p_gev < 0.02
