@@ -657,7 +657,8 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
         life_mrt, life_leak = np.minimum(life_mrt, h_mrt), np.minimum(life_leak, h_leak)
     T = float(hidden_T)
     if unseen is None:
-        h_mrt, h_leak = _unseen_lives(c, rates, spots, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold)
+        h_mrt, h_leak = _unseen_lives(c, rates, spots, hidden_fit, T, n_draws, rng, hidden_n, hidden_threshold,
+                                      ref.grown_years())
     else:  # the floor as found's (on a repaired floor: a repair changes no metal nobody saw)
         h_mrt, h_leak = unseen
     seen_mrt, seen_leak, n_drawn = _seen_lives(seen, rates, cand, life_mrt, life_leak, h_mrt=h_mrt,
@@ -670,10 +671,10 @@ def zone_life_distribution(thickness, rate_top, rate_under, rate_top_lo, rate_to
                             p_hidden_governs=p_hidden, notes=notes, unseen=(h_mrt, h_leak), reference=ref)
 
 
-def _unseen_lives(c, rates, spots, fit, T, n_draws, rng, n_fit, thr):
+def _unseen_lives(c, rates, spots, fit, T, n_draws, rng, n_fit, thr, grown=np.inf):
     """Draws of the lives of what the scan did not see, the least of the spot readings and
     the unscanned part; (None, None) when there is neither."""
-    h_mrt, h_leak = _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr)
+    h_mrt, h_leak = _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr, grown)
     if spots is None or not len(spots[0]):
         return h_mrt, h_leak
     s_mrt, s_leak = _spot_lives(spots, c.nominal, c.mrt_min, rates.rule, n_draws, rng)
@@ -714,11 +715,12 @@ def _spot_lives(spots, nominal, mrt, rule, n_draws, rng):
         return _life(tk - mrt, rk).min(axis=1), _life(tk, rk).min(axis=1)
 
 
-def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
+def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr, grown=np.inf):
     """Draws of the unscanned part's lives to MRT (the zone's least) and to a leak: its
     deepest loss D from the predictive law, growing at the similar-depth rate, but at
-    least at D / A, A the median time the zone's w deepest measured cells took to grow
-    their loss at their point rates (loss / rate); (None, None) when it is not modelled.
+    least at D / A, A = ``grown``, the median time the zone's w deepest measured cells
+    took to grow their loss at their point rates (:meth:`_Reference.grown_years`); (None,
+    None) when it is not modelled.
 
     Beyond the deepest measured cell the similar-depth rule draws among the w deepest
     (2 % of the cells: on a 5 m floor down to 0.6 mm of loss, mostly pit flanks), whose
@@ -733,14 +735,6 @@ def _unscanned_lives(c, rates, fit, T, n_draws, rng, n_fit, thr):
     if fit is None or T <= 0:
         return None, None
     d = _hidden_depth(fit, T, n_draws, rng, n_fit, thr)
-    # the time the w deepest measured cells (the rule's cells beyond the deepest) took to
-    # grow their loss at their point rates, the median; a cell with no loss or no rate
-    # tells no time (infinite); none: no floor
-    w = max(5, int(0.02 * c.ref_depth.size))
-    deep = np.argsort(c.ref_depth)[::-1][:w]
-    r_pt, d_pt = (c.side_rates[0] + c.side_rates[3])[c.ref][deep], c.ref_depth[deep]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        grown = float(np.median(np.where((r_pt > 0) & (d_pt > 0), d_pt / r_pt, np.inf))) if deep.size else np.inf
     return _part_lives(c.nominal - d, c.mrt_min, np.maximum(rates.rule(d), d / grown))
 
 
@@ -859,6 +853,17 @@ class _Reference:
     par: tuple
     prior: object
     r_top: float
+
+    def grown_years(self) -> float:
+        """The median time the w deepest cells (the rule's cells beyond the deepest, w as
+        :func:`_similar_depth`) took to grow their loss at their point rates (loss /
+        rate); a cell with no loss or no rate tells no time (infinite); none: inf. [y]"""
+        w = max(5, int(0.02 * self.depth.size))
+        d, r = self.depth[-w:], (self.side_rates[0] + self.side_rates[3])[-w:]
+        if d.size == 0:
+            return np.inf
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return float(np.median(np.where((r > 0) & (d > 0), d / r, np.inf)))
 
     def rule(self, rng, d):
         """Rate draws at depths ``d``: a cell of similar depth, its rate drawn from its
