@@ -49,7 +49,10 @@ def figure_specs(an, units: str) -> list:
         specs.append(("methods", "life_probability", "Probability that some point of each zone is below MRT "
                       "(solid) or holed through (dashed) against years after the newer inspection, with each "
                       "zone's next due date marked: decision support beside the code formula, not a "
-                      "replacement (model and calibration: docs/assessment.md).",
+                      "replacement (model and calibration: docs/assessment.md). The leak probability is "
+                      "benched on small synthetic floors only, where the unscanned metal governs it; in a "
+                      "zone the scan covers almost wholly it can be low (new indications' rates are drawn "
+                      "near the bottom of their intervals).",
                       partial(life_probability_figure, an.life_dists, an.zone_table)))
     if getattr(an, "readings", None):  # the spot readings as markers on the thickness map
         table = an.readings["new"].table
