@@ -289,28 +289,39 @@ def _total_rate(pt, lt, ht, pu, lu, hu, assumed=None):
     point = pt + pu
     sd_lo, sd_hi = np.hypot(sl_t, sl_u), np.hypot(sh_t, sh_u)
     flat = f_t | f_u
-    if assumed is not None:  # an assumed rate is no measurement: uniform over the interval
+    if assumed is not None:  # an assumed rate is no measurement: flat up to it
         flat = flat | assumed
     a = np.where(flat, lt + lu, np.maximum(point - TRUNC_SD * sd_lo, 0.0))
     b = np.where(flat, ht + hu, point + TRUNC_SD * sd_hi)
+    # where flat, the point is where the flat part starts: a measured point below an
+    # assumed rate (a measurement of the rate's least, normal below it down to a), else a
+    step = flat & (point < b - 1e-9) & (point > a + 1e-9)
+    if assumed is not None:
+        step &= assumed
+    else:
+        step[:] = False
+    point = np.where(flat & ~step, a, point)
     return point, sd_lo, sd_hi, flat, a, b
 
 
 def _lik(grid, h, point, sd_lo, sd_hi, flat, a, b):
     """(n, K) likelihood of each cell's data at the rates of ``grid`` (spacing ``h``):
     split-normal density or uniform density on [a, b]; zero outside [a, b].  A width below
-    the grid spacing is widened to it (the grid's resolution)."""
+    the grid spacing is widened to it (the grid's resolution).  A flat cell whose point is
+    above a (a measured rate below an assumed one, :func:`_total_rate`) is flat from the
+    point to b and normal below it, a being its 5 % point: not normalised (only the ratios
+    within a row matter, to the posterior and to :func:`_npmle` alike)."""
     g = grid[None, :]
-    sl = np.maximum(sd_lo, h)[:, None]
-    sh = np.maximum(sd_hi, h)[:, None]
+    step = flat & (point > a)
+    sl = np.where(step, np.maximum((point - a) / Z90, h), np.where(flat, np.inf, np.maximum(sd_lo, h)))[:, None]
+    sh = np.where(flat, np.inf, np.maximum(sd_hi, h))[:, None]
     p = point[:, None]
     z = np.where(g < p, (g - p) / sl, (g - p) / sh)
-    dens = np.exp(-0.5 * z * z) * (2.0 / (sl + sh))
     aa = a[:, None] - 0.5 * h
     bb = b[:, None] + 0.5 * h
-    uni = 1.0 / (bb - aa)
-    inside = (g >= aa) & (g <= bb)
-    return np.where(inside, np.where(flat[:, None], uni, dens), 0.0)
+    scale = np.where(flat[:, None], 1.0 / (bb - aa), 2.0 / (sl + sh))
+    dens = np.exp(-0.5 * z * z) * scale
+    return np.where((g >= aa) & (g <= bb), dens, 0.0)
 
 
 @dataclass(frozen=True)
@@ -395,7 +406,7 @@ def _lik_key(par, q):
     point, sd_lo, sd_hi, flat, a, b = par
     key = np.zeros(point.shape, np.int64)
     for k in (np.rint(np.where(flat, a, point) / q), np.rint(np.where(flat, b, sd_lo) / q),
-              np.where(flat, _own(par), np.rint(sd_hi / q) + 2)):
+              np.where(flat, 2 * np.rint(point / q) + 1, 2 * np.rint(sd_hi / q) + 2)):
         key = key * (1 << 21) + np.clip(k.astype(np.int64), 0, (1 << 21) - 1)
     return key
 
@@ -411,8 +422,8 @@ def _lik_groups(par, q):
     def r(x):
         return np.rint(x / q) * q
     p, lo, hi = r(point), r(sd_lo), r(sd_hi)
-    rep = (p, lo, hi, flat, np.where(flat, r(a), np.maximum(p - TRUNC_SD * lo, 0.0)),
-           np.where(flat, r(b), p + TRUNC_SD * hi))
+    rep = (p, lo, hi, flat, np.where(flat, np.minimum(r(a), p), np.maximum(p - TRUNC_SD * lo, 0.0)),
+           np.where(flat, np.maximum(r(b), p), p + TRUNC_SD * hi))
     return rep, _own(par, first), counts, inv
 
 
@@ -902,7 +913,21 @@ def _reference(c: _Cells, *, shrink, prior=None, top=None) -> _Reference:
         r_top = float(np.max(_rate_range(*side[:3])[1] + _rate_range(*side[3:])[1])) if idx.size else 0.0
         return _Reference(depth[order], side, (), None, r_top)
     par = _total_rate(*r.side_rates, assumed=~r.meas)
-    prior = prior if prior is not None else _fit_prior(par, top=top)
+    if prior is None:
+        # the zone's rates are those of all its uncensored cells with a measured lower
+        # bound, the new indications among them, not of the measured cells alone: a new
+        # indication's measured rate (its mean since the older scan) counts as a noisy
+        # measurement of its rate, normal with its lower half-width (the assumed rate
+        # above it is no measurement)
+        new = np.flatnonzero(c.unc & ~c.ref & ~c.meas & c.lo_known)
+        if new.size:
+            s = _take(c, new)
+            p, sd = _total_rate(*s.side_rates)[:2]
+            pn = (p, sd, sd, np.zeros(p.size, bool), np.maximum(p - TRUNC_SD * sd, 0.0), p + TRUNC_SD * sd)
+            fit_par = tuple(np.concatenate((x, y)) for x, y in zip(par, pn))
+        else:
+            fit_par = par
+        prior = _fit_prior(fit_par, top=top)
     return _Reference(depth[order], side, tuple(x[order] for x in par), prior,
                       float(np.max(par[5])) if idx.size else 0.0)
 
@@ -1265,6 +1290,7 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     s_scan = float(np.nanmedian(sigma_t) if sig_map else sigma_t)
     floor_rule = []  # made once, when a zone nobody scanned needs it
     meas_map = _measured(rates)
+    r_top, r_under = _measured_points(rates, meas_map)
     scanned = np.isfinite(thickness)
     n_scanned = [np.count_nonzero(scanned & (zmap.labels == k)) for k in range(len(zmap.names))]
     for k in sorted(range(len(zmap.names)), key=lambda j: n_scanned[j] == 0):  # scanned zones first
@@ -1298,7 +1324,7 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         m_lo = float(np.min(mrt_map, where=sel, initial=np.inf))
         mrt_z = m_lo if not sel.any() or m_lo == np.max(mrt_map, where=sel, initial=-np.inf) else mrt_map[sel]
         out[name] = zone_life_distribution(
-            thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
+            thickness[sel], r_top[sel], r_under[sel], rates.rate_top_lo[sel],
             rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel],
             mrt_z if sel.any() else float(np.min(mrt_map, where=mask, initial=np.inf)),
             sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens,
@@ -1320,6 +1346,27 @@ def _measured(rates):
                         (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
         meas &= ~(np.nan_to_num(pnt) > np.nan_to_num(np.fmax(sh, lg)) + 1e-6)
     return meas
+
+
+def _measured_points(rates, meas):
+    """The point rates per side as drawn: on a cell whose rate was assumed (not ``meas``),
+    each side's measured rate (the greater of short- and long-term, where below the
+    assumed point), so that the cell's data are its measured rate below the assumed one
+    (:func:`_total_rate`); elsewhere the points as they are."""
+    if meas.all():
+        return rates.rate_top, rates.rate_under
+    idx = np.flatnonzero(~meas)
+    out = []
+    for pnt, sh, lg, lo in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top, rates.rate_top_lo),
+                            (rates.rate_under, rates.rate_short_under, rates.rate_long_under, rates.rate_under_lo)):
+        p = pnt.ravel()[idx]
+        m = np.fmax(sh.ravel()[idx], lg.ravel()[idx])
+        # only a measured rate within the cell's interval (a patch's cells are at the rate
+        # kept under it: their interval is that point)
+        x = pnt.copy()
+        x.ravel()[idx] = np.where(m >= lo.ravel()[idx], np.fmin(p, m), p)
+        out.append(x)
+    return tuple(out)
 
 
 def floor_rate_rule(thickness, rates, mask, *, nominal, sigma_t, shrink=True, measured=None):
