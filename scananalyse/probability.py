@@ -864,6 +864,7 @@ class _Reference:
     par: tuple
     prior: object
     r_top: float
+    prior_new: object = None
 
     def grown_years(self) -> float:
         """The median time the w deepest cells (the rule's cells beyond the deepest, w as
@@ -920,16 +921,17 @@ def _reference(c: _Cells, *, shrink, prior=None, top=None) -> _Reference:
         # measurement of its rate, normal with its lower half-width (the assumed rate
         # above it is no measurement)
         new = np.flatnonzero(c.unc & ~c.ref & ~c.meas & c.lo_known)
+        prior_new = None
         if new.size:
             s = _take(c, new)
             p, sd = _total_rate(*s.side_rates)[:2]
             pn = (p, sd, sd, np.zeros(p.size, bool), np.maximum(p - TRUNC_SD * sd, 0.0), p + TRUNC_SD * sd)
-            fit_par = tuple(np.concatenate((x, y)) for x, y in zip(par, pn))
-        else:
-            fit_par = par
-        prior = _fit_prior(fit_par, top=top)
+            prior_new = _fit_prior(tuple(np.concatenate((x, y)) for x, y in zip(par, pn)), top=top)
+        prior = _fit_prior(par, top=top)
+    else:
+        prior_new = None
     return _Reference(depth[order], side, tuple(x[order] for x in par), prior,
-                      float(np.max(par[5])) if idx.size else 0.0)
+                      float(np.max(par[5])) if idx.size else 0.0, prior_new)
 
 
 def _chunks(n, size=1 << 16):
@@ -1038,13 +1040,26 @@ def _shrunk_rates(c: _Cells, ref: _Reference, rng) -> _Rates:
     par = _total_rate(*c.side_rates, assumed=~c.meas)
     meas = c.meas | c.lo_known
     r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
-    if unc.any():
-        r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
+    new = ~c.meas if ref.prior_new is not None else np.zeros(c.meas.shape, bool)
+    for pr, which in ((prior, unc & ~new), (ref.prior_new, unc & new)):
+        if which.any():
+            r_lo[which], r_hi[which] = _post_range(pr, tuple(x[which] for x in par))
+
+    def drawn(pr, jj, shape):
+        sub = tuple(x[jj] for x in par)
+        return _draw_posterior(rng, pr, _lik(pr.grid, pr.step, *sub), r_lo[jj], r_hi[jj], rng.random(shape),
+                               own=_own(sub))
 
     def draw(ii, shape):
-        sub = tuple(x[ii] for x in par)
-        return _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
-                               rng.random(shape), own=_own(sub))
+        is_new = new[ii]
+        if not is_new.any():
+            return drawn(prior, ii, shape)
+        if is_new.all():
+            return drawn(ref.prior_new, ii, shape)
+        out = np.empty(shape)
+        for pr, j in ((prior, np.flatnonzero(~is_new)), (ref.prior_new, np.flatnonzero(is_new))):
+            out[:, j] = drawn(pr, ii[j], (shape[0], j.size))
+        return out
 
     return _Rates(r_min=np.where(meas, r_lo, 0.0), r_max=np.where(meas, r_hi, ref.r_top), meas=meas,
                   draw=draw, rule=lambda d: ref.rule(rng, d))
