@@ -53,9 +53,18 @@ and is drawn by a seeded, vectorised Monte Carlo:
   nor does a cell uniform over an interval from 0 (no measured lower bound: without an
   installation date there is no long-term bound, and its evidence does not separate it
   from the zone's slow bulk); ``shrink=False`` gives the independent per-cell draws;
-* **rate of a cell whose rate was assumed, not measured** (indications with no measured
-  rate): uniform between its measured lower bound and the assumed rate, under :math:`g`;
-  with no measured lower bound (repaired, not compared) the similar-depth rule below;
+* **rate of a cell whose rate was assumed, not measured** (a new indication: the older
+  scan saw no loss there): its measured rate (the greater of short- and long-term, the
+  short-term one being its loss over the interval) is a measurement of the least its rate
+  can be: the likelihood is flat from that measured point up to the assumed rate and
+  normal below it down to the measured lower bound (its 5 % point)
+  (:func:`_measured_points`, :func:`_total_rate`).  Its prior is not :math:`g`, the rates
+  of the zone's measured cells, which do not include its kind (a pit begun late, faster
+  than the grown pits; under :math:`g` every draw sat at the lower bound), but the same
+  estimate from the measured cells *and* the new indications' measured rates, each a
+  normal measurement with its lower half-width (``_Reference.prior_new``).  The measured
+  cells keep :math:`g`.  With no measured lower bound (repaired, not compared) the
+  similar-depth rule below;
 * **deepest loss of the unscanned part**: parameter sets of the zone's depth fit drawn by
   parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
   :math:`U \sim U(0, 1)`, T = hidden area / (block area × the counted blocks' mean
@@ -278,9 +287,12 @@ def _total_rate(pt, lt, ht, pu, lu, hu, assumed=None):
     """The likelihood of each cell's total rate (both sides) from its per-side points and
     90 % intervals: ``(point, sd_lo, sd_hi, flat, a, b)``.  ``flat``: the point is the top
     of a side's interval (older loss unknown below the older threshold, or a rate assumed
-    for an indication): uniform over [a, b] = the sum of the sides' intervals; otherwise a
-    split normal around the point (half-widths of the sides added in quadrature),
-    truncated to [a, b] = ±TRUNC_SD standard deviations, at least 0."""
+    for an indication): uniform over [a, b] = the sum of the sides' intervals (the point
+    is then set to a); but an ``assumed`` cell whose point lies inside (a, b) (its measured
+    rate, :func:`_measured_points`) is flat from the point to b and normal below it,
+    a its 5 % point (:func:`_lik`); otherwise a split normal around the point (half-widths
+    of the sides added in quadrature), truncated to [a, b] = ±TRUNC_SD standard
+    deviations, at least 0."""
     def side(p, lo, hi):
         return (np.maximum(p - lo, 0.0) / Z90, np.maximum(hi - p, 0.0) / Z90,
                 (p >= hi - 1e-9) & (lo < p - 1e-9))
@@ -857,7 +869,8 @@ class _Reference:
     """The cells of the similar-depth rate rule (module notes): ``depth``, their loss in
     ascending order [mm]; ``side_rates`` and ``par`` (:func:`_total_rate`) in that order;
     ``prior``, the zone's rate distribution (None: each rate from its own interval);
-    ``r_top``, the fastest rate a draw of the rule can take [mm/y]."""
+    ``r_top``, the fastest rate a draw of the rule can take [mm/y]; ``prior_new``, the
+    distribution new indications are drawn under (None: the zone has none)."""
 
     depth: np.ndarray
     side_rates: tuple
@@ -915,11 +928,11 @@ def _reference(c: _Cells, *, shrink, prior=None, top=None) -> _Reference:
         return _Reference(depth[order], side, (), None, r_top)
     par = _total_rate(*r.side_rates, assumed=~r.meas)
     if prior is None:
-        # the zone's rates are those of all its uncensored cells with a measured lower
-        # bound, the new indications among them, not of the measured cells alone: a new
-        # indication's measured rate (its mean since the older scan) counts as a noisy
-        # measurement of its rate, normal with its lower half-width (the assumed rate
-        # above it is no measurement)
+        # new indications (assumed rates with a measured lower bound) are drawn under the
+        # rates of the measured cells and of the new indications, each one's measured
+        # rate (its loss over the interval) a normal measurement with its lower
+        # half-width (the assumed rate above it is no measurement); the measured cells
+        # under the measured cells' rates alone, as before
         new = np.flatnonzero(c.unc & ~c.ref & ~c.meas & c.lo_known)
         prior_new = None
         if new.size:
@@ -1033,8 +1046,9 @@ class _Rates:
 
 def _shrunk_rates(c: _Cells, ref: _Reference, rng) -> _Rates:
     """Rates from each cell's posterior under the zone's rate distribution (module notes).
-    An assumed rate is no measurement, but a measured lower bound is: such a cell's rate is
-    uniform between them; with no measured lower bound, the similar-depth rule."""
+    An assumed rate is no measurement, but a measured rate and lower bound are: such a
+    cell's posterior is under ``ref.prior_new``; with no measured lower bound, the
+    similar-depth rule."""
     unc = c.unc
     prior = ref.prior
     par = _total_rate(*c.side_rates, assumed=~c.meas)
