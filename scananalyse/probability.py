@@ -53,9 +53,18 @@ and is drawn by a seeded, vectorised Monte Carlo:
   nor does a cell uniform over an interval from 0 (no measured lower bound: without an
   installation date there is no long-term bound, and its evidence does not separate it
   from the zone's slow bulk); ``shrink=False`` gives the independent per-cell draws;
-* **rate of a cell whose rate was assumed, not measured** (indications with no measured
-  rate): uniform between its measured lower bound and the assumed rate, under :math:`g`;
-  with no measured lower bound (repaired, not compared) the similar-depth rule below;
+* **rate of a cell whose rate was assumed, not measured** (a new indication: the older
+  scan saw no loss there): its measured rate (the greater of short- and long-term, the
+  short-term one being its loss over the interval) is a measurement of the least its rate
+  can be: the likelihood is flat from that measured point up to the assumed rate and
+  normal below it down to the measured lower bound (its 5 % point)
+  (:func:`_measured_points`, :func:`_total_rate`).  Its prior is not :math:`g`, the rates
+  of the zone's measured cells, which do not include its kind (a pit begun late, faster
+  than the grown pits; under :math:`g` every draw sat at the lower bound), but the same
+  estimate from the measured cells *and* the new indications' measured rates, each a
+  normal measurement with its lower half-width (``_Reference.prior_new``).  The measured
+  cells keep :math:`g`.  With no measured lower bound (repaired, not compared) the
+  similar-depth rule below;
 * **deepest loss of the unscanned part**: parameter sets of the zone's depth fit drawn by
   parametric bootstrap (parameter uncertainty), then :math:`D = F^{-1}(U^{1/T})`,
   :math:`U \sim U(0, 1)`, T = hidden area / (block area × the counted blocks' mean
@@ -278,9 +287,12 @@ def _total_rate(pt, lt, ht, pu, lu, hu, assumed=None):
     """The likelihood of each cell's total rate (both sides) from its per-side points and
     90 % intervals: ``(point, sd_lo, sd_hi, flat, a, b)``.  ``flat``: the point is the top
     of a side's interval (older loss unknown below the older threshold, or a rate assumed
-    for an indication): uniform over [a, b] = the sum of the sides' intervals; otherwise a
-    split normal around the point (half-widths of the sides added in quadrature),
-    truncated to [a, b] = ±TRUNC_SD standard deviations, at least 0."""
+    for an indication): uniform over [a, b] = the sum of the sides' intervals (the point
+    is then set to a); but an ``assumed`` cell whose point lies inside (a, b) (its measured
+    rate, :func:`_measured_points`) is flat from the point to b and normal below it,
+    a its 5 % point (:func:`_lik`); otherwise a split normal around the point (half-widths
+    of the sides added in quadrature), truncated to [a, b] = ±TRUNC_SD standard
+    deviations, at least 0."""
     def side(p, lo, hi):
         return (np.maximum(p - lo, 0.0) / Z90, np.maximum(hi - p, 0.0) / Z90,
                 (p >= hi - 1e-9) & (lo < p - 1e-9))
@@ -289,28 +301,39 @@ def _total_rate(pt, lt, ht, pu, lu, hu, assumed=None):
     point = pt + pu
     sd_lo, sd_hi = np.hypot(sl_t, sl_u), np.hypot(sh_t, sh_u)
     flat = f_t | f_u
-    if assumed is not None:  # an assumed rate is no measurement: uniform over the interval
+    if assumed is not None:  # an assumed rate is no measurement: flat up to it
         flat = flat | assumed
     a = np.where(flat, lt + lu, np.maximum(point - TRUNC_SD * sd_lo, 0.0))
     b = np.where(flat, ht + hu, point + TRUNC_SD * sd_hi)
+    # where flat, the point is where the flat part starts: a measured point below an
+    # assumed rate (a measurement of the rate's least, normal below it down to a), else a
+    step = flat & (point < b - 1e-9) & (point > a + 1e-9)
+    if assumed is not None:
+        step &= assumed
+    else:
+        step[:] = False
+    point = np.where(flat & ~step, a, point)
     return point, sd_lo, sd_hi, flat, a, b
 
 
 def _lik(grid, h, point, sd_lo, sd_hi, flat, a, b):
     """(n, K) likelihood of each cell's data at the rates of ``grid`` (spacing ``h``):
     split-normal density or uniform density on [a, b]; zero outside [a, b].  A width below
-    the grid spacing is widened to it (the grid's resolution)."""
+    the grid spacing is widened to it (the grid's resolution).  A flat cell whose point is
+    above a (a measured rate below an assumed one, :func:`_total_rate`) is flat from the
+    point to b and normal below it, a being its 5 % point: not normalised (only the ratios
+    within a row matter, to the posterior and to :func:`_npmle` alike)."""
     g = grid[None, :]
-    sl = np.maximum(sd_lo, h)[:, None]
-    sh = np.maximum(sd_hi, h)[:, None]
+    step = flat & (point > a)
+    sl = np.where(step, np.maximum((point - a) / Z90, h), np.where(flat, np.inf, np.maximum(sd_lo, h)))[:, None]
+    sh = np.where(flat, np.inf, np.maximum(sd_hi, h))[:, None]
     p = point[:, None]
     z = np.where(g < p, (g - p) / sl, (g - p) / sh)
-    dens = np.exp(-0.5 * z * z) * (2.0 / (sl + sh))
     aa = a[:, None] - 0.5 * h
     bb = b[:, None] + 0.5 * h
-    uni = 1.0 / (bb - aa)
-    inside = (g >= aa) & (g <= bb)
-    return np.where(inside, np.where(flat[:, None], uni, dens), 0.0)
+    scale = np.where(flat[:, None], 1.0 / (bb - aa), 2.0 / (sl + sh))
+    dens = np.exp(-0.5 * z * z) * scale
+    return np.where((g >= aa) & (g <= bb), dens, 0.0)
 
 
 @dataclass(frozen=True)
@@ -395,7 +418,7 @@ def _lik_key(par, q):
     point, sd_lo, sd_hi, flat, a, b = par
     key = np.zeros(point.shape, np.int64)
     for k in (np.rint(np.where(flat, a, point) / q), np.rint(np.where(flat, b, sd_lo) / q),
-              np.where(flat, _own(par), np.rint(sd_hi / q) + 2)):
+              np.where(flat, 2 * np.rint(point / q) + 1, 2 * np.rint(sd_hi / q) + 2)):
         key = key * (1 << 21) + np.clip(k.astype(np.int64), 0, (1 << 21) - 1)
     return key
 
@@ -411,8 +434,8 @@ def _lik_groups(par, q):
     def r(x):
         return np.rint(x / q) * q
     p, lo, hi = r(point), r(sd_lo), r(sd_hi)
-    rep = (p, lo, hi, flat, np.where(flat, r(a), np.maximum(p - TRUNC_SD * lo, 0.0)),
-           np.where(flat, r(b), p + TRUNC_SD * hi))
+    rep = (p, lo, hi, flat, np.where(flat, np.minimum(r(a), p), np.maximum(p - TRUNC_SD * lo, 0.0)),
+           np.where(flat, np.maximum(r(b), p), p + TRUNC_SD * hi))
     return rep, _own(par, first), counts, inv
 
 
@@ -846,13 +869,15 @@ class _Reference:
     """The cells of the similar-depth rate rule (module notes): ``depth``, their loss in
     ascending order [mm]; ``side_rates`` and ``par`` (:func:`_total_rate`) in that order;
     ``prior``, the zone's rate distribution (None: each rate from its own interval);
-    ``r_top``, the fastest rate a draw of the rule can take [mm/y]."""
+    ``r_top``, the fastest rate a draw of the rule can take [mm/y]; ``prior_new``, the
+    distribution new indications are drawn under (None: the zone has none)."""
 
     depth: np.ndarray
     side_rates: tuple
     par: tuple
     prior: object
     r_top: float
+    prior_new: object = None
 
     def grown_years(self) -> float:
         """The median time the w deepest cells (the rule's cells beyond the deepest, w as
@@ -902,9 +927,24 @@ def _reference(c: _Cells, *, shrink, prior=None, top=None) -> _Reference:
         r_top = float(np.max(_rate_range(*side[:3])[1] + _rate_range(*side[3:])[1])) if idx.size else 0.0
         return _Reference(depth[order], side, (), None, r_top)
     par = _total_rate(*r.side_rates, assumed=~r.meas)
-    prior = prior if prior is not None else _fit_prior(par, top=top)
+    if prior is None:
+        # new indications (assumed rates with a measured lower bound) are drawn under the
+        # rates of the measured cells and of the new indications, each one's measured
+        # rate (its loss over the interval) a normal measurement with its lower
+        # half-width (the assumed rate above it is no measurement); the measured cells
+        # under the measured cells' rates alone, as before
+        new = np.flatnonzero(c.unc & ~c.ref & ~c.meas & c.lo_known)
+        prior_new = None
+        if new.size:
+            s = _take(c, new)
+            p, sd = _total_rate(*s.side_rates)[:2]
+            pn = (p, sd, sd, np.zeros(p.size, bool), np.maximum(p - TRUNC_SD * sd, 0.0), p + TRUNC_SD * sd)
+            prior_new = _fit_prior(tuple(np.concatenate((x, y)) for x, y in zip(par, pn)), top=top)
+        prior = _fit_prior(par, top=top)
+    else:
+        prior_new = None
     return _Reference(depth[order], side, tuple(x[order] for x in par), prior,
-                      float(np.max(par[5])) if idx.size else 0.0)
+                      float(np.max(par[5])) if idx.size else 0.0, prior_new)
 
 
 def _chunks(n, size=1 << 16):
@@ -1006,20 +1046,34 @@ class _Rates:
 
 def _shrunk_rates(c: _Cells, ref: _Reference, rng) -> _Rates:
     """Rates from each cell's posterior under the zone's rate distribution (module notes).
-    An assumed rate is no measurement, but a measured lower bound is: such a cell's rate is
-    uniform between them; with no measured lower bound, the similar-depth rule."""
+    An assumed rate is no measurement, but a measured rate and lower bound are: such a
+    cell's posterior is under ``ref.prior_new``; with no measured lower bound, the
+    similar-depth rule."""
     unc = c.unc
     prior = ref.prior
     par = _total_rate(*c.side_rates, assumed=~c.meas)
     meas = c.meas | c.lo_known
     r_lo, r_hi = par[4].copy(), par[5].copy()  # each cell's draws are clipped to these
-    if unc.any():
-        r_lo[unc], r_hi[unc] = _post_range(prior, tuple(x[unc] for x in par))
+    new = ~c.meas if ref.prior_new is not None else np.zeros(c.meas.shape, bool)
+    for pr, which in ((prior, unc & ~new), (ref.prior_new, unc & new)):
+        if which.any():
+            r_lo[which], r_hi[which] = _post_range(pr, tuple(x[which] for x in par))
+
+    def drawn(pr, jj, shape):
+        sub = tuple(x[jj] for x in par)
+        return _draw_posterior(rng, pr, _lik(pr.grid, pr.step, *sub), r_lo[jj], r_hi[jj], rng.random(shape),
+                               own=_own(sub))
 
     def draw(ii, shape):
-        sub = tuple(x[ii] for x in par)
-        return _draw_posterior(rng, prior, _lik(prior.grid, prior.step, *sub), r_lo[ii], r_hi[ii],
-                               rng.random(shape), own=_own(sub))
+        is_new = new[ii]
+        if not is_new.any():
+            return drawn(prior, ii, shape)
+        if is_new.all():
+            return drawn(ref.prior_new, ii, shape)
+        out = np.empty(shape)
+        for pr, j in ((prior, np.flatnonzero(~is_new)), (ref.prior_new, np.flatnonzero(is_new))):
+            out[:, j] = drawn(pr, ii[j], (shape[0], j.size))
+        return out
 
     return _Rates(r_min=np.where(meas, r_lo, 0.0), r_max=np.where(meas, r_hi, ref.r_top), meas=meas,
                   draw=draw, rule=lambda d: ref.rule(rng, d))
@@ -1265,6 +1319,7 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
     s_scan = float(np.nanmedian(sigma_t) if sig_map else sigma_t)
     floor_rule = []  # made once, when a zone nobody scanned needs it
     meas_map = _measured(rates)
+    r_top, r_under = _measured_points(rates, meas_map)
     scanned = np.isfinite(thickness)
     n_scanned = [np.count_nonzero(scanned & (zmap.labels == k)) for k in range(len(zmap.names))]
     for k in sorted(range(len(zmap.names)), key=lambda j: n_scanned[j] == 0):  # scanned zones first
@@ -1298,7 +1353,7 @@ def life_distributions(thickness, rates, zmap, mrt_map, extremes_depth, *, nomin
         m_lo = float(np.min(mrt_map, where=sel, initial=np.inf))
         mrt_z = m_lo if not sel.any() or m_lo == np.max(mrt_map, where=sel, initial=-np.inf) else mrt_map[sel]
         out[name] = zone_life_distribution(
-            thickness[sel], rates.rate_top[sel], rates.rate_under[sel], rates.rate_top_lo[sel],
+            thickness[sel], r_top[sel], r_under[sel], rates.rate_top_lo[sel],
             rates.rate_top_hi[sel], rates.rate_under_lo[sel], rates.rate_under_hi[sel],
             mrt_z if sel.any() else float(np.min(mrt_map, where=mask, initial=np.inf)),
             sigma_t=(sigma_t[sel] if sig_map else sigma_t), nominal=nominal, censored=cens,
@@ -1320,6 +1375,27 @@ def _measured(rates):
                         (rates.rate_under, rates.rate_short_under, rates.rate_long_under)):
         meas &= ~(np.nan_to_num(pnt) > np.nan_to_num(np.fmax(sh, lg)) + 1e-6)
     return meas
+
+
+def _measured_points(rates, meas):
+    """The point rates per side as drawn: on a cell whose rate was assumed (not ``meas``),
+    each side's measured rate (the greater of short- and long-term, where below the
+    assumed point), so that the cell's data are its measured rate below the assumed one
+    (:func:`_total_rate`); elsewhere the points as they are."""
+    if meas.all():
+        return rates.rate_top, rates.rate_under
+    idx = np.flatnonzero(~meas)
+    out = []
+    for pnt, sh, lg, lo in ((rates.rate_top, rates.rate_short_top, rates.rate_long_top, rates.rate_top_lo),
+                            (rates.rate_under, rates.rate_short_under, rates.rate_long_under, rates.rate_under_lo)):
+        p = pnt.ravel()[idx]
+        m = np.fmax(sh.ravel()[idx], lg.ravel()[idx])
+        # only a measured rate within the cell's interval (a patch's cells are at the rate
+        # kept under it: their interval is that point)
+        x = pnt.copy()
+        x.ravel()[idx] = np.where(m >= lo.ravel()[idx], np.fmin(p, m), p)
+        out.append(x)
+    return tuple(out)
 
 
 def floor_rate_rule(thickness, rates, mask, *, nominal, sigma_t, shrink=True, measured=None):
